@@ -1,0 +1,358 @@
+//! `mtgauge bench`: scoring speed on a generated corpus, with ratios against baselines measured in
+//! the same run (a plain hash-map BLEU written the obvious way, and optionally NLTK's
+//! `corpus_bleu` run by a given Python interpreter). Prints figures; asserts nothing about time.
+
+use std::collections::HashMap;
+use std::io::Write;
+use std::path::PathBuf;
+use std::sync::atomic::AtomicUsize;
+use std::sync::Arc;
+use std::time::Instant;
+
+use clap::Args;
+use serde_json::{json, Value};
+
+use super::{default_threads, CliError};
+use crate::metric::{BleuStats, MetricSet, ScoreConfig};
+use crate::refs::compiled::Compiled;
+use crate::refs::{RefSet, SegmentInput};
+use crate::rng::SplitMix64;
+use crate::text::Tokenizer;
+
+/// Segments in the generated corpus unless told.
+pub const DEFAULT_BENCH_SEGMENTS: usize = 100_000;
+/// Mean segment length in tokens unless told.
+pub const DEFAULT_BENCH_TOKENS: usize = 25;
+/// Vocabulary size of the generated corpus unless told.
+pub const DEFAULT_BENCH_VOCAB: usize = 20_000;
+/// Zipf exponent of the word distribution (1.0: the classic Zipf law; common practice).
+const ZIPF_EXPONENT: f64 = 1.0;
+/// Share of reference tokens a hypothesis replaces, drops, or follows by an extra word.
+const HYP_REPLACE: f64 = 0.15;
+const HYP_DROP: f64 = 0.05;
+const HYP_INSERT: f64 = 0.05;
+/// The NLTK timing script run with `--baseline-python`.
+const NLTK_SCRIPT: &str = include_str!("../../tests/python/bench_nltk.py");
+
+/// Arguments of `mtgauge bench`.
+#[derive(Debug, Args)]
+pub struct BenchArgs {
+    /// Segments in the generated corpus.
+    #[arg(long, default_value_t = DEFAULT_BENCH_SEGMENTS, value_name = "N")]
+    pub segments: usize,
+    /// Mean tokens per segment (lengths vary from half to one and a half times this).
+    #[arg(long, default_value_t = DEFAULT_BENCH_TOKENS, value_name = "N")]
+    pub tokens: usize,
+    /// Vocabulary size (Zipf-distributed).
+    #[arg(long, default_value_t = DEFAULT_BENCH_VOCAB, value_name = "N")]
+    pub vocab: usize,
+    /// Seed of the corpus generator.
+    #[arg(long, default_value_t = 7)]
+    pub seed: u64,
+    /// Threads for the parallel measurement (default: the number of CPUs).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Python interpreter with nltk installed: also time NLTK's corpus_bleu on the same corpus.
+    #[arg(long, value_name = "PYTHON")]
+    pub baseline_python: Option<PathBuf>,
+    /// Print the figures as one JSON object.
+    #[arg(long)]
+    pub json: bool,
+}
+
+struct Corpus {
+    refs: Vec<Vec<String>>, // per segment, its references (token strings joined by spaces)
+    hyps: Vec<String>,
+}
+
+fn word(mut k: usize) -> String {
+    const ONSETS: [&str; 12] = ["b", "d", "f", "g", "k", "l", "m", "n", "p", "r", "s", "t"];
+    const VOWELS: [&str; 5] = ["a", "e", "i", "o", "u"];
+    let mut w = String::new();
+    loop {
+        w.push_str(ONSETS[k % ONSETS.len()]);
+        k /= ONSETS.len();
+        w.push_str(VOWELS[k % VOWELS.len()]);
+        k /= VOWELS.len();
+        if k == 0 {
+            return w;
+        }
+        k -= 1;
+    }
+}
+
+fn generate(n: usize, mean: usize, vocab: usize, refs_per_seg: usize, seed: u64) -> Corpus {
+    let words: Vec<String> = (0..vocab.max(1)).map(word).collect();
+    let mut cdf = Vec::with_capacity(words.len());
+    let mut acc = 0.0;
+    for k in 0..words.len() {
+        acc += 1.0 / ((k + 1) as f64).powf(ZIPF_EXPONENT);
+        cdf.push(acc);
+    }
+    let mut rng = SplitMix64::new(seed);
+    let mut draw = |rng: &mut SplitMix64| {
+        let x = rng.next_f64() * acc;
+        &words[cdf.partition_point(|&c| c < x).min(words.len() - 1)]
+    };
+    let (lo, hi) = ((mean / 2).max(1) as u32, (mean + mean / 2).max(1) as u32);
+    let mut corpus = Corpus { refs: Vec::with_capacity(n), hyps: Vec::with_capacity(n) };
+    for _ in 0..n {
+        let len = rng.in_range((lo, hi)) as usize;
+        let base: Vec<&String> = (0..len).map(|_| draw(&mut rng)).collect();
+        let mut refs = vec![join(&base)];
+        for _ in 1..refs_per_seg {
+            refs.push(join(&perturb(&base, &mut rng, &mut draw)));
+        }
+        corpus.hyps.push(join(&perturb(&base, &mut rng, &mut draw)));
+        corpus.refs.push(refs);
+    }
+    corpus
+}
+
+fn perturb<'a>(base: &[&'a String], rng: &mut SplitMix64, draw: &mut impl FnMut(&mut SplitMix64) -> &'a String) -> Vec<&'a String> {
+    let mut out = Vec::with_capacity(base.len() + 2);
+    for &w in base {
+        let x = rng.next_f64();
+        if x < HYP_DROP {
+            continue;
+        }
+        out.push(if x < HYP_DROP + HYP_REPLACE { draw(rng) } else { w });
+        if rng.chance(HYP_INSERT) {
+            out.push(draw(rng));
+        }
+    }
+    out
+}
+
+fn join(ws: &[&String]) -> String {
+    ws.iter().map(|s| s.as_str()).collect::<Vec<_>>().join(" ")
+}
+
+fn refset(c: &Corpus) -> RefSet {
+    let segs = c.refs.iter().enumerate().map(|(i, r)| SegmentInput { id: (i + 1).to_string(), source: None, refs: r.clone() });
+    RefSet::new(segs).expect("generated ids are unique")
+}
+
+/// BLEU statistics the obvious way: hash maps of n-gram vectors per segment. The baseline.
+fn naive_bleu(c: &Corpus, order: usize) -> BleuStats {
+    let mut st = BleuStats::default();
+    for (refs, hyp) in c.refs.iter().zip(&c.hyps) {
+        let h: Vec<&str> = hyp.split_whitespace().collect();
+        let rs: Vec<Vec<&str>> = refs.iter().map(|r| r.split_whitespace().collect()).collect();
+        for n in 1..=order {
+            fn count<'a>(t: &[&'a str], n: usize) -> HashMap<Vec<&'a str>, u64> {
+                let mut m: HashMap<Vec<&str>, u64> = HashMap::new();
+                for g in t.windows(n) {
+                    *m.entry(g.to_vec()).or_default() += 1;
+                }
+                m
+            }
+            let hc = count(&h, n);
+            let mut max: HashMap<Vec<&str>, u64> = HashMap::new();
+            for r in &rs {
+                for (g, k) in count(r, n) {
+                    let e = max.entry(g).or_default();
+                    *e = (*e).max(k);
+                }
+            }
+            st.matches[n - 1] += hc.iter().map(|(g, &k)| k.min(*max.get(g).unwrap_or(&0))).sum::<u64>();
+            st.totals[n - 1] += hc.values().sum::<u64>();
+        }
+        st.hyp_len += h.len() as u64;
+        st.ref_len += crate::metric::RefLength::Closest.pick(h.len() as u64, rs.iter().map(|r| r.len() as u64));
+    }
+    st
+}
+
+fn time<T>(f: impl FnOnce() -> T) -> (T, f64) {
+    let t = Instant::now();
+    let out = f();
+    (out, t.elapsed().as_secs_f64())
+}
+
+fn config(metrics: &str, tokenizer: Tokenizer) -> ScoreConfig {
+    let metrics: MetricSet = metrics.parse().expect("fixed metric list");
+    ScoreConfig { metrics, tokenizer, ..Default::default() }
+}
+
+/// Throughput of `compiled` over the corpus on `threads` threads; (segments/s, corpus stats).
+fn throughput(compiled: &Compiled, hyps: &[&str], threads: usize) -> (f64, crate::metric::CorpusStats) {
+    let done = AtomicUsize::new(0);
+    let (segs, secs) = time(|| compiled.score_aligned(hyps, threads, &done));
+    let mut corpus = crate::metric::CorpusStats::default();
+    segs.iter().for_each(|s| corpus.add_segment(s));
+    (hyps.len() as f64 / secs, corpus)
+}
+
+fn run_nltk(python: &PathBuf, c: &Corpus) -> Result<Value, CliError> {
+    let dir = std::env::temp_dir().join(format!("mtgauge-bench-{}", std::process::id()));
+    let io = |e| CliError::Output { what: dir.display().to_string(), source: e };
+    std::fs::create_dir_all(&dir).map_err(io)?;
+    let write = |name: &str, lines: &mut dyn Iterator<Item = &str>| -> Result<PathBuf, CliError> {
+        let p = dir.join(name);
+        let mut w = std::io::BufWriter::new(std::fs::File::create(&p).map_err(io)?);
+        for l in lines {
+            writeln!(w, "{l}").map_err(io)?;
+        }
+        w.flush().map_err(io)?;
+        Ok(p)
+    };
+    let refs = write("ref.txt", &mut c.refs.iter().map(|r| r[0].as_str()))?;
+    let hyps = write("hyp.txt", &mut c.hyps.iter().map(String::as_str))?;
+    let script = dir.join("bench_nltk.py");
+    std::fs::write(&script, NLTK_SCRIPT).map_err(io)?;
+    let out = std::process::Command::new(python)
+        .arg(&script)
+        .arg(&refs)
+        .arg(&hyps)
+        .output()
+        .map_err(|e| CliError::Usage(format!("cannot run {}: {e}", python.display())))?;
+    let _ = std::fs::remove_dir_all(&dir);
+    if !out.status.success() {
+        return Err(CliError::Usage(format!("NLTK baseline failed: {}", String::from_utf8_lossy(&out.stderr).trim())));
+    }
+    serde_json::from_slice(&out.stdout).map_err(|e| CliError::Usage(format!("NLTK baseline printed no JSON: {e}")))
+}
+
+pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
+    if a.segments == 0 || a.tokens == 0 || a.vocab == 0 {
+        return Err(CliError::Usage("--segments, --tokens and --vocab must be at least 1".into()));
+    }
+    let threads = a.threads.unwrap_or_else(default_threads).max(1);
+    let log = |s: String| {
+        if !a.json {
+            eprintln!("{s}");
+        }
+    };
+    log(format!("generating {} segments (~{} tokens, Zipf vocabulary of {})", a.segments, a.tokens, a.vocab));
+    let corpus = generate(a.segments, a.tokens, a.vocab, 1, a.seed);
+    let hyps: Vec<&str> = corpus.hyps.iter().map(String::as_str).collect();
+
+    let (set, build_set) = time(|| Arc::new(refset(&corpus)));
+    let bleu_cfg = config("bleu", Tokenizer::Whitespace);
+    let (bleu, build_bleu) = time(|| Compiled::build(Arc::clone(&set), bleu_cfg));
+    let (bleu_1, stats) = throughput(&bleu, &hyps, 1);
+    let (bleu_n, _) = throughput(&bleu, &hyps, threads);
+    let nist = Compiled::build(Arc::clone(&set), config("bleu", Tokenizer::Nist));
+    let (bleu_nist_1, _) = throughput(&nist, &hyps, 1);
+    let (naive_stats, naive_secs) = time(|| naive_bleu(&corpus, bleu_cfg.bleu_order));
+    if naive_stats != stats.bleu {
+        return Err(CliError::Usage("internal check failed: baseline BLEU statistics differ from the engine's".into()));
+    }
+    let naive = a.segments as f64 / naive_secs;
+    let chrf = Compiled::build(Arc::clone(&set), config("chrf", Tokenizer::Whitespace));
+    let (chrf_1, _) = throughput(&chrf, &hyps, 1);
+    let chrfpp = Compiled::build(Arc::clone(&set), config("chrf++", Tokenizer::Whitespace));
+    let (chrfpp_1, _) = throughput(&chrfpp, &hyps, 1);
+
+    // Memory per segment with two references of about `tokens` tokens each.
+    let two = generate(a.segments.min(20_000), a.tokens, a.vocab, 2, a.seed ^ 1);
+    let two_set = Arc::new(refset(&two));
+    let two_bleu = Compiled::build(Arc::clone(&two_set), bleu_cfg);
+    let per_seg = |bytes: usize, n: usize| bytes as f64 / n as f64;
+
+    let mut figures = json!({
+        "segments": a.segments,
+        "mean_tokens": a.tokens,
+        "threads": threads,
+        "bleu": stats.bleu.score(bleu_cfg.bleu_order).score,
+        "refset_build_seconds": build_set,
+        "bleu_table_build_seconds": build_bleu,
+        "bleu_segments_per_s_1_thread": bleu_1,
+        "bleu_segments_per_s_n_threads": bleu_n,
+        "bleu_nist_tokenizer_segments_per_s_1_thread": bleu_nist_1,
+        "chrf_segments_per_s_1_thread": chrf_1,
+        "chrfpp_segments_per_s_1_thread": chrfpp_1,
+        "baseline_hashmap_bleu_segments_per_s": naive,
+        "ratio_vs_hashmap_baseline_1_thread": bleu_1 / naive,
+        "memory_bytes_per_segment_1_ref": {
+            "refset": per_seg(set.memory_bytes(), set.len()),
+            "bleu_tables": per_seg(bleu.memory_bytes(), set.len()),
+        },
+        "memory_bytes_per_segment_2_refs": {
+            "refset": per_seg(two_set.memory_bytes(), two_set.len()),
+            "bleu_tables": per_seg(two_bleu.memory_bytes(), two_set.len()),
+            "total": per_seg(two_set.memory_bytes() + two_bleu.memory_bytes(), two_set.len()),
+        },
+    });
+    if let Some(py) = &a.baseline_python {
+        log("timing NLTK corpus_bleu on the same corpus".into());
+        let nltk = run_nltk(py, &corpus)?;
+        let nltk_rate = nltk["segments"].as_f64().unwrap_or(0.0) / nltk["seconds"].as_f64().unwrap_or(f64::INFINITY);
+        let nltk_bleu = 100.0 * nltk["bleu"].as_f64().unwrap_or(f64::NAN);
+        figures["nltk"] = json!({
+            "version": nltk["version"],
+            "segments_per_s": nltk_rate,
+            "bleu": nltk_bleu,
+            "bleu_difference": (nltk_bleu - figures["bleu"].as_f64().unwrap_or(0.0)).abs(),
+            "ratio_1_thread": bleu_1 / nltk_rate,
+            "ratio_n_threads": bleu_n / nltk_rate,
+        });
+    }
+    let out = if a.json { serde_json::to_string_pretty(&figures).unwrap_or_default() + "\n" } else { human(&figures) };
+    std::io::stdout().write_all(out.as_bytes()).map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+fn human(f: &Value) -> String {
+    let n = |k: &str| f[k].as_f64().unwrap_or(f64::NAN);
+    let mut s = format!(
+        "mtgauge bench: {} segments, ~{} tokens, 1 reference, BLEU {:.2}\n",
+        f["segments"], f["mean_tokens"], n("bleu")
+    );
+    s += &format!("  reference set build      {:8.3} s, BLEU tables {:.3} s\n", n("refset_build_seconds"), n("bleu_table_build_seconds"));
+    s += &format!("  BLEU (whitespace)        {:10.0} segments/s on 1 thread\n", n("bleu_segments_per_s_1_thread"));
+    s += &format!("  BLEU (whitespace)        {:10.0} segments/s on {} threads\n", n("bleu_segments_per_s_n_threads"), f["threads"]);
+    s += &format!("  BLEU (nist tokenizer)    {:10.0} segments/s on 1 thread\n", n("bleu_nist_tokenizer_segments_per_s_1_thread"));
+    s += &format!("  chrF                     {:10.0} segments/s on 1 thread\n", n("chrf_segments_per_s_1_thread"));
+    s += &format!("  chrF++                   {:10.0} segments/s on 1 thread\n", n("chrfpp_segments_per_s_1_thread"));
+    s += &format!(
+        "  baseline: hash-map BLEU  {:10.0} segments/s -> engine is {:.1}x faster (1 thread)\n",
+        n("baseline_hashmap_bleu_segments_per_s"),
+        n("ratio_vs_hashmap_baseline_1_thread")
+    );
+    if let Some(nl) = f.get("nltk") {
+        let g = |k: &str| nl[k].as_f64().unwrap_or(f64::NAN);
+        s += &format!(
+            "  baseline: NLTK {} corpus_bleu {:8.0} segments/s -> engine is {:.1}x faster on 1 thread, {:.1}x on {} (BLEU differs by {:.1e})\n",
+            nl["version"].as_str().unwrap_or("?"),
+            g("segments_per_s"),
+            g("ratio_1_thread"),
+            g("ratio_n_threads"),
+            f["threads"],
+            g("bleu_difference")
+        );
+    }
+    let m1 = &f["memory_bytes_per_segment_1_ref"];
+    let m2 = &f["memory_bytes_per_segment_2_refs"];
+    s += &format!(
+        "  memory per segment: 1 ref {:.0} B text + {:.0} B tables; 2 refs {:.0} B text + {:.0} B tables = {:.0} B\n",
+        m1["refset"].as_f64().unwrap_or(0.0),
+        m1["bleu_tables"].as_f64().unwrap_or(0.0),
+        m2["refset"].as_f64().unwrap_or(0.0),
+        m2["bleu_tables"].as_f64().unwrap_or(0.0),
+        m2["total"].as_f64().unwrap_or(0.0)
+    );
+    s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn generated_words_are_distinct() {
+        let ws: std::collections::HashSet<String> = (0..5000).map(word).collect();
+        assert_eq!(ws.len(), 5000);
+    }
+
+    #[test]
+    fn engine_equals_hashmap_baseline_on_a_generated_corpus() {
+        let c = generate(300, 12, 200, 3, 11);
+        let set = Arc::new(refset(&c));
+        let compiled = Compiled::build(set, config("bleu", Tokenizer::Whitespace));
+        let hyps: Vec<&str> = c.hyps.iter().map(String::as_str).collect();
+        let (_, stats) = throughput(&compiled, &hyps, 2);
+        assert_eq!(stats.bleu, naive_bleu(&c, 4));
+        assert!(stats.bleu.matches[0] > 0 && stats.bleu.matches[3] < stats.bleu.totals[3]);
+    }
+}

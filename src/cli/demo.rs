@@ -1,0 +1,56 @@
+//! `mtgauge demo`: the built-in scenario of an invented ferry operator's passenger notices
+//! (English to German), scored offline for three simulated systems.
+
+use std::path::PathBuf;
+use std::sync::Arc;
+
+use clap::Args;
+
+use super::score::score_lines;
+use super::{default_threads, CliError};
+use crate::demo::{demo_segments, demo_systems, write_demo_files};
+use crate::metric::{MetricSet, ScoreConfig};
+use crate::refs::{RefSet, SegmentInput};
+use crate::report::{stats_lines, PROXY_NOTE};
+
+/// Arguments of `mtgauge demo`.
+#[derive(Debug, Args)]
+pub struct DemoArgs {
+    /// Also write the demo data as files into DIR (plain references, JSONL, hypotheses), to try
+    /// `mtgauge score` on.
+    #[arg(long, value_name = "DIR")]
+    pub write_files: Option<PathBuf>,
+}
+
+pub(super) fn run(a: DemoArgs) -> Result<(), CliError> {
+    let segments = demo_segments();
+    let set = Arc::new(
+        RefSet::new(segments.iter().map(|s| SegmentInput { id: s.id.clone(), source: Some(s.source.clone()), refs: s.refs.clone() }))
+            .map_err(|e| CliError::Usage(format!("built-in demo data is invalid: {e}")))?,
+    );
+    let metrics: MetricSet = "bleu,chrf,chrf++".parse().map_err(|e| CliError::Usage(format!("{e}")))?;
+    let config = ScoreConfig { metrics, ..Default::default() };
+    println!(
+        "mtgauge demo: Nordhavn Ferries passenger notices, English -> German, {} segments, 2 references each (references {})",
+        set.len(),
+        &set.digest_hex()[..16]
+    );
+    for system in demo_systems() {
+        let hyps: Vec<&str> = system.hypotheses.iter().map(String::as_str).collect();
+        let corpus = score_lines(Arc::clone(&set), config, &hyps, default_threads(), false).corpus();
+        println!("\n{} ({})", system.name, system.description);
+        for line in stats_lines(&corpus, &config, "  ") {
+            println!("{line}");
+        }
+    }
+    println!("\n  config  {}", config.describe());
+    println!("{PROXY_NOTE}");
+    if let Some(dir) = &a.write_files {
+        let files = write_demo_files(dir).map_err(|e| CliError::Output { what: dir.display().to_string(), source: e })?;
+        println!("\nwrote {} files to {}; try:", files.len(), dir.display());
+        let d = dir.display();
+        println!("  mtgauge score --ref {d}/ref1.de.txt --ref {d}/ref2.de.txt --hyp {d}/hyp.model-v7.de.txt");
+        println!("  mtgauge score --ref {d}/refs.jsonl --hyp {d}/hyp.model-v7.de.txt --metrics bleu,chrf++ --json");
+    }
+    Ok(())
+}

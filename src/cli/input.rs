@@ -1,0 +1,117 @@
+//! Reading input files and drawing progress for the offline commands.
+
+use std::io::{Read, Write};
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::time::Duration;
+
+use crate::refs::{parse_jsonl, parse_plain, InputError, RefSet};
+
+/// Name used for standard input in messages.
+pub const STDIN_NAME: &str = "<stdin>";
+/// Inputs with at least this many segments get a progress bar (when stderr is a terminal).
+pub const PROGRESS_MIN_SEGMENTS: usize = 20_000;
+/// How often the progress bar is redrawn.
+const PROGRESS_INTERVAL: Duration = Duration::from_millis(200);
+
+/// Read a whole file (`-` is standard input).
+pub fn read_bytes(path: &str) -> Result<Vec<u8>, InputError> {
+    if path == "-" {
+        let mut buf = Vec::new();
+        std::io::stdin().read_to_end(&mut buf).map_err(|e| InputError::file(STDIN_NAME, format!("cannot read: {e}")))?;
+        return Ok(buf);
+    }
+    std::fs::read(path).map_err(|e| InputError::file(path, format!("cannot read: {e}")))
+}
+
+/// Display name of an input path.
+pub fn display_name(path: &str) -> &str {
+    if path == "-" {
+        STDIN_NAME
+    } else {
+        path
+    }
+}
+
+/// How `--ref` files are read.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum RefFormat {
+    /// JSONL when there is one file named *.jsonl or *.ndjson, else plain.
+    Auto,
+    /// Line-aligned plain text, one file per reference stream.
+    Plain,
+    /// One JSONL file of {"id", "source", "refs"} objects.
+    Jsonl,
+}
+
+/// Load a reference set from `--ref` files (and an optional aligned source file for plain text).
+pub fn load_refset(paths: &[String], format: RefFormat, source: Option<&str>) -> Result<RefSet, InputError> {
+    let is_jsonl_name = |p: &str| {
+        let ext = Path::new(p).extension().and_then(|e| e.to_str()).unwrap_or("");
+        ext.eq_ignore_ascii_case("jsonl") || ext.eq_ignore_ascii_case("ndjson")
+    };
+    let jsonl = match format {
+        RefFormat::Jsonl => true,
+        RefFormat::Plain => false,
+        RefFormat::Auto => paths.len() == 1 && is_jsonl_name(&paths[0]),
+    };
+    let segments = if jsonl {
+        if paths.len() != 1 {
+            return Err(InputError::file(&paths[1], "a JSONL reference set is one file; give --ref once"));
+        }
+        if let Some(s) = source {
+            return Err(InputError::file(s, "a JSONL reference set carries its sources; drop the source file"));
+        }
+        parse_jsonl(display_name(&paths[0]), &read_bytes(&paths[0])?)?
+    } else {
+        let bytes: Vec<Vec<u8>> = paths.iter().map(|p| read_bytes(p)).collect::<Result<_, _>>()?;
+        let streams: Vec<(&str, &[u8])> = paths.iter().map(|p| display_name(p)).zip(bytes.iter().map(Vec::as_slice)).collect();
+        let src = source.map(read_bytes).transpose()?;
+        parse_plain(&streams, source.zip(src.as_deref()))?
+    };
+    RefSet::new(segments).map_err(|e| InputError::file(&paths[0], e.to_string()))
+}
+
+/// A progress line on stderr, redrawn from a background thread while work runs.
+pub struct Progress<'a> {
+    done: &'a AtomicUsize,
+    total: usize,
+    stop: AtomicBool,
+}
+
+impl<'a> Progress<'a> {
+    /// Progress over `total` units counted in `done`.
+    pub fn new(done: &'a AtomicUsize, total: usize) -> Self {
+        Progress { done, total, stop: AtomicBool::new(false) }
+    }
+
+    /// Run `work` while drawing progress when `show` is set.
+    pub fn run<T: Send>(&self, show: bool, label: &str, work: impl FnOnce() -> T + Send) -> T {
+        if !show {
+            return work();
+        }
+        std::thread::scope(|s| {
+            s.spawn(|| {
+                while !self.stop.load(Ordering::Relaxed) {
+                    self.draw(label);
+                    std::thread::sleep(PROGRESS_INTERVAL);
+                }
+                self.draw(label);
+                eprintln!();
+            });
+            let out = work();
+            self.stop.store(true, Ordering::Relaxed);
+            out
+        })
+    }
+
+    fn draw(&self, label: &str) {
+        const WIDTH: usize = 30;
+        let done = self.done.load(Ordering::Relaxed).min(self.total);
+        let filled = if self.total == 0 { WIDTH } else { done * WIDTH / self.total };
+        let bar: String = "#".repeat(filled) + &"-".repeat(WIDTH - filled);
+        let mut err = std::io::stderr().lock();
+        let _ = write!(err, "\r{label} [{bar}] {done}/{}", self.total);
+        let _ = err.flush();
+    }
+}

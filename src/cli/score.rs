@@ -1,0 +1,146 @@
+//! `mtgauge score`: offline corpus scoring of one hypothesis file.
+
+use std::io::Write;
+use std::sync::atomic::AtomicUsize;
+use std::sync::Arc;
+
+use clap::Args;
+use serde_json::{json, Value};
+
+use super::input::{display_name, load_refset, read_bytes, Progress, RefFormat, PROGRESS_MIN_SEGMENTS};
+use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
+use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
+use crate::refs::compiled::Compiled;
+use crate::refs::{check_same_length, split_lines, RefSet};
+use crate::report::{config_json, refset_json, segment_json, stats_json, stats_lines, PROXY_NOTE};
+
+pub(super) const LONG_ABOUT: &str = "\
+Score a hypothesis file against reference files, offline.
+
+References are line-aligned plain text (one --ref per reference stream; segment id = line number \
+from 1) or one JSONL file of {\"id\": ..., \"source\": ..., \"refs\": [...]} objects (line i of the \
+hypothesis file is then scored against record i). Lines end with \\n (a \\r before it is dropped).
+
+Examples:
+  mtgauge score --ref ref1.de.txt --ref ref2.de.txt --hyp hyp.de.txt
+  mtgauge score --ref refs.jsonl --hyp - --metrics bleu,chrf++ --json < hyp.de.txt
+  mtgauge score --ref ref.txt --hyp hyp.txt --per-segment segments.jsonl --smoothing plus-one
+
+Corpus BLEU is computed from summed statistics (clipped n-gram matches and totals, hypothesis \
+length, effective reference length), never averaged over sentences; chrF from summed per-order \
+statistics. Errors (unreadable file, invalid UTF-8, line-count mismatch, malformed JSONL) print \
+one line naming the file and line, exit with code 2, and print nothing on stdout.";
+
+/// Arguments of `mtgauge score`.
+#[derive(Debug, Args)]
+pub struct ScoreArgs {
+    /// Reference file: repeat for several reference streams, or give one .jsonl file.
+    #[arg(long = "ref", value_name = "FILE", required = true)]
+    pub refs: Vec<String>,
+    /// Hypothesis file, one segment per line; `-` reads standard input.
+    #[arg(long, value_name = "FILE")]
+    pub hyp: String,
+    /// How to read --ref files.
+    #[arg(long, value_enum, default_value_t = RefFormat::Auto, value_name = "FORMAT")]
+    pub ref_format: RefFormat,
+    #[command(flatten)]
+    pub scoring: ScoringArgs,
+    /// Print one JSON object instead of the table.
+    #[arg(long)]
+    pub json: bool,
+    /// Also write per-segment statistics and sentence scores as JSONL to FILE.
+    #[arg(long, value_name = "FILE")]
+    pub per_segment: Option<String>,
+    /// Scoring threads (default: the number of CPUs). Results never depend on it.
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+}
+
+/// The outcome of scoring a file: the compiled references and per-segment statistics.
+pub struct Scored {
+    /// The reference set.
+    pub refs: Arc<RefSet>,
+    /// The configuration used.
+    pub config: ScoreConfig,
+    /// Per-segment statistics, in segment order.
+    pub segments: Vec<SegmentStats>,
+}
+
+impl Scored {
+    /// Summed statistics.
+    pub fn corpus(&self) -> CorpusStats {
+        let mut c = CorpusStats::default();
+        for s in &self.segments {
+            c.add_segment(s);
+        }
+        c
+    }
+}
+
+/// Score aligned hypotheses against a reference set (what `score` does after reading files).
+pub fn score_lines(refs: Arc<RefSet>, config: ScoreConfig, hyps: &[&str], threads: usize, show_progress: bool) -> Scored {
+    let compiled = Compiled::build(Arc::clone(&refs), config);
+    let done = AtomicUsize::new(0);
+    let progress = Progress::new(&done, hyps.len());
+    let segments = progress.run(show_progress, "scoring", || compiled.score_aligned(hyps, threads, &done));
+    Scored { refs, config, segments }
+}
+
+pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
+    let config = a.scoring.config()?;
+    if a.threads == Some(0) {
+        return Err(CliError::Usage("--threads must be at least 1".into()));
+    }
+    let refs = Arc::new(load_refset(&a.refs, a.ref_format, None)?);
+    let hyp_name = display_name(&a.hyp);
+    let hyp_bytes = read_bytes(&a.hyp)?;
+    let hyps = split_lines(hyp_name, &hyp_bytes)?;
+    check_same_length(hyp_name, hyps.len(), display_name(&a.refs[0]), refs.len())?;
+    let show = stderr_is_terminal() && hyps.len() >= PROGRESS_MIN_SEGMENTS;
+    let scored = score_lines(Arc::clone(&refs), config, &hyps, a.threads.unwrap_or_else(default_threads), show);
+
+    if let Some(path) = &a.per_segment {
+        write_per_segment(path, &scored)?;
+    }
+    let corpus = scored.corpus();
+    let out = if a.json {
+        let mut m = stats_json(&corpus, &config);
+        m.insert("refset".into(), refset_json(None, &refs));
+        m.insert("config".into(), config_json(&config));
+        m.insert("note".into(), json!(PROXY_NOTE));
+        serde_json::to_string_pretty(&Value::Object(m)).unwrap_or_default() + "\n"
+    } else {
+        human(&corpus, &config, &refs)
+    };
+    let mut stdout = std::io::stdout().lock();
+    stdout
+        .write_all(out.as_bytes())
+        .and_then(|_| stdout.flush())
+        .map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+fn write_per_segment(path: &str, scored: &Scored) -> Result<(), CliError> {
+    let err = |e| CliError::Output { what: path.to_owned(), source: e };
+    let file = std::fs::File::create(path).map_err(err)?;
+    let mut w = std::io::BufWriter::new(file);
+    for (seg, stats) in scored.refs.segments().zip(&scored.segments) {
+        let line = segment_json(seg.id(), stats, &scored.config).to_string();
+        writeln!(w, "{line}").map_err(err)?;
+    }
+    w.flush().map_err(err)
+}
+
+fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSet) -> String {
+    let per = refs.reference_count() as f64 / refs.len().max(1) as f64;
+    let digest = refs.digest_hex();
+    let mut lines = vec![format!(
+        "mtgauge score: {} segments, {:.2} references per segment, references {}",
+        corpus.segments,
+        per,
+        &digest[..16]
+    )];
+    lines.extend(stats_lines(corpus, config, "  "));
+    lines.push(format!("  config  {}", config.describe()));
+    lines.push(PROXY_NOTE.to_owned());
+    lines.join("\n") + "\n"
+}

@@ -1,0 +1,278 @@
+//! Reference sets: segments with an id, an optional source and one or more references.
+//!
+//! A [`RefSet`] holds the texts compactly (one string arena, offsets) and a content digest
+//! (SHA-256 over a canonical encoding) so that replicas and sessions can prove they score against
+//! the same references. [`compiled::Compiled`] turns a set into the tables the scoring hot path
+//! uses for one tokenizer configuration.
+
+pub mod compiled;
+mod parse;
+
+use std::collections::HashMap;
+use std::fmt;
+
+use sha2::{Digest, Sha256};
+
+pub use parse::{check_same_length, parse_jsonl, parse_plain, split_lines, InputError};
+
+/// Prefix of the canonical encoding hashed into a reference set's digest; bump the version when
+/// the encoding changes.
+const DIGEST_DOMAIN: &[u8] = b"mtgauge refset v1\n";
+
+/// One segment as given by a parser.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SegmentInput {
+    /// Segment id, unique within the set.
+    pub id: String,
+    /// Source text, when known.
+    pub source: Option<String>,
+    /// References (one or more; an empty string is an allowed, empty reference).
+    pub refs: Vec<String>,
+}
+
+/// Why a set of segments is not a valid reference set.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum RefSetError {
+    /// Two segments share an id.
+    #[error("duplicate segment id '{id}' (segments {first} and {second})")]
+    DuplicateId {
+        /// The id.
+        id: String,
+        /// 1-based position of the first segment with it.
+        first: usize,
+        /// 1-based position of the second.
+        second: usize,
+    },
+    /// A segment without any reference.
+    #[error("segment '{0}' has no reference")]
+    NoReference(String),
+    /// An empty id.
+    #[error("segment {0} has an empty id")]
+    EmptyId(usize),
+    /// Larger than the arena's 32-bit offsets allow.
+    #[error("reference set too large ({0} bytes of text; at most 4 GiB)")]
+    TooLarge(usize),
+}
+
+/// A reference set in memory.
+#[derive(Clone)]
+pub struct RefSet {
+    /// All texts, concatenated.
+    arena: String,
+    /// End offset in `arena` of every field; a segment's fields are its id, its source (empty
+    /// when absent), then its references.
+    ends: Vec<u32>,
+    /// Index into `ends` of each segment's first field, plus one final entry.
+    first_field: Vec<u32>,
+    /// Whether each segment has a source.
+    has_source: Vec<bool>,
+    /// Segment index by id.
+    by_id: HashMap<Box<str>, u32>,
+    digest: [u8; 32],
+}
+
+/// A view of one segment of a [`RefSet`].
+#[derive(Debug, Clone, Copy)]
+pub struct Segment<'a> {
+    set: &'a RefSet,
+    index: usize,
+}
+
+impl<'a> Segment<'a> {
+    fn field(&self, k: usize) -> &'a str {
+        let f = self.set.first_field[self.index] as usize + k;
+        let start = if f == 0 { 0 } else { self.set.ends[f - 1] as usize };
+        &self.set.arena[start..self.set.ends[f] as usize]
+    }
+    /// Position of the segment in its set (0-based).
+    pub fn index(&self) -> usize {
+        self.index
+    }
+    /// Segment id.
+    pub fn id(&self) -> &'a str {
+        self.field(0)
+    }
+    /// Source text, when known.
+    pub fn source(&self) -> Option<&'a str> {
+        self.set.has_source[self.index].then(|| self.field(1))
+    }
+    /// Number of references.
+    pub fn ref_count(&self) -> usize {
+        (self.set.first_field[self.index + 1] - self.set.first_field[self.index]) as usize - 2
+    }
+    /// Reference `k`.
+    pub fn reference(&self, k: usize) -> &'a str {
+        self.field(2 + k)
+    }
+    /// All references.
+    pub fn refs(&self) -> impl ExactSizeIterator<Item = &'a str> + 'a {
+        let s = *self;
+        (0..s.ref_count()).map(move |k| s.reference(k))
+    }
+}
+
+impl RefSet {
+    /// Build a set, checking ids and references.
+    pub fn new(segments: impl IntoIterator<Item = SegmentInput>) -> Result<RefSet, RefSetError> {
+        let mut set = RefSet {
+            arena: String::new(),
+            ends: Vec::new(),
+            first_field: vec![0],
+            has_source: Vec::new(),
+            by_id: HashMap::new(),
+            digest: [0; 32],
+        };
+        let mut hasher = Sha256::new();
+        hasher.update(DIGEST_DOMAIN);
+        for (i, seg) in segments.into_iter().enumerate() {
+            if seg.id.is_empty() {
+                return Err(RefSetError::EmptyId(i + 1));
+            }
+            if seg.refs.is_empty() {
+                return Err(RefSetError::NoReference(seg.id));
+            }
+            if let Some(&first) = set.by_id.get(seg.id.as_str()) {
+                return Err(RefSetError::DuplicateId { id: seg.id, first: first as usize + 1, second: i + 1 });
+            }
+            set.by_id.insert(seg.id.as_str().into(), i as u32);
+            hash_field(&mut hasher, seg.id.as_bytes());
+            match &seg.source {
+                Some(s) => {
+                    hasher.update([1u8]);
+                    hash_field(&mut hasher, s.as_bytes());
+                }
+                None => hasher.update([0u8]),
+            }
+            hasher.update((seg.refs.len() as u64).to_le_bytes());
+            set.push_field(&seg.id)?;
+            set.push_field(seg.source.as_deref().unwrap_or(""))?;
+            set.has_source.push(seg.source.is_some());
+            for r in &seg.refs {
+                hash_field(&mut hasher, r.as_bytes());
+                set.push_field(r)?;
+            }
+            set.first_field.push(set.ends.len() as u32);
+        }
+        set.digest = hasher.finalize().into();
+        set.arena.shrink_to_fit();
+        set.ends.shrink_to_fit();
+        Ok(set)
+    }
+
+    fn push_field(&mut self, s: &str) -> Result<(), RefSetError> {
+        self.arena.push_str(s);
+        let end = u32::try_from(self.arena.len()).map_err(|_| RefSetError::TooLarge(self.arena.len()))?;
+        self.ends.push(end);
+        Ok(())
+    }
+
+    /// Number of segments.
+    pub fn len(&self) -> usize {
+        self.has_source.len()
+    }
+
+    /// True for a set without segments.
+    pub fn is_empty(&self) -> bool {
+        self.has_source.is_empty()
+    }
+
+    /// Segment `i` (0-based). Panics when out of range, like slice indexing.
+    pub fn segment(&self, i: usize) -> Segment<'_> {
+        assert!(i < self.len(), "segment index {i} out of range");
+        Segment { set: self, index: i }
+    }
+
+    /// All segments in order.
+    pub fn segments(&self) -> impl ExactSizeIterator<Item = Segment<'_>> + '_ {
+        (0..self.len()).map(move |i| Segment { set: self, index: i })
+    }
+
+    /// Index of the segment with `id`.
+    pub fn find(&self, id: &str) -> Option<usize> {
+        self.by_id.get(id).map(|&i| i as usize)
+    }
+
+    /// Total number of references over all segments.
+    pub fn reference_count(&self) -> usize {
+        self.ends.len() - 2 * self.len()
+    }
+
+    /// SHA-256 of the canonical encoding (domain tag, then per segment: id, source flag and
+    /// source, reference count, references; strings length-prefixed as 64-bit little endian).
+    pub fn digest(&self) -> [u8; 32] {
+        self.digest
+    }
+
+    /// The digest as lowercase hex.
+    pub fn digest_hex(&self) -> String {
+        self.digest.iter().map(|b| format!("{b:02x}")).collect()
+    }
+
+    /// Approximate heap bytes held by the set.
+    pub fn memory_bytes(&self) -> usize {
+        self.arena.capacity()
+            + self.ends.capacity() * 4
+            + self.first_field.capacity() * 4
+            + self.has_source.capacity()
+            + self.by_id.capacity() * (std::mem::size_of::<(Box<str>, u32)>() + 1)
+            + self.by_id.keys().map(|k| k.len()).sum::<usize>()
+    }
+}
+
+impl fmt::Debug for RefSet {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("RefSet")
+            .field("segments", &self.len())
+            .field("references", &self.reference_count())
+            .field("digest", &self.digest_hex())
+            .finish()
+    }
+}
+
+fn hash_field(h: &mut Sha256, bytes: &[u8]) {
+    h.update((bytes.len() as u64).to_le_bytes());
+    h.update(bytes);
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn seg(id: &str, src: Option<&str>, refs: &[&str]) -> SegmentInput {
+        SegmentInput { id: id.into(), source: src.map(Into::into), refs: refs.iter().map(|s| s.to_string()).collect() }
+    }
+
+    #[test]
+    fn fields_round_trip() {
+        let set = RefSet::new([seg("a", Some("src"), &["r1", ""]), seg("b", None, &["x y"])]).unwrap();
+        assert_eq!(set.len(), 2);
+        assert_eq!(set.reference_count(), 3);
+        let a = set.segment(0);
+        assert_eq!((a.id(), a.source(), a.refs().collect::<Vec<_>>()), ("a", Some("src"), vec!["r1", ""]));
+        let b = set.segment(1);
+        assert_eq!((b.id(), b.source(), b.ref_count()), ("b", None, 1));
+        assert_eq!(set.find("b"), Some(1));
+        assert_eq!(set.find("c"), None);
+    }
+
+    #[test]
+    fn invalid_sets_are_refused() {
+        assert!(matches!(RefSet::new([seg("a", None, &["x"]), seg("a", None, &["y"])]), Err(RefSetError::DuplicateId { .. })));
+        assert!(matches!(RefSet::new([seg("a", None, &[])]), Err(RefSetError::NoReference(_))));
+        assert!(matches!(RefSet::new([seg("", None, &["x"])]), Err(RefSetError::EmptyId(1))));
+    }
+
+    #[test]
+    fn digest_depends_on_every_field_and_boundary() {
+        let base = RefSet::new([seg("a", None, &["xy", "z"])]).unwrap().digest();
+        for other in [
+            vec![seg("a", None, &["x", "yz"])],
+            vec![seg("a", Some(""), &["xy", "z"])],
+            vec![seg("b", None, &["xy", "z"])],
+            vec![seg("a", None, &["xy"]), seg("z", None, &["z"])],
+        ] {
+            assert_ne!(RefSet::new(other).unwrap().digest(), base);
+        }
+        assert_eq!(RefSet::new([seg("a", None, &["xy", "z"])]).unwrap().digest(), base);
+    }
+}

@@ -1,0 +1,316 @@
+//! Text normalisation and tokenizers.
+//!
+//! Every tokenizer turns any valid UTF-8 string into a list of tokens (never panics) and can work
+//! inside a reusable [`TokenBuf`], so the scoring hot path does not allocate a `String` per token.
+//!
+//! | name           | rule |
+//! |----------------|------|
+//! | `whitespace`   | split on white space only |
+//! | `nist`         | the NIST mteval "western" rules (default) |
+//! | `nist-unicode` | the NIST "international" rules over Unicode punctuation, symbol and number classes |
+//! | `cjk`          | every CJK ideograph, kana, hangul syllable and CJK punctuation mark a token, the rest as `nist` |
+//! | `characters`   | every non-space character a token |
+//!
+//! White space, everywhere in mtgauge, is the Unicode `White_Space` property plus the ASCII
+//! information separators U+001C..U+001F (the characters Python's `str.split()` splits on, which is
+//! what the outside reference implementation of the NIST rules uses).
+
+mod nist;
+
+use std::fmt;
+use std::str::FromStr;
+
+pub use nist::{nist_international, nist_western};
+
+/// The tokenizer used when none is named.
+pub const DEFAULT_TOKENIZER: Tokenizer = Tokenizer::Nist;
+
+/// A tokenizer, selected by name on the command line and in session definitions.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize)]
+#[serde(into = "String", try_from = "String")]
+pub enum Tokenizer {
+    /// Split on white space only.
+    Whitespace,
+    /// NIST mteval "western" rules.
+    Nist,
+    /// NIST "international" rules over Unicode classes.
+    NistUnicode,
+    /// CJK characters one token each, the rest as `nist`.
+    Cjk,
+    /// Every non-space character a token.
+    Characters,
+}
+
+impl Tokenizer {
+    /// All tokenizers, in the order `--help` lists them.
+    pub const ALL: [Tokenizer; 5] = [
+        Tokenizer::Whitespace,
+        Tokenizer::Nist,
+        Tokenizer::NistUnicode,
+        Tokenizer::Cjk,
+        Tokenizer::Characters,
+    ];
+
+    /// The name used on the command line, in JSON output and in session definitions.
+    pub fn name(self) -> &'static str {
+        match self {
+            Tokenizer::Whitespace => "whitespace",
+            Tokenizer::Nist => "nist",
+            Tokenizer::NistUnicode => "nist-unicode",
+            Tokenizer::Cjk => "cjk",
+            Tokenizer::Characters => "characters",
+        }
+    }
+
+    /// Tokenize `text` into `buf` (its previous content is replaced). Read the tokens with
+    /// [`TokenBuf::tokens`].
+    pub fn tokenize_into(self, text: &str, lowercase: bool, buf: &mut TokenBuf) {
+        buf.spans.clear();
+        match self {
+            Tokenizer::Whitespace => {
+                buf.text.clear();
+                push_lowercased(text, lowercase, &mut buf.text);
+                buf.split_on_space();
+            }
+            Tokenizer::Nist => {
+                nist_western(text, lowercase, &mut buf.text, &mut buf.scratch);
+                buf.split_on_space();
+            }
+            Tokenizer::NistUnicode => {
+                nist_international(text, lowercase, &mut buf.text, &mut buf.scratch);
+                buf.split_on_space();
+            }
+            Tokenizer::Cjk => {
+                let mut spaced = std::mem::take(&mut buf.cjk);
+                spaced.clear();
+                pad_chars(text, is_cjk, &mut spaced);
+                nist_western(&spaced, lowercase, &mut buf.text, &mut buf.scratch);
+                buf.cjk = spaced;
+                buf.split_on_space();
+            }
+            Tokenizer::Characters => {
+                buf.text.clear();
+                push_lowercased(text, lowercase, &mut buf.text);
+                for (i, c) in buf.text.char_indices() {
+                    if !is_space(c) {
+                        buf.spans.push((i as u32, (i + c.len_utf8()) as u32));
+                    }
+                }
+            }
+        }
+    }
+
+    /// Tokenize into owned strings (convenient for tests and the `tokenize` command; the scoring
+    /// path uses [`Tokenizer::tokenize_into`]).
+    pub fn tokenize(self, text: &str, lowercase: bool) -> Vec<String> {
+        let mut buf = TokenBuf::default();
+        self.tokenize_into(text, lowercase, &mut buf);
+        buf.tokens().map(str::to_owned).collect()
+    }
+}
+
+impl fmt::Display for Tokenizer {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+/// An unknown tokenizer name.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[error("unknown tokenizer '{0}' (choose one of: whitespace, nist, nist-unicode, cjk, characters)")]
+pub struct UnknownTokenizer(pub String);
+
+impl FromStr for Tokenizer {
+    type Err = UnknownTokenizer;
+    fn from_str(s: &str) -> Result<Self, Self::Err> {
+        Tokenizer::ALL
+            .into_iter()
+            .find(|t| t.name() == s)
+            .ok_or_else(|| UnknownTokenizer(s.to_owned()))
+    }
+}
+
+impl From<Tokenizer> for String {
+    fn from(t: Tokenizer) -> String {
+        t.name().to_owned()
+    }
+}
+
+impl TryFrom<String> for Tokenizer {
+    type Error = UnknownTokenizer;
+    fn try_from(s: String) -> Result<Self, Self::Error> {
+        s.parse()
+    }
+}
+
+/// Reusable buffers for tokenization: the normalised text and the byte spans of its tokens.
+#[derive(Debug, Default, Clone)]
+pub struct TokenBuf {
+    text: String,
+    scratch: String,
+    cjk: String,
+    spans: Vec<(u32, u32)>,
+}
+
+impl TokenBuf {
+    /// The tokens of the last [`Tokenizer::tokenize_into`] call.
+    pub fn tokens(&self) -> impl ExactSizeIterator<Item = &str> + '_ {
+        self.spans.iter().map(move |&(a, b)| &self.text[a as usize..b as usize])
+    }
+
+    /// Number of tokens of the last call.
+    pub fn len(&self) -> usize {
+        self.spans.len()
+    }
+
+    /// True when the last call produced no token.
+    pub fn is_empty(&self) -> bool {
+        self.spans.is_empty()
+    }
+
+    fn split_on_space(&mut self) {
+        let mut start: Option<usize> = None;
+        for (i, c) in self.text.char_indices() {
+            if is_space(c) {
+                if let Some(s) = start.take() {
+                    self.spans.push((s as u32, i as u32));
+                }
+            } else if start.is_none() {
+                start = Some(i);
+            }
+        }
+        if let Some(s) = start {
+            self.spans.push((s as u32, self.text.len() as u32));
+        }
+    }
+}
+
+/// White space as mtgauge understands it: Unicode `White_Space` plus U+001C..U+001F.
+#[inline]
+pub fn is_space(c: char) -> bool {
+    if c.is_ascii() {
+        matches!(c, ' ' | '\t' | '\n' | '\u{0B}' | '\u{0C}' | '\r' | '\u{1C}'..='\u{1F}')
+    } else {
+        c.is_whitespace()
+    }
+}
+
+/// Append `text` to `out`, lowercased (Unicode full case mapping) when `lowercase` is set.
+pub fn push_lowercased(text: &str, lowercase: bool, out: &mut String) {
+    if !lowercase {
+        out.push_str(text);
+    } else if text.is_ascii() {
+        let start = out.len();
+        out.push_str(text);
+        out[start..].make_ascii_lowercase();
+    } else {
+        out.push_str(&text.to_lowercase());
+    }
+}
+
+/// Lowercase `text` when asked, borrowing it unchanged otherwise.
+pub fn lowercased(text: &str, lowercase: bool) -> std::borrow::Cow<'_, str> {
+    if lowercase && text.chars().any(|c| c.is_uppercase() || !c.is_ascii()) {
+        std::borrow::Cow::Owned(text.to_lowercase())
+    } else {
+        std::borrow::Cow::Borrowed(text)
+    }
+}
+
+/// Copy `text` into `out`, surrounding every character for which `pred` holds with spaces.
+fn pad_chars(text: &str, pred: impl Fn(char) -> bool, out: &mut String) {
+    for c in text.chars() {
+        if pred(c) {
+            out.push(' ');
+            out.push(c);
+            out.push(' ');
+        } else {
+            out.push(c);
+        }
+    }
+}
+
+/// CJK ideographs (unified, extensions and compatibility), kana, hangul syllables and CJK /
+/// full-width punctuation: the characters the `cjk` tokenizer makes tokens of their own.
+pub fn is_cjk(c: char) -> bool {
+    matches!(c as u32,
+        0x3000..=0x303F     // CJK symbols and punctuation
+        | 0x3040..=0x30FF   // hiragana, katakana
+        | 0x31F0..=0x31FF   // katakana phonetic extensions
+        | 0x3400..=0x4DBF   // CJK extension A
+        | 0x4E00..=0x9FFF   // CJK unified ideographs
+        | 0xAC00..=0xD7A3   // hangul syllables
+        | 0xF900..=0xFAFF   // CJK compatibility ideographs
+        | 0xFF01..=0xFF0F   // full-width punctuation
+        | 0xFF1A..=0xFF20
+        | 0xFF3B..=0xFF40
+        | 0xFF5B..=0xFF65
+        | 0xFF66..=0xFF9F   // half-width katakana
+        | 0x20000..=0x3134F // CJK extensions B..G
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use proptest::prelude::*;
+
+    #[test]
+    fn names_round_trip() {
+        for t in Tokenizer::ALL {
+            assert_eq!(t.name().parse::<Tokenizer>().unwrap(), t);
+        }
+        assert!("moses".parse::<Tokenizer>().is_err());
+    }
+
+    #[test]
+    fn whitespace_splits_on_unicode_space() {
+        let toks = Tokenizer::Whitespace.tokenize("a\u{3000}b\u{A0}c \t d\u{1F}e", false);
+        assert_eq!(toks, ["a", "b", "c", "d", "e"]);
+    }
+
+    #[test]
+    fn characters_skips_space_and_lowercases() {
+        assert_eq!(Tokenizer::Characters.tokenize("Ab c", true), ["a", "b", "c"]);
+    }
+
+    #[test]
+    fn cjk_splits_ideographs_and_keeps_latin_words() {
+        let toks = Tokenizer::Cjk.tokenize("渡轮14:30出发, ferry late.", false);
+        assert_eq!(toks, ["渡", "轮", "14", ":", "30", "出", "发", ",", "ferry", "late", "."]);
+    }
+
+    #[test]
+    fn lowercase_is_unicode_aware() {
+        assert_eq!(Tokenizer::Whitespace.tokenize("ÄRGER ΟΔΟΣ", true), ["ärger", "οδος"]);
+    }
+
+    proptest! {
+        #[test]
+        fn no_tokenizer_panics_and_tokens_are_clean(s in "\\PC*", lower in any::<bool>()) {
+            for t in Tokenizer::ALL {
+                for tok in t.tokenize(&s, lower) {
+                    prop_assert!(!tok.is_empty());
+                    prop_assert!(!tok.chars().any(is_space));
+                }
+            }
+        }
+
+        #[test]
+        fn whitespace_tokens_rejoin_to_the_text(words in proptest::collection::vec("[a-zA-Z0-9.,;]{1,8}", 0..20)) {
+            let text = words.join("  ");
+            prop_assert_eq!(Tokenizer::Whitespace.tokenize(&text, false), words);
+        }
+
+        #[test]
+        fn reusing_a_buffer_gives_the_same_tokens(a in "\\PC*", b in "\\PC*") {
+            let mut buf = TokenBuf::default();
+            for t in Tokenizer::ALL {
+                t.tokenize_into(&a, false, &mut buf);
+                t.tokenize_into(&b, true, &mut buf);
+                let reused: Vec<String> = buf.tokens().map(str::to_owned).collect();
+                prop_assert_eq!(reused, t.tokenize(&b, true));
+            }
+        }
+    }
+}
