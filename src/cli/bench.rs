@@ -178,9 +178,7 @@ fn config(metrics: &str, tokenizer: Tokenizer) -> ScoreConfig {
 /// Throughput of `compiled` over the corpus on `threads` threads; (segments/s, corpus stats).
 fn throughput(compiled: &Compiled, hyps: &[&str], threads: usize) -> (f64, crate::metric::CorpusStats) {
     let done = AtomicUsize::new(0);
-    let (segs, secs) = time(|| compiled.score_aligned(hyps, threads, &done));
-    let mut corpus = crate::metric::CorpusStats::default();
-    segs.iter().for_each(|s| corpus.add_segment(s));
+    let (corpus, secs) = time(|| compiled.score_corpus(hyps, threads, &done));
     (hyps.len() as f64 / secs, corpus)
 }
 

@@ -88,6 +88,80 @@ pub fn clipped_matches<T: Ord + Default>(n: usize, a: &[T], a_sorted: &[u32], b:
     matches
 }
 
+/// Largest order whose n-grams of `u32` ids are packed into one `u128` key.
+pub const PACKED_ORDER: usize = 4;
+
+/// The `PACKED_ORDER` ids starting at `p` as one key, first id in the highest bits. `seq` must
+/// hold `PACKED_ORDER` items from `p` (padding zeros after the sequence). Keys sort like the
+/// id slices they pack, and the n-gram of order n is `key >> (32 * (PACKED_ORDER - n))`.
+#[inline]
+pub fn pack4(seq: &[u32], p: usize) -> u128 {
+    let s = &seq[p..p + PACKED_ORDER];
+    (s[0] as u128) << 96 | (s[1] as u128) << 64 | (s[2] as u128) << 32 | s[3] as u128
+}
+
+/// [`clipped_matches`] for every order 1..=`tables.len()` (at most [`PACKED_ORDER`]) at once,
+/// with the hypothesis given as its sorted packed keys (one per position, see [`pack4`]) and
+/// `tables[n - 1]` listing the positions of the complete n-grams of `b`, sorted (as the clipping
+/// tables do). `g` is scratch space. Writes `out[n - 1]`.
+///
+/// Each order is a multiset intersection by a branch-free merge: an equal pair counts once and
+/// advances both sides, so a value present ca and cb times counts min(ca, cb). Incomplete
+/// hypothesis n-grams stay in `a_keys`: they end in a zero id and so never equal a reference
+/// n-gram.
+pub fn clipped_matches_packed(a_keys: &[u128], b: &[u32], tables: &[&[u32]], g: &mut PackedScratch, out: &mut [u64]) {
+    let orders = tables.len();
+    assert!(orders <= PACKED_ORDER && out.len() >= orders);
+    // Keys of each order in the narrowest integer that holds them (one id: u32, two: u64),
+    // gathered first (independent loads that pipeline), then merged as plain arrays.
+    if orders >= 1 {
+        g.a1.clear();
+        g.a1.extend(a_keys.iter().map(|&k| (k >> 96) as u32));
+        g.b1.clear();
+        g.b1.extend(tables[0].iter().map(|&p| b[p as usize]));
+        out[0] = merge_count(&g.a1, &g.b1);
+    }
+    if orders >= 2 {
+        g.a2.clear();
+        g.a2.extend(a_keys.iter().map(|&k| (k >> 64) as u64));
+        g.b2.clear();
+        g.b2.extend(tables[1].iter().map(|&p| (b[p as usize] as u64) << 32 | b[p as usize + 1] as u64));
+        out[1] = merge_count(&g.a2, &g.b2);
+    }
+    for n in 3..=orders {
+        let drop = 32 * (PACKED_ORDER - n) as u32;
+        g.a3.clear();
+        g.a3.extend(a_keys.iter().map(|&k| k >> drop));
+        g.b3.clear();
+        g.b3.extend(tables[n - 1].iter().map(|&p| pack4(b, p as usize) >> drop));
+        out[n - 1] = merge_count(&g.a3, &g.b3);
+    }
+}
+
+/// Reusable buffers of [`clipped_matches_packed`].
+#[derive(Default)]
+pub struct PackedScratch {
+    a1: Vec<u32>,
+    b1: Vec<u32>,
+    a2: Vec<u64>,
+    b2: Vec<u64>,
+    a3: Vec<u128>,
+    b3: Vec<u128>,
+}
+
+/// Multiset intersection size of two sorted lists, branch-free.
+#[inline]
+fn merge_count<T: Ord + Copy>(a: &[T], b: &[T]) -> u64 {
+    let (mut i, mut j, mut m) = (0usize, 0usize, 0u64);
+    while i < a.len() && j < b.len() {
+        let (x, y) = (a[i], b[j]);
+        m += (x == y) as u64;
+        i += (x <= y) as usize;
+        j += (y <= x) as usize;
+    }
+    m
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -125,6 +199,30 @@ mod tests {
             sort_positions(&pb, b.len(), max, &mut sb);
             for n in 1..=max {
                 prop_assert_eq!(clipped_matches(n, &pa, &sa, &pb, &sb), naive(n, &a, &b));
+            }
+        }
+    }
+
+    proptest! {
+        #[test]
+        fn packed_merge_equals_hash_counting(a in proptest::collection::vec(1u32..6, 0..30),
+                                             b in proptest::collection::vec(1u32..6, 0..30),
+                                             orders in 1usize..=PACKED_ORDER) {
+            let (pa, pb) = (padded(&a, PACKED_ORDER), padded(&b, PACKED_ORDER));
+            let mut keys: Vec<u128> = (0..a.len()).map(|p| pack4(&pa, p)).collect();
+            keys.sort_unstable();
+            // The reference side lists complete n-grams only, sorted.
+            let tables: Vec<Vec<u32>> = (1..=orders).map(|n| {
+                let mut sb: Vec<u32> = (0..(b.len() + 1).saturating_sub(n) as u32).collect();
+                sb.sort_by_key(|&p| pack4(&pb, p as usize) >> (32 * (PACKED_ORDER - n)));
+                sb
+            }).collect();
+            let refs: Vec<&[u32]> = tables.iter().map(Vec::as_slice).collect();
+            let mut gather = PackedScratch::default();
+            let mut out = [0u64; PACKED_ORDER];
+            clipped_matches_packed(&keys, &pb, &refs, &mut gather, &mut out);
+            for n in 1..=orders {
+                prop_assert_eq!(out[n - 1], naive(n, &a, &b));
             }
         }
     }

@@ -13,40 +13,15 @@
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Arc;
 
-use rustc_hash::FxHashMap;
 
+use super::intern::Interner;
 use super::RefSet;
-use crate::metric::ngram::{clipped_matches, ngram_count, sort_positions};
-use crate::metric::{ChrfStats, OrderCounts, ScoreConfig, SegmentStats};
+use crate::metric::ngram::{clipped_matches, clipped_matches_packed, ngram_count, pack4, sort_positions, PackedScratch, PACKED_ORDER};
+use crate::metric::{ChrfStats, CorpusStats, OrderCounts, ScoreConfig, SegmentStats};
 use crate::text::{is_space, push_lowercased, TokenBuf};
 
-/// Id given to hypothesis tokens that occur in no reference: never equal to a reference id.
-const UNKNOWN: u32 = u32::MAX;
 /// Segments per unit of work when a corpus is scored on several threads.
 pub const SCORE_CHUNK: usize = 2048;
-
-/// Token interner: strings to ids from 1 (0 is the padding value of the n-gram code).
-#[derive(Default)]
-struct Interner {
-    ids: FxHashMap<Box<str>, u32>,
-}
-
-impl Interner {
-    fn intern(&mut self, tok: &str) -> u32 {
-        if let Some(&id) = self.ids.get(tok) {
-            return id;
-        }
-        let id = self.ids.len() as u32 + 1;
-        self.ids.insert(tok.into(), id);
-        id
-    }
-    fn get(&self, tok: &str) -> u32 {
-        self.ids.get(tok).copied().unwrap_or(UNKNOWN)
-    }
-    fn memory_bytes(&self) -> usize {
-        self.ids.capacity() * (std::mem::size_of::<(Box<str>, u32)>() + 1) + self.ids.keys().map(|k| k.len()).sum::<usize>()
-    }
-}
 
 /// Token-id sequences of every reference, each followed by `pad` zeros.
 #[derive(Default)]
@@ -104,6 +79,8 @@ pub struct Scratch {
     tok: TokenBuf,
     ids: Vec<u32>,
     pos: Vec<u32>,
+    keys: Vec<u128>,
+    gather: PackedScratch,
     lower: String,
     hyp_chars: Vec<u32>,
     hyp_char_pos: Vec<u32>,
@@ -136,7 +113,7 @@ impl Compiled {
 
     fn build_bleu(&mut self) -> BleuTable {
         let order = self.config.bleu_order;
-        let mut tokens = Sequences { pad: order, ..Default::default() };
+        let mut tokens = Sequences { pad: order.max(PACKED_ORDER), ..Default::default() };
         let mut buf = TokenBuf::default();
         let mut clip = Vec::new();
         let mut clip_start = Vec::with_capacity(self.refs.len() * order + 1);
@@ -147,7 +124,7 @@ impl Compiled {
             for r in seg.refs() {
                 self.config.tokenizer.tokenize_into(r, self.config.lowercase, &mut buf);
                 let interner = &mut self.tokens;
-                tokens.push(buf.tokens().map(|t| interner.intern(t)));
+                tokens.push(buf.token_bytes().map(|t| interner.intern(t)));
             }
             let seg_refs = first..tokens.start.len();
             for n in 1..=order {
@@ -182,6 +159,7 @@ impl Compiled {
         }
         clip_start.push(clip.len() as u32);
         clip.shrink_to_fit();
+        self.tokens.shrink_to_fit();
         tokens.seq.shrink_to_fit();
         BleuTable { order, tokens, clip, clip_start }
     }
@@ -195,10 +173,11 @@ impl Compiled {
                 lower.clear();
                 push_lowercased(r, self.config.lowercase, &mut lower);
                 let words = &mut self.words;
-                seqs.push(lower.split(is_space).filter(|w| !w.is_empty()).map(|w| words.intern(w)));
+                seqs.push(lower.split(is_space).filter(|w| !w.is_empty()).map(|w| words.intern(w.as_bytes())));
             }
         }
         seqs.seq.shrink_to_fit();
+        self.words.shrink_to_fit();
         seqs
     }
 
@@ -224,30 +203,54 @@ impl Compiled {
     /// Score hypothesis `hyp` against segment `seg` (0-based index; must be in range).
     pub fn score_segment(&self, seg: usize, hyp: &str, s: &mut Scratch) -> SegmentStats {
         let mut out = SegmentStats::default();
+        self.score_segment_into(seg, hyp, s, &mut out);
+        out
+    }
+
+    /// [`Compiled::score_segment`] into `out`, overwriting it: what the hot loops use, so that
+    /// the (large) statistics record is not copied per segment.
+    pub fn score_segment_into(&self, seg: usize, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
         let refs = self.seg_ref[seg] as usize..self.seg_ref[seg + 1] as usize;
-        if let Some(b) = &self.bleu {
-            self.score_bleu(b, seg, refs.clone(), hyp, s, &mut out);
+        match &self.bleu {
+            Some(b) => self.score_bleu(b, seg, refs.clone(), hyp, s, out),
+            None => out.bleu = Default::default(),
         }
         if self.config.metrics.any_chrf() {
-            self.score_chrf(seg, refs, hyp, s, &mut out);
+            self.score_chrf(seg, refs, hyp, s, out);
+        } else {
+            (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
         }
-        out
     }
 
     fn score_bleu(&self, b: &BleuTable, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
         let order = b.order;
         self.config.tokenizer.tokenize_into(hyp, self.config.lowercase, &mut s.tok);
         s.ids.clear();
-        s.ids.extend(s.tok.tokens().map(|t| self.tokens.get(t)));
+        s.ids.extend(s.tok.token_bytes().map(|t| self.tokens.get(t)));
         let len = s.ids.len();
-        s.ids.extend(std::iter::repeat(0).take(order));
-        sort_positions(&s.ids, len, order, &mut s.pos);
+        s.ids.extend(std::iter::repeat(0).take(order.max(PACKED_ORDER)));
         let st = &mut out.bleu;
-        for n in 1..=order {
+        *st = Default::default();
+        let table = |n: usize| {
             let k = seg * order + n - 1;
-            let table = &b.clip[b.clip_start[k] as usize..b.clip_start[k + 1] as usize];
-            st.totals[n - 1] = ngram_count(len, n);
-            st.matches[n - 1] = clipped_matches(n, &s.ids, &s.pos, &b.tokens.seq, table);
+            &b.clip[b.clip_start[k] as usize..b.clip_start[k + 1] as usize]
+        };
+        if order <= PACKED_ORDER {
+            // Common case: every n-gram fits one integer key; one sort serves all orders.
+            s.keys.clear();
+            s.keys.extend((0..len).map(|p| pack4(&s.ids, p)));
+            s.keys.sort_unstable();
+            let tables: [&[u32]; PACKED_ORDER] = std::array::from_fn(|k| if k < order { table(k + 1) } else { &[] });
+            clipped_matches_packed(&s.keys, &b.tokens.seq, &tables[..order], &mut s.gather, &mut st.matches);
+            for n in 1..=order {
+                st.totals[n - 1] = ngram_count(len, n);
+            }
+        } else {
+            sort_positions(&s.ids, len, order, &mut s.pos);
+            for n in 1..=order {
+                st.totals[n - 1] = ngram_count(len, n);
+                st.matches[n - 1] = clipped_matches(n, &s.ids, &s.pos, &b.tokens.seq, table(n));
+            }
         }
         st.hyp_len = len as u64;
         st.ref_len = self.config.ref_length.pick(len as u64, refs.map(|r| b.tokens.len[r] as u64));
@@ -264,12 +267,13 @@ impl Compiled {
         let mut hyp_words = 0;
         if self.word_seqs.is_some() {
             s.hyp_words.clear();
-            s.hyp_words.extend(s.lower.split(is_space).filter(|w| !w.is_empty()).map(|w| self.words.get(w)));
+            s.hyp_words.extend(s.lower.split(is_space).filter(|w| !w.is_empty()).map(|w| self.words.get(w.as_bytes())));
             hyp_words = s.hyp_words.len();
             s.hyp_words.extend(std::iter::repeat(0).take(w_order));
             sort_positions(&s.hyp_words, hyp_words, w_order, &mut s.hyp_word_pos);
         }
         let segment = self.refs.segment(seg);
+        (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
         let (mut best_c, mut best_pp) = (f64::NEG_INFINITY, f64::NEG_INFINITY);
         for (k, r) in refs.enumerate() {
             s.lower.clear();
@@ -300,6 +304,41 @@ impl Compiled {
                 }
             }
         }
+    }
+
+    /// Corpus statistics of hypotheses aligned with the segments (`hyps[i]` against segment `i`),
+    /// without keeping per-segment results; same sums as adding up [`Compiled::score_aligned`].
+    pub fn score_corpus(&self, hyps: &[&str], threads: usize, done: &AtomicUsize) -> CorpusStats {
+        assert!(hyps.len() <= self.refs.len(), "more hypotheses than segments");
+        let chunks = hyps.len().div_ceil(SCORE_CHUNK);
+        let next = AtomicUsize::new(0);
+        let work = || {
+            let mut scratch = Scratch::default();
+            let mut sum = CorpusStats::default();
+            let mut one = SegmentStats::default();
+            loop {
+                let c = next.fetch_add(1, Ordering::Relaxed);
+                if c >= chunks {
+                    break;
+                }
+                let base = c * SCORE_CHUNK;
+                let chunk = &hyps[base..(base + SCORE_CHUNK).min(hyps.len())];
+                for (i, h) in chunk.iter().enumerate() {
+                    self.score_segment_into(base + i, h, &mut scratch, &mut one);
+                    sum.add_segment(&one);
+                }
+                done.fetch_add(chunk.len(), Ordering::Relaxed);
+            }
+            sum
+        };
+        let threads = threads.clamp(1, chunks.max(1));
+        if threads == 1 {
+            return work();
+        }
+        std::thread::scope(|sc| {
+            let handles: Vec<_> = (0..threads).map(|_| sc.spawn(work)).collect();
+            handles.into_iter().map(|h| h.join().expect("scoring thread panicked")).sum()
+        })
     }
 
     /// Score hypotheses aligned with the segments (`hyps[i]` against segment `i`) on `threads`

@@ -6,6 +6,7 @@
 //! uses for one tokenizer configuration.
 
 pub mod compiled;
+mod intern;
 mod parse;
 
 use std::collections::HashMap;

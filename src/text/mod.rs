@@ -158,6 +158,12 @@ impl TokenBuf {
         self.spans.iter().map(move |&(a, b)| &self.text[a as usize..b as usize])
     }
 
+    /// The tokens of the last call as byte strings (what the interner keys on).
+    pub fn token_bytes(&self) -> impl ExactSizeIterator<Item = &[u8]> + '_ {
+        let bytes = self.text.as_bytes();
+        self.spans.iter().map(move |&(a, b)| &bytes[a as usize..b as usize])
+    }
+
     /// Number of tokens of the last call.
     pub fn len(&self) -> usize {
         self.spans.len()
@@ -169,21 +175,43 @@ impl TokenBuf {
     }
 
     fn split_on_space(&mut self) {
+        let text = self.text.as_str();
+        let bytes = text.as_bytes();
         let mut start: Option<usize> = None;
-        for (i, c) in self.text.char_indices() {
-            if is_space(c) {
+        let mut i = 0;
+        while i < bytes.len() {
+            let b = bytes[i];
+            let (space, width) = if b < 0x80 {
+                (ASCII_SPACE[b as usize], 1)
+            } else {
+                let c = text[i..].chars().next().unwrap_or(' ');
+                (c.is_whitespace(), c.len_utf8())
+            };
+            if space {
                 if let Some(s) = start.take() {
                     self.spans.push((s as u32, i as u32));
                 }
             } else if start.is_none() {
                 start = Some(i);
             }
+            i += width;
         }
         if let Some(s) = start {
-            self.spans.push((s as u32, self.text.len() as u32));
+            self.spans.push((s as u32, bytes.len() as u32));
         }
     }
 }
+
+/// [`is_space`] for the ASCII range, as a table.
+const ASCII_SPACE: [bool; 128] = {
+    let mut t = [false; 128];
+    let mut b = 0;
+    while b < 128 {
+        t[b] = matches!(b as u8, b' ' | b'\t' | b'\n' | 0x0B | 0x0C | b'\r' | 0x1C..=0x1F);
+        b += 1;
+    }
+    t
+};
 
 /// White space as mtgauge understands it: Unicode `White_Space` plus U+001C..U+001F.
 #[inline]

@@ -1,0 +1,594 @@
+//! The `mtgauge` binary end to end: `score` (JSON output, stdin, JSONL references, per-segment
+//! output, the error contract), `demo` and `--help`.
+//!
+//! Test text is invented for this file (an invented ferry scenario with made-up words such as
+//! "kel" and "vop"). Files go to a fresh directory under `std::env::temp_dir()`.
+
+use std::io::Write;
+use std::path::PathBuf;
+use std::process::{Command, Output, Stdio};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use serde_json::Value;
+
+const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
+/// Prefix of every error line (src/cli/mod.rs, `run`).
+const ERROR_PREFIX: &str = "mtgauge: error:";
+/// Exit code of a failed command (src/cli/mod.rs, `EXIT_FAILURE`).
+const EXIT_FAILURE: i32 = 2;
+
+// ---------------------------------------------------------------------------------------------
+// Helpers
+// ---------------------------------------------------------------------------------------------
+
+/// A temporary directory, removed on drop.
+struct TempDir(PathBuf);
+
+impl TempDir {
+    fn new(tag: &str) -> TempDir {
+        static NEXT: AtomicUsize = AtomicUsize::new(0);
+        let n = NEXT.fetch_add(1, Ordering::Relaxed);
+        let nanos = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_nanos());
+        let dir = std::env::temp_dir().join(format!("mtgauge-cli-{}-{tag}-{n}-{nanos}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("create temp dir");
+        TempDir(dir)
+    }
+
+    /// Write `bytes` to `name` in the directory; the path as a string.
+    fn file(&self, name: &str, bytes: impl AsRef<[u8]>) -> String {
+        let p = self.0.join(name);
+        std::fs::write(&p, bytes).expect("write test file");
+        p.to_str().expect("UTF-8 temp path").to_owned()
+    }
+
+    fn path(&self, name: &str) -> String {
+        self.0.join(name).to_str().expect("UTF-8 temp path").to_owned()
+    }
+}
+
+impl Drop for TempDir {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+fn lines(ls: &[&str]) -> String {
+    ls.iter().map(|l| format!("{l}\n")).collect()
+}
+
+fn run(args: &[&str]) -> Output {
+    run_stdin(args, None)
+}
+
+fn run_stdin(args: &[&str], stdin: Option<&[u8]>) -> Output {
+    let mut child = Command::new(BIN)
+        .args(args)
+        .stdin(if stdin.is_some() { Stdio::piped() } else { Stdio::null() })
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("run mtgauge");
+    if let Some(bytes) = stdin {
+        let mut pipe = child.stdin.take().expect("stdin pipe");
+        pipe.write_all(bytes).expect("write stdin");
+    }
+    child.wait_with_output().expect("wait for mtgauge")
+}
+
+fn text(b: &[u8]) -> String {
+    String::from_utf8_lossy(b).into_owned()
+}
+
+/// Run a command that must succeed; its stdout parsed as JSON.
+fn json_ok(args: &[&str], stdin: Option<&[u8]>) -> Value {
+    let out = run_stdin(args, stdin);
+    assert!(out.status.success(), "{args:?} failed: {}", text(&out.stderr));
+    serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("stdout is not JSON ({e}): {}", text(&out.stdout)))
+}
+
+/// A u64 array field.
+fn u64s(v: &Value) -> Vec<u64> {
+    v.as_array().unwrap_or_else(|| panic!("not an array: {v}")).iter().map(|x| x.as_u64().expect("integer")).collect()
+}
+
+fn f64_of(v: &Value) -> f64 {
+    v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
+}
+
+fn close(a: f64, b: f64) -> bool {
+    (a - b).abs() < 1e-9
+}
+
+/// The failure contract: exit code 2, nothing on stdout, one stderr line starting with the
+/// error prefix and containing every string of `mentions`.
+fn assert_fails(out: &Output, mentions: &[&str]) {
+    let err = text(&out.stderr);
+    assert_eq!(out.status.code(), Some(EXIT_FAILURE), "stderr: {err}");
+    assert!(out.stdout.is_empty(), "stdout must be empty, got {:?}", text(&out.stdout));
+    assert!(err.starts_with(ERROR_PREFIX), "stderr: {err:?}");
+    assert_eq!(err.trim_end().lines().count(), 1, "one line on stderr: {err:?}");
+    for m in mentions {
+        assert!(err.contains(m), "stderr does not mention {m:?}: {err:?}");
+    }
+}
+
+// The shared small corpus: two segments, two reference streams, tokens separated by single
+// spaces with no punctuation (so `nist` and `whitespace` tokenize alike).
+const HYP: &[&str] = &["kel ferry sails at dawn", "mind the gap vop vop"];
+const REF1: &[&str] = &["kel ferry sails at dawn today", "mind the gap"];
+const REF2: &[&str] = &["the kel boat sails at dawn", "vop mind the wide gap"];
+
+struct Corpus {
+    dir: TempDir,
+    hyp: String,
+    r1: String,
+    r2: String,
+}
+
+fn corpus(tag: &str) -> Corpus {
+    let dir = TempDir::new(tag);
+    let hyp = dir.file("hyp.txt", lines(HYP));
+    let r1 = dir.file("ref1.txt", lines(REF1));
+    let r2 = dir.file("ref2.txt", lines(REF2));
+    Corpus { dir, hyp, r1, r2 }
+}
+
+// ---------------------------------------------------------------------------------------------
+// score --json
+// ---------------------------------------------------------------------------------------------
+
+#[test]
+fn score_json_fields_and_values() {
+    let c = corpus("json");
+    let v = json_ok(&["score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp, "--json"], None);
+    assert_eq!(v["segments"], 2);
+
+    // Hand count (clipping by the largest count in any one reference, Papineni et al. 2002):
+    // segment 1, "kel ferry sails at dawn": every n-gram of orders 1-4 occurs in ref1 ->
+    //   matches = totals = [5, 4, 3, 2]; c = 5, reference lengths 6 and 6 -> r = 6.
+    // segment 2, "mind the gap vop vop": unigrams mind, the, gap match; "vop" x2 is clipped to
+    //   1 (ref2 has one) -> 4 of 5; bigrams "mind the", "the gap" -> 2 of 4; trigram
+    //   "mind the gap" (ref1) -> 1 of 3; 4-grams -> 0 of 2; c = 5, lengths 3 and 5 -> r = 5.
+    // Corpus: matches [9, 6, 4, 2], totals [10, 8, 6, 4], c = 10, r = 11.
+    let b = &v["bleu"];
+    assert_eq!(u64s(&b["matches"]), [9, 6, 4, 2]);
+    assert_eq!(u64s(&b["totals"]), [10, 8, 6, 4]);
+    assert_eq!(b["hyp_length"], 10);
+    assert_eq!(b["ref_length"], 11);
+    let precisions: Vec<f64> = b["precisions"].as_array().expect("precisions").iter().map(f64_of).collect();
+    assert_eq!(precisions.len(), 4);
+    for (p, want) in precisions.iter().zip([90.0, 75.0, 200.0 / 3.0, 50.0]) {
+        assert!(close(*p, want), "precisions {precisions:?}");
+    }
+    // BP = exp(1 - r/c) = exp(1 - 11/10) = exp(-0.1) (Papineni et al. 2002);
+    // BLEU = 100 * BP * (9/10 * 6/8 * 4/6 * 2/4)^(1/4) = 100 * exp(-0.1) * 0.225^(1/4) = 62.32...
+    let bp = (-0.1f64).exp();
+    assert!(close(f64_of(&b["brevity_penalty"]), bp), "{}", b["brevity_penalty"]);
+    let bleu = 100.0 * bp * 0.225f64.powf(0.25);
+    assert!(close(f64_of(&b["score"]), bleu), "{} vs {bleu}", b["score"]);
+    assert!((bleu - 62.32).abs() < 0.01);
+
+    // chrF: the score is the F-beta of the reported per-order counts (character orders 1-6).
+    let ch = &v["chrf"];
+    let (m, h, r) = (u64s(&ch["char"]["matches"]), u64s(&ch["char"]["hyp"]), u64s(&ch["char"]["ref"]));
+    assert_eq!((m.len(), h.len(), r.len()), (6, 6, 6));
+    // Non-space characters of the hypotheses: 19 + 16 = 35; order n has 35 - 2 (n - 1) n-grams.
+    assert_eq!(h, [35, 33, 31, 29, 27, 25]);
+    let p = m.iter().zip(&h).map(|(&m, &h)| m as f64 / h as f64).sum::<f64>() / 6.0;
+    let rc = m.iter().zip(&r).map(|(&m, &r)| m as f64 / r as f64).sum::<f64>() / 6.0;
+    let f = 100.0 * 5.0 * p * rc / (4.0 * p + rc); // beta = 2: (1 + 4) P R / (4 P + R)
+    assert!(close(f64_of(&ch["score"]), f), "{} vs {f}", ch["score"]);
+    assert!(f > 0.0 && f < 100.0);
+    assert_eq!(ch["beta"], 2.0);
+    assert!(v.get("chrf++").is_none(), "chrF++ is not a default metric");
+
+    // The configuration travels with the scores.
+    let cfg = &v["config"];
+    assert_eq!(cfg["metrics"], serde_json::json!(["bleu", "chrf"]));
+    assert_eq!(cfg["tokenizer"], "nist");
+    assert_eq!(cfg["lowercase"], false);
+    assert_eq!(cfg["bleu_order"], 4);
+    assert_eq!(cfg["ref_length"], "closest");
+    assert_eq!(cfg["smoothing"], "epsilon");
+    assert_eq!(cfg["epsilon"], 0.1);
+    assert_eq!(cfg["chrf_char_order"], 6);
+    assert_eq!(cfg["chrf_word_order"], 2);
+    assert_eq!(cfg["beta"], 2.0);
+    assert_eq!(cfg["version"], env!("CARGO_PKG_VERSION"));
+
+    let rs = &v["refset"];
+    assert_eq!(rs["segments"], 2);
+    assert_eq!(rs["references"], 4);
+    let digest = rs["digest"].as_str().expect("digest");
+    assert!(digest.len() == 64 && digest.bytes().all(|b| b.is_ascii_hexdigit()), "{digest}");
+}
+
+#[test]
+fn score_json_records_non_default_configuration() {
+    let c = corpus("config");
+    let v = json_ok(
+        &[
+            "score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp, "--json", "--tokenize", "whitespace", "--lowercase",
+            "--bleu-order", "3", "--ref-length", "shortest", "--smoothing", "plus-one", "--epsilon", "0.25",
+            "--chrf-char-order", "4", "--chrf-word-order", "1", "--chrf-beta", "1", "--metrics", "bleu,chrf++",
+        ],
+        None,
+    );
+    let cfg = &v["config"];
+    assert_eq!(cfg["metrics"], serde_json::json!(["bleu", "chrf++"]));
+    assert_eq!(cfg["tokenizer"], "whitespace");
+    assert_eq!(cfg["lowercase"], true);
+    assert_eq!(cfg["bleu_order"], 3);
+    assert_eq!(cfg["ref_length"], "shortest");
+    assert_eq!(cfg["smoothing"], "plus-one");
+    assert_eq!(cfg["epsilon"], 0.25);
+    assert_eq!(cfg["chrf_char_order"], 4);
+    assert_eq!(cfg["chrf_word_order"], 1);
+    assert_eq!(cfg["beta"], 1.0);
+    // The outputs follow the configuration: three BLEU orders, shortest lengths (6 and 3 -> 9),
+    // chrF++ with 4 character and 1 word order, no plain chrF.
+    let b = &v["bleu"];
+    assert_eq!(u64s(&b["matches"]), [9, 6, 4]);
+    assert_eq!(b["precisions"].as_array().map(Vec::len), Some(3));
+    assert_eq!(b["ref_length"], 9);
+    assert!(v.get("chrf").is_none());
+    let pp = &v["chrf++"];
+    assert_eq!(u64s(&pp["char"]["hyp"]).len(), 4);
+    // Words of the hypotheses: 5 + 5.
+    assert_eq!(u64s(&pp["word"]["hyp"]), [10]);
+}
+
+#[test]
+fn stdin_hypotheses_equal_the_file() {
+    let c = corpus("stdin");
+    let args = ["score", "--ref", &c.r1, "--ref", &c.r2, "--json", "--metrics", "bleu,chrf,chrf++", "--hyp"];
+    let from_file = json_ok(&[&args[..], &[c.hyp.as_str()]].concat(), None);
+    let from_stdin = json_ok(&[&args[..], &["-"]].concat(), Some(lines(HYP).as_bytes()));
+    assert_eq!(from_file, from_stdin);
+    assert_eq!(from_file["segments"], 2);
+}
+
+#[test]
+fn threads_do_not_change_the_output() {
+    let c = corpus("threads");
+    let base = ["score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp, "--json", "--threads"];
+    let one = json_ok(&[&base[..], &["1"]].concat(), None);
+    let four = json_ok(&[&base[..], &["4"]].concat(), None);
+    assert_eq!(one, four);
+    assert_fails(&run(&[&base[..], &["0"]].concat()), &["--threads"]);
+}
+
+#[test]
+fn human_output_shows_the_scores() {
+    let c = corpus("human");
+    let out = run(&["score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    assert!(s.contains("2 segments"), "{s}");
+    // 62.32 from the hand computation in score_json_fields_and_values.
+    assert!(s.lines().any(|l| l.trim_start().starts_with("BLEU") && l.contains("62.32")), "{s}");
+    assert!(s.lines().any(|l| l.trim_start().starts_with("chrF")), "{s}");
+}
+
+// ---------------------------------------------------------------------------------------------
+// JSONL references
+// ---------------------------------------------------------------------------------------------
+
+fn jsonl_record(id: Value, source: Option<&str>, refs: &[&str]) -> String {
+    let mut m = serde_json::Map::new();
+    m.insert("id".into(), id);
+    if let Some(s) = source {
+        m.insert("source".into(), Value::from(s));
+    }
+    m.insert("refs".into(), Value::from(refs.to_vec()));
+    Value::Object(m).to_string() + "\n"
+}
+
+#[test]
+fn jsonl_references_give_the_same_statistics_as_plain_files() {
+    let c = corpus("jsonl");
+    let metrics = ["--metrics", "bleu,chrf,chrf++", "--json"];
+    let plain = json_ok(&[&["score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp][..], &metrics].concat(), None);
+
+    // With sources and string ids: the same statistics, a different reference set digest.
+    let sources = ["The Kel ferry sails at dawn.", "Mind the gap."];
+    let with_src: String = (0..2)
+        .map(|i| jsonl_record(Value::from(format!("notice-{}", i + 1)), Some(sources[i]), &[REF1[i], REF2[i]]))
+        .collect();
+    let jsonl = c.dir.file("refs.jsonl", with_src);
+    let from_jsonl = json_ok(&[&["score", "--ref", &jsonl, "--hyp", &c.hyp][..], &metrics].concat(), None);
+    for key in ["segments", "bleu", "chrf", "chrf++", "config"] {
+        assert_eq!(from_jsonl[key], plain[key], "{key}");
+    }
+    assert_eq!(from_jsonl["refset"]["references"], 4);
+    assert_ne!(from_jsonl["refset"]["digest"], plain["refset"]["digest"]);
+
+    // Integer ids 1, 2 and no source: the very segments plain files give (ids are line numbers),
+    // so the digest is equal too. Also read with an explicit --ref-format and another extension.
+    let same: String = (0..2).map(|i| jsonl_record(Value::from(i + 1), None, &[REF1[i], REF2[i]])).collect();
+    let txt = c.dir.file("refs-as-text.txt", same);
+    let args = [&["score", "--ref", &txt, "--ref-format", "jsonl", "--hyp", &c.hyp][..], &metrics].concat();
+    let exact = json_ok(&args, None);
+    assert_eq!(exact, plain);
+}
+
+// ---------------------------------------------------------------------------------------------
+// --per-segment
+// ---------------------------------------------------------------------------------------------
+
+fn add_into(acc: &mut Vec<u64>, v: &Value) {
+    let xs = u64s(v);
+    if acc.is_empty() {
+        acc.resize(xs.len(), 0);
+    }
+    assert_eq!(acc.len(), xs.len());
+    for (a, x) in acc.iter_mut().zip(xs) {
+        *a += x;
+    }
+}
+
+#[test]
+fn per_segment_lines_sum_to_the_corpus() {
+    let dir = TempDir::new("perseg");
+    // Five segments, one of them empty, one identical to its second reference.
+    let hyp = dir.file(
+        "hyp.txt",
+        lines(&[
+            "kel ferry sails at dawn",
+            "mind the gap vop vop",
+            "",
+            "tickets at gate four please",
+            "zin tarn lok",
+        ]),
+    );
+    let r1 = dir.file(
+        "ref1.txt",
+        lines(&[
+            "kel ferry sails at dawn today",
+            "mind the gap",
+            "the kiosk is closed",
+            "tickets please at gate four",
+            "zin tarn",
+        ]),
+    );
+    let r2 = dir.file(
+        "ref2.txt",
+        lines(&[
+            "the kel boat sails at dawn",
+            "vop mind the wide gap",
+            "kiosk closed",
+            "please show tickets at gate four",
+            "zin tarn lok",
+        ]),
+    );
+    let seg_file = dir.path("segments.jsonl");
+    let corpus = json_ok(
+        &[
+            "score", "--ref", &r1, "--ref", &r2, "--hyp", &hyp, "--json", "--metrics", "bleu,chrf,chrf++", "--per-segment",
+            &seg_file,
+        ],
+        None,
+    );
+    let written = std::fs::read_to_string(&seg_file).expect("per-segment file written");
+    let segs: Vec<Value> = written.lines().map(|l| serde_json::from_str(l).expect("one JSON object per line")).collect();
+    assert_eq!(segs.len(), 5);
+    assert_eq!(corpus["segments"], 5);
+    let ids: Vec<&str> = segs.iter().map(|s| s["id"].as_str().expect("id")).collect();
+    assert_eq!(ids, ["1", "2", "3", "4", "5"]);
+
+    let (mut bm, mut bt, mut hl, mut rl) = (Vec::new(), Vec::new(), 0, 0);
+    let mut sums: Vec<Vec<u64>> = vec![Vec::new(); 8];
+    for s in &segs {
+        add_into(&mut bm, &s["bleu"]["matches"]);
+        add_into(&mut bt, &s["bleu"]["totals"]);
+        hl += s["bleu"]["hyp_length"].as_u64().expect("hyp_length");
+        rl += s["bleu"]["ref_length"].as_u64().expect("ref_length");
+        for (k, (metric, kind, field)) in [
+            ("chrf", "char", "matches"),
+            ("chrf", "char", "hyp"),
+            ("chrf", "char", "ref"),
+            ("chrf++", "char", "matches"),
+            ("chrf++", "char", "hyp"),
+            ("chrf++", "char", "ref"),
+            ("chrf++", "word", "matches"),
+            ("chrf++", "word", "ref"),
+        ]
+        .into_iter()
+        .enumerate()
+        {
+            add_into(&mut sums[k], &s[metric][kind][field]);
+        }
+        let sb = f64_of(&s["bleu"]["score"]);
+        assert!((0.0..=100.0).contains(&sb));
+    }
+    let b = &corpus["bleu"];
+    assert_eq!(bm, u64s(&b["matches"]));
+    assert_eq!(bt, u64s(&b["totals"]));
+    assert_eq!(hl, b["hyp_length"].as_u64().unwrap());
+    assert_eq!(rl, b["ref_length"].as_u64().unwrap());
+    assert_eq!(sums[0], u64s(&corpus["chrf"]["char"]["matches"]));
+    assert_eq!(sums[1], u64s(&corpus["chrf"]["char"]["hyp"]));
+    assert_eq!(sums[2], u64s(&corpus["chrf"]["char"]["ref"]));
+    assert_eq!(sums[3], u64s(&corpus["chrf++"]["char"]["matches"]));
+    assert_eq!(sums[4], u64s(&corpus["chrf++"]["char"]["hyp"]));
+    assert_eq!(sums[5], u64s(&corpus["chrf++"]["char"]["ref"]));
+    assert_eq!(sums[6], u64s(&corpus["chrf++"]["word"]["matches"]));
+    assert_eq!(sums[7], u64s(&corpus["chrf++"]["word"]["ref"]));
+
+    // Spot checks by hand. Segment 3 is empty: nothing counted on the hypothesis side, sentence
+    // scores 0; its effective reference length is the closer of 4 and 2 tokens to 0 -> 2.
+    let s3 = &segs[2];
+    assert_eq!(u64s(&s3["bleu"]["totals"]), [0, 0, 0, 0]);
+    assert_eq!(s3["bleu"]["hyp_length"], 0);
+    assert_eq!(s3["bleu"]["ref_length"], 2);
+    assert_eq!(f64_of(&s3["bleu"]["score"]), 0.0);
+    assert_eq!(f64_of(&s3["chrf"]["score"]), 0.0);
+    // Segment 5 equals its second reference: chrF and chrF++ pick reference index 1 and score
+    // 100. With 3 tokens there is no 4-gram: matches = totals = [3, 2, 1, 0], r = 3, BP = 1.
+    // Sentence BLEU (src/metric/bleu.rs: denominator at least 1, epsilon 0.1 for a zero count)
+    // is 100 * (1 * 1 * 1 * 0.1/1)^(1/4) = 56.23...
+    let s5 = &segs[4];
+    assert_eq!(s5["chrf"]["ref"], 1);
+    assert_eq!(s5["chrf++"]["ref"], 1);
+    assert!(close(f64_of(&s5["chrf"]["score"]), 100.0));
+    assert!(close(f64_of(&s5["chrf++"]["score"]), 100.0));
+    assert_eq!(u64s(&s5["bleu"]["matches"]), [3, 2, 1, 0]);
+    assert_eq!(u64s(&s5["bleu"]["totals"]), [3, 2, 1, 0]);
+    assert_eq!(s5["bleu"]["ref_length"], 3);
+    assert!(close(f64_of(&s5["bleu"]["score"]), 100.0 * 0.1f64.powf(0.25)), "{}", s5["bleu"]["score"]);
+    // Segment 1: all n-grams in ref1 (5 tokens, matches 5,4,3,2), r = 6: the sentence score is
+    // unsmoothed 100 * exp(1 - 6/5) (Papineni et al. 2002 brevity penalty).
+    let s1 = &segs[0];
+    assert_eq!(u64s(&s1["bleu"]["matches"]), [5, 4, 3, 2]);
+    assert!(close(f64_of(&s1["bleu"]["score"]), 100.0 * (1.0f64 - 6.0 / 5.0).exp()));
+}
+
+// ---------------------------------------------------------------------------------------------
+// Errors: exit code 2, nothing on stdout, one line on stderr naming the file (and line).
+// ---------------------------------------------------------------------------------------------
+
+#[test]
+fn hypothesis_with_more_lines_than_references() {
+    let dir = TempDir::new("count");
+    let r = dir.file("ref-two.txt", lines(&["vop kel", "zin tarn"]));
+    let h = dir.file("hyp-three.txt", lines(&["vop kel", "zin tarn", "lok"]));
+    let out = run(&["score", "--ref", &r, "--hyp", &h, "--json"]);
+    // Line 3 of the hypothesis file has no reference.
+    assert_fails(&out, &["hyp-three.txt:3:", "ref-two.txt"]);
+}
+
+#[test]
+fn hypothesis_with_fewer_lines_than_references() {
+    let dir = TempDir::new("count2");
+    let r = dir.file("ref-three.txt", lines(&["vop kel", "zin tarn", "lok"]));
+    let h = dir.file("hyp-two.txt", lines(&["vop kel", "zin tarn"]));
+    let out = run(&["score", "--ref", &r, "--hyp", &h, "--json"]);
+    assert_fails(&out, &["hyp-two.txt:3:", "ref-three.txt"]);
+}
+
+#[test]
+fn reference_streams_of_different_lengths() {
+    let dir = TempDir::new("streams");
+    let r1 = dir.file("ref-a.txt", lines(&["vop kel", "zin tarn"]));
+    let r2 = dir.file("ref-b.txt", lines(&["vop kel"]));
+    let h = dir.file("hyp.txt", lines(&["vop kel", "zin tarn"]));
+    let out = run(&["score", "--ref", &r1, "--ref", &r2, "--hyp", &h]);
+    assert_fails(&out, &["ref-b.txt:2:", "ref-a.txt"]);
+}
+
+#[test]
+fn missing_files() {
+    let c = corpus("missing");
+    let gone = c.dir.path("no-such-hyp.txt");
+    assert_fails(&run(&["score", "--ref", &c.r1, "--hyp", &gone, "--json"]), &["no-such-hyp.txt", "cannot read"]);
+    let gone = c.dir.path("no-such-ref.txt");
+    assert_fails(&run(&["score", "--ref", &c.r1, "--ref", &gone, "--hyp", &c.hyp, "--json"]), &["no-such-ref.txt"]);
+}
+
+#[test]
+fn invalid_utf8_names_file_and_line() {
+    let c = corpus("utf8");
+    // Line 2 is "mind the \xFF gap": the bad byte is byte 10 of the line.
+    let bad = c.dir.file("bad-hyp.txt", b"kel ferry sails at dawn\nmind the \xFF gap\n");
+    let out = run(&["score", "--ref", &c.r1, "--hyp", &bad, "--json"]);
+    assert_fails(&out, &["bad-hyp.txt:2:", "UTF-8", "byte 10"]);
+    // In a reference file, and through standard input.
+    let bad_ref = c.dir.file("bad-ref.txt", b"ok\n\xC3\x28\n");
+    assert_fails(&run(&["score", "--ref", &bad_ref, "--hyp", &c.hyp]), &["bad-ref.txt:2:", "UTF-8"]);
+    let out = run_stdin(&["score", "--ref", &c.r1, "--hyp", "-"], Some(b"\xE2\x82\n"));
+    assert_fails(&out, &["<stdin>:1:", "UTF-8"]);
+}
+
+#[test]
+fn malformed_jsonl() {
+    let c = corpus("badjsonl");
+    let good = jsonl_record(Value::from("a"), None, &["kel ferry sails at dawn"]);
+    for (name, second, what) in [
+        ("broken.jsonl", "{\"id\": \"b\", \"refs\": [\"mind the gap\"\n".to_owned(), "malformed"),
+        ("norefs.jsonl", "{\"id\": \"b\"}\n".to_owned(), "malformed"),
+        ("emptyrefs.jsonl", "{\"id\": \"b\", \"refs\": []}\n".to_owned(), "refs"),
+        ("blank.jsonl", "\n".to_owned(), "empty line"),
+        ("dup.jsonl", good.clone(), "duplicate"),
+    ] {
+        let f = c.dir.file(name, good.clone() + &second);
+        let out = run(&["score", "--ref", &f, "--hyp", &c.hyp, "--json"]);
+        let line = if what == "duplicate" { "" } else { ":2:" };
+        assert_fails(&out, &[&format!("{name}{line}"), what]);
+    }
+}
+
+#[test]
+fn bad_option_values_fail_like_input_errors() {
+    let c = corpus("badopt");
+    let out = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--bleu-order", "0"]);
+    assert_fails(&out, &["bleu order"]);
+    let out = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--chrf-beta", "0"]);
+    assert_fails(&out, &["beta"]);
+}
+
+// ---------------------------------------------------------------------------------------------
+// demo and help
+// ---------------------------------------------------------------------------------------------
+
+#[test]
+fn demo_ranks_the_best_system_first() {
+    let out = run(&["demo"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    // Systems as named in src/demo/mod.rs, best first.
+    let systems = ["model-v8-rc", "model-v7", "fallback-dictionary"];
+    let mut bleu = Vec::new();
+    for name in systems {
+        let start = s.lines().position(|l| l.starts_with(&format!("{name} ("))).unwrap_or_else(|| panic!("{name} missing: {s}"));
+        let mut block = s.lines().skip(start + 1).take_while(|l| !l.trim().is_empty());
+        let line = block.find(|l| l.trim_start().starts_with("BLEU")).unwrap_or_else(|| panic!("no BLEU for {name}"));
+        let score: f64 = line.split_whitespace().nth(1).and_then(|x| x.parse().ok()).expect("BLEU score");
+        assert!(score > 0.0 && score < 100.0, "{line}");
+        let rest: Vec<&str> = s.lines().skip(start + 1).take_while(|l| !l.trim().is_empty()).collect();
+        assert!(rest.iter().any(|l| l.trim_start().starts_with("chrF ")), "no chrF for {name}");
+        assert!(rest.iter().any(|l| l.trim_start().starts_with("chrF++")), "no chrF++ for {name}");
+        bleu.push(score);
+    }
+    assert!(bleu[0] > bleu[1] && bleu[1] > bleu[2], "BLEU by system {bleu:?}");
+}
+
+#[test]
+fn demo_files_score_like_the_demo() {
+    let dir = TempDir::new("demo");
+    let out = run(&["demo", "--write-files", &dir.0.to_string_lossy()]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let p = |n: &str| dir.path(n);
+    let plain = json_ok(&["score", "--ref", &p("ref1.de.txt"), "--ref", &p("ref2.de.txt"), "--hyp", &p("hyp.model-v7.de.txt"), "--json"], None);
+    let jsonl = json_ok(&["score", "--ref", &p("refs.jsonl"), "--hyp", &p("hyp.model-v7.de.txt"), "--json"], None);
+    assert_eq!(plain["bleu"], jsonl["bleu"]);
+    assert_eq!(plain["chrf"], jsonl["chrf"]);
+    // The BLEU line of model-v7 in the demo output has the same score, to two decimals.
+    let s = text(&out.stdout);
+    let start = s.lines().position(|l| l.starts_with("model-v7 (")).expect("model-v7 block");
+    let line = s.lines().skip(start + 1).find(|l| l.trim_start().starts_with("BLEU")).expect("BLEU line");
+    assert!(line.contains(&format!("{:.2}", f64_of(&plain["bleu"]["score"]))), "{line} vs {}", plain["bleu"]["score"]);
+}
+
+#[test]
+fn help_mentions_the_commands_and_flags() {
+    let out = run(&["--help"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    for word in ["score", "demo", "tokenize", "--help", "--version"] {
+        assert!(s.contains(word), "--help lacks {word}: {s}");
+    }
+
+    let out = run(&["score", "--help"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    for flag in [
+        "--ref", "--hyp", "--json", "--per-segment", "--threads", "--metrics", "--tokenize", "--lowercase", "--bleu-order",
+        "--ref-length", "--smoothing", "--epsilon", "--chrf-char-order", "--chrf-word-order", "--chrf-beta", "--ref-format",
+    ] {
+        assert!(s.contains(flag), "score --help lacks {flag}");
+    }
+    // Unknown flags are usage errors (clap's own exit code, not success).
+    let out = run(&["score", "--no-such-flag"]);
+    assert!(!out.status.success());
+    assert!(out.stdout.is_empty());
+}
