@@ -4,7 +4,11 @@
 pub mod cli;
 pub mod demo;
 pub mod metric;
+pub mod pb;
 pub mod refs;
 pub mod report;
 pub mod rng;
+pub mod server;
+pub mod session;
+pub mod telemetry;
 pub mod text;

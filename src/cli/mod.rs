@@ -7,6 +7,9 @@ mod bench;
 mod demo;
 mod input;
 mod score;
+mod send;
+mod serve;
+mod status;
 mod tokenize;
 
 use std::io::IsTerminal;
@@ -53,6 +56,14 @@ pub enum Command {
     Tokenize(tokenize::TokenizeArgs),
     /// Show mtgauge on built-in demo data (an invented ferry operator's passenger notices).
     Demo(demo::DemoArgs),
+    /// Run the monitoring daemon (gRPC scoring service and Prometheus metrics).
+    #[command(long_about = serve::LONG_ABOUT)]
+    Serve(serve::ServeArgs),
+    /// Stream a hypothesis file into a session of a running server.
+    #[command(long_about = send::LONG_ABOUT)]
+    Send(send::SendArgs),
+    /// Show the scores of a running server's sessions.
+    Status(status::StatusArgs),
     /// Measure scoring speed on a generated corpus and print ratios against a baseline measured in the same run.
     Bench(bench::BenchArgs),
 }
@@ -142,6 +153,9 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Tokenize(a) => tokenize::run(a),
         Command::Demo(a) => demo::run(a),
         Command::Bench(a) => bench::run(a),
+        Command::Serve(a) => serve::run(a),
+        Command::Send(a) => send::run(a),
+        Command::Status(a) => status::run(a),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

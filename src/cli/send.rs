@@ -1,0 +1,278 @@
+//! `mtgauge send`: stream a hypothesis file into a session of a running server.
+
+use std::collections::BTreeMap;
+use std::time::Duration;
+
+use clap::Args;
+use sha2::{Digest, Sha256};
+use tonic::transport::{Channel, Endpoint};
+use tonic::Code;
+
+use super::input::{display_name, read_bytes};
+use super::{stderr_is_terminal, CliError, ScoringArgs};
+use crate::pb;
+use crate::pb::scoring_client::ScoringClient;
+use crate::pb::sessions_client::SessionsClient;
+use crate::refs::split_lines;
+use crate::server::convert::config_to_pb;
+
+/// Items per batch unless told.
+pub const DEFAULT_BATCH: usize = 100;
+/// Attempts to reach the server before giving up.
+pub const MAX_ATTEMPTS: u32 = 8;
+/// First retry delay; doubles up to [`MAX_BACKOFF`].
+const FIRST_BACKOFF: Duration = Duration::from_millis(200);
+const MAX_BACKOFF: Duration = Duration::from_secs(5);
+
+pub const LONG_ABOUT: &str = "\
+Stream a hypothesis file into a session of a running server and print the acknowledged counts.
+
+Line N of --hyp is the hypothesis of segment id N (the line numbering of plain reference files), \
+or of the id on line N of --ids, or, with --source, of the segment whose source matches line N of that file (live-traffic lookup). \
+Batches carry a stable producer id (default: derived from the session and the input's content) \
+and sequence numbers 1, 2, ...: re-running the identical command after a failure counts nothing \
+twice. Unavailable servers are retried with backoff.";
+
+/// `send` options.
+#[derive(Debug, Args)]
+pub struct SendArgs {
+    /// Server URL, e.g. http://127.0.0.1:7410.
+    #[arg(long, value_name = "URL")]
+    pub server: String,
+    /// Session to send into.
+    #[arg(long, value_name = "NAME")]
+    pub session: String,
+    /// Hypothesis file, one segment per line ("-" for stdin).
+    #[arg(long, value_name = "FILE")]
+    pub hyp: String,
+    /// Key items by the source text on the same line of this file instead of the line number.
+    #[arg(long, value_name = "FILE")]
+    pub source: Option<String>,
+    /// Segment ids, one per line aligned with --hyp (for sets whose ids are not line numbers,
+    /// such as JSONL sets with named ids).
+    #[arg(long, value_name = "FILE", conflicts_with = "source")]
+    pub ids: Option<String>,
+    /// Create the session first (no error when an identical one exists); needs --refset.
+    #[arg(long, requires = "refset")]
+    pub create: bool,
+    /// Reference set of the session to create.
+    #[arg(long, value_name = "NAME")]
+    pub refset: Option<String>,
+    /// Session labels to create it with, KEY=VALUE (repeatable).
+    #[arg(long = "label", value_name = "KEY=VALUE")]
+    pub labels: Vec<String>,
+    /// Items per batch.
+    #[arg(long, default_value_t = DEFAULT_BATCH, value_name = "N")]
+    pub batch: usize,
+    /// Producer id (default: derived from the session and the input's content).
+    #[arg(long, value_name = "ID")]
+    pub producer: Option<String>,
+    /// Print the acknowledged counts as JSON.
+    #[arg(long)]
+    pub json: bool,
+    /// Scoring configuration of the session to create.
+    #[command(flatten)]
+    pub scoring: ScoringArgs,
+}
+
+/// Connect (lazily) to a server URL.
+pub fn channel(url: &str) -> Result<Channel, CliError> {
+    let ep = Endpoint::from_shared(url.to_owned()).map_err(|e| CliError::Usage(format!("--server {url}: {e}")))?;
+    Ok(ep.connect_timeout(Duration::from_secs(5)).connect_lazy())
+}
+
+/// The error line for a failed call.
+pub fn status_error(what: &str, s: tonic::Status) -> CliError {
+    CliError::Usage(format!("{what}: {} ({:?})", s.message(), s.code()))
+}
+
+fn retryable(s: &tonic::Status) -> bool {
+    matches!(s.code(), Code::Unavailable | Code::Unknown | Code::Cancelled | Code::DeadlineExceeded)
+}
+
+#[derive(Default, Debug, Clone, Copy)]
+struct Totals {
+    batches: u64,
+    scored: u64,
+    unknown: u64,
+    rejected: u64,
+    duplicate_batches: u64,
+}
+
+pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
+    if a.batch == 0 {
+        return Err(CliError::Usage("--batch must be at least 1".into()));
+    }
+    let hyp_bytes = read_bytes(&a.hyp)?;
+    let hyps = split_lines(display_name(&a.hyp), &hyp_bytes)?;
+    let src_bytes = a.source.as_deref().map(read_bytes).transpose()?;
+    let sources = match (&a.source, &src_bytes) {
+        (Some(name), Some(b)) => {
+            let s = split_lines(display_name(name), b)?;
+            crate::refs::check_same_length(display_name(&a.hyp), hyps.len(), display_name(name), s.len())?;
+            Some(s)
+        }
+        _ => None,
+    };
+    let id_bytes = a.ids.as_deref().map(read_bytes).transpose()?;
+    let ids = match (&a.ids, &id_bytes) {
+        (Some(name), Some(b)) => {
+            let s = split_lines(display_name(name), b)?;
+            crate::refs::check_same_length(display_name(&a.hyp), hyps.len(), display_name(name), s.len())?;
+            Some(s)
+        }
+        _ => None,
+    };
+    let producer = a.producer.clone().unwrap_or_else(|| {
+        let mut h = Sha256::new();
+        h.update(a.session.as_bytes());
+        h.update([0]);
+        h.update(&hyp_bytes);
+        if let Some(s) = &src_bytes {
+            h.update([1]);
+            h.update(s);
+        }
+        if let Some(s) = &id_bytes {
+            h.update([2]);
+            h.update(s);
+        }
+        h.update(a.batch.to_le_bytes());
+        let d = h.finalize();
+        format!("send-{}", d.iter().take(8).map(|b| format!("{b:02x}")).collect::<String>())
+    });
+    let batches: Vec<pb::ScoreBatch> = hyps
+        .chunks(a.batch)
+        .enumerate()
+        .map(|(b, chunk)| pb::ScoreBatch {
+            session: a.session.clone(),
+            producer: producer.clone(),
+            sequence: b as u64 + 1,
+            want_segment_scores: false,
+            items: chunk
+                .iter()
+                .enumerate()
+                .map(|(i, h)| {
+                    let line = b * a.batch + i;
+                    let key = match (&sources, &ids) {
+                        (Some(s), _) => pb::score_item::Key::Source(s[line].to_owned()),
+                        (None, Some(ids)) => pb::score_item::Key::SegmentId(ids[line].to_owned()),
+                        (None, None) => pb::score_item::Key::SegmentId((line + 1).to_string()),
+                    };
+                    pb::ScoreItem { key: Some(key), hypothesis: (*h).to_owned() }
+                })
+                .collect(),
+        })
+        .collect();
+    let config = a.scoring.config()?;
+    let mut labels = BTreeMap::new();
+    for l in &a.labels {
+        let (k, v) = l.split_once('=').ok_or_else(|| CliError::Usage(format!("--label {l}: expected KEY=VALUE")))?;
+        labels.insert(k.to_owned(), v.to_owned());
+    }
+    let show = stderr_is_terminal() && !a.json;
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
+    let totals = rt.block_on(async {
+        let ch = channel(&a.server)?;
+        if a.create {
+            let req = pb::CreateSessionRequest {
+                name: a.session.clone(),
+                refset: a.refset.clone().unwrap_or_default(),
+                config: Some(config_to_pb(&config)),
+                labels: labels.into_iter().collect(),
+                window: 0,
+                if_not_exists: true,
+            };
+            with_retry("create session", || {
+                let mut c = SessionsClient::new(ch.clone());
+                let req = req.clone();
+                async move { c.create(req).await }
+            })
+            .await?;
+        }
+        stream_all(&ch, &batches, show).await
+    })?;
+    if show {
+        eprintln!();
+    }
+    let line = if a.json {
+        serde_json::json!({
+            "session": a.session, "producer": producer, "batches": totals.batches, "scored": totals.scored,
+            "unknown": totals.unknown, "rejected": totals.rejected, "duplicate_batches": totals.duplicate_batches,
+        })
+        .to_string()
+    } else {
+        format!(
+            "sent {} segments in {} batches to session {} as producer {}: {} scored, {} unknown, {} rejected, {} batches already counted",
+            hyps.len(), totals.batches, a.session, producer, totals.scored, totals.unknown, totals.rejected, totals.duplicate_batches
+        )
+    };
+    println!("{line}");
+    Ok(())
+}
+
+async fn with_retry<T, F, Fut>(what: &str, mut call: F) -> Result<T, CliError>
+where
+    F: FnMut() -> Fut,
+    Fut: std::future::Future<Output = Result<tonic::Response<T>, tonic::Status>>,
+{
+    let mut delay = FIRST_BACKOFF;
+    for attempt in 1..=MAX_ATTEMPTS {
+        match call().await {
+            Ok(r) => return Ok(r.into_inner()),
+            Err(s) if retryable(&s) && attempt < MAX_ATTEMPTS => {
+                tracing::debug!(%s, attempt, "retrying");
+                tokio::time::sleep(delay).await;
+                delay = (delay * 2).min(MAX_BACKOFF);
+            }
+            Err(s) => return Err(status_error(what, s)),
+        }
+    }
+    unreachable!("the last attempt returns")
+}
+
+/// Stream every batch, resuming after the last acknowledged one when the connection fails (the
+/// server's per-producer sequence marks make a resent batch count once).
+async fn stream_all(ch: &Channel, batches: &[pb::ScoreBatch], show: bool) -> Result<Totals, CliError> {
+    let mut totals = Totals::default();
+    let mut next = 0usize;
+    let mut delay = FIRST_BACKOFF;
+    let mut failures = 0u32;
+    while next < batches.len() {
+        let before = next;
+        let mut client = ScoringClient::new(ch.clone()).max_decoding_message_size(64 << 20).max_encoding_message_size(64 << 20);
+        let outbound = tokio_stream::iter(batches[next..].to_vec());
+        let result = async {
+            let mut acks = client.stream(outbound).await?.into_inner();
+            while let Some(ack) = acks.message().await? {
+                totals.batches += 1;
+                totals.scored += ack.scored as u64;
+                totals.unknown += ack.unknown as u64;
+                totals.rejected += ack.rejected as u64;
+                totals.duplicate_batches += ack.duplicate as u64;
+                next += 1;
+                if show {
+                    eprint!("\r{} / {} batches acknowledged", next, batches.len());
+                }
+            }
+            Ok::<(), tonic::Status>(())
+        }
+        .await;
+        match result {
+            Ok(()) if next >= batches.len() => break,
+            // The server ended the stream early (shutting down): reconnect and resume.
+            Ok(()) => {}
+            Err(s) if !retryable(&s) => return Err(status_error("scoring stream", s)),
+            Err(s) => tracing::debug!(%s, "stream failed; resuming"),
+        }
+        if next > before {
+            (failures, delay) = (0, FIRST_BACKOFF);
+        }
+        failures += 1;
+        if failures >= MAX_ATTEMPTS {
+            return Err(CliError::Usage(format!("gave up after {MAX_ATTEMPTS} attempts; {next} of {} batches acknowledged (re-run the same command to resume)", batches.len())));
+        }
+        tokio::time::sleep(delay).await;
+        delay = (delay * 2).min(MAX_BACKOFF);
+    }
+    Ok(totals)
+}

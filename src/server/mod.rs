@@ -1,0 +1,161 @@
+//! The gRPC server: reference sets, sessions and streaming scoring over one shared [`State`],
+//! gRPC health and reflection, a Prometheus listener, and a bounded graceful shutdown.
+
+pub mod convert;
+pub mod error;
+mod services;
+pub mod state;
+
+use std::future::Future;
+use std::path::PathBuf;
+use std::time::Duration;
+
+use tokio::net::TcpListener;
+use tokio::sync::watch;
+use tokio_stream::wrappers::TcpListenerStream;
+
+pub use error::ServiceError;
+pub use state::{Format, Limits, State};
+
+use crate::pb;
+
+/// gRPC listen address unless configured.
+pub const DEFAULT_LISTEN: &str = "127.0.0.1:7410";
+/// Prometheus listen address unless configured (loopback: expose it deliberately).
+pub const DEFAULT_METRICS_LISTEN: &str = "127.0.0.1:7411";
+/// Largest gRPC message in bytes unless configured.
+pub const DEFAULT_MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
+/// How long a shutdown waits for in-flight batches before the process exits.
+pub const DEFAULT_DRAIN: Duration = Duration::from_secs(10);
+/// Seconds between reports of a watch stream unless asked.
+pub const DEFAULT_WATCH_SECONDS: u32 = 5;
+/// Acknowledgements buffered per scoring stream before the server waits for the client.
+pub const ACK_BUFFER: usize = 16;
+
+/// A reference set to load at startup.
+#[derive(Debug, Clone)]
+pub struct StartupRefSet {
+    /// Registry name.
+    pub name: String,
+    /// Files: one JSONL file, or plain reference streams.
+    pub paths: Vec<PathBuf>,
+    /// Plain text: an aligned source file.
+    pub source: Option<PathBuf>,
+}
+
+/// Everything `serve` is configured with.
+#[derive(Debug, Clone)]
+pub struct ServerConfig {
+    /// Directory server-side loading may read from.
+    pub refset_dir: Option<PathBuf>,
+    /// Reference sets loaded before the server reports SERVING.
+    pub startup_refsets: Vec<StartupRefSet>,
+    /// Limits.
+    pub limits: Limits,
+    /// Largest message.
+    pub max_message_bytes: usize,
+    /// Shutdown drain time.
+    pub drain: Duration,
+}
+
+impl Default for ServerConfig {
+    fn default() -> Self {
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN }
+    }
+}
+
+/// Read and parse a startup reference set from local files (the operator's own paths).
+fn load_startup(state: &State, r: &StartupRefSet) -> Result<(), ServiceError> {
+    let read = |p: &PathBuf| -> Result<(String, Vec<u8>), ServiceError> {
+        let name = p.display().to_string();
+        std::fs::read(p).map(|b| (name.clone(), b)).map_err(|e| ServiceError::Input(crate::refs::InputError::file(&name, e.to_string())))
+    };
+    let files: Vec<(String, Vec<u8>)> = r.paths.iter().map(read).collect::<Result<_, _>>()?;
+    let source = r.source.as_ref().map(read).transpose()?;
+    let jsonl = r.paths.len() == 1 && r.paths[0].extension().is_some_and(|e| e.eq_ignore_ascii_case("jsonl") || e.eq_ignore_ascii_case("ndjson"));
+    let format = if jsonl { Format::Jsonl } else { Format::Plain };
+    let set = state.parse_refset(format, &files, source.as_ref())?;
+    let loaded = state.insert_refset(&r.name, set, true)?;
+    crate::telemetry::record_refset(&loaded.name, loaded.set.len(), loaded.set.memory_bytes());
+    tracing::info!(refset = %loaded.name, segments = loaded.set.len(), digest = %loaded.set.digest_hex(), "reference set loaded");
+    Ok(())
+}
+
+/// Run the server on bound listeners until `shutdown` resolves, then drain (bounded by
+/// `config.drain`). Tests call this with `127.0.0.1:0` listeners.
+pub async fn run(config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpListener, metrics_exporter_prometheus::PrometheusHandle)>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
+    let state = State::new(config.refset_dir.clone(), config.limits).map_err(|e| e.to_string())?;
+    let (health, health_service) = tonic_health::server::health_reporter();
+    health.set_service_status("", tonic_health::ServingStatus::NotServing).await;
+    let metrics_task = metrics.map(|(l, h)| tokio::spawn(crate::telemetry::serve_metrics(l, h)));
+
+    let reflection_v1 = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1()
+        .map_err(|e| e.to_string())?;
+    let reflection_v1alpha = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1alpha()
+        .map_err(|e| e.to_string())?;
+
+    let (stop_tx, stop_rx) = watch::channel(false);
+    let svc = services::Services::new(state.clone(), stop_rx.clone());
+    let max = config.max_message_bytes;
+    let router = tonic::transport::Server::builder()
+        .add_service(health_service)
+        .add_service(reflection_v1)
+        .add_service(reflection_v1alpha)
+        .add_service(pb::ref_sets_server::RefSetsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max))
+        .add_service(pb::sessions_server::SessionsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max))
+        .add_service(pb::scoring_server::ScoringServer::new(svc).max_decoding_message_size(max).max_encoding_message_size(max));
+
+    // Graceful part: when `shutdown` fires, report NOT_SERVING, tell streams to finish their
+    // current batch and end, and let tonic stop accepting.
+    let (graceful_tx, graceful_rx) = tokio::sync::oneshot::channel::<()>();
+    let health_for_stop = health.clone();
+    tokio::spawn(async move {
+        shutdown.await;
+        tracing::info!("shutting down: NOT_SERVING, finishing in-flight batches");
+        health_for_stop.set_service_status("", tonic_health::ServingStatus::NotServing).await;
+        let _ = stop_tx.send(true);
+        let _ = graceful_tx.send(());
+    });
+    let (drain_tx, mut drain_rx) = watch::channel(false);
+    let serve = router.serve_with_incoming_shutdown(TcpListenerStream::new(grpc), async move {
+        let _ = graceful_rx.await;
+        let _ = drain_tx.send(true);
+    });
+    let serving = tokio::spawn(serve);
+
+    // Startup reference sets, then SERVING.
+    let st = state.clone();
+    let startup = config.startup_refsets.clone();
+    let loaded = tokio::task::spawn_blocking(move || startup.iter().try_for_each(|r| load_startup(&st, r))).await.map_err(|e| e.to_string())?;
+    if let Err(e) = loaded {
+        serving.abort();
+        return Err(format!("cannot load startup reference set: {e}"));
+    }
+    health.set_service_status("", tonic_health::ServingStatus::Serving).await;
+    tracing::info!("serving");
+
+    let mut serving = serving;
+    let result = tokio::select! {
+        r = &mut serving => r,
+        _ = async { let _ = drain_rx.wait_for(|d| *d).await; tokio::time::sleep(config.drain).await } => {
+            tracing::warn!(drain_seconds = config.drain.as_secs_f64(), "drain time over; closing remaining connections");
+            serving.abort();
+            Ok(Ok(()))
+        }
+    };
+    if let Some(t) = metrics_task {
+        t.abort();
+    }
+    match result {
+        Ok(Ok(())) => Ok(()),
+        Ok(Err(e)) => Err(format!("gRPC server failed: {e}")),
+        Err(e) if e.is_cancelled() => Ok(()),
+        Err(e) => Err(format!("gRPC server task failed: {e}")),
+    }
+}

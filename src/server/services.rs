@@ -1,0 +1,436 @@
+//! The gRPC service implementations. Each handler validates, hands CPU work to the blocking
+//! pool, and applies results to [`State`] in short critical sections.
+
+use std::cell::RefCell;
+use std::collections::{BTreeMap, HashMap};
+use std::pin::Pin;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use tokio::sync::{mpsc, watch};
+use tokio_stream::wrappers::ReceiverStream;
+use tokio_stream::Stream;
+use tonic::{Request, Response, Status, Streaming};
+
+use super::convert::{config_from_pb, config_to_pb, scores_to_pb, stats_to_pb};
+use super::error::{Result, ServiceError};
+use super::state::{unix_now, Format, LoadedSet, ProducerClaim, State};
+use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
+use crate::metric::CorpusStats;
+use crate::pb;
+use crate::refs::compiled::Scratch;
+use crate::report::PROXY_NOTE;
+use crate::session::{ItemKey, Outcome, Session};
+use crate::telemetry;
+
+thread_local! {
+    /// Scoring buffers of each blocking-pool thread, reused across batches.
+    static SCRATCH: RefCell<Scratch> = RefCell::new(Scratch::default());
+}
+
+/// All services over one state.
+#[derive(Clone)]
+pub struct Services {
+    state: State,
+    stop: watch::Receiver<bool>,
+}
+
+impl Services {
+    pub fn new(state: State, stop: watch::Receiver<bool>) -> Services {
+        Services { state, stop }
+    }
+}
+
+async fn blocking<T: Send + 'static>(f: impl FnOnce() -> Result<T> + Send + 'static) -> Result<T> {
+    tokio::task::spawn_blocking(f).await.map_err(|e| ServiceError::Internal(e.to_string()))?
+}
+
+fn refset_info(state: &State, l: &LoadedSet) -> pb::RefSetInfo {
+    let set = &l.set;
+    pb::RefSetInfo {
+        name: l.name.clone(),
+        segments: set.len() as u64,
+        references: set.reference_count() as u64,
+        max_refs_per_segment: set.segments().map(|s| s.ref_count()).max().unwrap_or(0) as u32,
+        memory_bytes: set.memory_bytes() as u64,
+        digest: set.digest_hex(),
+        with_source: set.segments().filter(|s| s.source().is_some()).count() as u64,
+        sessions: state.sessions_using(set) as u64,
+    }
+}
+
+fn session_info(s: &Session) -> pb::SessionInfo {
+    let spec = s.spec();
+    let counts = s.state().counts;
+    pb::SessionInfo {
+        name: spec.name.clone(),
+        refset: spec.refset.clone(),
+        refset_digest: s.refs().digest_hex(),
+        config: Some(config_to_pb(&spec.config)),
+        labels: spec.labels.iter().map(|(k, v)| (k.clone(), v.clone())).collect(),
+        window: spec.window as u32,
+        scored: counts.scored,
+        unknown: counts.unknown,
+        rejected: counts.rejected,
+        created_unix: s.created_unix(),
+    }
+}
+
+fn format_from_pb(f: i32) -> Result<Format> {
+    match pb::RefFormat::try_from(f) {
+        Ok(pb::RefFormat::Plain) => Ok(Format::Plain),
+        Ok(pb::RefFormat::Jsonl) => Ok(Format::Jsonl),
+        _ => Err(ServiceError::Invalid("format must be REF_FORMAT_PLAIN or REF_FORMAT_JSONL".into())),
+    }
+}
+
+fn publish_refset(l: &LoadedSet) {
+    telemetry::record_refset(&l.name, l.set.len(), l.set.memory_bytes());
+    tracing::info!(refset = %l.name, segments = l.set.len(), digest = %l.set.digest_hex(), "reference set loaded");
+}
+
+#[tonic::async_trait]
+impl pb::ref_sets_server::RefSets for Services {
+    async fn load(&self, req: Request<pb::LoadRefSetRequest>) -> std::result::Result<Response<pb::RefSetInfo>, Status> {
+        let r = req.into_inner();
+        let state = self.state.clone();
+        let info = blocking(move || {
+            crate::session::check_name("reference set name", &r.name)?;
+            let format = format_from_pb(r.format)?;
+            let read = |rel: &str| -> Result<(String, Vec<u8>)> {
+                let full = state.resolve_refset_path(rel)?;
+                let bytes = std::fs::read(&full).map_err(|e| ServiceError::Input(crate::refs::InputError::file(rel, e.to_string())))?;
+                Ok((rel.to_owned(), bytes))
+            };
+            let files: Vec<(String, Vec<u8>)> = r.paths.iter().map(|p| read(p)).collect::<Result<_>>()?;
+            let source = if r.source_path.is_empty() { None } else { Some(read(&r.source_path)?) };
+            let set = state.parse_refset(format, &files, source.as_ref())?;
+            let loaded = state.insert_refset(&r.name, set, r.replace)?;
+            publish_refset(&loaded);
+            Ok(refset_info(&state, &loaded))
+        })
+        .await?;
+        Ok(Response::new(info))
+    }
+
+    async fn upload(&self, req: Request<Streaming<pb::UploadRefSetChunk>>) -> std::result::Result<Response<pb::RefSetInfo>, Status> {
+        let mut inbound = req.into_inner();
+        let limit = self.state.limits().max_refset_bytes;
+        let Some(first) = inbound.message().await? else { return Err(ServiceError::Invalid("empty upload".into()).into()) };
+        let Some(pb::upload_ref_set_chunk::Part::Header(h)) = first.part else {
+            return Err(ServiceError::Invalid("the first upload message must be the header".into()).into());
+        };
+        crate::session::check_name("reference set name", &h.name).map_err(ServiceError::from)?;
+        let format = format_from_pb(h.format)?;
+        let nfiles = h.files as usize + usize::from(h.has_source);
+        if nfiles == 0 || nfiles > 64 {
+            return Err(ServiceError::Invalid(format!("header.files must be 1..64, got {}", h.files)).into());
+        }
+        let mut files: Vec<Vec<u8>> = vec![Vec::new(); nfiles];
+        let mut total = 0u64;
+        while let Some(chunk) = inbound.message().await? {
+            let Some(pb::upload_ref_set_chunk::Part::Data(d)) = chunk.part else {
+                return Err(ServiceError::Invalid("only the first upload message may be a header".into()).into());
+            };
+            let slot = files.get_mut(d.file as usize).ok_or_else(|| ServiceError::Invalid(format!("data for file {} of {}", d.file, nfiles)))?;
+            total += d.data.len() as u64;
+            if total > limit {
+                return Err(ServiceError::Limit { what: format!("upload of more than {total} bytes"), limit, key: "limits.max_refset_bytes" }.into());
+            }
+            slot.extend_from_slice(&d.data);
+        }
+        let state = self.state.clone();
+        let info = blocking(move || {
+            let mut named: Vec<(String, Vec<u8>)> = files.into_iter().enumerate().map(|(i, b)| (format!("{}[file {i}]", h.name), b)).collect();
+            let source = if h.has_source { named.pop() } else { None };
+            let set = state.parse_refset(format, &named, source.as_ref())?;
+            let loaded = state.insert_refset(&h.name, set, h.replace)?;
+            publish_refset(&loaded);
+            Ok(refset_info(&state, &loaded))
+        })
+        .await?;
+        Ok(Response::new(info))
+    }
+
+    async fn list(&self, _: Request<pb::ListRefSetsRequest>) -> std::result::Result<Response<pb::ListRefSetsResponse>, Status> {
+        let refsets = self.state.refsets().iter().map(|l| refset_info(&self.state, l)).collect();
+        Ok(Response::new(pb::ListRefSetsResponse { refsets }))
+    }
+
+    async fn describe(&self, req: Request<pb::DescribeRefSetRequest>) -> std::result::Result<Response<pb::RefSetInfo>, Status> {
+        let l = self.state.refset(&req.into_inner().name)?;
+        Ok(Response::new(refset_info(&self.state, &l)))
+    }
+
+    async fn delete(&self, req: Request<pb::DeleteRefSetRequest>) -> std::result::Result<Response<pb::DeleteRefSetResponse>, Status> {
+        let name = req.into_inner().name;
+        self.state.delete_refset(&name)?;
+        tracing::info!(refset = %name, "reference set deleted");
+        Ok(Response::new(pb::DeleteRefSetResponse {}))
+    }
+}
+
+#[tonic::async_trait]
+impl pb::sessions_server::Sessions for Services {
+    async fn create(&self, req: Request<pb::CreateSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
+        let r = req.into_inner();
+        let config = config_from_pb(r.config.as_ref())?;
+        let labels: BTreeMap<String, String> = r.labels.into_iter().collect();
+        let spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize)?;
+        let state = self.state.clone();
+        let session = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
+        let spec = session.spec();
+        telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.labels, true);
+        tracing::info!(session = %spec.name, refset = %spec.refset, config = %spec.config.describe(), "session ready");
+        Ok(Response::new(session_info(&session)))
+    }
+
+    async fn get(&self, req: Request<pb::GetSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
+        let s = self.state.session(&req.into_inner().name)?;
+        Ok(Response::new(session_info(&s)))
+    }
+
+    async fn list(&self, _: Request<pb::ListSessionsRequest>) -> std::result::Result<Response<pb::ListSessionsResponse>, Status> {
+        Ok(Response::new(pb::ListSessionsResponse { sessions: self.state.sessions().iter().map(|s| session_info(s)).collect() }))
+    }
+
+    async fn reset(&self, req: Request<pb::ResetSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
+        let s = self.state.session(&req.into_inner().name)?;
+        s.reset();
+        telemetry::record_scores(&s.spec().name, &s.spec().config, &CorpusStats::default(), &CorpusStats::default());
+        tracing::info!(session = %s.spec().name, "session reset");
+        Ok(Response::new(session_info(&s)))
+    }
+
+    async fn close(&self, req: Request<pb::CloseSessionRequest>) -> std::result::Result<Response<pb::CloseSessionResponse>, Status> {
+        let s = self.state.close_session(&req.into_inner().name)?;
+        let spec = s.spec();
+        telemetry::record_session_info(&spec.name, &spec.refset, &s.refs().digest_hex(), &spec.labels, false);
+        tracing::info!(session = %spec.name, "session closed");
+        Ok(Response::new(pb::CloseSessionResponse {}))
+    }
+}
+
+/// Score one batch and apply it to its session; the one path of both `Stream` and `Submit`.
+async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::BatchAck> {
+    let started = Instant::now();
+    let session = state.session(&batch.session)?;
+    if batch.items.is_empty() {
+        return Err(ServiceError::Invalid("empty batch: send at least one item".into()));
+    }
+    let limits = *state.limits();
+    if batch.items.len() > limits.max_batch_items {
+        return Err(ServiceError::Limit { what: format!("batch of {} items", batch.items.len()), limit: limits.max_batch_items as u64, key: "limits.max_batch_items" });
+    }
+    let mut ack = pb::BatchAck { session: batch.session.clone(), producer: batch.producer.clone(), sequence: batch.sequence, ..Default::default() };
+    if session.state().is_duplicate(&batch.producer, batch.sequence) {
+        ack.duplicate = true;
+        return Ok(ack);
+    }
+    let scoring = Arc::clone(&session);
+    let (batch, outcomes, rejections) = blocking(move || {
+        let mut outcomes = Vec::with_capacity(batch.items.len());
+        let mut rejections = Vec::new();
+        SCRATCH.with(|s| {
+            let scratch = &mut s.borrow_mut();
+            for (i, item) in batch.items.iter().enumerate() {
+                let key = match &item.key {
+                    Some(pb::score_item::Key::SegmentId(id)) => ItemKey::Id(id),
+                    Some(pb::score_item::Key::Source(src)) if src.len() > limits.max_text_bytes => {
+                        rejections.push(pb::Rejection { index: i as u32, reason: format!("source of {} bytes exceeds limits.max_text_bytes ({})", src.len(), limits.max_text_bytes) });
+                        continue;
+                    }
+                    Some(pb::score_item::Key::Source(src)) => ItemKey::Source(src),
+                    None => {
+                        rejections.push(pb::Rejection { index: i as u32, reason: "item has neither segment_id nor source".into() });
+                        continue;
+                    }
+                };
+                if item.hypothesis.len() > limits.max_text_bytes {
+                    rejections.push(pb::Rejection { index: i as u32, reason: format!("hypothesis of {} bytes exceeds limits.max_text_bytes ({})", item.hypothesis.len(), limits.max_text_bytes) });
+                    continue;
+                }
+                outcomes.push((i as u32, scoring.score_item(key, &item.hypothesis, scratch)));
+            }
+        });
+        Ok((batch, outcomes, rejections))
+    })
+    .await?;
+
+    let plain: Vec<Outcome> = outcomes.iter().map(|(_, o)| *o).collect();
+    let mut sum = CorpusStats::default();
+    let (mut scored, mut unknown) = (0u32, 0u32);
+    for o in &plain {
+        match o {
+            Outcome::Scored { stats, .. } => {
+                sum.add_segment(stats);
+                scored += 1;
+            }
+            Outcome::Unknown => unknown += 1,
+        }
+    }
+    let rejected = rejections.len() as u32;
+    let (applied, cumulative, recent) = {
+        let mut st = session.state();
+        let applied = st.apply(&batch.producer, batch.sequence, &plain, rejected as u64);
+        (applied, st.cumulative, st.window.stats())
+    };
+    if !applied {
+        ack.duplicate = true;
+        return Ok(ack);
+    }
+    let spec = session.spec();
+    telemetry::record_batch(&spec.name, &spec.config, scored as u64, unknown as u64, rejected as u64, &sum);
+    telemetry::record_scores(&spec.name, &spec.config, &cumulative, &recent);
+    (ack.scored, ack.unknown, ack.rejected, ack.rejections) = (scored, unknown, rejected, rejections);
+    if batch.want_segment_scores {
+        let c = &spec.config;
+        for (index, o) in &outcomes {
+            if let Outcome::Scored { stats, by_source, index: seg } = o {
+                ack.segment_scores.push(pb::SegmentScore {
+                    index: *index,
+                    segment_id: session.segment_id(*by_source, *seg).to_owned(),
+                    bleu: c.metrics.bleu.then(|| stats.bleu.sentence_score(c.bleu_order, c.smoothing, c.epsilon)),
+                    chrf: c.metrics.chrf.then(|| stats.chrf.score(c.chrf_char_order, 0, c.beta).score),
+                    chrfpp: c.metrics.chrfpp.then(|| stats.chrfpp.score(c.chrf_char_order, c.chrf_word_order, c.beta).score),
+                });
+            }
+        }
+    }
+    telemetry::record_batch_seconds(started.elapsed().as_secs_f64());
+    Ok(ack)
+}
+
+fn report(session: &Session) -> pb::ScoresReport {
+    let spec = session.spec();
+    let (cumulative, recent, counts) = {
+        let st = session.state();
+        (st.cumulative, st.window.stats(), st.counts)
+    };
+    let c = &spec.config;
+    pb::ScoresReport {
+        session: spec.name.clone(),
+        refset_digest: session.refs().digest_hex(),
+        config: Some(config_to_pb(c)),
+        cumulative: Some(stats_to_pb(&cumulative, c)),
+        cumulative_scores: Some(scores_to_pb(&cumulative, c)),
+        recent: Some(stats_to_pb(&recent, c)),
+        recent_scores: Some(scores_to_pb(&recent, c)),
+        window: spec.window as u32,
+        unknown: counts.unknown,
+        rejected: counts.rejected,
+        unix_time: unix_now(),
+        note: PROXY_NOTE.to_owned(),
+    }
+}
+
+/// Decrements the open-stream gauge however the stream ends.
+struct StreamGauge;
+
+impl StreamGauge {
+    fn new() -> StreamGauge {
+        telemetry::streams_delta(1.0);
+        StreamGauge
+    }
+}
+
+impl Drop for StreamGauge {
+    fn drop(&mut self) {
+        telemetry::streams_delta(-1.0);
+    }
+}
+
+type BoxStream<T> = Pin<Box<dyn Stream<Item = std::result::Result<T, Status>> + Send>>;
+
+#[tonic::async_trait]
+impl pb::scoring_server::Scoring for Services {
+    type StreamStream = BoxStream<pb::BatchAck>;
+    type WatchScoresStream = BoxStream<pb::ScoresReport>;
+
+    async fn stream(&self, req: Request<Streaming<pb::ScoreBatch>>) -> std::result::Result<Response<Self::StreamStream>, Status> {
+        let mut inbound = req.into_inner();
+        let (tx, rx) = mpsc::channel(ACK_BUFFER);
+        let state = self.state.clone();
+        let mut stop = self.stop.clone();
+        tokio::spawn(async move {
+            let _gauge = StreamGauge::new();
+            let mut claims: HashMap<(String, String), ProducerClaim> = HashMap::new();
+            loop {
+                // Stop only between batches: a batch that has arrived is scored and acknowledged.
+                let next = tokio::select! {
+                    biased;
+                    _ = stop.wait_for(|s| *s) => break,
+                    m = inbound.message() => m,
+                };
+                let batch = match next {
+                    Ok(Some(b)) => b,
+                    Ok(None) => break,
+                    Err(status) => {
+                        tracing::debug!(%status, "scoring stream ended by the client");
+                        break;
+                    }
+                };
+                let key = (batch.session.clone(), batch.producer.clone());
+                if !batch.producer.is_empty() && !claims.contains_key(&key) {
+                    match state.claim_producer(&key.0, &key.1) {
+                        Ok(c) => {
+                            claims.insert(key, c);
+                        }
+                        Err(e) => {
+                            let _ = tx.send(Err(e.into())).await;
+                            break;
+                        }
+                    }
+                }
+                let out = process_batch(&state, batch).await.map_err(Status::from);
+                let failed = out.is_err();
+                if tx.send(out).await.is_err() || failed {
+                    break;
+                }
+            }
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+
+    async fn submit(&self, req: Request<pb::ScoreBatch>) -> std::result::Result<Response<pb::BatchAck>, Status> {
+        if *self.stop.borrow() {
+            return Err(ServiceError::ShuttingDown.into());
+        }
+        Ok(Response::new(process_batch(&self.state, req.into_inner()).await?))
+    }
+
+    async fn get_scores(&self, req: Request<pb::GetScoresRequest>) -> std::result::Result<Response<pb::ScoresReport>, Status> {
+        let s = self.state.session(&req.into_inner().session)?;
+        Ok(Response::new(report(&s)))
+    }
+
+    async fn watch_scores(&self, req: Request<pb::WatchScoresRequest>) -> std::result::Result<Response<Self::WatchScoresStream>, Status> {
+        let r = req.into_inner();
+        let session = self.state.session(&r.session)?;
+        let secs = if r.interval_seconds == 0 { DEFAULT_WATCH_SECONDS } else { r.interval_seconds };
+        let state = self.state.clone();
+        // One report in flight per subscriber: a slow one skips ticks instead of buffering.
+        let (tx, rx) = mpsc::channel(1);
+        let mut stop = self.stop.clone();
+        tokio::spawn(async move {
+            let mut tick = tokio::time::interval(Duration::from_secs(secs as u64));
+            tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
+            loop {
+                tokio::select! {
+                    _ = stop.wait_for(|s| *s) => break,
+                    _ = tick.tick() => {}
+                }
+                // A closed session ends the watch.
+                if !state.session(&session.spec().name).is_ok_and(|s| Arc::ptr_eq(&s, &session)) {
+                    let _ = tx.send(Err(ServiceError::UnknownSession(session.spec().name.clone()).into())).await;
+                    break;
+                }
+                match tx.try_send(Ok(report(&session))) {
+                    Ok(()) | Err(mpsc::error::TrySendError::Full(_)) => {}
+                    Err(mpsc::error::TrySendError::Closed(_)) => break,
+                }
+            }
+        });
+        Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
+    }
+}

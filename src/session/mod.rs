@@ -1,0 +1,393 @@
+//! Sessions: one thing being watched, bound to one reference-set version and one scoring
+//! configuration, with cumulative statistics and a window over the most recent segments.
+//!
+//! Pure and synchronous like the scoring core: the server owns sessions and calls in here.
+
+mod window;
+
+use std::collections::{BTreeMap, HashMap};
+use std::sync::{Arc, Mutex, MutexGuard};
+
+use unicode_normalization::UnicodeNormalization;
+
+use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
+use crate::refs::compiled::{Compiled, Scratch};
+use crate::refs::{RefSet, SegmentInput};
+use crate::text::{is_space, push_lowercased};
+
+pub use window::Window;
+
+/// Size of the `recent` window in segments unless the session sets one.
+pub const DEFAULT_WINDOW: usize = 1000;
+/// Largest `recent` window a session may ask for.
+pub const MAX_WINDOW: usize = 1_000_000;
+/// Longest session or reference-set name.
+pub const MAX_NAME_LEN: usize = 64;
+/// Most labels a session may carry.
+pub const MAX_LABELS: usize = 16;
+/// Longest label value.
+pub const MAX_LABEL_VALUE_LEN: usize = 256;
+/// Label names a session may not use: the server sets them itself.
+const RESERVED_LABELS: &[&str] = &["session", "refset", "digest", "metric", "window", "outcome", "order", "kind", "version"];
+
+/// Why a name or label is not acceptable.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum NameError {
+    /// Empty, too long, or bad characters.
+    #[error("{what} '{name}' is not valid: use 1 to {MAX_NAME_LEN} characters of A-Z a-z 0-9 . _ -, starting with a letter or digit")]
+    BadName {
+        /// "session name" or "reference set name".
+        what: &'static str,
+        /// The name as given (escaped for display).
+        name: String,
+    },
+    /// A label name that is not a Prometheus label name, or reserved.
+    #[error("label name '{0}' is not valid: use [a-zA-Z_][a-zA-Z0-9_]*, not starting with '__', and none of {RESERVED_LABELS:?}")]
+    BadLabel(String),
+    /// A label value that is too long.
+    #[error("the value of label '{0}' is longer than {MAX_LABEL_VALUE_LEN} bytes")]
+    LabelTooLong(String),
+    /// Too many labels.
+    #[error("{0} labels given; at most {MAX_LABELS}")]
+    TooManyLabels(usize),
+}
+
+/// Check a session or reference-set name (it becomes a Prometheus label value and a key).
+pub fn check_name(what: &'static str, name: &str) -> Result<(), NameError> {
+    let ok = !name.is_empty()
+        && name.len() <= MAX_NAME_LEN
+        && name.as_bytes()[0].is_ascii_alphanumeric()
+        && name.bytes().all(|b| b.is_ascii_alphanumeric() || matches!(b, b'.' | b'_' | b'-'));
+    if ok {
+        Ok(())
+    } else {
+        Err(NameError::BadName { what, name: name.escape_debug().take(80).collect() })
+    }
+}
+
+/// Check session labels against Prometheus label-name rules and the limits.
+pub fn check_labels(labels: &BTreeMap<String, String>) -> Result<(), NameError> {
+    if labels.len() > MAX_LABELS {
+        return Err(NameError::TooManyLabels(labels.len()));
+    }
+    for (k, v) in labels {
+        let valid = k.bytes().enumerate().all(|(i, b)| b == b'_' || b.is_ascii_alphabetic() || (i > 0 && b.is_ascii_digit()));
+        if k.is_empty() || !valid || k.starts_with("__") || RESERVED_LABELS.contains(&k.as_str()) {
+            return Err(NameError::BadLabel(k.escape_debug().take(80).collect()));
+        }
+        if v.len() > MAX_LABEL_VALUE_LEN {
+            return Err(NameError::LabelTooLong(k.clone()));
+        }
+    }
+    Ok(())
+}
+
+/// The normalised form of a source text used for lookup: Unicode NFC, white space collapsed to
+/// single spaces and trimmed, lowercased when the session lowercases.
+pub fn normalize_source(text: &str, lowercase: bool) -> String {
+    let nfc: String = text.nfc().collect();
+    let mut lowered = String::with_capacity(nfc.len());
+    push_lowercased(&nfc, lowercase, &mut lowered);
+    let mut out = String::with_capacity(lowered.len());
+    for w in lowered.split(is_space).filter(|w| !w.is_empty()) {
+        if !out.is_empty() {
+            out.push(' ');
+        }
+        out.push_str(w);
+    }
+    out
+}
+
+/// Lookup of live traffic by source text. Segments whose normalised sources are equal become
+/// one multi-reference entry (the union of their references), compiled like any reference set.
+pub struct SourceIndex {
+    map: HashMap<String, u32>,
+    /// Entry `i` of the merged set: the ids of the segments it merges (for reporting).
+    compiled: Compiled,
+}
+
+impl SourceIndex {
+    fn build(refs: &RefSet, config: ScoreConfig) -> Option<SourceIndex> {
+        let mut map: HashMap<String, u32> = HashMap::new();
+        let mut merged: Vec<SegmentInput> = Vec::new();
+        for seg in refs.segments() {
+            let Some(src) = seg.source() else { continue };
+            let key = normalize_source(src, config.lowercase);
+            match map.get(&key) {
+                Some(&i) => merged[i as usize].refs.extend(seg.refs().map(str::to_owned)),
+                None => {
+                    map.insert(key, merged.len() as u32);
+                    merged.push(SegmentInput { id: seg.id().to_owned(), source: Some(src.to_owned()), refs: seg.refs().map(str::to_owned).collect() });
+                }
+            }
+        }
+        if merged.is_empty() {
+            return None;
+        }
+        // Ids stay unique (each entry keeps its first segment's id), so this cannot fail.
+        let set = RefSet::new(merged).ok()?;
+        Some(SourceIndex { map, compiled: Compiled::build(Arc::new(set), config) })
+    }
+
+    /// Number of distinct normalised sources.
+    pub fn len(&self) -> usize {
+        self.map.len()
+    }
+
+    /// True when no segment has a source.
+    pub fn is_empty(&self) -> bool {
+        self.map.is_empty()
+    }
+}
+
+/// What a session was created with.
+#[derive(Debug, Clone)]
+pub struct SessionSpec {
+    /// Session name.
+    pub name: String,
+    /// Name of the reference set.
+    pub refset: String,
+    /// Scoring configuration (validated).
+    pub config: ScoreConfig,
+    /// Free-form labels.
+    pub labels: BTreeMap<String, String>,
+    /// `recent` window size in segments.
+    pub window: usize,
+}
+
+/// How one item of a batch came out.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Outcome {
+    /// Scored against segment `index` (of the set, or of the source index when `by_source`).
+    Scored { stats: SegmentStats, by_source: bool, index: u32 },
+    /// No segment with that id or source.
+    Unknown,
+}
+
+/// The key an item names its segment by.
+#[derive(Debug, Clone, Copy)]
+pub enum ItemKey<'a> {
+    /// A segment id of the reference set.
+    Id(&'a str),
+    /// A source text (live traffic).
+    Source(&'a str),
+}
+
+/// Counters of a session, all additive.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Counts {
+    /// Items scored.
+    pub scored: u64,
+    /// Items that named no segment.
+    pub unknown: u64,
+    /// Items rejected as invalid.
+    pub rejected: u64,
+}
+
+/// Mutable statistics of a session, behind one short lock.
+#[derive(Debug)]
+pub struct SessionState {
+    /// Everything scored since creation or the last reset.
+    pub cumulative: CorpusStats,
+    /// The most recent segments.
+    pub window: Window,
+    /// Outcome counters.
+    pub counts: Counts,
+    /// Highest applied sequence per producer (exactly-once batches).
+    pub producers: HashMap<String, u64>,
+}
+
+/// A live session.
+pub struct Session {
+    spec: SessionSpec,
+    compiled: Compiled,
+    sources: Option<SourceIndex>,
+    created_unix: i64,
+    /// Held only to add a batch's statistics or to read a snapshot, never across an await or
+    /// while scoring: a std mutex is right for such short sections.
+    state: Mutex<SessionState>,
+}
+
+impl Session {
+    /// Create a session over `refs` (the reference-set version it keeps for its lifetime).
+    pub fn new(spec: SessionSpec, refs: Arc<RefSet>, created_unix: i64) -> Session {
+        let sources = SourceIndex::build(&refs, spec.config);
+        let compiled = Compiled::build(refs, spec.config);
+        let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new() };
+        Session { spec, compiled, sources, created_unix, state: Mutex::new(state) }
+    }
+
+    /// The definition.
+    pub fn spec(&self) -> &SessionSpec {
+        &self.spec
+    }
+
+    /// The reference set version this session scores against.
+    pub fn refs(&self) -> &Arc<RefSet> {
+        self.compiled.refs()
+    }
+
+    /// Creation time, seconds since the Unix epoch.
+    pub fn created_unix(&self) -> i64 {
+        self.created_unix
+    }
+
+    /// Distinct normalised sources available for lookup (0 when the set has no sources).
+    pub fn source_entries(&self) -> usize {
+        self.sources.as_ref().map_or(0, SourceIndex::len)
+    }
+
+    /// Heap bytes of the compiled tables of this session.
+    pub fn memory_bytes(&self) -> usize {
+        self.compiled.memory_bytes() + self.sources.as_ref().map_or(0, |s| s.compiled.memory_bytes())
+    }
+
+    /// Score one item (CPU work, no lock taken).
+    pub fn score_item(&self, key: ItemKey<'_>, hyp: &str, scratch: &mut Scratch) -> Outcome {
+        match key {
+            ItemKey::Id(id) => match self.compiled.refs().find(id) {
+                Some(i) => Outcome::Scored { stats: self.compiled.score_segment(i, hyp, scratch), by_source: false, index: i as u32 },
+                None => Outcome::Unknown,
+            },
+            ItemKey::Source(src) => {
+                let Some(ix) = &self.sources else { return Outcome::Unknown };
+                match ix.map.get(&normalize_source(src, self.spec.config.lowercase)) {
+                    Some(&i) => Outcome::Scored { stats: ix.compiled.score_segment(i as usize, hyp, scratch), by_source: true, index: i },
+                    None => Outcome::Unknown,
+                }
+            }
+        }
+    }
+
+    /// The id of a scored segment (the first merged segment's id for a source entry).
+    pub fn segment_id(&self, by_source: bool, index: u32) -> &str {
+        let set = match (&self.sources, by_source) {
+            (Some(ix), true) => ix.compiled.refs(),
+            _ => self.compiled.refs(),
+        };
+        set.segment(index as usize).id()
+    }
+
+    /// Lock the statistics (short sections only).
+    pub fn state(&self) -> MutexGuard<'_, SessionState> {
+        // A panic while holding this lock cannot leave the integers half-updated in a way that
+        // matters more than losing the process; keep serving the data.
+        self.state.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    /// Zero the statistics and counters (producer sequence marks are kept, so a retried old
+    /// batch is still recognised).
+    pub fn reset(&self) {
+        let mut st = self.state();
+        st.cumulative = CorpusStats::default();
+        st.window.clear();
+        st.counts = Counts::default();
+    }
+}
+
+impl SessionState {
+    /// Whether a batch (producer, sequence) was already applied. Sequence 0 or an empty
+    /// producer opts out of duplicate detection.
+    pub fn is_duplicate(&self, producer: &str, sequence: u64) -> bool {
+        !producer.is_empty() && sequence > 0 && self.producers.get(producer).is_some_and(|&s| sequence <= s)
+    }
+
+    /// Apply the outcomes of one batch. Returns false (and changes nothing) for a duplicate.
+    pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64) -> bool {
+        if self.is_duplicate(producer, sequence) {
+            return false;
+        }
+        if !producer.is_empty() && sequence > 0 {
+            self.producers.insert(producer.to_owned(), sequence);
+        }
+        for o in outcomes {
+            match o {
+                Outcome::Scored { stats, .. } => {
+                    self.cumulative.add_segment(stats);
+                    self.window.push(stats);
+                    self.counts.scored += 1;
+                }
+                Outcome::Unknown => self.counts.unknown += 1,
+            }
+        }
+        self.counts.rejected += rejected;
+        true
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn set() -> Arc<RefSet> {
+        let seg = |id: &str, src: &str, refs: &[&str]| SegmentInput { id: id.into(), source: Some(src.into()), refs: refs.iter().map(|r| r.to_string()).collect() };
+        Arc::new(
+            RefSet::new(vec![
+                seg("1", "The ferry leaves at nine.", &["Die Fähre fährt um neun ab."]),
+                seg("2", "Please  keep your ticket.", &["Bitte behalten Sie Ihr Ticket."]),
+                seg("3", "the ferry leaves at nine.", &["Die Fähre legt um neun ab."]),
+            ])
+            .unwrap(),
+        )
+    }
+
+    fn spec(lowercase: bool) -> SessionSpec {
+        let config = ScoreConfig { lowercase, ..Default::default() };
+        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2 }
+    }
+
+    #[test]
+    fn names_and_labels() {
+        assert!(check_name("session name", "model-v7.en-de_probe").is_ok());
+        for bad in ["", "-x", "a b", "a\"b", "a\nb", &"x".repeat(65), "ü"] {
+            assert!(check_name("session name", bad).is_err(), "{bad:?}");
+        }
+        let ok: BTreeMap<String, String> = [("model".to_string(), "v7".to_string())].into();
+        assert!(check_labels(&ok).is_ok());
+        for bad in ["", "1a", "a-b", "__x", "session"] {
+            let l: BTreeMap<String, String> = [(bad.to_string(), "v".to_string())].into();
+            assert!(check_labels(&l).is_err(), "{bad:?}");
+        }
+    }
+
+    #[test]
+    fn source_normalisation() {
+        assert_eq!(normalize_source("  A\u{0301}b \t c\u{2003}", false), "\u{00C1}b c");
+        assert_eq!(normalize_source("Ferry LEAVES", true), "ferry leaves");
+    }
+
+    #[test]
+    fn duplicate_sources_merge_into_one_multi_reference_entry() {
+        let cased = Session::new(spec(false), set(), 0);
+        assert_eq!(cased.source_entries(), 3);
+        let lower = Session::new(spec(true), set(), 0);
+        assert_eq!(lower.source_entries(), 2);
+        let mut scratch = Scratch::default();
+        // The hypothesis equals the second reference of the merged entry: BLEU statistics as for
+        // an identical reference (closest length 7 tokens with the nist tokenizer).
+        match lower.score_item(ItemKey::Source("THE ferry leaves   at nine."), "Die Fähre legt um neun ab.", &mut scratch) {
+            Outcome::Scored { stats, by_source: true, index } => {
+                assert_eq!(stats.bleu.matches[..4], stats.bleu.totals[..4]);
+                assert_eq!(lower.segment_id(true, index), "1");
+            }
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(lower.score_item(ItemKey::Source("no such sentence"), "x", &mut scratch), Outcome::Unknown);
+        assert_eq!(lower.score_item(ItemKey::Id("9"), "x", &mut scratch), Outcome::Unknown);
+    }
+
+    #[test]
+    fn apply_counts_once_per_producer_sequence() {
+        let s = Session::new(spec(false), set(), 0);
+        let mut scratch = Scratch::default();
+        let o = s.score_item(ItemKey::Id("2"), "Bitte behalten Sie Ihr Ticket.", &mut scratch);
+        let mut st = s.state();
+        assert!(st.apply("p1", 1, &[o, Outcome::Unknown], 1));
+        assert!(!st.apply("p1", 1, &[o], 0), "same sequence again is a duplicate");
+        assert!(st.apply("p2", 1, &[o], 0), "another producer has its own sequence");
+        assert!(st.apply("", 0, &[o], 0) && st.apply("", 0, &[o], 0), "anonymous batches are not deduplicated");
+        assert_eq!(st.counts, Counts { scored: 4, unknown: 1, rejected: 1 });
+        assert_eq!(st.cumulative.segments, 4);
+        assert_eq!(st.window.stats().segments, 2, "window of 2");
+    }
+}

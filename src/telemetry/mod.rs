@@ -1,0 +1,196 @@
+//! Logs (tracing) and Prometheus metrics: every metric name, its help text and its buckets live
+//! here, in one place.
+
+use std::collections::BTreeMap;
+use std::net::SocketAddr;
+
+use metrics::{counter, gauge, histogram, describe_counter, describe_gauge, describe_histogram, Unit};
+use metrics_exporter_prometheus::{Matcher, PrometheusBuilder, PrometheusHandle};
+use tokio::io::{AsyncReadExt, AsyncWriteExt};
+use tokio::net::TcpListener;
+
+use crate::metric::{ChrfStats, CorpusStats, ScoreConfig};
+
+/// Buckets of `mtgauge_batch_seconds` (seconds; common practice for request latencies).
+pub const BATCH_SECONDS_BUCKETS: &[f64] = &[0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5];
+
+const SEGMENTS: &str = "mtgauge_segments_total";
+const BLEU_MATCHES: &str = "mtgauge_bleu_matches_total";
+const BLEU_NGRAMS: &str = "mtgauge_bleu_ngrams_total";
+const HYP_TOKENS: &str = "mtgauge_hypothesis_tokens_total";
+const REF_TOKENS: &str = "mtgauge_reference_tokens_total";
+const CHRF_MATCHES: &str = "mtgauge_chrf_matches_total";
+const CHRF_HYP: &str = "mtgauge_chrf_hypothesis_ngrams_total";
+const CHRF_REF: &str = "mtgauge_chrf_reference_ngrams_total";
+const SCORE: &str = "mtgauge_score";
+const SESSION_INFO: &str = "mtgauge_session_info";
+const REFSET_SEGMENTS: &str = "mtgauge_refset_segments";
+const REFSET_BYTES: &str = "mtgauge_refset_bytes";
+const ACTIVE_STREAMS: &str = "mtgauge_active_streams";
+const BUILD_INFO: &str = "mtgauge_build_info";
+const BATCH_SECONDS: &str = "mtgauge_batch_seconds";
+
+/// Install the process-wide Prometheus recorder and describe every metric.
+pub fn install_metrics() -> Result<PrometheusHandle, String> {
+    let recorder = PrometheusBuilder::new()
+        .set_buckets_for_metric(Matcher::Full(BATCH_SECONDS.into()), BATCH_SECONDS_BUCKETS)
+        .map_err(|e| e.to_string())?
+        .build_recorder();
+    let handle = recorder.handle();
+    metrics::set_global_recorder(recorder).map_err(|e| e.to_string())?;
+    describe_counter!(SEGMENTS, "Items received per session by outcome: scored, unknown (no such segment), rejected (invalid).");
+    describe_counter!(BLEU_MATCHES, "BLEU clipped n-gram matches per session and order (additive: sum over replicas, then derive BLEU).");
+    describe_counter!(BLEU_NGRAMS, "BLEU hypothesis n-grams per session and order.");
+    describe_counter!(HYP_TOKENS, "BLEU hypothesis length in tokens per session.");
+    describe_counter!(REF_TOKENS, "BLEU effective reference length in tokens per session.");
+    describe_counter!(CHRF_MATCHES, "chrF n-gram matches per session, metric (chrf, chrf++), kind (char, word) and order.");
+    describe_counter!(CHRF_HYP, "chrF hypothesis n-grams per session, metric, kind and order.");
+    describe_counter!(CHRF_REF, "chrF reference n-grams per session, metric, kind and order.");
+    describe_gauge!(SCORE, "Score (0-100) per session, metric and window (cumulative, recent), derived from this replica's statistics.");
+    describe_gauge!(SESSION_INFO, "Constant 1 per live session, with its reference set, digest and labels.");
+    describe_gauge!(REFSET_SEGMENTS, "Segments of each loaded reference set.");
+    describe_gauge!(REFSET_BYTES, Unit::Bytes, "Memory of each loaded reference set's text.");
+    describe_gauge!(ACTIVE_STREAMS, "Scoring streams open now.");
+    describe_gauge!(BUILD_INFO, "Constant 1, labelled with the mtgauge version.");
+    describe_histogram!(BATCH_SECONDS, Unit::Seconds, "Time from receiving a batch to its acknowledgement.");
+    gauge!(BUILD_INFO, "version" => env!("CARGO_PKG_VERSION")).set(1.0);
+    Ok(handle)
+}
+
+/// Serve `GET /metrics` (Prometheus text format) on `listener` until the task is dropped.
+pub async fn serve_metrics(listener: TcpListener, handle: PrometheusHandle) {
+    loop {
+        let Ok((mut sock, _)) = listener.accept().await else { continue };
+        let handle = handle.clone();
+        tokio::spawn(async move {
+            let mut buf = vec![0u8; 4096];
+            let mut n = 0;
+            // Read the request head (bounded); the body, if any, is ignored.
+            while n < buf.len() {
+                match tokio::time::timeout(std::time::Duration::from_secs(5), sock.read(&mut buf[n..])).await {
+                    Ok(Ok(0)) | Err(_) | Ok(Err(_)) => return,
+                    Ok(Ok(k)) => n += k,
+                }
+                if buf[..n].windows(4).any(|w| w == b"\r\n\r\n") {
+                    break;
+                }
+            }
+            let head = String::from_utf8_lossy(&buf[..n]);
+            let path = head.split_whitespace().nth(1).unwrap_or("");
+            let (status, ctype, body) = if head.starts_with("GET ") && (path == "/metrics" || path.starts_with("/metrics?")) {
+                ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render())
+            } else {
+                ("404 Not Found", "text/plain; charset=utf-8", "not found: try /metrics\n".to_string())
+            };
+            let resp = format!("HTTP/1.1 {status}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}", body.len());
+            let _ = sock.write_all(resp.as_bytes()).await;
+            let _ = sock.shutdown().await;
+        });
+    }
+}
+
+/// Count one applied batch: its outcome counts and the summed statistics of its scored items.
+pub fn record_batch(session: &str, config: &ScoreConfig, scored: u64, unknown: u64, rejected: u64, sum: &CorpusStats) {
+    let s = session.to_owned();
+    for (outcome, n) in [("scored", scored), ("unknown", unknown), ("rejected", rejected)] {
+        counter!(SEGMENTS, "session" => s.clone(), "outcome" => outcome).increment(n);
+    }
+    if config.metrics.bleu {
+        for n in 0..config.bleu_order {
+            let order = (n + 1).to_string();
+            counter!(BLEU_MATCHES, "session" => s.clone(), "order" => order.clone()).increment(sum.bleu.matches[n]);
+            counter!(BLEU_NGRAMS, "session" => s.clone(), "order" => order).increment(sum.bleu.totals[n]);
+        }
+        counter!(HYP_TOKENS, "session" => s.clone()).increment(sum.bleu.hyp_len);
+        counter!(REF_TOKENS, "session" => s.clone()).increment(sum.bleu.ref_len);
+    }
+    let chrf = |metric: &'static str, st: &ChrfStats, words: usize| {
+        for (kind, counts, orders) in [("char", &st.char, config.chrf_char_order), ("word", &st.word, words)] {
+            for n in 0..orders {
+                let order = (n + 1).to_string();
+                let labels = [("session", s.clone()), ("metric", metric.to_owned()), ("kind", kind.to_owned()), ("order", order)];
+                counter!(CHRF_MATCHES, &labels).increment(counts.matches[n]);
+                counter!(CHRF_HYP, &labels).increment(counts.hyp[n]);
+                counter!(CHRF_REF, &labels).increment(counts.reference[n]);
+            }
+        }
+    };
+    if config.metrics.chrf {
+        chrf("chrf", &sum.chrf, 0);
+    }
+    if config.metrics.chrfpp {
+        chrf("chrf++", &sum.chrfpp, config.chrf_word_order);
+    }
+}
+
+/// Set the score gauges of a session from its cumulative and recent statistics.
+pub fn record_scores(session: &str, config: &ScoreConfig, cumulative: &CorpusStats, recent: &CorpusStats) {
+    for (window, st) in [("cumulative", cumulative), ("recent", recent)] {
+        for (metric, value) in scores(config, st) {
+            gauge!(SCORE, "session" => session.to_owned(), "metric" => metric, "window" => window).set(value);
+        }
+    }
+}
+
+/// The configured metrics' corpus scores (0-100).
+pub fn scores(config: &ScoreConfig, st: &CorpusStats) -> Vec<(&'static str, f64)> {
+    let mut v = Vec::new();
+    if config.metrics.bleu {
+        v.push(("bleu", st.bleu.score(config.bleu_order).score));
+    }
+    if config.metrics.chrf {
+        v.push(("chrf", st.chrf.score(config.chrf_char_order, 0, config.beta).score));
+    }
+    if config.metrics.chrfpp {
+        v.push(("chrf++", st.chrfpp.score(config.chrf_char_order, config.chrf_word_order, config.beta).score));
+    }
+    v
+}
+
+/// Publish (or re-publish) a session's info series.
+pub fn record_session_info(session: &str, refset: &str, digest: &str, labels: &BTreeMap<String, String>, live: bool) {
+    let mut l = vec![("session".to_owned(), session.to_owned()), ("refset".to_owned(), refset.to_owned()), ("digest".to_owned(), digest.to_owned())];
+    l.extend(labels.iter().map(|(k, v)| (k.clone(), v.clone())));
+    gauge!(SESSION_INFO, &l).set(if live { 1.0 } else { 0.0 });
+}
+
+/// Publish a reference set's size.
+pub fn record_refset(name: &str, segments: usize, bytes: usize) {
+    gauge!(REFSET_SEGMENTS, "refset" => name.to_owned()).set(segments as f64);
+    gauge!(REFSET_BYTES, "refset" => name.to_owned()).set(bytes as f64);
+}
+
+/// One more (or one fewer) open scoring stream.
+pub fn streams_delta(delta: f64) {
+    gauge!(ACTIVE_STREAMS).increment(delta);
+}
+
+/// Time of one batch.
+pub fn record_batch_seconds(secs: f64) {
+    histogram!(BATCH_SECONDS).record(secs);
+}
+
+/// Bound addresses, for the startup log and for tests that parse it.
+pub fn log_listening(grpc: SocketAddr, metrics: SocketAddr) {
+    tracing::info!(grpc = %grpc, metrics = %metrics, "listening");
+}
+
+/// Log format.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum LogFormat {
+    /// Human-readable lines.
+    Human,
+    /// One JSON object per line.
+    Json,
+}
+
+/// Set up tracing on stderr (level from `RUST_LOG`, default info).
+pub fn init_logs(format: LogFormat) {
+    use tracing_subscriber::EnvFilter;
+    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
+    let b = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let _ = match format {
+        LogFormat::Human => b.with_ansi(false).try_init(),
+        LogFormat::Json => b.json().try_init(),
+    };
+}

@@ -1,0 +1,119 @@
+//! A real `mtgauge serve` child process for integration tests (port 0, logs captured).
+
+#![allow(dead_code)]
+
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use tonic::transport::Channel;
+
+/// How long a test waits for the server to start or stop.
+pub const STARTUP_TIMEOUT: Duration = Duration::from_secs(30);
+
+pub struct Server {
+    pub child: Child,
+    pub grpc: String,
+    pub metrics: String,
+    pub logs: Arc<Mutex<Vec<String>>>,
+}
+
+/// A fresh temporary directory for one test.
+pub fn temp_dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("mtgauge-test-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+impl Server {
+    /// Start `mtgauge serve` on loopback port 0 with extra arguments.
+    pub fn start(extra: &[&str]) -> Server {
+        let mut child = Command::new(env!("CARGO_BIN_EXE_mtgauge"))
+            .args(["serve", "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0"])
+            .args(extra)
+            .env("RUST_LOG", "info")
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .spawn()
+            .expect("start mtgauge serve");
+        let stderr = child.stderr.take().unwrap();
+        let logs = Arc::new(Mutex::new(Vec::new()));
+        let (tx, rx) = std::sync::mpsc::channel::<String>();
+        let sink = Arc::clone(&logs);
+        std::thread::spawn(move || {
+            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
+                let _ = tx.send(line.clone());
+                sink.lock().unwrap().push(line);
+            }
+        });
+        let deadline = Instant::now() + STARTUP_TIMEOUT;
+        loop {
+            let left = deadline.saturating_duration_since(Instant::now());
+            let line = rx.recv_timeout(left).unwrap_or_else(|_| panic!("server did not log its addresses; logs: {:?}", logs.lock().unwrap()));
+            if let Some(rest) = line.split("listening ").nth(1) {
+                let field = |k: &str| rest.split_whitespace().find_map(|w| w.strip_prefix(k)).unwrap().to_owned();
+                return Server { child, grpc: format!("http://{}", field("grpc=")), metrics: field("metrics="), logs };
+            }
+        }
+    }
+
+    pub async fn channel(&self) -> Channel {
+        tonic::transport::Endpoint::from_shared(self.grpc.clone()).unwrap().connect().await.expect("connect")
+    }
+
+    /// Wait until gRPC health reports SERVING.
+    pub async fn wait_serving(&self) -> Channel {
+        let ch = self.channel().await;
+        let mut health = tonic_health::pb::health_client::HealthClient::new(ch.clone());
+        let deadline = Instant::now() + STARTUP_TIMEOUT;
+        loop {
+            let r = health.check(tonic_health::pb::HealthCheckRequest { service: String::new() }).await;
+            if r.is_ok_and(|r| r.into_inner().status == tonic_health::pb::health_check_response::ServingStatus::Serving as i32) {
+                return ch;
+            }
+            assert!(Instant::now() < deadline, "server never reported SERVING");
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+
+    /// GET /metrics.
+    pub fn scrape(&self) -> String {
+        use std::io::{Read, Write};
+        let mut s = std::net::TcpStream::connect(&self.metrics).unwrap();
+        s.write_all(b"GET /metrics HTTP/1.1\r\nHost: x\r\n\r\n").unwrap();
+        let mut out = String::new();
+        s.read_to_string(&mut out).unwrap();
+        let (head, body) = out.split_once("\r\n\r\n").unwrap();
+        assert!(head.starts_with("HTTP/1.1 200"), "{head}");
+        body.to_owned()
+    }
+
+    /// Send SIGTERM and wait for the exit (bounded).
+    pub fn terminate(&mut self) -> std::process::ExitStatus {
+        let _ = Command::new("kill").args(["-TERM", &self.child.id().to_string()]).status();
+        let deadline = Instant::now() + STARTUP_TIMEOUT;
+        loop {
+            if let Some(st) = self.child.try_wait().unwrap() {
+                return st;
+            }
+            assert!(Instant::now() < deadline, "server did not exit after SIGTERM");
+            std::thread::sleep(Duration::from_millis(20));
+        }
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// Write the demo files into `dir`.
+pub fn demo_files(dir: &Path) {
+    mtgauge::demo::write_demo_files(dir).unwrap();
+}

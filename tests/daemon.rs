@@ -1,0 +1,363 @@
+//! The daemon end to end: a real `mtgauge serve` process on 127.0.0.1:0, driven over gRPC.
+
+mod common;
+
+use std::sync::Arc;
+
+use common::{demo_files, temp_dir, Server};
+use mtgauge::demo::{demo_segments, demo_systems};
+use mtgauge::metric::{CorpusStats, ScoreConfig};
+use mtgauge::pb;
+use mtgauge::pb::ref_sets_client::RefSetsClient;
+use mtgauge::pb::scoring_client::ScoringClient;
+use mtgauge::pb::sessions_client::SessionsClient;
+use mtgauge::refs::compiled::{Compiled, Scratch};
+use mtgauge::refs::{RefSet, SegmentInput};
+use mtgauge::rng::SplitMix64;
+use mtgauge::server::convert::{config_to_pb, stats_from_pb};
+use tonic::Code;
+
+fn all_metrics() -> ScoreConfig {
+    ScoreConfig { metrics: "bleu,chrf,chrf++".parse().unwrap(), ..Default::default() }
+}
+
+fn demo_refset() -> Arc<RefSet> {
+    Arc::new(RefSet::new(demo_segments().into_iter().map(|s| SegmentInput { id: s.id, source: Some(s.source), refs: s.refs })).unwrap())
+}
+
+/// Every (segment index, hypothesis) of all demo systems: 900 items over 300 segments.
+fn demo_items() -> Vec<(usize, String)> {
+    demo_systems().into_iter().flat_map(|sys| sys.hypotheses.into_iter().enumerate()).collect()
+}
+
+/// The offline engine's statistics of the same items.
+fn offline(items: &[(usize, String)], config: ScoreConfig) -> CorpusStats {
+    let compiled = Compiled::build(demo_refset(), config);
+    let mut scratch = Scratch::default();
+    let mut sum = CorpusStats::default();
+    for (i, h) in items {
+        sum.add_segment(&compiled.score_segment(*i, h, &mut scratch));
+    }
+    sum
+}
+
+async fn create(ch: &tonic::transport::Channel, name: &str, refset: &str, config: ScoreConfig) -> pb::SessionInfo {
+    let mut s = SessionsClient::new(ch.clone());
+    let labels = [("model".to_string(), "v7".to_string())].into_iter().collect();
+    s.create(pb::CreateSessionRequest { name: name.into(), refset: refset.into(), config: Some(config_to_pb(&config)), labels, window: 50, if_not_exists: false }).await.expect("create session").into_inner()
+}
+
+async fn scores(ch: &tonic::transport::Channel, session: &str) -> pb::ScoresReport {
+    ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: session.into() }).await.expect("get scores").into_inner()
+}
+
+fn item(by_source: bool, seg: usize, hyp: &str) -> pb::ScoreItem {
+    let segs = demo_segments();
+    let key = if by_source {
+        // Live traffic does not send clean text: vary case-preserving white space.
+        pb::score_item::Key::Source(format!("  {}\t", segs[seg].source.replace(' ', "  ")))
+    } else {
+        pb::score_item::Key::SegmentId(segs[seg].id.clone())
+    };
+    pb::ScoreItem { key: Some(key), hypothesis: hyp.to_owned() }
+}
+
+/// 16 producers, each on its own stream, send shuffled interleaved parts in batches of random
+/// sizes; the session's integer statistics must equal the offline engine's over all items.
+async fn sixteen_streams(by_source: bool) {
+    let dir = temp_dir(if by_source { "streams-src" } else { "streams-id" });
+    demo_files(&dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let server = Server::start(&["--refset", &refs]);
+    let ch = server.wait_serving().await;
+    let config = all_metrics();
+    create(&ch, "probe", "ferry", config).await;
+
+    let mut items = demo_items();
+    let mut rng = SplitMix64::new(if by_source { 2 } else { 1 });
+    for i in (1..items.len()).rev() {
+        items.swap(i, rng.below(i as u64 + 1) as usize);
+    }
+    let mut parts: Vec<Vec<(usize, String)>> = vec![Vec::new(); 16];
+    for (k, it) in items.iter().enumerate() {
+        parts[k % 16].push(it.clone());
+    }
+    let mut tasks = Vec::new();
+    for (p, part) in parts.into_iter().enumerate() {
+        let ch = ch.clone();
+        let mut rng = SplitMix64::new(100 + p as u64);
+        tasks.push(tokio::spawn(async move {
+            let mut batches = Vec::new();
+            let mut rest = &part[..];
+            let mut seq = 0;
+            while !rest.is_empty() {
+                let n = (1 + rng.below(40) as usize).min(rest.len());
+                seq += 1;
+                batches.push(pb::ScoreBatch {
+                    session: "probe".into(),
+                    producer: format!("worker-{p}"),
+                    sequence: seq,
+                    items: rest[..n].iter().map(|(i, h)| item(by_source, *i, h)).collect(),
+                    want_segment_scores: p == 0,
+                });
+                rest = &rest[n..];
+            }
+            let sent: u32 = batches.iter().map(|b| b.items.len() as u32).sum();
+            let nb = batches.len();
+            let mut acks = ScoringClient::new(ch).stream(tokio_stream::iter(batches)).await.expect("open stream").into_inner();
+            let (mut scored, mut count) = (0u32, 0usize);
+            while let Some(ack) = acks.message().await.expect("ack") {
+                assert_eq!(ack.unknown + ack.rejected, 0, "{ack:?}");
+                assert!(!ack.duplicate);
+                assert_eq!(ack.sequence, count as u64 + 1, "acks in order");
+                if p == 0 {
+                    assert_eq!(ack.segment_scores.len() as u32, ack.scored, "segment scores on request");
+                    assert!(ack.segment_scores.iter().all(|s| s.bleu.is_some_and(|b| (0.0..=100.0).contains(&b))));
+                }
+                scored += ack.scored;
+                count += 1;
+            }
+            assert_eq!(count, nb, "one ack per batch");
+            assert_eq!(scored, sent);
+            scored
+        }));
+    }
+    let mut total = 0;
+    for t in tasks {
+        total += t.await.unwrap();
+    }
+    assert_eq!(total as usize, items.len());
+    let report = scores(&ch, "probe").await;
+    let got = stats_from_pb(report.cumulative.as_ref().unwrap());
+    let want = offline(&items, config);
+    assert_eq!(got, want, "server statistics equal the offline engine's");
+    assert_eq!(got.segments, 900);
+    let recent = stats_from_pb(report.recent.as_ref().unwrap());
+    assert_eq!(recent.segments, 50, "window of 50");
+    let s = report.cumulative_scores.unwrap();
+    assert!((s.bleu.unwrap() - want.bleu.score(4).score).abs() < 1e-9);
+
+    // The Prometheus counters carry the same integers.
+    let scrape = server.scrape();
+    let value = |name: &str, labels: &str| -> u64 {
+        let prefix = format!("{name}{{{labels}}} ");
+        scrape.lines().find_map(|l| l.strip_prefix(&prefix)).unwrap_or_else(|| panic!("{prefix} not in scrape")).trim().parse::<f64>().unwrap() as u64
+    };
+    assert_eq!(value("mtgauge_segments_total", "session=\"probe\",outcome=\"scored\""), 900);
+    for n in 0..4 {
+        assert_eq!(value("mtgauge_bleu_matches_total", &format!("session=\"probe\",order=\"{}\"", n + 1)), want.bleu.matches[n]);
+        assert_eq!(value("mtgauge_bleu_ngrams_total", &format!("session=\"probe\",order=\"{}\"", n + 1)), want.bleu.totals[n]);
+    }
+    assert_eq!(value("mtgauge_hypothesis_tokens_total", "session=\"probe\""), want.bleu.hyp_len);
+    assert_eq!(value("mtgauge_reference_tokens_total", "session=\"probe\""), want.bleu.ref_len);
+    assert_eq!(value("mtgauge_chrf_matches_total", "session=\"probe\",metric=\"chrf\",kind=\"char\",order=\"6\""), want.chrf.char.matches[5]);
+    assert_eq!(value("mtgauge_chrf_reference_ngrams_total", "session=\"probe\",metric=\"chrf++\",kind=\"word\",order=\"2\""), want.chrfpp.word.reference[1]);
+    promtool_check(&scrape);
+}
+
+/// `promtool check metrics` (Debian package prometheus) on a live scrape. CI sets
+/// MTGAUGE_REQUIRE_PROMTOOL=1 so that a missing promtool fails instead of being skipped.
+fn promtool_check(scrape: &str) {
+    use std::io::Write;
+    let required = std::env::var_os("MTGAUGE_REQUIRE_PROMTOOL").is_some();
+    let child = std::process::Command::new("promtool").args(["check", "metrics"]).stdin(std::process::Stdio::piped()).stdout(std::process::Stdio::piped()).stderr(std::process::Stdio::piped()).spawn();
+    let mut child = match child {
+        Ok(c) => c,
+        Err(e) if !required => {
+            eprintln!("promtool not found ({e}); set MTGAUGE_REQUIRE_PROMTOOL=1 to require it");
+            return;
+        }
+        Err(e) => panic!("promtool required but not runnable: {e}"),
+    };
+    child.stdin.take().unwrap().write_all(scrape.as_bytes()).unwrap();
+    let out = child.wait_with_output().unwrap();
+    assert!(out.status.success(), "promtool check metrics failed:\n{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 4)]
+async fn sixteen_streams_by_segment_id_equal_the_offline_engine() {
+    sixteen_streams(false).await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 4)]
+async fn sixteen_streams_by_source_lookup_equal_the_offline_engine() {
+    sixteen_streams(true).await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn lifecycle_unknown_reset_close_replace_watch() {
+    let dir = temp_dir("lifecycle");
+    demo_files(&dir);
+    let server = Server::start(&["--refset-dir", dir.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let mut refsets = RefSetsClient::new(ch.clone());
+    let load = |paths: Vec<&str>, replace: bool| pb::LoadRefSetRequest { name: "ferry".into(), format: pb::RefFormat::Plain as i32, paths: paths.into_iter().map(String::from).collect(), source_path: "source.en.txt".into(), replace };
+    let one = refsets.load(load(vec!["ref1.de.txt"], false)).await.unwrap().into_inner();
+    assert_eq!((one.segments, one.references, one.with_source), (300, 300, 300));
+    let err = refsets.load(load(vec!["ref1.de.txt"], false)).await.unwrap_err();
+    assert_eq!(err.code(), Code::AlreadyExists);
+
+    let config = all_metrics();
+    let v1 = create(&ch, "old", "ferry", config).await;
+    assert_eq!(v1.refset_digest, one.digest);
+    let mut scoring = ScoringClient::new(ch.clone());
+    let hyp = &demo_systems()[1].hypotheses;
+    let batch = |seq: u64, ids: &[&str]| pb::ScoreBatch {
+        session: "old".into(),
+        producer: "p".into(),
+        sequence: seq,
+        items: ids.iter().enumerate().map(|(k, id)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((*id).into())), hypothesis: hyp[k].clone() }).collect(),
+        want_segment_scores: false,
+    };
+    // Plain sets are keyed by line number.
+    let ack = scoring.submit(batch(1, &["1", "2", "no-such-id", "301"])).await.unwrap().into_inner();
+    assert_eq!((ack.scored, ack.unknown, ack.rejected), (2, 2, 0));
+
+    // Watch: a report per interval.
+    let mut watch = scoring.watch_scores(pb::WatchScoresRequest { session: "old".into(), interval_seconds: 1 }).await.unwrap().into_inner();
+    let first = watch.message().await.unwrap().unwrap();
+    assert_eq!(first.cumulative.unwrap().segments, 2);
+
+    // Replace the set while the session exists: the session keeps its version.
+    let two = refsets.load(load(vec!["ref1.de.txt", "ref2.de.txt"], true)).await.unwrap().into_inner();
+    assert_ne!(two.digest, one.digest);
+    assert_eq!(two.references, 600);
+    let still = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "old".into() }).await.unwrap().into_inner();
+    assert_eq!(still.refset_digest, one.digest);
+    let v2 = create(&ch, "new", "ferry", config).await;
+    assert_eq!(v2.refset_digest, two.digest);
+    let ack = scoring.submit(batch(2, &["3"])).await.unwrap().into_inner();
+    assert_eq!(ack.scored, 1);
+    let after = scores(&ch, "old").await;
+    assert_eq!(after.cumulative.unwrap().segments, 3);
+    assert_eq!(after.unknown, 2);
+    let second = watch.message().await.unwrap().unwrap();
+    assert!(second.unix_time >= first.unix_time);
+
+    // Reset zeroes statistics, keeps sequence marks.
+    SessionsClient::new(ch.clone()).reset(pb::ResetSessionRequest { name: "old".into() }).await.unwrap();
+    let zero = scores(&ch, "old").await;
+    assert_eq!(zero.cumulative.unwrap().segments, 0);
+    let dup = scoring.submit(batch(2, &["3"])).await.unwrap().into_inner();
+    assert!(dup.duplicate);
+    assert_eq!(scores(&ch, "old").await.cumulative.unwrap().segments, 0);
+
+    // Close: gone, and the watch ends with NOT_FOUND.
+    SessionsClient::new(ch.clone()).close(pb::CloseSessionRequest { name: "old".into() }).await.unwrap();
+    let err = scoring.get_scores(pb::GetScoresRequest { session: "old".into() }).await.unwrap_err();
+    assert_eq!(err.code(), Code::NotFound);
+    loop {
+        match watch.message().await {
+            Ok(Some(_)) => continue,
+            Ok(None) => panic!("watch ended without a status"),
+            Err(s) => {
+                assert_eq!(s.code(), Code::NotFound);
+                break;
+            }
+        }
+    }
+    let list = refsets.list(pb::ListRefSetsRequest {}).await.unwrap().into_inner();
+    assert_eq!(list.refsets.len(), 1);
+    assert_eq!(list.refsets[0].sessions, 1, "only 'new' uses the current version");
+    refsets.delete(pb::DeleteRefSetRequest { name: "ferry".into() }).await.unwrap();
+    // Sessions keep scoring against their version after the set is deleted.
+    let mut b = batch(1, &["4"]);
+    b.session = "new".into();
+    assert_eq!(scoring.submit(b).await.unwrap().into_inner().scored, 1);
+}
+
+fn code<T: std::fmt::Debug>(r: Result<tonic::Response<T>, tonic::Status>) -> Code {
+    let s = r.expect_err("must fail");
+    assert!(!s.message().is_empty());
+    s.code()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn bad_requests_get_precise_statuses() {
+    let dir = temp_dir("errors");
+    demo_files(&dir);
+    std::fs::create_dir_all(dir.join("sets")).unwrap();
+    std::fs::copy(dir.join("refs.jsonl"), dir.join("sets/refs.jsonl")).unwrap();
+    std::os::unix::fs::symlink(dir.join("ref1.de.txt"), dir.join("sets/outside.txt")).unwrap();
+    let cfg = dir.join("mtgauge.toml");
+    std::fs::write(&cfg, format!("refset_dir = {:?}\nmax_message_bytes = 65536\n[limits]\nmax_batch_items = 50\nmax_text_bytes = 2000\n", dir.join("sets"))).unwrap();
+    let server = Server::start(&["--config", cfg.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let mut refsets = RefSetsClient::new(ch.clone());
+    let mut sessions = SessionsClient::new(ch.clone());
+    let mut scoring = ScoringClient::new(ch.clone());
+    let load = |name: &str, path: &str| pb::LoadRefSetRequest { name: name.into(), format: pb::RefFormat::Jsonl as i32, paths: vec![path.into()], source_path: String::new(), replace: false };
+    refsets.load(load("ferry", "refs.jsonl")).await.expect("load inside the dir");
+
+    assert_eq!(code(refsets.load(load("x", "../ref1.de.txt")).await), Code::PermissionDenied);
+    assert_eq!(code(refsets.load(load("x", dir.join("ref1.de.txt").to_str().unwrap())).await), Code::PermissionDenied);
+    assert_eq!(code(refsets.load(load("x", "outside.txt")).await), Code::PermissionDenied, "symlink leaving the dir");
+    assert_eq!(code(refsets.load(load("x", "missing.jsonl")).await), Code::InvalidArgument);
+    assert_eq!(code(refsets.load(load("bad name", "refs.jsonl")).await), Code::InvalidArgument);
+    assert_eq!(code(refsets.describe(pb::DescribeRefSetRequest { name: "nope".into() }).await), Code::NotFound);
+
+    let req = |name: &str, refset: &str| pb::CreateSessionRequest { name: name.into(), refset: refset.into(), config: None, labels: Default::default(), window: 0, if_not_exists: false };
+    assert_eq!(code(sessions.create(req("v7", "nope")).await), Code::NotFound);
+    for bad in ["", "a b", "quote\"d", "new\nline", &"x".repeat(65)] {
+        assert_eq!(code(sessions.create(req(bad, "ferry")).await), Code::InvalidArgument, "{bad:?}");
+    }
+    let mut r = req("v7", "ferry");
+    r.labels = [("bad-label".to_string(), "x".to_string())].into_iter().collect();
+    assert_eq!(code(sessions.create(r).await), Code::InvalidArgument);
+    let mut r = req("v7", "ferry");
+    r.config = Some(pb::ScoreConfig { tokenizer: "no-such-tokenizer".into(), ..Default::default() });
+    assert_eq!(code(sessions.create(r).await), Code::InvalidArgument);
+    sessions.create(req("v7", "ferry")).await.unwrap();
+    assert_eq!(code(sessions.create(req("v7", "ferry")).await), Code::AlreadyExists);
+    let mut again = req("v7", "ferry");
+    again.if_not_exists = true;
+    sessions.create(again).await.expect("identical definition with if_not_exists");
+
+    let batch = |session: &str, items: Vec<pb::ScoreItem>| pb::ScoreBatch { session: session.into(), producer: String::new(), sequence: 0, items, want_segment_scores: false };
+    let it = |id: &str, hyp: &str| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(id.into())), hypothesis: hyp.into() };
+    assert_eq!(code(scoring.submit(batch("nope", vec![it("notice-0001", "x")])).await), Code::NotFound);
+    assert_eq!(code(scoring.submit(batch("v7", vec![])).await), Code::InvalidArgument);
+    let many = (0..51).map(|_| it("notice-0001", "x")).collect();
+    let s = scoring.submit(batch("v7", many)).await.unwrap_err();
+    assert_eq!(s.code(), Code::ResourceExhausted);
+    assert!(s.message().contains("limits.max_batch_items"), "{}", s.message());
+    let huge = "Fähre ".repeat(20_000);
+    let s = scoring.submit(batch("v7", vec![it("notice-0001", &huge)])).await.unwrap_err();
+    assert!(matches!(s.code(), Code::ResourceExhausted | Code::OutOfRange), "oversize message: {s:?}");
+    let ack = scoring.submit(batch("v7", vec![pb::ScoreItem { key: None, hypothesis: "x".into() }, it("notice-0001", &"x".repeat(2001)), it("notice-0001", "Hunde")])).await.unwrap().into_inner();
+    assert_eq!((ack.scored, ack.rejected), (1, 2));
+    assert!(ack.rejections[0].reason.contains("neither"));
+    assert!(ack.rejections[1].reason.contains("limits.max_text_bytes"));
+
+    // A second live stream of the same producer into the same session is refused.
+    let (tx, rx) = tokio::sync::mpsc::channel(4);
+    let mut first = scoring.stream(tokio_stream::wrappers::ReceiverStream::new(rx)).await.unwrap().into_inner();
+    let mut b = batch("v7", vec![it("notice-0002", "x")]);
+    (b.producer, b.sequence) = ("same".into(), 1);
+    tx.send(b.clone()).await.unwrap();
+    assert_eq!(first.message().await.unwrap().unwrap().scored, 1);
+    b.sequence = 2;
+    let mut second = ScoringClient::new(ch.clone()).stream(tokio_stream::iter(vec![b])).await.unwrap().into_inner();
+    let s = second.message().await.unwrap_err();
+    assert_eq!(s.code(), Code::FailedPrecondition);
+    drop(tx);
+    assert!(first.message().await.unwrap().is_none());
+
+    // The server survived all of it.
+    let info = sessions.get(pb::GetSessionRequest { name: "v7".into() }).await.unwrap().into_inner();
+    assert_eq!((info.scored, info.rejected), (2, 2));
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn sigterm_reports_not_serving_and_exits() {
+    let dir = temp_dir("sigterm");
+    demo_files(&dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let mut server = Server::start(&["--refset", &refs, "--drain-seconds", "5"]);
+    let ch = server.wait_serving().await;
+    create(&ch, "s", "ferry", all_metrics()).await;
+    let status = server.terminate();
+    assert!(status.success(), "clean exit: {status:?}");
+    let logs = server.logs.lock().unwrap().join("\n");
+    assert!(logs.contains("NOT_SERVING"), "{logs}");
+}
