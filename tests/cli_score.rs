@@ -532,7 +532,7 @@ fn bad_option_values_fail_like_input_errors() {
 
 #[test]
 fn demo_ranks_the_best_system_first() {
-    let out = run(&["demo"]);
+    let out = run(&["demo", "--offline"]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let s = text(&out.stdout);
     // Systems as named in src/demo/mod.rs, best first.
@@ -555,7 +555,7 @@ fn demo_ranks_the_best_system_first() {
 #[test]
 fn demo_files_score_like_the_demo() {
     let dir = TempDir::new("demo");
-    let out = run(&["demo", "--write-files", &dir.0.to_string_lossy()]);
+    let out = run(&["demo", "--offline", "--write-files", &dir.0.to_string_lossy()]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let p = |n: &str| dir.path(n);
     let plain = json_ok(&["score", "--ref", &p("ref1.de.txt"), "--ref", &p("ref2.de.txt"), "--hyp", &p("hyp.model-v7.de.txt"), "--json"], None);

@@ -361,3 +361,20 @@ async fn sigterm_reports_not_serving_and_exits() {
     let logs = server.logs.lock().unwrap().join("\n");
     assert!(logs.contains("NOT_SERVING"), "{logs}");
 }
+
+#[test]
+fn live_demo_shows_the_degrading_model() {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["demo", "--seconds", "6"]).output().unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let text = String::from_utf8_lossy(&out.stdout);
+    // Rows: "<t>s  <session> <BLEU> <recent> <chrF> <segments> <unknown>".
+    let recent = |session: &str| -> Vec<f64> {
+        text.lines().filter(|l| l.split_whitespace().nth(1) == Some(session)).map(|l| l.split_whitespace().nth(3).unwrap().parse().unwrap()).collect()
+    };
+    let rc = recent("ferry-en-de.model-v8-rc");
+    let v7 = recent("ferry-en-de.model-v7");
+    assert_eq!((rc.len(), v7.len()), (6, 6), "{text}");
+    assert!(rc[0] > 80.0 && *rc.last().unwrap() < rc[0] - 20.0, "the candidate degrades: {rc:?}");
+    assert!((v7[0] - v7.last().unwrap()).abs() < 10.0, "the production model stays: {v7:?}");
+    assert!(text.contains("mtgauge status --server"), "ends with commands to try");
+}

@@ -60,9 +60,9 @@ pub struct BenchArgs {
     pub json: bool,
 }
 
-struct Corpus {
-    refs: Vec<Vec<String>>, // per segment, its references (token strings joined by spaces)
-    hyps: Vec<String>,
+pub(super) struct Corpus {
+    pub(super) refs: Vec<Vec<String>>, // per segment, its references (token strings joined by spaces)
+    pub(super) hyps: Vec<String>,
 }
 
 fn word(mut k: usize) -> String {
@@ -81,7 +81,7 @@ fn word(mut k: usize) -> String {
     }
 }
 
-fn generate(n: usize, mean: usize, vocab: usize, refs_per_seg: usize, seed: u64) -> Corpus {
+pub(super) fn generate(n: usize, mean: usize, vocab: usize, refs_per_seg: usize, seed: u64) -> Corpus {
     let words: Vec<String> = (0..vocab.max(1)).map(word).collect();
     let mut cdf = Vec::with_capacity(words.len());
     let mut acc = 0.0;
@@ -128,7 +128,7 @@ fn join(ws: &[&String]) -> String {
     ws.iter().map(|s| s.as_str()).collect::<Vec<_>>().join(" ")
 }
 
-fn refset(c: &Corpus) -> RefSet {
+pub(super) fn refset(c: &Corpus) -> RefSet {
     let segs = c.refs.iter().enumerate().map(|(i, r)| SegmentInput { id: (i + 1).to_string(), source: None, refs: r.clone() });
     RefSet::new(segs).expect("generated ids are unique")
 }

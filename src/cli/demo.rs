@@ -1,5 +1,7 @@
 //! `mtgauge demo`: the built-in scenario of an invented ferry operator's passenger notices
-//! (English to German), scored offline for three simulated systems.
+//! (English to German). By default a live run: the daemon in-process on free loopback ports,
+//! simulated producers streaming into two sessions, one of which degrades half-way. With
+//! `--offline`, the three simulated systems scored offline.
 
 use std::path::PathBuf;
 use std::sync::Arc;
@@ -13,9 +15,18 @@ use crate::metric::{MetricSet, ScoreConfig};
 use crate::refs::{RefSet, SegmentInput};
 use crate::report::{stats_lines, PROXY_NOTE};
 
+/// Length of the live demo unless told.
+pub const DEFAULT_DEMO_SECONDS: u64 = 30;
+
 /// Arguments of `mtgauge demo`.
 #[derive(Debug, Args)]
 pub struct DemoArgs {
+    /// Seconds the live demo runs.
+    #[arg(long, default_value_t = DEFAULT_DEMO_SECONDS, value_name = "S")]
+    pub seconds: u64,
+    /// Score the three simulated systems offline instead of the live run.
+    #[arg(long)]
+    pub offline: bool,
     /// Also write the demo data as files into DIR (plain references, JSONL, hypotheses), to try
     /// `mtgauge score` on.
     #[arg(long, value_name = "DIR")]
@@ -23,6 +34,12 @@ pub struct DemoArgs {
 }
 
 pub(super) fn run(a: DemoArgs) -> Result<(), CliError> {
+    if !a.offline {
+        if a.write_files.is_some() {
+            return Err(CliError::Usage("--write-files goes with --offline".into()));
+        }
+        return super::demo_live::run(a.seconds);
+    }
     let segments = demo_segments();
     let set = Arc::new(
         RefSet::new(segments.iter().map(|s| SegmentInput { id: s.id.clone(), source: Some(s.source.clone()), refs: s.refs.clone() }))

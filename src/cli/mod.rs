@@ -5,7 +5,9 @@
 
 mod bench;
 mod demo;
+mod demo_live;
 mod input;
+mod load;
 mod score;
 mod send;
 mod serve;
@@ -54,7 +56,7 @@ pub enum Command {
     Score(score::ScoreArgs),
     /// Print the tokens a tokenizer makes of each input line (one output line per input line).
     Tokenize(tokenize::TokenizeArgs),
-    /// Show mtgauge on built-in demo data (an invented ferry operator's passenger notices).
+    /// Show mtgauge live on built-in demo data (an invented ferry operator's passenger notices).
     Demo(demo::DemoArgs),
     /// Run the monitoring daemon (gRPC scoring service and Prometheus metrics).
     #[command(long_about = serve::LONG_ABOUT)]
@@ -64,6 +66,8 @@ pub enum Command {
     Send(send::SendArgs),
     /// Show the scores of a running server's sessions.
     Status(status::StatusArgs),
+    /// Drive a running server with synthetic load and print throughput and latency.
+    Load(load::LoadArgs),
     /// Measure scoring speed on a generated corpus and print ratios against a baseline measured in the same run.
     Bench(bench::BenchArgs),
 }
@@ -154,6 +158,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Demo(a) => demo::run(a),
         Command::Bench(a) => bench::run(a),
         Command::Serve(a) => serve::run(a),
+        Command::Load(a) => load::run(a),
         Command::Send(a) => send::run(a),
         Command::Status(a) => status::run(a),
     };

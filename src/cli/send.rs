@@ -78,7 +78,11 @@ pub struct SendArgs {
 /// Connect (lazily) to a server URL.
 pub fn channel(url: &str) -> Result<Channel, CliError> {
     let ep = Endpoint::from_shared(url.to_owned()).map_err(|e| CliError::Usage(format!("--server {url}: {e}")))?;
-    Ok(ep.connect_timeout(Duration::from_secs(5)).connect_lazy())
+    Ok(ep
+        .connect_timeout(Duration::from_secs(5))
+        .initial_stream_window_size(crate::server::STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(crate::server::CONNECTION_WINDOW_BYTES)
+        .connect_lazy())
 }
 
 /// The error line for a failed call.

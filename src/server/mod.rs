@@ -29,6 +29,11 @@ pub const DEFAULT_MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
 pub const DEFAULT_DRAIN: Duration = Duration::from_secs(10);
 /// Seconds between reports of a watch stream unless asked.
 pub const DEFAULT_WATCH_SECONDS: u32 = 5;
+/// HTTP/2 flow-control window of one gRPC stream (the protocol's 64 KiB default throttles
+/// many producers sharing one connection).
+pub const STREAM_WINDOW_BYTES: u32 = 1 << 20;
+/// HTTP/2 flow-control window of one connection.
+pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
 /// Acknowledgements buffered per scoring stream before the server waits for the client.
 pub const ACK_BUFFER: usize = 16;
 
@@ -104,6 +109,8 @@ pub async fn run(config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpLi
     let svc = services::Services::new(state.clone(), stop_rx.clone());
     let max = config.max_message_bytes;
     let router = tonic::transport::Server::builder()
+        .initial_stream_window_size(STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(CONNECTION_WINDOW_BYTES)
         .add_service(health_service)
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)

@@ -1,0 +1,197 @@
+//! The live demo: the daemon in-process on free loopback ports, the embedded reference set
+//! uploaded over gRPC, simulated probe and live-traffic producers streaming into two sessions,
+//! and a compact summary each second.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use tokio::sync::mpsc;
+use tonic::transport::Channel;
+
+use super::CliError;
+use crate::demo::{degraded_hypothesis, demo_segments, DemoSegment};
+use crate::pb;
+use crate::pb::ref_sets_client::RefSetsClient;
+use crate::pb::scoring_client::ScoringClient;
+use crate::pb::sessions_client::SessionsClient;
+use crate::report::PROXY_NOTE;
+use crate::rng::SplitMix64;
+use crate::server::{self, ServerConfig};
+use crate::telemetry;
+
+/// Items per simulated batch.
+const DEMO_BATCH: usize = 6;
+/// Pause between a producer's batches.
+const DEMO_PAUSE: Duration = Duration::from_millis(120);
+/// `recent` window of the demo sessions.
+const DEMO_WINDOW: u32 = 300;
+/// Share of live-traffic requests whose source is in no reference set.
+const UNKNOWN_SHARE: f64 = 0.15;
+/// Live-traffic sources that match no segment (invented).
+const OFF_SCRIPT: &[&str] = &[
+    "Is the sauna on deck 7 open tonight?",
+    "Can I bring my kayak on board as luggage?",
+    "Where do I collect the parcel I sent ahead?",
+    "The vending machine by gate B took my coins.",
+];
+
+struct Watched {
+    session: &'static str,
+    model: &'static str,
+    /// Quality before and after the half-way point (see `degraded_hypothesis`).
+    quality: (f64, f64),
+}
+
+const SESSIONS: &[Watched] = &[
+    Watched { session: "ferry-en-de.model-v7", model: "model-v7", quality: (0.6, 0.6) },
+    Watched { session: "ferry-en-de.model-v8-rc", model: "model-v8-rc", quality: (0.92, 0.35) },
+];
+
+pub(super) fn run(seconds: u64) -> Result<(), CliError> {
+    let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
+    rt.block_on(live(seconds.max(1)))
+}
+
+fn usage<E: std::fmt::Display>(what: &str) -> impl FnOnce(E) -> CliError + '_ {
+    move |e| CliError::Usage(format!("demo: {what}: {e}"))
+}
+
+async fn live(seconds: u64) -> Result<(), CliError> {
+    let grpc = tokio::net::TcpListener::bind("127.0.0.1:0").await.map_err(usage("bind"))?;
+    let metrics = tokio::net::TcpListener::bind("127.0.0.1:0").await.map_err(usage("bind"))?;
+    let (g, m) = (grpc.local_addr().map_err(usage("address"))?, metrics.local_addr().map_err(usage("address"))?);
+    let handle = telemetry::install_metrics().map_err(CliError::Usage)?;
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let server = tokio::spawn(server::run(ServerConfig { drain: Duration::from_secs(2), ..Default::default() }, grpc, Some((metrics, handle)), async move {
+        let _ = stop_rx.await;
+    }));
+    let url = format!("http://{g}");
+    let ch = tonic::transport::Endpoint::from_shared(url.clone()).map_err(usage("endpoint"))?.connect_lazy();
+    wait_serving(&ch).await?;
+
+    println!("mtgauge demo: the daemon runs in this process on {url} (Prometheus: http://{m}/metrics)");
+    println!("scenario: Nordhavn Ferries passenger notices, English -> German; two model versions watched live;");
+    println!("model-v8-rc starts to degrade half-way (a simulated bad deploy). Running {seconds} s.\n");
+
+    // Upload the embedded reference set over the API, as a client would.
+    let segments = Arc::new(demo_segments());
+    let jsonl: String = segments.iter().map(|s| serde_json::json!({"id": s.id, "source": s.source, "refs": s.refs}).to_string() + "\n").collect();
+    let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: "ferry-notices".into(), format: pb::RefFormat::Jsonl as i32, files: 1, has_source: false, replace: false })) };
+    let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
+        .chain(jsonl.as_bytes().chunks(16 * 1024).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
+        .collect();
+    let info = RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(usage("upload"))?.into_inner();
+    println!("reference set {}: {} segments, {} references, digest {}", info.name, info.segments, info.references, &info.digest[..16]);
+    for w in SESSIONS {
+        let config = pb::ScoreConfig { metrics: vec!["bleu".into(), "chrf".into()], ..Default::default() };
+        let labels = [("model".to_string(), w.model.to_string()), ("lang".to_string(), "en-de".to_string())].into_iter().collect();
+        SessionsClient::new(ch.clone())
+            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true })
+            .await
+            .map_err(usage("create session"))?;
+    }
+    println!("sessions: {} (window: last {DEMO_WINDOW} segments)\n", SESSIONS.iter().map(|w| w.session).collect::<Vec<_>>().join(", "));
+
+    let degraded = Arc::new(AtomicBool::new(false));
+    let stop = Arc::new(AtomicBool::new(false));
+    let mut producers = Vec::new();
+    for (k, w) in SESSIONS.iter().enumerate() {
+        for (p, by_source) in [(0, false), (1, false), (2, true)] {
+            let seed = 1000 * k as u64 + p;
+            producers.push(tokio::spawn(produce(ch.clone(), w, by_source, seed, Arc::clone(&segments), Arc::clone(&degraded), Arc::clone(&stop))));
+        }
+    }
+
+    let start = Instant::now();
+    let mut tick = tokio::time::interval(Duration::from_secs(1));
+    tick.tick().await;
+    println!("{:>5}  {:<26} {:>8} {:>8} {:>8} {:>9} {:>8}", "time", "session", "BLEU", "recent", "chrF", "segments", "unknown");
+    for t in 1..=seconds {
+        tick.tick().await;
+        if t == seconds.div_ceil(2) && !degraded.swap(true, Ordering::Relaxed) {
+            println!("  -- {:>3}s: model-v8-rc is redeployed with a broken tokenizer setting; watch its recent BLEU --", t);
+        }
+        for w in SESSIONS {
+            let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into() }).await.map_err(usage("get scores"))?.into_inner();
+            let (c, rec) = (r.cumulative_scores.unwrap_or_default(), r.recent_scores.unwrap_or_default());
+            println!(
+                "{:>4}s  {:<26} {:>8.2} {:>8.2} {:>8.2} {:>9} {:>8}",
+                t,
+                w.session,
+                c.bleu.unwrap_or(0.0),
+                rec.bleu.unwrap_or(0.0),
+                rec.chrf.unwrap_or(0.0),
+                c.segments,
+                r.unknown
+            );
+        }
+    }
+    stop.store(true, Ordering::Relaxed);
+    for p in producers {
+        let _ = p.await;
+    }
+    let elapsed = start.elapsed().as_secs_f64();
+    let _ = stop_tx.send(());
+    let _ = server.await;
+    println!("\nran {elapsed:.0} s. 'recent' is the exact BLEU of the last {DEMO_WINDOW} segments; the cumulative score moves slowly by design.");
+    println!("{PROXY_NOTE}\n");
+    println!("try it against a real server:");
+    println!("  mtgauge demo --offline --write-files demo-data");
+    println!("  mtgauge serve --refset ferry=demo-data/refs.jsonl &");
+    println!("  mtgauge send --server http://127.0.0.1:7410 --session v7 --create --refset ferry --hyp demo-data/hyp.model-v7.de.txt --source demo-data/source.en.txt");
+    println!("  mtgauge status --server http://127.0.0.1:7410 --session v7");
+    println!("  curl -s http://127.0.0.1:7411/metrics | grep mtgauge_score");
+    Ok(())
+}
+
+async fn wait_serving(ch: &Channel) -> Result<(), CliError> {
+    let mut health = tonic_health::pb::health_client::HealthClient::new(ch.clone());
+    let deadline = Instant::now() + Duration::from_secs(10);
+    loop {
+        let ok = health.check(tonic_health::pb::HealthCheckRequest { service: String::new() }).await.is_ok_and(|r| r.into_inner().status == tonic_health::pb::health_check_response::ServingStatus::Serving as i32);
+        if ok {
+            return Ok(());
+        }
+        if Instant::now() > deadline {
+            return Err(CliError::Usage("demo: the in-process server did not start".into()));
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+}
+
+/// One simulated producer: batches of random segments at a steady pace over one stream.
+async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, segments: Arc<Vec<DemoSegment>>, degraded: Arc<AtomicBool>, stop: Arc<AtomicBool>) {
+    let (tx, rx) = mpsc::channel::<pb::ScoreBatch>(4);
+    let producer = format!("{}-{}", if by_source { "live" } else { "probe" }, seed);
+    let Ok(resp) = ScoringClient::new(ch).stream(tokio_stream::wrappers::ReceiverStream::new(rx)).await else { return };
+    let mut acks = resp.into_inner();
+    let drain = tokio::spawn(async move { while let Ok(Some(_)) = acks.message().await {} });
+    let mut rng = SplitMix64::new(seed);
+    let mut seq = 0;
+    while !stop.load(Ordering::Relaxed) {
+        seq += 1;
+        let q = if degraded.load(Ordering::Relaxed) { w.quality.1 } else { w.quality.0 };
+        let items = (0..DEMO_BATCH)
+            .map(|_| {
+                let seg = &segments[rng.index(segments.len())];
+                let hypothesis = degraded_hypothesis(seg, q, rng.next_u64());
+                let key = if !by_source {
+                    pb::score_item::Key::SegmentId(seg.id.clone())
+                } else if rng.chance(UNKNOWN_SHARE) {
+                    pb::score_item::Key::Source(OFF_SCRIPT[rng.index(OFF_SCRIPT.len())].into())
+                } else {
+                    pb::score_item::Key::Source(seg.source.clone())
+                };
+                pb::ScoreItem { key: Some(key), hypothesis }
+            })
+            .collect();
+        let batch = pb::ScoreBatch { session: w.session.into(), producer: producer.clone(), sequence: seq, items, want_segment_scores: false };
+        if tx.send(batch).await.is_err() {
+            break;
+        }
+        tokio::time::sleep(DEMO_PAUSE).await;
+    }
+    drop(tx);
+    let _ = drain.await;
+}

@@ -1,0 +1,243 @@
+//! `mtgauge load`: a load generator and benchmark for a running server (not a timed test).
+//!
+//! Uploads a synthetic reference set, creates a session, and drives it from N streams: first as
+//! fast as the server acknowledges, then paced at half that rate. Prints acknowledged
+//! segments/s, the acknowledgement latency percentiles of both phases, and the offline engine's
+//! single-thread throughput on the same corpus, measured in the same run, as the baseline.
+
+use std::collections::VecDeque;
+use std::sync::atomic::AtomicUsize;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use clap::Args;
+use serde_json::json;
+use tokio::sync::mpsc;
+use tonic::transport::Channel;
+
+use super::bench::{generate, refset, Corpus};
+use super::send::{channel, status_error};
+use super::CliError;
+use crate::metric::{MetricSet, ScoreConfig};
+use crate::pb;
+use crate::pb::ref_sets_client::RefSetsClient;
+use crate::pb::scoring_client::ScoringClient;
+use crate::pb::sessions_client::SessionsClient;
+use crate::refs::compiled::Compiled;
+use crate::server::convert::config_to_pb;
+
+/// Streams unless told.
+pub const DEFAULT_STREAMS: usize = 16;
+/// Items per batch unless told.
+pub const DEFAULT_LOAD_BATCH: usize = 100;
+/// Seconds per phase unless told.
+pub const DEFAULT_LOAD_SECONDS: u64 = 10;
+/// Segments of the synthetic reference set unless told.
+pub const DEFAULT_LOAD_SEGMENTS: usize = 50_000;
+/// Batches a stream keeps in flight in the full-speed phase.
+const IN_FLIGHT: usize = 2;
+/// Mean tokens per synthetic segment.
+const LOAD_TOKENS: usize = 25;
+/// Vocabulary of the synthetic corpus.
+const LOAD_VOCAB: usize = 20_000;
+
+/// `load` options.
+#[derive(Debug, Args)]
+pub struct LoadArgs {
+    /// Server URL, e.g. http://127.0.0.1:7410.
+    #[arg(long, value_name = "URL")]
+    pub server: String,
+    /// Concurrent scoring streams.
+    #[arg(long, default_value_t = DEFAULT_STREAMS, value_name = "N")]
+    pub streams: usize,
+    /// Items per batch.
+    #[arg(long, default_value_t = DEFAULT_LOAD_BATCH, value_name = "B")]
+    pub batch: usize,
+    /// Seconds of each phase (full speed, then half rate).
+    #[arg(long, default_value_t = DEFAULT_LOAD_SECONDS, value_name = "S")]
+    pub seconds: u64,
+    /// Segments of the synthetic reference set (~25 tokens, one reference).
+    #[arg(long, default_value_t = DEFAULT_LOAD_SEGMENTS, value_name = "N")]
+    pub segments: usize,
+    /// Metrics of the load session (and of the offline baseline).
+    #[arg(long, default_value = "bleu", value_name = "LIST")]
+    pub metrics: MetricSet,
+    /// Print the figures as one JSON object.
+    #[arg(long)]
+    pub json: bool,
+}
+
+struct Phase {
+    segments: u64,
+    seconds: f64,
+    latencies: Vec<f64>,
+}
+
+impl Phase {
+    fn rate(&self) -> f64 {
+        self.segments as f64 / self.seconds
+    }
+    fn quantile(&self, q: f64) -> f64 {
+        if self.latencies.is_empty() {
+            return f64::NAN;
+        }
+        let mut v = self.latencies.clone();
+        v.sort_by(|a, b| a.total_cmp(b));
+        v[((v.len() - 1) as f64 * q).round() as usize]
+    }
+}
+
+pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
+    if a.streams == 0 || a.batch == 0 || a.seconds == 0 || a.segments == 0 {
+        return Err(CliError::Usage("--streams, --batch, --seconds and --segments must be at least 1".into()));
+    }
+    let log = |s: String| {
+        if !a.json {
+            eprintln!("{s}");
+        }
+    };
+    log(format!("generating {} segments (~{LOAD_TOKENS} tokens, one reference)", a.segments));
+    let corpus = Arc::new(generate(a.segments, LOAD_TOKENS, LOAD_VOCAB, 1, 11));
+    let config = ScoreConfig { metrics: a.metrics, ..Default::default() };
+
+    // Baseline: the offline engine on one thread, same corpus and configuration.
+    let set = Arc::new(refset(&corpus));
+    let compiled = Compiled::build(Arc::clone(&set), config);
+    let hyps: Vec<&str> = corpus.hyps.iter().map(String::as_str).collect();
+    let t = Instant::now();
+    compiled.score_corpus(&hyps, 1, &AtomicUsize::new(0));
+    let offline = hyps.len() as f64 / t.elapsed().as_secs_f64();
+    drop(compiled);
+
+    let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
+    let (session, full, half) = rt.block_on(async {
+        let ch = channel(&a.server)?;
+        let name = format!("load-{}", std::process::id());
+        log(format!("uploading the reference set as '{name}'"));
+        upload(&ch, &name, &corpus).await?;
+        SessionsClient::new(ch.clone())
+            .create(pb::CreateSessionRequest { name: name.clone(), refset: name.clone(), config: Some(config_to_pb(&config)), labels: Default::default(), window: 0, if_not_exists: false })
+            .await
+            .map_err(|s| status_error("create session", s))?;
+        log(format!("phase 1: {} streams, batches of {}, as fast as acknowledged, {} s", a.streams, a.batch, a.seconds));
+        let full = drive(&ch, &name, &corpus, &a, None).await?;
+        let per_stream = full.rate() / 2.0 / a.streams as f64 / a.batch as f64;
+        log(format!("phase 2: the same at half that rate ({:.0} segments/s), {} s", full.rate() / 2.0, a.seconds));
+        let half = drive(&ch, &name, &corpus, &a, Some(Duration::from_secs_f64(1.0 / per_stream.max(1e-3)))).await?;
+        Ok::<_, CliError>((name, full, half))
+    })?;
+    let figures = json!({
+        "session": session,
+        "streams": a.streams,
+        "batch": a.batch,
+        "seconds_per_phase": a.seconds,
+        "metrics": a.metrics.to_string(),
+        "offline_1_thread_segments_per_s": offline,
+        "daemon_segments_per_s": full.rate(),
+        "ratio_daemon_vs_offline_1_thread": full.rate() / offline,
+        "full_speed_ack_ms": {"p50": 1e3 * full.quantile(0.5), "p99": 1e3 * full.quantile(0.99)},
+        "half_rate_segments_per_s": half.rate(),
+        "half_rate_ack_ms": {"p50": 1e3 * half.quantile(0.5), "p99": 1e3 * half.quantile(0.99)},
+        "refset_bytes_per_segment": set.memory_bytes() as f64 / set.len() as f64,
+    });
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&figures).unwrap_or_default());
+    } else {
+        let f = |k: &str| figures[k].as_f64().unwrap_or(f64::NAN);
+        println!("mtgauge load: {} streams x batches of {} ({}), {} s per phase", a.streams, a.batch, a.metrics, a.seconds);
+        println!("  offline engine, 1 thread      {:>10.0} segments/s", f("offline_1_thread_segments_per_s"));
+        println!("  daemon, full speed            {:>10.0} segments/s -> {:.2}x the offline 1-thread rate", f("daemon_segments_per_s"), f("ratio_daemon_vs_offline_1_thread"));
+        println!("    acknowledgement latency     p50 {:.2} ms, p99 {:.2} ms", 1e3 * full.quantile(0.5), 1e3 * full.quantile(0.99));
+        println!("  daemon, half rate             {:>10.0} segments/s", half.rate());
+        println!("    acknowledgement latency     p50 {:.2} ms, p99 {:.2} ms", 1e3 * half.quantile(0.5), 1e3 * half.quantile(0.99));
+    }
+    Ok(())
+}
+
+async fn upload(ch: &Channel, name: &str, corpus: &Corpus) -> Result<(), CliError> {
+    let text: String = corpus.refs.iter().map(|r| r[0].clone() + "\n").collect();
+    let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::RefFormat::Plain as i32, files: 1, has_source: false, replace: true })) };
+    let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
+        .chain(text.as_bytes().chunks(1 << 20).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
+        .collect();
+    RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(|s| status_error("upload", s))?;
+    Ok(())
+}
+
+/// Run every stream for `a.seconds`; `pace`: time between a stream's batches (None: as fast as
+/// acknowledgements allow, `IN_FLIGHT` batches outstanding).
+async fn drive(ch: &Channel, session: &str, corpus: &Arc<Corpus>, a: &LoadArgs, pace: Option<Duration>) -> Result<Phase, CliError> {
+    let end = Instant::now() + Duration::from_secs(a.seconds);
+    let started = Instant::now();
+    // Batches are built once and cloned per send, so that the generator spends its CPU on the
+    // wire, not on formatting.
+    let n = corpus.hyps.len();
+    let prebuilt: Arc<Vec<pb::ScoreBatch>> = Arc::new(
+        (0..n.div_ceil(a.batch))
+            .map(|b| pb::ScoreBatch {
+                session: session.to_owned(),
+                producer: String::new(),
+                sequence: 0,
+                items: (b * a.batch..((b + 1) * a.batch).min(n))
+                    .map(|i| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((i + 1).to_string())), hypothesis: corpus.hyps[i].clone() })
+                    .collect(),
+                want_segment_scores: false,
+            })
+            .collect(),
+    );
+    let mut tasks = Vec::new();
+    for s in 0..a.streams {
+        let (ch, prebuilt, streams) = (ch.clone(), Arc::clone(&prebuilt), a.streams);
+        tasks.push(tokio::spawn(async move {
+            let (tx, rx) = mpsc::channel::<pb::ScoreBatch>(IN_FLIGHT);
+            let mut acks = ScoringClient::new(ch).stream(tokio_stream::wrappers::ReceiverStream::new(rx)).await?.into_inner();
+            let sent: Arc<std::sync::Mutex<VecDeque<Instant>>> = Default::default();
+            let permits = Arc::new(tokio::sync::Semaphore::new(IN_FLIGHT));
+            let (sent2, permits2) = (Arc::clone(&sent), Arc::clone(&permits));
+            let producer = tokio::spawn(async move {
+                let mut next = (s * 7919) % prebuilt.len();
+                // Paced streams start staggered over one period, like independent producers.
+                let streams = streams as u32;
+                let mut tick = pace.map(|p| {
+                    let first = tokio::time::Instant::now() + p * s as u32 / streams;
+                    let mut i = tokio::time::interval_at(first, p);
+                    i.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+                    i
+                });
+                while Instant::now() < end {
+                    match &mut tick {
+                        Some(t) => {
+                            t.tick().await;
+                        }
+                        None => permits2.acquire().await.map(|p| p.forget()).unwrap_or(()),
+                    }
+                    let batch = prebuilt[next].clone();
+                    next = (next + 1) % prebuilt.len();
+                    sent2.lock().unwrap_or_else(|e| e.into_inner()).push_back(Instant::now());
+                    if tx.send(batch).await.is_err() {
+                        break;
+                    }
+                }
+            });
+            let (mut segments, mut lat) = (0u64, Vec::new());
+            while let Some(ack) = acks.message().await? {
+                let t0 = sent.lock().unwrap_or_else(|e| e.into_inner()).pop_front();
+                if let Some(t0) = t0 {
+                    lat.push(t0.elapsed().as_secs_f64());
+                }
+                segments += ack.scored as u64;
+                permits.add_permits(1);
+            }
+            let _ = producer.await;
+            Ok::<_, tonic::Status>((segments, lat))
+        }));
+    }
+    let mut phase = Phase { segments: 0, seconds: 0.0, latencies: Vec::new() };
+    for t in tasks {
+        let (s, l) = t.await.map_err(|e| CliError::Usage(format!("load stream failed: {e}")))?.map_err(|s| status_error("scoring stream", s))?;
+        phase.segments += s;
+        phase.latencies.extend(l);
+    }
+    phase.seconds = started.elapsed().as_secs_f64();
+    Ok(phase)
+}

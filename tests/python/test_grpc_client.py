@@ -1,0 +1,539 @@
+"""The gRPC API driven by a REAL generated Python client against the real server binary.
+
+The client stubs are generated at test time from <repo>/proto by grpcio-tools (pinned in
+requirements.txt), so the test breaks if the .proto files and the server disagree. The server
+is `mtgauge serve` as a child process on ports picked by the OS, loaded with the files that
+`mtgauge demo --write-files` writes (the built-in, invented ferry-notice data set).
+
+Every expected number comes from the binary itself: the offline `mtgauge score --json` of the
+same files. No outside scoring tool is used or imitated.
+
+Outside facts used here, with their sources:
+  * grpc.health.v1 Health/Check and its SERVING status: the gRPC health checking protocol
+    (grpc/grpc doc/health-checking.md), client from grpcio-health-checking 1.85.1.
+  * grpc.reflection.v1alpha ServerReflection: client from grpcio-reflection 1.85.1.
+  * grpc.reflection.v1 ServerReflection has the same messages as v1alpha under another
+    package name, so the v1alpha message classes encode and decode v1 on the wire
+    (from memory: grpc/grpc src/proto/grpc/reflection/v1/reflection.proto).
+  * Status codes NOT_FOUND, INVALID_ARGUMENT, PERMISSION_DENIED: grpc.StatusCode of
+    grpcio 1.85.3 (the gRPC status code list, grpc/grpc doc/statuscodes.md).
+"""
+
+import importlib
+import json
+import queue
+import re
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import grpc
+import pytest
+from google.protobuf import descriptor_pool
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+from grpc_reflection.v1alpha import reflection_pb2, reflection_pb2_grpc
+from grpc_reflection.v1alpha.proto_reflection_descriptor_database import (
+    ProtoReflectionDescriptorDatabase,
+)
+
+from mtg_helpers import REPO, read_jsonl, require_binary
+
+PROTO_ROOT = REPO / "proto"
+PROTO_FILES = ["common.proto", "refsets.proto", "sessions.proto", "scoring.proto"]
+
+# Bounds on time: every RPC carries a deadline, every process wait a timeout.
+RPC_TIMEOUT = 15.0
+STREAM_TIMEOUT = 120.0
+STARTUP_TIMEOUT = 30.0
+SHUTDOWN_TIMEOUT = 30.0  # the server's default --drain-seconds is 10
+HEALTH_DEADLINE = 20.0
+
+BATCH_SIZE = 37
+V7_SESSION = "py-v7"
+V7_PRODUCER = "py-1"
+METRICS = ["bleu", "chrf", "chrf++"]
+SYSTEMS = ["model-v8-rc", "model-v7", "fallback-dictionary"]
+
+LISTENING_RE = re.compile(r"listening grpc=(\S+) metrics=(\S+)")
+ANSI_RE = re.compile(r"\x1b\[[0-9;]*m")
+
+
+def read_lines(path: Path):
+    """Lines of a UTF-8 file split on '\\n' only (str.splitlines would split on U+2028 too)."""
+    text = path.read_text(encoding="utf-8")
+    parts = text.split("\n")
+    assert parts[-1] == "", f"{path} does not end with a newline"
+    return parts[:-1]
+
+
+def batches_of(items, size):
+    return [items[i:i + size] for i in range(0, len(items), size)]
+
+
+# ---------------------------------------------------------------------------
+# fixtures: stubs, demo files, server, channel
+
+
+class Stubs:
+    """The generated modules of mtgauge.v1."""
+
+    def __init__(self, out_dir: Path):
+        self.out_dir = out_dir
+        self.common = importlib.import_module("mtgauge.v1.common_pb2")
+        self.refsets = importlib.import_module("mtgauge.v1.refsets_pb2")
+        self.refsets_grpc = importlib.import_module("mtgauge.v1.refsets_pb2_grpc")
+        self.sessions = importlib.import_module("mtgauge.v1.sessions_pb2")
+        self.sessions_grpc = importlib.import_module("mtgauge.v1.sessions_pb2_grpc")
+        self.scoring = importlib.import_module("mtgauge.v1.scoring_pb2")
+        self.scoring_grpc = importlib.import_module("mtgauge.v1.scoring_pb2_grpc")
+
+
+@pytest.fixture(scope="session")
+def stubs(tmp_path_factory) -> Stubs:
+    out = tmp_path_factory.mktemp("grpc_stubs")
+    protos = [f"mtgauge/v1/{name}" for name in PROTO_FILES]
+    for p in protos:
+        assert (PROTO_ROOT / p).is_file(), f"missing {PROTO_ROOT / p}"
+    proc = subprocess.run(
+        [sys.executable, "-m", "grpc_tools.protoc", f"-I{PROTO_ROOT}",
+         f"--python_out={out}", f"--grpc_python_out={out}", *protos],
+        capture_output=True, timeout=120,
+    )
+    assert proc.returncode == 0, (
+        f"grpc_tools.protoc exited {proc.returncode}: {proc.stderr.decode('utf-8', 'replace')}"
+    )
+    for p in protos:
+        stem = Path(p).with_suffix("")
+        assert (out / f"{stem}_pb2.py").is_file(), f"protoc did not write {stem}_pb2.py"
+    assert "mtgauge" not in sys.modules, "a module named mtgauge was imported before the stubs"
+    sys.path.insert(0, str(out))
+    return Stubs(out)
+
+
+@pytest.fixture(scope="session")
+def demo_dir(tmp_path_factory, mtgauge) -> Path:
+    d = tmp_path_factory.mktemp("demo")
+    # Newer binaries run a live demo by default and take --write-files only with --offline;
+    # older ones have no --offline and always run offline. Ask the binary which it is.
+    help_text = mtgauge.run_ok(["demo", "--help"]).stdout.decode("utf-8", "replace")
+    offline_flag = ["--offline"] if "--offline" in help_text else []
+    mtgauge.run_ok(["demo", *offline_flag, "--write-files", d])
+    expected = ["source.en.txt", "ref1.de.txt", "ref2.de.txt", "refs.jsonl"] + [
+        f"hyp.{s}.de.txt" for s in SYSTEMS
+    ]
+    for name in expected:
+        assert (d / name).is_file(), f"`mtgauge demo --write-files` did not write {name}"
+    return d
+
+
+@pytest.fixture(scope="session")
+def demo_refs(demo_dir):
+    rows = read_jsonl(demo_dir / "refs.jsonl")
+    ids = [r["id"] for r in rows]
+    assert len(ids) == len(set(ids)) == 300, "refs.jsonl: expected 300 distinct ids"
+    assert ids[0] == "notice-0001", ids[0]
+    return rows
+
+
+class Server:
+    def __init__(self, proc, grpc_addr, metrics_addr, log_lines):
+        self.proc = proc
+        self.grpc_addr = grpc_addr
+        self.metrics_addr = metrics_addr
+        self.log_lines = log_lines
+
+    def log_tail(self, n=40):
+        return "\n".join(self.log_lines[-n:])
+
+
+@pytest.fixture(scope="session")
+def server(demo_dir):
+    binary = require_binary()
+    cmd = [
+        str(binary), "serve",
+        "--listen", "127.0.0.1:0",
+        "--metrics-listen", "127.0.0.1:0",
+        "--refset", f"ferry={demo_dir / 'refs.jsonl'}",
+        "--refset-dir", str(demo_dir),
+    ]
+    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.PIPE)
+    log_lines = []
+    lines_q = queue.Queue()
+
+    def drain():
+        # Reads stderr until EOF for the whole life of the server, so the pipe never fills.
+        for raw in proc.stderr:
+            line = ANSI_RE.sub("", raw.decode("utf-8", "replace").rstrip("\n"))
+            log_lines.append(line)
+            lines_q.put(line)
+        lines_q.put(None)
+
+    drainer = threading.Thread(target=drain, name="mtgauge-stderr", daemon=True)
+    drainer.start()
+
+    def stop():
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGTERM)
+            try:
+                proc.wait(timeout=SHUTDOWN_TIMEOUT)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait(timeout=10)
+                drainer.join(timeout=10)
+                return False
+        drainer.join(timeout=10)
+        return True
+
+    grpc_addr = metrics_addr = None
+    deadline = time.monotonic() + STARTUP_TIMEOUT
+    try:
+        while grpc_addr is None:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                pytest.fail(f"no 'listening grpc=...' line on stderr within {STARTUP_TIMEOUT} s:\n"
+                            + "\n".join(log_lines[-40:]), pytrace=False)
+            try:
+                line = lines_q.get(timeout=left)
+            except queue.Empty:
+                continue
+            if line is None:
+                proc.wait(timeout=10)
+                pytest.fail(f"server exited with {proc.returncode} before listening:\n"
+                            + "\n".join(log_lines[-40:]), pytrace=False)
+            m = LISTENING_RE.search(line)
+            if m:
+                grpc_addr, metrics_addr = m.group(1), m.group(2)
+    except BaseException:
+        stop()
+        raise
+
+    srv = Server(proc, grpc_addr, metrics_addr, log_lines)
+    yield srv
+
+    was_running = proc.poll() is None
+    graceful = stop()
+    assert was_running, f"server died during the tests with {proc.returncode}:\n{srv.log_tail()}"
+    assert graceful, (f"server did not exit within {SHUTDOWN_TIMEOUT} s of SIGTERM and was "
+                      f"killed:\n{srv.log_tail()}")
+    assert proc.returncode == 0, f"server exited {proc.returncode} after SIGTERM:\n{srv.log_tail()}"
+
+
+@pytest.fixture(scope="session")
+def channel(server):
+    ch = grpc.insecure_channel(server.grpc_addr)
+    try:
+        grpc.channel_ready_future(ch).result(timeout=RPC_TIMEOUT)
+    except grpc.FutureTimeoutError:
+        ch.close()
+        pytest.fail(f"gRPC channel to {server.grpc_addr} not ready within {RPC_TIMEOUT} s",
+                    pytrace=False)
+    yield ch
+    ch.close()
+
+
+@pytest.fixture(scope="session")
+def serving(channel):
+    """Waits for health SERVING (the server reports it once the startup sets are loaded)."""
+    stub = health_pb2_grpc.HealthStub(channel)
+    deadline = time.monotonic() + HEALTH_DEADLINE
+    seen = []
+    while True:
+        try:
+            resp = stub.Check(health_pb2.HealthCheckRequest(service=""), timeout=2.0)
+            seen.append(health_pb2.HealthCheckResponse.ServingStatus.Name(resp.status))
+            if resp.status == health_pb2.HealthCheckResponse.SERVING:
+                return seen
+        except grpc.RpcError as exc:
+            seen.append(f"{exc.code()}: {exc.details()}")
+        if time.monotonic() > deadline:
+            pytest.fail(f"health of service '' not SERVING within {HEALTH_DEADLINE} s; "
+                        f"saw {seen[-5:]}", pytrace=False)
+        time.sleep(0.1)
+
+
+@pytest.fixture(scope="session")
+def api(stubs, channel, serving):
+    class Api:
+        sessions = stubs.sessions_grpc.SessionsStub(channel)
+        scoring = stubs.scoring_grpc.ScoringStub(channel)
+        refsets = stubs.refsets_grpc.RefSetsStub(channel)
+
+    return Api
+
+
+@pytest.fixture(scope="session")
+def offline(mtgauge, demo_dir):
+    """`mtgauge score --json` of each demo system against refs.jsonl, keyed by system."""
+    cache = {}
+
+    def get(system):
+        if system not in cache:
+            cache[system] = mtgauge.score_json([
+                "--ref", demo_dir / "refs.jsonl",
+                "--hyp", demo_dir / f"hyp.{system}.de.txt",
+                "--metrics", ",".join(METRICS),
+            ])
+        return cache[system]
+
+    return get
+
+
+def create_session(stubs, api, name, **extra):
+    req = stubs.sessions.CreateSessionRequest(
+        name=name, refset="ferry", config=stubs.common.ScoreConfig(metrics=METRICS), **extra)
+    info = api.sessions.Create(req, timeout=RPC_TIMEOUT)
+    assert info.name == name
+    assert info.refset == "ferry"
+    assert info.scored == 0
+    return info
+
+
+def stream_batches(api, batches):
+    acks = list(api.scoring.Stream(iter(batches), timeout=STREAM_TIMEOUT))
+    return acks
+
+
+def check_acks(batches, acks, session, producer):
+    assert len(acks) == len(batches), f"{len(batches)} batches sent, {len(acks)} acks"
+    total = 0
+    for batch, ack in zip(batches, acks):
+        where = f"ack of sequence {batch.sequence}"
+        assert ack.session == session, where
+        assert ack.producer == producer, where
+        assert ack.sequence == batch.sequence, where
+        assert not ack.duplicate, where
+        assert ack.rejected == 0 and list(ack.rejections) == [], (where, list(ack.rejections))
+        assert ack.unknown == 0, where
+        assert ack.scored == len(batch.items), (where, ack.scored, len(batch.items))
+        total += ack.scored
+    return total
+
+
+def assert_stats_match_offline(report, off, where):
+    """Integer statistics of a ScoresReport's cumulative part against `mtgauge score --json`."""
+    cum = report.cumulative
+    assert cum.segments == off["segments"] == 300, where
+    bleu = cum.bleu
+    assert list(bleu.matches) == off["bleu"]["matches"], (where, "bleu.matches")
+    assert list(bleu.totals) == off["bleu"]["totals"], (where, "bleu.totals")
+    assert bleu.hyp_length == off["bleu"]["hyp_length"], (where, "bleu.hyp_length")
+    assert bleu.ref_length == off["bleu"]["ref_length"], (where, "bleu.ref_length")
+    for pb_name, json_name in (("chrf", "chrf"), ("chrfpp", "chrf++")):
+        stats = getattr(cum, pb_name)
+        for field in ("matches", "hyp", "ref"):
+            assert list(getattr(stats.chars, field)) == off[json_name]["char"][field], (
+                where, f"{pb_name}.chars.{field}")
+    assert not cum.chrf.words.matches, (where, "chrF has no word orders")
+    for field in ("matches", "hyp", "ref"):
+        assert list(getattr(cum.chrfpp.words, field)) == off["chrf++"]["word"][field], (
+            where, f"chrfpp.words.{field}")
+
+
+# ---------------------------------------------------------------------------
+# the model-v7 session, streamed once and shared by the streaming and duplicate tests
+
+
+@pytest.fixture(scope="session")
+def v7_stream(stubs, api, demo_dir, demo_refs):
+    ids = [r["id"] for r in demo_refs]
+    hyps = read_lines(demo_dir / "hyp.model-v7.de.txt")
+    assert len(hyps) == len(ids) == 300
+    create_session(stubs, api, V7_SESSION)
+    items = [stubs.scoring.ScoreItem(segment_id=i, hypothesis=h) for i, h in zip(ids, hyps)]
+    batches = [
+        stubs.scoring.ScoreBatch(session=V7_SESSION, producer=V7_PRODUCER, sequence=seq,
+                                 items=chunk)
+        for seq, chunk in enumerate(batches_of(items, BATCH_SIZE), start=1)
+    ]
+    acks = stream_batches(api, batches)
+    report = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION),
+                                   timeout=RPC_TIMEOUT)
+    return {"batches": batches, "acks": acks, "report": report}
+
+
+# ---------------------------------------------------------------------------
+# tests
+
+
+def test_health_serving(serving, channel):
+    # `serving` has polled Check("") until SERVING; check once more directly.
+    stub = health_pb2_grpc.HealthStub(channel)
+    resp = stub.Check(health_pb2.HealthCheckRequest(service=""), timeout=RPC_TIMEOUT)
+    assert resp.status == health_pb2.HealthCheckResponse.SERVING, (serving, resp)
+
+
+def _list_services_v1alpha(channel):
+    stub = reflection_pb2_grpc.ServerReflectionStub(channel)
+    req = reflection_pb2.ServerReflectionRequest(list_services="")
+    responses = list(stub.ServerReflectionInfo(iter([req]), timeout=RPC_TIMEOUT))
+    assert len(responses) == 1, responses
+    assert responses[0].WhichOneof("message_response") == "list_services_response", responses[0]
+    return [s.name for s in responses[0].list_services_response.service]
+
+
+def _list_services_v1(channel):
+    # grpcio-reflection 1.85.1 ships only v1alpha; v1 is the same messages under the package
+    # grpc.reflection.v1 (from memory, see the module docstring), so call it by its path.
+    call = channel.stream_stream(
+        "/grpc.reflection.v1.ServerReflection/ServerReflectionInfo",
+        request_serializer=reflection_pb2.ServerReflectionRequest.SerializeToString,
+        response_deserializer=reflection_pb2.ServerReflectionResponse.FromString,
+    )
+    req = reflection_pb2.ServerReflectionRequest(list_services="")
+    responses = list(call(iter([req]), timeout=RPC_TIMEOUT))
+    assert len(responses) == 1, responses
+    assert responses[0].WhichOneof("message_response") == "list_services_response", responses[0]
+    return [s.name for s in responses[0].list_services_response.service]
+
+
+REQUIRED_SERVICES = {"mtgauge.v1.Scoring", "mtgauge.v1.Sessions", "mtgauge.v1.RefSets",
+                     "grpc.health.v1.Health"}
+
+
+def test_reflection_lists_services(serving, channel):
+    v1alpha = _list_services_v1alpha(channel)
+    missing = REQUIRED_SERVICES - set(v1alpha)
+    assert not missing, f"v1alpha reflection lacks {sorted(missing)}; lists {v1alpha}"
+    v1 = _list_services_v1(channel)
+    missing = REQUIRED_SERVICES - set(v1)
+    assert not missing, f"v1 reflection lacks {sorted(missing)}; lists {v1}"
+    # Each version lists its own reflection service (tonic-reflection 0.14 as used by the
+    # server does not list the other version); everything else is the same in both.
+    assert "grpc.reflection.v1alpha.ServerReflection" in v1alpha, v1alpha
+    assert "grpc.reflection.v1.ServerReflection" in v1, v1
+    def not_reflection(names):
+        return sorted(n for n in names if not n.startswith("grpc.reflection."))
+
+    assert not_reflection(v1) == not_reflection(v1alpha), (v1, v1alpha)
+
+
+def test_reflection_descriptors_match_proto(serving, channel, stubs):
+    """The service descriptors served by reflection equal those generated from proto/."""
+    pool = descriptor_pool.DescriptorPool(ProtoReflectionDescriptorDatabase(channel))
+    generated = {
+        "mtgauge.v1.Scoring": stubs.scoring.DESCRIPTOR.services_by_name["Scoring"],
+        "mtgauge.v1.Sessions": stubs.sessions.DESCRIPTOR.services_by_name["Sessions"],
+        "mtgauge.v1.RefSets": stubs.refsets.DESCRIPTOR.services_by_name["RefSets"],
+    }
+    for full_name, gen in generated.items():
+        served = pool.FindServiceByName(full_name)
+
+        def shape(svc):
+            return sorted(
+                (m.name, m.input_type.full_name, m.output_type.full_name,
+                 m.client_streaming, m.server_streaming)
+                for m in svc.methods
+            )
+
+        assert shape(served) == shape(gen), full_name
+
+
+def test_stream_scores_match_offline(v7_stream, offline):
+    batches, acks, report = v7_stream["batches"], v7_stream["acks"], v7_stream["report"]
+    # 300 items in batches of 37: 8 full batches and one of 4.
+    assert [len(b.items) for b in batches] == [37] * 8 + [4]
+    assert check_acks(batches, acks, V7_SESSION, V7_PRODUCER) == 300
+
+    off = offline("model-v7")
+    assert report.session == V7_SESSION
+    assert report.refset_digest == off["refset"]["digest"]
+    assert report.unknown == 0 and report.rejected == 0
+    assert_stats_match_offline(report, off, "model-v7 via Stream")
+
+    sc = report.cumulative_scores
+    assert sc.segments == 300
+    assert sc.HasField("bleu") and sc.HasField("chrf") and sc.HasField("chrfpp")
+    assert abs(sc.bleu - off["bleu"]["score"]) <= 1e-9, (sc.bleu, off["bleu"]["score"])
+    assert abs(sc.brevity_penalty - off["bleu"]["brevity_penalty"]) <= 1e-9
+    assert list(sc.bleu_precisions) == pytest.approx(off["bleu"]["precisions"], abs=1e-9)
+    assert abs(sc.chrf - off["chrf"]["score"]) <= 1e-9, (sc.chrf, off["chrf"]["score"])
+    assert abs(sc.chrfpp - off["chrf++"]["score"]) <= 1e-9, (sc.chrfpp, off["chrf++"]["score"])
+
+    # The configuration the session reports, every default filled in, is the offline one.
+    cfg, ocfg = report.config, off["config"]
+    assert list(cfg.metrics) == ocfg["metrics"]
+    assert cfg.tokenizer == ocfg["tokenizer"]
+    assert cfg.lowercase == ocfg["lowercase"]
+    assert cfg.bleu_order == ocfg["bleu_order"]
+    assert cfg.ref_length == ocfg["ref_length"]
+    assert cfg.smoothing == ocfg["smoothing"]
+    assert cfg.chrf_char_order == ocfg["chrf_char_order"]
+    assert cfg.chrf_word_order == ocfg["chrf_word_order"]
+    assert cfg.chrf_beta == ocfg["beta"]
+
+
+def test_live_traffic_source_lookup(stubs, api, demo_dir, demo_refs, offline):
+    name, producer = "py-v8-live", "py-live-1"
+    sources = read_lines(demo_dir / "source.en.txt")
+    hyps = read_lines(demo_dir / "hyp.model-v8-rc.de.txt")
+    assert len(sources) == len(hyps) == 300
+    # The demo's source file is line-aligned with the sources of refs.jsonl.
+    assert sources == [r["source"] for r in demo_refs]
+    create_session(stubs, api, name)
+    items = [stubs.scoring.ScoreItem(source=s, hypothesis=h) for s, h in zip(sources, hyps)]
+    batches = [
+        stubs.scoring.ScoreBatch(session=name, producer=producer, sequence=seq, items=chunk)
+        for seq, chunk in enumerate(batches_of(items, BATCH_SIZE), start=1)
+    ]
+    acks = stream_batches(api, batches)
+    assert check_acks(batches, acks, name, producer) == 300
+    report = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=name),
+                                   timeout=RPC_TIMEOUT)
+    assert report.unknown == 0 and report.rejected == 0
+    off = offline("model-v8-rc")
+    assert_stats_match_offline(report, off, "model-v8-rc via source lookup")
+    assert abs(report.cumulative_scores.bleu - off["bleu"]["score"]) <= 1e-9
+
+
+def test_duplicate_batch_not_counted_again(stubs, api, v7_stream):
+    before = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION),
+                                   timeout=RPC_TIMEOUT)
+    assert before.cumulative.segments == 300
+    first = v7_stream["batches"][0]
+    assert first.sequence == 1 and first.producer == V7_PRODUCER
+    ack = api.scoring.Submit(first, timeout=RPC_TIMEOUT)
+    assert ack.duplicate, f"resent (producer {V7_PRODUCER}, sequence 1) not flagged: {ack}"
+    assert ack.session == V7_SESSION and ack.producer == V7_PRODUCER and ack.sequence == 1
+    after = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION),
+                                  timeout=RPC_TIMEOUT)
+    assert after.cumulative == before.cumulative
+    assert after.cumulative_scores == before.cumulative_scores
+    assert after.recent == before.recent
+    assert after.unknown == before.unknown and after.rejected == before.rejected
+
+
+def _expect_error(code, fn, *args):
+    with pytest.raises(grpc.RpcError) as info:
+        fn(*args, timeout=RPC_TIMEOUT)
+    err = info.value
+    assert err.code() == code, f"expected {code}, got {err.code()}: {err.details()!r}"
+    assert err.details() and err.details().strip(), f"{code} with an empty message"
+    return err
+
+
+def test_error_unknown_session_not_found(stubs, api):
+    _expect_error(grpc.StatusCode.NOT_FOUND, api.scoring.GetScores,
+                  stubs.scoring.GetScoresRequest(session="py-no-such-session"))
+
+
+def test_error_bad_session_name_invalid_argument(stubs, api):
+    req = stubs.sessions.CreateSessionRequest(
+        name='bad name"', refset="ferry", config=stubs.common.ScoreConfig(metrics=METRICS))
+    _expect_error(grpc.StatusCode.INVALID_ARGUMENT, api.sessions.Create, req)
+
+
+def test_error_load_outside_refset_dir_permission_denied(stubs, api):
+    req = stubs.refsets.LoadRefSetRequest(
+        name="py-escape", format=stubs.refsets.REF_FORMAT_JSONL, paths=["../etc/passwd"])
+    _expect_error(grpc.StatusCode.PERMISSION_DENIED, api.refsets.Load, req)
+
+
+def test_error_empty_batch_invalid_argument(stubs, api):
+    # An existing session, so the only thing wrong with the batch is that it is empty.
+    create_session(stubs, api, "py-empty-batch")
+    batch = stubs.scoring.ScoreBatch(session="py-empty-batch", producer="py-empty", sequence=1)
+    _expect_error(grpc.StatusCode.INVALID_ARGUMENT, api.scoring.Submit, batch)
