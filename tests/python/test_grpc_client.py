@@ -116,11 +116,7 @@ def stubs(tmp_path_factory) -> Stubs:
 @pytest.fixture(scope="session")
 def demo_dir(tmp_path_factory, mtgauge) -> Path:
     d = tmp_path_factory.mktemp("demo")
-    # Newer binaries run a live demo by default and take --write-files only with --offline;
-    # older ones have no --offline and always run offline. Ask the binary which it is.
-    help_text = mtgauge.run_ok(["demo", "--help"]).stdout.decode("utf-8", "replace")
-    offline_flag = ["--offline"] if "--offline" in help_text else []
-    mtgauge.run_ok(["demo", *offline_flag, "--write-files", d])
+    mtgauge.run_ok(["demo", "--offline", "--write-files", d])
     expected = ["source.en.txt", "ref1.de.txt", "ref2.de.txt", "refs.jsonl"] + [
         f"hyp.{s}.de.txt" for s in SYSTEMS
     ]
