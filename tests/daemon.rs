@@ -378,3 +378,58 @@ fn live_demo_shows_the_degrading_model() {
     assert!((v7[0] - v7.last().unwrap()).abs() < 10.0, "the production model stays: {v7:?}");
     assert!(text.contains("mtgauge status --server"), "ends with commands to try");
 }
+
+fn mtgauge(args: &[&str]) -> std::process::Output {
+    std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(args).output().unwrap()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn send_twice_counts_once_and_status_matches_score() {
+    let dir = temp_dir("send");
+    demo_files(&dir);
+    let refs = dir.join("refs.jsonl");
+    let ids: String = demo_segments().iter().map(|s| s.id.clone() + "\n").collect();
+    std::fs::write(dir.join("ids.txt"), ids).unwrap();
+    let server = Server::start(&["--refset", &format!("ferry={}", refs.display()), "--log-format", "json"]);
+    server.wait_serving().await;
+    let p = |n: &str| dir.join(n).to_str().unwrap().to_owned();
+    let send = ["send", "--server", &server.grpc, "--session", "v7", "--create", "--refset", "ferry", "--hyp", &p("hyp.model-v7.de.txt"), "--ids", &p("ids.txt"), "--batch", "64", "--json"];
+    let first = mtgauge(&send);
+    assert!(first.status.success(), "{}", String::from_utf8_lossy(&first.stderr));
+    let a: serde_json::Value = serde_json::from_slice(&first.stdout).unwrap();
+    assert_eq!((a["scored"].as_u64(), a["batches"].as_u64(), a["duplicate_batches"].as_u64()), (Some(300), Some(5), Some(0)));
+    // The identical command again (after a crash, say) counts nothing twice.
+    let again = mtgauge(&send);
+    let b: serde_json::Value = serde_json::from_slice(&again.stdout).unwrap();
+    assert_eq!((b["scored"].as_u64(), b["duplicate_batches"].as_u64()), (Some(0), Some(5)));
+    assert_eq!(a["producer"], b["producer"], "stable default producer id");
+
+    let status = mtgauge(&["status", "--server", &server.grpc, "--session", "v7", "--json"]);
+    assert!(status.status.success(), "{}", String::from_utf8_lossy(&status.stderr));
+    let st: serde_json::Value = serde_json::from_slice(&status.stdout).unwrap();
+    let score = mtgauge(&["score", "--ref", refs.to_str().unwrap(), "--hyp", &p("hyp.model-v7.de.txt"), "--json"]);
+    let sc: serde_json::Value = serde_json::from_slice(&score.stdout).unwrap();
+    let cum = &st["cumulative"];
+    assert_eq!(cum["segments"], sc["segments"]);
+    assert_eq!(cum["bleu"], sc["bleu"], "status cumulative has score --json's BLEU fields and values");
+    assert_eq!(cum["chrf"], sc["chrf"]);
+    assert_eq!(st["config"], sc["config"]);
+    assert_eq!(st["refset"]["digest"], sc["refset"]["digest"]);
+    assert_eq!(st["refset"]["name"], "ferry");
+    assert_eq!(st["recent"]["segments"], 300);
+
+    // Human status and an unknown session.
+    let human = mtgauge(&["status", "--server", &server.grpc]);
+    assert!(String::from_utf8_lossy(&human.stdout).contains("session v7 (reference set ferry"));
+    let missing = mtgauge(&["status", "--server", &server.grpc, "--session", "nope"]);
+    assert_eq!(missing.status.code(), Some(2));
+    assert!(missing.stdout.is_empty());
+    assert!(String::from_utf8_lossy(&missing.stderr).contains("NotFound"), "{}", String::from_utf8_lossy(&missing.stderr));
+
+    // --log-format json: every log line is a JSON object.
+    let logs = server.logs.lock().unwrap().clone();
+    assert!(!logs.is_empty());
+    for l in &logs {
+        serde_json::from_str::<serde_json::Value>(l).unwrap_or_else(|e| panic!("not JSON ({e}): {l}"));
+    }
+}

@@ -35,7 +35,7 @@ pub const DEFAULT_LOAD_SECONDS: u64 = 10;
 /// Segments of the synthetic reference set unless told.
 pub const DEFAULT_LOAD_SEGMENTS: usize = 50_000;
 /// Batches a stream keeps in flight in the full-speed phase.
-const IN_FLIGHT: usize = 2;
+const IN_FLIGHT: usize = 4;
 /// Mean tokens per synthetic segment.
 const LOAD_TOKENS: usize = 25;
 /// Vocabulary of the synthetic corpus.
@@ -71,6 +71,33 @@ struct Phase {
     segments: u64,
     seconds: f64,
     latencies: Vec<f64>,
+    /// Health-check latencies measured during the phase.
+    health: Vec<f64>,
+}
+
+/// Interval of the responsiveness probe.
+const PROBE_EVERY: Duration = Duration::from_millis(20);
+
+async fn probe_health(ch: Channel, end: Instant) -> Vec<f64> {
+    let mut health = tonic_health::pb::health_client::HealthClient::new(ch);
+    let mut out = Vec::new();
+    while Instant::now() < end {
+        let t = Instant::now();
+        if health.check(tonic_health::pb::HealthCheckRequest { service: String::new() }).await.is_ok() {
+            out.push(t.elapsed().as_secs_f64());
+        }
+        tokio::time::sleep(PROBE_EVERY).await;
+    }
+    out
+}
+
+fn quantile(v: &[f64], q: f64) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    let mut v = v.to_vec();
+    v.sort_by(|a, b| a.total_cmp(b));
+    v[((v.len() - 1) as f64 * q).round() as usize]
 }
 
 impl Phase {
@@ -78,12 +105,7 @@ impl Phase {
         self.segments as f64 / self.seconds
     }
     fn quantile(&self, q: f64) -> f64 {
-        if self.latencies.is_empty() {
-            return f64::NAN;
-        }
-        let mut v = self.latencies.clone();
-        v.sort_by(|a, b| a.total_cmp(b));
-        v[((v.len() - 1) as f64 * q).round() as usize]
+        quantile(&self.latencies, q)
     }
 }
 
@@ -120,7 +142,13 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
             .await
             .map_err(|s| status_error("create session", s))?;
         log(format!("phase 1: {} streams, batches of {}, as fast as acknowledged, {} s", a.streams, a.batch, a.seconds));
-        let full = drive(&ch, &name, &corpus, &a, None).await?;
+        // Meanwhile, a health check every PROBE_EVERY on a connection of its own shows whether
+        // the server's async runtime stays responsive while it scores at full speed.
+        let probe_end = Instant::now() + Duration::from_secs(a.seconds);
+        let probe = probe_health(channel(&a.server)?, probe_end);
+        let (full, probes) = tokio::join!(drive(&ch, &name, &corpus, &a, None), probe);
+        let mut full = full?;
+        full.health = probes;
         let per_stream = full.rate() / 2.0 / a.streams as f64 / a.batch as f64;
         log(format!("phase 2: the same at half that rate ({:.0} segments/s), {} s", full.rate() / 2.0, a.seconds));
         let half = drive(&ch, &name, &corpus, &a, Some(Duration::from_secs_f64(1.0 / per_stream.max(1e-3)))).await?;
@@ -136,6 +164,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         "daemon_segments_per_s": full.rate(),
         "ratio_daemon_vs_offline_1_thread": full.rate() / offline,
         "full_speed_ack_ms": {"p50": 1e3 * full.quantile(0.5), "p99": 1e3 * full.quantile(0.99)},
+        "health_check_ms_under_full_load": {"p50": 1e3 * quantile(&full.health, 0.5), "p99": 1e3 * quantile(&full.health, 0.99), "count": full.health.len()},
         "half_rate_segments_per_s": half.rate(),
         "half_rate_ack_ms": {"p50": 1e3 * half.quantile(0.5), "p99": 1e3 * half.quantile(0.99)},
         "refset_bytes_per_segment": set.memory_bytes() as f64 / set.len() as f64,
@@ -148,6 +177,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         println!("  offline engine, 1 thread      {:>10.0} segments/s", f("offline_1_thread_segments_per_s"));
         println!("  daemon, full speed            {:>10.0} segments/s -> {:.2}x the offline 1-thread rate", f("daemon_segments_per_s"), f("ratio_daemon_vs_offline_1_thread"));
         println!("    acknowledgement latency     p50 {:.2} ms, p99 {:.2} ms", 1e3 * full.quantile(0.5), 1e3 * full.quantile(0.99));
+        println!("    health check meanwhile      p50 {:.2} ms, p99 {:.2} ms (runtime responsiveness)", 1e3 * quantile(&full.health, 0.5), 1e3 * quantile(&full.health, 0.99));
         println!("  daemon, half rate             {:>10.0} segments/s", half.rate());
         println!("    acknowledgement latency     p50 {:.2} ms, p99 {:.2} ms", 1e3 * half.quantile(0.5), 1e3 * half.quantile(0.99));
     }
@@ -232,7 +262,7 @@ async fn drive(ch: &Channel, session: &str, corpus: &Arc<Corpus>, a: &LoadArgs, 
             Ok::<_, tonic::Status>((segments, lat))
         }));
     }
-    let mut phase = Phase { segments: 0, seconds: 0.0, latencies: Vec::new() };
+    let mut phase = Phase { segments: 0, seconds: 0.0, latencies: Vec::new(), health: Vec::new() };
     for t in tasks {
         let (s, l) = t.await.map_err(|e| CliError::Usage(format!("load stream failed: {e}")))?.map_err(|s| status_error("scoring stream", s))?;
         phase.segments += s;

@@ -228,6 +228,7 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
         return Ok(ack);
     }
     let scoring = Arc::clone(&session);
+    let slot = state.scoring_slot().await;
     let (batch, outcomes, rejections) = blocking(move || {
         let mut outcomes = Vec::with_capacity(batch.items.len());
         let mut rejections = Vec::new();
@@ -256,6 +257,7 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
         Ok((batch, outcomes, rejections))
     })
     .await?;
+    drop(slot);
 
     let plain: Vec<Outcome> = outcomes.iter().map(|(_, o)| *o).collect();
     let mut sum = CorpusStats::default();

@@ -85,6 +85,9 @@ struct Inner {
     streaming: DashMap<(String, String), ()>,
     refset_dir: Option<PathBuf>,
     limits: Limits,
+    /// Batches scored at once on the blocking pool: one per CPU, so that scoring never
+    /// crowds out the threads that run the network and the health checks.
+    scoring_slots: tokio::sync::Semaphore,
 }
 
 /// Seconds since the Unix epoch.
@@ -99,7 +102,14 @@ impl State {
             Some(d) => Some(std::fs::canonicalize(&d).map_err(|e| ServiceError::Invalid(format!("--refset-dir {}: {e}", d.display())))?),
             None => None,
         };
-        Ok(State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits }) })
+        let slots = std::thread::available_parallelism().map_or(1, |n| n.get());
+        Ok(State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots) }) })
+    }
+
+    /// Wait for a scoring slot (see `scoring_slots`).
+    pub async fn scoring_slot(&self) -> tokio::sync::SemaphorePermit<'_> {
+        // The semaphore is never closed.
+        self.inner.scoring_slots.acquire().await.expect("scoring semaphore is never closed")
     }
 
     /// The limits in force.

@@ -54,7 +54,13 @@ impl Server {
         loop {
             let left = deadline.saturating_duration_since(Instant::now());
             let line = rx.recv_timeout(left).unwrap_or_else(|_| panic!("server did not log its addresses; logs: {:?}", logs.lock().unwrap()));
-            if let Some(rest) = line.split("listening ").nth(1) {
+            if let Ok(v) = serde_json::from_str::<serde_json::Value>(&line) {
+                let f = &v["fields"];
+                if f["message"] == "listening" {
+                    let (g, m) = (f["grpc"].as_str().unwrap(), f["metrics"].as_str().unwrap());
+                    return Server { child, grpc: format!("http://{g}"), metrics: m.to_owned(), logs };
+                }
+            } else if let Some(rest) = line.split("listening ").nth(1) {
                 let field = |k: &str| rest.split_whitespace().find_map(|w| w.strip_prefix(k)).unwrap().to_owned();
                 return Server { child, grpc: format!("http://{}", field("grpc=")), metrics: field("metrics="), logs };
             }
