@@ -10,5 +10,6 @@ pub mod report;
 pub mod rng;
 pub mod server;
 pub mod session;
+pub mod store;
 pub mod telemetry;
 pub mod text;

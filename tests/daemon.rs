@@ -280,7 +280,7 @@ async fn bad_requests_get_precise_statuses() {
     std::fs::copy(dir.join("refs.jsonl"), dir.join("sets/refs.jsonl")).unwrap();
     std::os::unix::fs::symlink(dir.join("ref1.de.txt"), dir.join("sets/outside.txt")).unwrap();
     let cfg = dir.join("mtgauge.toml");
-    std::fs::write(&cfg, format!("refset_dir = {:?}\nmax_message_bytes = 65536\n[limits]\nmax_batch_items = 50\nmax_text_bytes = 2000\n", dir.join("sets"))).unwrap();
+    std::fs::write(&cfg, format!("refset_dir = {:?}\ndata_dir = {:?}\nmax_message_bytes = 65536\n[limits]\nmax_batch_items = 50\nmax_text_bytes = 2000\n", dir.join("sets"), dir.join("data"))).unwrap();
     let server = Server::start(&["--config", cfg.to_str().unwrap()]);
     let ch = server.wait_serving().await;
     let mut refsets = RefSetsClient::new(ch.clone());

@@ -16,8 +16,13 @@ pub const LONG_ABOUT: &str = "\
 Run the monitoring daemon: reference sets in memory, sessions, streaming scoring over gRPC, and \
 Prometheus counters of the additive statistics on a separate HTTP listener (GET /metrics).
 
+State (reference sets, sessions, statistics, producer sequence marks) is kept in an embedded ACID \
+store under --data-dir (default /var/lib/mtgauge; one serve per directory) and restored at \
+startup; a batch is acknowledged only once it is on disk. --durability none keeps memory only.
+
 Settings come from --config FILE (TOML) and flags; a flag overrides the file. Keys of the file:
-  listen, metrics_listen, refset_dir, drain_seconds, log_format, max_message_bytes,
+  listen, metrics_listen, refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
+  log_format, max_message_bytes,
   [limits] max_batch_items, max_text_bytes, max_sessions, max_refsets, max_refset_bytes,
   [[refset]] name, paths = [...], source (loaded at startup).
 
@@ -48,14 +53,37 @@ pub struct ServeArgs {
     /// Seconds to wait for in-flight batches at shutdown [default: 10].
     #[arg(long, value_name = "S")]
     pub drain_seconds: Option<u64>,
+    /// Directory of the durable store [default: /var/lib/mtgauge].
+    #[arg(long, value_name = "DIR")]
+    pub data_dir: Option<PathBuf>,
+    /// sync: every acknowledged batch is on disk (group commit); none: memory only, nothing
+    /// survives a restart [default: sync].
+    #[arg(long, value_enum)]
+    pub durability: Option<Durability>,
+    /// Milliseconds the group commit gathers batches into one transaction [default: 2].
+    #[arg(long, value_name = "MS")]
+    pub group_commit_ms: Option<u64>,
     /// Log format on stderr (level from RUST_LOG, default info) [default: human].
     #[arg(long, value_enum)]
     pub log_format: Option<LogFormat>,
 }
 
+/// Durability of acknowledged batches.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Durability {
+    /// Written to the store (fsync per group commit) before the acknowledgement.
+    Sync,
+    /// Memory only.
+    None,
+}
+
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
 struct FileConfig {
+    data_dir: Option<PathBuf>,
+    durability: Option<Durability>,
+    group_commit_ms: Option<u64>,
     listen: Option<SocketAddr>,
     metrics_listen: Option<SocketAddr>,
     refset_dir: Option<PathBuf>,
@@ -140,6 +168,13 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
     let mut config = ServerConfig { refset_dir: a.refset_dir.or(file.refset_dir), startup_refsets: startup, limits, ..Default::default() };
     if let Some(m) = file.max_message_bytes {
         config.max_message_bytes = usize::try_from(m).ok().filter(|&m| m >= 1024).ok_or_else(|| CliError::Usage(format!("config key max_message_bytes must be at least 1024, got {m}")))?;
+    }
+    config.data_dir = match a.durability.or(file.durability).unwrap_or(Durability::Sync) {
+        Durability::Sync => Some(a.data_dir.or(file.data_dir).unwrap_or_else(|| PathBuf::from(crate::store::DEFAULT_DATA_DIR))),
+        Durability::None => None,
+    };
+    if let Some(ms) = a.group_commit_ms.or(file.group_commit_ms) {
+        config.group_commit = Duration::from_millis(ms);
     }
     if let Some(d) = a.drain_seconds.or(file.drain_seconds) {
         config.drain = Duration::from_secs(d);

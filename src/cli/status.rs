@@ -38,6 +38,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo) -> Result<(Value, String
         "cumulative": Value::Object(stats_json(&cumulative, &config)),
         "recent": Value::Object(stats_json(&recent, &config)),
         "window": r.window,
+        "memory_bytes": info.memory_bytes,
         "unknown": r.unknown,
         "rejected": r.rejected,
         "unix_time": r.unix_time,
@@ -55,6 +56,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo) -> Result<(Value, String
         text.push('\n');
     }
     text += &format!("  config  {}\n", config.describe());
+    text += &format!("  memory  {} bytes of session tables\n", info.memory_bytes);
     Ok((j, text))
 }
 

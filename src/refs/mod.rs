@@ -206,7 +206,82 @@ impl RefSet {
 
     /// The digest as lowercase hex.
     pub fn digest_hex(&self) -> String {
-        self.digest.iter().map(|b| format!("{b:02x}")).collect()
+        hex(&self.digest)
+    }
+
+    /// The canonical encoding the digest is computed over: it holds the whole set, so
+    /// [`RefSet::decode`] rebuilds it (durable storage keeps reference sets this way).
+    pub fn encode(&self) -> Vec<u8> {
+        let mut out = Vec::with_capacity(DIGEST_DOMAIN.len() + self.arena.len() + 24 * self.ends.len());
+        out.extend_from_slice(DIGEST_DOMAIN);
+        let field = |out: &mut Vec<u8>, s: &str| {
+            out.extend_from_slice(&(s.len() as u64).to_le_bytes());
+            out.extend_from_slice(s.as_bytes());
+        };
+        for seg in self.segments() {
+            field(&mut out, seg.id());
+            match seg.source() {
+                Some(src) => {
+                    out.push(1);
+                    field(&mut out, src);
+                }
+                None => out.push(0),
+            }
+            out.extend_from_slice(&(seg.ref_count() as u64).to_le_bytes());
+            for r in seg.refs() {
+                field(&mut out, r);
+            }
+        }
+        out
+    }
+
+    /// Rebuild a set from [`RefSet::encode`]'s bytes; the result's digest is checked against
+    /// `expected_digest` when given (so damaged bytes are never taken for the set).
+    pub fn decode(bytes: &[u8], expected_digest: Option<&[u8; 32]>) -> Result<RefSet, String> {
+        let mut rest = bytes.strip_prefix(DIGEST_DOMAIN).ok_or("not a reference-set encoding (bad header)")?;
+        let u64_at = |rest: &mut &[u8]| -> Result<u64, String> {
+            let (head, tail) = rest.split_first_chunk::<8>().ok_or("truncated reference-set encoding")?;
+            *rest = tail;
+            Ok(u64::from_le_bytes(*head))
+        };
+        fn text(rest: &mut &[u8], n: u64) -> Result<String, String> {
+            let n = usize::try_from(n).map_err(|_| "field too long")?;
+            if rest.len() < n {
+                return Err("truncated reference-set encoding".into());
+            }
+            let (head, tail) = rest.split_at(n);
+            *rest = tail;
+            String::from_utf8(head.to_vec()).map_err(|_| "invalid UTF-8 in reference-set encoding".into())
+        }
+        let mut segments = Vec::new();
+        while !rest.is_empty() {
+            let n = u64_at(&mut rest)?;
+            let id = text(&mut rest, n)?;
+            let (&flag, tail) = rest.split_first().ok_or("truncated reference-set encoding")?;
+            rest = tail;
+            let source = match flag {
+                0 => None,
+                1 => {
+                    let n = u64_at(&mut rest)?;
+                    Some(text(&mut rest, n)?)
+                }
+                _ => return Err("bad source flag in reference-set encoding".into()),
+            };
+            let count = u64_at(&mut rest)?;
+            let mut refs = Vec::new();
+            for _ in 0..count {
+                let n = u64_at(&mut rest)?;
+                refs.push(text(&mut rest, n)?);
+            }
+            segments.push(SegmentInput { id, source, refs });
+        }
+        let set = RefSet::new(segments).map_err(|e| e.to_string())?;
+        if let Some(d) = expected_digest {
+            if set.digest() != *d {
+                return Err(format!("digest mismatch: stored {} but content hashes to {}", hex(d), set.digest_hex()));
+            }
+        }
+        Ok(set)
     }
 
     /// Approximate heap bytes held by the set.
@@ -230,6 +305,11 @@ impl fmt::Debug for RefSet {
     }
 }
 
+/// Lowercase hex of bytes.
+pub fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
+
 fn hash_field(h: &mut Sha256, bytes: &[u8]) {
     h.update((bytes.len() as u64).to_le_bytes());
     h.update(bytes);
@@ -237,6 +317,25 @@ fn hash_field(h: &mut Sha256, bytes: &[u8]) {
 
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn encoding_round_trips_and_hashes_to_the_digest() {
+        use sha2::Digest;
+        let seg = |id: &str, src: Option<&str>, refs: &[&str]| SegmentInput { id: id.into(), source: src.map(Into::into), refs: refs.iter().map(|r| r.to_string()).collect() };
+        let set = RefSet::new(vec![seg("a", Some("Gate C closes."), &["Gate C schließt.", ""]), seg("b", None, &["Deck 4"])]).unwrap();
+        let bytes = set.encode();
+        let sha: [u8; 32] = Sha256::digest(&bytes).into();
+        assert_eq!(sha, set.digest(), "the digest is the SHA-256 of the encoding");
+        let back = RefSet::decode(&bytes, Some(&set.digest())).unwrap();
+        assert_eq!(back.encode(), bytes);
+        assert_eq!(back.segment(0).reference(1), "");
+        assert_eq!(back.segment(1).source(), None);
+        let mut bad = bytes.clone();
+        *bad.last_mut().unwrap() ^= 1;
+        assert!(RefSet::decode(&bad, Some(&set.digest())).unwrap_err().contains("digest mismatch"));
+        assert!(RefSet::decode(&bytes[..bytes.len() - 3], None).is_err());
+        assert!(RefSet::decode(b"junk", None).is_err());
+    }
+
     use super::*;
 
     fn seg(id: &str, src: Option<&str>, refs: &[&str]) -> SegmentInput {

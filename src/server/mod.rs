@@ -8,6 +8,7 @@ pub mod state;
 
 use std::future::Future;
 use std::path::PathBuf;
+use std::sync::Arc;
 use std::time::Duration;
 
 use tokio::net::TcpListener;
@@ -37,6 +38,9 @@ pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
 /// Acknowledgements buffered per scoring stream before the server waits for the client.
 pub const ACK_BUFFER: usize = 16;
 
+/// Time the group-commit thread gathers batches into one transaction unless configured.
+pub const DEFAULT_GROUP_COMMIT: Duration = Duration::from_millis(2);
+
 /// A reference set to load at startup.
 #[derive(Debug, Clone)]
 pub struct StartupRefSet {
@@ -61,11 +65,15 @@ pub struct ServerConfig {
     pub max_message_bytes: usize,
     /// Shutdown drain time.
     pub drain: Duration,
+    /// Where durable state lives (None: in memory only, nothing survives a restart).
+    pub data_dir: Option<PathBuf>,
+    /// Group-commit gathering time.
+    pub group_commit: Duration,
 }
 
 impl Default for ServerConfig {
     fn default() -> Self {
-        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN }
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT }
     }
 }
 
@@ -89,7 +97,18 @@ fn load_startup(state: &State, r: &StartupRefSet) -> Result<(), ServiceError> {
 /// Run the server on bound listeners until `shutdown` resolves, then drain (bounded by
 /// `config.drain`). Tests call this with `127.0.0.1:0` listeners.
 pub async fn run(config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpListener, metrics_exporter_prometheus::PrometheusHandle)>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
-    let state = State::new(config.refset_dir.clone(), config.limits).map_err(|e| e.to_string())?;
+    let store = match config.data_dir.clone() {
+        Some(dir) => Some(Arc::new(tokio::task::spawn_blocking(move || crate::store::Store::open(&dir)).await.map_err(|e| e.to_string())?.map_err(|e| e.to_string())?)),
+        None => None,
+    };
+    let state = State::with_store(config.refset_dir.clone(), config.limits, store, config.group_commit).map_err(|e| e.to_string())?;
+    if let Some(store) = state.store() {
+        let st = state.clone();
+        let n = tokio::task::spawn_blocking(move || st.restore()).await.map_err(|e| e.to_string())?.map_err(|e| e.to_string())?;
+        tracing::info!(store = %store.path().display(), sessions = n, "durable state restored");
+    } else {
+        tracing::warn!("durability none: state is kept in memory only and is lost on exit");
+    }
     let (health, health_service) = tonic_health::server::health_reporter();
     health.set_service_status("", tonic_health::ServingStatus::NotServing).await;
     let metrics_task = metrics.map(|(l, h)| tokio::spawn(crate::telemetry::serve_metrics(l, h)));

@@ -73,6 +73,7 @@ fn session_info(s: &Session) -> pb::SessionInfo {
         unknown: counts.unknown,
         rejected: counts.rejected,
         created_unix: s.created_unix(),
+        memory_bytes: s.memory_bytes() as u64,
     }
 }
 
@@ -196,7 +197,9 @@ impl pb::sessions_server::Sessions for Services {
 
     async fn reset(&self, req: Request<pb::ResetSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
         let s = self.state.session(&req.into_inner().name)?;
-        s.reset();
+        let state = self.state.clone();
+        let s2 = Arc::clone(&s);
+        blocking(move || state.reset_session(&s2)).await?;
         telemetry::record_scores(&s.spec().name, &s.spec().config, &CorpusStats::default(), &CorpusStats::default());
         tracing::info!(session = %s.spec().name, "session reset");
         Ok(Response::new(session_info(&s)))
@@ -272,15 +275,11 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
         }
     }
     let rejected = rejections.len() as u32;
-    let (applied, cumulative, recent) = {
-        let mut st = session.state();
-        let applied = st.apply(&batch.producer, batch.sequence, &plain, rejected as u64);
-        (applied, st.cumulative, st.window.stats())
-    };
-    if !applied {
+    let after = state.apply_batch(Arc::clone(&session), batch.producer.clone(), batch.sequence, plain, rejected as u64).await?;
+    let Some((cumulative, recent)) = after else {
         ack.duplicate = true;
         return Ok(ack);
-    }
+    };
     let spec = session.spec();
     telemetry::record_batch(&spec.name, &spec.config, scored as u64, unknown as u64, rejected as u64, &sum);
     telemetry::record_scores(&spec.name, &spec.config, &cumulative, &recent);

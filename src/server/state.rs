@@ -12,7 +12,9 @@ use dashmap::mapref::entry::Entry;
 use dashmap::DashMap;
 
 use super::error::{Result, ServiceError};
-use crate::metric::ScoreConfig;
+use crate::metric::{CorpusStats, ScoreConfig};
+use crate::session::Outcome;
+use crate::store::{BatchWrite, Store};
 use crate::refs::{parse_jsonl, parse_plain, InputError, RefSet};
 use crate::session::{check_labels, check_name, Session, SessionSpec, DEFAULT_WINDOW, MAX_WINDOW};
 
@@ -88,7 +90,28 @@ struct Inner {
     /// Batches scored at once on the blocking pool: one per CPU, so that scoring never
     /// crowds out the threads that run the network and the health checks.
     scoring_slots: tokio::sync::Semaphore,
+    /// Durable state (None: in memory only).
+    store: Option<Arc<Store>>,
+    /// Queue of the group-commit thread (with a store).
+    committer: Option<std::sync::Mutex<std::sync::mpsc::Sender<CommitRequest>>>,
 }
+
+/// Statistics after an applied batch: (cumulative, recent).
+pub type AfterBatch = (CorpusStats, CorpusStats);
+
+/// One batch waiting for the group commit.
+struct CommitRequest {
+    session: Arc<Session>,
+    producer: String,
+    sequence: u64,
+    outcomes: Vec<Outcome>,
+    rejected: u64,
+    reply: tokio::sync::oneshot::Sender<Option<AfterBatch>>,
+}
+
+/// Exit code of the process when the store cannot be written: acknowledged batches must be
+/// durable, so the server stops rather than acknowledge what it could not keep.
+pub const EXIT_STORE_FAILURE: i32 = 70;
 
 /// Seconds since the Unix epoch.
 pub fn unix_now() -> i64 {
@@ -98,12 +121,85 @@ pub fn unix_now() -> i64 {
 impl State {
     /// Empty state. `refset_dir`: where server-side loading may read (None: disabled).
     pub fn new(refset_dir: Option<PathBuf>, limits: Limits) -> Result<State> {
+        State::with_store(refset_dir, limits, None, std::time::Duration::ZERO)
+    }
+
+    /// State backed by `store`: batches are applied and written by one group-commit thread that
+    /// gathers what arrives within `group_commit` into one transaction.
+    pub fn with_store(refset_dir: Option<PathBuf>, limits: Limits, store: Option<Arc<Store>>, group_commit: std::time::Duration) -> Result<State> {
         let refset_dir = match refset_dir {
             Some(d) => Some(std::fs::canonicalize(&d).map_err(|e| ServiceError::Invalid(format!("--refset-dir {}: {e}", d.display())))?),
             None => None,
         };
         let slots = std::thread::available_parallelism().map_or(1, |n| n.get());
-        Ok(State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots) }) })
+        let (tx, rx) = std::sync::mpsc::channel::<CommitRequest>();
+        let committer = store.as_ref().map(|_| std::sync::Mutex::new(tx));
+        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), store: store.clone(), committer }) };
+        if let Some(store) = store {
+            // The thread holds only a weak handle, so it ends when the state is dropped.
+            let weak = Arc::downgrade(&state.inner);
+            std::thread::Builder::new()
+                .name("mtgauge-commit".into())
+                .spawn(move || commit_loop(store, weak, rx, group_commit))
+                .map_err(|e| ServiceError::Internal(format!("cannot start the commit thread: {e}")))?;
+        }
+        Ok(state)
+    }
+
+    /// The store, when durable.
+    pub fn store(&self) -> Option<&Arc<Store>> {
+        self.inner.store.as_ref()
+    }
+
+    fn persist(&self, f: impl FnOnce(&Store) -> std::result::Result<(), crate::store::StoreError>) -> Result<()> {
+        match &self.inner.store {
+            Some(s) => f(s).map_err(|e| ServiceError::Internal(e.to_string())),
+            None => Ok(()),
+        }
+    }
+
+    /// Apply a scored batch to its session; with a store, only once it is durable. None: the
+    /// batch was a duplicate and changed nothing.
+    pub async fn apply_batch(&self, session: Arc<Session>, producer: String, sequence: u64, outcomes: Vec<Outcome>, rejected: u64) -> Result<Option<AfterBatch>> {
+        match &self.inner.committer {
+            None => {
+                let mut st = session.state();
+                Ok(st.apply(&producer, sequence, &outcomes, rejected).map(|_| (st.cumulative, st.window.stats())))
+            }
+            Some(tx) => {
+                let (reply, rx) = tokio::sync::oneshot::channel();
+                let req = CommitRequest { session, producer, sequence, outcomes, rejected, reply };
+                tx.lock().unwrap_or_else(|e| e.into_inner()).send(req).map_err(|_| ServiceError::ShuttingDown)?;
+                rx.await.map_err(|_| ServiceError::ShuttingDown)
+            }
+        }
+    }
+
+    /// Rebuild the in-memory state from the store (at startup, before serving).
+    pub fn restore(&self) -> Result<usize> {
+        let Some(store) = &self.inner.store else { return Ok(0) };
+        let snap = store.load().map_err(|e| ServiceError::Internal(e.to_string()))?;
+        let versions: std::collections::HashMap<String, Arc<RefSet>> = snap.versions.into_iter().map(|(k, v)| (k, Arc::new(v))).collect();
+        for (name, digest) in snap.names {
+            self.inner.refsets.insert(name.clone(), Arc::new(LoadedSet { name, set: Arc::clone(&versions[&digest]) }));
+        }
+        let n = snap.sessions.len();
+        for s in snap.sessions {
+            let config = s.spec.config;
+            let session = Session::new(s.spec, Arc::clone(&versions[&s.refset_digest]), s.created_unix);
+            let window = crate::session::Window::restore(session.spec().window, &config, s.window_rows, s.next_row).map_err(|e| ServiceError::Internal(format!("store: session {}: {e}", session.spec().name)))?;
+            session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks });
+            self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
+        }
+        Ok(n)
+    }
+
+    /// Zero a session's statistics (durably).
+    pub fn reset_session(&self, session: &Session) -> Result<()> {
+        let next_row = session.state().window.next_id();
+        self.persist(|s| s.reset_session(&session.spec().name, next_row))?;
+        session.reset();
+        Ok(())
     }
 
     /// Wait for a scoring slot (see `scoring_slots`).
@@ -166,17 +262,24 @@ impl State {
         check_name("reference set name", name)?;
         let loaded = Arc::new(LoadedSet { name: name.to_owned(), set: Arc::new(set) });
         let len = self.inner.refsets.len();
+        // The entry guard serialises writers of this name, so memory and store agree.
         match self.inner.refsets.entry(name.to_owned()) {
             Entry::Occupied(mut e) => {
                 if !replace {
                     return Err(ServiceError::RefSetExists(name.to_owned()));
                 }
-                e.insert(Arc::clone(&loaded));
+                if e.get().set.digest() != loaded.set.digest() {
+                    self.persist(|s| s.put_refset(name, &loaded.set))?;
+                    e.insert(Arc::clone(&loaded));
+                } else {
+                    return Ok(Arc::clone(e.get()));
+                }
             }
             Entry::Vacant(e) => {
                 if len >= self.inner.limits.max_refsets {
                     return Err(ServiceError::Limit { what: format!("{} reference sets", len + 1), limit: self.inner.limits.max_refsets as u64, key: "limits.max_refsets" });
                 }
+                self.persist(|s| s.put_refset(name, &loaded.set))?;
                 e.insert(Arc::clone(&loaded));
             }
         }
@@ -197,6 +300,10 @@ impl State {
 
     /// Remove a reference set (sessions keep their version).
     pub fn delete_refset(&self, name: &str) -> Result<()> {
+        if !self.inner.refsets.contains_key(name) {
+            return Err(ServiceError::UnknownRefSet(name.to_owned()));
+        }
+        self.persist(|s| s.delete_refset(name))?;
         self.inner.refsets.remove(name).map(|_| ()).ok_or_else(|| ServiceError::UnknownRefSet(name.to_owned()))
     }
 
@@ -240,6 +347,7 @@ impl State {
                 }
             }
             Entry::Vacant(e) => {
+                self.persist(|s| s.put_session(session.spec(), &session.refs().digest_hex(), session.created_unix()))?;
                 e.insert(Arc::clone(&session));
                 Ok(session)
             }
@@ -260,6 +368,10 @@ impl State {
 
     /// Close (remove) a session.
     pub fn close_session(&self, name: &str) -> Result<Arc<Session>> {
+        if !self.inner.sessions.contains_key(name) {
+            return Err(ServiceError::UnknownSession(name.to_owned()));
+        }
+        self.persist(|s| s.delete_session(name))?;
         self.inner.sessions.remove(name).map(|(_, s)| s).ok_or_else(|| ServiceError::UnknownSession(name.to_owned()))
     }
 
@@ -285,5 +397,50 @@ pub struct ProducerClaim {
 impl Drop for ProducerClaim {
     fn drop(&mut self) {
         self.state.inner.streaming.remove(&self.key);
+    }
+}
+
+/// The group-commit thread: the one writer of batch effects. Each round takes everything that
+/// arrives within `interval` of the first request, applies it to the sessions in memory, writes
+/// it in one transaction, and only then answers (so an acknowledged batch is durable, and a
+/// duplicate is only acknowledged once its original is).
+fn commit_loop(store: Arc<Store>, state: std::sync::Weak<Inner>, rx: std::sync::mpsc::Receiver<CommitRequest>, interval: std::time::Duration) {
+    use std::sync::mpsc::RecvTimeoutError;
+    while let Ok(first) = rx.recv() {
+        let mut group = vec![first];
+        let deadline = std::time::Instant::now() + interval;
+        loop {
+            let left = deadline.saturating_duration_since(std::time::Instant::now());
+            match rx.recv_timeout(left) {
+                Ok(r) => group.push(r),
+                Err(RecvTimeoutError::Timeout) | Err(RecvTimeoutError::Disconnected) => break,
+            }
+        }
+        let live = state.upgrade();
+        let mut writes = Vec::new();
+        let mut replies = Vec::with_capacity(group.len());
+        for r in group {
+            let name = r.session.spec().name.clone();
+            // A session closed meanwhile: nothing is written for it.
+            let current = live.as_ref().and_then(|s| s.sessions.get(&name).map(|e| Arc::ptr_eq(e.value(), &r.session))).unwrap_or(false);
+            let mut st = r.session.state();
+            let applied = st.apply(&r.producer, r.sequence, &r.outcomes, r.rejected);
+            let after = applied.as_ref().map(|_| (st.cumulative, st.window.stats()));
+            drop(st);
+            if let (Some(a), true) = (applied, current) {
+                writes.push(BatchWrite { session: name, applied: a });
+            }
+            replies.push((r.reply, after));
+        }
+        if !writes.is_empty() {
+            if let Err(e) = store.commit_batches(&writes) {
+                tracing::error!(error = %e, "cannot write the store; stopping so that nothing unsaved is acknowledged");
+                eprintln!("mtgauge: error: {e}");
+                std::process::exit(EXIT_STORE_FAILURE);
+            }
+        }
+        for (reply, after) in replies {
+            let _ = reply.send(after);
+        }
     }
 }

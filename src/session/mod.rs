@@ -15,7 +15,7 @@ use crate::refs::compiled::{Compiled, Scratch};
 use crate::refs::{RefSet, SegmentInput};
 use crate::text::{is_space, push_lowercased};
 
-pub use window::Window;
+pub use window::{Pushed, Window};
 
 /// Size of the `recent` window in segments unless the session sets one.
 pub const DEFAULT_WINDOW: usize = 1000;
@@ -174,7 +174,7 @@ pub enum ItemKey<'a> {
 }
 
 /// Counters of a session, all additive.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub struct Counts {
     /// Items scored.
     pub scored: u64,
@@ -239,7 +239,8 @@ impl Session {
 
     /// Heap bytes of the compiled tables of this session.
     pub fn memory_bytes(&self) -> usize {
-        self.compiled.memory_bytes() + self.sources.as_ref().map_or(0, |s| s.compiled.memory_bytes())
+        let sources = self.sources.as_ref().map_or(0, |s| s.compiled.memory_bytes() + s.compiled.refs().memory_bytes() + s.map.capacity() * 48 + s.map.keys().map(String::len).sum::<usize>());
+        self.compiled.memory_bytes() + sources + self.state().window.memory_bytes()
     }
 
     /// Score one item (CPU work, no lock taken).
@@ -275,6 +276,11 @@ impl Session {
         self.state.lock().unwrap_or_else(|e| e.into_inner())
     }
 
+    /// Replace the statistics with a durable copy (at startup).
+    pub fn restore(&self, state: SessionState) {
+        *self.state() = state;
+    }
+
     /// Zero the statistics and counters (producer sequence marks are kept, so a retried old
     /// batch is still recognised).
     pub fn reset(&self) {
@@ -292,27 +298,45 @@ impl SessionState {
         !producer.is_empty() && sequence > 0 && self.producers.get(producer).is_some_and(|&s| sequence <= s)
     }
 
-    /// Apply the outcomes of one batch. Returns false (and changes nothing) for a duplicate.
-    pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64) -> bool {
+    /// Apply the outcomes of one batch. Returns None (and changes nothing) for a duplicate,
+    /// else what changed (for a durable copy).
+    pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64) -> Option<Applied> {
         if self.is_duplicate(producer, sequence) {
-            return false;
+            return None;
         }
-        if !producer.is_empty() && sequence > 0 {
+        let mark = (!producer.is_empty() && sequence > 0).then(|| {
             self.producers.insert(producer.to_owned(), sequence);
-        }
+            (producer.to_owned(), sequence)
+        });
+        let mut pushed = Vec::new();
         for o in outcomes {
             match o {
                 Outcome::Scored { stats, .. } => {
                     self.cumulative.add_segment(stats);
-                    self.window.push(stats);
+                    pushed.push(self.window.push(stats));
                     self.counts.scored += 1;
                 }
                 Outcome::Unknown => self.counts.unknown += 1,
             }
         }
         self.counts.rejected += rejected;
-        true
+        Some(Applied { mark, pushed, cumulative: self.cumulative, counts: self.counts, next_row: self.window.next_id() })
     }
+}
+
+/// The effect of one applied batch on a session, as a durable copy needs it.
+#[derive(Debug, Clone)]
+pub struct Applied {
+    /// The producer's new sequence mark.
+    pub mark: Option<(String, u64)>,
+    /// Window rows added (and dropped).
+    pub pushed: Vec<Pushed>,
+    /// Cumulative statistics after the batch.
+    pub cumulative: CorpusStats,
+    /// Counters after the batch.
+    pub counts: Counts,
+    /// The window's next row id after the batch.
+    pub next_row: u64,
 }
 
 #[cfg(test)]
@@ -382,10 +406,10 @@ mod tests {
         let mut scratch = Scratch::default();
         let o = s.score_item(ItemKey::Id("2"), "Bitte behalten Sie Ihr Ticket.", &mut scratch);
         let mut st = s.state();
-        assert!(st.apply("p1", 1, &[o, Outcome::Unknown], 1));
-        assert!(!st.apply("p1", 1, &[o], 0), "same sequence again is a duplicate");
-        assert!(st.apply("p2", 1, &[o], 0), "another producer has its own sequence");
-        assert!(st.apply("", 0, &[o], 0) && st.apply("", 0, &[o], 0), "anonymous batches are not deduplicated");
+        assert!(st.apply("p1", 1, &[o, Outcome::Unknown], 1).is_some());
+        assert!(st.apply("p1", 1, &[o], 0).is_none(), "same sequence again is a duplicate");
+        assert!(st.apply("p2", 1, &[o], 0).is_some(), "another producer has its own sequence");
+        assert!(st.apply("", 0, &[o], 0).is_some() && st.apply("", 0, &[o], 0).is_some(), "anonymous batches are not deduplicated");
         assert_eq!(st.counts, Counts { scored: 4, unknown: 1, rejected: 1 });
         assert_eq!(st.cumulative.segments, 4);
         assert_eq!(st.window.stats().segments, 2, "window of 2");

@@ -80,13 +80,51 @@ pub struct Window {
     rows: VecDeque<u64>,
     sum: CorpusStats,
     scratch: Vec<u64>,
+    /// Id the next pushed segment gets (ids only grow, across resets too), so that a durable
+    /// copy can key rows by it.
+    next_id: u64,
+}
+
+/// What one push changed, for a durable copy of the window.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Pushed {
+    /// Id of the new row.
+    pub id: u64,
+    /// The new row.
+    pub row: Vec<u64>,
+    /// Id of the row that fell out, if any.
+    pub dropped: Option<u64>,
 }
 
 impl Window {
     /// An empty window of `capacity` segments (at least 1).
     pub fn new(capacity: usize, config: &ScoreConfig) -> Window {
         let layout = Layout::new(config);
-        Window { capacity: capacity.max(1), layout, rows: VecDeque::new(), sum: CorpusStats::default(), scratch: Vec::new() }
+        Window { capacity: capacity.max(1), layout, rows: VecDeque::new(), sum: CorpusStats::default(), scratch: Vec::new(), next_id: 0 }
+    }
+
+    /// Rebuild a window from durable rows (oldest first, at most `capacity` of them) and the id
+    /// the next row gets.
+    pub fn restore(capacity: usize, config: &ScoreConfig, rows: impl IntoIterator<Item = Vec<u64>>, next_id: u64) -> Result<Window, String> {
+        let mut w = Window::new(capacity, config);
+        let width = w.layout.width();
+        for row in rows {
+            if row.len() != width {
+                return Err(format!("window row of {} values, expected {width}", row.len()));
+            }
+            if w.sum.segments as usize == w.capacity {
+                return Err("more window rows than the window holds".into());
+            }
+            w.sum.add_segment(&w.layout.decode(&row));
+            w.rows.extend(row);
+        }
+        w.next_id = next_id;
+        Ok(w)
+    }
+
+    /// Id the next pushed row gets.
+    pub fn next_id(&self) -> u64 {
+        self.next_id
     }
 
     /// Window size in segments.
@@ -95,17 +133,23 @@ impl Window {
     }
 
     /// Add a segment, dropping the oldest when full.
-    pub fn push(&mut self, s: &SegmentStats) {
+    pub fn push(&mut self, s: &SegmentStats) -> Pushed {
         let w = self.layout.width();
-        if self.sum.segments as usize == self.capacity {
+        let len = self.sum.segments;
+        let mut dropped = None;
+        if len as usize == self.capacity {
             let old: Vec<u64> = self.rows.drain(..w).collect();
             self.sum.sub_segment(&self.layout.decode(&old));
+            dropped = Some(self.next_id - len);
         }
         self.scratch.clear();
         self.layout.encode(s, &mut self.scratch);
         self.rows.extend(self.scratch.iter().copied());
         // Add what was kept, so that what is later subtracted is exactly what was added.
         self.sum.add_segment(&self.layout.decode(&self.scratch));
+        let id = self.next_id;
+        self.next_id += 1;
+        Pushed { id, row: self.scratch.clone(), dropped }
     }
 
     /// Sum over the segments in the window.
@@ -145,6 +189,26 @@ mod tests {
             s.chrfpp.word.reference[n] = rng.below(50);
         }
         s
+    }
+
+    #[test]
+    fn restore_rebuilds_the_same_window() {
+        let config = ScoreConfig::default();
+        let mut rng = SplitMix64::new(5);
+        let mut w = Window::new(4, &config);
+        let mut rows = std::collections::BTreeMap::new();
+        for _ in 0..11 {
+            let p = w.push(&random_stats(&mut rng));
+            rows.insert(p.id, p.row);
+            if let Some(d) = p.dropped {
+                assert!(rows.remove(&d).is_some(), "dropped id {d} was a live row");
+            }
+        }
+        assert_eq!(rows.len(), 4);
+        assert_eq!(*rows.keys().next().unwrap(), 7);
+        let back = Window::restore(4, &config, rows.into_values(), w.next_id()).unwrap();
+        assert_eq!(back.stats(), w.stats());
+        assert!(Window::restore(4, &config, vec![vec![1, 2]], 0).is_err());
     }
 
     #[test]

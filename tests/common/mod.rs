@@ -29,11 +29,19 @@ pub fn temp_dir(name: &str) -> PathBuf {
 }
 
 impl Server {
-    /// Start `mtgauge serve` on loopback port 0 with extra arguments.
+    /// Start `mtgauge serve` on loopback port 0 with extra arguments, on a fresh data directory
+    /// unless the arguments name one (or `--durability none`).
     pub fn start(extra: &[&str]) -> Server {
+        static N: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+        let own = !extra.iter().any(|a| *a == "--data-dir" || *a == "--durability" || *a == "--config");
+        let dir = temp_dir(&format!("data-{}", N.fetch_add(1, std::sync::atomic::Ordering::Relaxed)));
+        let mut args: Vec<String> = extra.iter().map(|s| s.to_string()).collect();
+        if own {
+            args.extend(["--data-dir".to_string(), dir.display().to_string()]);
+        }
         let mut child = Command::new(env!("CARGO_BIN_EXE_mtgauge"))
             .args(["serve", "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0"])
-            .args(extra)
+            .args(&args)
             .env("RUST_LOG", "info")
             .stdin(Stdio::null())
             .stdout(Stdio::null())

@@ -154,6 +154,7 @@ def server(demo_dir):
         "--metrics-listen", "127.0.0.1:0",
         "--refset", f"ferry={demo_dir / 'refs.jsonl'}",
         "--refset-dir", str(demo_dir),
+        "--data-dir", str(demo_dir / "data"),
     ]
     proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                             stderr=subprocess.PIPE)
