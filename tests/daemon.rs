@@ -433,3 +433,84 @@ async fn send_twice_counts_once_and_status_matches_score() {
         serde_json::from_str::<serde_json::Value>(l).unwrap_or_else(|e| panic!("not JSON ({e}): {l}"));
     }
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn each_limit_is_enforced_and_named() {
+    let dir = temp_dir("limits");
+    demo_files(&dir);
+    let cfg = dir.join("limits.toml");
+    // refs.jsonl of the demo is ~90 KB on disk; its memory is of the same order.
+    std::fs::write(
+        &cfg,
+        format!(
+            "refset_dir = {:?}\ndata_dir = {:?}\n[limits]\nmax_sessions = 2\nmax_refsets = 2\nmax_refset_bytes = 150000\nmax_total_refset_bytes = 120000\nmax_streams = 2\nmax_watchers = 1\n",
+            dir,
+            dir.join("data")
+        ),
+    )
+    .unwrap();
+    let server = Server::start(&["--config", cfg.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let mut refsets = RefSetsClient::new(ch.clone());
+    let load = |name: &str, paths: Vec<&str>| pb::LoadRefSetRequest { name: name.into(), format: pb::RefFormat::Plain as i32, paths: paths.into_iter().map(String::from).collect(), source_path: String::new(), replace: false };
+    let limit_of = |s: tonic::Status| {
+        assert_eq!(s.code(), Code::ResourceExhausted, "{s:?}");
+        s.message().to_owned()
+    };
+    refsets.load(load("a", vec!["ref1.de.txt"])).await.unwrap();
+    // One set of two streams: more than max_total_refset_bytes together with "a".
+    let m = limit_of(refsets.load(load("b", vec!["ref1.de.txt", "ref2.de.txt"])).await.unwrap_err());
+    assert!(m.contains("limits.max_total_refset_bytes"), "{m}");
+    let m = limit_of(refsets.load(load("big", vec!["ref1.de.txt", "ref2.de.txt", "ref1.de.txt", "ref2.de.txt", "ref1.de.txt"])).await.unwrap_err());
+    assert!(m.contains("limits.max_refset_bytes"), "{m}");
+    refsets.load(load("c", vec!["ref2.de.txt"])).await.unwrap();
+    let m = limit_of(refsets.load(load("d", vec!["ref2.de.txt"])).await.unwrap_err());
+    assert!(m.contains("limits.max_refsets") || m.contains("limits.max_total_refset_bytes"), "{m}");
+
+    let mut sessions = SessionsClient::new(ch.clone());
+    let req = |name: &str| pb::CreateSessionRequest { name: name.into(), refset: "a".into(), config: None, labels: Default::default(), window: 0, if_not_exists: false };
+    sessions.create(req("s1")).await.unwrap();
+    sessions.create(req("s2")).await.unwrap();
+    let m = limit_of(sessions.create(req("s3")).await.unwrap_err());
+    assert!(m.contains("limits.max_sessions"), "{m}");
+
+    // Streams: two open, the third refused; closing one frees its place.
+    let mut scoring = ScoringClient::new(ch.clone());
+    let (tx1, rx1) = tokio::sync::mpsc::channel::<pb::ScoreBatch>(1);
+    let (tx2, rx2) = tokio::sync::mpsc::channel::<pb::ScoreBatch>(1);
+    let s1 = scoring.stream(tokio_stream::wrappers::ReceiverStream::new(rx1)).await.unwrap();
+    let _s2 = scoring.stream(tokio_stream::wrappers::ReceiverStream::new(rx2)).await.unwrap();
+    let m = limit_of(scoring.stream(tokio_stream::iter(Vec::<pb::ScoreBatch>::new())).await.unwrap_err());
+    assert!(m.contains("limits.max_streams"), "{m}");
+    drop(tx1);
+    let mut s1 = s1.into_inner();
+    assert!(s1.message().await.unwrap().is_none());
+    let mut ok = false;
+    for _ in 0..50 {
+        if scoring.stream(tokio_stream::iter(Vec::<pb::ScoreBatch>::new())).await.is_ok() {
+            ok = true;
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+    assert!(ok, "a closed stream gives its place back");
+    drop(tx2);
+
+    // Watchers: one at a time.
+    let _w = scoring.watch_scores(pb::WatchScoresRequest { session: "s1".into(), interval_seconds: 1 }).await.unwrap();
+    let m = limit_of(scoring.watch_scores(pb::WatchScoresRequest { session: "s1".into(), interval_seconds: 1 }).await.unwrap_err());
+    assert!(m.contains("limits.max_watchers"), "{m}");
+}
+
+#[test]
+fn zero_or_negative_limits_are_refused_naming_the_key() {
+    let dir = temp_dir("badlimits");
+    for (body, key) in [("[limits]\nmax_streams = 0\n", "limits.max_streams"), ("[limits]\nmax_watchers = -3\n", "limits.max_watchers"), ("[limits]\nmax_total_refset_bytes = 0\n", "limits.max_total_refset_bytes"), ("no_such_key = 1\n", "no_such_key")] {
+        let cfg = dir.join("bad.toml");
+        std::fs::write(&cfg, body).unwrap();
+        let out = mtgauge(&["serve", "--config", cfg.to_str().unwrap(), "--durability", "none", "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0"]);
+        assert_eq!(out.status.code(), Some(2), "{body}");
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(err.contains(key), "{body}: {err}");
+    }
+}

@@ -9,7 +9,7 @@ use serde::Deserialize;
 
 use super::CliError;
 use crate::server::{self, Limits, ServerConfig, StartupRefSet, DEFAULT_LISTEN, DEFAULT_METRICS_LISTEN};
-use crate::server::state::{DEFAULT_MAX_BATCH_ITEMS, DEFAULT_MAX_REFSETS, DEFAULT_MAX_REFSET_BYTES, DEFAULT_MAX_SESSIONS, DEFAULT_MAX_TEXT_BYTES};
+use crate::server::state::{DEFAULT_MAX_BATCH_ITEMS, DEFAULT_MAX_REFSETS, DEFAULT_MAX_REFSET_BYTES, DEFAULT_MAX_SESSIONS, DEFAULT_MAX_STREAMS, DEFAULT_MAX_TEXT_BYTES, DEFAULT_MAX_TOTAL_REFSET_BYTES, DEFAULT_MAX_WATCHERS};
 use crate::telemetry::{self, LogFormat};
 
 pub const LONG_ABOUT: &str = "\
@@ -24,6 +24,7 @@ Settings come from --config FILE (TOML) and flags; a flag overrides the file. Ke
   listen, metrics_listen, refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
   log_format, max_message_bytes,
   [limits] max_batch_items, max_text_bytes, max_sessions, max_refsets, max_refset_bytes,
+           max_total_refset_bytes, max_streams, max_watchers (defaults in the docs),
   [[refset]] name, paths = [...], source (loaded at startup).
 
 gRPC health reports SERVING once the startup reference sets are loaded. SIGTERM or SIGINT: \
@@ -104,6 +105,9 @@ struct FileLimits {
     max_sessions: Option<i64>,
     max_refsets: Option<i64>,
     max_refset_bytes: Option<i64>,
+    max_total_refset_bytes: Option<i64>,
+    max_streams: Option<i64>,
+    max_watchers: Option<i64>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -160,6 +164,9 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
         max_sessions: limit("limits.max_sessions", l.max_sessions, DEFAULT_MAX_SESSIONS as u64)? as usize,
         max_refsets: limit("limits.max_refsets", l.max_refsets, DEFAULT_MAX_REFSETS as u64)? as usize,
         max_refset_bytes: limit("limits.max_refset_bytes", l.max_refset_bytes, DEFAULT_MAX_REFSET_BYTES)?,
+        max_total_refset_bytes: limit("limits.max_total_refset_bytes", l.max_total_refset_bytes, DEFAULT_MAX_TOTAL_REFSET_BYTES)?,
+        max_streams: limit("limits.max_streams", l.max_streams, DEFAULT_MAX_STREAMS as u64)? as usize,
+        max_watchers: limit("limits.max_watchers", l.max_watchers, DEFAULT_MAX_WATCHERS as u64)? as usize,
     };
     let mut startup: Vec<StartupRefSet> = file.refset.into_iter().map(|r| StartupRefSet { name: r.name, paths: r.paths, source: r.source }).collect();
     for s in &a.refsets {

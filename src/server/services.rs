@@ -349,11 +349,13 @@ impl pb::scoring_server::Scoring for Services {
     type WatchScoresStream = BoxStream<pb::ScoresReport>;
 
     async fn stream(&self, req: Request<Streaming<pb::ScoreBatch>>) -> std::result::Result<Response<Self::StreamStream>, Status> {
+        let gate = self.state.enter_stream()?;
         let mut inbound = req.into_inner();
         let (tx, rx) = mpsc::channel(ACK_BUFFER);
         let state = self.state.clone();
         let mut stop = self.stop.clone();
         tokio::spawn(async move {
+            let _gate = gate;
             let _gauge = StreamGauge::new();
             let mut claims: HashMap<(String, String), ProducerClaim> = HashMap::new();
             loop {
@@ -408,12 +410,14 @@ impl pb::scoring_server::Scoring for Services {
     async fn watch_scores(&self, req: Request<pb::WatchScoresRequest>) -> std::result::Result<Response<Self::WatchScoresStream>, Status> {
         let r = req.into_inner();
         let session = self.state.session(&r.session)?;
+        let gate = self.state.enter_watcher()?;
         let secs = if r.interval_seconds == 0 { DEFAULT_WATCH_SECONDS } else { r.interval_seconds };
         let state = self.state.clone();
         // One report in flight per subscriber: a slow one skips ticks instead of buffering.
         let (tx, rx) = mpsc::channel(1);
         let mut stop = self.stop.clone();
         tokio::spawn(async move {
+            let _gate = gate;
             let mut tick = tokio::time::interval(Duration::from_secs(secs as u64));
             tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
             loop {

@@ -28,6 +28,12 @@ pub const DEFAULT_MAX_SESSIONS: usize = 1_000;
 pub const DEFAULT_MAX_REFSETS: usize = 100;
 /// Largest reference-set input (all files of one set) in bytes unless configured.
 pub const DEFAULT_MAX_REFSET_BYTES: u64 = 2 * 1024 * 1024 * 1024;
+/// Largest memory of all loaded reference sets together unless configured.
+pub const DEFAULT_MAX_TOTAL_REFSET_BYTES: u64 = 8 * 1024 * 1024 * 1024;
+/// Most scoring streams open at once unless configured.
+pub const DEFAULT_MAX_STREAMS: usize = 1024;
+/// Most watch subscribers at once unless configured.
+pub const DEFAULT_MAX_WATCHERS: usize = 256;
 
 /// Configurable limits (config keys in parentheses in their errors).
 #[derive(Debug, Clone, Copy)]
@@ -42,6 +48,12 @@ pub struct Limits {
     pub max_refsets: usize,
     /// `limits.max_refset_bytes`.
     pub max_refset_bytes: u64,
+    /// `limits.max_total_refset_bytes`.
+    pub max_total_refset_bytes: u64,
+    /// `limits.max_streams`.
+    pub max_streams: usize,
+    /// `limits.max_watchers`.
+    pub max_watchers: usize,
 }
 
 impl Default for Limits {
@@ -52,6 +64,9 @@ impl Default for Limits {
             max_sessions: DEFAULT_MAX_SESSIONS,
             max_refsets: DEFAULT_MAX_REFSETS,
             max_refset_bytes: DEFAULT_MAX_REFSET_BYTES,
+            max_total_refset_bytes: DEFAULT_MAX_TOTAL_REFSET_BYTES,
+            max_streams: DEFAULT_MAX_STREAMS,
+            max_watchers: DEFAULT_MAX_WATCHERS,
         }
     }
 }
@@ -90,6 +105,8 @@ struct Inner {
     /// Batches scored at once on the blocking pool: one per CPU, so that scoring never
     /// crowds out the threads that run the network and the health checks.
     scoring_slots: tokio::sync::Semaphore,
+    streams: Arc<std::sync::atomic::AtomicUsize>,
+    watchers: Arc<std::sync::atomic::AtomicUsize>,
     /// Durable state (None: in memory only).
     store: Option<Arc<Store>>,
     /// Queue of the group-commit thread (with a store).
@@ -134,7 +151,7 @@ impl State {
         let slots = std::thread::available_parallelism().map_or(1, |n| n.get());
         let (tx, rx) = std::sync::mpsc::channel::<CommitRequest>();
         let committer = store.as_ref().map(|_| std::sync::Mutex::new(tx));
-        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), store: store.clone(), committer }) };
+        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer }) };
         if let Some(store) = store {
             // The thread holds only a weak handle, so it ends when the state is dropped.
             let weak = Arc::downgrade(&state.inner);
@@ -202,6 +219,16 @@ impl State {
         Ok(())
     }
 
+    /// Count one more open scoring stream, or refuse it past `limits.max_streams`.
+    pub fn enter_stream(&self) -> Result<Gate> {
+        Gate::enter(&self.inner.streams, self.inner.limits.max_streams, "scoring streams", "limits.max_streams")
+    }
+
+    /// Count one more watch subscriber, or refuse it past `limits.max_watchers`.
+    pub fn enter_watcher(&self) -> Result<Gate> {
+        Gate::enter(&self.inner.watchers, self.inner.limits.max_watchers, "watch subscribers", "limits.max_watchers")
+    }
+
     /// Wait for a scoring slot (see `scoring_slots`).
     pub async fn scoring_slot(&self) -> tokio::sync::SemaphorePermit<'_> {
         // The semaphore is never closed.
@@ -262,6 +289,9 @@ impl State {
         check_name("reference set name", name)?;
         let loaded = Arc::new(LoadedSet { name: name.to_owned(), set: Arc::new(set) });
         let len = self.inner.refsets.len();
+        // Checked before taking the entry (iterating the map under its guard would deadlock);
+        // concurrent loads of different names may pass it together.
+        self.check_total_bytes(Some(name), &loaded.set)?;
         // The entry guard serialises writers of this name, so memory and store agree.
         match self.inner.refsets.entry(name.to_owned()) {
             Entry::Occupied(mut e) => {
@@ -284,6 +314,19 @@ impl State {
             }
         }
         Ok(loaded)
+    }
+
+    /// Refuse a set that would take all loaded sets past `limits.max_total_refset_bytes`
+    /// (`replacing`: the name whose current version it replaces). Versions that sessions still
+    /// hold after a replacement are not counted: they go when their sessions close.
+    fn check_total_bytes(&self, replacing: Option<&str>, set: &RefSet) -> Result<()> {
+        let others: u64 = self.inner.refsets.iter().filter(|e| Some(e.key().as_str()) != replacing).map(|e| e.value().set.memory_bytes() as u64).sum();
+        let total = others + set.memory_bytes() as u64;
+        let limit = self.inner.limits.max_total_refset_bytes;
+        if total > limit {
+            return Err(ServiceError::Limit { what: format!("{total} bytes of loaded reference sets"), limit, key: "limits.max_total_refset_bytes" });
+        }
+        Ok(())
     }
 
     /// A reference set by name.
@@ -442,5 +485,28 @@ fn commit_loop(store: Arc<Store>, state: std::sync::Weak<Inner>, rx: std::sync::
         for (reply, after) in replies {
             let _ = reply.send(after);
         }
+    }
+}
+
+/// A counted place under a limit; leaving is dropping the guard.
+pub struct Gate {
+    count: Arc<std::sync::atomic::AtomicUsize>,
+}
+
+impl Gate {
+    fn enter(count: &Arc<std::sync::atomic::AtomicUsize>, limit: usize, what: &str, key: &'static str) -> Result<Gate> {
+        use std::sync::atomic::Ordering;
+        let n = count.fetch_add(1, Ordering::AcqRel) + 1;
+        if n > limit {
+            count.fetch_sub(1, Ordering::AcqRel);
+            return Err(ServiceError::Limit { what: format!("{n} {what}"), limit: limit as u64, key });
+        }
+        Ok(Gate { count: Arc::clone(count) })
+    }
+}
+
+impl Drop for Gate {
+    fn drop(&mut self) {
+        self.count.fetch_sub(1, std::sync::atomic::Ordering::AcqRel);
     }
 }
