@@ -266,6 +266,8 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
         "memory_bytes_per_segment_1_ref": {
             "refset": per_seg(set.memory_bytes(), set.len()),
             "bleu_tables": per_seg(bleu.memory_bytes(), set.len()),
+            "chrf_tables": per_seg(chrf.memory_bytes(), set.len()),
+            "chrfpp_tables": per_seg(chrfpp.memory_bytes(), set.len()),
         },
         "memory_bytes_per_segment_2_refs": {
             "refset": per_seg(two_set.memory_bytes(), two_set.len()),
@@ -329,6 +331,11 @@ fn human(f: &Value) -> String {
         m2["refset"].as_f64().unwrap_or(0.0),
         m2["bleu_tables"].as_f64().unwrap_or(0.0),
         m2["total"].as_f64().unwrap_or(0.0)
+    );
+    s += &format!(
+        "  memory per segment, 1 ref: chrF tables {:.0} B, chrF++ tables {:.0} B\n",
+        m1["chrf_tables"].as_f64().unwrap_or(0.0),
+        m1["chrfpp_tables"].as_f64().unwrap_or(0.0)
     );
     s
 }

@@ -1,14 +1,18 @@
 //! A reference set compiled for one scoring configuration: the tables the hot path uses.
 //!
-//! Built once per (reference set, tokenizer, lowercase, metrics): reference tokens interned to
-//! integer ids and, per segment and BLEU order, the clipping table of Papineni et al. 2002 (every
-//! n-gram of the segment's references with the largest count it has in any one reference). The
-//! table stores an n-gram as a position in the reference token arena, repeated as many times as
-//! its maximum count, sorted by n-gram: scoring a hypothesis is one sort of its token positions
-//! and a linear merge per order (see [`crate::metric::ngram`]), with no per-token allocation.
+//! Built once per (reference set, tokenizer, lowercase, metrics). BLEU: per segment, a gram
+//! table (see [`crate::metric::ngram::GramBuilder`]) of its references' tokens, holding every
+//! n-gram with the largest count it has in any one reference (the clipping of Papineni et al.
+//! 2002), in entries of one byte for segments of fewer than 255 tokens. Tokens are known by a
+//! key of their bytes (up to 7 bytes; longer tokens through a small interner), so scoring a
+//! hypothesis touches its own segment's table only: it is split in place (for `whitespace`
+//! without lowercasing, no copy), each token named through the table's hash slots (a token the
+//! references lack can start no match) and its n-grams matched by walking the table.
 //!
-//! chrF works from the reference text at scoring time (character n-grams are cheap to rebuild
-//! and would cost several times the text's size to keep); chrF++ word ids are kept.
+//! chrF works from the reference text at scoring time, with the characters' n-grams packed into
+//! integer keys; kept per reference is only the order those keys sort in (one byte per
+//! character for references of up to 256 characters), so the reference side needs no sort.
+//! chrF++ word ids are kept.
 
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Arc;
@@ -16,9 +20,12 @@ use std::sync::Arc;
 
 use super::intern::Interner;
 use super::RefSet;
-use crate::metric::ngram::{clipped_matches, clipped_matches_packed, ngram_count, pack4, sort_positions, PackedScratch, PACKED_ORDER};
+use crate::metric::ngram::{
+    clipped_matches, key_order, keys_in_order, ngram_count, packed_fits, packed_matches, packed_ref_pad, sort_positions, sorted_keys, Gram, GramBuilder,
+    GramHead, GramScratch, Packed, Width,
+};
 use crate::metric::{ChrfStats, CorpusStats, OrderCounts, ScoreConfig, SegmentStats};
-use crate::text::{is_space, push_lowercased, TokenBuf};
+use crate::text::{for_each_space_token, is_space, ASCII_SPACE, push_lowercased, TokenBuf, Tokenizer};
 
 /// Segments per unit of work when a corpus is scored on several threads.
 pub const SCORE_CHUNK: usize = 2048;
@@ -51,14 +58,94 @@ impl Sequences {
     }
 }
 
-/// BLEU clipping tables.
+/// Key of a token of 8 bytes or more: this marker and the token's id in the long-token interner.
+const LONG_KEY: u64 = 0xFF << 56;
+
+/// The key a gram table knows a token by: up to 7 bytes, the bytes themselves and the length
+/// (top byte, at most 7); longer tokens, [`LONG_KEY`] and their id from `long`, interned when
+/// `add` is set (else [`super::intern::UNKNOWN`], which no table holds). `text[a..e]` is the token.
+#[inline(always)]
+fn token_key(text: &[u8], a: usize, e: usize, long: &mut LongTokens<'_>) -> u64 {
+    let len = e - a;
+    if len <= 7 {
+        let w = match text.get(a..a + 8) {
+            Some(w) => u64::from_le_bytes(w.try_into().unwrap_or([0; 8])),
+            None => {
+                let mut buf = [0u8; 8];
+                buf[..len].copy_from_slice(&text[a..e]);
+                u64::from_le_bytes(buf)
+            }
+        };
+        (w & ((1u64 << (8 * len)) - 1)) | (len as u64) << 56
+    } else {
+        LONG_KEY
+            | match long {
+                LongTokens::Add(i) => i.intern(&text[a..e]),
+                LongTokens::Get(i) => i.get(&text[a..e]),
+            } as u64
+    }
+}
+
+enum LongTokens<'a> {
+    Add(&'a mut Interner),
+    Get(&'a Interner),
+}
+
+/// Entry width of one segment's table.
+#[derive(Debug, Clone, Copy)]
+enum Wide {
+    U8,
+    U16,
+    U32,
+}
+
+/// Gram tables of many sequences, each in the narrowest entry width that holds it.
+#[derive(Default)]
+struct GramTables {
+    heads: Vec<(GramHead, Wide)>,
+    d8: Vec<u8>,
+    d16: Vec<u16>,
+    d32: Vec<u32>,
+    keys: Vec<u64>,
+}
+
+impl GramTables {
+    fn push(&mut self, b: &mut GramBuilder, seqs: &[&[u64]], order: usize) {
+        let p = GramBuilder::positions(seqs.iter().copied());
+        let head = if p < u8::MAX as usize {
+            (b.build(seqs, order, &mut self.d8, &mut self.keys), Wide::U8)
+        } else if p < u16::MAX as usize {
+            (b.build(seqs, order, &mut self.d16, &mut self.keys), Wide::U16)
+        } else {
+            (b.build(seqs, order, &mut self.d32, &mut self.keys), Wide::U32)
+        };
+        self.heads.push(head);
+    }
+    fn shrink_to_fit(&mut self) {
+        self.heads.shrink_to_fit();
+        self.d8.shrink_to_fit();
+        self.d16.shrink_to_fit();
+        self.d32.shrink_to_fit();
+        self.keys.shrink_to_fit();
+    }
+    fn memory_bytes(&self) -> usize {
+        self.heads.capacity() * std::mem::size_of::<(GramHead, Wide)>()
+            + self.d8.capacity()
+            + self.d16.capacity() * 2
+            + self.d32.capacity() * 4
+            + self.keys.capacity() * 8
+    }
+}
+
+/// BLEU tables: per segment, a gram table of its references' tokens (counts are the largest in
+/// any one reference: the clipping counts).
 struct BleuTable {
     order: usize,
-    tokens: Sequences,
-    /// Positions into `tokens.seq`, per segment and order, sorted by n-gram, with multiplicity.
-    clip: Vec<u32>,
-    /// `clip` offsets: entry `seg * order + (n - 1)` starts the table of order n of `seg`.
-    clip_start: Vec<u32>,
+    tables: GramTables,
+    /// Tokens of 8 bytes or more.
+    long: Interner,
+    /// Token count of each reference (over all references of all segments).
+    ref_len: Vec<u32>,
 }
 
 /// A reference set compiled for one configuration.
@@ -67,20 +154,53 @@ pub struct Compiled {
     config: ScoreConfig,
     /// First reference index (into the flat per-reference arrays) of each segment, plus one.
     seg_ref: Vec<u32>,
-    tokens: Interner,
     bleu: Option<BleuTable>,
     words: Interner,
     word_seqs: Option<Sequences>,
+    char_orders: Option<CharOrders>,
+}
+
+/// Per reference, the order its character n-gram keys sort in (so that scoring puts them in
+/// order instead of sorting them): positions of one byte for references of up to 256
+/// characters, two bytes up to 65536; longer references are sorted when scored.
+#[derive(Default)]
+struct CharOrders {
+    /// Per reference: start in `by8` / `by16` shifted left by 2, or'ed with 1 (`by8`), 2
+    /// (`by16`) or 0 (none).
+    at: Vec<u64>,
+    by8: Vec<u8>,
+    by16: Vec<u16>,
+}
+
+/// The known key order of one reference.
+#[derive(Clone, Copy)]
+enum RefOrder<'a> {
+    Unknown,
+    U8(&'a [u8]),
+    U16(&'a [u16]),
+}
+
+impl CharOrders {
+    fn get(&self, r: usize, len: usize) -> RefOrder<'_> {
+        let (start, kind) = ((self.at[r] >> 2) as usize, self.at[r] & 3);
+        match kind {
+            1 => RefOrder::U8(&self.by8[start..start + len]),
+            2 => RefOrder::U16(&self.by16[start..start + len]),
+            _ => RefOrder::Unknown,
+        }
+    }
+    fn memory_bytes(&self) -> usize {
+        self.at.capacity() * 8 + self.by8.capacity() + self.by16.capacity() * 2
+    }
 }
 
 /// Reusable per-thread buffers for scoring.
 #[derive(Default)]
 pub struct Scratch {
     tok: TokenBuf,
-    ids: Vec<u32>,
-    pos: Vec<u32>,
-    keys: Vec<u128>,
-    gather: PackedScratch,
+    keys: Vec<u64>,
+    names: Vec<u32>,
+    gram: GramScratch,
     lower: String,
     hyp_chars: Vec<u32>,
     hyp_char_pos: Vec<u32>,
@@ -89,6 +209,149 @@ pub struct Scratch {
     hyp_words: Vec<u32>,
     hyp_word_pos: Vec<u32>,
     ref_word_pos: Vec<u32>,
+    packed: PackedScratch,
+}
+
+/// Buffers of the packed-key chrF path.
+#[derive(Default)]
+struct PackedScratch {
+    ref_items: Vec<u32>,
+    hyp_chars: HypKeys,
+    hyp_words: HypKeys,
+    bufs: KeyBufs,
+}
+
+/// Reference keys and merged lists.
+#[derive(Default)]
+struct KeyBufs {
+    ref64: Vec<u64>,
+    ref128: Vec<u128>,
+    merged64: Vec<u64>,
+    merged128: Vec<u128>,
+    tmp64: Vec<u64>,
+    tmp128: Vec<u128>,
+}
+
+/// Sorted packed keys of the hypothesis, made once per segment for each key type asked for.
+#[derive(Default)]
+struct HypKeys {
+    k64: Vec<u64>,
+    k128: Vec<u128>,
+    have64: bool,
+    have128: bool,
+}
+
+impl HypKeys {
+    fn reset(&mut self) {
+        (self.have64, self.have128) = (false, false);
+    }
+}
+
+/// Key types with a place for the hypothesis keys of that type in [`HypKeys`] and scratch
+/// buffers in [`KeyBufs`].
+trait PackedBufs: Packed {
+    fn hyp(h: &mut HypKeys) -> (&mut Vec<Self>, &mut bool);
+    fn bufs(p: &mut KeyBufs) -> (&mut Vec<Self>, &mut Vec<Self>, &mut Vec<Self>);
+}
+
+impl PackedBufs for u64 {
+    fn hyp(h: &mut HypKeys) -> (&mut Vec<Self>, &mut bool) {
+        (&mut h.k64, &mut h.have64)
+    }
+    fn bufs(p: &mut KeyBufs) -> (&mut Vec<Self>, &mut Vec<Self>, &mut Vec<Self>) {
+        (&mut p.ref64, &mut p.merged64, &mut p.tmp64)
+    }
+}
+
+impl PackedBufs for u128 {
+    fn hyp(h: &mut HypKeys) -> (&mut Vec<Self>, &mut bool) {
+        (&mut h.k128, &mut h.have128)
+    }
+    fn bufs(p: &mut KeyBufs) -> (&mut Vec<Self>, &mut Vec<Self>, &mut Vec<Self>) {
+        (&mut p.ref128, &mut p.merged128, &mut p.tmp128)
+    }
+}
+
+/// Matches of orders 1..=`order` between hypothesis items `hyp` (keys cached in `hk`) and
+/// reference items `reference`, with keys of type `K`; writes `out[..order]`.
+fn packed_orders<K: PackedBufs>(
+    order: usize,
+    hyp: &[u32],
+    hk: &mut HypKeys,
+    reference: &[u32],
+    by: RefOrder<'_>,
+    p: &mut KeyBufs,
+    out: &mut [u64],
+) {
+    let (hk, have) = K::hyp(hk);
+    if !*have {
+        sorted_keys(hyp, order, 0, hk);
+        *have = true;
+    }
+    let (rk, merged, tmp) = K::bufs(p);
+    match by {
+        RefOrder::Unknown => sorted_keys(reference, order, packed_ref_pad::<K>(order), rk),
+        RefOrder::U8(by) => keys_in_order(reference, order, by, tmp, rk),
+        RefOrder::U16(by) => keys_in_order(reference, order, by, tmp, rk),
+    }
+    packed_matches(hk, rk, order, merged, out);
+}
+
+/// Matches of orders 1..=`order` by packed keys in the narrowest type that holds items up to
+/// `max`; false (and nothing written) when none does.
+fn packed_counts(
+    order: usize,
+    max: u32,
+    hyp: &[u32],
+    hk: &mut HypKeys,
+    reference: &[u32],
+    by: RefOrder<'_>,
+    p: &mut KeyBufs,
+    out: &mut [u64],
+) -> bool {
+    if packed_fits::<u64>(order, max) {
+        packed_orders::<u64>(order, hyp, hk, reference, by, p, out);
+    } else if packed_fits::<u128>(order, max) {
+        packed_orders::<u128>(order, hyp, hk, reference, by, p, out);
+    } else {
+        return false;
+    }
+    true
+}
+
+/// Character codes + 1 of the non-space characters of `text` (lowercased when asked, in
+/// `lower`) into `out`; returns the largest.
+fn char_items(text: &str, lowercase: bool, lower: &mut String, out: &mut Vec<u32>) -> u32 {
+    let text = if lowercase {
+        lower.clear();
+        push_lowercased(text, true, lower);
+        lower.as_str()
+    } else {
+        text
+    };
+    out.clear();
+    let mut max = 0;
+    if text.is_ascii() {
+        // Every byte written, the write position advanced past non-space ones: no branch.
+        let bytes = text.as_bytes();
+        out.resize(bytes.len(), 0);
+        let mut k = 0;
+        for &b in bytes {
+            out[k] = b as u32 + 1;
+            k += !ASCII_SPACE[b as usize] as usize;
+            max = max.max(b as u32 + 1);
+        }
+        out.truncate(k);
+        return max;
+    }
+    for c in text.chars() {
+        if !is_space(c) {
+            let v = c as u32 + 1;
+            max = max.max(v);
+            out.push(v);
+        }
+    }
+    max
 }
 
 impl Compiled {
@@ -101,67 +364,69 @@ impl Compiled {
             nrefs += seg.ref_count() as u32;
             seg_ref.push(nrefs);
         }
-        let mut c = Compiled { refs, config, seg_ref, tokens: Interner::default(), bleu: None, words: Interner::default(), word_seqs: None };
+        let mut c = Compiled { refs, config, seg_ref, bleu: None, char_orders: None, words: Interner::default(), word_seqs: None };
         if config.metrics.bleu {
             c.bleu = Some(c.build_bleu());
         }
         if config.metrics.chrfpp {
             c.word_seqs = Some(c.build_words());
         }
+        if config.metrics.any_chrf() {
+            c.char_orders = Some(c.build_char_orders());
+        }
         c
     }
 
     fn build_bleu(&mut self) -> BleuTable {
         let order = self.config.bleu_order;
-        let mut tokens = Sequences { pad: order.max(PACKED_ORDER), ..Default::default() };
+        let mut t = BleuTable { order, tables: GramTables::default(), long: Interner::default(), ref_len: Vec::new() };
         let mut buf = TokenBuf::default();
-        let mut clip = Vec::new();
-        let mut clip_start = Vec::with_capacity(self.refs.len() * order + 1);
-        let mut cand: Vec<(u32, u32)> = Vec::new();
-        let refs = Arc::clone(&self.refs);
-        for seg in refs.segments() {
-            let first = tokens.start.len();
-            for r in seg.refs() {
+        let mut builder = GramBuilder::default();
+        let mut keys: Vec<Vec<u64>> = Vec::new();
+        for seg in self.refs.segments() {
+            keys.resize_with(seg.ref_count(), Vec::new);
+            for (k, r) in seg.refs().enumerate() {
                 self.config.tokenizer.tokenize_into(r, self.config.lowercase, &mut buf);
-                let interner = &mut self.tokens;
-                tokens.push(buf.token_bytes().map(|t| interner.intern(t)));
+                let text = buf.text_bytes();
+                keys[k].clear();
+                keys[k].extend(buf.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, &mut LongTokens::Add(&mut t.long))));
+                t.ref_len.push(keys[k].len() as u32);
             }
-            let seg_refs = first..tokens.start.len();
-            for n in 1..=order {
-                clip_start.push(clip.len() as u32);
-                cand.clear();
-                for r in seg_refs.clone() {
-                    let range = tokens.range(r);
-                    let complete = (range.len() + 1).saturating_sub(n);
-                    cand.extend((0..complete).map(|p| ((range.start + p) as u32, r as u32)));
-                }
-                let seq = &tokens.seq;
-                let gram = |p: u32| &seq[p as usize..p as usize + n];
-                cand.sort_unstable_by(|a, b| gram(a.0).cmp(gram(b.0)).then(a.1.cmp(&b.1)));
-                let mut i = 0;
-                while i < cand.len() {
-                    let g = gram(cand[i].0);
-                    let (mut best, mut run, mut run_ref) = (0u32, 0u32, cand[i].1);
-                    let mut j = i;
-                    while j < cand.len() && gram(cand[j].0) == g {
-                        if cand[j].1 != run_ref {
-                            run_ref = cand[j].1;
-                            run = 0;
-                        }
-                        run += 1;
-                        best = best.max(run);
-                        j += 1;
+            let seqs: Vec<&[u64]> = keys[..seg.ref_count()].iter().map(Vec::as_slice).collect();
+            t.tables.push(&mut builder, &seqs, order);
+        }
+        t.tables.shrink_to_fit();
+        t.long.shrink_to_fit();
+        t.ref_len.shrink_to_fit();
+        t
+    }
+
+    fn build_char_orders(&self) -> CharOrders {
+        let mut o = CharOrders::default();
+        let (mut lower, mut items) = (String::new(), Vec::new());
+        for seg in self.refs.segments() {
+            for r in seg.refs() {
+                char_items(r, self.config.lowercase, &mut lower, &mut items);
+                let by = if items.len() <= 1 << 16 { key_order(&items, self.config.chrf_char_order) } else { None };
+                o.at.push(match by {
+                    Some(by) if items.len() <= 1 << 8 => {
+                        let at = (o.by8.len() as u64) << 2 | 1;
+                        o.by8.extend(by.iter().map(|&p| p as u8));
+                        at
                     }
-                    clip.extend(std::iter::repeat(cand[i].0).take(best as usize));
-                    i = j;
-                }
+                    Some(by) => {
+                        let at = (o.by16.len() as u64) << 2 | 2;
+                        o.by16.extend(by.iter().map(|&p| p as u16));
+                        at
+                    }
+                    None => 0,
+                });
             }
         }
-        clip_start.push(clip.len() as u32);
-        clip.shrink_to_fit();
-        self.tokens.shrink_to_fit();
-        tokens.seq.shrink_to_fit();
-        BleuTable { order, tokens, clip, clip_start }
+        o.at.shrink_to_fit();
+        o.by8.shrink_to_fit();
+        o.by16.shrink_to_fit();
+        o
     }
 
     fn build_words(&mut self) -> Sequences {
@@ -193,10 +458,10 @@ impl Compiled {
 
     /// Heap bytes of the compiled tables (not counting the reference set itself).
     pub fn memory_bytes(&self) -> usize {
-        let bleu = self.bleu.as_ref().map_or(0, |b| b.tokens.memory_bytes() + (b.clip.capacity() + b.clip_start.capacity()) * 4);
-        bleu + self.tokens.memory_bytes()
-            + self.words.memory_bytes()
+        let bleu = self.bleu.as_ref().map_or(0, |b| b.tables.memory_bytes() + b.long.memory_bytes() + b.ref_len.capacity() * 4);
+        bleu + self.words.memory_bytes()
             + self.word_seqs.as_ref().map_or(0, Sequences::memory_bytes)
+            + self.char_orders.as_ref().map_or(0, CharOrders::memory_bytes)
             + self.seg_ref.capacity() * 4
     }
 
@@ -210,53 +475,135 @@ impl Compiled {
     /// [`Compiled::score_segment`] into `out`, overwriting it: what the hot loops use, so that
     /// the (large) statistics record is not copied per segment.
     pub fn score_segment_into(&self, seg: usize, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
-        let refs = self.seg_ref[seg] as usize..self.seg_ref[seg + 1] as usize;
-        match &self.bleu {
-            Some(b) => self.score_bleu(b, seg, refs.clone(), hyp, s, out),
-            None => out.bleu = Default::default(),
+        self.score_configured(seg, hyp, s, out);
+        if self.bleu.is_none() {
+            out.bleu = Default::default();
         }
-        if self.config.metrics.any_chrf() {
-            self.score_chrf(seg, refs, hyp, s, out);
-        } else {
+        if !self.config.metrics.any_chrf() {
             (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
         }
     }
 
+    /// [`Compiled::score_segment_into`] for the configured metrics only: the other parts of
+    /// `out` are left as they are.
+    #[inline]
+    fn score_configured(&self, seg: usize, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
+        let refs = self.seg_ref[seg] as usize..self.seg_ref[seg + 1] as usize;
+        if let Some(b) = &self.bleu {
+            self.score_bleu(b, seg, refs.clone(), hyp, s, out);
+        }
+        if self.config.metrics.any_chrf() {
+            self.score_chrf(seg, refs, hyp, s, out);
+        }
+    }
+
     fn score_bleu(&self, b: &BleuTable, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
-        let order = b.order;
-        self.config.tokenizer.tokenize_into(hyp, self.config.lowercase, &mut s.tok);
-        s.ids.clear();
-        s.ids.extend(s.tok.token_bytes().map(|t| self.tokens.get(t)));
-        let len = s.ids.len();
-        s.ids.extend(std::iter::repeat(0).take(order.max(PACKED_ORDER)));
+        let (head, wide) = &b.tables.heads[seg];
         let st = &mut out.bleu;
         *st = Default::default();
-        let table = |n: usize| {
-            let k = seg * order + n - 1;
-            &b.clip[b.clip_start[k] as usize..b.clip_start[k + 1] as usize]
-        };
-        if order <= PACKED_ORDER {
-            // Common case: every n-gram fits one integer key; one sort serves all orders.
-            s.keys.clear();
-            s.keys.extend((0..len).map(|p| pack4(&s.ids, p)));
-            s.keys.sort_unstable();
-            let tables: [&[u32]; PACKED_ORDER] = std::array::from_fn(|k| if k < order { table(k + 1) } else { &[] });
-            clipped_matches_packed(&s.keys, &b.tokens.seq, &tables[..order], &mut s.gather, &mut st.matches);
-            for n in 1..=order {
-                st.totals[n - 1] = ngram_count(len, n);
-            }
-        } else {
-            sort_positions(&s.ids, len, order, &mut s.pos);
-            for n in 1..=order {
-                st.totals[n - 1] = ngram_count(len, n);
-                st.matches[n - 1] = clipped_matches(n, &s.ids, &s.pos, &b.tokens.seq, table(n));
-            }
+        match wide {
+            Wide::U8 => self.bleu_matches(b, Gram::new(head, b.order, &b.tables.d8, &b.tables.keys), hyp, s, &mut st.matches),
+            Wide::U16 => self.bleu_matches(b, Gram::new(head, b.order, &b.tables.d16, &b.tables.keys), hyp, s, &mut st.matches),
+            Wide::U32 => self.bleu_matches(b, Gram::new(head, b.order, &b.tables.d32, &b.tables.keys), hyp, s, &mut st.matches),
+        }
+        let len = s.names.len();
+        for n in 1..=b.order {
+            st.totals[n - 1] = ngram_count(len, n);
         }
         st.hyp_len = len as u64;
-        st.ref_len = self.config.ref_length.pick(len as u64, refs.map(|r| b.tokens.len[r] as u64));
+        st.ref_len = self.config.ref_length.pick(len as u64, refs.map(|r| b.ref_len[r] as u64));
+    }
+
+    /// Tokenize `hyp`, name its tokens in `g` (into `s.names`) and count clipped matches.
+    #[inline]
+    fn bleu_matches<W: Width>(&self, b: &BleuTable, g: Gram<'_, W>, hyp: &str, s: &mut Scratch, matches: &mut [u64]) {
+        // Keys first, then names: two tight loops overlap their loads better than one.
+        s.keys.clear();
+        let mut long = LongTokens::Get(&b.long);
+        if self.config.tokenizer == Tokenizer::Whitespace && !self.config.lowercase {
+            let (text, keys) = (hyp.as_bytes(), &mut s.keys);
+            for_each_space_token(hyp, |a, e| keys.push(token_key(text, a, e, &mut long)));
+        } else {
+            self.config.tokenizer.tokenize_into(hyp, self.config.lowercase, &mut s.tok);
+            let text = s.tok.text_bytes();
+            s.keys.extend(s.tok.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, &mut long)));
+        }
+        s.names.clear();
+        s.names.extend(s.keys.iter().map(|&k| g.lookup(k)));
+        g.count(&s.names, &mut s.gram, &mut matches[..b.order]);
     }
 
     fn score_chrf(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
+        if !self.score_chrf_packed(seg, refs.clone(), hyp, s, out) {
+            self.score_chrf_general(seg, refs, hyp, s, out);
+        }
+    }
+
+    /// chrF / chrF++ by packed keys; false when some n-gram does not fit the widest key (then
+    /// `out` is to be filled by [`Compiled::score_chrf_general`]).
+    fn score_chrf_packed(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) -> bool {
+        let cfg = &self.config;
+        let (c_order, w_order) = (cfg.chrf_char_order, cfg.chrf_word_order);
+        let p = &mut s.packed;
+        let hyp_max = char_items(hyp, cfg.lowercase, &mut s.lower, &mut s.hyp_chars);
+        let hyp_len = s.hyp_chars.len();
+        p.hyp_chars.reset();
+        p.hyp_words.reset();
+        // Word ids: interned ids from 1, one more id for every word the references lack.
+        let unknown_word = self.words.len() as u32 + 1;
+        if self.word_seqs.is_some() {
+            let text = if cfg.lowercase { s.lower.as_str() } else { hyp };
+            s.hyp_words.clear();
+            s.hyp_words.extend(text.split(is_space).filter(|w| !w.is_empty()).map(|w| match self.words.get(w.as_bytes()) {
+                super::intern::UNKNOWN => unknown_word,
+                id => id,
+            }));
+        }
+        let segment = self.refs.segment(seg);
+        (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
+        let (mut best_c, mut best_pp) = (f64::NEG_INFINITY, f64::NEG_INFINITY);
+        for (k, r) in refs.enumerate() {
+            let ref_max = char_items(segment.reference(k), cfg.lowercase, &mut s.lower, &mut p.ref_items);
+            let by = self.char_orders.as_ref().map_or(RefOrder::Unknown, |o| o.get(r, p.ref_items.len()));
+            let mut st = ChrfStats::default();
+            if !packed_counts(c_order, hyp_max.max(ref_max), &s.hyp_chars, &mut p.hyp_chars, &p.ref_items, by, &mut p.bufs, &mut st.char.matches) {
+                return false;
+            }
+            let ref_len = p.ref_items.len();
+            for n in 1..=c_order {
+                st.char.hyp[n - 1] = ngram_count(hyp_len, n);
+                st.char.reference[n - 1] = ngram_count(ref_len, n);
+            }
+            if cfg.metrics.chrf {
+                let f = st.score(c_order, 0, cfg.beta).score;
+                if f > best_c {
+                    best_c = f;
+                    out.chrf = st;
+                    out.chrf_ref = k as u32;
+                }
+            }
+            if let Some(ws) = &self.word_seqs {
+                let words = &ws.seq[ws.range(r)];
+                if !packed_counts(w_order, unknown_word, &s.hyp_words, &mut p.hyp_words, words, RefOrder::Unknown, &mut p.bufs, &mut st.word.matches) {
+                    return false;
+                }
+                for n in 1..=w_order {
+                    st.word.hyp[n - 1] = ngram_count(s.hyp_words.len(), n);
+                    st.word.reference[n - 1] = ngram_count(words.len(), n);
+                }
+                let f = st.score(c_order, w_order, cfg.beta).score;
+                if f > best_pp {
+                    best_pp = f;
+                    out.chrfpp = st;
+                    out.chrfpp_ref = k as u32;
+                }
+            }
+        }
+        true
+    }
+
+    /// chrF / chrF++ for any orders and characters, sorting positions by item slices.
+    fn score_chrf_general(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
         let cfg = &self.config;
         let (c_order, w_order) = (cfg.chrf_char_order, cfg.chrf_word_order);
         s.lower.clear();
@@ -323,9 +670,18 @@ impl Compiled {
                 }
                 let base = c * SCORE_CHUNK;
                 let chunk = &hyps[base..(base + SCORE_CHUNK).min(hyps.len())];
+                // Parts of `one` for metrics not configured stay zero: adding them is skipped.
+                let (bleu, chrf) = (self.bleu.is_some(), self.config.metrics.any_chrf());
                 for (i, h) in chunk.iter().enumerate() {
-                    self.score_segment_into(base + i, h, &mut scratch, &mut one);
-                    sum.add_segment(&one);
+                    self.score_configured(base + i, h, &mut scratch, &mut one);
+                    sum.segments += 1;
+                    if bleu {
+                        sum.bleu += one.bleu;
+                    }
+                    if chrf {
+                        sum.chrf += one.chrf;
+                        sum.chrfpp += one.chrfpp;
+                    }
                 }
                 done.fetch_add(chunk.len(), Ordering::Relaxed);
             }

@@ -174,36 +174,92 @@ impl TokenBuf {
         self.spans.is_empty()
     }
 
+    /// The normalised text of the last call, as bytes (what [`TokenBuf::spans`] index).
+    pub fn text_bytes(&self) -> &[u8] {
+        self.text.as_bytes()
+    }
+
+    /// Byte spans `(start, end)` of the tokens of the last call in [`TokenBuf::text_bytes`].
+    pub fn spans(&self) -> &[(u32, u32)] {
+        &self.spans
+    }
+
     fn split_on_space(&mut self) {
-        let text = self.text.as_str();
-        let bytes = text.as_bytes();
-        let mut start: Option<usize> = None;
-        let mut i = 0;
-        while i < bytes.len() {
-            let b = bytes[i];
-            let (space, width) = if b < 0x80 {
-                (ASCII_SPACE[b as usize], 1)
+        let spans = &mut self.spans;
+        for_each_space_token(&self.text, |a, b| spans.push((a as u32, b as u32)));
+    }
+}
+
+/// Call `f(start, end)` with the byte span of every white-space separated token of `text`, in
+/// order: the `whitespace` tokenizer without a copy of the text.
+#[inline]
+pub fn for_each_space_token(text: &str, mut f: impl FnMut(usize, usize)) {
+    let bytes = text.as_bytes();
+    let mut i = 0;
+    loop {
+        // Skip white space.
+        loop {
+            let Some(&b) = bytes.get(i) else { return };
+            if b < 0x80 {
+                if !ASCII_SPACE[b as usize] {
+                    break;
+                }
+                i += 1;
             } else {
                 let c = text[i..].chars().next().unwrap_or(' ');
-                (c.is_whitespace(), c.len_utf8())
-            };
-            if space {
-                if let Some(s) = start.take() {
-                    self.spans.push((s as u32, i as u32));
+                if !c.is_whitespace() {
+                    break;
                 }
-            } else if start.is_none() {
-                start = Some(i);
+                i += c.len_utf8();
             }
-            i += width;
         }
-        if let Some(s) = start {
-            self.spans.push((s as u32, bytes.len() as u32));
+        // A token: up to the next white space or the end.
+        let start = i;
+        i += 1;
+        let space_width = loop {
+            // Eight bytes at a time while they are printable ASCII (not white space).
+            while let Some(w) = bytes.get(i..i + 8) {
+                let w = u64::from_le_bytes(w.try_into().unwrap_or([0; 8]));
+                // High bit of each byte below 0x21 or from 0x80 up; exact for the lowest such
+                // byte (a borrow only comes from a lower byte, itself flagged).
+                let special = (w.wrapping_sub(0x2121_2121_2121_2121) | w) & 0x8080_8080_8080_8080;
+                if special == 0 {
+                    i += 8;
+                } else {
+                    i += special.trailing_zeros() as usize / 8;
+                    break;
+                }
+            }
+            let Some(&b) = bytes.get(i) else {
+                // The end: one call site for `f`, so that it is inlined.
+                break 0;
+            };
+            if b < 0x80 {
+                if ASCII_SPACE[b as usize] {
+                    break 1;
+                }
+                i += 1;
+            } else if b < 0xC0 {
+                // A continuation byte: inside a character already judged not to be space.
+                i += 1;
+            } else {
+                let c = text[i..].chars().next().unwrap_or(' ');
+                if c.is_whitespace() {
+                    break c.len_utf8();
+                }
+                i += c.len_utf8();
+            }
+        };
+        f(start, i);
+        if space_width == 0 {
+            return;
         }
+        i += space_width;
     }
 }
 
 /// [`is_space`] for the ASCII range, as a table.
-const ASCII_SPACE: [bool; 128] = {
+pub(crate) const ASCII_SPACE: [bool; 128] = {
     let mut t = [false; 128];
     let mut b = 0;
     while b < 128 {
@@ -328,6 +384,14 @@ mod tests {
         fn whitespace_tokens_rejoin_to_the_text(words in proptest::collection::vec("[a-zA-Z0-9.,;]{1,8}", 0..20)) {
             let text = words.join("  ");
             prop_assert_eq!(Tokenizer::Whitespace.tokenize(&text, false), words);
+        }
+
+        #[test]
+        fn span_scan_equals_splitting_on_space(s in "(\\PC|[ \t\u{85}\u{A0}\u{1680}\u{2000}-\u{200A}\u{2028}\u{2029}\u{202F}\u{205F}\u{3000}\u{1C}-\u{1F}])*") {
+            let mut spans = Vec::new();
+            for_each_space_token(&s, |a, b| spans.push(&s[a..b]));
+            let want: Vec<&str> = s.split(is_space).filter(|w| !w.is_empty()).collect();
+            prop_assert_eq!(spans, want);
         }
 
         #[test]
