@@ -9,7 +9,6 @@ pub mod compiled;
 mod intern;
 mod parse;
 
-use std::collections::HashMap;
 use std::fmt;
 
 use sha2::{Digest, Sha256};
@@ -68,7 +67,7 @@ pub struct RefSet {
     /// Whether each segment has a source.
     has_source: Vec<bool>,
     /// Segment index by id.
-    by_id: HashMap<Box<str>, u32>,
+    by_id: rustc_hash::FxHashMap<Box<str>, u32>,
     digest: [u8; 32],
 }
 
@@ -120,7 +119,7 @@ impl RefSet {
             ends: Vec::new(),
             first_field: vec![0],
             has_source: Vec::new(),
-            by_id: HashMap::new(),
+            by_id: Default::default(),
             digest: [0; 32],
         };
         let mut hasher = Sha256::new();

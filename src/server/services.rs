@@ -23,6 +23,9 @@ use crate::report::PROXY_NOTE;
 use crate::session::{ItemKey, Outcome, Session};
 use crate::telemetry;
 
+/// Batches of at most this many items are scored on the async worker itself.
+pub const INLINE_BATCH_ITEMS: usize = 256;
+
 thread_local! {
     /// Scoring buffers of each blocking-pool thread, reused across batches.
     static SCRATCH: RefCell<Scratch> = RefCell::new(Scratch::default());
@@ -232,7 +235,8 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
     }
     let scoring = Arc::clone(&session);
     let slot = state.scoring_slot().await;
-    let (batch, outcomes, rejections) = blocking(move || {
+    let inline = batch.items.len() <= INLINE_BATCH_ITEMS;
+    let work = move || {
         let mut outcomes = Vec::with_capacity(batch.items.len());
         let mut rejections = Vec::new();
         SCRATCH.with(|s| {
@@ -258,8 +262,11 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
             }
         });
         Ok((batch, outcomes, rejections))
-    })
-    .await?;
+    };
+    // A small batch is scored right here (well under a millisecond: the runtime stays
+    // responsive, see `mtgauge load`'s health probe); a large one on the blocking pool, which
+    // costs two thread hand-offs.
+    let (batch, outcomes, rejections) = if inline { work()? } else { blocking(work).await? };
     drop(slot);
 
     let plain: Vec<Outcome> = outcomes.iter().map(|(_, o)| *o).collect();
