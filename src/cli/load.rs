@@ -13,10 +13,9 @@ use std::time::{Duration, Instant};
 use clap::Args;
 use serde_json::json;
 use tokio::sync::mpsc;
-use tonic::transport::Channel;
 
 use super::bench::{generate, refset, Corpus};
-use super::send::{channel, status_error};
+use super::send::{channel, status_error, Conn};
 use super::CliError;
 use crate::metric::{MetricSet, ScoreConfig};
 use crate::pb;
@@ -78,7 +77,7 @@ struct Phase {
 /// Interval of the responsiveness probe.
 const PROBE_EVERY: Duration = Duration::from_millis(20);
 
-async fn probe_health(ch: Channel, end: Instant) -> Vec<f64> {
+async fn probe_health(ch: Conn, end: Instant) -> Vec<f64> {
     let mut health = tonic_health::pb::health_client::HealthClient::new(ch);
     let mut out = Vec::new();
     while Instant::now() < end {
@@ -184,7 +183,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
     Ok(())
 }
 
-async fn upload(ch: &Channel, name: &str, corpus: &Corpus) -> Result<(), CliError> {
+async fn upload(ch: &Conn, name: &str, corpus: &Corpus) -> Result<(), CliError> {
     let text: String = corpus.refs.iter().map(|r| r[0].clone() + "\n").collect();
     let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::RefFormat::Plain as i32, files: 1, has_source: false, replace: true })) };
     let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
@@ -196,7 +195,7 @@ async fn upload(ch: &Channel, name: &str, corpus: &Corpus) -> Result<(), CliErro
 
 /// Run every stream for `a.seconds`; `pace`: time between a stream's batches (None: as fast as
 /// acknowledgements allow, `IN_FLIGHT` batches outstanding).
-async fn drive(ch: &Channel, session: &str, corpus: &Arc<Corpus>, a: &LoadArgs, pace: Option<Duration>) -> Result<Phase, CliError> {
+async fn drive(ch: &Conn, session: &str, corpus: &Arc<Corpus>, a: &LoadArgs, pace: Option<Duration>) -> Result<Phase, CliError> {
     let end = Instant::now() + Duration::from_secs(a.seconds);
     let started = Instant::now();
     // Batches are built once and cloned per send, so that the generator spends its CPU on the

@@ -12,6 +12,7 @@ mod score;
 mod send;
 mod serve;
 mod status;
+mod token;
 mod tokenize;
 
 use std::io::IsTerminal;
@@ -66,6 +67,9 @@ pub enum Command {
     Send(send::SendArgs),
     /// Show the scores of a running server's sessions.
     Status(status::StatusArgs),
+    /// Make a bearer token and the line for the server's tokens file.
+    #[command(long_about = token::LONG_ABOUT)]
+    Token(token::TokenArgs),
     /// Drive a running server with synthetic load and print throughput and latency.
     Load(load::LoadArgs),
     /// Measure scoring speed on a generated corpus and print ratios against a baseline measured in the same run.
@@ -159,6 +163,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Bench(a) => bench::run(a),
         Command::Serve(a) => serve::run(a),
         Command::Load(a) => load::run(a),
+        Command::Token(a) => token::run(a),
         Command::Send(a) => send::run(a),
         Command::Status(a) => status::run(a),
     };

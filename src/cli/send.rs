@@ -31,7 +31,11 @@ Line N of --hyp is the hypothesis of segment id N (the line numbering of plain r
 or of the id on line N of --ids, or, with --source, of the segment whose source matches line N of that file (live-traffic lookup). \
 Batches carry a stable producer id (default: derived from the session and the input's content) \
 and sequence numbers 1, 2, ...: re-running the identical command after a failure counts nothing \
-twice. Unavailable servers are retried with backoff.";
+twice. Unavailable servers are retried with backoff.
+
+Connection settings come from the environment: MTGAUGE_TOKEN (bearer token), MTGAUGE_TLS_CA \
+(server CA, PEM; or use an https:// URL), MTGAUGE_TLS_CERT and MTGAUGE_TLS_KEY (client \
+certificate for mutual TLS).";
 
 /// `send` options.
 #[derive(Debug, Args)]
@@ -75,14 +79,63 @@ pub struct SendArgs {
     pub scoring: ScoringArgs,
 }
 
-/// Connect (lazily) to a server URL.
-pub fn channel(url: &str) -> Result<Channel, CliError> {
-    let ep = Endpoint::from_shared(url.to_owned()).map_err(|e| CliError::Usage(format!("--server {url}: {e}")))?;
-    Ok(ep
+/// Environment variable holding the bearer token of client commands (kept out of argv).
+pub const TOKEN_ENV: &str = "MTGAUGE_TOKEN";
+/// Environment variables of the client TLS settings: server CA, and client certificate and key
+/// for mutual TLS (all PEM files).
+pub const TLS_CA_ENV: &str = "MTGAUGE_TLS_CA";
+pub const TLS_CERT_ENV: &str = "MTGAUGE_TLS_CERT";
+pub const TLS_KEY_ENV: &str = "MTGAUGE_TLS_KEY";
+
+/// Adds the bearer token, if any, to every call.
+#[derive(Clone)]
+pub struct TokenInterceptor(Option<tonic::metadata::MetadataValue<tonic::metadata::Ascii>>);
+
+impl tonic::service::Interceptor for TokenInterceptor {
+    fn call(&mut self, mut req: tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> {
+        if let Some(v) = &self.0 {
+            req.metadata_mut().insert("authorization", v.clone());
+        }
+        Ok(req)
+    }
+}
+
+/// A client connection: channel plus token.
+pub type Conn = tonic::service::interceptor::InterceptedService<Channel, TokenInterceptor>;
+
+/// Connect (lazily) to a server URL; TLS and token settings come from the environment
+/// (MTGAUGE_TLS_CA, MTGAUGE_TLS_CERT, MTGAUGE_TLS_KEY, MTGAUGE_TOKEN).
+pub fn channel(url: &str) -> Result<Conn, CliError> {
+    let mut ep = Endpoint::from_shared(url.to_owned()).map_err(|e| CliError::Usage(format!("--server {url}: {e}")))?;
+    let env_file = |k: &str| -> Result<Option<Vec<u8>>, CliError> {
+        match std::env::var_os(k) {
+            Some(p) => std::fs::read(&p).map(Some).map_err(|e| CliError::Usage(format!("{k}={}: {e}", p.to_string_lossy()))),
+            None => Ok(None),
+        }
+    };
+    let ca = env_file(TLS_CA_ENV)?;
+    let (cert, key) = (env_file(TLS_CERT_ENV)?, env_file(TLS_KEY_ENV)?);
+    if ca.is_some() || url.starts_with("https://") {
+        let _ = rustls::crypto::ring::default_provider().install_default();
+        let mut tls = tonic::transport::ClientTlsConfig::new();
+        if let Some(ca) = ca {
+            tls = tls.ca_certificate(tonic::transport::Certificate::from_pem(ca));
+        }
+        if let (Some(c), Some(k)) = (cert, key) {
+            tls = tls.identity(tonic::transport::Identity::from_pem(c, k));
+        }
+        ep = ep.tls_config(tls).map_err(|e| CliError::Usage(format!("TLS settings: {e}")))?;
+    }
+    let token = match std::env::var(TOKEN_ENV) {
+        Ok(t) if !t.is_empty() => Some(format!("Bearer {t}").parse().map_err(|_| CliError::Usage(format!("{TOKEN_ENV} holds characters a header cannot carry")))?),
+        _ => None,
+    };
+    let ch = ep
         .connect_timeout(Duration::from_secs(5))
         .initial_stream_window_size(crate::server::STREAM_WINDOW_BYTES)
         .initial_connection_window_size(crate::server::CONNECTION_WINDOW_BYTES)
-        .connect_lazy())
+        .connect_lazy();
+    Ok(tonic::service::interceptor::InterceptedService::new(ch, TokenInterceptor(token)))
 }
 
 /// The error line for a failed call.
@@ -236,7 +289,7 @@ where
 
 /// Stream every batch, resuming after the last acknowledged one when the connection fails (the
 /// server's per-producer sequence marks make a resent batch count once).
-async fn stream_all(ch: &Channel, batches: &[pb::ScoreBatch], show: bool) -> Result<Totals, CliError> {
+async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result<Totals, CliError> {
     let mut totals = Totals::default();
     let mut next = 0usize;
     let mut delay = FIRST_BACKOFF;

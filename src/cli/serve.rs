@@ -21,7 +21,8 @@ store under --data-dir (default /var/lib/mtgauge; one serve per directory) and r
 startup; a batch is acknowledged only once it is on disk. --durability none keeps memory only.
 
 Settings come from --config FILE (TOML) and flags; a flag overrides the file. Keys of the file:
-  listen, metrics_listen, refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
+  listen, metrics_listen, health_listen, tls_cert, tls_key, tls_client_ca, tokens,
+  refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
   log_format, max_message_bytes,
   [limits] max_batch_items, max_text_bytes, max_sessions, max_refsets, max_refset_bytes,
            max_total_refset_bytes, max_streams, max_watchers (defaults in the docs),
@@ -64,6 +65,22 @@ pub struct ServeArgs {
     /// Milliseconds the group commit gathers batches into one transaction [default: 2].
     #[arg(long, value_name = "MS")]
     pub group_commit_ms: Option<u64>,
+    /// TLS certificate chain (PEM); with --tls-key, the gRPC port speaks TLS only.
+    #[arg(long, value_name = "FILE", requires = "tls_key")]
+    pub tls_cert: Option<PathBuf>,
+    /// TLS private key (PEM).
+    #[arg(long, value_name = "FILE", requires = "tls_cert")]
+    pub tls_key: Option<PathBuf>,
+    /// Require client certificates signed by this CA (mutual TLS).
+    #[arg(long, value_name = "FILE")]
+    pub tls_client_ca: Option<PathBuf>,
+    /// Also serve gRPC health, in plaintext, on this address (for probes when the main port
+    /// uses TLS).
+    #[arg(long, value_name = "ADDR")]
+    pub health_listen: Option<SocketAddr>,
+    /// Require bearer tokens: a file of token hashes and scopes (see `mtgauge token --help`).
+    #[arg(long, value_name = "FILE")]
+    pub tokens: Option<PathBuf>,
     /// Log format on stderr (level from RUST_LOG, default info) [default: human].
     #[arg(long, value_enum)]
     pub log_format: Option<LogFormat>,
@@ -82,6 +99,11 @@ pub enum Durability {
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
 struct FileConfig {
+    tls_cert: Option<PathBuf>,
+    tls_key: Option<PathBuf>,
+    tls_client_ca: Option<PathBuf>,
+    health_listen: Option<SocketAddr>,
+    tokens: Option<PathBuf>,
     data_dir: Option<PathBuf>,
     durability: Option<Durability>,
     group_commit_ms: Option<u64>,
@@ -190,6 +212,17 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
     let listen = a.listen.or(file.listen).unwrap_or_else(|| default_addr(DEFAULT_LISTEN));
     let metrics_listen = a.metrics_listen.or(file.metrics_listen).unwrap_or_else(|| default_addr(DEFAULT_METRICS_LISTEN));
 
+    config.tls = match (a.tls_cert.or(file.tls_cert), a.tls_key.or(file.tls_key)) {
+        (Some(cert), Some(key)) => Some(server::TlsFiles { cert, key, client_ca: a.tls_client_ca.or(file.tls_client_ca) }),
+        (None, None) => None,
+        _ => return Err(CliError::Usage("TLS needs both a certificate (tls_cert) and a key (tls_key)".into())),
+    };
+    if let Some(p) = a.tokens.or(file.tokens) {
+        let text = std::fs::read_to_string(&p).map_err(|e| CliError::Usage(format!("{}: {e}", p.display())))?;
+        config.tokens = Some(std::sync::Arc::new(server::auth::Tokens::parse(&p.display().to_string(), &text).map_err(CliError::Usage)?));
+    }
+    let health_listen = a.health_listen.or(file.health_listen);
+
     telemetry::init_logs(log_format);
     let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
     rt.block_on(async move {
@@ -197,6 +230,11 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
         let metrics = tokio::net::TcpListener::bind(metrics_listen).await.map_err(|e| CliError::Usage(format!("cannot listen on {metrics_listen} (metrics): {e}")))?;
         let handle = telemetry::install_metrics().map_err(CliError::Usage)?;
         let (g, m) = (grpc.local_addr().unwrap_or(listen), metrics.local_addr().unwrap_or(metrics_listen));
+        if let Some(h) = health_listen {
+            let l = tokio::net::TcpListener::bind(h).await.map_err(|e| CliError::Usage(format!("cannot listen on {h} (health): {e}")))?;
+            tracing::info!(health = %l.local_addr().unwrap_or(h), "plaintext health listener");
+            config.health_listener = Some(l);
+        }
         telemetry::log_listening(g, m);
         server::run(config, grpc, Some((metrics, handle)), shutdown_signal()).await.map_err(CliError::Usage)
     })?;

@@ -1,6 +1,7 @@
 //! The gRPC server: reference sets, sessions and streaming scoring over one shared [`State`],
 //! gRPC health and reflection, a Prometheus listener, and a bounded graceful shutdown.
 
+pub mod auth;
 pub mod convert;
 pub mod error;
 mod services;
@@ -53,7 +54,6 @@ pub struct StartupRefSet {
 }
 
 /// Everything `serve` is configured with.
-#[derive(Debug, Clone)]
 pub struct ServerConfig {
     /// Directory server-side loading may read from.
     pub refset_dir: Option<PathBuf>,
@@ -69,11 +69,28 @@ pub struct ServerConfig {
     pub data_dir: Option<PathBuf>,
     /// Group-commit gathering time.
     pub group_commit: Duration,
+    /// TLS: certificate chain and key (PEM), and optionally a client CA for mutual TLS.
+    pub tls: Option<TlsFiles>,
+    /// A plaintext listener serving only gRPC health (for probes when the main port uses TLS).
+    pub health_listener: Option<TcpListener>,
+    /// Bearer tokens (None: no authentication).
+    pub tokens: Option<Arc<auth::Tokens>>,
+}
+
+/// PEM files of the server's TLS identity.
+#[derive(Debug, Clone)]
+pub struct TlsFiles {
+    /// Certificate chain.
+    pub cert: PathBuf,
+    /// Private key.
+    pub key: PathBuf,
+    /// CA that client certificates must chain to (mutual TLS).
+    pub client_ca: Option<PathBuf>,
 }
 
 impl Default for ServerConfig {
     fn default() -> Self {
-        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT }
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None }
     }
 }
 
@@ -96,7 +113,7 @@ fn load_startup(state: &State, r: &StartupRefSet) -> Result<(), ServiceError> {
 
 /// Run the server on bound listeners until `shutdown` resolves, then drain (bounded by
 /// `config.drain`). Tests call this with `127.0.0.1:0` listeners.
-pub async fn run(config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpListener, metrics_exporter_prometheus::PrometheusHandle)>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
+pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpListener, metrics_exporter_prometheus::PrometheusHandle)>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
     let store = match config.data_dir.clone() {
         Some(dir) => Some(Arc::new(tokio::task::spawn_blocking(move || crate::store::Store::open(&dir)).await.map_err(|e| e.to_string())?.map_err(|e| e.to_string())?)),
         None => None,
@@ -125,9 +142,31 @@ pub async fn run(config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpLi
         .map_err(|e| e.to_string())?;
 
     let (stop_tx, stop_rx) = watch::channel(false);
-    let svc = services::Services::new(state.clone(), stop_rx.clone());
+    let svc = services::Services::new(state.clone(), stop_rx.clone(), config.tokens.clone());
     let max = config.max_message_bytes;
-    let router = tonic::transport::Server::builder()
+    let mut builder = tonic::transport::Server::builder();
+    if let Some(t) = &config.tls {
+        let _ = rustls::crypto::ring::default_provider().install_default();
+        let read = |p: &PathBuf| std::fs::read(p).map_err(|e| format!("{}: {e}", p.display()));
+        let mut tls = tonic::transport::ServerTlsConfig::new().identity(tonic::transport::Identity::from_pem(read(&t.cert)?, read(&t.key)?));
+        if let Some(ca) = &t.client_ca {
+            tls = tls.client_ca_root(tonic::transport::Certificate::from_pem(read(ca)?));
+        }
+        builder = builder.tls_config(tls).map_err(|e| format!("TLS configuration: {e}"))?;
+    }
+    if let Some(l) = config.health_listener.take() {
+        let plain_health = tonic_health::pb::health_server::HealthServer::new(tonic_health::server::HealthService::from_health_reporter(health.clone()));
+        let mut stop = stop_rx.clone();
+        tokio::spawn(async move {
+            let _ = tonic::transport::Server::builder()
+                .add_service(plain_health)
+                .serve_with_incoming_shutdown(TcpListenerStream::new(l), async move {
+                    let _ = stop.wait_for(|s| *s).await;
+                })
+                .await;
+        });
+    }
+    let router = builder
         .initial_stream_window_size(STREAM_WINDOW_BYTES)
         .initial_connection_window_size(CONNECTION_WINDOW_BYTES)
         .add_service(health_service)

@@ -12,6 +12,7 @@ use tokio_stream::wrappers::ReceiverStream;
 use tokio_stream::Stream;
 use tonic::{Request, Response, Status, Streaming};
 
+use super::auth::{Scope, Tokens};
 use super::convert::{config_from_pb, config_to_pb, scores_to_pb, stats_to_pb};
 use super::error::{Result, ServiceError};
 use super::state::{unix_now, Format, LoadedSet, ProducerClaim, State};
@@ -36,11 +37,20 @@ thread_local! {
 pub struct Services {
     state: State,
     stop: watch::Receiver<bool>,
+    tokens: Option<Arc<Tokens>>,
 }
 
 impl Services {
-    pub fn new(state: State, stop: watch::Receiver<bool>) -> Services {
-        Services { state, stop }
+    pub fn new(state: State, stop: watch::Receiver<bool>, tokens: Option<Arc<Tokens>>) -> Services {
+        Services { state, stop, tokens }
+    }
+
+    /// Check the caller's token for `scope` (always passes without a tokens file).
+    fn authorize<T>(&self, req: &Request<T>, scope: Scope) -> std::result::Result<(), Status> {
+        match &self.tokens {
+            Some(t) => t.check(req, scope),
+            None => Ok(()),
+        }
     }
 }
 
@@ -96,6 +106,7 @@ fn publish_refset(l: &LoadedSet) {
 #[tonic::async_trait]
 impl pb::ref_sets_server::RefSets for Services {
     async fn load(&self, req: Request<pb::LoadRefSetRequest>) -> std::result::Result<Response<pb::RefSetInfo>, Status> {
+        self.authorize(&req, Scope::Admin)?;
         let r = req.into_inner();
         let state = self.state.clone();
         let info = blocking(move || {
@@ -118,6 +129,7 @@ impl pb::ref_sets_server::RefSets for Services {
     }
 
     async fn upload(&self, req: Request<Streaming<pb::UploadRefSetChunk>>) -> std::result::Result<Response<pb::RefSetInfo>, Status> {
+        self.authorize(&req, Scope::Admin)?;
         let mut inbound = req.into_inner();
         let limit = self.state.limits().max_refset_bytes;
         let Some(first) = inbound.message().await? else { return Err(ServiceError::Invalid("empty upload".into()).into()) };
@@ -156,17 +168,20 @@ impl pb::ref_sets_server::RefSets for Services {
         Ok(Response::new(info))
     }
 
-    async fn list(&self, _: Request<pb::ListRefSetsRequest>) -> std::result::Result<Response<pb::ListRefSetsResponse>, Status> {
+    async fn list(&self, req: Request<pb::ListRefSetsRequest>) -> std::result::Result<Response<pb::ListRefSetsResponse>, Status> {
+        self.authorize(&req, Scope::Read)?;
         let refsets = self.state.refsets().iter().map(|l| refset_info(&self.state, l)).collect();
         Ok(Response::new(pb::ListRefSetsResponse { refsets }))
     }
 
     async fn describe(&self, req: Request<pb::DescribeRefSetRequest>) -> std::result::Result<Response<pb::RefSetInfo>, Status> {
+        self.authorize(&req, Scope::Read)?;
         let l = self.state.refset(&req.into_inner().name)?;
         Ok(Response::new(refset_info(&self.state, &l)))
     }
 
     async fn delete(&self, req: Request<pb::DeleteRefSetRequest>) -> std::result::Result<Response<pb::DeleteRefSetResponse>, Status> {
+        self.authorize(&req, Scope::Admin)?;
         let name = req.into_inner().name;
         self.state.delete_refset(&name)?;
         tracing::info!(refset = %name, "reference set deleted");
@@ -177,6 +192,7 @@ impl pb::ref_sets_server::RefSets for Services {
 #[tonic::async_trait]
 impl pb::sessions_server::Sessions for Services {
     async fn create(&self, req: Request<pb::CreateSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
+        self.authorize(&req, Scope::Admin)?;
         let r = req.into_inner();
         let config = config_from_pb(r.config.as_ref())?;
         let labels: BTreeMap<String, String> = r.labels.into_iter().collect();
@@ -190,15 +206,18 @@ impl pb::sessions_server::Sessions for Services {
     }
 
     async fn get(&self, req: Request<pb::GetSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
+        self.authorize(&req, Scope::Read)?;
         let s = self.state.session(&req.into_inner().name)?;
         Ok(Response::new(session_info(&s)))
     }
 
-    async fn list(&self, _: Request<pb::ListSessionsRequest>) -> std::result::Result<Response<pb::ListSessionsResponse>, Status> {
+    async fn list(&self, req: Request<pb::ListSessionsRequest>) -> std::result::Result<Response<pb::ListSessionsResponse>, Status> {
+        self.authorize(&req, Scope::Read)?;
         Ok(Response::new(pb::ListSessionsResponse { sessions: self.state.sessions().iter().map(|s| session_info(s)).collect() }))
     }
 
     async fn reset(&self, req: Request<pb::ResetSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
+        self.authorize(&req, Scope::Admin)?;
         let s = self.state.session(&req.into_inner().name)?;
         let state = self.state.clone();
         let s2 = Arc::clone(&s);
@@ -209,6 +228,7 @@ impl pb::sessions_server::Sessions for Services {
     }
 
     async fn close(&self, req: Request<pb::CloseSessionRequest>) -> std::result::Result<Response<pb::CloseSessionResponse>, Status> {
+        self.authorize(&req, Scope::Admin)?;
         let s = self.state.close_session(&req.into_inner().name)?;
         let spec = s.spec();
         telemetry::record_session_info(&spec.name, &spec.refset, &s.refs().digest_hex(), &spec.labels, false);
@@ -356,6 +376,7 @@ impl pb::scoring_server::Scoring for Services {
     type WatchScoresStream = BoxStream<pb::ScoresReport>;
 
     async fn stream(&self, req: Request<Streaming<pb::ScoreBatch>>) -> std::result::Result<Response<Self::StreamStream>, Status> {
+        self.authorize(&req, Scope::Submit)?;
         let gate = self.state.enter_stream()?;
         let mut inbound = req.into_inner();
         let (tx, rx) = mpsc::channel(ACK_BUFFER);
@@ -403,6 +424,7 @@ impl pb::scoring_server::Scoring for Services {
     }
 
     async fn submit(&self, req: Request<pb::ScoreBatch>) -> std::result::Result<Response<pb::BatchAck>, Status> {
+        self.authorize(&req, Scope::Submit)?;
         if *self.stop.borrow() {
             return Err(ServiceError::ShuttingDown.into());
         }
@@ -410,11 +432,13 @@ impl pb::scoring_server::Scoring for Services {
     }
 
     async fn get_scores(&self, req: Request<pb::GetScoresRequest>) -> std::result::Result<Response<pb::ScoresReport>, Status> {
+        self.authorize(&req, Scope::Read)?;
         let s = self.state.session(&req.into_inner().session)?;
         Ok(Response::new(report(&s)))
     }
 
     async fn watch_scores(&self, req: Request<pb::WatchScoresRequest>) -> std::result::Result<Response<Self::WatchScoresStream>, Status> {
+        self.authorize(&req, Scope::Read)?;
         let r = req.into_inner();
         let session = self.state.session(&r.session)?;
         let gate = self.state.enter_watcher()?;
