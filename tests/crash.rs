@@ -204,6 +204,13 @@ async fn restart_restores_sessions_refsets_and_windows() {
     assert_eq!((after.unknown, after.refset_digest.clone()), (before.unknown, before.refset_digest.clone()));
     let info = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "keep".into() }).await.unwrap().into_inner();
     assert_eq!((info.window, info.labels.get("model").map(String::as_str)), (7, Some("v7")));
+    // The counters go on from the durable totals, and the info series is back.
+    let scrape = again.scrape();
+    let scored = after.cumulative.as_ref().unwrap().segments;
+    assert!(scrape.lines().any(|l| l == format!("mtgauge_segments_total{{session=\"keep\",outcome=\"scored\"}} {scored}")), "{scrape}");
+    let m1 = after.cumulative.as_ref().unwrap().bleu.as_ref().unwrap().matches[0];
+    assert!(scrape.lines().any(|l| l == format!("mtgauge_bleu_matches_total{{session=\"keep\",order=\"1\"}} {m1}")), "{scrape}");
+    assert!(scrape.lines().any(|l| l.starts_with("mtgauge_session_info{") && l.contains("session=\"keep\"") && l.contains("model=\"v7\"") && l.contains("config=\"metrics=")), "{scrape}");
     let sets = pb::ref_sets_client::RefSetsClient::new(ch.clone()).list(pb::ListRefSetsRequest {}).await.unwrap().into_inner();
     assert_eq!(sets.refsets.len(), 1, "the reference set is rebuilt from the store, without its files");
 }

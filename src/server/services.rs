@@ -200,7 +200,12 @@ impl pb::sessions_server::Sessions for Services {
         let state = self.state.clone();
         let session = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
         let spec = session.spec();
-        telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.labels, true);
+        telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.labels, true);
+        let (cumulative, counts) = {
+            let st = session.state();
+            (st.cumulative, st.counts)
+        };
+        telemetry::init_session(&spec.name, &spec.config, [counts.scored, counts.unknown, counts.rejected], &cumulative);
         tracing::info!(session = %spec.name, refset = %spec.refset, config = %spec.config.describe(), "session ready");
         Ok(Response::new(session_info(&session)))
     }
@@ -231,7 +236,7 @@ impl pb::sessions_server::Sessions for Services {
         self.authorize(&req, Scope::Admin)?;
         let s = self.state.close_session(&req.into_inner().name)?;
         let spec = s.spec();
-        telemetry::record_session_info(&spec.name, &spec.refset, &s.refs().digest_hex(), &spec.labels, false);
+        telemetry::record_session_info(&spec.name, &spec.refset, &s.refs().digest_hex(), &spec.config.describe(), &spec.labels, false);
         tracing::info!(session = %spec.name, "session closed");
         Ok(Response::new(pb::CloseSessionResponse {}))
     }

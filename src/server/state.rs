@@ -198,6 +198,7 @@ impl State {
         let snap = store.load().map_err(|e| ServiceError::Internal(e.to_string()))?;
         let versions: std::collections::HashMap<String, Arc<RefSet>> = snap.versions.into_iter().map(|(k, v)| (k, Arc::new(v))).collect();
         for (name, digest) in snap.names {
+            crate::telemetry::record_refset(&name, versions[&digest].len(), versions[&digest].memory_bytes());
             self.inner.refsets.insert(name.clone(), Arc::new(LoadedSet { name, set: Arc::clone(&versions[&digest]) }));
         }
         let n = snap.sessions.len();
@@ -205,6 +206,10 @@ impl State {
             let config = s.spec.config;
             let session = Session::new(s.spec, Arc::clone(&versions[&s.refset_digest]), s.created_unix);
             let window = crate::session::Window::restore(session.spec().window, &config, s.window_rows, s.next_row).map_err(|e| ServiceError::Internal(format!("store: session {}: {e}", session.spec().name)))?;
+            let spec = session.spec();
+            crate::telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.labels, true);
+            crate::telemetry::init_session(&spec.name, &config, [s.counts.scored, s.counts.unknown, s.counts.rejected], &s.cumulative);
+            crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks });
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
         }

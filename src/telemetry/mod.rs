@@ -91,27 +91,41 @@ pub async fn serve_metrics(listener: TcpListener, handle: PrometheusHandle) {
 
 /// Count one applied batch: its outcome counts and the summed statistics of its scored items.
 pub fn record_batch(session: &str, config: &ScoreConfig, scored: u64, unknown: u64, rejected: u64, sum: &CorpusStats) {
+    counters(session, config, [scored, unknown, rejected], sum, false);
+}
+
+/// Publish a session's counters at the given values: at creation (zeros, so that `increase()`
+/// sees the first batch) and after a restart (the durable totals, so that the counters go on
+/// from where the last process left them).
+pub fn init_session(session: &str, config: &ScoreConfig, counts: [u64; 3], cumulative: &CorpusStats) {
+    counters(session, config, counts, cumulative, true);
+}
+
+/// Add to (or, with `absolute`, set) every counter of a session.
+fn counters(session: &str, config: &ScoreConfig, counts: [u64; 3], sum: &CorpusStats, absolute: bool) {
+    let put = |c: metrics::Counter, v: u64| if absolute { c.absolute(v) } else { c.increment(v) };
+    let [scored, unknown, rejected] = counts;
     let s = session.to_owned();
     for (outcome, n) in [("scored", scored), ("unknown", unknown), ("rejected", rejected)] {
-        counter!(SEGMENTS, "session" => s.clone(), "outcome" => outcome).increment(n);
+        put(counter!(SEGMENTS, "session" => s.clone(), "outcome" => outcome), n);
     }
     if config.metrics.bleu {
         for n in 0..config.bleu_order {
             let order = (n + 1).to_string();
-            counter!(BLEU_MATCHES, "session" => s.clone(), "order" => order.clone()).increment(sum.bleu.matches[n]);
-            counter!(BLEU_NGRAMS, "session" => s.clone(), "order" => order).increment(sum.bleu.totals[n]);
+            put(counter!(BLEU_MATCHES, "session" => s.clone(), "order" => order.clone()), sum.bleu.matches[n]);
+            put(counter!(BLEU_NGRAMS, "session" => s.clone(), "order" => order), sum.bleu.totals[n]);
         }
-        counter!(HYP_TOKENS, "session" => s.clone()).increment(sum.bleu.hyp_len);
-        counter!(REF_TOKENS, "session" => s.clone()).increment(sum.bleu.ref_len);
+        put(counter!(HYP_TOKENS, "session" => s.clone()), sum.bleu.hyp_len);
+        put(counter!(REF_TOKENS, "session" => s.clone()), sum.bleu.ref_len);
     }
     let chrf = |metric: &'static str, st: &ChrfStats, words: usize| {
         for (kind, counts, orders) in [("char", &st.char, config.chrf_char_order), ("word", &st.word, words)] {
             for n in 0..orders {
                 let order = (n + 1).to_string();
                 let labels = [("session", s.clone()), ("metric", metric.to_owned()), ("kind", kind.to_owned()), ("order", order)];
-                counter!(CHRF_MATCHES, &labels).increment(counts.matches[n]);
-                counter!(CHRF_HYP, &labels).increment(counts.hyp[n]);
-                counter!(CHRF_REF, &labels).increment(counts.reference[n]);
+                put(counter!(CHRF_MATCHES, &labels), counts.matches[n]);
+                put(counter!(CHRF_HYP, &labels), counts.hyp[n]);
+                put(counter!(CHRF_REF, &labels), counts.reference[n]);
             }
         }
     };
@@ -147,9 +161,10 @@ pub fn scores(config: &ScoreConfig, st: &CorpusStats) -> Vec<(&'static str, f64)
     v
 }
 
-/// Publish (or re-publish) a session's info series.
-pub fn record_session_info(session: &str, refset: &str, digest: &str, labels: &BTreeMap<String, String>, live: bool) {
-    let mut l = vec![("session".to_owned(), session.to_owned()), ("refset".to_owned(), refset.to_owned()), ("digest".to_owned(), digest.to_owned())];
+/// Publish (or re-publish) a session's info series; `config` is the scoring configuration as
+/// one string, so that replicas running a session differently can be told apart.
+pub fn record_session_info(session: &str, refset: &str, digest: &str, config: &str, labels: &BTreeMap<String, String>, live: bool) {
+    let mut l = vec![("session".to_owned(), session.to_owned()), ("refset".to_owned(), refset.to_owned()), ("digest".to_owned(), digest.to_owned()), ("config".to_owned(), config.to_owned())];
     l.extend(labels.iter().map(|(k, v)| (k.clone(), v.clone())));
     gauge!(SESSION_INFO, &l).set(if live { 1.0 } else { 0.0 });
 }
