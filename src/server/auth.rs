@@ -142,6 +142,6 @@ mod tests {
         assert_eq!(t.check(&req(None), Scope::Read).unwrap_err().code(), tonic::Code::Unauthenticated);
         let e = Tokens::parse("tokens", "plaintext-token submit\n").err().unwrap();
         assert!(e.starts_with("tokens:1:") && !e.contains("plaintext-token"), "{e}");
-        assert!(Tokens::parse("tokens", &format!("{} bogus x\n", token_line_hash("a"))).unwrap_err().contains("unknown scope"));
+        assert!(Tokens::parse("tokens", &format!("{} bogus x\n", token_line_hash("a"))).err().unwrap().contains("unknown scope"));
     }
 }
