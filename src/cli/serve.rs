@@ -169,7 +169,12 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
     let file: FileConfig = match &a.config {
         Some(p) => {
             let text = std::fs::read_to_string(p).map_err(|e| CliError::Usage(format!("{}: {e}", p.display())))?;
-            toml::from_str(&text).map_err(|e| CliError::Usage(format!("{}: {}", p.display(), e.to_string().trim())))?
+            toml::from_str(&text).map_err(|e| {
+                // One line on stderr: the parser's multi-line snippet is folded.
+                let text = e.to_string();
+                let msg: Vec<&str> = text.lines().map(str::trim).filter(|l| !l.is_empty() && *l != "|").collect();
+                CliError::Usage(format!("{}: {}", p.display(), msg.join(" ")))
+            })?
         }
         None => FileConfig::default(),
     };
