@@ -198,14 +198,14 @@ impl pb::sessions_server::Sessions for Services {
         let labels: BTreeMap<String, String> = r.labels.into_iter().collect();
         let spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize)?;
         let state = self.state.clone();
-        let session = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
+        let (session, created) = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
         let spec = session.spec();
-        telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.labels, true);
-        let (cumulative, counts) = {
-            let st = session.state();
-            (st.cumulative, st.counts)
-        };
-        telemetry::init_session(&spec.name, &spec.config, [counts.scored, counts.unknown, counts.rejected], &cumulative);
+        if created {
+            // Counters start at zero with the session (only then: an existing session's
+            // counters are moved by its batches alone).
+            telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.labels, true);
+            telemetry::init_session(&spec.name, &spec.config, [0; 3], &CorpusStats::default());
+        }
         tracing::info!(session = %spec.name, refset = %spec.refset, config = %spec.config.describe(), "session ready");
         Ok(Response::new(session_info(&session)))
     }

@@ -374,11 +374,11 @@ impl State {
 
     /// Create a session (builds its tables: CPU work, call from a blocking thread). With
     /// `if_not_exists`, an existing session with the same definition is returned as is.
-    pub fn create_session(&self, spec: SessionSpec, if_not_exists: bool) -> Result<Arc<Session>> {
+    pub fn create_session(&self, spec: SessionSpec, if_not_exists: bool) -> Result<(Arc<Session>, bool)> {
         let set = self.refset(&spec.refset)?;
         if let Some(existing) = self.inner.sessions.get(&spec.name) {
             let same = existing.spec().refset == spec.refset && existing.spec().config == spec.config && existing.spec().labels == spec.labels && existing.spec().window == spec.window;
-            return if if_not_exists && same { Ok(Arc::clone(existing.value())) } else { Err(ServiceError::SessionExists(spec.name)) };
+            return if if_not_exists && same { Ok((Arc::clone(existing.value()), false)) } else { Err(ServiceError::SessionExists(spec.name)) };
         }
         if self.inner.sessions.len() >= self.inner.limits.max_sessions {
             return Err(ServiceError::Limit { what: format!("{} sessions", self.inner.sessions.len() + 1), limit: self.inner.limits.max_sessions as u64, key: "limits.max_sessions" });
@@ -389,7 +389,7 @@ impl State {
                 // Created concurrently by another request.
                 let same = e.get().spec().config == session.spec().config && e.get().spec().refset == session.spec().refset;
                 if if_not_exists && same {
-                    Ok(Arc::clone(e.get()))
+                    Ok((Arc::clone(e.get()), false))
                 } else {
                     Err(ServiceError::SessionExists(session.spec().name.clone()))
                 }
@@ -397,7 +397,7 @@ impl State {
             Entry::Vacant(e) => {
                 self.persist(|s| s.put_session(session.spec(), &session.refs().digest_hex(), session.created_unix()))?;
                 e.insert(Arc::clone(&session));
-                Ok(session)
+                Ok((session, true))
             }
         }
     }
