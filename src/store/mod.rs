@@ -431,6 +431,22 @@ mod tests {
     }
 
     #[test]
+    fn other_schema_versions_are_refused_with_a_clear_message() {
+        let d = dir("schema");
+        drop(Store::open(&d).unwrap());
+        for (v, hint) in [(SCHEMA_VERSION + 1, "newer"), (0, "older")] {
+            {
+                let db = Database::create(d.join(STORE_FILE)).unwrap();
+                let txn = db.begin_write().unwrap();
+                txn.open_table(META).unwrap().insert("schema_version", v).unwrap();
+                txn.commit().unwrap();
+            }
+            let e = Store::open(&d).err().expect("must refuse").to_string();
+            assert!(e.contains(STORE_FILE) && e.contains(&format!("schema version {v}")) && e.contains(hint), "{e}");
+        }
+    }
+
+    #[test]
     fn damaged_files_give_clear_errors() {
         let d = dir("bad");
         std::fs::create_dir_all(&d).unwrap();
