@@ -575,12 +575,7 @@ impl Compiled {
                 st.char.reference[n - 1] = ngram_count(ref_len, n);
             }
             if cfg.metrics.chrf {
-                let f = st.score(c_order, 0, cfg.beta).score;
-                if f > best_c {
-                    best_c = f;
-                    out.chrf = st;
-                    out.chrf_ref = k as u32;
-                }
+                keep_best(st.score(c_order, 0, cfg.beta).score, &mut best_c, &st, k, &mut out.chrf, &mut out.chrf_ref);
             }
             if let Some(ws) = &self.word_seqs {
                 let words = &ws.seq[ws.range(r)];
@@ -591,12 +586,7 @@ impl Compiled {
                     st.word.hyp[n - 1] = ngram_count(s.hyp_words.len(), n);
                     st.word.reference[n - 1] = ngram_count(words.len(), n);
                 }
-                let f = st.score(c_order, w_order, cfg.beta).score;
-                if f > best_pp {
-                    best_pp = f;
-                    out.chrfpp = st;
-                    out.chrfpp_ref = k as u32;
-                }
+                keep_best(st.score(c_order, w_order, cfg.beta).score, &mut best_pp, &st, k, &mut out.chrfpp, &mut out.chrfpp_ref);
             }
         }
         true
@@ -631,24 +621,14 @@ impl Compiled {
             let mut st = ChrfStats::default();
             count_orders(c_order, (&s.hyp_chars, &s.hyp_char_pos, hyp_len), (&s.ref_chars, &s.ref_char_pos, ref_len), &mut st.char);
             if cfg.metrics.chrf {
-                let f = st.score(c_order, 0, cfg.beta).score;
-                if f > best_c {
-                    best_c = f;
-                    out.chrf = st;
-                    out.chrf_ref = k as u32;
-                }
+                keep_best(st.score(c_order, 0, cfg.beta).score, &mut best_c, &st, k, &mut out.chrf, &mut out.chrf_ref);
             }
             if let Some(ws) = &self.word_seqs {
                 let range = ws.range(r);
                 let wseq = &ws.seq[range.start..range.end + ws.pad];
                 sort_positions(wseq, range.len(), w_order, &mut s.ref_word_pos);
                 count_orders(w_order, (&s.hyp_words, &s.hyp_word_pos, hyp_words), (wseq, &s.ref_word_pos, range.len()), &mut st.word);
-                let f = st.score(c_order, w_order, cfg.beta).score;
-                if f > best_pp {
-                    best_pp = f;
-                    out.chrfpp = st;
-                    out.chrfpp_ref = k as u32;
-                }
+                keep_best(st.score(c_order, w_order, cfg.beta).score, &mut best_pp, &st, k, &mut out.chrfpp, &mut out.chrfpp_ref);
             }
         }
     }
@@ -731,6 +711,17 @@ impl Compiled {
             results[c] = stats;
         }
         results.into_iter().flatten().collect()
+    }
+}
+
+/// Keep reference `k`'s statistics when its sentence-level F beats the best so far (ties keep
+/// the earlier reference): the several-references rule of chrF and chrF++.
+#[inline]
+fn keep_best(f: f64, best: &mut f64, st: &ChrfStats, k: usize, out: &mut ChrfStats, out_ref: &mut u32) {
+    if f > *best {
+        *best = f;
+        *out = *st;
+        *out_ref = k as u32;
     }
 }
 

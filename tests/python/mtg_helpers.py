@@ -36,6 +36,19 @@ def require_binary() -> Path:
     return path
 
 
+def require_tool(name: str, env_var: str, why: str) -> Path:
+    """Path of an outside program (from env_var or PATH), or FAIL the current test (never skip)."""
+    import shutil
+
+    env = os.environ.get(env_var)
+    found = env or shutil.which(name)
+    if not found or not os.access(found, os.X_OK):
+        pytest.fail(f"{name} not found ({env_var}={env!r}, PATH lookup failed); {why} "
+                    "fail rather than skip without it (Debian: apt-get install prometheus)",
+                    pytrace=False)
+    return Path(found)
+
+
 class Mtgauge:
     """Runs the binary; every call first checks that it exists."""
 

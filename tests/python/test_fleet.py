@@ -30,7 +30,6 @@ import json
 import os
 import queue
 import re
-import shutil
 import signal
 import socket
 import subprocess
@@ -43,7 +42,7 @@ from pathlib import Path
 
 import pytest
 
-from mtg_helpers import REPO, read_jsonl, require_binary
+from mtg_helpers import REPO, read_jsonl, require_binary, require_tool
 
 PROM_DIR = REPO / "deploy" / "prometheus"
 RULES = PROM_DIR / "mtgauge-rules.yml"
@@ -98,13 +97,7 @@ def write_lines(path: Path, lines):
 
 
 def prometheus_binary() -> Path:
-    env = os.environ.get("PROMETHEUS_BIN")
-    found = env or shutil.which("prometheus")
-    if not found or not os.access(found, os.X_OK):
-        pytest.fail(f"prometheus not found (PROMETHEUS_BIN={env!r}, PATH lookup failed); this test "
-                    "fails rather than skips without it (Debian: apt-get install prometheus)",
-                    pytrace=False)
-    return Path(found)
+    return require_tool("prometheus", "PROMETHEUS_BIN", "this test")
 
 
 def free_port() -> int:

@@ -24,13 +24,12 @@ Outside facts used here, with their sources:
 
 import os
 import re
-import shutil
 import subprocess
 from pathlib import Path
 
 import pytest
 
-from mtg_helpers import REPO
+from mtg_helpers import REPO, require_tool
 
 PROM_DIR = REPO / "deploy" / "prometheus"
 TESTS_DIR = PROM_DIR / "tests"
@@ -46,13 +45,7 @@ EXPECTED_ALERTS = {
 
 
 def promtool() -> str:
-    env = os.environ.get("PROMTOOL_BIN")
-    found = env or shutil.which("promtool")
-    if not found or not os.access(found, os.X_OK):
-        pytest.fail(f"promtool not found (PROMTOOL_BIN={env!r}, PATH lookup failed); these tests "
-                    "fail rather than skip without it (Debian: apt-get install prometheus)",
-                    pytrace=False)
-    return found
+    return str(require_tool("promtool", "PROMTOOL_BIN", "these tests"))
 
 
 def run_promtool(*args, cwd=None):
