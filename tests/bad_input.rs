@@ -495,7 +495,7 @@ fn serve_config_bad_inputs_exit_2_naming_the_key() {
     let mut table = Table::new("mtgauge serve --config");
     let data_dir = dir.join("data-never-created");
     let mut cases: Vec<(String, Vec<u8>, Vec<String>)> = Vec::new();
-    let keys = ["max_batch_items", "max_text_bytes", "max_sessions", "max_refsets", "max_refset_bytes", "max_total_refset_bytes", "max_streams", "max_watchers"];
+    let keys = ["max_batch_items", "max_text_bytes", "max_sessions", "max_refsets", "max_refset_bytes", "max_total_refset_bytes", "max_streams", "max_watchers", "max_connections", "connection_idle_seconds"];
     for (i, key) in keys.iter().enumerate() {
         for v in [0i64, -5] {
             // Alone, and after valid keys (the bad one is found wherever it is).

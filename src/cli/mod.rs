@@ -60,7 +60,7 @@ pub enum Command {
     /// Show mtgauge live on built-in demo data (an invented ferry operator's passenger notices).
     Demo(demo::DemoArgs),
     /// Run the monitoring daemon (gRPC scoring service and Prometheus metrics).
-    #[command(long_about = serve::LONG_ABOUT)]
+    #[command(long_about = serve::long_about())]
     Serve(serve::ServeArgs),
     /// Stream a hypothesis file into a session of a running server.
     #[command(long_about = send::LONG_ABOUT)]

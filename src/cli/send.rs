@@ -277,7 +277,7 @@ where
         match call().await {
             Ok(r) => return Ok(r.into_inner()),
             Err(s) if retryable(&s) && attempt < MAX_ATTEMPTS => {
-                tracing::debug!(%s, attempt, "retrying");
+                eprintln!("mtgauge: {what}: {} ({:?}); retrying in {:.1} s (attempt {} of {MAX_ATTEMPTS})", s.message(), s.code(), delay.as_secs_f64(), attempt + 1);
                 tokio::time::sleep(delay).await;
                 delay = (delay * 2).min(MAX_BACKOFF);
             }
@@ -314,20 +314,24 @@ async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result
             Ok::<(), tonic::Status>(())
         }
         .await;
-        match result {
+        let last = match result {
             Ok(()) if next >= batches.len() => break,
             // The server ended the stream early (shutting down): reconnect and resume.
-            Ok(()) => {}
+            Ok(()) => "the server ended the stream".to_owned(),
             Err(s) if !retryable(&s) => return Err(status_error("scoring stream", s)),
-            Err(s) => tracing::debug!(%s, "stream failed; resuming"),
-        }
+            Err(s) => format!("{} ({:?})", s.message(), s.code()),
+        };
         if next > before {
             (failures, delay) = (0, FIRST_BACKOFF);
         }
         failures += 1;
         if failures >= MAX_ATTEMPTS {
-            return Err(CliError::Usage(format!("gave up after {MAX_ATTEMPTS} attempts; {next} of {} batches acknowledged (re-run the same command to resume)", batches.len())));
+            return Err(CliError::Usage(format!("gave up after {MAX_ATTEMPTS} attempts ({last}); {next} of {} batches acknowledged (re-run the same command to resume)", batches.len())));
         }
+        if show {
+            eprintln!();
+        }
+        eprintln!("mtgauge: scoring stream: {last}; {next} of {} batches acknowledged, resuming in {:.1} s (attempt {} of {MAX_ATTEMPTS})", batches.len(), delay.as_secs_f64(), failures + 1);
         tokio::time::sleep(delay).await;
         delay = (delay * 2).min(MAX_BACKOFF);
     }

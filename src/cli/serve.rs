@@ -9,28 +9,49 @@ use serde::Deserialize;
 
 use super::CliError;
 use crate::server::{self, Limits, ServerConfig, StartupRefSet, DEFAULT_LISTEN, DEFAULT_METRICS_LISTEN};
-use crate::server::state::{DEFAULT_MAX_BATCH_ITEMS, DEFAULT_MAX_REFSETS, DEFAULT_MAX_REFSET_BYTES, DEFAULT_MAX_SESSIONS, DEFAULT_MAX_STREAMS, DEFAULT_MAX_TEXT_BYTES, DEFAULT_MAX_TOTAL_REFSET_BYTES, DEFAULT_MAX_WATCHERS};
+use crate::server::state::{DEFAULT_MAX_BATCH_ITEMS, DEFAULT_MAX_REFSETS, DEFAULT_MAX_REFSET_BYTES, DEFAULT_MAX_SESSIONS, DEFAULT_MAX_STREAMS, DEFAULT_MAX_TEXT_BYTES, DEFAULT_MAX_TOTAL_REFSET_BYTES, DEFAULT_MAX_WATCHERS, DEFAULT_MAX_CONNECTIONS, DEFAULT_CONNECTION_IDLE_SECONDS};
 use crate::telemetry::{self, LogFormat};
 
-pub const LONG_ABOUT: &str = "\
+/// The long help of `serve`, with every limit's default taken from its constant.
+pub fn long_about() -> String {
+    let limits = [
+        ("max_batch_items", DEFAULT_MAX_BATCH_ITEMS.to_string(), "items in one batch"),
+        ("max_text_bytes", DEFAULT_MAX_TEXT_BYTES.to_string(), "bytes of one hypothesis or source"),
+        ("max_sessions", DEFAULT_MAX_SESSIONS.to_string(), "sessions"),
+        ("max_refsets", DEFAULT_MAX_REFSETS.to_string(), "reference sets"),
+        ("max_refset_bytes", DEFAULT_MAX_REFSET_BYTES.to_string(), "input bytes of one reference set"),
+        ("max_total_refset_bytes", DEFAULT_MAX_TOTAL_REFSET_BYTES.to_string(), "memory of all reference sets"),
+        ("max_streams", DEFAULT_MAX_STREAMS.to_string(), "scoring streams open at once"),
+        ("max_watchers", DEFAULT_MAX_WATCHERS.to_string(), "watch subscribers at once"),
+        ("max_connections", DEFAULT_MAX_CONNECTIONS.to_string(), "connections open at once; more are closed on arrival"),
+        ("connection_idle_seconds", DEFAULT_CONNECTION_IDLE_SECONDS.to_string(), "seconds of silence that close a connection"),
+    ];
+    let table: String = limits.iter().map(|(k, d, what)| format!("  {k:<24} {d:>11}  {what}\n")).collect();
+    format!(
+        "\
 Run the monitoring daemon: reference sets in memory, sessions, streaming scoring over gRPC, and \
 Prometheus counters of the additive statistics on a separate HTTP listener (GET /metrics).
 
 State (reference sets, sessions, statistics, producer sequence marks) is kept in an embedded ACID \
-store under --data-dir (default /var/lib/mtgauge; one serve per directory) and restored at \
+store under --data-dir (default {data_dir}; one serve per directory) and restored at \
 startup; a batch is acknowledged only once it is on disk. --durability none keeps memory only.
 
 Settings come from --config FILE (TOML) and flags; a flag overrides the file. Keys of the file:
   listen, metrics_listen, health_listen, tls_cert, tls_key, tls_client_ca, tokens,
   refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
-  log_format, max_message_bytes,
-  [limits] max_batch_items, max_text_bytes, max_sessions, max_refsets, max_refset_bytes,
-           max_total_refset_bytes, max_streams, max_watchers (defaults in the docs),
-  [[refset]] name, paths = [...], source (loaded at startup).
+  log_format, max_message_bytes (default {max_message}),
+  [limits] (below), [[refset]] name, paths = [...], source (loaded at startup).
 
+[limits] keys, each at least 1, with their defaults; a request past one is refused with \
+RESOURCE_EXHAUSTED or INVALID_ARGUMENT naming its key:
+{table}
 gRPC health reports SERVING once the startup reference sets are loaded. SIGTERM or SIGINT: \
 NOT_SERVING, no new batches, in-flight batches are scored and acknowledged, exit within the \
-drain time. Port 0 picks a free port; the bound addresses are logged at startup.";
+drain time. Port 0 picks a free port; the bound addresses are logged at startup.",
+        data_dir = crate::store::DEFAULT_DATA_DIR,
+        max_message = crate::server::DEFAULT_MAX_MESSAGE_BYTES,
+    )
+}
 
 /// `serve` options.
 #[derive(Debug, Args)]
@@ -130,6 +151,8 @@ struct FileLimits {
     max_total_refset_bytes: Option<i64>,
     max_streams: Option<i64>,
     max_watchers: Option<i64>,
+    max_connections: Option<i64>,
+    connection_idle_seconds: Option<i64>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -194,6 +217,8 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
         max_total_refset_bytes: limit("limits.max_total_refset_bytes", l.max_total_refset_bytes, DEFAULT_MAX_TOTAL_REFSET_BYTES)?,
         max_streams: limit("limits.max_streams", l.max_streams, DEFAULT_MAX_STREAMS as u64)? as usize,
         max_watchers: limit("limits.max_watchers", l.max_watchers, DEFAULT_MAX_WATCHERS as u64)? as usize,
+        max_connections: limit("limits.max_connections", l.max_connections, DEFAULT_MAX_CONNECTIONS as u64)? as usize,
+        connection_idle: Duration::from_secs(limit("limits.connection_idle_seconds", l.connection_idle_seconds, DEFAULT_CONNECTION_IDLE_SECONDS)?),
     };
     let mut startup: Vec<StartupRefSet> = file.refset.into_iter().map(|r| StartupRefSet { name: r.name, paths: r.paths, source: r.source }).collect();
     for s in &a.refsets {

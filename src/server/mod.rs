@@ -2,6 +2,7 @@
 //! gRPC health and reflection, a Prometheus listener, and a bounded graceful shutdown.
 
 pub mod auth;
+pub mod conn;
 pub mod convert;
 pub mod error;
 mod services;
@@ -14,7 +15,6 @@ use std::time::Duration;
 
 use tokio::net::TcpListener;
 use tokio::sync::watch;
-use tokio_stream::wrappers::TcpListenerStream;
 
 pub use error::ServiceError;
 pub use state::{Format, Limits, State};
@@ -38,6 +38,9 @@ pub const STREAM_WINDOW_BYTES: u32 = 1 << 20;
 pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
 /// Acknowledgements buffered per scoring stream before the server waits for the client.
 pub const ACK_BUFFER: usize = 16;
+
+/// Connections open at once on the plaintext health listener (probes open one at a time).
+pub const HEALTH_MAX_CONNECTIONS: usize = 64;
 
 /// Time the group-commit thread gathers batches into one transaction unless configured.
 pub const DEFAULT_GROUP_COMMIT: Duration = Duration::from_millis(2);
@@ -148,25 +151,31 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     if let Some(t) = &config.tls {
         let _ = rustls::crypto::ring::default_provider().install_default();
         let read = |p: &PathBuf| std::fs::read(p).map_err(|e| format!("{}: {e}", p.display()));
-        let mut tls = tonic::transport::ServerTlsConfig::new().identity(tonic::transport::Identity::from_pem(read(&t.cert)?, read(&t.key)?));
+        let mut tls = tonic::transport::ServerTlsConfig::new().timeout(conn::TLS_HANDSHAKE_TIMEOUT).identity(tonic::transport::Identity::from_pem(read(&t.cert)?, read(&t.key)?));
         if let Some(ca) = &t.client_ca {
             tls = tls.client_ca_root(tonic::transport::Certificate::from_pem(read(ca)?));
         }
         builder = builder.tls_config(tls).map_err(|e| format!("TLS configuration: {e}"))?;
     }
+    let (max_connections, idle) = (config.limits.max_connections, config.limits.connection_idle);
+    let (ping_every, ping_wait) = conn::keepalive(idle);
     if let Some(l) = config.health_listener.take() {
         let plain_health = tonic_health::pb::health_server::HealthServer::new(tonic_health::server::HealthService::from_health_reporter(health.clone()));
         let mut stop = stop_rx.clone();
         tokio::spawn(async move {
             let _ = tonic::transport::Server::builder()
+                .http2_keepalive_interval(Some(ping_every))
+                .http2_keepalive_timeout(Some(ping_wait))
                 .add_service(plain_health)
-                .serve_with_incoming_shutdown(TcpListenerStream::new(l), async move {
+                .serve_with_incoming_shutdown(conn::incoming(l, conn::Listener::Health, HEALTH_MAX_CONNECTIONS, idle), async move {
                     let _ = stop.wait_for(|s| *s).await;
                 })
                 .await;
         });
     }
     let router = builder
+        .http2_keepalive_interval(Some(ping_every))
+        .http2_keepalive_timeout(Some(ping_wait))
         .initial_stream_window_size(STREAM_WINDOW_BYTES)
         .initial_connection_window_size(CONNECTION_WINDOW_BYTES)
         .add_service(health_service)
@@ -188,7 +197,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
         let _ = graceful_tx.send(());
     });
     let (drain_tx, mut drain_rx) = watch::channel(false);
-    let serve = router.serve_with_incoming_shutdown(TcpListenerStream::new(grpc), async move {
+    let serve = router.serve_with_incoming_shutdown(conn::incoming(grpc, conn::Listener::Grpc, max_connections, idle), async move {
         let _ = graceful_rx.await;
         let _ = drain_tx.send(true);
     });

@@ -467,7 +467,8 @@ impl pb::scoring_server::Scoring for Services {
                     break;
                 }
                 match tx.try_send(Ok(report(&session))) {
-                    Ok(()) | Err(mpsc::error::TrySendError::Full(_)) => {}
+                    Ok(()) => {}
+                    Err(mpsc::error::TrySendError::Full(_)) => telemetry::watch_report_skipped(),
                     Err(mpsc::error::TrySendError::Closed(_)) => break,
                 }
             }

@@ -6,7 +6,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
-use std::time::{SystemTime, UNIX_EPOCH};
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use dashmap::mapref::entry::Entry;
 use dashmap::DashMap;
@@ -35,6 +35,12 @@ pub const DEFAULT_MAX_STREAMS: usize = 1024;
 /// Most watch subscribers at once unless configured.
 pub const DEFAULT_MAX_WATCHERS: usize = 256;
 
+/// Most client connections open at once on the gRPC port unless configured.
+pub const DEFAULT_MAX_CONNECTIONS: usize = 1024;
+/// Seconds after which a connection on which nothing was received is closed unless configured
+/// (the server pings every connection several times within it, so live clients stay).
+pub const DEFAULT_CONNECTION_IDLE_SECONDS: u64 = 300;
+
 /// Configurable limits (config keys in parentheses in their errors).
 #[derive(Debug, Clone, Copy)]
 pub struct Limits {
@@ -54,6 +60,10 @@ pub struct Limits {
     pub max_streams: usize,
     /// `limits.max_watchers`.
     pub max_watchers: usize,
+    /// `limits.max_connections`.
+    pub max_connections: usize,
+    /// `limits.connection_idle_seconds`.
+    pub connection_idle: Duration,
 }
 
 impl Default for Limits {
@@ -67,6 +77,8 @@ impl Default for Limits {
             max_total_refset_bytes: DEFAULT_MAX_TOTAL_REFSET_BYTES,
             max_streams: DEFAULT_MAX_STREAMS,
             max_watchers: DEFAULT_MAX_WATCHERS,
+            max_connections: DEFAULT_MAX_CONNECTIONS,
+            connection_idle: Duration::from_secs(DEFAULT_CONNECTION_IDLE_SECONDS),
         }
     }
 }

@@ -29,6 +29,12 @@ const REFSET_BYTES: &str = "mtgauge_refset_bytes";
 const ACTIVE_STREAMS: &str = "mtgauge_active_streams";
 const BUILD_INFO: &str = "mtgauge_build_info";
 const BATCH_SECONDS: &str = "mtgauge_batch_seconds";
+const CONNECTIONS_OPEN: &str = "mtgauge_connections_open";
+const CONNECTIONS_ACCEPTED: &str = "mtgauge_connections_accepted_total";
+const CONNECTIONS_REFUSED: &str = "mtgauge_connections_refused_total";
+const CONNECTIONS_IDLE_CLOSED: &str = "mtgauge_connections_idle_closed_total";
+const WATCH_SKIPPED: &str = "mtgauge_watch_reports_skipped_total";
+const METRICS_REFUSED: &str = "mtgauge_metrics_requests_refused_total";
 
 /// Install the process-wide Prometheus recorder and describe every metric.
 pub fn install_metrics() -> Result<PrometheusHandle, String> {
@@ -53,40 +59,77 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_gauge!(ACTIVE_STREAMS, "Scoring streams open now.");
     describe_gauge!(BUILD_INFO, "Constant 1, labelled with the mtgauge version.");
     describe_histogram!(BATCH_SECONDS, Unit::Seconds, "Time from receiving a batch to its acknowledgement.");
+    describe_gauge!(CONNECTIONS_OPEN, "Connections open now per listener (grpc, health); at most limits.max_connections.");
+    describe_counter!(CONNECTIONS_ACCEPTED, "Connections accepted per listener.");
+    describe_counter!(CONNECTIONS_REFUSED, "Connections closed on arrival because limits.max_connections were open.");
+    describe_counter!(CONNECTIONS_IDLE_CLOSED, "Connections closed after nothing was received for limits.connection_idle_seconds.");
+    describe_counter!(WATCH_SKIPPED, "Watch reports not sent because the subscriber had not taken the previous one (slow subscribers skip, never queue).");
+    describe_counter!(METRICS_REFUSED, "Scrape connections closed on arrival because too many were open.");
+    for l in ["grpc", "health"] {
+        gauge!(CONNECTIONS_OPEN, "listener" => l).set(0.0);
+        counter!(CONNECTIONS_ACCEPTED, "listener" => l).absolute(0);
+        counter!(CONNECTIONS_REFUSED, "listener" => l).absolute(0);
+        counter!(CONNECTIONS_IDLE_CLOSED, "listener" => l).absolute(0);
+    }
+    counter!(WATCH_SKIPPED).absolute(0);
+    counter!(METRICS_REFUSED).absolute(0);
     gauge!(BUILD_INFO, "version" => env!("CARGO_PKG_VERSION")).set(1.0);
     Ok(handle)
 }
 
+/// Scrape connections served at once; more are closed on arrival (Prometheus scrapes each target
+/// over one connection at a time, so a few cover several scrapers).
+pub const METRICS_MAX_CONNECTIONS: usize = 16;
+/// Longest time one scrape connection may take, reading the request and writing the answer.
+pub const METRICS_REQUEST_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(10);
+
 /// Serve `GET /metrics` (Prometheus text format) on `listener` until the task is dropped.
 pub async fn serve_metrics(listener: TcpListener, handle: PrometheusHandle) {
+    let open = std::sync::Arc::new(tokio::sync::Semaphore::new(METRICS_MAX_CONNECTIONS));
     loop {
-        let Ok((mut sock, _)) = listener.accept().await else { continue };
+        let mut sock = match listener.accept().await {
+            Ok((sock, _)) => sock,
+            Err(e) => {
+                tracing::warn!(error = %e, "metrics listener: accept failed");
+                tokio::time::sleep(crate::server::conn::ACCEPT_ERROR_PAUSE).await;
+                continue;
+            }
+        };
+        let Ok(permit) = std::sync::Arc::clone(&open).try_acquire_owned() else {
+            counter!(METRICS_REFUSED).increment(1);
+            continue;
+        };
         let handle = handle.clone();
         tokio::spawn(async move {
-            let mut buf = vec![0u8; 4096];
-            let mut n = 0;
-            // Read the request head (bounded); the body, if any, is ignored.
-            while n < buf.len() {
-                match tokio::time::timeout(std::time::Duration::from_secs(5), sock.read(&mut buf[n..])).await {
-                    Ok(Ok(0)) | Err(_) | Ok(Err(_)) => return,
-                    Ok(Ok(k)) => n += k,
-                }
-                if buf[..n].windows(4).any(|w| w == b"\r\n\r\n") {
-                    break;
-                }
-            }
-            let head = String::from_utf8_lossy(&buf[..n]);
-            let path = head.split_whitespace().nth(1).unwrap_or("");
-            let (status, ctype, body) = if head.starts_with("GET ") && (path == "/metrics" || path.starts_with("/metrics?")) {
-                ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render())
-            } else {
-                ("404 Not Found", "text/plain; charset=utf-8", "not found: try /metrics\n".to_string())
-            };
-            let resp = format!("HTTP/1.1 {status}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}", body.len());
-            let _ = sock.write_all(resp.as_bytes()).await;
-            let _ = sock.shutdown().await;
+            let _permit = permit;
+            let _ = tokio::time::timeout(METRICS_REQUEST_TIMEOUT, answer_scrape(&mut sock, &handle)).await;
         });
     }
+}
+
+async fn answer_scrape(sock: &mut tokio::net::TcpStream, handle: &PrometheusHandle) {
+    let mut buf = vec![0u8; 4096];
+    let mut n = 0;
+    // Read the request head (bounded); the body, if any, is ignored.
+    while n < buf.len() {
+        match sock.read(&mut buf[n..]).await {
+            Ok(0) | Err(_) => return,
+            Ok(k) => n += k,
+        }
+        if buf[..n].windows(4).any(|w| w == b"\r\n\r\n") {
+            break;
+        }
+    }
+    let head = String::from_utf8_lossy(&buf[..n]);
+    let path = head.split_whitespace().nth(1).unwrap_or("");
+    let (status, ctype, body) = if head.starts_with("GET ") && (path == "/metrics" || path.starts_with("/metrics?")) {
+        ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render())
+    } else {
+        ("404 Not Found", "text/plain; charset=utf-8", "not found: try /metrics\n".to_string())
+    };
+    let resp = format!("HTTP/1.1 {status}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}", body.len());
+    let _ = sock.write_all(resp.as_bytes()).await;
+    let _ = sock.shutdown().await;
 }
 
 /// Count one applied batch: its outcome counts and the summed statistics of its scored items.
@@ -178,6 +221,32 @@ pub fn record_refset(name: &str, segments: usize, bytes: usize) {
 /// One more (or one fewer) open scoring stream.
 pub fn streams_delta(delta: f64) {
     gauge!(ACTIVE_STREAMS).increment(delta);
+}
+
+/// A connection was accepted on a listener.
+pub fn connection_opened(listener: &'static str) {
+    counter!(CONNECTIONS_ACCEPTED, "listener" => listener).increment(1);
+    gauge!(CONNECTIONS_OPEN, "listener" => listener).increment(1.0);
+}
+
+/// An accepted connection ended.
+pub fn connection_closed(listener: &'static str) {
+    gauge!(CONNECTIONS_OPEN, "listener" => listener).decrement(1.0);
+}
+
+/// A connection was closed on arrival (limit reached).
+pub fn connection_refused(listener: &'static str) {
+    counter!(CONNECTIONS_REFUSED, "listener" => listener).increment(1);
+}
+
+/// A connection was closed for silence.
+pub fn connection_idle_closed(listener: &'static str) {
+    counter!(CONNECTIONS_IDLE_CLOSED, "listener" => listener).increment(1);
+}
+
+/// A watch report was skipped for a slow subscriber.
+pub fn watch_report_skipped() {
+    counter!(WATCH_SKIPPED).increment(1);
 }
 
 /// Time of one batch.

@@ -32,6 +32,11 @@ impl Server {
     /// Start `mtgauge serve` on loopback port 0 with extra arguments, on a fresh data directory
     /// unless the arguments name one (or `--durability none`).
     pub fn start(extra: &[&str]) -> Server {
+        Server::start_on("127.0.0.1:0", extra)
+    }
+
+    /// [`Server::start`] on a given gRPC address (to restart a server where its clients expect it).
+    pub fn start_on(listen: &str, extra: &[&str]) -> Server {
         static N: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
         let own = !extra.iter().any(|a| *a == "--data-dir" || *a == "--durability" || *a == "--config");
         let dir = temp_dir(&format!("data-{}", N.fetch_add(1, std::sync::atomic::Ordering::Relaxed)));
@@ -40,7 +45,7 @@ impl Server {
             args.extend(["--data-dir".to_string(), dir.display().to_string()]);
         }
         let mut child = Command::new(env!("CARGO_BIN_EXE_mtgauge"))
-            .args(["serve", "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0"])
+            .args(["serve", "--listen", listen, "--metrics-listen", "127.0.0.1:0"])
             .args(&args)
             .env("RUST_LOG", "info")
             .stdin(Stdio::null())
@@ -104,6 +109,24 @@ impl Server {
         let (head, body) = out.split_once("\r\n\r\n").unwrap();
         assert!(head.starts_with("HTTP/1.1 200"), "{head}");
         body.to_owned()
+    }
+
+    /// The value of one sample of the last scrape, e.g. `mtgauge_connections_open{listener="grpc"}`
+    /// (0 when the series is absent).
+    pub fn sample(&self, series: &str) -> f64 {
+        self.scrape().lines().find_map(|l| l.strip_prefix(series).and_then(|v| v.strip_prefix(' ')).map(|v| v.trim().parse::<f64>().unwrap())).unwrap_or(0.0)
+    }
+
+    /// Resident memory of the server process in KiB (Linux /proc).
+    pub fn rss_kib(&self) -> u64 {
+        let status = std::fs::read_to_string(format!("/proc/{}/status", self.child.id())).expect("/proc/PID/status");
+        status.lines().find_map(|l| l.strip_prefix("VmRSS:")).and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok()).expect("VmRSS")
+    }
+
+    /// Kill with SIGKILL (no drain) and wait for the exit.
+    pub fn kill(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
     }
 
     /// Send SIGTERM and wait for the exit (bounded).
