@@ -369,6 +369,9 @@ fn per_segment_lines_sum_to_the_corpus() {
         ],
         None,
     );
+    // Without --per-segment the corpus is summed without keeping segments: the same output.
+    let summed = json_ok(&["score", "--ref", &r1, "--ref", &r2, "--hyp", &hyp, "--json", "--metrics", "bleu,chrf,chrf++"], None);
+    assert_eq!(summed, corpus, "the corpus with and without --per-segment");
     let written = std::fs::read_to_string(&seg_file).expect("per-segment file written");
     let segs: Vec<Value> = written.lines().map(|l| serde_json::from_str(l).expect("one JSON object per line")).collect();
     assert_eq!(segs.len(), 5);

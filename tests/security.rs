@@ -108,6 +108,33 @@ async fn mutual_tls_and_plaintext_health() {
     assert!(refused, "plaintext is refused on the TLS port");
 }
 
+/// Past limits.max_connections on a TLS port, the refusal is spoken over TLS too, so the
+/// client reads RESOURCE_EXHAUSTED naming the key instead of a broken handshake.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn over_the_connection_limit_tls_clients_are_told_why() {
+    let dir = temp_dir("tls-limit");
+    let pki = pki();
+    let (cert, key) = (write(&dir, "server.pem", &pki.server_cert), write(&dir, "server.key", &pki.server_key));
+    let cfg = write(&dir, "serve.toml", "durability = \"none\"\n[limits]\nmax_connections = 1\n");
+    let server = Server::start(&["--config", &cfg, "--tls-cert", &cert, "--tls-key", &key]);
+    let mut first = None;
+    for _ in 0..100 {
+        if let Ok(ch) = tls_channel(&server, &pki, false).await {
+            if health_status(ch.clone()).await.is_ok() {
+                first = Some(ch);
+                break;
+            }
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let first = first.expect("the first TLS connection is served");
+    let second = tls_channel(&server, &pki, false).await.expect("the TLS handshake of an over-limit connection succeeds");
+    let e = health_status(second).await.expect_err("the second connection is refused");
+    assert_eq!(e.code(), Code::ResourceExhausted, "{e:?}");
+    assert!(e.message().contains("limits.max_connections"), "{e:?}");
+    health_status(first).await.expect("the first connection is still served");
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn tokens_scopes_and_secrecy() {
     let dir = temp_dir("tokens");

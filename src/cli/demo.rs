@@ -8,7 +8,7 @@ use std::sync::Arc;
 
 use clap::Args;
 
-use super::score::score_lines;
+use super::score::score_corpus_lines;
 use super::{default_threads, CliError};
 use crate::demo::{demo_segments, demo_systems, write_demo_files};
 use crate::metric::{MetricSet, ScoreConfig};
@@ -54,7 +54,7 @@ pub(super) fn run(a: DemoArgs) -> Result<(), CliError> {
     );
     for system in demo_systems() {
         let hyps: Vec<&str> = system.hypotheses.iter().map(String::as_str).collect();
-        let corpus = score_lines(Arc::clone(&set), config, &hyps, default_threads(), false).corpus();
+        let corpus = score_corpus_lines(Arc::clone(&set), config, &hyps, default_threads(), false);
         println!("\n{} ({})", system.name, system.description);
         for line in stats_lines(&corpus, &config, "  ") {
             println!("{line}");

@@ -86,6 +86,15 @@ pub fn score_lines(refs: Arc<RefSet>, config: ScoreConfig, hyps: &[&str], thread
     Scored { refs, config, segments }
 }
 
+/// The corpus statistics of aligned hypotheses, without keeping per-segment statistics (memory
+/// is the references and the input, nothing per scored segment).
+pub fn score_corpus_lines(refs: Arc<RefSet>, config: ScoreConfig, hyps: &[&str], threads: usize, show_progress: bool) -> CorpusStats {
+    let compiled = Compiled::build(refs, config);
+    let done = AtomicUsize::new(0);
+    let progress = Progress::new(&done, hyps.len());
+    progress.run(show_progress, "scoring", || compiled.score_corpus(hyps, threads, &done))
+}
+
 pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
     let config = a.scoring.config()?;
     if a.threads == Some(0) {
@@ -97,12 +106,15 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
     let hyps = split_lines(hyp_name, &hyp_bytes)?;
     check_same_length(hyp_name, hyps.len(), display_name(&a.refs[0]), refs.len())?;
     let show = stderr_is_terminal() && hyps.len() >= PROGRESS_MIN_SEGMENTS;
-    let scored = score_lines(Arc::clone(&refs), config, &hyps, a.threads.unwrap_or_else(default_threads), show);
-
-    if let Some(path) = &a.per_segment {
-        write_per_segment(path, &scored)?;
-    }
-    let corpus = scored.corpus();
+    let threads = a.threads.unwrap_or_else(default_threads);
+    let corpus = match &a.per_segment {
+        Some(path) => {
+            let scored = score_lines(Arc::clone(&refs), config, &hyps, threads, show);
+            write_per_segment(path, &scored)?;
+            scored.corpus()
+        }
+        None => score_corpus_lines(Arc::clone(&refs), config, &hyps, threads, show),
+    };
     let out = if a.json {
         let mut m = stats_json(&corpus, &config);
         m.insert("refset".into(), refset_json(None, &refs));

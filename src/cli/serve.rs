@@ -23,7 +23,7 @@ pub fn long_about() -> String {
         ("max_total_refset_bytes", DEFAULT_MAX_TOTAL_REFSET_BYTES.to_string(), "memory of all reference sets"),
         ("max_streams", DEFAULT_MAX_STREAMS.to_string(), "scoring streams open at once"),
         ("max_watchers", DEFAULT_MAX_WATCHERS.to_string(), "watch subscribers at once"),
-        ("max_connections", DEFAULT_MAX_CONNECTIONS.to_string(), "connections open at once; more are closed on arrival"),
+        ("max_connections", DEFAULT_MAX_CONNECTIONS.to_string(), "connections open at once; more are refused"),
         ("connection_idle_seconds", DEFAULT_CONNECTION_IDLE_SECONDS.to_string(), "seconds of silence that close a connection"),
     ];
     let table: String = limits.iter().map(|(k, d, what)| format!("  {k:<24} {d:>11}  {what}\n")).collect();

@@ -1,8 +1,10 @@
 //! Accepted connections: a bound on how many are open at once, and a deadline on silent ones.
 //!
-//! Every connection holds a permit of one semaphore; past `limits.max_connections` a new
-//! connection is closed right after it is accepted (the client sees the connection end and
-//! retries with its backoff) instead of waiting unseen in the kernel's backlog. A connection from
+//! Every connection holds a permit of one semaphore. Past `limits.max_connections` a new
+//! connection is not left waiting unseen in the kernel's backlog: it is handed to a small
+//! refusing server that answers every call with RESOURCE_EXHAUSTED naming the limit and closes
+//! the connection within seconds (at most [`REFUSING_MAX_CONNECTIONS`] at once; beyond those a
+//! connection is closed on arrival without an answer). A connection from
 //! which nothing at all has been read for `limits.connection_idle_seconds` is closed. The server
 //! pings every connection more often than that (HTTP/2 keepalive, see [`keepalive`]), and every
 //! HTTP/2 client answers pings, so a live client, even one that only waits on a watch stream,
@@ -36,6 +38,13 @@ pub const KEEPALIVE_TIMEOUT: Duration = Duration::from_secs(20);
 pub const TLS_HANDSHAKE_TIMEOUT: Duration = Duration::from_secs(10);
 /// Connections accepted but not yet taken by the HTTP/2 server.
 const ACCEPT_QUEUE: usize = 64;
+/// Over-limit connections being told RESOURCE_EXHAUSTED at once.
+pub const REFUSING_MAX_CONNECTIONS: usize = 64;
+/// Age at which the refusing server closes an over-limit connection (GOAWAY), and the grace
+/// after it before the connection is dropped.
+pub const REFUSING_CONNECTION_AGE: Duration = Duration::from_secs(2);
+/// See [`REFUSING_CONNECTION_AGE`].
+pub const REFUSING_CONNECTION_GRACE: Duration = Duration::from_secs(1);
 
 /// Ping interval and acknowledgement timeout for an idle deadline: at least four pings per
 /// deadline, and an acknowledgement is awaited for at most half of it.
@@ -62,12 +71,22 @@ impl Listener {
     }
 }
 
+/// The accepted connections of one listener.
+pub struct Incoming {
+    /// Connections within the limit, for the real server.
+    pub admitted: ReceiverStream<io::Result<Guarded>>,
+    /// Connections past it, for [`serve_refusals`].
+    pub over_limit: ReceiverStream<io::Result<Guarded>>,
+}
+
 /// Accept connections on `listener` for tonic's `serve_with_incoming*`: at most `max` open at
 /// once, each closed after `idle` without a byte read. Accepting stops when the server drops the
-/// stream (shutdown).
-pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Duration) -> ReceiverStream<io::Result<Guarded>> {
+/// admitted stream (shutdown).
+pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Duration) -> Incoming {
     let (tx, rx) = mpsc::channel(ACCEPT_QUEUE);
+    let (over_tx, over_rx) = mpsc::channel(ACCEPT_QUEUE);
     let open = Arc::new(Semaphore::new(max));
+    let refusing = Arc::new(Semaphore::new(REFUSING_MAX_CONNECTIONS));
     tokio::spawn(async move {
         // Log refusals at most once per second: a flood must not become a flood of log lines.
         let mut last_warning: Option<Instant> = None;
@@ -90,23 +109,44 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
                     last_warning = Some(Instant::now());
                     tracing::warn!(%peer, listener = which.label(), limit = max, "connection refused: limits.max_connections reached");
                 }
-                drop(tcp);
+                // Tell the client why, while few are being told; past that, just close.
+                if let Ok(p) = Arc::clone(&refusing).try_acquire_owned() {
+                    let _ = over_tx.try_send(Ok(Guarded::new(tcp, p, None, idle.min(REFUSING_CONNECTION_AGE))));
+                }
                 continue;
             };
             let _ = tcp.set_nodelay(true);
             telemetry::connection_opened(which.label());
-            if tx.send(Ok(Guarded::new(tcp, permit, which, idle))).await.is_err() {
+            if tx.send(Ok(Guarded::new(tcp, permit, Some(which), idle))).await.is_err() {
                 break;
             }
         }
     });
-    ReceiverStream::new(rx)
+    Incoming { admitted: ReceiverStream::new(rx), over_limit: ReceiverStream::new(over_rx) }
+}
+
+/// Answer every call on over-limit connections with RESOURCE_EXHAUSTED and `message`, and close
+/// each connection after [`REFUSING_CONNECTION_AGE`]. Ends when `over_limit` does.
+pub fn serve_refusals(over_limit: ReceiverStream<io::Result<Guarded>>, tls: Option<tonic::transport::ServerTlsConfig>, message: String) -> Result<(), String> {
+    let refuse = tonic::service::InterceptorLayer::new(move |_: tonic::Request<()>| -> Result<tonic::Request<()>, tonic::Status> { Err(tonic::Status::resource_exhausted(message.clone())) });
+    let mut server = tonic::transport::Server::builder();
+    if let Some(tls) = tls {
+        server = server.tls_config(tls).map_err(|e| format!("TLS configuration: {e}"))?;
+    }
+    // Some service must be routed to; the interceptor answers before any is reached.
+    let (_, placeholder) = tonic_health::server::health_reporter();
+    let router = server.max_connection_age(REFUSING_CONNECTION_AGE).max_connection_age_grace(REFUSING_CONNECTION_GRACE).layer(refuse).add_service(placeholder);
+    tokio::spawn(async move {
+        let _ = router.serve_with_incoming(over_limit).await;
+    });
+    Ok(())
 }
 
 /// An accepted connection with its permit and its idle deadline.
 pub struct Guarded {
     tcp: TcpStream,
-    which: Listener,
+    /// The listener whose open-connection gauge counts it (None: an over-limit connection).
+    which: Option<Listener>,
     idle: Duration,
     last_read: Instant,
     deadline: Pin<Box<Sleep>>,
@@ -114,7 +154,7 @@ pub struct Guarded {
 }
 
 impl Guarded {
-    fn new(tcp: TcpStream, permit: OwnedSemaphorePermit, which: Listener, idle: Duration) -> Guarded {
+    fn new(tcp: TcpStream, permit: OwnedSemaphorePermit, which: Option<Listener>, idle: Duration) -> Guarded {
         let now = Instant::now();
         Guarded { tcp, which, idle, last_read: now, deadline: Box::pin(tokio::time::sleep_until(now + idle)), _permit: permit }
     }
@@ -122,7 +162,9 @@ impl Guarded {
 
 impl Drop for Guarded {
     fn drop(&mut self) {
-        telemetry::connection_closed(self.which.label());
+        if let Some(w) = self.which {
+            telemetry::connection_closed(w.label());
+        }
     }
 }
 
@@ -154,7 +196,9 @@ impl AsyncRead for Guarded {
                 match this.deadline.as_mut().poll(cx) {
                     Poll::Pending => return Poll::Pending,
                     Poll::Ready(()) if Instant::now() >= due => {
-                        telemetry::connection_idle_closed(this.which.label());
+                        if let Some(w) = this.which {
+                            telemetry::connection_idle_closed(w.label());
+                        }
                         tracing::debug!(idle_seconds = this.idle.as_secs_f64(), "closing a connection on which nothing was received");
                         return Poll::Ready(Err(io::Error::new(io::ErrorKind::TimedOut, "nothing received within limits.connection_idle_seconds")));
                     }

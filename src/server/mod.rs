@@ -148,6 +148,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     let svc = services::Services::new(state.clone(), stop_rx.clone(), config.tokens.clone());
     let max = config.max_message_bytes;
     let mut builder = tonic::transport::Server::builder();
+    let mut tls_config = None;
     if let Some(t) = &config.tls {
         let _ = rustls::crypto::ring::default_provider().install_default();
         let read = |p: &PathBuf| std::fs::read(p).map_err(|e| format!("{}: {e}", p.display()));
@@ -155,6 +156,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
         if let Some(ca) = &t.client_ca {
             tls = tls.client_ca_root(tonic::transport::Certificate::from_pem(read(ca)?));
         }
+        tls_config = Some(tls.clone());
         builder = builder.tls_config(tls).map_err(|e| format!("TLS configuration: {e}"))?;
     }
     let (max_connections, idle) = (config.limits.max_connections, config.limits.connection_idle);
@@ -162,12 +164,14 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     if let Some(l) = config.health_listener.take() {
         let plain_health = tonic_health::pb::health_server::HealthServer::new(tonic_health::server::HealthService::from_health_reporter(health.clone()));
         let mut stop = stop_rx.clone();
+        let inc = conn::incoming(l, conn::Listener::Health, HEALTH_MAX_CONNECTIONS, idle);
+        conn::serve_refusals(inc.over_limit, None, format!("connection limit reached: {HEALTH_MAX_CONNECTIONS} connections are open on the health listener"))?;
         tokio::spawn(async move {
             let _ = tonic::transport::Server::builder()
                 .http2_keepalive_interval(Some(ping_every))
                 .http2_keepalive_timeout(Some(ping_wait))
                 .add_service(plain_health)
-                .serve_with_incoming_shutdown(conn::incoming(l, conn::Listener::Health, HEALTH_MAX_CONNECTIONS, idle), async move {
+                .serve_with_incoming_shutdown(inc.admitted, async move {
                     let _ = stop.wait_for(|s| *s).await;
                 })
                 .await;
@@ -197,7 +201,9 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
         let _ = graceful_tx.send(());
     });
     let (drain_tx, mut drain_rx) = watch::channel(false);
-    let serve = router.serve_with_incoming_shutdown(conn::incoming(grpc, conn::Listener::Grpc, max_connections, idle), async move {
+    let inc = conn::incoming(grpc, conn::Listener::Grpc, max_connections, idle);
+    conn::serve_refusals(inc.over_limit, tls_config, format!("connection limit reached: {max_connections} connections are open (limits.max_connections)"))?;
+    let serve = router.serve_with_incoming_shutdown(inc.admitted, async move {
         let _ = graceful_rx.await;
         let _ = drain_tx.send(true);
     });

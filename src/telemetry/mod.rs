@@ -61,7 +61,7 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_histogram!(BATCH_SECONDS, Unit::Seconds, "Time from receiving a batch to its acknowledgement.");
     describe_gauge!(CONNECTIONS_OPEN, "Connections open now per listener (grpc, health); at most limits.max_connections.");
     describe_counter!(CONNECTIONS_ACCEPTED, "Connections accepted per listener.");
-    describe_counter!(CONNECTIONS_REFUSED, "Connections closed on arrival because limits.max_connections were open.");
+    describe_counter!(CONNECTIONS_REFUSED, "Connections refused (RESOURCE_EXHAUSTED, then closed) because limits.max_connections were open.");
     describe_counter!(CONNECTIONS_IDLE_CLOSED, "Connections closed after nothing was received for limits.connection_idle_seconds.");
     describe_counter!(WATCH_SKIPPED, "Watch reports not sent because the subscriber had not taken the previous one (slow subscribers skip, never queue).");
     describe_counter!(METRICS_REFUSED, "Scrape connections closed on arrival because too many were open.");
