@@ -325,11 +325,31 @@ async fn api_bad_inputs_get_clear_statuses_and_change_nothing() {
     table.add("Submit: source key of 10 MiB", format!("ack rejected 1: {}", ack.rejections[0].reason));
     // Past the 16 MiB message limit the whole request is refused before it is decoded.
     let seventeen_mb = "Ebbe. ".repeat(17 * 1024 * 1024 / 6);
-    let s = scoring.submit(batch("probe", "big", 3, vec![by_id("notice-0002", &seventeen_mb)])).await.expect_err("17 MiB message");
-    assert!(matches!(s.code(), Code::OutOfRange | Code::ResourceExhausted), "{s:?}");
-    assert!(s.message().contains("too large") || s.message().contains("limit"), "{s:?}");
-    assert_eq!(snapshot(&ch).await, want, "a refused message changes nothing");
+    let big = batch("probe", "big", 3, vec![by_id("notice-0002", &seventeen_mb)]);
+    let limit_named = |s: &tonic::Status| {
+        assert_eq!(s.code(), Code::ResourceExhausted, "{s:?}");
+        assert!(s.message().contains("max_message_bytes") && s.message().contains("16777216"), "{s:?}");
+    };
+    let s = scoring.clone().max_encoding_message_size(64 << 20).submit(big.clone()).await.expect_err("17 MiB message");
+    limit_named(&s);
     table.add("Submit: message of 17 MiB (limit 16 MiB)", format!("{:?}: {}", s.code(), s.message()));
+    // The same batch on the bidirectional stream: the stream ends with the same status.
+    let mut streaming = scoring.clone().max_encoding_message_size(64 << 20);
+    let s = match streaming.stream(tokio_stream::iter(vec![big])).await {
+        Err(s) => s,
+        Ok(r) => r.into_inner().message().await.expect_err("the stream ends with an error"),
+    };
+    limit_named(&s);
+    table.add("Stream: batch of 17 MiB", format!("{:?}: {}", s.code(), s.message()));
+    // And one upload chunk of 17 MiB.
+    let chunks = vec![
+        chunk_header("huge", pb::RefFormat::Plain, 1, false, false),
+        pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: seventeen_mb.clone().into_bytes() })) },
+    ];
+    let s = RefSetsClient::new(ch.clone()).max_encoding_message_size(64 << 20).upload(tokio_stream::iter(chunks)).await.expect_err("17 MiB chunk");
+    limit_named(&s);
+    table.add("RefSets/Upload: chunk of 17 MiB", format!("{:?}: {}", s.code(), s.message()));
+    assert_eq!(snapshot(&ch).await, want, "a refused message changes nothing");
     drop(ten_mb);
 
     // Other whole-batch refusals.

@@ -75,3 +75,67 @@ impl From<ServiceError> for tonic::Status {
 
 /// Result of a service operation.
 pub type Result<T> = std::result::Result<T, ServiceError>;
+
+/// tonic's own refusal of a message past `max_message_bytes` (OUT_OF_RANGE, with a text naming
+/// no setting) as the limit error every other limit gives: RESOURCE_EXHAUSTED naming the key.
+pub fn name_message_limit(s: &tonic::Status, max: usize) -> Option<tonic::Status> {
+    if s.code() != tonic::Code::OutOfRange {
+        return None;
+    }
+    let m = s.message();
+    let what = if m.contains("decoded message length too large") {
+        "message"
+    } else if m.contains("encoded message length too large") {
+        "response"
+    } else {
+        return None;
+    };
+    let found = m.split("found ").nth(1).and_then(|r| r.split(' ').next()).unwrap_or("?");
+    Some(ServiceError::Limit { what: format!("{what} of {found} bytes"), limit: max as u64, key: "max_message_bytes" }.into())
+}
+
+/// Wraps a generated gRPC server so that a trailers-only answer of tonic's message-size refusal
+/// becomes [`name_message_limit`]'s status (unary and client-streaming calls are decoded before
+/// a handler runs; the bidirectional stream maps the error itself).
+#[derive(Clone)]
+pub struct NameMessageLimit<S> {
+    inner: S,
+    max: usize,
+}
+
+impl<S> NameMessageLimit<S> {
+    /// Wrap `inner`, whose message limit is `max` bytes.
+    pub fn new(inner: S, max: usize) -> Self {
+        NameMessageLimit { inner, max }
+    }
+}
+
+impl<S: tonic::server::NamedService> tonic::server::NamedService for NameMessageLimit<S> {
+    const NAME: &'static str = S::NAME;
+}
+
+impl<S, B> tonic::codegen::Service<tonic::codegen::http::Request<B>> for NameMessageLimit<S>
+where
+    S: tonic::codegen::Service<tonic::codegen::http::Request<B>, Response = tonic::codegen::http::Response<tonic::body::Body>, Error = std::convert::Infallible>,
+    S::Future: Send + 'static,
+{
+    type Response = tonic::codegen::http::Response<tonic::body::Body>;
+    type Error = std::convert::Infallible;
+    type Future = tonic::codegen::BoxFuture<Self::Response, Self::Error>;
+
+    fn poll_ready(&mut self, cx: &mut std::task::Context<'_>) -> std::task::Poll<std::result::Result<(), Self::Error>> {
+        self.inner.poll_ready(cx)
+    }
+
+    fn call(&mut self, req: tonic::codegen::http::Request<B>) -> Self::Future {
+        let (call, max) = (self.inner.call(req), self.max);
+        Box::pin(async move {
+            let resp = call.await?;
+            let renamed = tonic::Status::from_header_map(resp.headers()).and_then(|s| name_message_limit(&s, max));
+            Ok(match renamed {
+                Some(s) => s.into_http(),
+                None => resp,
+            })
+        })
+    }
+}

@@ -17,6 +17,7 @@ use tokio::net::TcpListener;
 use tokio::sync::watch;
 
 pub use error::ServiceError;
+use error::NameMessageLimit;
 pub use state::{Format, Limits, State};
 
 use crate::pb;
@@ -145,7 +146,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
         .map_err(|e| e.to_string())?;
 
     let (stop_tx, stop_rx) = watch::channel(false);
-    let svc = services::Services::new(state.clone(), stop_rx.clone(), config.tokens.clone());
+    let svc = services::Services::new(state.clone(), stop_rx.clone(), config.tokens.clone(), config.max_message_bytes);
     let max = config.max_message_bytes;
     let mut builder = tonic::transport::Server::builder();
     let mut tls_config = None;
@@ -185,9 +186,9 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
         .add_service(health_service)
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)
-        .add_service(pb::ref_sets_server::RefSetsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max))
-        .add_service(pb::sessions_server::SessionsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max))
-        .add_service(pb::scoring_server::ScoringServer::new(svc).max_decoding_message_size(max).max_encoding_message_size(max));
+        .add_service(NameMessageLimit::new(pb::ref_sets_server::RefSetsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
+        .add_service(NameMessageLimit::new(pb::sessions_server::SessionsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
+        .add_service(NameMessageLimit::new(pb::scoring_server::ScoringServer::new(svc).max_decoding_message_size(max).max_encoding_message_size(max), max));
 
     // Graceful part: when `shutdown` fires, report NOT_SERVING, tell streams to finish their
     // current batch and end, and let tonic stop accepting.

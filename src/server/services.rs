@@ -38,11 +38,12 @@ pub struct Services {
     state: State,
     stop: watch::Receiver<bool>,
     tokens: Option<Arc<Tokens>>,
+    max_message_bytes: usize,
 }
 
 impl Services {
-    pub fn new(state: State, stop: watch::Receiver<bool>, tokens: Option<Arc<Tokens>>) -> Services {
-        Services { state, stop, tokens }
+    pub fn new(state: State, stop: watch::Receiver<bool>, tokens: Option<Arc<Tokens>>, max_message_bytes: usize) -> Services {
+        Services { state, stop, tokens, max_message_bytes }
     }
 
     /// Check the caller's token for `scope` (always passes without a tokens file).
@@ -387,6 +388,7 @@ impl pb::scoring_server::Scoring for Services {
         let (tx, rx) = mpsc::channel(ACK_BUFFER);
         let state = self.state.clone();
         let mut stop = self.stop.clone();
+        let max_message = self.max_message_bytes;
         tokio::spawn(async move {
             let _gate = gate;
             let _gauge = StreamGauge::new();
@@ -402,6 +404,10 @@ impl pb::scoring_server::Scoring for Services {
                     Ok(Some(b)) => b,
                     Ok(None) => break,
                     Err(status) => {
+                        // A message past max_message_bytes: tell the client, by the key's name.
+                        if let Some(s) = crate::server::error::name_message_limit(&status, max_message) {
+                            let _ = tx.send(Err(s)).await;
+                        }
                         tracing::debug!(%status, "scoring stream ended by the client");
                         break;
                     }
