@@ -177,7 +177,7 @@ async fn report(ch: &Channel, session: &str) -> pb::ScoresReport {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn a_flood_of_unknown_ids_is_counted_and_keeps_nothing() {
+async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
     const BATCH: usize = 5_000;
     const WARM: usize = 20;
     const FLOOD: usize = 200;
@@ -187,13 +187,20 @@ async fn a_flood_of_unknown_ids_is_counted_and_keeps_nothing() {
     let ch = server.wait_serving().await;
     create_session(&ch, "flood").await;
     let mut scoring = ScoringClient::new(ch.clone()).max_encoding_message_size(64 << 20);
-    // Every id is new: a server that kept anything per unknown id would grow with the flood.
+    // Every key is new: a server that kept anything per unknown id or source would grow with
+    // the flood. Even batches are keyed by id, odd ones by source text (the lookup normalises
+    // it first).
     let batch = |b: usize| pb::ScoreBatch {
         session: "flood".into(),
         producer: "flooder".into(),
         sequence: b as u64 + 1,
         want_segment_scores: false,
-        items: (0..BATCH).map(|i| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(format!("no-such-segment-{b:06}-{i:06}"))), hypothesis: "die fähre fährt um neun".into() }).collect(),
+        items: (0..BATCH)
+            .map(|i| {
+                let key = if b % 2 == 0 { pb::score_item::Key::SegmentId(format!("no-such-segment-{b:06}-{i:06}")) } else { pb::score_item::Key::Source(format!("  Unknown  notice {b:06} {i:06}  ")) };
+                pb::ScoreItem { key: Some(key), hypothesis: "die fähre fährt um neun".into() }
+            })
+            .collect(),
     };
     let send = |from: usize, to: usize| {
         let batches: Vec<pb::ScoreBatch> = (from..to).map(batch).collect();
@@ -219,11 +226,11 @@ async fn a_flood_of_unknown_ids_is_counted_and_keeps_nothing() {
     assert_eq!(r.unknown, items as u64, "every unknown item is counted");
     assert_eq!(stats_from_pb(r.cumulative.as_ref().unwrap()).segments, 0, "nothing was scored");
     assert_eq!(server.sample("mtgauge_segments_total{session=\"flood\",outcome=\"unknown\"}"), items as f64);
-    // Keeping the ids alone would take FLOOD * BATCH * (29 bytes + a 24-byte String) = 53 MB;
+    // Keeping the keys alone would take FLOOD * BATCH * (about 29 bytes + a 24-byte String) = 53 MB;
     // 8 MiB leaves room for allocator noise only.
     let grown = rss_after.saturating_sub(rss_warm);
     eprintln!("RSS {rss_warm} KiB -> {rss_after} KiB over {} unknown items", FLOOD * BATCH);
-    assert!(grown < 8 * 1024, "memory grew {grown} KiB over a flood of unknown ids");
+    assert!(grown < 8 * 1024, "memory grew {grown} KiB over a flood of unknown ids and sources");
     // And the server still scores.
     let segs = demo_segments();
     let ok = pb::ScoreBatch { session: "flood".into(), producer: "after".into(), sequence: 1, want_segment_scores: false, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[0].id.clone())), hypothesis: segs[0].refs[0].clone() }] };
