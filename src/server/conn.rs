@@ -69,24 +69,27 @@ impl Listener {
             Listener::Health => "health",
         }
     }
-}
 
-/// The accepted connections of one listener.
-pub struct Incoming {
-    /// Connections within the limit, for the real server.
-    pub admitted: ReceiverStream<io::Result<Guarded>>,
-    /// Connections past it, for [`serve_refusals`].
-    pub over_limit: ReceiverStream<io::Result<Guarded>>,
+    /// What a client past the limit of `max` connections is told.
+    fn refusal(self, max: usize) -> String {
+        match self {
+            Listener::Grpc => format!("connection limit reached: {max} connections are open (limits.max_connections)"),
+            Listener::Health => format!("connection limit reached: {max} connections are open on the health listener"),
+        }
+    }
 }
 
 /// Accept connections on `listener` for tonic's `serve_with_incoming*`: at most `max` open at
-/// once, each closed after `idle` without a byte read. Accepting stops when the server drops the
-/// admitted stream (shutdown).
-pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Duration) -> Incoming {
+/// once, each closed after `idle` without a byte read. Connections past `max` go to
+/// [`serve_refusals`] (speaking `tls` when given, like the listener's server). Accepting stops
+/// when the server drops the returned stream (shutdown).
+pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Duration, tls: Option<tonic::transport::ServerTlsConfig>) -> Result<ReceiverStream<io::Result<Guarded>>, String> {
     let (tx, rx) = mpsc::channel(ACCEPT_QUEUE);
     let (over_tx, over_rx) = mpsc::channel(ACCEPT_QUEUE);
     let open = Arc::new(Semaphore::new(max));
     let refusing = Arc::new(Semaphore::new(REFUSING_MAX_CONNECTIONS));
+    let refusal = which.refusal(max);
+    serve_refusals(ReceiverStream::new(over_rx), tls, refusal.clone())?;
     tokio::spawn(async move {
         // Log refusals at most once per second: a flood must not become a flood of log lines.
         let mut last_warning: Option<Instant> = None;
@@ -107,7 +110,7 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
                 telemetry::connection_refused(which.label());
                 if last_warning.is_none_or(|t| t.elapsed() >= Duration::from_secs(1)) {
                     last_warning = Some(Instant::now());
-                    tracing::warn!(%peer, listener = which.label(), limit = max, "connection refused: limits.max_connections reached");
+                    tracing::warn!(%peer, listener = which.label(), "connection refused: {refusal}");
                 }
                 // Tell the client why, while few are being told; past that, just close.
                 if let Ok(p) = Arc::clone(&refusing).try_acquire_owned() {
@@ -122,12 +125,12 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
             }
         }
     });
-    Incoming { admitted: ReceiverStream::new(rx), over_limit: ReceiverStream::new(over_rx) }
+    Ok(ReceiverStream::new(rx))
 }
 
 /// Answer every call on over-limit connections with RESOURCE_EXHAUSTED and `message`, and close
 /// each connection after [`REFUSING_CONNECTION_AGE`]. Ends when `over_limit` does.
-pub fn serve_refusals(over_limit: ReceiverStream<io::Result<Guarded>>, tls: Option<tonic::transport::ServerTlsConfig>, message: String) -> Result<(), String> {
+fn serve_refusals(over_limit: ReceiverStream<io::Result<Guarded>>, tls: Option<tonic::transport::ServerTlsConfig>, message: String) -> Result<(), String> {
     let refuse = tonic::service::InterceptorLayer::new(move |_: tonic::Request<()>| -> Result<tonic::Request<()>, tonic::Status> { Err(tonic::Status::resource_exhausted(message.clone())) });
     let mut server = tonic::transport::Server::builder();
     if let Some(tls) = tls {

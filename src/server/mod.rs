@@ -165,14 +165,13 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     if let Some(l) = config.health_listener.take() {
         let plain_health = tonic_health::pb::health_server::HealthServer::new(tonic_health::server::HealthService::from_health_reporter(health.clone()));
         let mut stop = stop_rx.clone();
-        let inc = conn::incoming(l, conn::Listener::Health, HEALTH_MAX_CONNECTIONS, idle);
-        conn::serve_refusals(inc.over_limit, None, format!("connection limit reached: {HEALTH_MAX_CONNECTIONS} connections are open on the health listener"))?;
+        let admitted = conn::incoming(l, conn::Listener::Health, HEALTH_MAX_CONNECTIONS, idle, None)?;
         tokio::spawn(async move {
             let _ = tonic::transport::Server::builder()
                 .http2_keepalive_interval(Some(ping_every))
                 .http2_keepalive_timeout(Some(ping_wait))
                 .add_service(plain_health)
-                .serve_with_incoming_shutdown(inc.admitted, async move {
+                .serve_with_incoming_shutdown(admitted, async move {
                     let _ = stop.wait_for(|s| *s).await;
                 })
                 .await;
@@ -202,9 +201,8 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
         let _ = graceful_tx.send(());
     });
     let (drain_tx, mut drain_rx) = watch::channel(false);
-    let inc = conn::incoming(grpc, conn::Listener::Grpc, max_connections, idle);
-    conn::serve_refusals(inc.over_limit, tls_config, format!("connection limit reached: {max_connections} connections are open (limits.max_connections)"))?;
-    let serve = router.serve_with_incoming_shutdown(inc.admitted, async move {
+    let admitted = conn::incoming(grpc, conn::Listener::Grpc, max_connections, idle, tls_config)?;
+    let serve = router.serve_with_incoming_shutdown(admitted, async move {
         let _ = graceful_rx.await;
         let _ = drain_tx.send(true);
     });
