@@ -77,22 +77,23 @@ impl Scored {
     }
 }
 
+/// Compile `refs` and run `work` over `n` hypotheses with the progress bar (when `show`).
+fn scoring<T: Send>(refs: Arc<RefSet>, config: ScoreConfig, n: usize, show: bool, work: impl FnOnce(&Compiled, &AtomicUsize) -> T + Send) -> T {
+    let compiled = Compiled::build(refs, config);
+    let done = AtomicUsize::new(0);
+    Progress::new(&done, n).run(show, "scoring", || work(&compiled, &done))
+}
+
 /// Score aligned hypotheses against a reference set (what `score` does after reading files).
 pub fn score_lines(refs: Arc<RefSet>, config: ScoreConfig, hyps: &[&str], threads: usize, show_progress: bool) -> Scored {
-    let compiled = Compiled::build(Arc::clone(&refs), config);
-    let done = AtomicUsize::new(0);
-    let progress = Progress::new(&done, hyps.len());
-    let segments = progress.run(show_progress, "scoring", || compiled.score_aligned(hyps, threads, &done));
+    let segments = scoring(Arc::clone(&refs), config, hyps.len(), show_progress, |c, done| c.score_aligned(hyps, threads, done));
     Scored { refs, config, segments }
 }
 
 /// The corpus statistics of aligned hypotheses, without keeping per-segment statistics (memory
 /// is the references and the input, nothing per scored segment).
 pub fn score_corpus_lines(refs: Arc<RefSet>, config: ScoreConfig, hyps: &[&str], threads: usize, show_progress: bool) -> CorpusStats {
-    let compiled = Compiled::build(refs, config);
-    let done = AtomicUsize::new(0);
-    let progress = Progress::new(&done, hyps.len());
-    progress.run(show_progress, "scoring", || compiled.score_corpus(hyps, threads, &done))
+    scoring(refs, config, hyps.len(), show_progress, |c, done| c.score_corpus(hyps, threads, done))
 }
 
 pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
