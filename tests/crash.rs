@@ -15,7 +15,6 @@ use mtgauge::pb;
 use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
 use mtgauge::refs::compiled::{Compiled, Scratch};
-use mtgauge::refs::{RefSet, SegmentInput};
 use mtgauge::rng::SplitMix64;
 use mtgauge::server::convert::{config_to_pb, stats_from_pb};
 
@@ -60,7 +59,7 @@ fn plan(seed: u64) -> Vec<Vec<pb::ScoreBatch>> {
 }
 
 fn offline(plan: &[Vec<pb::ScoreBatch>]) -> CorpusStats {
-    let set = Arc::new(RefSet::new(demo_segments().into_iter().map(|s| SegmentInput { id: s.id, source: Some(s.source), refs: s.refs })).unwrap());
+    let set = common::demo_refset();
     let compiled = Compiled::build(Arc::clone(&set), config());
     let mut scratch = Scratch::default();
     let mut sum = CorpusStats::default();

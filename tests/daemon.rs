@@ -2,9 +2,8 @@
 
 mod common;
 
-use std::sync::Arc;
 
-use common::{demo_files, temp_dir, Server};
+use common::{demo_files, demo_refset, temp_dir, Server};
 use mtgauge::demo::{demo_segments, demo_systems};
 use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
@@ -12,17 +11,12 @@ use mtgauge::pb::ref_sets_client::RefSetsClient;
 use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
 use mtgauge::refs::compiled::{Compiled, Scratch};
-use mtgauge::refs::{RefSet, SegmentInput};
 use mtgauge::rng::SplitMix64;
 use mtgauge::server::convert::{config_to_pb, stats_from_pb};
 use tonic::Code;
 
 fn all_metrics() -> ScoreConfig {
     ScoreConfig { metrics: "bleu,chrf,chrf++".parse().unwrap(), ..Default::default() }
-}
-
-fn demo_refset() -> Arc<RefSet> {
-    Arc::new(RefSet::new(demo_segments().into_iter().map(|s| SegmentInput { id: s.id, source: Some(s.source), refs: s.refs })).unwrap())
 }
 
 /// Every (segment index, hypothesis) of all demo systems: 900 items over 300 segments.

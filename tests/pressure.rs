@@ -12,14 +12,13 @@ use std::io::Read;
 use std::net::TcpStream;
 use std::time::{Duration, Instant};
 
-use common::{demo_files, temp_dir, Server};
+use common::{demo_files, demo_refset, temp_dir, Server};
 use mtgauge::demo::{demo_segments, demo_systems};
 use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
 use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
 use mtgauge::refs::compiled::{Compiled, Scratch};
-use mtgauge::refs::{RefSet, SegmentInput};
 use mtgauge::server::convert::stats_from_pb;
 use tonic::transport::{Channel, Endpoint};
 
@@ -161,10 +160,6 @@ async fn silent_connections_are_closed_and_live_idle_clients_stay() {
     assert_eq!(server.sample(OPEN), 6.0);
 }
 
-fn demo_refset() -> std::sync::Arc<RefSet> {
-    std::sync::Arc::new(RefSet::new(demo_segments().into_iter().map(|s| SegmentInput { id: s.id, source: Some(s.source), refs: s.refs })).unwrap())
-}
-
 async fn create_session(ch: &Channel, name: &str) {
     SessionsClient::new(ch.clone())
         .create(pb::CreateSessionRequest { name: name.into(), refset: "ferry".into(), config: None, labels: Default::default(), window: 0, if_not_exists: false })
@@ -197,7 +192,7 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
         want_segment_scores: false,
         items: (0..BATCH)
             .map(|i| {
-                let key = if b % 2 == 0 { pb::score_item::Key::SegmentId(format!("no-such-segment-{b:06}-{i:06}")) } else { pb::score_item::Key::Source(format!("  Unknown  notice {b:06} {i:06}  ")) };
+                let key = if b.is_multiple_of(2) { pb::score_item::Key::SegmentId(format!("no-such-segment-{b:06}-{i:06}")) } else { pb::score_item::Key::Source(format!("  Unknown  notice {b:06} {i:06}  ")) };
                 pb::ScoreItem { key: Some(key), hypothesis: "die fähre fährt um neun".into() }
             })
             .collect(),

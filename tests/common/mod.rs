@@ -150,6 +150,12 @@ impl Drop for Server {
     }
 }
 
+/// The demo reference set, as the offline engine sees it (the same set `demo_files` writes).
+pub fn demo_refset() -> Arc<mtgauge::refs::RefSet> {
+    let segs = mtgauge::demo::demo_segments().into_iter().map(|s| mtgauge::refs::SegmentInput { id: s.id, source: Some(s.source), refs: s.refs });
+    Arc::new(mtgauge::refs::RefSet::new(segs).unwrap())
+}
+
 /// Write the demo files into `dir`.
 pub fn demo_files(dir: &Path) {
     mtgauge::demo::write_demo_files(dir).unwrap();
