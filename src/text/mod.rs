@@ -8,7 +8,7 @@
 //! | `whitespace`   | split on white space only |
 //! | `nist`         | the NIST mteval "western" rules (default) |
 //! | `nist-unicode` | the NIST "international" rules over Unicode punctuation, symbol and number classes |
-//! | `cjk`          | every CJK ideograph, kana, hangul syllable and CJK punctuation mark a token, the rest as `nist` |
+//! | `cjk`          | every CJK ideograph, kana and CJK / full-width punctuation mark a token, the rest (Hangul included) as `nist` |
 //! | `characters`   | every non-space character a token |
 //!
 //! White space, everywhere in mtgauge, is the Unicode `White_Space` property plus the ASCII
@@ -35,7 +35,8 @@ pub enum Tokenizer {
     Nist,
     /// NIST "international" rules over Unicode classes.
     NistUnicode,
-    /// CJK characters one token each, the rest as `nist`.
+    /// CJK ideographs, kana and CJK punctuation one token each, the rest (Hangul included) as
+    /// `nist`.
     Cjk,
     /// Every non-space character a token.
     Characters,
@@ -314,21 +315,28 @@ fn pad_chars(text: &str, pred: impl Fn(char) -> bool, out: &mut String) {
     }
 }
 
-/// CJK ideographs (unified, extensions and compatibility), kana, hangul syllables and CJK /
-/// full-width punctuation: the characters the `cjk` tokenizer makes tokens of their own.
+/// CJK ideographs (unified, extensions and compatibility), kana (hiragana, katakana, half-width
+/// katakana) and CJK / full-width punctuation: the characters the `cjk` tokenizer makes tokens
+/// of their own.
+///
+/// Chinese and Japanese are written without spaces between words; without a morphological
+/// analyser, one token per ideograph or kana is common practice for scoring them. Korean is
+/// written with spaces between words, so Hangul (syllables U+AC00..U+D7A3, jamo U+1100..U+11FF,
+/// compatibility jamo U+3130..U+318F, half-width jamo U+FFA0..U+FFDC, extended jamo, and the
+/// Hangul tone marks U+302E..U+302F) is not listed here and stays inside its words.
 pub fn is_cjk(c: char) -> bool {
     matches!(c as u32,
-        0x3000..=0x303F     // CJK symbols and punctuation
+        0x3000..=0x302D     // CJK symbols and punctuation (up to the ideographic tone marks)
+        | 0x3030..=0x303F   // (U+302E..U+302F are the Hangul tone marks)
         | 0x3040..=0x30FF   // hiragana, katakana
         | 0x31F0..=0x31FF   // katakana phonetic extensions
         | 0x3400..=0x4DBF   // CJK extension A
         | 0x4E00..=0x9FFF   // CJK unified ideographs
-        | 0xAC00..=0xD7A3   // hangul syllables
         | 0xF900..=0xFAFF   // CJK compatibility ideographs
         | 0xFF01..=0xFF0F   // full-width punctuation
         | 0xFF1A..=0xFF20
         | 0xFF3B..=0xFF40
-        | 0xFF5B..=0xFF65
+        | 0xFF5B..=0xFF65   // (including the half-width CJK punctuation U+FF61..U+FF65)
         | 0xFF66..=0xFF9F   // half-width katakana
         | 0x20000..=0x3134F // CJK extensions B..G
     )
@@ -362,6 +370,36 @@ mod tests {
     fn cjk_splits_ideographs_and_keeps_latin_words() {
         let toks = Tokenizer::Cjk.tokenize("渡轮14:30出发, ferry late.", false);
         assert_eq!(toks, ["渡", "轮", "14", ":", "30", "出", "发", ",", "ferry", "late", "."]);
+    }
+
+    // Expected values worked out by hand from the `cjk` rule (is_cjk, then the `nist` rules).
+    #[test]
+    fn cjk_keeps_korean_words_whole() {
+        // Korean separates words with spaces: Hangul syllables are not split; the western rules
+        // still split the final period (preceded by a non-digit) from the word.
+        let toks = Tokenizer::Cjk.tokenize("배가 9시에 출발합니다.", false);
+        assert_eq!(toks, ["배가", "9시에", "출발합니다", "."]);
+        // Conjoining jamo (U+1100 U+1161 = 가 decomposed), compatibility jamo and half-width
+        // jamo stay inside their words too.
+        let toks = Tokenizer::Cjk.tokenize("\u{1100}\u{1161}방 ㅋㅋ ﾡﾢ", false);
+        assert_eq!(toks, ["\u{1100}\u{1161}방", "ㅋㅋ", "ﾡﾢ"]);
+        assert!(!"가힣ㄱㆎ\u{1100}\u{11FF}\u{302E}\u{FFA0}".chars().any(is_cjk));
+    }
+
+    #[test]
+    fn cjk_splits_kana_and_cjk_punctuation() {
+        // Hiragana, katakana, half-width katakana, ideographs and CJK punctuation: one each.
+        let toks = Tokenizer::Cjk.tokenize("フェリーは9時に出ます。ｶﾀ「港」", false);
+        assert_eq!(
+            toks,
+            ["フ", "ェ", "リ", "ー", "は", "9", "時", "に", "出", "ま", "す", "。", "ｶ", "ﾀ", "「", "港", "」"]
+        );
+    }
+
+    #[test]
+    fn cjk_mixed_latin_ideographs_and_hangul() {
+        let toks = Tokenizer::Cjk.tokenize("Ferry渡轮 부두Pier, 北港.", false);
+        assert_eq!(toks, ["Ferry", "渡", "轮", "부두Pier", ",", "北", "港", "."]);
     }
 
     #[test]
