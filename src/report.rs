@@ -1,9 +1,11 @@
-//! Reports: scores derived from statistics at read time, with the configuration that produced
-//! them, as JSON (`score --json`, `status --json`) and as a compact human table.
+//! Renderings of scores, shared by the commands: JSON (`score --json`, `--per-segment`,
+//! `status --json`) and the human view (`score`, `status`, the demo). The numbers themselves
+//! come from [`crate::metric::scores`].
 
 use serde_json::{json, Map, Value};
 
-use crate::metric::{CorpusStats, Metric, OrderCounts, ScoreConfig, SegmentStats};
+use crate::metric::scores::Report;
+use crate::metric::{BleuScore, CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::RefSet;
 
 /// Printed with every report: what the numbers are and are not.
@@ -28,99 +30,100 @@ pub fn refset_json(name: Option<&str>, refs: &RefSet) -> Value {
     })
 }
 
-fn orders_json(c: &OrderCounts, order: usize) -> Value {
-    json!({ "matches": &c.matches[..order], "hyp": &c.hyp[..order], "ref": &c.reference[..order] })
+fn object(r: &Report) -> Map<String, Value> {
+    match serde_json::to_value(r) {
+        Ok(Value::Object(m)) => m,
+        _ => Map::new(),
+    }
 }
 
-/// Corpus statistics and the scores derived from them, one key per configured metric.
+/// Corpus statistics and the scores derived from them: `segments` and one key per configured
+/// metric.
 pub fn stats_json(stats: &CorpusStats, config: &ScoreConfig) -> Map<String, Value> {
-    let mut m = Map::new();
-    m.insert("segments".into(), json!(stats.segments));
-    for metric in config.metrics.iter() {
-        let v = match metric {
-            Metric::Bleu => serde_json::to_value(stats.bleu.score(config.bleu_order)).unwrap_or(Value::Null),
-            Metric::Chrf => {
-                let s = stats.chrf.score(config.chrf_char_order, 0, config.beta);
-                json!({
-                    "score": s.score, "precision": s.precision, "recall": s.recall, "beta": config.beta,
-                    "char": orders_json(&stats.chrf.char, config.chrf_char_order),
-                })
-            }
-            Metric::ChrfPlusPlus => {
-                let s = stats.chrfpp.score(config.chrf_char_order, config.chrf_word_order, config.beta);
-                json!({
-                    "score": s.score, "precision": s.precision, "recall": s.recall, "beta": config.beta,
-                    "char": orders_json(&stats.chrfpp.char, config.chrf_char_order),
-                    "word": orders_json(&stats.chrfpp.word, config.chrf_word_order),
-                })
-            }
-        };
-        m.insert(metric.name().into(), v);
-    }
-    m
+    object(&Report::corpus(stats, config))
 }
 
 /// One segment's statistics with its sentence-level scores (BLEU smoothed as configured).
 pub fn segment_json(id: &str, s: &SegmentStats, config: &ScoreConfig) -> Value {
     let mut m = Map::new();
     m.insert("id".into(), json!(id));
-    let o = config.bleu_order;
-    for metric in config.metrics.iter() {
-        let v = match metric {
-            Metric::Bleu => json!({
-                "score": s.bleu.sentence_score(o, config.smoothing, config.epsilon),
-                "matches": &s.bleu.matches[..o], "totals": &s.bleu.totals[..o],
-                "hyp_length": s.bleu.hyp_len, "ref_length": s.bleu.ref_len,
-            }),
-            Metric::Chrf => json!({
-                "score": s.chrf.score(config.chrf_char_order, 0, config.beta).score,
-                "ref": s.chrf_ref,
-                "char": orders_json(&s.chrf.char, config.chrf_char_order),
-            }),
-            Metric::ChrfPlusPlus => json!({
-                "score": s.chrfpp.score(config.chrf_char_order, config.chrf_word_order, config.beta).score,
-                "ref": s.chrfpp_ref,
-                "char": orders_json(&s.chrfpp.char, config.chrf_char_order),
-                "word": orders_json(&s.chrfpp.word, config.chrf_word_order),
-            }),
-        };
-        m.insert(metric.name().into(), v);
-    }
+    let mut rest = object(&Report::segment(s, config));
+    rest.shift_remove("segments");
+    m.extend(rest);
     Value::Object(m)
+}
+
+/// Right-aligned cells of equal width, after a row title.
+fn row(indent: &str, title: &str, cells: &[String], width: usize) -> String {
+    let mut line = format!("{indent}  {title:<11}");
+    for c in cells {
+        line += &format!("{c:>width$}");
+    }
+    line
+}
+
+/// The BLEU block: the score, then a table with one column per n-gram order (clipped matches,
+/// hypothesis n-grams, precision), then the brevity penalty with its token counts.
+fn bleu_lines(b: &BleuScore, indent: &str, out: &mut Vec<String>) {
+    out.push(format!("{indent}{:<8}{:>6.2}", "BLEU", b.score));
+    let counts = |v: &[u64]| v.iter().map(u64::to_string).collect::<Vec<_>>();
+    let (orders, matched, candidates) = ((1..=b.matched.len()).map(|n| format!("{n}-gram")).collect::<Vec<_>>(), counts(&b.matched), counts(&b.candidates));
+    let precision: Vec<String> = b.precision.iter().map(|p| format!("{p:.1}%")).collect();
+    let width = 2 + [&orders, &matched, &candidates, &precision].iter().flat_map(|v| v.iter()).map(String::len).max().unwrap_or(0);
+    out.push(row(indent, "", &orders, width));
+    out.push(row(indent, "matched", &matched, width));
+    out.push(row(indent, "candidates", &candidates, width));
+    out.push(row(indent, "precision", &precision, width));
+    out.push(format!(
+        "{indent}  {:<11}{:.4}  from {} hypothesis against {} reference tokens (ratio {:.3})",
+        "brevity", b.brevity, b.tokens.hypothesis, b.tokens.reference, b.tokens.ratio
+    ));
 }
 
 /// Human lines for corpus statistics (no trailing newline), each starting with `indent`.
 pub fn stats_lines(stats: &CorpusStats, config: &ScoreConfig, indent: &str) -> Vec<String> {
+    let r = Report::corpus(stats, config);
     let mut out = Vec::new();
-    for metric in config.metrics.iter() {
-        match metric {
-            Metric::Bleu => {
-                let b = stats.bleu.score(config.bleu_order);
-                let p: Vec<String> = b.precisions.iter().map(|p| format!("{p:.1}")).collect();
-                out.push(format!(
-                    "{indent}BLEU    {:6.2}   n-gram precision {}   brevity {:.3} (hyp {} / ref {} tokens)",
-                    b.score,
-                    p.join(" / "),
-                    b.brevity_penalty,
-                    b.hyp_length,
-                    b.ref_length
-                ));
-            }
-            Metric::Chrf => {
-                let c = stats.chrf.score(config.chrf_char_order, 0, config.beta);
-                out.push(format!(
-                    "{indent}chrF    {:6.2}   precision {:.1}   recall {:.1}   (character 1-{}, beta {})",
-                    c.score, c.precision, c.recall, config.chrf_char_order, config.beta
-                ));
-            }
-            Metric::ChrfPlusPlus => {
-                let c = stats.chrfpp.score(config.chrf_char_order, config.chrf_word_order, config.beta);
-                out.push(format!(
-                    "{indent}chrF++  {:6.2}   precision {:.1}   recall {:.1}   (character 1-{}, word 1-{}, beta {})",
-                    c.score, c.precision, c.recall, config.chrf_char_order, config.chrf_word_order, config.beta
-                ));
-            }
-        }
+    if let Some(b) = &r.bleu {
+        bleu_lines(b, indent, &mut out);
+    }
+    for c in &r.chrf {
+        let Some(p) = config.chrf_params(c.metric) else { continue };
+        let words = if p.words > 0 { format!(" + word 1..{}", p.words) } else { String::new() };
+        out.push(format!(
+            "{indent}{:<8}{:>6.2}   over char 1..{}{words} n-grams, beta {}: mean precision {:.1}%, mean recall {:.1}%",
+            c.metric.title(),
+            c.score,
+            p.chars,
+            p.beta,
+            c.precision,
+            c.recall
+        ));
     }
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_human_view_has_a_column_per_order_and_the_brevity_counts() {
+        let mut st = CorpusStats { segments: 2, ..Default::default() };
+        st.bleu.matches[..4].copy_from_slice(&[9, 6, 4, 2]);
+        st.bleu.totals[..4].copy_from_slice(&[10, 8, 6, 4]);
+        (st.bleu.hyp_len, st.bleu.ref_len) = (10, 11);
+        let c: ScoreConfig = "bleu chrf++".parse().unwrap();
+        let lines = stats_lines(&st, &c, "");
+        assert!(lines[0].starts_with("BLEU"), "{lines:?}");
+        assert!(lines[1].contains("1-gram") && lines[1].contains("4-gram"), "{lines:?}");
+        assert!(lines[2].contains("matched") && lines[2].trim_end().ends_with('2'), "{lines:?}");
+        assert!(lines[4].contains("90.0%") && lines[4].contains("50.0%"), "{lines:?}");
+        // exp(1 - 11/10) = 0.9048...
+        assert!(lines[5].contains("0.9048") && lines[5].contains("10 hypothesis against 11 reference tokens"), "{lines:?}");
+        assert!(lines[6].starts_with("chrF++") && lines[6].contains("word 1..2"), "{lines:?}");
+        let j = Value::Object(stats_json(&st, &c));
+        assert_eq!(j["bleu"]["candidates"], json!([10, 8, 6, 4]));
+        assert_eq!(j["bleu"]["tokens"], json!({"hypothesis": 10, "reference": 11, "ratio": 10.0 / 11.0}));
+    }
 }

@@ -238,7 +238,7 @@ async fn api_bad_inputs_get_clear_statuses_and_change_nothing() {
         let cum = rep.cumulative.unwrap();
         // Segment 2's reference has no token: the effective reference length is 0 + 0 + 5
         // ("Ebbe kommt um drei ." of segment 3).
-        assert_eq!((cum.segments, cum.bleu.unwrap().ref_length), (3, 5), "{what}");
+        assert_eq!((cum.segments, cum.bleu.unwrap().tokens.unwrap().reference), (3, 5), "{what}");
         sessions.close(pb::CloseSessionRequest { name: "blank-probe".into() }).await.unwrap();
         refsets.delete(pb::DeleteRefSetRequest { name: "blank".into() }).await.unwrap();
         assert_eq!(snapshot(&ch).await, before, "{what}: load, score, close and delete leave the rest as it was");
@@ -455,14 +455,14 @@ fn score_command_bad_inputs() {
     std::fs::write(dir.join("big-ref.txt"), format!("{big_ref}\nEbbe kommt um drei.\n")).unwrap();
     std::fs::write(dir.join("big-hyp.txt"), "Der Leuchtturm blinkt zweimal.\nEbbe kommt um drei.\n").unwrap();
     let started = Instant::now();
-    let out = mtgauge(&["score", "--ref", &p(&dir, "big-ref.txt"), "--hyp", &p(&dir, "big-hyp.txt"), "--json", "--metrics", "bleu,chrf"], Duration::from_secs(60));
+    let out = mtgauge(&["score", "--ref", &p(&dir, "big-ref.txt"), "--hyp", &p(&dir, "big-hyp.txt"), "--json", "--metric", "bleu", "--metric", "chrf"], Duration::from_secs(60));
     assert!(out.status.success(), "10 MiB reference line: {}", String::from_utf8_lossy(&out.stderr));
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     // NIST tokens: 9 per repetition ("zweimal," and "treibt." split off their punctuation), plus
     // the 5 of line 2's reference ("Ebbe kommt um drei .").
-    assert_eq!(v["bleu"]["ref_length"].as_u64(), Some(reps as u64 * 9 + 5), "{}", v["bleu"]);
+    assert_eq!(v["bleu"]["tokens"]["reference"].as_u64(), Some(reps as u64 * 9 + 5), "{}", v["bleu"]);
     assert_eq!(v["segments"], 2);
-    table.add(format!("score: reference line of {} bytes", big_ref.len()), format!("exit 0 in {:.1} s: scored, ref_length {} tokens", started.elapsed().as_secs_f64(), v["bleu"]["ref_length"]));
+    table.add(format!("score: reference line of {} bytes", big_ref.len()), format!("exit 0 in {:.1} s: scored, reference length {} tokens", started.elapsed().as_secs_f64(), v["bleu"]["tokens"]["reference"]));
     table.print();
 }
 

@@ -151,11 +151,11 @@ fn score_json_fields_and_values() {
     //   "mind the gap" (ref1) -> 1 of 3; 4-grams -> 0 of 2; c = 5, lengths 3 and 5 -> r = 5.
     // Corpus: matches [9, 6, 4, 2], totals [10, 8, 6, 4], c = 10, r = 11.
     let b = &v["bleu"];
-    assert_eq!(u64s(&b["matches"]), [9, 6, 4, 2]);
-    assert_eq!(u64s(&b["totals"]), [10, 8, 6, 4]);
-    assert_eq!(b["hyp_length"], 10);
-    assert_eq!(b["ref_length"], 11);
-    let precisions: Vec<f64> = b["precisions"].as_array().expect("precisions").iter().map(f64_of).collect();
+    assert_eq!(u64s(&b["matched"]), [9, 6, 4, 2]);
+    assert_eq!(u64s(&b["candidates"]), [10, 8, 6, 4]);
+    assert_eq!(b["tokens"]["hypothesis"], 10);
+    assert_eq!(b["tokens"]["reference"], 11);
+    let precisions: Vec<f64> = b["precision"].as_array().expect("precision").iter().map(f64_of).collect();
     assert_eq!(precisions.len(), 4);
     for (p, want) in precisions.iter().zip([90.0, 75.0, 200.0 / 3.0, 50.0]) {
         assert!(close(*p, want), "precisions {precisions:?}");
@@ -163,14 +163,14 @@ fn score_json_fields_and_values() {
     // BP = exp(1 - r/c) = exp(1 - 11/10) = exp(-0.1) (Papineni et al. 2002);
     // BLEU = 100 * BP * (9/10 * 6/8 * 4/6 * 2/4)^(1/4) = 100 * exp(-0.1) * 0.225^(1/4) = 62.32...
     let bp = (-0.1f64).exp();
-    assert!(close(f64_of(&b["brevity_penalty"]), bp), "{}", b["brevity_penalty"]);
+    assert!(close(f64_of(&b["brevity"]), bp), "{}", b["brevity"]);
     let bleu = 100.0 * bp * 0.225f64.powf(0.25);
     assert!(close(f64_of(&b["score"]), bleu), "{} vs {bleu}", b["score"]);
     assert!((bleu - 62.32).abs() < 0.01);
 
     // chrF: the score is the F-beta of the reported per-order counts (character orders 1-6).
     let ch = &v["chrf"];
-    let (m, h, r) = (u64s(&ch["char"]["matches"]), u64s(&ch["char"]["hyp"]), u64s(&ch["char"]["ref"]));
+    let (m, h, r) = (u64s(&ch["chars"]["matched"]), u64s(&ch["chars"]["candidates"]), u64s(&ch["chars"]["reference"]));
     assert_eq!((m.len(), h.len(), r.len()), (6, 6, 6));
     // Non-space characters of the hypotheses: 19 + 16 = 35; order n has 35 - 2 (n - 1) n-grams.
     assert_eq!(h, [35, 33, 31, 29, 27, 25]);
@@ -179,21 +179,18 @@ fn score_json_fields_and_values() {
     let f = 100.0 * 5.0 * p * rc / (4.0 * p + rc); // beta = 2: (1 + 4) P R / (4 P + R)
     assert!(close(f64_of(&ch["score"]), f), "{} vs {f}", ch["score"]);
     assert!(f > 0.0 && f < 100.0);
-    assert_eq!(ch["beta"], 2.0);
+    assert!(ch.get("words").is_none() && ch.get("chosen").is_none(), "corpus chrF has no word orders and no chosen reference");
     assert!(v.get("chrf++").is_none(), "chrF++ is not a default metric");
 
     // The configuration travels with the scores.
     let cfg = &v["config"];
-    assert_eq!(cfg["metrics"], serde_json::json!(["bleu", "chrf"]));
+    assert_eq!(
+        cfg["metrics"],
+        serde_json::json!({"bleu": {"order": 4, "ref-length": "closest", "smoothing": "epsilon", "epsilon": 0.1},
+                           "chrf": {"chars": 6, "words": 0, "beta": 2.0}})
+    );
     assert_eq!(cfg["tokenizer"], "nist");
-    assert_eq!(cfg["lowercase"], false);
-    assert_eq!(cfg["bleu_order"], 4);
-    assert_eq!(cfg["ref_length"], "closest");
-    assert_eq!(cfg["smoothing"], "epsilon");
-    assert_eq!(cfg["epsilon"], 0.1);
-    assert_eq!(cfg["chrf_char_order"], 6);
-    assert_eq!(cfg["chrf_word_order"], 2);
-    assert_eq!(cfg["beta"], 2.0);
+    assert_eq!(cfg["caseless"], false);
     assert_eq!(cfg["version"], env!("CARGO_PKG_VERSION"));
 
     let rs = &v["refset"];
@@ -208,40 +205,36 @@ fn score_json_records_non_default_configuration() {
     let c = corpus("config");
     let v = json_ok(
         &[
-            "score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp, "--json", "--tokenize", "whitespace", "--lowercase",
-            "--bleu-order", "3", "--ref-length", "shortest", "--smoothing", "plus-one", "--epsilon", "0.25",
-            "--chrf-char-order", "4", "--chrf-word-order", "1", "--chrf-beta", "1", "--metrics", "bleu,chrf++",
+            "score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp, "--json", "--tokenizer", "whitespace", "--caseless",
+            "--metric", "bleu:order=3,ref-length=shortest,smoothing=plus-one,epsilon=0.25", "--metric", "chrf++:chars=4,words=1,beta=1",
         ],
         None,
     );
     let cfg = &v["config"];
-    assert_eq!(cfg["metrics"], serde_json::json!(["bleu", "chrf++"]));
+    assert_eq!(
+        cfg["metrics"],
+        serde_json::json!({"bleu": {"order": 3, "ref-length": "shortest", "smoothing": "plus-one", "epsilon": 0.25},
+                           "chrf++": {"chars": 4, "words": 1, "beta": 1.0}})
+    );
     assert_eq!(cfg["tokenizer"], "whitespace");
-    assert_eq!(cfg["lowercase"], true);
-    assert_eq!(cfg["bleu_order"], 3);
-    assert_eq!(cfg["ref_length"], "shortest");
-    assert_eq!(cfg["smoothing"], "plus-one");
-    assert_eq!(cfg["epsilon"], 0.25);
-    assert_eq!(cfg["chrf_char_order"], 4);
-    assert_eq!(cfg["chrf_word_order"], 1);
-    assert_eq!(cfg["beta"], 1.0);
+    assert_eq!(cfg["caseless"], true);
     // The outputs follow the configuration: three BLEU orders, shortest lengths (6 and 3 -> 9),
     // chrF++ with 4 character and 1 word order, no plain chrF.
     let b = &v["bleu"];
-    assert_eq!(u64s(&b["matches"]), [9, 6, 4]);
-    assert_eq!(b["precisions"].as_array().map(Vec::len), Some(3));
-    assert_eq!(b["ref_length"], 9);
+    assert_eq!(u64s(&b["matched"]), [9, 6, 4]);
+    assert_eq!(b["precision"].as_array().map(Vec::len), Some(3));
+    assert_eq!(b["tokens"]["reference"], 9);
     assert!(v.get("chrf").is_none());
     let pp = &v["chrf++"];
-    assert_eq!(u64s(&pp["char"]["hyp"]).len(), 4);
+    assert_eq!(u64s(&pp["chars"]["candidates"]).len(), 4);
     // Words of the hypotheses: 5 + 5.
-    assert_eq!(u64s(&pp["word"]["hyp"]), [10]);
+    assert_eq!(u64s(&pp["words"]["candidates"]), [10]);
 }
 
 #[test]
 fn stdin_hypotheses_equal_the_file() {
     let c = corpus("stdin");
-    let args = ["score", "--ref", &c.r1, "--ref", &c.r2, "--json", "--metrics", "bleu,chrf,chrf++", "--hyp"];
+    let args = ["score", "--ref", &c.r1, "--ref", &c.r2, "--json", "--metric", "bleu", "--metric", "chrf", "--metric", "chrf++", "--hyp"];
     let from_file = json_ok(&[&args[..], &[c.hyp.as_str()]].concat(), None);
     let from_stdin = json_ok(&[&args[..], &["-"]].concat(), Some(lines(HYP).as_bytes()));
     assert_eq!(from_file, from_stdin);
@@ -287,7 +280,7 @@ fn jsonl_record(id: Value, source: Option<&str>, refs: &[&str]) -> String {
 #[test]
 fn jsonl_references_give_the_same_statistics_as_plain_files() {
     let c = corpus("jsonl");
-    let metrics = ["--metrics", "bleu,chrf,chrf++", "--json"];
+    let metrics = ["--metric", "bleu", "--metric", "chrf", "--metric", "chrf++", "--json"];
     let plain = json_ok(&[&["score", "--ref", &c.r1, "--ref", &c.r2, "--hyp", &c.hyp][..], &metrics].concat(), None);
 
     // With sources and string ids: the same statistics, a different reference set digest.
@@ -364,13 +357,13 @@ fn per_segment_lines_sum_to_the_corpus() {
     let seg_file = dir.path("segments.jsonl");
     let corpus = json_ok(
         &[
-            "score", "--ref", &r1, "--ref", &r2, "--hyp", &hyp, "--json", "--metrics", "bleu,chrf,chrf++", "--per-segment",
+            "score", "--ref", &r1, "--ref", &r2, "--hyp", &hyp, "--json", "--metric", "bleu", "--metric", "chrf", "--metric", "chrf++", "--per-segment",
             &seg_file,
         ],
         None,
     );
     // Without --per-segment the corpus is summed without keeping segments: the same output.
-    let summed = json_ok(&["score", "--ref", &r1, "--ref", &r2, "--hyp", &hyp, "--json", "--metrics", "bleu,chrf,chrf++"], None);
+    let summed = json_ok(&["score", "--ref", &r1, "--ref", &r2, "--hyp", &hyp, "--json", "--metric", "bleu", "--metric", "chrf", "--metric", "chrf++"], None);
     assert_eq!(summed, corpus, "the corpus with and without --per-segment");
     let written = std::fs::read_to_string(&seg_file).expect("per-segment file written");
     let segs: Vec<Value> = written.lines().map(|l| serde_json::from_str(l).expect("one JSON object per line")).collect();
@@ -382,19 +375,19 @@ fn per_segment_lines_sum_to_the_corpus() {
     let (mut bm, mut bt, mut hl, mut rl) = (Vec::new(), Vec::new(), 0, 0);
     let mut sums: Vec<Vec<u64>> = vec![Vec::new(); 8];
     for s in &segs {
-        add_into(&mut bm, &s["bleu"]["matches"]);
-        add_into(&mut bt, &s["bleu"]["totals"]);
-        hl += s["bleu"]["hyp_length"].as_u64().expect("hyp_length");
-        rl += s["bleu"]["ref_length"].as_u64().expect("ref_length");
+        add_into(&mut bm, &s["bleu"]["matched"]);
+        add_into(&mut bt, &s["bleu"]["candidates"]);
+        hl += s["bleu"]["tokens"]["hypothesis"].as_u64().expect("hypothesis tokens");
+        rl += s["bleu"]["tokens"]["reference"].as_u64().expect("reference tokens");
         for (k, (metric, kind, field)) in [
-            ("chrf", "char", "matches"),
-            ("chrf", "char", "hyp"),
-            ("chrf", "char", "ref"),
-            ("chrf++", "char", "matches"),
-            ("chrf++", "char", "hyp"),
-            ("chrf++", "char", "ref"),
-            ("chrf++", "word", "matches"),
-            ("chrf++", "word", "ref"),
+            ("chrf", "chars", "matched"),
+            ("chrf", "chars", "candidates"),
+            ("chrf", "chars", "reference"),
+            ("chrf++", "chars", "matched"),
+            ("chrf++", "chars", "candidates"),
+            ("chrf++", "chars", "reference"),
+            ("chrf++", "words", "matched"),
+            ("chrf++", "words", "reference"),
         ]
         .into_iter()
         .enumerate()
@@ -405,25 +398,25 @@ fn per_segment_lines_sum_to_the_corpus() {
         assert!((0.0..=100.0).contains(&sb));
     }
     let b = &corpus["bleu"];
-    assert_eq!(bm, u64s(&b["matches"]));
-    assert_eq!(bt, u64s(&b["totals"]));
-    assert_eq!(hl, b["hyp_length"].as_u64().unwrap());
-    assert_eq!(rl, b["ref_length"].as_u64().unwrap());
-    assert_eq!(sums[0], u64s(&corpus["chrf"]["char"]["matches"]));
-    assert_eq!(sums[1], u64s(&corpus["chrf"]["char"]["hyp"]));
-    assert_eq!(sums[2], u64s(&corpus["chrf"]["char"]["ref"]));
-    assert_eq!(sums[3], u64s(&corpus["chrf++"]["char"]["matches"]));
-    assert_eq!(sums[4], u64s(&corpus["chrf++"]["char"]["hyp"]));
-    assert_eq!(sums[5], u64s(&corpus["chrf++"]["char"]["ref"]));
-    assert_eq!(sums[6], u64s(&corpus["chrf++"]["word"]["matches"]));
-    assert_eq!(sums[7], u64s(&corpus["chrf++"]["word"]["ref"]));
+    assert_eq!(bm, u64s(&b["matched"]));
+    assert_eq!(bt, u64s(&b["candidates"]));
+    assert_eq!(hl, b["tokens"]["hypothesis"].as_u64().unwrap());
+    assert_eq!(rl, b["tokens"]["reference"].as_u64().unwrap());
+    assert_eq!(sums[0], u64s(&corpus["chrf"]["chars"]["matched"]));
+    assert_eq!(sums[1], u64s(&corpus["chrf"]["chars"]["candidates"]));
+    assert_eq!(sums[2], u64s(&corpus["chrf"]["chars"]["reference"]));
+    assert_eq!(sums[3], u64s(&corpus["chrf++"]["chars"]["matched"]));
+    assert_eq!(sums[4], u64s(&corpus["chrf++"]["chars"]["candidates"]));
+    assert_eq!(sums[5], u64s(&corpus["chrf++"]["chars"]["reference"]));
+    assert_eq!(sums[6], u64s(&corpus["chrf++"]["words"]["matched"]));
+    assert_eq!(sums[7], u64s(&corpus["chrf++"]["words"]["reference"]));
 
     // Spot checks by hand. Segment 3 is empty: nothing counted on the hypothesis side, sentence
     // scores 0; its effective reference length is the closer of 4 and 2 tokens to 0 -> 2.
     let s3 = &segs[2];
-    assert_eq!(u64s(&s3["bleu"]["totals"]), [0, 0, 0, 0]);
-    assert_eq!(s3["bleu"]["hyp_length"], 0);
-    assert_eq!(s3["bleu"]["ref_length"], 2);
+    assert_eq!(u64s(&s3["bleu"]["candidates"]), [0, 0, 0, 0]);
+    assert_eq!(s3["bleu"]["tokens"]["hypothesis"], 0);
+    assert_eq!(s3["bleu"]["tokens"]["reference"], 2);
     assert_eq!(f64_of(&s3["bleu"]["score"]), 0.0);
     assert_eq!(f64_of(&s3["chrf"]["score"]), 0.0);
     // Segment 5 equals its second reference: chrF and chrF++ pick reference index 1 and score
@@ -431,18 +424,18 @@ fn per_segment_lines_sum_to_the_corpus() {
     // Sentence BLEU (src/metric/bleu.rs: denominator at least 1, epsilon 0.1 for a zero count)
     // is 100 * (1 * 1 * 1 * 0.1/1)^(1/4) = 56.23...
     let s5 = &segs[4];
-    assert_eq!(s5["chrf"]["ref"], 1);
-    assert_eq!(s5["chrf++"]["ref"], 1);
+    assert_eq!(s5["chrf"]["chosen"], 1);
+    assert_eq!(s5["chrf++"]["chosen"], 1);
     assert!(close(f64_of(&s5["chrf"]["score"]), 100.0));
     assert!(close(f64_of(&s5["chrf++"]["score"]), 100.0));
-    assert_eq!(u64s(&s5["bleu"]["matches"]), [3, 2, 1, 0]);
-    assert_eq!(u64s(&s5["bleu"]["totals"]), [3, 2, 1, 0]);
-    assert_eq!(s5["bleu"]["ref_length"], 3);
+    assert_eq!(u64s(&s5["bleu"]["matched"]), [3, 2, 1, 0]);
+    assert_eq!(u64s(&s5["bleu"]["candidates"]), [3, 2, 1, 0]);
+    assert_eq!(s5["bleu"]["tokens"]["reference"], 3);
     assert!(close(f64_of(&s5["bleu"]["score"]), 100.0 * 0.1f64.powf(0.25)), "{}", s5["bleu"]["score"]);
     // Segment 1: all n-grams in ref1 (5 tokens, matches 5,4,3,2), r = 6: the sentence score is
     // unsmoothed 100 * exp(1 - 6/5) (Papineni et al. 2002 brevity penalty).
     let s1 = &segs[0];
-    assert_eq!(u64s(&s1["bleu"]["matches"]), [5, 4, 3, 2]);
+    assert_eq!(u64s(&s1["bleu"]["matched"]), [5, 4, 3, 2]);
     assert!(close(f64_of(&s1["bleu"]["score"]), 100.0 * (1.0f64 - 6.0 / 5.0).exp()));
 }
 
@@ -523,10 +516,12 @@ fn malformed_jsonl() {
 #[test]
 fn bad_option_values_fail_like_input_errors() {
     let c = corpus("badopt");
-    let out = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--bleu-order", "0"]);
-    assert_fails(&out, &["bleu order"]);
-    let out = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--chrf-beta", "0"]);
-    assert_fails(&out, &["beta"]);
+    let out = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--metric", "bleu:order=0"]);
+    assert_fails(&out, &["bleu:order must be between 1 and 8, got 0"]);
+    let out = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--metric", "chrf:beta=0"]);
+    assert_fails(&out, &["chrf:beta must be a positive number"]);
+    let out = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--metric", "bleu:chars=3"]);
+    assert_fails(&out, &["unknown key 'chars' for bleu", "valid keys: order, ref-length, smoothing, epsilon"]);
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -585,8 +580,8 @@ fn help_mentions_the_commands_and_flags() {
     assert!(out.status.success(), "{}", text(&out.stderr));
     let s = text(&out.stdout);
     for flag in [
-        "--ref", "--hyp", "--json", "--per-segment", "--threads", "--metrics", "--tokenize", "--lowercase", "--bleu-order",
-        "--ref-length", "--smoothing", "--epsilon", "--chrf-char-order", "--chrf-word-order", "--chrf-beta", "--ref-format",
+        "--ref", "--hyp", "--json", "--per-segment", "--threads", "--metric", "--tokenizer", "--caseless", "--ref-format",
+        "order=N", "ref-length=closest|shortest", "smoothing=", "epsilon=X", "chars=N", "words=N", "beta=B",
     ] {
         assert!(s.contains(flag), "score --help lacks {flag}");
     }

@@ -16,12 +16,12 @@ use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
 use mtgauge::refs::compiled::{Compiled, Scratch};
 use mtgauge::rng::SplitMix64;
-use mtgauge::server::convert::{config_to_pb, stats_from_pb};
+use mtgauge::pb::convert::{config_to_pb, stats_from_pb};
 
 const PRODUCERS: usize = 32;
 
 fn config() -> ScoreConfig {
-    ScoreConfig { metrics: "bleu,chrf,chrf++".parse().unwrap(), ..Default::default() }
+    "bleu chrf chrf++".parse().unwrap()
 }
 
 /// Each producer's batches: all demo items (3 systems x 300 segments), twice, dealt out.
@@ -207,9 +207,9 @@ async fn restart_restores_sessions_refsets_and_windows() {
     let scrape = again.scrape();
     let scored = after.cumulative.as_ref().unwrap().segments;
     assert!(scrape.lines().any(|l| l == format!("mtgauge_segments_total{{session=\"keep\",outcome=\"scored\"}} {scored}")), "{scrape}");
-    let m1 = after.cumulative.as_ref().unwrap().bleu.as_ref().unwrap().matches[0];
+    let m1 = after.cumulative.as_ref().unwrap().bleu.as_ref().unwrap().matched[0];
     assert!(scrape.lines().any(|l| l == format!("mtgauge_bleu_matches_total{{session=\"keep\",order=\"1\"}} {m1}")), "{scrape}");
-    assert!(scrape.lines().any(|l| l.starts_with("mtgauge_session_info{") && l.contains("session=\"keep\"") && l.contains("model=\"v7\"") && l.contains("config=\"metrics=")), "{scrape}");
+    assert!(scrape.lines().any(|l| l.starts_with("mtgauge_session_info{") && l.contains("session=\"keep\"") && l.contains("model=\"v7\"") && l.contains("config=\"tokenizer=nist caseless=no bleu:order=4,")), "{scrape}");
     let sets = pb::ref_sets_client::RefSetsClient::new(ch.clone()).list(pb::ListRefSetsRequest {}).await.unwrap().into_inner();
     assert_eq!(sets.refsets.len(), 1, "the reference set is rebuilt from the store, without its files");
 }

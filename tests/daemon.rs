@@ -12,11 +12,11 @@ use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
 use mtgauge::refs::compiled::{Compiled, Scratch};
 use mtgauge::rng::SplitMix64;
-use mtgauge::server::convert::{config_to_pb, stats_from_pb};
+use mtgauge::pb::convert::{config_to_pb, stats_from_pb};
 use tonic::Code;
 
 fn all_metrics() -> ScoreConfig {
-    ScoreConfig { metrics: "bleu,chrf,chrf++".parse().unwrap(), ..Default::default() }
+    "bleu chrf chrf++".parse().unwrap()
 }
 
 /// Every (segment index, hypothesis) of all demo systems: 900 items over 300 segments.
@@ -106,7 +106,7 @@ async fn sixteen_streams(by_source: bool) {
                 assert_eq!(ack.sequence, count as u64 + 1, "acks in order");
                 if p == 0 {
                     assert_eq!(ack.segment_scores.len() as u32, ack.scored, "segment scores on request");
-                    assert!(ack.segment_scores.iter().all(|s| s.bleu.is_some_and(|b| (0.0..=100.0).contains(&b))));
+                    assert!(ack.segment_scores.iter().all(|s| s.scores.get("bleu").is_some_and(|b| (0.0..=100.0).contains(b))));
                 }
                 scored += ack.scored;
                 count += 1;
@@ -128,8 +128,8 @@ async fn sixteen_streams(by_source: bool) {
     assert_eq!(got.segments, 900);
     let recent = stats_from_pb(report.recent.as_ref().unwrap());
     assert_eq!(recent.segments, 50, "window of 50");
-    let s = report.cumulative_scores.unwrap();
-    assert!((s.bleu.unwrap() - want.bleu.score(4).score).abs() < 1e-9);
+    let s = report.cumulative.as_ref().unwrap();
+    assert!((s.bleu.as_ref().unwrap().score - want.bleu.score(4).score).abs() < 1e-9);
 
     // The Prometheus counters carry the same integers.
     let scrape = server.scrape();
@@ -144,8 +144,8 @@ async fn sixteen_streams(by_source: bool) {
     }
     assert_eq!(value("mtgauge_hypothesis_tokens_total", "session=\"probe\""), want.bleu.hyp_len);
     assert_eq!(value("mtgauge_reference_tokens_total", "session=\"probe\""), want.bleu.ref_len);
-    assert_eq!(value("mtgauge_chrf_matches_total", "session=\"probe\",metric=\"chrf\",kind=\"char\",order=\"6\""), want.chrf.char.matches[5]);
-    assert_eq!(value("mtgauge_chrf_reference_ngrams_total", "session=\"probe\",metric=\"chrf++\",kind=\"word\",order=\"2\""), want.chrfpp.word.reference[1]);
+    assert_eq!(value("mtgauge_chrf_matches_total", "session=\"probe\",metric=\"chrf\",kind=\"chars\",order=\"6\""), want.chrf.char.matches[5]);
+    assert_eq!(value("mtgauge_chrf_reference_ngrams_total", "session=\"probe\",metric=\"chrf++\",kind=\"words\",order=\"2\""), want.chrfpp.word.reference[1]);
     promtool_check(&scrape);
 }
 

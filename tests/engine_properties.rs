@@ -10,7 +10,8 @@ use std::sync::atomic::AtomicUsize;
 use std::sync::Arc;
 
 use mtgauge::metric::{
-    BleuStats, ChrfStats, CorpusStats, MetricSet, OrderCounts, RefLength, ScoreConfig, SegmentStats, MAX_BLEU_ORDER,
+    BleuParams, BleuStats, ChrfParams, ChrfStats, CorpusStats, Metrics, OrderCounts, RefLength, ScoreConfig, SegmentStats, Smoothing,
+    MAX_BLEU_ORDER,
 };
 use mtgauge::refs::compiled::{Compiled, Scratch, SCORE_CHUNK};
 use mtgauge::refs::{RefSet, SegmentInput};
@@ -29,10 +30,53 @@ struct Seg {
     hyp: String,
 }
 
-const ALL_METRICS: MetricSet = MetricSet { bleu: true, chrf: true, chrfpp: true };
+/// The configuration of these tests in one flat record: all three metrics, chrF and chrF++
+/// sharing their character order and beta (chrF without word orders), as the naive reference
+/// implementations below take it.
+#[derive(Debug, Clone, Copy)]
+struct Flat {
+    tokenizer: Tokenizer,
+    lowercase: bool,
+    bleu_order: usize,
+    ref_length: RefLength,
+    smoothing: Smoothing,
+    epsilon: f64,
+    chrf_char_order: usize,
+    chrf_word_order: usize,
+    beta: f64,
+}
 
-fn config(tokenizer: Tokenizer) -> ScoreConfig {
-    ScoreConfig { metrics: ALL_METRICS, tokenizer, ..Default::default() }
+impl Default for Flat {
+    fn default() -> Self {
+        let (b, c) = (BleuParams::default(), ChrfParams::default_for(mtgauge::metric::Metric::ChrfPlusPlus));
+        Flat {
+            tokenizer: Tokenizer::Nist,
+            lowercase: false,
+            bleu_order: b.order,
+            ref_length: b.ref_length,
+            smoothing: b.smoothing,
+            epsilon: b.epsilon,
+            chrf_char_order: c.chars,
+            chrf_word_order: c.words,
+            beta: c.beta,
+        }
+    }
+}
+
+impl Flat {
+    /// The engine's configuration.
+    fn build(&self) -> ScoreConfig {
+        let bleu = BleuParams { order: self.bleu_order, ref_length: self.ref_length, smoothing: self.smoothing, epsilon: self.epsilon };
+        let chrf = |words| ChrfParams { chars: self.chrf_char_order, words, beta: self.beta };
+        let metrics = Metrics { bleu: Some(bleu), chrf: Some(chrf(0)), chrfpp: Some(chrf(self.chrf_word_order)) };
+        let c = ScoreConfig { tokenizer: self.tokenizer, caseless: self.lowercase, metrics };
+        c.validate().expect("valid test configuration");
+        c
+    }
+}
+
+fn config(tokenizer: Tokenizer) -> Flat {
+    Flat { tokenizer, ..Default::default() }
 }
 
 fn refset(segs: &[Seg]) -> Arc<RefSet> {
@@ -43,9 +87,8 @@ fn refset(segs: &[Seg]) -> Arc<RefSet> {
     Arc::new(RefSet::new(inputs).expect("valid reference set"))
 }
 
-fn compile(segs: &[Seg], cfg: ScoreConfig) -> Compiled {
-    cfg.validate().expect("valid test configuration");
-    Compiled::build(refset(segs), cfg)
+fn compile(segs: &[Seg], cfg: Flat) -> Compiled {
+    Compiled::build(refset(segs), cfg.build())
 }
 
 fn hyps(segs: &[Seg]) -> Vec<&str> {
@@ -53,7 +96,7 @@ fn hyps(segs: &[Seg]) -> Vec<&str> {
 }
 
 /// Per-segment statistics of `segs` under `cfg` (one thread).
-fn score(segs: &[Seg], cfg: ScoreConfig) -> Vec<SegmentStats> {
+fn score(segs: &[Seg], cfg: Flat) -> Vec<SegmentStats> {
     compile(segs, cfg).score_aligned(&hyps(segs), 1, &AtomicUsize::new(0))
 }
 
@@ -66,7 +109,7 @@ fn corpus(stats: &[SegmentStats]) -> CorpusStats {
 }
 
 /// The three corpus scores of `c` under `cfg`, in the order BLEU, chrF, chrF++.
-fn corpus_scores(c: &CorpusStats, cfg: &ScoreConfig) -> [f64; 3] {
+fn corpus_scores(c: &CorpusStats, cfg: &Flat) -> [f64; 3] {
     [
         c.bleu.score(cfg.bleu_order).score,
         c.chrf.score(cfg.chrf_char_order, 0, cfg.beta).score,
@@ -74,7 +117,7 @@ fn corpus_scores(c: &CorpusStats, cfg: &ScoreConfig) -> [f64; 3] {
     ]
 }
 
-fn one_segment(refs: &[&str], hyp: &str, cfg: ScoreConfig) -> SegmentStats {
+fn one_segment(refs: &[&str], hyp: &str, cfg: Flat) -> SegmentStats {
     let seg = Seg { refs: refs.iter().map(|r| r.to_string()).collect(), hyp: hyp.to_owned() };
     score(&[seg], cfg)[0]
 }
@@ -107,7 +150,7 @@ fn words(text: &str) -> Vec<String> {
     text.split(is_space).filter(|w| !w.is_empty()).map(str::to_owned).collect()
 }
 
-fn naive_bleu(refs: &[String], hyp: &str, cfg: &ScoreConfig) -> BleuStats {
+fn naive_bleu(refs: &[String], hyp: &str, cfg: &Flat) -> BleuStats {
     let h = words(&lower(hyp, cfg.lowercase));
     let rs: Vec<Vec<String>> = refs.iter().map(|r| words(&lower(r, cfg.lowercase))).collect();
     let mut st = BleuStats::default();
@@ -144,7 +187,7 @@ fn naive_orders<T: Hash + Eq + Clone>(h: &[T], r: &[T], orders: usize) -> OrderC
 }
 
 /// (chrF stats, chosen ref, chrF++ stats, chosen ref).
-fn naive_chrf(refs: &[String], hyp: &str, cfg: &ScoreConfig) -> (ChrfStats, u32, ChrfStats, u32) {
+fn naive_chrf(refs: &[String], hyp: &str, cfg: &Flat) -> (ChrfStats, u32, ChrfStats, u32) {
     let chars = |t: &str| -> Vec<char> { lower(t, cfg.lowercase).chars().filter(|&c| !is_space(c)).collect() };
     let (hc, hw) = (chars(hyp), words(&lower(hyp, cfg.lowercase)));
     let mut best = (f64::NEG_INFINITY, ChrfStats::default(), 0u32);
@@ -166,7 +209,7 @@ fn naive_chrf(refs: &[String], hyp: &str, cfg: &ScoreConfig) -> (ChrfStats, u32,
     (best.1, best.2, best_pp.1, best_pp.2)
 }
 
-fn naive_segment(seg: &Seg, cfg: &ScoreConfig) -> SegmentStats {
+fn naive_segment(seg: &Seg, cfg: &Flat) -> SegmentStats {
     let (chrf, chrf_ref, chrfpp, chrfpp_ref) = naive_chrf(&seg.refs, &seg.hyp, cfg);
     SegmentStats { bleu: naive_bleu(&seg.refs, &seg.hyp, cfg), chrf, chrf_ref, chrfpp, chrfpp_ref }
 }
@@ -224,7 +267,7 @@ fn any_tokenizer() -> impl Strategy<Value = Tokenizer> {
 }
 
 /// A random valid configuration (all metrics, every order range, both length rules).
-fn any_config(tokenizer: impl Strategy<Value = Tokenizer>) -> impl Strategy<Value = ScoreConfig> {
+fn any_config(tokenizer: impl Strategy<Value = Tokenizer>) -> impl Strategy<Value = Flat> {
     (
         tokenizer,
         any::<bool>(),
@@ -234,8 +277,7 @@ fn any_config(tokenizer: impl Strategy<Value = Tokenizer>) -> impl Strategy<Valu
         1usize..=4,
         select(vec![0.5, 1.0, 2.0, 3.0]),
     )
-        .prop_map(|(tokenizer, lowercase, bleu_order, ref_length, chrf_char_order, chrf_word_order, beta)| ScoreConfig {
-            metrics: ALL_METRICS,
+        .prop_map(|(tokenizer, lowercase, bleu_order, ref_length, chrf_char_order, chrf_word_order, beta)| Flat {
             tokenizer,
             lowercase,
             bleu_order,
@@ -298,12 +340,12 @@ fn hand_computed_short_hypothesis_and_brevity_penalty() {
     // Brevity penalty (Papineni et al. 2002, section 2.2.2): c = 4 <= r = 6, so
     // BP = exp(1 - r/c) = exp(1 - 6/4) = exp(-0.5) = 0.60653065971...
     let bp = (1.0f64 - 6.0 / 4.0).exp();
-    assert!((b.brevity_penalty - bp).abs() < 1e-12, "{}", b.brevity_penalty);
+    assert!((b.brevity - bp).abs() < 1e-12, "{}", b.brevity);
     assert!((bp - 0.606_530_659_7).abs() < 1e-9);
     // Every precision is 1, so BLEU = 100 * BP * exp(0) = 60.653...
-    assert_eq!(b.precisions, vec![100.0; 4]);
+    assert_eq!(b.precision, vec![100.0; 4]);
     assert!((b.score - 100.0 * bp).abs() < 1e-9, "{}", b.score);
-    assert!((b.length_ratio - 4.0 / 6.0).abs() < 1e-12);
+    assert!((b.tokens.ratio - 4.0 / 6.0).abs() < 1e-12);
 }
 
 #[test]
@@ -319,10 +361,10 @@ fn hand_computed_clipping_takes_the_max_count_in_any_one_reference() {
     assert_eq!((s.bleu.hyp_len, s.bleu.ref_len), (4, 3));
     let b = corpus(&[s]).bleu.score(4);
     assert_eq!(b.score, 0.0, "an order without matches gives corpus BLEU 0");
-    assert!((b.precisions[0] - 75.0).abs() < 1e-12);
-    assert!((b.precisions[1] - 200.0 / 3.0).abs() < 1e-12);
-    assert_eq!(&b.precisions[2..], &[0.0, 0.0]);
-    assert_eq!(b.brevity_penalty, 1.0, "c = 4 > r = 3");
+    assert!((b.precision[0] - 75.0).abs() < 1e-12);
+    assert!((b.precision[1] - 200.0 / 3.0).abs() < 1e-12);
+    assert_eq!(&b.precision[2..], &[0.0, 0.0]);
+    assert_eq!(b.brevity, 1.0, "c = 4 > r = 3");
 }
 
 #[test]
@@ -339,7 +381,7 @@ fn closest_reference_length_ties_go_to_the_shorter() {
     let s = one_segment(&["a b c d e f g", "a b c d e f"], "a b c d e", cfg);
     assert_eq!(s.bleu.ref_len, 6);
     // The shortest rule ignores the hypothesis length.
-    let cfg = ScoreConfig { ref_length: RefLength::Shortest, ..cfg };
+    let cfg = Flat { ref_length: RefLength::Shortest, ..cfg };
     let s = one_segment(&["a b c d e f g", "a b c"], "a b c d e f g", cfg);
     assert_eq!(s.bleu.ref_len, 3);
 }
@@ -350,7 +392,7 @@ fn hand_computed_chrf() {
     // order 1: matches 2, hyp 2, ref 3; order 2: "ab" matches 1, hyp 1, ref 2.
     // P = (2/2 + 1/1) / 2 = 1; R = (2/3 + 1/2) / 2 = 7/12;
     // F2 = (1 + 4) P R / (4 P + R) = (35/12) / (55/12) = 7/11.
-    let cfg = ScoreConfig { chrf_char_order: 2, ..config(Tokenizer::Whitespace) };
+    let cfg = Flat { chrf_char_order: 2, ..config(Tokenizer::Whitespace) };
     let s = one_segment(&["abc"], "ab", cfg);
     assert_eq!(&s.chrf.char.matches[..2], &[2, 1]);
     assert_eq!(&s.chrf.char.hyp[..2], &[2, 1]);
@@ -368,7 +410,7 @@ fn hand_computed_chrf() {
     // chrF++ with one character order and two word orders: "kel vop" against "vop kel".
     // chars: 6 of 6 match (P = R = 1); words order 1: 2 of 2; order 2: "kel vop" vs "vop kel": 0 of 1.
     // P = R = (1 + 1 + 0) / 3 = 2/3, so F = 2/3 for any beta.
-    let cfg = ScoreConfig { chrf_char_order: 1, chrf_word_order: 2, ..config(Tokenizer::Whitespace) };
+    let cfg = Flat { chrf_char_order: 1, chrf_word_order: 2, ..config(Tokenizer::Whitespace) };
     let s = one_segment(&["vop kel"], "kel vop", cfg);
     assert_eq!(&s.chrfpp.word.matches[..2], &[2, 0]);
     assert_eq!(&s.chrfpp.word.hyp[..2], &[2, 1]);
@@ -390,7 +432,7 @@ fn chrf_picks_the_best_reference_first_on_a_tie() {
 fn lowercase_applies_to_every_metric() {
     let hyp = "KEL Vop ÆRØ";
     let r = ["kel vop ærø"];
-    let on = one_segment(&r, hyp, ScoreConfig { lowercase: true, ..config(Tokenizer::Whitespace) });
+    let on = one_segment(&r, hyp, Flat { lowercase: true, ..config(Tokenizer::Whitespace) });
     assert_eq!(on.bleu.matches[..3], [3, 2, 1]);
     assert!((on.chrf.score(6, 0, 2.0).score - 100.0).abs() < 1e-9);
     assert!((on.chrfpp.score(6, 2, 2.0).score - 100.0).abs() < 1e-9);
@@ -457,6 +499,40 @@ proptest! {
         let got = score(&segs, cfg);
         for (i, seg) in segs.iter().enumerate() {
             prop_assert_eq!(got[i], naive_segment(seg, &cfg), "segment {}: {:?}", i, seg);
+        }
+    }
+
+    /// chrF and chrF++ with parameters of their own in one configuration: each metric's
+    /// statistics and chosen reference are what a configuration of that metric alone gives
+    /// (the engine counts to the largest orders once and keeps each metric's own).
+    #[test]
+    fn chrf_family_metrics_with_their_own_parameters(segs in corpus_strategy(5),
+                                                     a in (1usize..=10, 0usize..=4, select(vec![0.5, 1.0, 2.0, 3.0])),
+                                                     b in (1usize..=10, 1usize..=4, select(vec![0.5, 1.0, 2.0, 3.0])),
+                                                     caseless in any::<bool>()) {
+        let chrf = ChrfParams { chars: a.0, words: a.1, beta: a.2 };
+        let chrfpp = ChrfParams { chars: b.0, words: b.1, beta: b.2 };
+        let cfg = |m: Metrics| {
+            let c = ScoreConfig { tokenizer: Tokenizer::Whitespace, caseless, metrics: m };
+            c.validate().expect("valid");
+            c
+        };
+        let run = |c: ScoreConfig| Compiled::build(refset(&segs), c).score_aligned(&hyps(&segs), 1, &AtomicUsize::new(0));
+        let both = run(cfg(Metrics { bleu: None, chrf: Some(chrf), chrfpp: Some(chrfpp) }));
+        let alone_c = run(cfg(Metrics { bleu: None, chrf: Some(chrf), chrfpp: None }));
+        let alone_pp = run(cfg(Metrics { bleu: None, chrf: None, chrfpp: Some(chrfpp) }));
+        for i in 0..segs.len() {
+            prop_assert_eq!((both[i].chrf, both[i].chrf_ref), (alone_c[i].chrf, alone_c[i].chrf_ref), "chrF of segment {}", i);
+            prop_assert_eq!((both[i].chrfpp, both[i].chrfpp_ref), (alone_pp[i].chrfpp, alone_pp[i].chrfpp_ref), "chrF++ of segment {}", i);
+            // Nothing past a metric's own orders.
+            prop_assert!(both[i].chrf.char.hyp[a.0..].iter().chain(&both[i].chrf.word.hyp[a.1..]).all(|&x| x == 0));
+            prop_assert!(both[i].chrfpp.char.hyp[b.0..].iter().chain(&both[i].chrfpp.word.hyp[b.1..]).all(|&x| x == 0));
+        }
+        // And chrF++ alone equals the naive model of the flat configuration with those orders.
+        let flat = Flat { tokenizer: Tokenizer::Whitespace, lowercase: caseless, chrf_char_order: b.0, chrf_word_order: b.1, beta: b.2, ..Default::default() };
+        for (i, seg) in segs.iter().enumerate() {
+            let want = naive_segment(seg, &flat);
+            prop_assert_eq!((alone_pp[i].chrfpp, alone_pp[i].chrfpp_ref), (want.chrfpp, want.chrfpp_ref), "segment {}", i);
         }
     }
 

@@ -19,7 +19,7 @@ use mtgauge::pb;
 use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
 use mtgauge::refs::compiled::{Compiled, Scratch};
-use mtgauge::server::convert::stats_from_pb;
+use mtgauge::pb::convert::stats_from_pb;
 use tonic::transport::{Channel, Endpoint};
 
 /// Longest a test waits for the server to reach a state it must reach.

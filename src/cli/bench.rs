@@ -13,7 +13,7 @@ use clap::Args;
 use serde_json::{json, Value};
 
 use super::{default_threads, CliError};
-use crate::metric::{BleuStats, MetricSet, ScoreConfig};
+use crate::metric::{BleuStats, MetricSpec, ScoreConfig};
 use crate::refs::compiled::Compiled;
 use crate::refs::{RefSet, SegmentInput};
 use crate::rng::SplitMix64;
@@ -171,8 +171,8 @@ fn time<T>(f: impl FnOnce() -> T) -> (T, f64) {
 }
 
 fn config(metrics: &str, tokenizer: Tokenizer) -> ScoreConfig {
-    let metrics: MetricSet = metrics.parse().expect("fixed metric list");
-    ScoreConfig { metrics, tokenizer, ..Default::default() }
+    let specs = metrics.split_whitespace().map(|m| m.parse::<MetricSpec>().expect("fixed metric spec"));
+    ScoreConfig::new(tokenizer, false, specs).expect("fixed configuration")
 }
 
 /// Throughput of `compiled` over the corpus on `threads` threads; (segments/s, corpus stats).
@@ -233,7 +233,7 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
     let (bleu_n, _) = throughput(&bleu, &hyps, threads);
     let nist = Compiled::build(Arc::clone(&set), config("bleu", Tokenizer::Nist));
     let (bleu_nist_1, _) = throughput(&nist, &hyps, 1);
-    let (naive_stats, naive_secs) = time(|| naive_bleu(&corpus, bleu_cfg.bleu_order));
+    let (naive_stats, naive_secs) = time(|| naive_bleu(&corpus, bleu_cfg.bleu_order()));
     if naive_stats != stats.bleu {
         return Err(CliError::Usage("internal check failed: baseline BLEU statistics differ from the engine's".into()));
     }
@@ -253,7 +253,7 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
         "segments": a.segments,
         "mean_tokens": a.tokens,
         "threads": threads,
-        "bleu": stats.bleu.score(bleu_cfg.bleu_order).score,
+        "bleu": stats.bleu.score(bleu_cfg.bleu_order()).score,
         "refset_build_seconds": build_set,
         "bleu_table_build_seconds": build_bleu,
         "bleu_segments_per_s_1_thread": bleu_1,

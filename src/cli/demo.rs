@@ -11,7 +11,7 @@ use clap::Args;
 use super::score::score_corpus_lines;
 use super::{default_threads, CliError};
 use crate::demo::{demo_segments, demo_systems, write_demo_files};
-use crate::metric::{MetricSet, ScoreConfig};
+use crate::metric::ScoreConfig;
 use crate::refs::{RefSet, SegmentInput};
 use crate::report::{stats_lines, PROXY_NOTE};
 
@@ -45,8 +45,7 @@ pub(super) fn run(a: DemoArgs) -> Result<(), CliError> {
         RefSet::new(segments.iter().map(|s| SegmentInput { id: s.id.clone(), source: Some(s.source.clone()), refs: s.refs.clone() }))
             .map_err(|e| CliError::Usage(format!("built-in demo data is invalid: {e}")))?,
     );
-    let metrics: MetricSet = "bleu,chrf,chrf++".parse().map_err(|e| CliError::Usage(format!("{e}")))?;
-    let config = ScoreConfig { metrics, ..Default::default() };
+    let config: ScoreConfig = "bleu chrf chrf++".parse().map_err(|e| CliError::Usage(format!("{e}")))?;
     println!(
         "mtgauge demo: Nordhavn Ferries passenger notices, English -> German, {} segments, 2 references each (references {})",
         set.len(),
@@ -67,7 +66,7 @@ pub(super) fn run(a: DemoArgs) -> Result<(), CliError> {
         println!("\nwrote {} files to {}; try:", files.len(), dir.display());
         let d = dir.display();
         println!("  mtgauge score --ref {d}/ref1.de.txt --ref {d}/ref2.de.txt --hyp {d}/hyp.model-v7.de.txt");
-        println!("  mtgauge score --ref {d}/refs.jsonl --hyp {d}/hyp.model-v7.de.txt --metrics bleu,chrf++ --json");
+        println!("  mtgauge score --ref {d}/refs.jsonl --hyp {d}/hyp.model-v7.de.txt --metric bleu --metric chrf++ --json");
     }
     Ok(())
 }

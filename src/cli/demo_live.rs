@@ -11,11 +11,13 @@ use tonic::transport::Channel;
 
 use super::CliError;
 use crate::demo::{degraded_hypothesis, demo_segments, DemoSegment};
+use crate::metric::{Metric, ScoreConfig};
+use crate::pb::convert::{config_from_pb, config_to_pb, score_of, stats_from_pb};
 use crate::pb;
 use crate::pb::ref_sets_client::RefSetsClient;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
-use crate::report::PROXY_NOTE;
+use crate::report::{stats_lines, PROXY_NOTE};
 use crate::rng::SplitMix64;
 use crate::server::{self, ServerConfig};
 use crate::telemetry;
@@ -84,7 +86,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     let info = RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(usage("upload"))?.into_inner();
     println!("reference set {}: {} segments, {} references, digest {}", info.name, info.segments, info.references, &info.digest[..16]);
     for w in SESSIONS {
-        let config = pb::ScoreConfig { metrics: vec!["bleu".into(), "chrf".into()], ..Default::default() };
+        let config = config_to_pb(&ScoreConfig::default());
         let labels = [("model".to_string(), w.model.to_string()), ("lang".to_string(), "en-de".to_string())].into_iter().collect();
         SessionsClient::new(ch.clone())
             .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true })
@@ -114,14 +116,14 @@ async fn live(seconds: u64) -> Result<(), CliError> {
         }
         for w in SESSIONS {
             let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into() }).await.map_err(usage("get scores"))?.into_inner();
-            let (c, rec) = (r.cumulative_scores.unwrap_or_default(), r.recent_scores.unwrap_or_default());
+            let (c, rec) = (r.cumulative.unwrap_or_default(), r.recent.unwrap_or_default());
             println!(
                 "{:>4}s  {:<26} {:>8.2} {:>8.2} {:>8.2} {:>9} {:>8}",
                 t,
                 w.session,
-                c.bleu.unwrap_or(0.0),
-                rec.bleu.unwrap_or(0.0),
-                rec.chrf.unwrap_or(0.0),
+                score_of(&c, Metric::Bleu).unwrap_or(0.0),
+                score_of(&rec, Metric::Bleu).unwrap_or(0.0),
+                score_of(&rec, Metric::Chrf).unwrap_or(0.0),
                 c.segments,
                 r.unknown
             );
@@ -132,6 +134,14 @@ async fn live(seconds: u64) -> Result<(), CliError> {
         let _ = p.await;
     }
     let elapsed = start.elapsed().as_secs_f64();
+    for w in SESSIONS {
+        let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into() }).await.map_err(usage("get scores"))?.into_inner();
+        let config = config_from_pb(r.config.as_ref()).map_err(|e| CliError::Usage(format!("demo: {e}")))?;
+        println!("\n{} at the end, cumulative:", w.session);
+        for line in stats_lines(&stats_from_pb(&r.cumulative.unwrap_or_default()), &config, "  ") {
+            println!("{line}");
+        }
+    }
     let _ = stop_tx.send(());
     let _ = server.await;
     println!("\nran {elapsed:.0} s. 'recent' is the exact BLEU of the last {DEMO_WINDOW} segments; the cumulative score moves slowly by design.");

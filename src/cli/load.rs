@@ -17,13 +17,12 @@ use tokio::sync::mpsc;
 use super::bench::{generate, refset, Corpus};
 use super::send::{channel, status_error, Conn};
 use super::CliError;
-use crate::metric::{MetricSet, ScoreConfig};
 use crate::pb;
 use crate::pb::ref_sets_client::RefSetsClient;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
 use crate::refs::compiled::Compiled;
-use crate::server::convert::config_to_pb;
+use crate::pb::convert::config_to_pb;
 
 /// Streams unless told.
 pub const DEFAULT_STREAMS: usize = 16;
@@ -58,9 +57,10 @@ pub struct LoadArgs {
     /// Segments of the synthetic reference set (~25 tokens, one reference).
     #[arg(long, default_value_t = DEFAULT_LOAD_SEGMENTS, value_name = "N")]
     pub segments: usize,
-    /// Metrics of the load session (and of the offline baseline).
-    #[arg(long, default_value = "bleu", value_name = "LIST")]
-    pub metrics: MetricSet,
+    /// Metric of the load session (and of the offline baseline), repeatable; the syntax of
+    /// `score --metric`.
+    #[arg(long = "metric", default_value = "bleu", value_name = "SPEC")]
+    pub metrics: Vec<String>,
     /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
@@ -119,7 +119,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
     };
     log(format!("generating {} segments (~{LOAD_TOKENS} tokens, one reference)", a.segments));
     let corpus = Arc::new(generate(a.segments, LOAD_TOKENS, LOAD_VOCAB, 1, 11));
-    let config = ScoreConfig { metrics: a.metrics, ..Default::default() };
+    let config = super::metric_config(crate::text::DEFAULT_TOKENIZER, false, &a.metrics)?;
 
     // Baseline: the offline engine on one thread, same corpus and configuration.
     let set = Arc::new(refset(&corpus));
@@ -158,7 +158,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         "streams": a.streams,
         "batch": a.batch,
         "seconds_per_phase": a.seconds,
-        "metrics": a.metrics.to_string(),
+        "config": config.describe(),
         "offline_1_thread_segments_per_s": offline,
         "daemon_segments_per_s": full.rate(),
         "ratio_daemon_vs_offline_1_thread": full.rate() / offline,
@@ -172,7 +172,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         println!("{}", serde_json::to_string_pretty(&figures).unwrap_or_default());
     } else {
         let f = |k: &str| figures[k].as_f64().unwrap_or(f64::NAN);
-        println!("mtgauge load: {} streams x batches of {} ({}), {} s per phase", a.streams, a.batch, a.metrics, a.seconds);
+        println!("mtgauge load: {} streams x batches of {} ({}), {} s per phase", a.streams, a.batch, config.describe(), a.seconds);
         println!("  offline engine, 1 thread      {:>10.0} segments/s", f("offline_1_thread_segments_per_s"));
         println!("  daemon, full speed            {:>10.0} segments/s -> {:.2}x the offline 1-thread rate", f("daemon_segments_per_s"), f("ratio_daemon_vs_offline_1_thread"));
         println!("    acknowledgement latency     p50 {:.2} ms, p99 {:.2} ms", 1e3 * full.quantile(0.5), 1e3 * full.quantile(0.99));

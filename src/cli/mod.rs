@@ -21,8 +21,8 @@ use std::process::ExitCode;
 use clap::{Args, Parser, Subcommand};
 
 use crate::metric::{
-    MetricSet, RefLength, ScoreConfig, Smoothing, DEFAULT_BLEU_ORDER, DEFAULT_CHRF_BETA, DEFAULT_CHRF_CHAR_ORDER,
-    DEFAULT_CHRF_WORD_ORDER, DEFAULT_EPSILON,
+    BleuParams, ChrfParams, Metric, MetricSpec, ScoreConfig, Smoothing, DEFAULT_METRICS, MAX_BLEU_ORDER, MAX_CHRF_CHAR_ORDER,
+    MAX_CHRF_WORD_ORDER,
 };
 use crate::refs::InputError;
 use crate::text::{Tokenizer, DEFAULT_TOKENIZER};
@@ -76,63 +76,63 @@ pub enum Command {
     Bench(bench::BenchArgs),
 }
 
+/// `--metric` in `--help`: the syntax, every key with its default (from the constants).
+fn metric_help() -> String {
+    let b = BleuParams::default();
+    let (c, cpp) = (ChrfParams::default_for(Metric::Chrf), ChrfParams::default_for(Metric::ChrfPlusPlus));
+    let smoothing: Vec<&str> = Smoothing::ALL.iter().map(|m| m.name()).collect();
+    format!(
+        "A metric to compute, repeatable: NAME or NAME:key=value,... (default: {defaults}).\n\
+         bleu: order=N (1-{MAX_BLEU_ORDER}, default {}), ref-length=closest|shortest (default {}; closest ties \
+         to the shorter), smoothing={} (sentence-level scores only; default {}), epsilon=X (of the epsilon \
+         smoothing, default {}).\n\
+         chrf, chrf++: chars=N (character orders 1-{MAX_CHRF_CHAR_ORDER}, default {}), words=N (word orders \
+         0-{MAX_CHRF_WORD_ORDER}, default {} for chrf and {} for chrf++), beta=B (recall weighs B times \
+         precision, default {}).\n\
+         Example: --metric bleu:order=4 --metric chrf++:beta=2",
+        b.order,
+        b.ref_length,
+        smoothing.join("|"),
+        b.smoothing,
+        b.epsilon,
+        c.chars,
+        c.words,
+        cpp.words,
+        c.beta,
+        defaults = DEFAULT_METRICS.map(Metric::name).join(" and "),
+    )
+}
+
 /// Options that define how scores are computed; shared by every command that scores.
 #[derive(Debug, Clone, Args)]
 pub struct ScoringArgs {
-    /// Metrics to compute, comma-separated: bleu, chrf, chrf++.
-    #[arg(long, default_value = "bleu,chrf", value_name = "LIST")]
-    pub metrics: MetricSet,
+    /// A metric to compute, repeatable: NAME or NAME:key=value,... (bleu, chrf, chrf++).
+    #[arg(long = "metric", value_name = "SPEC", long_help = metric_help())]
+    pub metrics: Vec<String>,
     /// Tokenizer for BLEU: whitespace, nist (the NIST mteval western rules), nist-unicode (the NIST
-    /// international rules over Unicode classes), cjk (CJK characters one token each, else nist),
-    /// characters (every non-space character).
-    #[arg(long = "tokenize", default_value_t = DEFAULT_TOKENIZER, value_name = "NAME")]
+    /// international rules over Unicode classes), cjk (CJK ideographs and kana one token each,
+    /// else nist), characters (every non-space character).
+    #[arg(long, default_value_t = DEFAULT_TOKENIZER, value_name = "NAME")]
     pub tokenizer: Tokenizer,
-    /// Lowercase hypotheses and references before scoring (Unicode-aware; all metrics).
+    /// Compare without case: hypotheses and references through the Unicode lowercase mapping
+    /// before scoring (all metrics).
     #[arg(long)]
-    pub lowercase: bool,
-    /// BLEU maximum n-gram order (1-8).
-    #[arg(long, default_value_t = DEFAULT_BLEU_ORDER, value_name = "N")]
-    pub bleu_order: usize,
-    /// BLEU effective reference length: closest (to the hypothesis length, ties to the shorter) or
-    /// shortest.
-    #[arg(long, default_value = "closest", value_name = "RULE")]
-    pub ref_length: RefLength,
-    /// Smoothing of sentence-level BLEU (corpus BLEU is never smoothed): none, epsilon, plus-one,
-    /// nist-halving.
-    #[arg(long, default_value = "epsilon", value_name = "METHOD")]
-    pub smoothing: Smoothing,
-    /// The epsilon of `--smoothing epsilon`.
-    #[arg(long, default_value_t = DEFAULT_EPSILON, value_name = "X")]
-    pub epsilon: f64,
-    /// chrF character n-gram order (1-10).
-    #[arg(long, default_value_t = DEFAULT_CHRF_CHAR_ORDER, value_name = "N")]
-    pub chrf_char_order: usize,
-    /// chrF++ word n-gram order (1-4).
-    #[arg(long, default_value_t = DEFAULT_CHRF_WORD_ORDER, value_name = "N")]
-    pub chrf_word_order: usize,
-    /// chrF beta: weight of recall against precision.
-    #[arg(long = "chrf-beta", default_value_t = DEFAULT_CHRF_BETA, value_name = "B")]
-    pub beta: f64,
+    pub caseless: bool,
 }
 
 impl ScoringArgs {
     /// The validated configuration.
     pub fn config(&self) -> Result<ScoreConfig, CliError> {
-        let c = ScoreConfig {
-            metrics: self.metrics,
-            tokenizer: self.tokenizer,
-            lowercase: self.lowercase,
-            bleu_order: self.bleu_order,
-            ref_length: self.ref_length,
-            smoothing: self.smoothing,
-            epsilon: self.epsilon,
-            chrf_char_order: self.chrf_char_order,
-            chrf_word_order: self.chrf_word_order,
-            beta: self.beta,
-        };
-        c.validate().map_err(|e| CliError::Usage(e.to_string()))?;
-        Ok(c)
+        metric_config(self.tokenizer, self.caseless, &self.metrics)
     }
+}
+
+/// The configuration of `--metric` specs (read here rather than by clap, so that a bad spec is
+/// one line on stderr like every other error).
+pub fn metric_config(tokenizer: Tokenizer, caseless: bool, specs: &[String]) -> Result<ScoreConfig, CliError> {
+    let usage = |e: crate::metric::ConfigError| CliError::Usage(e.to_string());
+    let specs = specs.iter().map(|s| s.parse::<MetricSpec>()).collect::<Result<Vec<_>, _>>().map_err(usage)?;
+    ScoreConfig::new(tokenizer, caseless, specs).map_err(usage)
 }
 
 /// Everything that can make a command fail.

@@ -23,8 +23,9 @@ hypothesis file is then scored against record i). Lines end with \\n (a \\r befo
 
 Examples:
   mtgauge score --ref ref1.de.txt --ref ref2.de.txt --hyp hyp.de.txt
-  mtgauge score --ref refs.jsonl --hyp - --metrics bleu,chrf++ --json < hyp.de.txt
-  mtgauge score --ref ref.txt --hyp hyp.txt --per-segment segments.jsonl --smoothing plus-one
+  mtgauge score --ref refs.jsonl --hyp - --metric bleu --metric chrf++ --json < hyp.de.txt
+  mtgauge score --ref ref.txt --hyp hyp.txt --per-segment segments.jsonl --metric bleu:smoothing=plus-one
+  mtgauge score --ref ref.txt --hyp hyp.txt --tokenizer nist-unicode --caseless --metric chrf:chars=4,beta=1
 
 Corpus BLEU is computed from summed statistics (clipped n-gram matches and totals, hypothesis \
 length, effective reference length), never averaged over sentences; chrF from summed per-order \

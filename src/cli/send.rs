@@ -14,7 +14,7 @@ use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
 use crate::refs::split_lines;
-use crate::server::convert::config_to_pb;
+use crate::pb::convert::config_to_pb;
 
 /// Items per batch unless told.
 pub const DEFAULT_BATCH: usize = 100;

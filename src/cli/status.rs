@@ -9,7 +9,7 @@ use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
 use crate::report::{config_json, stats_json, stats_lines, PROXY_NOTE};
-use crate::server::convert::{config_from_pb, stats_from_pb};
+use crate::pb::convert::{config_from_pb, stats_from_pb};
 
 /// `status` options.
 #[derive(Debug, Args)]

@@ -13,11 +13,11 @@ use crate::text::{TokenBuf, Tokenizer, DEFAULT_TOKENIZER};
 #[derive(Debug, Args)]
 pub struct TokenizeArgs {
     /// Tokenizer: whitespace, nist, nist-unicode, cjk, characters.
-    #[arg(long = "tokenize", default_value_t = DEFAULT_TOKENIZER, value_name = "NAME")]
+    #[arg(long, default_value_t = DEFAULT_TOKENIZER, value_name = "NAME")]
     pub tokenizer: Tokenizer,
-    /// Lowercase before tokenizing.
+    /// Through the Unicode lowercase mapping before tokenizing.
     #[arg(long)]
-    pub lowercase: bool,
+    pub caseless: bool,
     /// Input file (default: standard input). Output: one line per input line, tokens separated by
     /// one space.
     #[arg(value_name = "FILE", default_value = "-")]
@@ -30,7 +30,7 @@ pub(super) fn run(a: TokenizeArgs) -> Result<(), CliError> {
     let mut out = String::with_capacity(bytes.len() * 2);
     let mut buf = TokenBuf::default();
     for line in lines {
-        a.tokenizer.tokenize_into(line, a.lowercase, &mut buf);
+        a.tokenizer.tokenize_into(line, a.caseless, &mut buf);
         for (i, t) in buf.tokens().enumerate() {
             if i > 0 {
                 out.push(' ');

@@ -150,25 +150,33 @@ impl fmt::Display for Smoothing {
     }
 }
 
-/// A BLEU score derived from statistics, with its parts.
+/// Token counts behind the brevity penalty.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct TokenCounts {
+    /// Hypothesis length in tokens (c).
+    pub hypothesis: u64,
+    /// Effective reference length in tokens (r).
+    pub reference: u64,
+    /// c / r (0 when r = 0).
+    pub ratio: f64,
+}
+
+/// A BLEU score derived from statistics, with its parts: what every output shows of BLEU.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct BleuScore {
-    /// BLEU on a 0-100 scale.
+    /// BLEU on a 0-100 scale (at sentence level: smoothed as configured).
     pub score: f64,
-    /// n-gram precisions on a 0-100 scale (0 for an order without hypothesis n-grams).
-    pub precisions: Vec<f64>,
-    /// Brevity penalty, 0-1.
-    pub brevity_penalty: f64,
-    /// Hypothesis length / effective reference length.
-    pub length_ratio: f64,
-    /// Hypothesis length in tokens.
-    pub hyp_length: u64,
-    /// Effective reference length in tokens.
-    pub ref_length: u64,
-    /// Clipped matches per order.
-    pub matches: Vec<u64>,
-    /// Hypothesis n-grams per order.
-    pub totals: Vec<u64>,
+    /// Clipped n-gram matches per order 1..N.
+    pub matched: Vec<u64>,
+    /// Hypothesis n-grams per order 1..N.
+    pub candidates: Vec<u64>,
+    /// n-gram precision per order on a 0-100 scale (unsmoothed; 0 for an order without
+    /// hypothesis n-grams).
+    pub precision: Vec<f64>,
+    /// Hypothesis and effective reference lengths.
+    pub tokens: TokenCounts,
+    /// The brevity penalty, 0-1.
+    pub brevity: f64,
 }
 
 /// The brevity penalty for hypothesis length `c` and effective reference length `r`.
@@ -187,28 +195,37 @@ impl BleuStats {
     pub fn score(&self, order: usize) -> BleuScore {
         let order = order.clamp(1, MAX_BLEU_ORDER);
         let (m, t) = (&self.matches[..order], &self.totals[..order]);
-        let bp = brevity_penalty(self.hyp_len, self.ref_len);
-        let precisions = m
-            .iter()
-            .zip(t)
-            .map(|(&m, &t)| if t == 0 { 0.0 } else { 100.0 * m as f64 / t as f64 })
-            .collect();
         let score = if m.contains(&0) {
             0.0
         } else {
             let log_sum: f64 = m.iter().zip(t).map(|(&m, &t)| (m as f64 / t as f64).ln()).sum();
-            100.0 * bp * (log_sum / order as f64).exp()
+            100.0 * brevity_penalty(self.hyp_len, self.ref_len) * (log_sum / order as f64).exp()
         };
+        self.parts(order, score)
+    }
+
+    /// The parts of a BLEU score with `score` as the score.
+    fn parts(&self, order: usize, score: f64) -> BleuScore {
+        let (m, t) = (&self.matches[..order], &self.totals[..order]);
         BleuScore {
             score,
-            precisions,
-            brevity_penalty: bp,
-            length_ratio: if self.ref_len == 0 { 0.0 } else { self.hyp_len as f64 / self.ref_len as f64 },
-            hyp_length: self.hyp_len,
-            ref_length: self.ref_len,
-            matches: m.to_vec(),
-            totals: t.to_vec(),
+            matched: m.to_vec(),
+            candidates: t.to_vec(),
+            precision: m.iter().zip(t).map(|(&m, &t)| if t == 0 { 0.0 } else { 100.0 * m as f64 / t as f64 }).collect(),
+            tokens: TokenCounts {
+                hypothesis: self.hyp_len,
+                reference: self.ref_len,
+                ratio: if self.ref_len == 0 { 0.0 } else { self.hyp_len as f64 / self.ref_len as f64 },
+            },
+            brevity: brevity_penalty(self.hyp_len, self.ref_len),
         }
+    }
+
+    /// Sentence BLEU of one segment's statistics with its parts: the score smoothed as asked,
+    /// the precisions unsmoothed.
+    pub fn sentence(&self, order: usize, smoothing: Smoothing, epsilon: f64) -> BleuScore {
+        let order = order.clamp(1, MAX_BLEU_ORDER);
+        self.parts(order, self.sentence_score(order, smoothing, epsilon))
     }
 
     /// Sentence BLEU (0-100) of one segment's statistics with `smoothing`.
@@ -266,7 +283,8 @@ mod tests {
         let s = stats(&[4, 2, 1, 1], &[8, 8, 8, 16], 8, 10);
         let expected = 100.0 * (1.0f64 - 1.25).exp() * 2f64.powf(-2.5);
         assert!((s.score(4).score - expected).abs() < 1e-9);
-        assert_eq!(s.score(4).precisions, vec![50.0, 25.0, 12.5, 6.25]);
+        assert_eq!(s.score(4).precision, vec![50.0, 25.0, 12.5, 6.25]);
+        assert_eq!(s.score(4).tokens, TokenCounts { hypothesis: 8, reference: 10, ratio: 0.8 });
     }
 
     #[test]

@@ -39,6 +39,14 @@ impl OrderCounts {
         sub_arrays(&mut self.hyp, &o.hyp);
         sub_arrays(&mut self.reference, &o.reference);
     }
+    /// These counts with every order past `order` zeroed.
+    pub fn up_to(&self, order: usize) -> OrderCounts {
+        let mut c = *self;
+        for a in [&mut c.matches, &mut c.hyp, &mut c.reference] {
+            a[order.min(MAX_CHRF_CHAR_ORDER)..].fill(0);
+        }
+        c
+    }
     /// (matches, hyp, reference) of the first `order` orders.
     fn orders(&self, order: usize) -> impl Iterator<Item = (u64, u64, u64)> + '_ {
         (0..order.min(MAX_CHRF_CHAR_ORDER)).map(|i| (self.matches[i], self.hyp[i], self.reference[i]))
@@ -52,6 +60,15 @@ pub struct ChrfStats {
     pub char: OrderCounts,
     /// Word n-gram counts (chrF++ only; zero for chrF).
     pub word: OrderCounts,
+}
+
+impl ChrfStats {
+    /// These statistics restricted to character orders 1..=`chars` and word orders
+    /// 1..=`words` (the rest zeroed): what one chrF-family metric keeps when several are
+    /// computed from the same counts.
+    pub fn up_to(&self, chars: usize, words: usize) -> ChrfStats {
+        ChrfStats { char: self.char.up_to(chars), word: self.word.up_to(words) }
+    }
 }
 
 impl std::ops::AddAssign for ChrfStats {

@@ -4,16 +4,19 @@
 //! - [`bleu`]: Papineni et al. 2002: clipped n-gram precision, geometric mean, brevity penalty;
 //!   sentence-level smoothing after Chen & Cherry 2014.
 //! - [`chrf`]: Popović 2015 (chrF) and 2017 (chrF++): character (and word) n-gram F-score.
-//! - [`ngram`]: the exact counting by sorting that both use.
+//! - [`ngram`]: the exact n-gram counting both use (packed integer keys, gram tables).
+//! - [`scores`]: every score of a corpus or a segment under a configuration, derived in one place
+//!   for all outputs.
 
 pub mod bleu;
 pub mod chrf;
 mod config;
 pub mod ngram;
+pub mod scores;
 
-pub use bleu::{BleuScore, BleuStats, RefLength, Smoothing};
+pub use bleu::{BleuScore, BleuStats, RefLength, Smoothing, TokenCounts};
 pub use chrf::{ChrfScore, ChrfStats, OrderCounts};
-pub use config::{ConfigError, Metric, MetricSet, ScoreConfig};
+pub use config::{BleuParams, ChrfParams, ConfigError, Metric, MetricSpec, Metrics, ScoreConfig, DEFAULT_METRICS};
 
 use serde::{Deserialize, Serialize};
 
@@ -27,8 +30,10 @@ pub const MAX_CHRF_CHAR_ORDER: usize = 10;
 pub const DEFAULT_CHRF_CHAR_ORDER: usize = 6;
 /// Largest chrF++ word n-gram order accepted.
 pub const MAX_CHRF_WORD_ORDER: usize = 4;
+/// chrF word n-gram order used unless configured: none (Popović 2015).
+pub const DEFAULT_CHRF_WORD_ORDER: usize = 0;
 /// chrF++ word n-gram order used unless configured (Popović 2017 recommend 2).
-pub const DEFAULT_CHRF_WORD_ORDER: usize = 2;
+pub const DEFAULT_CHRFPP_WORD_ORDER: usize = 2;
 /// chrF beta used unless configured: recall weighted twice as much as precision (Popović 2015).
 pub const DEFAULT_CHRF_BETA: f64 = 2.0;
 /// Epsilon added to zero match counts by the `epsilon` sentence smoothing (Chen & Cherry 2014,
@@ -40,11 +45,11 @@ pub const DEFAULT_EPSILON: f64 = 0.1;
 pub struct SegmentStats {
     /// BLEU statistics (zero when BLEU is not configured).
     pub bleu: BleuStats,
-    /// chrF statistics of the reference chosen for chrF (character orders only).
+    /// chrF statistics of the reference chosen for chrF (its orders only).
     pub chrf: ChrfStats,
     /// Index of the reference chosen for chrF.
     pub chrf_ref: u32,
-    /// chrF++ statistics of the reference chosen for chrF++ (character and word orders).
+    /// chrF++ statistics of the reference chosen for chrF++ (its orders only).
     pub chrfpp: ChrfStats,
     /// Index of the reference chosen for chrF++.
     pub chrfpp_ref: u32,

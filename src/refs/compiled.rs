@@ -1,6 +1,6 @@
 //! A reference set compiled for one scoring configuration: the tables the hot path uses.
 //!
-//! Built once per (reference set, tokenizer, lowercase, metrics). BLEU: per segment, a gram
+//! Built once per (reference set, tokenizer, caseless, metrics). BLEU: per segment, a gram
 //! table (see [`crate::metric::ngram::GramBuilder`]) of its references' tokens, holding every
 //! n-gram with the largest count it has in any one reference (the clipping of Papineni et al.
 //! 2002), in entries of one byte for segments of fewer than 255 tokens. Tokens are known by a
@@ -141,6 +141,7 @@ impl GramTables {
 /// any one reference: the clipping counts).
 struct BleuTable {
     order: usize,
+    ref_length: crate::metric::RefLength,
     tables: GramTables,
     /// Tokens of 8 bytes or more.
     long: Interner,
@@ -365,28 +366,27 @@ impl Compiled {
             seg_ref.push(nrefs);
         }
         let mut c = Compiled { refs, config, seg_ref, bleu: None, char_orders: None, words: Interner::default(), word_seqs: None };
-        if config.metrics.bleu {
-            c.bleu = Some(c.build_bleu());
+        if let Some(b) = config.metrics.bleu {
+            c.bleu = Some(c.build_bleu(b.order, b.ref_length));
         }
-        if config.metrics.chrfpp {
+        if config.max_words() > 0 {
             c.word_seqs = Some(c.build_words());
         }
-        if config.metrics.any_chrf() {
+        if config.any_chrf() {
             c.char_orders = Some(c.build_char_orders());
         }
         c
     }
 
-    fn build_bleu(&mut self) -> BleuTable {
-        let order = self.config.bleu_order;
-        let mut t = BleuTable { order, tables: GramTables::default(), long: Interner::default(), ref_len: Vec::new() };
+    fn build_bleu(&mut self, order: usize, ref_length: crate::metric::RefLength) -> BleuTable {
+        let mut t = BleuTable { order, ref_length, tables: GramTables::default(), long: Interner::default(), ref_len: Vec::new() };
         let mut buf = TokenBuf::default();
         let mut builder = GramBuilder::default();
         let mut keys: Vec<Vec<u64>> = Vec::new();
         for seg in self.refs.segments() {
             keys.resize_with(seg.ref_count(), Vec::new);
             for (k, r) in seg.refs().enumerate() {
-                self.config.tokenizer.tokenize_into(r, self.config.lowercase, &mut buf);
+                self.config.tokenizer.tokenize_into(r, self.config.caseless, &mut buf);
                 let text = buf.text_bytes();
                 keys[k].clear();
                 keys[k].extend(buf.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, &mut LongTokens::Add(&mut t.long))));
@@ -406,8 +406,8 @@ impl Compiled {
         let (mut lower, mut items) = (String::new(), Vec::new());
         for seg in self.refs.segments() {
             for r in seg.refs() {
-                char_items(r, self.config.lowercase, &mut lower, &mut items);
-                let by = if items.len() <= 1 << 16 { key_order(&items, self.config.chrf_char_order) } else { None };
+                char_items(r, self.config.caseless, &mut lower, &mut items);
+                let by = if items.len() <= 1 << 16 { key_order(&items, self.config.max_chars()) } else { None };
                 o.at.push(match by {
                     Some(by) if items.len() <= 1 << 8 => {
                         let at = (o.by8.len() as u64) << 2 | 1;
@@ -430,13 +430,13 @@ impl Compiled {
     }
 
     fn build_words(&mut self) -> Sequences {
-        let mut seqs = Sequences { pad: self.config.chrf_word_order, ..Default::default() };
+        let mut seqs = Sequences { pad: self.config.max_words(), ..Default::default() };
         let mut lower = String::new();
         let refs = Arc::clone(&self.refs);
         for seg in refs.segments() {
             for r in seg.refs() {
                 lower.clear();
-                push_lowercased(r, self.config.lowercase, &mut lower);
+                push_lowercased(r, self.config.caseless, &mut lower);
                 let words = &mut self.words;
                 seqs.push(lower.split(is_space).filter(|w| !w.is_empty()).map(|w| words.intern(w.as_bytes())));
             }
@@ -479,7 +479,7 @@ impl Compiled {
         if self.bleu.is_none() {
             out.bleu = Default::default();
         }
-        if !self.config.metrics.any_chrf() {
+        if !self.config.any_chrf() {
             (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
         }
     }
@@ -492,7 +492,7 @@ impl Compiled {
         if let Some(b) = &self.bleu {
             self.score_bleu(b, seg, refs.clone(), hyp, s, out);
         }
-        if self.config.metrics.any_chrf() {
+        if self.config.any_chrf() {
             self.score_chrf(seg, refs, hyp, s, out);
         }
     }
@@ -511,7 +511,7 @@ impl Compiled {
             st.totals[n - 1] = ngram_count(len, n);
         }
         st.hyp_len = len as u64;
-        st.ref_len = self.config.ref_length.pick(len as u64, refs.map(|r| b.ref_len[r] as u64));
+        st.ref_len = b.ref_length.pick(len as u64, refs.map(|r| b.ref_len[r] as u64));
     }
 
     /// Tokenize `hyp`, name its tokens in `g` (into `s.names`) and count clipped matches.
@@ -520,11 +520,11 @@ impl Compiled {
         // Keys first, then names: two tight loops overlap their loads better than one.
         s.keys.clear();
         let mut long = LongTokens::Get(&b.long);
-        if self.config.tokenizer == Tokenizer::Whitespace && !self.config.lowercase {
+        if self.config.tokenizer == Tokenizer::Whitespace && !self.config.caseless {
             let (text, keys) = (hyp.as_bytes(), &mut s.keys);
             for_each_space_token(hyp, |a, e| keys.push(token_key(text, a, e, &mut long)));
         } else {
-            self.config.tokenizer.tokenize_into(hyp, self.config.lowercase, &mut s.tok);
+            self.config.tokenizer.tokenize_into(hyp, self.config.caseless, &mut s.tok);
             let text = s.tok.text_bytes();
             s.keys.extend(s.tok.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, &mut long)));
         }
@@ -543,16 +543,16 @@ impl Compiled {
     /// `out` is to be filled by [`Compiled::score_chrf_general`]).
     fn score_chrf_packed(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) -> bool {
         let cfg = &self.config;
-        let (c_order, w_order) = (cfg.chrf_char_order, cfg.chrf_word_order);
+        let (c_order, w_order) = (cfg.max_chars(), cfg.max_words());
         let p = &mut s.packed;
-        let hyp_max = char_items(hyp, cfg.lowercase, &mut s.lower, &mut s.hyp_chars);
+        let hyp_max = char_items(hyp, cfg.caseless, &mut s.lower, &mut s.hyp_chars);
         let hyp_len = s.hyp_chars.len();
         p.hyp_chars.reset();
         p.hyp_words.reset();
         // Word ids: interned ids from 1, one more id for every word the references lack.
         let unknown_word = self.words.len() as u32 + 1;
         if self.word_seqs.is_some() {
-            let text = if cfg.lowercase { s.lower.as_str() } else { hyp };
+            let text = if cfg.caseless { s.lower.as_str() } else { hyp };
             s.hyp_words.clear();
             s.hyp_words.extend(text.split(is_space).filter(|w| !w.is_empty()).map(|w| match self.words.get(w.as_bytes()) {
                 super::intern::UNKNOWN => unknown_word,
@@ -560,10 +560,9 @@ impl Compiled {
             }));
         }
         let segment = self.refs.segment(seg);
-        (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
-        let (mut best_c, mut best_pp) = (f64::NEG_INFINITY, f64::NEG_INFINITY);
+        let mut best = Best::new(out);
         for (k, r) in refs.enumerate() {
-            let ref_max = char_items(segment.reference(k), cfg.lowercase, &mut s.lower, &mut p.ref_items);
+            let ref_max = char_items(segment.reference(k), cfg.caseless, &mut s.lower, &mut p.ref_items);
             let by = self.char_orders.as_ref().map_or(RefOrder::Unknown, |o| o.get(r, p.ref_items.len()));
             let mut st = ChrfStats::default();
             if !packed_counts(c_order, hyp_max.max(ref_max), &s.hyp_chars, &mut p.hyp_chars, &p.ref_items, by, &mut p.bufs, &mut st.char.matches) {
@@ -574,9 +573,6 @@ impl Compiled {
                 st.char.hyp[n - 1] = ngram_count(hyp_len, n);
                 st.char.reference[n - 1] = ngram_count(ref_len, n);
             }
-            if cfg.metrics.chrf {
-                keep_best(st.score(c_order, 0, cfg.beta).score, &mut best_c, &st, k, &mut out.chrf, &mut out.chrf_ref);
-            }
             if let Some(ws) = &self.word_seqs {
                 let words = &ws.seq[ws.range(r)];
                 if !packed_counts(w_order, unknown_word, &s.hyp_words, &mut p.hyp_words, words, RefOrder::Unknown, &mut p.bufs, &mut st.word.matches) {
@@ -586,8 +582,8 @@ impl Compiled {
                     st.word.hyp[n - 1] = ngram_count(s.hyp_words.len(), n);
                     st.word.reference[n - 1] = ngram_count(words.len(), n);
                 }
-                keep_best(st.score(c_order, w_order, cfg.beta).score, &mut best_pp, &st, k, &mut out.chrfpp, &mut out.chrfpp_ref);
             }
+            best.offer(cfg, &st, k, out);
         }
         true
     }
@@ -595,9 +591,9 @@ impl Compiled {
     /// chrF / chrF++ for any orders and characters, sorting positions by item slices.
     fn score_chrf_general(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
         let cfg = &self.config;
-        let (c_order, w_order) = (cfg.chrf_char_order, cfg.chrf_word_order);
+        let (c_order, w_order) = (cfg.max_chars(), cfg.max_words());
         s.lower.clear();
-        push_lowercased(hyp, cfg.lowercase, &mut s.lower);
+        push_lowercased(hyp, cfg.caseless, &mut s.lower);
         char_codes(&s.lower, c_order, &mut s.hyp_chars);
         let hyp_len = s.hyp_chars.len() - c_order;
         sort_positions(&s.hyp_chars, hyp_len, c_order, &mut s.hyp_char_pos);
@@ -610,26 +606,22 @@ impl Compiled {
             sort_positions(&s.hyp_words, hyp_words, w_order, &mut s.hyp_word_pos);
         }
         let segment = self.refs.segment(seg);
-        (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
-        let (mut best_c, mut best_pp) = (f64::NEG_INFINITY, f64::NEG_INFINITY);
+        let mut best = Best::new(out);
         for (k, r) in refs.enumerate() {
             s.lower.clear();
-            push_lowercased(segment.reference(k), cfg.lowercase, &mut s.lower);
+            push_lowercased(segment.reference(k), cfg.caseless, &mut s.lower);
             char_codes(&s.lower, c_order, &mut s.ref_chars);
             let ref_len = s.ref_chars.len() - c_order;
             sort_positions(&s.ref_chars, ref_len, c_order, &mut s.ref_char_pos);
             let mut st = ChrfStats::default();
             count_orders(c_order, (&s.hyp_chars, &s.hyp_char_pos, hyp_len), (&s.ref_chars, &s.ref_char_pos, ref_len), &mut st.char);
-            if cfg.metrics.chrf {
-                keep_best(st.score(c_order, 0, cfg.beta).score, &mut best_c, &st, k, &mut out.chrf, &mut out.chrf_ref);
-            }
             if let Some(ws) = &self.word_seqs {
                 let range = ws.range(r);
                 let wseq = &ws.seq[range.start..range.end + ws.pad];
                 sort_positions(wseq, range.len(), w_order, &mut s.ref_word_pos);
                 count_orders(w_order, (&s.hyp_words, &s.hyp_word_pos, hyp_words), (wseq, &s.ref_word_pos, range.len()), &mut st.word);
-                keep_best(st.score(c_order, w_order, cfg.beta).score, &mut best_pp, &st, k, &mut out.chrfpp, &mut out.chrfpp_ref);
             }
+            best.offer(cfg, &st, k, out);
         }
     }
 
@@ -651,7 +643,7 @@ impl Compiled {
                 let base = c * SCORE_CHUNK;
                 let chunk = &hyps[base..(base + SCORE_CHUNK).min(hyps.len())];
                 // Parts of `one` for metrics not configured stay zero: adding them is skipped.
-                let (bleu, chrf) = (self.bleu.is_some(), self.config.metrics.any_chrf());
+                let (bleu, chrf) = (self.bleu.is_some(), self.config.any_chrf());
                 for (i, h) in chunk.iter().enumerate() {
                     self.score_configured(base + i, h, &mut scratch, &mut one);
                     sum.segments += 1;
@@ -714,14 +706,34 @@ impl Compiled {
     }
 }
 
-/// Keep reference `k`'s statistics when its sentence-level F beats the best so far (ties keep
-/// the earlier reference): the several-references rule of chrF and chrF++.
-#[inline]
-fn keep_best(f: f64, best: &mut f64, st: &ChrfStats, k: usize, out: &mut ChrfStats, out_ref: &mut u32) {
-    if f > *best {
-        *best = f;
-        *out = *st;
-        *out_ref = k as u32;
+/// The several-references rule of chrF and chrF++: per metric, the statistics of the reference
+/// with the best sentence-level F (ties keep the earlier reference), restricted to the metric's
+/// own orders.
+struct Best {
+    chrf: f64,
+    chrfpp: f64,
+}
+
+impl Best {
+    /// Start a segment: `out`'s chrF-family parts are cleared.
+    fn new(out: &mut SegmentStats) -> Best {
+        (out.chrf, out.chrf_ref, out.chrfpp, out.chrfpp_ref) = Default::default();
+        Best { chrf: f64::NEG_INFINITY, chrfpp: f64::NEG_INFINITY }
+    }
+
+    /// Offer reference `k`'s statistics (counted to the largest orders configured).
+    #[inline]
+    fn offer(&mut self, cfg: &ScoreConfig, st: &ChrfStats, k: usize, out: &mut SegmentStats) {
+        let slots = [(cfg.metrics.chrf, &mut self.chrf, &mut out.chrf, &mut out.chrf_ref), (cfg.metrics.chrfpp, &mut self.chrfpp, &mut out.chrfpp, &mut out.chrfpp_ref)];
+        for (params, best, stats, chosen) in slots {
+            let Some(p) = params else { continue };
+            let f = st.score(p.chars, p.words, p.beta).score;
+            if f > *best {
+                *best = f;
+                *stats = st.up_to(p.chars, p.words);
+                *chosen = k as u32;
+            }
+        }
     }
 }
 

@@ -3,7 +3,6 @@
 
 pub mod auth;
 pub mod conn;
-pub mod convert;
 pub mod error;
 mod services;
 pub mod state;

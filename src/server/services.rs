@@ -13,12 +13,12 @@ use tokio_stream::Stream;
 use tonic::{Request, Response, Status, Streaming};
 
 use super::auth::{Scope, Tokens};
-use super::convert::{config_from_pb, config_to_pb, scores_to_pb, stats_to_pb};
 use super::error::{Result, ServiceError};
 use super::state::{unix_now, Format, LoadedSet, ProducerClaim, State};
 use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
 use crate::metric::CorpusStats;
 use crate::pb;
+use crate::pb::convert::{config_from_pb, config_to_pb, segment_scores_to_pb, totals_to_pb};
 use crate::refs::compiled::Scratch;
 use crate::report::PROXY_NOTE;
 use crate::session::{ItemKey, Outcome, Session};
@@ -195,7 +195,7 @@ impl pb::sessions_server::Sessions for Services {
     async fn create(&self, req: Request<pb::CreateSessionRequest>) -> std::result::Result<Response<pb::SessionInfo>, Status> {
         self.authorize(&req, Scope::Admin)?;
         let r = req.into_inner();
-        let config = config_from_pb(r.config.as_ref())?;
+        let config = config_from_pb(r.config.as_ref()).map_err(|e| ServiceError::Invalid(e.0))?;
         let labels: BTreeMap<String, String> = r.labels.into_iter().collect();
         let spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize)?;
         let state = self.state.clone();
@@ -318,15 +318,12 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
     telemetry::record_scores(&spec.name, &spec.config, &cumulative, &recent);
     (ack.scored, ack.unknown, ack.rejected, ack.rejections) = (scored, unknown, rejected, rejections);
     if batch.want_segment_scores {
-        let c = &spec.config;
         for (index, o) in &outcomes {
             if let Outcome::Scored { stats, by_source, index: seg } = o {
                 ack.segment_scores.push(pb::SegmentScore {
                     index: *index,
                     segment_id: session.segment_id(*by_source, *seg).to_owned(),
-                    bleu: c.metrics.bleu.then(|| stats.bleu.sentence_score(c.bleu_order, c.smoothing, c.epsilon)),
-                    chrf: c.metrics.chrf.then(|| stats.chrf.score(c.chrf_char_order, 0, c.beta).score),
-                    chrfpp: c.metrics.chrfpp.then(|| stats.chrfpp.score(c.chrf_char_order, c.chrf_word_order, c.beta).score),
+                    scores: segment_scores_to_pb(stats, &spec.config),
                 });
             }
         }
@@ -346,10 +343,8 @@ fn report(session: &Session) -> pb::ScoresReport {
         session: spec.name.clone(),
         refset_digest: session.refs().digest_hex(),
         config: Some(config_to_pb(c)),
-        cumulative: Some(stats_to_pb(&cumulative, c)),
-        cumulative_scores: Some(scores_to_pb(&cumulative, c)),
-        recent: Some(stats_to_pb(&recent, c)),
-        recent_scores: Some(scores_to_pb(&recent, c)),
+        cumulative: Some(totals_to_pb(&cumulative, c)),
+        recent: Some(totals_to_pb(&recent, c)),
         window: spec.window as u32,
         unknown: counts.unknown,
         rejected: counts.rejected,

@@ -83,11 +83,11 @@ pub fn check_labels(labels: &BTreeMap<String, String>) -> Result<(), NameError> 
 }
 
 /// The normalised form of a source text used for lookup: Unicode NFC, white space collapsed to
-/// single spaces and trimmed, lowercased when the session lowercases.
-pub fn normalize_source(text: &str, lowercase: bool) -> String {
+/// single spaces and trimmed, lowercased when the session is caseless.
+pub fn normalize_source(text: &str, caseless: bool) -> String {
     let nfc: String = text.nfc().collect();
     let mut lowered = String::with_capacity(nfc.len());
-    push_lowercased(&nfc, lowercase, &mut lowered);
+    push_lowercased(&nfc, caseless, &mut lowered);
     let mut out = String::with_capacity(lowered.len());
     for w in lowered.split(is_space).filter(|w| !w.is_empty()) {
         if !out.is_empty() {
@@ -112,7 +112,7 @@ impl SourceIndex {
         let mut merged: Vec<SegmentInput> = Vec::new();
         for seg in refs.segments() {
             let Some(src) = seg.source() else { continue };
-            let key = normalize_source(src, config.lowercase);
+            let key = normalize_source(src, config.caseless);
             match map.get(&key) {
                 Some(&i) => merged[i as usize].refs.extend(seg.refs().map(str::to_owned)),
                 None => {
@@ -252,7 +252,7 @@ impl Session {
             },
             ItemKey::Source(src) => {
                 let Some(ix) = &self.sources else { return Outcome::Unknown };
-                match ix.map.get(&normalize_source(src, self.spec.config.lowercase)) {
+                match ix.map.get(&normalize_source(src, self.spec.config.caseless)) {
                     Some(&i) => Outcome::Scored { stats: ix.compiled.score_segment(i as usize, hyp, scratch), by_source: true, index: i },
                     None => Outcome::Unknown,
                 }
@@ -355,8 +355,8 @@ mod tests {
         )
     }
 
-    fn spec(lowercase: bool) -> SessionSpec {
-        let config = ScoreConfig { lowercase, ..Default::default() };
+    fn spec(caseless: bool) -> SessionSpec {
+        let config = ScoreConfig { caseless, ..Default::default() };
         SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2 }
     }
 

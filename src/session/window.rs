@@ -10,22 +10,23 @@ use crate::metric::{CorpusStats, OrderCounts, ScoreConfig, SegmentStats};
 #[derive(Debug, Clone, Copy)]
 struct Layout {
     bleu: usize,
-    chrf: usize,
+    /// (character orders, word orders) of chrF and of chrF++; (0, 0) when not configured.
+    chrf: (usize, usize),
     chrfpp: (usize, usize),
 }
 
 impl Layout {
     fn new(c: &ScoreConfig) -> Layout {
         Layout {
-            bleu: if c.metrics.bleu { c.bleu_order } else { 0 },
-            chrf: if c.metrics.chrf { c.chrf_char_order } else { 0 },
-            chrfpp: if c.metrics.chrfpp { (c.chrf_char_order, c.chrf_word_order) } else { (0, 0) },
+            bleu: c.bleu_order(),
+            chrf: c.metrics.chrf.map_or((0, 0), |p| (p.chars, p.words)),
+            chrfpp: c.metrics.chrfpp.map_or((0, 0), |p| (p.chars, p.words)),
         }
     }
 
     fn width(&self) -> usize {
         let b = if self.bleu > 0 { 2 * self.bleu + 2 } else { 0 };
-        b + 3 * self.chrf + 3 * (self.chrfpp.0 + self.chrfpp.1)
+        b + 3 * (self.chrf.0 + self.chrf.1) + 3 * (self.chrfpp.0 + self.chrfpp.1)
     }
 
     fn encode(&self, s: &SegmentStats, out: &mut Vec<u64>) {
@@ -40,7 +41,8 @@ impl Layout {
             out.extend_from_slice(&c.hyp[..n]);
             out.extend_from_slice(&c.reference[..n]);
         };
-        counts(&s.chrf.char, self.chrf, out);
+        counts(&s.chrf.char, self.chrf.0, out);
+        counts(&s.chrf.word, self.chrf.1, out);
         counts(&s.chrfpp.char, self.chrfpp.0, out);
         counts(&s.chrfpp.word, self.chrfpp.1, out);
     }
@@ -64,7 +66,8 @@ impl Layout {
             take(&mut c.hyp[..n]);
             take(&mut c.reference[..n]);
         };
-        counts(&mut s.chrf.char, self.chrf);
+        counts(&mut s.chrf.char, self.chrf.0);
+        counts(&mut s.chrf.word, self.chrf.1);
         counts(&mut s.chrfpp.char, self.chrfpp.0);
         counts(&mut s.chrfpp.word, self.chrfpp.1);
         s
@@ -172,7 +175,6 @@ impl Window {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::metric::MetricSet;
     use crate::rng::SplitMix64;
 
     fn random_stats(rng: &mut SplitMix64) -> SegmentStats {
@@ -213,8 +215,8 @@ mod tests {
 
     #[test]
     fn window_equals_sum_of_last_n() {
-        for metrics in ["bleu", "chrf", "chrf++", "bleu,chrf,chrf++"] {
-            let config = ScoreConfig { metrics: metrics.parse::<MetricSet>().unwrap(), bleu_order: 3, chrf_word_order: 1, ..Default::default() };
+        for metrics in ["bleu:order=3", "chrf", "chrf:words=1", "chrf++:words=1", "bleu:order=3 chrf:chars=4 chrf++:words=1"] {
+            let config: ScoreConfig = metrics.parse().unwrap();
             let layout = Layout::new(&config);
             let mut rng = SplitMix64::new(11);
             let mut w = Window::new(7, &config);

@@ -431,6 +431,32 @@ mod tests {
     }
 
     #[test]
+    fn sessions_stored_with_the_first_configuration_names_still_load() {
+        let d = dir("flat");
+        let digest = set("Tor C").digest_hex();
+        {
+            let st = Store::open(&d).unwrap();
+            st.put_refset("r", &set("Tor C")).unwrap();
+        }
+        {
+            // A session record as mtgauge 0.1 wrote it, before the interface was renamed.
+            let old = format!(
+                r#"{{"name":"s","refset":"r","refset_digest":"{digest}","config":{{"metrics":["bleu","chrf++"],"tokenizer":"nist","lowercase":true,
+                "bleu_order":3,"ref_length":"shortest","smoothing":"plus-one","epsilon":0.05,"chrf_char_order":5,"chrf_word_order":1,"beta":1.5}},
+                "labels":{{"model":"v6"}},"window":4,"created_unix":7}}"#
+            );
+            let db = Database::create(d.join(STORE_FILE)).unwrap();
+            let txn = db.begin_write().unwrap();
+            txn.open_table(SESSIONS).unwrap().insert("s", old.as_bytes()).unwrap();
+            txn.commit().unwrap();
+        }
+        let snap = Store::open(&d).unwrap().load().unwrap();
+        let want: ScoreConfig = "tokenizer=nist caseless=yes bleu:order=3,ref-length=shortest,smoothing=plus-one,epsilon=0.05 chrf++:chars=5,words=1,beta=1.5".parse().unwrap();
+        let s = &snap.sessions[0];
+        assert_eq!((s.spec.config, s.spec.window, s.spec.labels["model"].as_str()), (want, 4, "v6"));
+    }
+
+    #[test]
     fn other_schema_versions_are_refused_with_a_clear_message() {
         let d = dir("schema");
         drop(Store::open(&d).unwrap());

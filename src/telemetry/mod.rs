@@ -9,7 +9,8 @@ use metrics_exporter_prometheus::{Matcher, PrometheusBuilder, PrometheusHandle};
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 use tokio::net::TcpListener;
 
-use crate::metric::{ChrfStats, CorpusStats, ScoreConfig};
+use crate::metric::scores::corpus_score;
+use crate::metric::{CorpusStats, Metric, ScoreConfig};
 
 /// Buckets of `mtgauge_batch_seconds` (seconds; common practice for request latencies).
 pub const BATCH_SECONDS_BUCKETS: &[f64] = &[0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5];
@@ -49,7 +50,7 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(BLEU_NGRAMS, "BLEU hypothesis n-grams per session and order.");
     describe_counter!(HYP_TOKENS, "BLEU hypothesis length in tokens per session.");
     describe_counter!(REF_TOKENS, "BLEU effective reference length in tokens per session.");
-    describe_counter!(CHRF_MATCHES, "chrF n-gram matches per session, metric (chrf, chrf++), kind (char, word) and order.");
+    describe_counter!(CHRF_MATCHES, "chrF n-gram matches per session, metric (chrf, chrf++), kind (chars, words) and order.");
     describe_counter!(CHRF_HYP, "chrF hypothesis n-grams per session, metric, kind and order.");
     describe_counter!(CHRF_REF, "chrF reference n-grams per session, metric, kind and order.");
     describe_gauge!(SCORE, "Score (0-100) per session, metric and window (cumulative, recent), derived from this replica's statistics.");
@@ -152,8 +153,8 @@ fn counters(session: &str, config: &ScoreConfig, counts: [u64; 3], sum: &CorpusS
     for (outcome, n) in [("scored", scored), ("unknown", unknown), ("rejected", rejected)] {
         put(counter!(SEGMENTS, "session" => s.clone(), "outcome" => outcome), n);
     }
-    if config.metrics.bleu {
-        for n in 0..config.bleu_order {
+    if let Some(b) = config.metrics.bleu {
+        for n in 0..b.order {
             let order = (n + 1).to_string();
             put(counter!(BLEU_MATCHES, "session" => s.clone(), "order" => order.clone()), sum.bleu.matches[n]);
             put(counter!(BLEU_NGRAMS, "session" => s.clone(), "order" => order), sum.bleu.totals[n]);
@@ -161,47 +162,29 @@ fn counters(session: &str, config: &ScoreConfig, counts: [u64; 3], sum: &CorpusS
         put(counter!(HYP_TOKENS, "session" => s.clone()), sum.bleu.hyp_len);
         put(counter!(REF_TOKENS, "session" => s.clone()), sum.bleu.ref_len);
     }
-    let chrf = |metric: &'static str, st: &ChrfStats, words: usize| {
-        for (kind, counts, orders) in [("char", &st.char, config.chrf_char_order), ("word", &st.word, words)] {
+    for (metric, p) in config.chrf_family() {
+        let st = if metric == Metric::ChrfPlusPlus { &sum.chrfpp } else { &sum.chrf };
+        for (kind, counts, orders) in [("chars", &st.char, p.chars), ("words", &st.word, p.words)] {
             for n in 0..orders {
                 let order = (n + 1).to_string();
-                let labels = [("session", s.clone()), ("metric", metric.to_owned()), ("kind", kind.to_owned()), ("order", order)];
+                let labels = [("session", s.clone()), ("metric", metric.name().to_owned()), ("kind", kind.to_owned()), ("order", order)];
                 put(counter!(CHRF_MATCHES, &labels), counts.matches[n]);
                 put(counter!(CHRF_HYP, &labels), counts.hyp[n]);
                 put(counter!(CHRF_REF, &labels), counts.reference[n]);
             }
         }
-    };
-    if config.metrics.chrf {
-        chrf("chrf", &sum.chrf, 0);
-    }
-    if config.metrics.chrfpp {
-        chrf("chrf++", &sum.chrfpp, config.chrf_word_order);
     }
 }
 
 /// Set the score gauges of a session from its cumulative and recent statistics.
 pub fn record_scores(session: &str, config: &ScoreConfig, cumulative: &CorpusStats, recent: &CorpusStats) {
     for (window, st) in [("cumulative", cumulative), ("recent", recent)] {
-        for (metric, value) in scores(config, st) {
-            gauge!(SCORE, "session" => session.to_owned(), "metric" => metric, "window" => window).set(value);
+        for metric in config.metric_list() {
+            if let Some(value) = corpus_score(st, config, metric) {
+                gauge!(SCORE, "session" => session.to_owned(), "metric" => metric.name(), "window" => window).set(value);
+            }
         }
     }
-}
-
-/// The configured metrics' corpus scores (0-100).
-pub fn scores(config: &ScoreConfig, st: &CorpusStats) -> Vec<(&'static str, f64)> {
-    let mut v = Vec::new();
-    if config.metrics.bleu {
-        v.push(("bleu", st.bleu.score(config.bleu_order).score));
-    }
-    if config.metrics.chrf {
-        v.push(("chrf", st.chrf.score(config.chrf_char_order, 0, config.beta).score));
-    }
-    if config.metrics.chrfpp {
-        v.push(("chrf++", st.chrfpp.score(config.chrf_char_order, config.chrf_word_order, config.beta).score));
-    }
-    v
 }
 
 /// Publish (or re-publish) a session's info series; `config` is the scoring configuration as

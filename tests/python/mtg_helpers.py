@@ -81,11 +81,14 @@ class Mtgauge:
             raise AssertionError(f"stdout is not one JSON object: {exc}: {text[:500]!r}")
 
     def tokenize(self, name, lines, lowercase=False):
-        """Feed '\n'-terminated lines on stdin; return output split on '\n' only."""
+        """Feed '\n'-terminated lines on stdin; return output split on '\n' only.
+
+        `lowercase=True` runs `mtgauge tokenize --caseless` (the keyword keeps its old name for
+        the callers in test_tokenize_nltk.py)."""
         for line in lines:
             assert "\n" not in line and "\r" not in line
         data = "".join(line + "\n" for line in lines).encode("utf-8")
-        args = ["tokenize", "--tokenize", name] + (["--lowercase"] if lowercase else [])
+        args = ["tokenize", "--tokenizer", name] + (["--caseless"] if lowercase else [])
         proc = self.run_ok(args, data)
         out = proc.stdout.decode("utf-8")
         # Split on '\n' only: str.splitlines() would also split on U+2028 etc.

@@ -225,7 +225,7 @@ def offline(mtgauge, demo_dir):
     for system in (V7, DEGRADED):
         out[system] = mtgauge.score_json(["--ref", demo_dir / "refs.jsonl",
                                           "--hyp", demo_dir / f"hyp.{system}.de.txt",
-                                          "--metrics", "bleu,chrf"])
+                                          "--metric", "bleu", "--metric", "chrf"])
     return out
 
 
@@ -401,7 +401,7 @@ def send_all(jobs, tmp: Path):
         ids_f = write_lines(tmp / f"{producer}.ids.txt", ids)
         out, err = open(tmp / f"{producer}.out", "wb"), open(tmp / f"{producer}.err", "wb")
         cmd = [str(binary), "send", "--server", f"http://{replica.grpc_addr}",
-               "--session", session, "--create", "--refset", "ferry", "--metrics", "bleu,chrf",
+               "--session", session, "--create", "--refset", "ferry", "--metric", "bleu", "--metric", "chrf",
                "--hyp", str(hyp_f), "--ids", str(ids_f), "--producer", producer, "--json"]
         procs.append((cmd, subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=out, stderr=err),
                       out, err, producer, len(hyps)))
@@ -469,17 +469,27 @@ def test_fleet_scores_equal_offline_score(replicas, prometheus, corpus, offline,
 
     # The summed raw counters are exactly the offline statistics of the whole corpus.
     bleu, chrf = offline[V7]["bleu"], offline[V7]["chrf"]
-    for k, (m, t) in enumerate(zip(bleu["matches"], bleu["totals"]), start=1):
+    for k, (m, t) in enumerate(zip(bleu["matched"], bleu["candidates"]), start=1):
         assert prometheus.scalar(f'sum(mtgauge_bleu_matches_total{{{sel}, order="{k}"}})') == m
         assert prometheus.scalar(f'sum(mtgauge_bleu_ngrams_total{{{sel}, order="{k}"}})') == t
-    assert prometheus.scalar(f"sum(mtgauge_hypothesis_tokens_total{{{sel}}})") == bleu["hyp_length"]
-    assert prometheus.scalar(f"sum(mtgauge_reference_tokens_total{{{sel}}})") == bleu["ref_length"]
-    for name, key in [("matches", "matches"), ("hypothesis_ngrams", "hyp"),
-                      ("reference_ngrams", "ref")]:
-        for k, expected in enumerate(chrf["char"][key], start=1):
+    assert prometheus.scalar(f"sum(mtgauge_hypothesis_tokens_total{{{sel}}})") == bleu["tokens"]["hypothesis"]
+    assert prometheus.scalar(f"sum(mtgauge_reference_tokens_total{{{sel}}})") == bleu["tokens"]["reference"]
+    for name, key in [("matches", "matched"), ("hypothesis_ngrams", "candidates"),
+                      ("reference_ngrams", "reference")]:
+        for k, expected in enumerate(chrf["chars"][key], start=1):
             got = prometheus.scalar(f'sum(mtgauge_chrf_{name}_total{{{sel}, metric="chrf", '
-                                    f'kind="char", order="{k}"}})')
+                                    f'kind="chars", order="{k}"}})')
             assert got == expected, f"chrF {name} order {k}: {got} != {expected}"
+    # the chrF counters' kind label is "chars" (and "words"): no series keeps the old "char"
+    old_kind = prometheus.query(f'mtgauge_chrf_matches_total{{{sel}, kind="char"}}')
+    assert old_kind == [], old_kind
+    # Every replica describes the session's configuration in one line, the same on each:
+    # bleu and chrf with their defaults under the default tokenizer.
+    info = prometheus.query(f"mtgauge_session_info{{{sel}}}")
+    assert len(info) == len(replicas), info
+    assert {labels.get("config") for labels, _ in info} == {
+        "tokenizer=nist caseless=no bleu:order=4,ref-length=closest,smoothing=epsilon,epsilon=0.1 "
+        "chrf:chars=6,words=0,beta=2"}, info
 
     # Let the rule groups evaluate again on the complete counts, then compare the scores.
     time.sleep(3 * INTERVAL_S)
@@ -490,7 +500,7 @@ def test_fleet_scores_equal_offline_score(replicas, prometheus, corpus, offline,
     assert abs(fleet_bleu - bleu["score"]) <= SCORE_TOL, (fleet_bleu, bleu["score"])
     assert abs(fleet_chrf - chrf["score"]) <= SCORE_TOL, (fleet_chrf, chrf["score"])
     bp = one_value(prometheus, f"session:mtgauge_bleu_brevity_penalty:sum{{{sel}}}")
-    assert abs(bp - bleu["brevity_penalty"]) <= 1e-12, (bp, bleu["brevity_penalty"])
+    assert abs(bp - bleu["brevity"]) <= 1e-12, (bp, bleu["brevity"])
     p = one_value(prometheus, f'session_metric:mtgauge_chrf_precision:sum{{{sel}, metric="chrf"}}')
     r = one_value(prometheus, f'session_metric:mtgauge_chrf_recall:sum{{{sel}, metric="chrf"}}')
     assert abs(100 * p - chrf["precision"]) <= SCORE_TOL and abs(100 * r - chrf["recall"]) <= SCORE_TOL

@@ -5,8 +5,11 @@ requirements.txt), so the test breaks if the .proto files and the server disagre
 is `mtgauge serve` as a child process on ports picked by the OS, loaded with the files that
 `mtgauge demo --write-files` writes (the built-in, invented ferry-notice data set).
 
-Every expected number comes from the binary itself: the offline `mtgauge score --json` of the
-same files. No outside scoring tool is used or imitated.
+Every expected number comes from the binary itself (the offline `mtgauge score --json` of the
+same files), except in the session with a non-default BLEU epsilon, whose sentence scores are
+also compared with NLTK 3.10.4 (nltk.translate.bleu_score.sentence_bleu with
+SmoothingFunction(epsilon=...).method1) on an invented corpus. No outside scoring tool is used or
+imitated.
 
 Outside facts used here, with their sources:
   * grpc.health.v1 Health/Check and its SERVING status: the gRPC health checking protocol
@@ -32,6 +35,7 @@ from pathlib import Path
 
 import grpc
 import pytest
+from nltk.translate.bleu_score import SmoothingFunction, modified_precision, sentence_bleu
 from google.protobuf import descriptor_pool
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection_pb2, reflection_pb2_grpc
@@ -39,7 +43,8 @@ from grpc_reflection.v1alpha.proto_reflection_descriptor_database import (
     ProtoReflectionDescriptorDatabase,
 )
 
-from mtg_helpers import REPO, read_jsonl, require_binary
+from mtg_helpers import (REPO, make_bleu_corpus, read_jsonl, require_binary, write_lines,
+                         write_refs_jsonl)
 
 PROTO_ROOT = REPO / "proto"
 PROTO_FILES = ["common.proto", "refsets.proto", "sessions.proto", "scoring.proto"]
@@ -272,16 +277,22 @@ def offline(mtgauge, demo_dir):
             cache[system] = mtgauge.score_json([
                 "--ref", demo_dir / "refs.jsonl",
                 "--hyp", demo_dir / f"hyp.{system}.de.txt",
-                "--metrics", ",".join(METRICS),
+                *[a for m in METRICS for a in ("--metric", m)],
             ])
         return cache[system]
 
     return get
 
 
+def metric_configs(stubs, names=METRICS):
+    """One MetricConfig per name, every parameter left at its default (0 / empty)."""
+    return [stubs.common.MetricConfig(name=n) for n in names]
+
+
 def create_session(stubs, api, name, **extra):
     req = stubs.sessions.CreateSessionRequest(
-        name=name, refset="ferry", config=stubs.common.ScoreConfig(metrics=METRICS), **extra)
+        name=name, refset="ferry", config=stubs.common.ScoreConfig(metrics=metric_configs(stubs)),
+        **extra)
     info = api.sessions.Create(req, timeout=RPC_TIMEOUT)
     assert info.name == name
     assert info.refset == "ferry"
@@ -310,24 +321,55 @@ def check_acks(batches, acks, session, producer):
     return total
 
 
+def chrf_results(totals, where):
+    """{metric: ChrfResult} of a Totals message; the entries come in the order chrf, chrf++."""
+    names = [c.metric for c in totals.chrf]
+    assert names == [m for m in ("chrf", "chrf++") if m in names], (where, names)
+    assert len(set(names)) == len(names), (where, names)
+    return {c.metric: c for c in totals.chrf}
+
+
 def assert_stats_match_offline(report, off, where):
     """Integer statistics of a ScoresReport's cumulative part against `mtgauge score --json`."""
     cum = report.cumulative
     assert cum.segments == off["segments"] == 300, where
+    assert cum.HasField("bleu"), where
     bleu = cum.bleu
-    assert list(bleu.matches) == off["bleu"]["matches"], (where, "bleu.matches")
-    assert list(bleu.totals) == off["bleu"]["totals"], (where, "bleu.totals")
-    assert bleu.hyp_length == off["bleu"]["hyp_length"], (where, "bleu.hyp_length")
-    assert bleu.ref_length == off["bleu"]["ref_length"], (where, "bleu.ref_length")
-    for pb_name, json_name in (("chrf", "chrf"), ("chrfpp", "chrf++")):
-        stats = getattr(cum, pb_name)
-        for field in ("matches", "hyp", "ref"):
-            assert list(getattr(stats.chars, field)) == off[json_name]["char"][field], (
-                where, f"{pb_name}.chars.{field}")
-    assert not cum.chrf.words.matches, (where, "chrF has no word orders")
-    for field in ("matches", "hyp", "ref"):
-        assert list(getattr(cum.chrfpp.words, field)) == off["chrf++"]["word"][field], (
-            where, f"chrfpp.words.{field}")
+    assert list(bleu.matched) == off["bleu"]["matched"], (where, "bleu.matched")
+    assert list(bleu.candidates) == off["bleu"]["candidates"], (where, "bleu.candidates")
+    assert bleu.tokens.hypothesis == off["bleu"]["tokens"]["hypothesis"], (where, "bleu.tokens.hypothesis")
+    assert bleu.tokens.reference == off["bleu"]["tokens"]["reference"], (where, "bleu.tokens.reference")
+    chrf = chrf_results(cum, where)
+    assert sorted(chrf) == ["chrf", "chrf++"], (where, sorted(chrf))
+    for json_name in ("chrf", "chrf++"):
+        stats = chrf[json_name]
+        for field in ("matched", "candidates", "reference"):
+            assert list(getattr(stats.chars, field)) == off[json_name]["chars"][field], (
+                where, f"{json_name}.chars.{field}")
+    assert not chrf["chrf"].HasField("words"), (where, "chrF has no word orders")
+    assert not chrf["chrf"].words.matched, (where, "chrF has no word orders")
+    for field in ("matched", "candidates", "reference"):
+        assert list(getattr(chrf["chrf++"].words, field)) == off["chrf++"]["words"][field], (
+            where, f"chrf++.words.{field}")
+
+
+def assert_metric_configs_equal(cfg, ocfg, where):
+    """A ScoreConfig's MetricConfig entries against the `config.metrics` of `score --json`."""
+    by_name = {m.name: m for m in cfg.metrics}
+    assert len(by_name) == len(cfg.metrics), (where, [m.name for m in cfg.metrics])
+    assert sorted(by_name) == sorted(ocfg["metrics"]), (where, sorted(by_name))
+    for name, want in ocfg["metrics"].items():
+        m = by_name[name]
+        if name == "bleu":
+            got = {"order": m.order, "ref-length": m.ref_length, "smoothing": m.smoothing,
+                   "epsilon": m.epsilon}
+            unset = (m.chars, m.words, m.beta)
+        else:
+            got = {"chars": m.chars, "words": m.words, "beta": m.beta}
+            unset = (m.order, m.ref_length, m.smoothing, m.epsilon)
+        assert got == want, (where, name, got, want)
+        # "a parameter the metric does not have must be left unset" (common.proto)
+        assert not any(unset), (where, name, "parameters of another metric are set", m)
 
 
 # ---------------------------------------------------------------------------
@@ -441,26 +483,32 @@ def test_stream_scores_match_offline(v7_stream, offline):
     assert report.unknown == 0 and report.rejected == 0
     assert_stats_match_offline(report, off, "model-v7 via Stream")
 
-    sc = report.cumulative_scores
+    sc = report.cumulative
     assert sc.segments == 300
-    assert sc.HasField("bleu") and sc.HasField("chrf") and sc.HasField("chrfpp")
-    assert abs(sc.bleu - off["bleu"]["score"]) <= 1e-9, (sc.bleu, off["bleu"]["score"])
-    assert abs(sc.brevity_penalty - off["bleu"]["brevity_penalty"]) <= 1e-9
-    assert list(sc.bleu_precisions) == pytest.approx(off["bleu"]["precisions"], abs=1e-9)
-    assert abs(sc.chrf - off["chrf"]["score"]) <= 1e-9, (sc.chrf, off["chrf"]["score"])
-    assert abs(sc.chrfpp - off["chrf++"]["score"]) <= 1e-9, (sc.chrfpp, off["chrf++"]["score"])
+    assert sc.HasField("bleu")
+    chrf = chrf_results(sc, "model-v7 cumulative")
+    assert sorted(chrf) == ["chrf", "chrf++"]
+    assert abs(sc.bleu.score - off["bleu"]["score"]) <= 1e-9, (sc.bleu.score, off["bleu"]["score"])
+    assert abs(sc.bleu.brevity - off["bleu"]["brevity"]) <= 1e-9
+    assert list(sc.bleu.precision) == pytest.approx(off["bleu"]["precision"], abs=1e-9)
+    assert abs(sc.bleu.tokens.ratio - off["bleu"]["tokens"]["ratio"]) <= 1e-12
+    for name in ("chrf", "chrf++"):
+        c, oc = chrf[name], off[name]
+        assert abs(c.score - oc["score"]) <= 1e-9, (name, c.score, oc["score"])
+        assert abs(c.precision - oc["precision"]) <= 1e-9, (name, c.precision, oc["precision"])
+        assert abs(c.recall - oc["recall"]) <= 1e-9, (name, c.recall, oc["recall"])
+
+    # All 300 segments are inside the default window of 1000 (sessions.proto): the recent
+    # totals are the cumulative ones.
+    assert report.window == 1000
+    assert report.recent == report.cumulative
 
     # The configuration the session reports, every default filled in, is the offline one.
     cfg, ocfg = report.config, off["config"]
-    assert list(cfg.metrics) == ocfg["metrics"]
+    assert [m.name for m in cfg.metrics] == list(ocfg["metrics"]) == METRICS
     assert cfg.tokenizer == ocfg["tokenizer"]
-    assert cfg.lowercase == ocfg["lowercase"]
-    assert cfg.bleu_order == ocfg["bleu_order"]
-    assert cfg.ref_length == ocfg["ref_length"]
-    assert cfg.smoothing == ocfg["smoothing"]
-    assert cfg.chrf_char_order == ocfg["chrf_char_order"]
-    assert cfg.chrf_word_order == ocfg["chrf_word_order"]
-    assert cfg.chrf_beta == ocfg["beta"]
+    assert cfg.caseless == ocfg["caseless"]
+    assert_metric_configs_equal(cfg, ocfg, "model-v7 session")
 
 
 def test_live_traffic_source_lookup(stubs, api, demo_dir, demo_refs, offline):
@@ -483,7 +531,7 @@ def test_live_traffic_source_lookup(stubs, api, demo_dir, demo_refs, offline):
     assert report.unknown == 0 and report.rejected == 0
     off = offline("model-v8-rc")
     assert_stats_match_offline(report, off, "model-v8-rc via source lookup")
-    assert abs(report.cumulative_scores.bleu - off["bleu"]["score"]) <= 1e-9
+    assert abs(report.cumulative.bleu.score - off["bleu"]["score"]) <= 1e-9
 
 
 def test_duplicate_batch_not_counted_again(stubs, api, v7_stream):
@@ -498,7 +546,9 @@ def test_duplicate_batch_not_counted_again(stubs, api, v7_stream):
     after = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION),
                                   timeout=RPC_TIMEOUT)
     assert after.cumulative == before.cumulative
-    assert after.cumulative_scores == before.cumulative_scores
+    # the scores are part of Totals now: compared on their own as well
+    assert after.cumulative.bleu.score == before.cumulative.bleu.score
+    assert [c.score for c in after.cumulative.chrf] == [c.score for c in before.cumulative.chrf]
     assert after.recent == before.recent
     assert after.unknown == before.unknown and after.rejected == before.rejected
 
@@ -519,7 +569,8 @@ def test_error_unknown_session_not_found(stubs, api):
 
 def test_error_bad_session_name_invalid_argument(stubs, api):
     req = stubs.sessions.CreateSessionRequest(
-        name='bad name"', refset="ferry", config=stubs.common.ScoreConfig(metrics=METRICS))
+        name='bad name"', refset="ferry",
+        config=stubs.common.ScoreConfig(metrics=metric_configs(stubs)))
     _expect_error(grpc.StatusCode.INVALID_ARGUMENT, api.sessions.Create, req)
 
 
@@ -534,3 +585,165 @@ def test_error_empty_batch_invalid_argument(stubs, api):
     create_session(stubs, api, "py-empty-batch")
     batch = stubs.scoring.ScoreBatch(session="py-empty-batch", producer="py-empty", sequence=1)
     _expect_error(grpc.StatusCode.INVALID_ARGUMENT, api.scoring.Submit, batch)
+
+
+# ---------------------------------------------------------------------------
+# a session with a non-default BLEU epsilon, against NLTK 3.10.4
+
+EPS = 0.05  # not the default 0.1 of bleu:epsilon
+EPS_REFSET = "py-eps"
+EPS_SEGMENTS = 400
+
+
+@pytest.fixture(scope="session")
+def eps_corpus(stubs, api, demo_dir, tmp_path_factory):
+    """An invented corpus (mtg_helpers.make_bleu_corpus) loaded as the reference set py-eps.
+
+    Hypotheses have at least 4 tokens and no reference is empty, so every segment is scored
+    (no empty hypothesis), and many segments lack a 3-gram or 4-gram match: the segments on
+    which the epsilon smoothing is used."""
+    hyps, refs = make_bleu_corpus(seed=50505, nseg=EPS_SEGMENTS, min_refs=1, max_refs=3)
+    ids = [str(i) for i in range(1, EPS_SEGMENTS + 1)]  # the ids write_refs_jsonl gives
+    # the reference file must lie under the server's --refset-dir (demo_dir)
+    write_refs_jsonl(demo_dir / "py-eps.jsonl", [[" ".join(r) for r in rs] for rs in refs])
+    d = tmp_path_factory.mktemp("eps")
+    hyp_file = write_lines(d / "hyp.txt", [" ".join(h) for h in hyps])
+    ids_file = write_lines(d / "ids.txt", ids)
+    info = api.refsets.Load(stubs.refsets.LoadRefSetRequest(
+        name=EPS_REFSET, format=stubs.refsets.REF_FORMAT_JSONL, paths=["py-eps.jsonl"]),
+        timeout=RPC_TIMEOUT)
+    assert info.segments == EPS_SEGMENTS, info
+    return {"hyps": hyps, "refs": refs, "ids": ids, "hyp_file": hyp_file, "ids_file": ids_file,
+            "ref_file": demo_dir / "py-eps.jsonl"}
+
+
+def nltk_sentence_bleu_100(refs, hyp, eps):
+    # NLTK 3.10.4 sentence_bleu, uniform weights, SmoothingFunction(epsilon=eps).method1, 0-100
+    return 100 * sentence_bleu(refs, hyp, smoothing_function=SmoothingFunction(epsilon=eps).method1)
+
+
+def assert_eps_config(cfg, where):
+    """The configuration of an epsilon session with every default filled in."""
+    assert cfg.tokenizer == "whitespace", (where, cfg)
+    assert cfg.caseless is False, (where, cfg)
+    assert [m.name for m in cfg.metrics] == ["bleu"], (where, cfg)
+    (bleu,) = cfg.metrics
+    # the defaults of common.proto: order 4, ref_length closest, smoothing epsilon
+    assert (bleu.order, bleu.ref_length, bleu.smoothing) == (4, "closest", "epsilon"), (where, bleu)
+    assert bleu.epsilon == EPS, (where, bleu.epsilon)
+    assert (bleu.chars, bleu.words, bleu.beta) == (0, 0, 0.0), (where, "chrF parameters set on bleu")
+
+
+def segment_scores_with_eps(stubs, api, session, corpus, producer):
+    """Submit the corpus with want_segment_scores; return {segment_id: sentence BLEU}."""
+    items = [stubs.scoring.ScoreItem(segment_id=i, hypothesis=" ".join(h))
+             for i, h in zip(corpus["ids"], corpus["hyps"])]
+    got = {}
+    for seq, chunk in enumerate(batches_of(items, 50), start=1):
+        ack = api.scoring.Submit(stubs.scoring.ScoreBatch(
+            session=session, producer=producer, sequence=seq, items=chunk,
+            want_segment_scores=True), timeout=RPC_TIMEOUT)
+        assert not ack.duplicate and ack.scored == len(chunk), ack
+        assert ack.unknown == 0 and ack.rejected == 0, ack
+        assert len(ack.segment_scores) == len(chunk), (len(ack.segment_scores), len(chunk))
+        for s in ack.segment_scores:
+            assert chunk[s.index].segment_id == s.segment_id, (s.index, s.segment_id)
+            assert sorted(s.scores) == ["bleu"], dict(s.scores)
+            got[s.segment_id] = s.scores["bleu"]
+    assert len(got) == len(items)
+    return got
+
+
+def check_sentence_scores_vs_nltk(got, corpus, where):
+    bad, differs, tol = [], 0, 1e-9
+    for seg_id, h, rs in zip(corpus["ids"], corpus["hyps"], corpus["refs"]):
+        want = nltk_sentence_bleu_100(rs, h, EPS)
+        default = nltk_sentence_bleu_100(rs, h, 0.1)
+        # segments where some order has no match: there the epsilon changes the score
+        if min(modified_precision(rs, h, n).numerator for n in range(1, 5)) == 0 and want > 0:
+            differs += abs(want - default) > 1e-6
+        if abs(got[seg_id] - want) > tol:
+            bad.append((seg_id, got[seg_id], want, default))
+    assert differs > 50, f"{where}: only {differs} segments where epsilon 0.05 and 0.1 differ"
+    assert not bad, (f"{where}: {len(bad)} sentence BLEU mismatches vs NLTK 3.10.4 method1 "
+                     f"epsilon={EPS}; first (id, got, want, with epsilon 0.1): {bad[:3]}")
+
+
+def test_send_create_with_bleu_epsilon(mtgauge, server, stubs, api, eps_corpus):
+    """`mtgauge send --create --metric bleu:epsilon=0.05`: the session reports that epsilon and
+    computes its sentence scores with it; the corpus statistics equal the offline ones."""
+    session = "py-eps-cli"
+    proc = mtgauge.run_ok(["send", "--server", f"http://{server.grpc_addr}", "--session", session,
+                           "--create", "--refset", EPS_REFSET, "--tokenizer", "whitespace",
+                           "--metric", f"bleu:epsilon={EPS}", "--hyp", eps_corpus["hyp_file"],
+                           "--ids", eps_corpus["ids_file"], "--producer", "py-eps-send", "--json"])
+    ack = json.loads(proc.stdout.decode("utf-8"))
+    assert (ack["scored"], ack["unknown"], ack["rejected"]) == (EPS_SEGMENTS, 0, 0), ack
+
+    info = api.sessions.Get(stubs.sessions.GetSessionRequest(name=session), timeout=RPC_TIMEOUT)
+    assert info.refset == EPS_REFSET and info.scored == EPS_SEGMENTS, info
+    assert_eps_config(info.config, "SessionInfo.config of the send-created session")
+
+    # the offline score of the same files with the same metric spec
+    off = mtgauge.score_json(["--ref", eps_corpus["ref_file"], "--hyp", eps_corpus["hyp_file"],
+                              "--tokenizer", "whitespace", "--metric", f"bleu:epsilon={EPS}"])
+    assert off["config"]["metrics"] == {"bleu": {"order": 4, "ref-length": "closest",
+                                                 "smoothing": "epsilon", "epsilon": EPS}}
+    report = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=session),
+                                   timeout=RPC_TIMEOUT)
+    assert_eps_config(report.config, "ScoresReport.config of the send-created session")
+    cum = report.cumulative
+    assert cum.segments == EPS_SEGMENTS and list(cum.chrf) == [], cum
+    assert list(cum.bleu.matched) == off["bleu"]["matched"]
+    assert list(cum.bleu.candidates) == off["bleu"]["candidates"]
+    assert cum.bleu.tokens.hypothesis == off["bleu"]["tokens"]["hypothesis"]
+    assert cum.bleu.tokens.reference == off["bleu"]["tokens"]["reference"]
+    # the corpus score has no smoothing, whatever the epsilon
+    assert abs(cum.bleu.score - off["bleu"]["score"]) <= 1e-9, (cum.bleu.score, off["bleu"]["score"])
+
+    # sentence scores of the same session (a second producer: its items count once more)
+    got = segment_scores_with_eps(stubs, api, session, eps_corpus, "py-eps-segments")
+    check_sentence_scores_vs_nltk(got, eps_corpus, "send-created session")
+
+
+def test_client_create_with_metric_config_epsilon(stubs, api, eps_corpus, mtgauge, tmp_path):
+    """The same through the generated client: MetricConfig(name="bleu", epsilon=0.05)."""
+    session = "py-eps-client"
+    req = stubs.sessions.CreateSessionRequest(
+        name=session, refset=EPS_REFSET,
+        config=stubs.common.ScoreConfig(
+            tokenizer="whitespace", metrics=[stubs.common.MetricConfig(name="bleu", epsilon=EPS)]))
+    info = api.sessions.Create(req, timeout=RPC_TIMEOUT)
+    assert info.name == session and info.scored == 0
+    assert_eps_config(info.config, "SessionInfo.config of Create")
+    listed = [s for s in api.sessions.List(stubs.sessions.ListSessionsRequest(),
+                                           timeout=RPC_TIMEOUT).sessions if s.name == session]
+    assert len(listed) == 1
+    assert_eps_config(listed[0].config, "SessionInfo.config of List")
+
+    got = segment_scores_with_eps(stubs, api, session, eps_corpus, "py-eps-client-1")
+    check_sentence_scores_vs_nltk(got, eps_corpus, "client-created session")
+    # the offline per-segment scores with the same spec are the same numbers
+    seg_file = tmp_path / "seg.jsonl"
+    mtgauge.score_json(["--ref", eps_corpus["ref_file"], "--hyp", eps_corpus["hyp_file"],
+                        "--tokenizer", "whitespace", "--metric", f"bleu:epsilon={EPS}",
+                        "--per-segment", seg_file])
+    offline_segs = {s["id"]: s["bleu"]["score"] for s in read_jsonl(seg_file)}
+    assert offline_segs.keys() == got.keys()
+    bad = [(k, got[k], offline_segs[k]) for k in got if abs(got[k] - offline_segs[k]) > 1e-9]
+    assert not bad, f"{len(bad)} gRPC vs offline sentence BLEU mismatches; first: {bad[:3]}"
+
+
+def test_load_reports_its_config_line(mtgauge, server, serving):
+    """`mtgauge load --metric SPEC ... --json` names the configuration in one line under
+    "config" (the key "metrics" of before is gone)."""
+    proc = mtgauge.run(["load", "--server", f"http://{server.grpc_addr}", "--streams", "2",
+                        "--batch", "50", "--seconds", "1", "--segments", "500",
+                        "--metric", "bleu:order=2", "--metric", "chrf++:words=1", "--json"],
+                       timeout=120)
+    assert proc.returncode == 0, proc.stderr.decode("utf-8", "replace")[-2000:]
+    figures = json.loads(proc.stdout.decode("utf-8"))
+    assert "metrics" not in figures, sorted(figures)
+    assert figures["config"] == ("tokenizer=nist caseless=no "
+                                 "bleu:order=2,ref-length=closest,smoothing=epsilon,epsilon=0.1 "
+                                 "chrf++:chars=6,words=1,beta=2"), figures["config"]

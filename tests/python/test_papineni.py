@@ -48,8 +48,8 @@ def per_segment(mtgauge, tmp_path, hyps, refs_per_seg):
     hyp = write_lines(tmp_path / "hyp.txt", [" ".join(h) for h in hyps])
     ref = write_refs_jsonl(tmp_path / "refs.jsonl", [[" ".join(r) for r in rs] for rs in refs_per_seg])
     seg_file = tmp_path / "seg.jsonl"
-    out = mtgauge.score_json(["--ref", ref, "--hyp", hyp, "--tokenize", "whitespace",
-                              "--metrics", "bleu", "--smoothing", "none", "--per-segment", seg_file])
+    out = mtgauge.score_json(["--ref", ref, "--hyp", hyp, "--tokenizer", "whitespace",
+                              "--metric", "bleu:smoothing=none", "--per-segment", seg_file])
     return out, [s["bleu"] for s in read_jsonl(seg_file)]
 
 
@@ -65,10 +65,12 @@ def test_the_the_the(mtgauge, tmp_path, mp_examples):
     r1 = write_lines(tmp_path / "thethe_ref1.txt", [" ".join(refs[0])])
     r2 = write_lines(tmp_path / "thethe_ref2.txt", [" ".join(refs[1])])
     seg_file = tmp_path / "seg.jsonl"
-    mtgauge.score_json(["--ref", r1, "--ref", r2, "--hyp", h, "--tokenize", "whitespace",
-                        "--metrics", "bleu", "--per-segment", seg_file])
+    mtgauge.score_json(["--ref", r1, "--ref", r2, "--hyp", h, "--tokenizer", "whitespace",
+                        "--metric", "bleu", "--per-segment", seg_file])
     (seg,) = read_jsonl(seg_file)
-    assert (seg["bleu"]["matches"][0], seg["bleu"]["totals"][0]) == (2, 7)  # Papineni et al. 2002
+    assert (seg["bleu"]["matched"][0], seg["bleu"]["candidates"][0]) == (2, 7)  # Papineni et al. 2002
+    # the unsmoothed sentence precision on the 0-100 scale: 2/7 (Papineni et al. 2002)
+    assert seg["bleu"]["precision"][0] == pytest.approx(100 * 2 / 7, abs=1e-9)
 
 
 def test_guide_to_action(mtgauge, tmp_path, mp_examples):
@@ -85,8 +87,11 @@ def test_guide_to_action(mtgauge, tmp_path, mp_examples):
             assert (p.numerator, p.denominator) == expected[k][n - 1]
     out, segs = per_segment(mtgauge, tmp_path, [c1, c2], [refs, refs])
     for k in (0, 1):
-        got = [(segs[k]["matches"][n], segs[k]["totals"][n]) for n in (0, 1)]
+        got = [(segs[k]["matched"][n], segs[k]["candidates"][n]) for n in (0, 1)]
         assert got == expected[k], f"candidate {k + 1}"  # Papineni et al. 2002
+        for n in (0, 1):  # the same fractions as unsmoothed sentence precisions, 0-100
+            m, t = expected[k][n]
+            assert segs[k]["precision"][n] == pytest.approx(100 * m / t, abs=1e-9), (k, n)
     # sentence BLEU of candidate 1 vs NLTK 3.10.4 sentence_bleu (doctest: 0.5045...)
     assert segs[0]["score"] == pytest.approx(100 * sentence_bleu(refs, c1), abs=1e-9)
     # candidate 2 has no 3-gram match: 0 without smoothing (NLTK 3.10.4 doctest: round(.,4) == 0.0)

@@ -12,7 +12,10 @@ use std::sync::Arc;
 
 use libfuzzer_sys::arbitrary::Unstructured;
 use libfuzzer_sys::fuzz_target;
-use mtgauge::metric::{ChrfStats, CorpusStats, MetricSet, OrderCounts, RefLength, ScoreConfig, SegmentStats, Smoothing, MAX_BLEU_ORDER, MAX_CHRF_CHAR_ORDER};
+use mtgauge::metric::{
+    BleuParams, ChrfParams, ChrfStats, CorpusStats, Metric, Metrics, OrderCounts, RefLength, ScoreConfig, SegmentStats, Smoothing, MAX_BLEU_ORDER,
+    MAX_CHRF_CHAR_ORDER, MAX_CHRF_WORD_ORDER,
+};
 use mtgauge::refs::compiled::{Compiled, Scratch};
 use mtgauge::refs::{RefSet, SegmentInput};
 use mtgauge::text::{is_space, push_lowercased, Tokenizer};
@@ -41,20 +44,28 @@ fn reference(u: &mut Unstructured<'_>) -> String {
     base.repeat(times)
 }
 
+/// chrF-family parameters; chrF++ has at least one word order.
+fn chrf_params(u: &mut Unstructured<'_>, min_words: usize) -> ChrfParams {
+    ChrfParams {
+        chars: u.int_in_range(1..=MAX_CHRF_CHAR_ORDER).unwrap_or(6),
+        words: u.int_in_range(min_words..=MAX_CHRF_WORD_ORDER).unwrap_or(2),
+        beta: *u.choose(&[2.0, 1.0, 0.5, 3.0]).unwrap_or(&2.0),
+    }
+}
+
 fn config(u: &mut Unstructured<'_>) -> ScoreConfig {
     let pick = u.int_in_range(1..=7u8).unwrap_or(7);
-    let metrics = MetricSet { bleu: pick & 1 != 0, chrf: pick & 2 != 0, chrfpp: pick & 4 != 0 };
-    ScoreConfig {
-        metrics,
-        tokenizer: u.choose(&Tokenizer::ALL).copied().unwrap_or(Tokenizer::Nist),
-        lowercase: u.arbitrary().unwrap_or(false),
-        bleu_order: u.int_in_range(1..=MAX_BLEU_ORDER).unwrap_or(4),
+    let bleu = BleuParams {
+        order: u.int_in_range(1..=MAX_BLEU_ORDER).unwrap_or(4),
         ref_length: if u.arbitrary().unwrap_or(false) { RefLength::Shortest } else { RefLength::Closest },
         smoothing: u.choose(&Smoothing::ALL).copied().unwrap_or_default(),
-        chrf_char_order: u.int_in_range(1..=MAX_CHRF_CHAR_ORDER).unwrap_or(6),
-        chrf_word_order: u.int_in_range(1..=4usize).unwrap_or(2),
-        beta: *u.choose(&[2.0, 1.0, 0.5, 3.0]).unwrap_or(&2.0),
-        ..ScoreConfig::default()
+        ..BleuParams::default()
+    };
+    let (chrf, chrfpp) = (chrf_params(u, 0), chrf_params(u, 1));
+    ScoreConfig {
+        tokenizer: u.choose(&Tokenizer::ALL).copied().unwrap_or(Tokenizer::Nist),
+        caseless: u.arbitrary().unwrap_or(false),
+        metrics: Metrics { bleu: (pick & 1 != 0).then_some(bleu), chrf: (pick & 2 != 0).then_some(chrf), chrfpp: (pick & 4 != 0).then_some(chrfpp) },
     }
 }
 
@@ -102,10 +113,10 @@ fn words(text: &str, lowercase: bool) -> Vec<String> {
 /// The statistics of `hyp` against `refs` under `c`, by hand.
 fn by_hand(c: &ScoreConfig, refs: &[String], hyp: &str) -> SegmentStats {
     let mut out = SegmentStats::default();
-    if c.metrics.bleu {
-        let h = c.tokenizer.tokenize(hyp, c.lowercase);
-        let rs: Vec<Vec<String>> = refs.iter().map(|r| c.tokenizer.tokenize(r, c.lowercase)).collect();
-        for n in 1..=c.bleu_order {
+    if let Some(bp) = c.metrics.bleu {
+        let h = c.tokenizer.tokenize(hyp, c.caseless);
+        let rs: Vec<Vec<String>> = refs.iter().map(|r| c.tokenizer.tokenize(r, c.caseless)).collect();
+        for n in 1..=bp.order {
             // Clipping: each n-gram counts at most as often as in the one reference with most.
             let mut clip: HashMap<&[String], u64> = HashMap::new();
             for r in &rs {
@@ -118,27 +129,19 @@ fn by_hand(c: &ScoreConfig, refs: &[String], hyp: &str) -> SegmentStats {
             out.bleu.totals[n - 1] = ngram_count(h.len(), n);
         }
         out.bleu.hyp_len = h.len() as u64;
-        out.bleu.ref_len = c.ref_length.pick(h.len() as u64, rs.iter().map(|r| r.len() as u64));
+        out.bleu.ref_len = bp.ref_length.pick(h.len() as u64, rs.iter().map(|r| r.len() as u64));
     }
-    if c.metrics.any_chrf() {
-        let hc = chars(hyp, c.lowercase);
-        let hw = words(hyp, c.lowercase);
-        let (mut best_c, mut best_pp) = (f64::NEG_INFINITY, f64::NEG_INFINITY);
+    let hc = chars(hyp, c.caseless);
+    let hw = words(hyp, c.caseless);
+    for (metric, p) in c.chrf_family() {
+        let (stats, chosen) = if metric == Metric::Chrf { (&mut out.chrf, &mut out.chrf_ref) } else { (&mut out.chrfpp, &mut out.chrfpp_ref) };
+        let mut best = f64::NEG_INFINITY;
         for (k, r) in refs.iter().enumerate() {
-            let mut st = ChrfStats { char: order_counts(&hc, &chars(r, c.lowercase), c.chrf_char_order), word: OrderCounts::default() };
+            let st = ChrfStats { char: order_counts(&hc, &chars(r, c.caseless), p.chars), word: order_counts(&hw, &words(r, c.caseless), p.words) };
             // The first reference with the best sentence score is chosen.
-            if c.metrics.chrf {
-                let f = st.score(c.chrf_char_order, 0, c.beta).score;
-                if f > best_c {
-                    (best_c, out.chrf, out.chrf_ref) = (f, st, k as u32);
-                }
-            }
-            if c.metrics.chrfpp {
-                st.word = order_counts(&hw, &words(r, c.lowercase), c.chrf_word_order);
-                let f = st.score(c.chrf_char_order, c.chrf_word_order, c.beta).score;
-                if f > best_pp {
-                    (best_pp, out.chrfpp, out.chrfpp_ref) = (f, st, k as u32);
-                }
+            let f = st.score(p.chars, p.words, p.beta).score;
+            if f > best {
+                (best, *stats, *chosen) = (f, st, k as u32);
             }
         }
     }
@@ -154,12 +157,14 @@ fn check(c: &ScoreConfig, st: &SegmentStats, nrefs: usize) {
     let b = &st.bleu;
     for n in 0..MAX_BLEU_ORDER {
         assert!(b.matches[n] <= b.totals[n], "BLEU order {}: {} matches of {} n-grams", n + 1, b.matches[n], b.totals[n]);
-        if n >= c.bleu_order || !c.metrics.bleu {
+        if n >= c.bleu_order() {
             assert_eq!((b.matches[n], b.totals[n]), (0, 0), "BLEU order {} past the configured order", n + 1);
         }
     }
-    for (stats, on, word_order, chosen) in [(&st.chrf, c.metrics.chrf, 0, st.chrf_ref), (&st.chrfpp, c.metrics.chrfpp, c.chrf_word_order, st.chrfpp_ref)] {
-        for (counts, order) in [(&stats.char, c.chrf_char_order), (&stats.word, word_order)] {
+    for (stats, params, chosen) in [(&st.chrf, c.metrics.chrf, st.chrf_ref), (&st.chrfpp, c.metrics.chrfpp, st.chrfpp_ref)] {
+        let on = params.is_some();
+        let p = params.unwrap_or(ChrfParams { chars: 0, words: 0, beta: 2.0 });
+        for (counts, order) in [(&stats.char, p.chars), (&stats.word, p.words)] {
             for n in 0..MAX_CHRF_CHAR_ORDER {
                 let (m, h, r) = (counts.matches[n], counts.hyp[n], counts.reference[n]);
                 assert!(m <= h && m <= r, "chrF order {}: {m} matches, {h} hypothesis and {r} reference n-grams", n + 1);
@@ -170,12 +175,12 @@ fn check(c: &ScoreConfig, st: &SegmentStats, nrefs: usize) {
         }
         assert!((chosen as usize) < nrefs.max(1));
         if on {
-            in_range(stats.score(c.chrf_char_order, word_order, c.beta).score, "chrF");
+            in_range(stats.score(p.chars, p.words, p.beta).score, "chrF");
         }
     }
-    if c.metrics.bleu {
-        in_range(b.sentence_score(c.bleu_order, c.smoothing, c.epsilon), "sentence BLEU");
-        in_range(b.score(c.bleu_order).score, "BLEU");
+    if let Some(bp) = c.metrics.bleu {
+        in_range(b.sentence_score(bp.order, bp.smoothing, bp.epsilon), "sentence BLEU");
+        in_range(b.score(bp.order).score, "BLEU");
     }
 }
 
@@ -213,7 +218,7 @@ fuzz_target!(|data: &[u8]| {
         check(&c, &st, refs.len());
         let want = by_hand(&c, refs, hyp);
         assert_eq!(st, want, "segment {seg}: compiled statistics differ from the count by hand\nconfig {c:?}\nrefs {refs:?}\nhyp {hyp:?}");
-        if refs.contains(hyp) && c.metrics.bleu {
+        if refs.contains(hyp) && c.metrics.bleu.is_some() {
             assert_eq!(st.bleu.matches, st.bleu.totals, "a hypothesis equal to a reference matches every n-gram");
         }
         // The same buffers after other work, and fresh buffers, give the same result.
