@@ -2,7 +2,6 @@
 //!
 //! The scoring core (`text`, `metric`, `refs`) is pure and synchronous: no I/O, no async.
 pub mod cli;
-pub mod demo;
 pub mod metric;
 pub mod pb;
 pub mod refs;

@@ -14,7 +14,7 @@ use std::process::{Command, Output, Stdio};
 use std::time::{Duration, Instant};
 
 use common::{demo_files, temp_dir, Server};
-use mtgauge::demo::{demo_segments, demo_systems};
+use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
 use mtgauge::pb;
 use mtgauge::pb::ref_sets_client::RefSetsClient;
 use mtgauge::pb::scoring_client::ScoringClient;

@@ -9,7 +9,7 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
 use common::{demo_files, temp_dir, Server};
-use mtgauge::demo::{demo_segments, demo_systems};
+use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
 use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
 use mtgauge::pb::scoring_client::ScoringClient;

@@ -4,7 +4,7 @@ mod common;
 
 
 use common::{demo_files, demo_refset, temp_dir, Server};
-use mtgauge::demo::{demo_segments, demo_systems};
+use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
 use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
 use mtgauge::pb::ref_sets_client::RefSetsClient;
@@ -49,7 +49,7 @@ fn item(by_source: bool, seg: usize, hyp: &str) -> pb::ScoreItem {
     let segs = demo_segments();
     let key = if by_source {
         // Live traffic does not send clean text: vary case-preserving white space.
-        pb::score_item::Key::Source(format!("  {}\t", segs[seg].source.replace(' ', "  ")))
+        pb::score_item::Key::Source(format!("  {}\t", segs[seg].source_text().replace(' ', "  ")))
     } else {
         pb::score_item::Key::SegmentId(segs[seg].id.clone())
     };

@@ -13,7 +13,7 @@ use std::net::TcpStream;
 use std::time::{Duration, Instant};
 
 use common::{demo_files, demo_refset, temp_dir, Server};
-use mtgauge::demo::{demo_segments, demo_systems};
+use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
 use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
 use mtgauge::pb::scoring_client::ScoringClient;

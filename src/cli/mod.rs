@@ -4,8 +4,7 @@
 //! for a failed command.
 
 mod bench;
-mod demo;
-mod demo_live;
+pub mod demo;
 mod input;
 mod load;
 mod score;

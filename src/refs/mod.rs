@@ -19,15 +19,23 @@ pub use parse::{check_same_length, parse_jsonl, parse_plain, split_lines, InputE
 /// the encoding changes.
 const DIGEST_DOMAIN: &[u8] = b"mtgauge refset v1\n";
 
-/// One segment as given by a parser.
-#[derive(Debug, Clone, PartialEq, Eq)]
+/// One segment as given by a parser (and as a JSONL reference line is written).
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
 pub struct SegmentInput {
     /// Segment id, unique within the set.
     pub id: String,
     /// Source text, when known.
+    #[serde(skip_serializing_if = "Option::is_none")]
     pub source: Option<String>,
     /// References (one or more; an empty string is an allowed, empty reference).
     pub refs: Vec<String>,
+}
+
+impl SegmentInput {
+    /// The source text, or "" when it is not known.
+    pub fn source_text(&self) -> &str {
+        self.source.as_deref().unwrap_or("")
+    }
 }
 
 /// Why a set of segments is not a valid reference set.

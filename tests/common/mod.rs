@@ -152,11 +152,11 @@ impl Drop for Server {
 
 /// The demo reference set, as the offline engine sees it (the same set `demo_files` writes).
 pub fn demo_refset() -> Arc<mtgauge::refs::RefSet> {
-    let segs = mtgauge::demo::demo_segments().into_iter().map(|s| mtgauge::refs::SegmentInput { id: s.id, source: Some(s.source), refs: s.refs });
+    let segs = mtgauge::cli::demo::scenario::demo_segments();
     Arc::new(mtgauge::refs::RefSet::new(segs).unwrap())
 }
 
 /// Write the demo files into `dir`.
 pub fn demo_files(dir: &Path) {
-    mtgauge::demo::write_demo_files(dir).unwrap();
+    mtgauge::cli::demo::scenario::write_demo_files(dir).unwrap();
 }

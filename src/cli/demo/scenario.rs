@@ -2,7 +2,7 @@
 //! "Nordhavn Ferries", published in English and translated into German.
 //!
 //! Everything is generated deterministically from templates and slot fillers
-//! (see [`data`]) with a small self-contained PRNG, so the scenario is identical on
+//! (see [`super::phrases`]) with a small self-contained PRNG, so the scenario is identical on
 //! every run and every platform. It backs `mtgauge demo` and many tests.
 //!
 //! * [`demo_segments`] gives [`DEMO_SEGMENTS`] segments, each with an English source
@@ -12,15 +12,15 @@
 //! * [`degraded_hypothesis`] derives a hypothesis of a chosen quality from a segment.
 //! * [`write_demo_files`] writes the scenario as line-aligned text files plus JSONL.
 
-mod data;
 
 use std::collections::BTreeSet;
-use std::fmt::Write as _;
 use std::io::Write as _;
 use std::path::{Path, PathBuf};
 
+use super::phrases as data;
 use data::{LexEntry, Template};
 
+use crate::refs::SegmentInput;
 use crate::rng::SplitMix64;
 
 /// Number of segments in the demo scenario.
@@ -95,17 +95,6 @@ const GOOD_SYSTEM: (f64, u64) = (0.9, 0x0008_0001);
 const MEDIUM_SYSTEM: (f64, u64) = (0.6, 0x0007_0001);
 /// Quality and seed of the poor simulated system.
 const POOR_SYSTEM: (f64, u64) = (0.3, 0x00DD_0001);
-
-/// One reference-set segment of the demo scenario.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct DemoSegment {
-    /// Stable unique id, `"notice-0001"` to `"notice-0300"`.
-    pub id: String,
-    /// English source notice.
-    pub source: String,
-    /// Exactly two German human-style reference translations, worded differently.
-    pub refs: Vec<String>,
-}
 
 /// A simulated translation system: a name and one hypothesis per segment
 /// (same order as [`demo_segments`]).
@@ -300,7 +289,7 @@ fn template_schedule(rng: &mut SplitMix64) -> Vec<usize> {
 ///
 /// Deterministic: every call (on every platform) returns the same segments.
 /// Source texts are unique.
-pub fn demo_segments() -> Vec<DemoSegment> {
+pub fn demo_segments() -> Vec<SegmentInput> {
     let mut rng = SplitMix64::new(SEGMENT_SEED);
     let schedule = template_schedule(&mut rng);
     let mut seen = BTreeSet::new();
@@ -318,11 +307,7 @@ pub fn demo_segments() -> Vec<DemoSegment> {
             }
             let (source, refs) = rendered;
             seen.insert(source.clone());
-            DemoSegment {
-                id: format!("notice-{:04}", i + 1),
-                source,
-                refs,
-            }
+            SegmentInput { id: format!("notice-{:04}", i + 1), source: Some(source), refs }
         })
         .collect()
 }
@@ -503,7 +488,7 @@ fn corrupt_number(core: &str, rng: &mut SplitMix64) -> String {
 ///   exactly one of the references; at 0.0 roughly every other word is damaged.
 /// * Deterministic in (`seed`, `seg.id`, `seg` contents, `quality`).
 /// * A segment without references is perturbed from its source text instead.
-pub fn degraded_hypothesis(seg: &DemoSegment, quality: f64, seed: u64) -> String {
+pub fn degraded_hypothesis(seg: &SegmentInput, quality: f64, seed: u64) -> String {
     let quality = if quality.is_nan() {
         0.0
     } else {
@@ -515,14 +500,14 @@ pub fn degraded_hypothesis(seg: &DemoSegment, quality: f64, seed: u64) -> String
     rng.next_u64();
 
     let base = if seg.refs.is_empty() {
-        &seg.source
+        seg.source_text()
     } else {
         &seg.refs[rng.index(seg.refs.len())]
     };
     let mut tokens: Vec<Token> = base.split_whitespace().map(Token::parse).collect();
     // English words that could be left untranslated: not names shared with the base.
     let leftovers: Vec<String> = seg
-        .source
+        .source_text()
         .split_whitespace()
         .map(|w| Token::parse(w).core)
         .filter(|c| c.chars().count() >= MIN_LEFTOVER_CHARS && c.chars().all(char::is_alphabetic))
@@ -587,42 +572,9 @@ pub fn degraded_hypothesis(seg: &DemoSegment, quality: f64, seed: u64) -> String
     text
 }
 
-/// Escapes `s` as the contents of a JSON string literal (without the quotes).
-fn json_escape(s: &str) -> String {
-    let mut out = String::with_capacity(s.len() + 2);
-    for c in s.chars() {
-        match c {
-            '"' => out.push_str("\\\""),
-            '\\' => out.push_str("\\\\"),
-            '\n' => out.push_str("\\n"),
-            '\r' => out.push_str("\\r"),
-            '\t' => out.push_str("\\t"),
-            '\u{08}' => out.push_str("\\b"),
-            '\u{0C}' => out.push_str("\\f"),
-            c if u32::from(c) < 0x20 => {
-                // Writing into a String cannot fail.
-                let _ = write!(out, "\\u{:04x}", u32::from(c));
-            }
-            c => out.push(c),
-        }
-    }
-    out
-}
-
-/// One `refs.jsonl` line (without the newline) for `seg`, keys in the order
-/// `id`, `source`, `refs`.
-fn jsonl_line(seg: &DemoSegment) -> String {
-    let refs: Vec<String> = seg
-        .refs
-        .iter()
-        .map(|r| format!("\"{}\"", json_escape(r)))
-        .collect();
-    format!(
-        "{{\"id\": \"{}\", \"source\": \"{}\", \"refs\": [{}]}}",
-        json_escape(&seg.id),
-        json_escape(&seg.source),
-        refs.join(", ")
-    )
+/// One `refs.jsonl` line (without the newline) for `seg`: `{"id":…,"source":…,"refs":[…]}`.
+fn jsonl_line(seg: &SegmentInput) -> std::io::Result<String> {
+    serde_json::to_string(seg).map_err(std::io::Error::other)
 }
 
 /// Writes `lines` to `path`, each followed by `'\n'`.
@@ -650,7 +602,7 @@ pub fn write_demo_files(dir: &Path) -> std::io::Result<Vec<PathBuf>> {
     let mut written = Vec::new();
 
     let path = dir.join("source.en.txt");
-    write_lines(&path, segments.iter().map(|s| s.source.as_str()))?;
+    write_lines(&path, segments.iter().map(|s| s.source_text()))?;
     written.push(path);
 
     for r in 0..DEMO_REFS_PER_SEGMENT {
@@ -671,7 +623,7 @@ pub fn write_demo_files(dir: &Path) -> std::io::Result<Vec<PathBuf>> {
     }
 
     let path = dir.join("refs.jsonl");
-    let lines: Vec<String> = segments.iter().map(jsonl_line).collect();
+    let lines: Vec<String> = segments.iter().map(jsonl_line).collect::<Result<_, _>>()?;
     write_lines(&path, lines.iter().map(String::as_str))?;
     written.push(path);
 
@@ -712,12 +664,12 @@ mod tests {
     }
 
     /// Best overlap of `hyp` with any reference of `seg`.
-    fn best_overlap(hyp: &str, seg: &DemoSegment) -> f64 {
+    fn best_overlap(hyp: &str, seg: &SegmentInput) -> f64 {
         seg.refs.iter().map(|r| overlap(hyp, r)).fold(0.0, f64::max)
     }
 
     /// Mean best overlap of hypotheses produced at `quality` with `seed`.
-    fn mean_overlap(segments: &[DemoSegment], quality: f64, seed: u64) -> f64 {
+    fn mean_overlap(segments: &[SegmentInput], quality: f64, seed: u64) -> f64 {
         let total: f64 = segments
             .iter()
             .map(|s| best_overlap(&degraded_hypothesis(s, quality, seed), s))
@@ -725,7 +677,7 @@ mod tests {
         total / segments.len() as f64
     }
 
-    fn mean_system_overlap(segments: &[DemoSegment], system: &DemoSystem) -> f64 {
+    fn mean_system_overlap(segments: &[SegmentInput], system: &DemoSystem) -> f64 {
         let total: f64 = segments
             .iter()
             .zip(&system.hypotheses)
@@ -757,7 +709,7 @@ mod tests {
         for s in demo_segments() {
             assert_eq!(s.refs.len(), DEMO_REFS_PER_SEGMENT, "{}", s.id);
             assert_ne!(s.refs[0], s.refs[1], "{}", s.id);
-            assert!(!s.source.trim().is_empty(), "{}", s.id);
+            assert!(!s.source_text().trim().is_empty(), "{}", s.id);
             assert!(s.refs.iter().all(|r| !r.trim().is_empty()), "{}", s.id);
         }
     }
@@ -765,7 +717,7 @@ mod tests {
     #[test]
     fn texts_are_single_clean_lines_without_placeholders() {
         for s in demo_segments() {
-            for text in std::iter::once(&s.source).chain(&s.refs) {
+            for text in std::iter::once(s.source_text()).chain(s.refs.iter().map(String::as_str)) {
                 assert!(!text.contains(['\n', '\r', '\t', '{', '}']), "{text:?}");
                 assert_eq!(text.trim(), text, "{text:?}");
                 assert!(!text.contains("  "), "{text:?}");
@@ -776,7 +728,7 @@ mod tests {
     #[test]
     fn sources_are_unique() {
         let segments = demo_segments();
-        let sources: BTreeSet<&str> = segments.iter().map(|s| s.source.as_str()).collect();
+        let sources: BTreeSet<&str> = segments.iter().map(|s| s.source_text()).collect();
         assert_eq!(sources.len(), segments.len());
     }
 
@@ -785,7 +737,7 @@ mod tests {
         let segments = demo_segments();
         let lengths: Vec<usize> = segments
             .iter()
-            .flat_map(|s| std::iter::once(&s.source).chain(&s.refs))
+            .flat_map(|s| std::iter::once(s.source_text()).chain(s.refs.iter().map(String::as_str)))
             .map(|t| t.split_whitespace().count())
             .collect();
         let min = *lengths.iter().min().unwrap();
@@ -809,7 +761,7 @@ mod tests {
         for t in data::TEMPLATES {
             let prefix: String = t.en.chars().take_while(|&c| c != '{').collect();
             assert!(
-                segments.iter().any(|s| s.source.starts_with(&prefix)),
+                segments.iter().any(|s| s.source_text().starts_with(&prefix)),
                 "template {:?} unused",
                 t.en
             );
@@ -826,7 +778,7 @@ mod tests {
             .join(" ");
         let all_sources: String = segments
             .iter()
-            .map(|s| s.source.as_str())
+            .map(|s| s.source_text())
             .collect::<Vec<_>>()
             .join(" ");
         for needle in ["ß", "ä", "ö", "ü", "„", "–", ":", ","] {
@@ -975,12 +927,12 @@ mod tests {
 
     #[test]
     fn segment_without_refs_uses_source() {
-        let seg = DemoSegment {
+        let seg = SegmentInput {
             id: "x".into(),
-            source: "Boarding at gate A1 closes at 09:15.".into(),
+            source: Some("Boarding at gate A1 closes at 09:15.".into()),
             refs: vec![],
         };
-        assert_eq!(degraded_hypothesis(&seg, 1.0, 0), seg.source);
+        assert_eq!(degraded_hypothesis(&seg, 1.0, 0), seg.source_text());
     }
 
     #[test]
@@ -1032,15 +984,6 @@ mod tests {
     }
 
     #[test]
-    fn json_escape_round_trips() {
-        let nasty = "a \"quote\", a \\ backslash,\nnew line, tab\t, bell \u{7}, ü ß „x“";
-        let line = format!("\"{}\"", json_escape(nasty));
-        let parsed: String = serde_json::from_str(&line).unwrap();
-        assert_eq!(parsed, nasty);
-        assert!(!line.contains('\n'));
-    }
-
-    #[test]
     fn writes_aligned_files_and_valid_jsonl() {
         static COUNTER: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
         let dir = std::env::temp_dir().join(format!(
@@ -1081,7 +1024,7 @@ mod tests {
             .map(String::from)
             .collect();
         for (i, s) in segments.iter().enumerate() {
-            assert_eq!(sources[i], s.source);
+            assert_eq!(sources[i], s.source_text());
             assert_eq!(ref2[i], s.refs[1]);
             assert_eq!(hyp[i], systems[1].hypotheses[i]);
         }
@@ -1089,7 +1032,7 @@ mod tests {
         for (line, seg) in read("refs.jsonl").lines().zip(&segments) {
             let v: serde_json::Value = serde_json::from_str(line).unwrap();
             assert_eq!(v["id"], seg.id.as_str());
-            assert_eq!(v["source"], seg.source.as_str());
+            assert_eq!(v["source"], seg.source_text());
             let refs: Vec<&str> = v["refs"]
                 .as_array()
                 .unwrap()
@@ -1097,7 +1040,7 @@ mod tests {
                 .map(|r| r.as_str().unwrap())
                 .collect();
             assert_eq!(refs, seg.refs);
-            assert!(line.starts_with("{\"id\": "));
+            assert!(line.starts_with("{\"id\":\"notice-"), "keys in the order id, source, refs: {line}");
         }
         std::fs::remove_dir_all(&dir).unwrap();
     }

@@ -9,8 +9,9 @@ use std::time::{Duration, Instant};
 use tokio::sync::mpsc;
 use tonic::transport::Channel;
 
-use super::CliError;
-use crate::demo::{degraded_hypothesis, demo_segments, DemoSegment};
+use crate::cli::CliError;
+use super::scenario::{degraded_hypothesis, demo_segments};
+use crate::refs::SegmentInput;
 use crate::metric::{Metric, ScoreConfig};
 use crate::pb::convert::{config_from_pb, config_to_pb, score_of, stats_from_pb};
 use crate::pb;
@@ -78,7 +79,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
 
     // Upload the embedded reference set over the API, as a client would.
     let segments = Arc::new(demo_segments());
-    let jsonl: String = segments.iter().map(|s| serde_json::json!({"id": s.id, "source": s.source, "refs": s.refs}).to_string() + "\n").collect();
+    let jsonl = segments.iter().map(|s| serde_json::to_string(s).map(|l| l + "\n")).collect::<Result<String, _>>().map_err(|e| CliError::Usage(format!("demo: {e}")))?;
     let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: "ferry-notices".into(), format: pb::RefFormat::Jsonl as i32, files: 1, has_source: false, replace: false })) };
     let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
         .chain(jsonl.as_bytes().chunks(16 * 1024).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
@@ -171,7 +172,7 @@ async fn wait_serving(ch: &Channel) -> Result<(), CliError> {
 }
 
 /// One simulated producer: batches of random segments at a steady pace over one stream.
-async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, segments: Arc<Vec<DemoSegment>>, degraded: Arc<AtomicBool>, stop: Arc<AtomicBool>) {
+async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, segments: Arc<Vec<SegmentInput>>, degraded: Arc<AtomicBool>, stop: Arc<AtomicBool>) {
     let (tx, rx) = mpsc::channel::<pb::ScoreBatch>(4);
     let producer = format!("{}-{}", if by_source { "live" } else { "probe" }, seed);
     let Ok(resp) = ScoringClient::new(ch).stream(tokio_stream::wrappers::ReceiverStream::new(rx)).await else { return };
@@ -191,7 +192,7 @@ async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, s
                 } else if rng.chance(UNKNOWN_SHARE) {
                     pb::score_item::Key::Source(OFF_SCRIPT[rng.index(OFF_SCRIPT.len())].into())
                 } else {
-                    pb::score_item::Key::Source(seg.source.clone())
+                    pb::score_item::Key::Source(seg.source_text().to_owned())
                 };
                 pb::ScoreItem { key: Some(key), hypothesis }
             })

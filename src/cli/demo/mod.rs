@@ -10,9 +10,13 @@ use clap::Args;
 
 use super::score::score_corpus_lines;
 use super::{default_threads, CliError};
-use crate::demo::{demo_segments, demo_systems, write_demo_files};
+mod live;
+mod phrases;
+pub mod scenario;
+
+use scenario::{demo_segments, demo_systems, write_demo_files};
 use crate::metric::ScoreConfig;
-use crate::refs::{RefSet, SegmentInput};
+use crate::refs::RefSet;
 use crate::report::{stats_lines, PROXY_NOTE};
 
 /// Length of the live demo unless told.
@@ -38,11 +42,11 @@ pub(super) fn run(a: DemoArgs) -> Result<(), CliError> {
         if a.write_files.is_some() {
             return Err(CliError::Usage("--write-files goes with --offline".into()));
         }
-        return super::demo_live::run(a.seconds);
+        return live::run(a.seconds);
     }
     let segments = demo_segments();
     let set = Arc::new(
-        RefSet::new(segments.iter().map(|s| SegmentInput { id: s.id.clone(), source: Some(s.source.clone()), refs: s.refs.clone() }))
+        RefSet::new(segments)
             .map_err(|e| CliError::Usage(format!("built-in demo data is invalid: {e}")))?,
     );
     let config: ScoreConfig = "bleu chrf chrf++".parse().map_err(|e| CliError::Usage(format!("{e}")))?;
