@@ -2,6 +2,7 @@
 //!
 //! The scoring core (`text`, `metric`, `refs`) is pure and synchronous: no I/O, no async.
 pub mod cli;
+pub mod client;
 pub mod metric;
 pub mod pb;
 pub mod refs;

@@ -15,7 +15,7 @@ use serde_json::json;
 use tokio::sync::mpsc;
 
 use super::bench::{generate, refset, Corpus};
-use super::send::{channel, status_error, Conn};
+use crate::client::{channel, ClientError, Conn};
 use super::CliError;
 use crate::pb;
 use crate::pb::ref_sets_client::RefSetsClient;
@@ -139,7 +139,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         SessionsClient::new(ch.clone())
             .create(pb::CreateSessionRequest { name: name.clone(), refset: name.clone(), config: Some(config_to_pb(&config)), labels: Default::default(), window: 0, if_not_exists: false })
             .await
-            .map_err(|s| status_error("create session", s))?;
+            .map_err(|s| ClientError::call("create session", s))?;
         log(format!("phase 1: {} streams, batches of {}, as fast as acknowledged, {} s", a.streams, a.batch, a.seconds));
         // Meanwhile, a health check every PROBE_EVERY on a connection of its own shows whether
         // the server's async runtime stays responsive while it scores at full speed.
@@ -189,7 +189,7 @@ async fn upload(ch: &Conn, name: &str, corpus: &Corpus) -> Result<(), CliError> 
     let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
         .chain(text.as_bytes().chunks(1 << 20).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
         .collect();
-    RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(|s| status_error("upload", s))?;
+    RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(|s| ClientError::call("upload", s))?;
     Ok(())
 }
 
@@ -263,7 +263,7 @@ async fn drive(ch: &Conn, session: &str, corpus: &Arc<Corpus>, a: &LoadArgs, pac
     }
     let mut phase = Phase { segments: 0, seconds: 0.0, latencies: Vec::new(), health: Vec::new() };
     for t in tasks {
-        let (s, l) = t.await.map_err(|e| CliError::Usage(format!("load stream failed: {e}")))?.map_err(|s| status_error("scoring stream", s))?;
+        let (s, l) = t.await.map_err(|e| CliError::Usage(format!("load stream failed: {e}")))?.map_err(|s| ClientError::call("scoring stream", s))?;
         phase.segments += s;
         phase.latencies.extend(l);
     }

@@ -143,6 +143,9 @@ pub enum CliError {
     /// An invalid option value or combination.
     #[error("{0}")]
     Usage(String),
+    /// A call to a running server failed, or its connection settings are bad.
+    #[error(transparent)]
+    Client(#[from] crate::client::ClientError),
     /// Writing output failed.
     #[error("cannot write {what}: {source}")]
     Output {

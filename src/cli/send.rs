@@ -1,15 +1,13 @@
 //! `mtgauge send`: stream a hypothesis file into a session of a running server.
 
 use std::collections::BTreeMap;
-use std::time::Duration;
 
 use clap::Args;
 use sha2::{Digest, Sha256};
-use tonic::transport::{Channel, Endpoint};
-use tonic::Code;
 
 use super::input::{display_name, read_bytes};
 use super::{stderr_is_terminal, CliError, ScoringArgs};
+use crate::client::{channel, retryable, with_retry, Backoff, ClientError, Conn, MAX_ATTEMPTS};
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
@@ -18,11 +16,9 @@ use crate::pb::convert::config_to_pb;
 
 /// Items per batch unless told.
 pub const DEFAULT_BATCH: usize = 100;
-/// Attempts to reach the server before giving up.
-pub const MAX_ATTEMPTS: u32 = 8;
-/// First retry delay; doubles up to [`MAX_BACKOFF`].
-const FIRST_BACKOFF: Duration = Duration::from_millis(200);
-const MAX_BACKOFF: Duration = Duration::from_secs(5);
+/// Largest acknowledgement or batch message the stream client takes (well above the server's
+/// default message limit, so that the server's limit is the one that speaks).
+const STREAM_MESSAGE_BYTES: usize = 64 << 20;
 
 pub const LONG_ABOUT: &str = "\
 Stream a hypothesis file into a session of a running server and print the acknowledged counts.
@@ -77,74 +73,6 @@ pub struct SendArgs {
     /// Scoring configuration of the session to create.
     #[command(flatten)]
     pub scoring: ScoringArgs,
-}
-
-/// Environment variable holding the bearer token of client commands (kept out of argv).
-pub const TOKEN_ENV: &str = "MTGAUGE_TOKEN";
-/// Environment variables of the client TLS settings: server CA, and client certificate and key
-/// for mutual TLS (all PEM files).
-pub const TLS_CA_ENV: &str = "MTGAUGE_TLS_CA";
-pub const TLS_CERT_ENV: &str = "MTGAUGE_TLS_CERT";
-pub const TLS_KEY_ENV: &str = "MTGAUGE_TLS_KEY";
-
-/// Adds the bearer token, if any, to every call.
-#[derive(Clone)]
-pub struct TokenInterceptor(Option<tonic::metadata::MetadataValue<tonic::metadata::Ascii>>);
-
-impl tonic::service::Interceptor for TokenInterceptor {
-    fn call(&mut self, mut req: tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> {
-        if let Some(v) = &self.0 {
-            req.metadata_mut().insert("authorization", v.clone());
-        }
-        Ok(req)
-    }
-}
-
-/// A client connection: channel plus token.
-pub type Conn = tonic::service::interceptor::InterceptedService<Channel, TokenInterceptor>;
-
-/// Connect (lazily) to a server URL; TLS and token settings come from the environment
-/// (MTGAUGE_TLS_CA, MTGAUGE_TLS_CERT, MTGAUGE_TLS_KEY, MTGAUGE_TOKEN).
-pub fn channel(url: &str) -> Result<Conn, CliError> {
-    let mut ep = Endpoint::from_shared(url.to_owned()).map_err(|e| CliError::Usage(format!("--server {url}: {e}")))?;
-    let env_file = |k: &str| -> Result<Option<Vec<u8>>, CliError> {
-        match std::env::var_os(k) {
-            Some(p) => std::fs::read(&p).map(Some).map_err(|e| CliError::Usage(format!("{k}={}: {e}", p.to_string_lossy()))),
-            None => Ok(None),
-        }
-    };
-    let ca = env_file(TLS_CA_ENV)?;
-    let (cert, key) = (env_file(TLS_CERT_ENV)?, env_file(TLS_KEY_ENV)?);
-    if ca.is_some() || url.starts_with("https://") {
-        let _ = rustls::crypto::ring::default_provider().install_default();
-        let mut tls = tonic::transport::ClientTlsConfig::new();
-        if let Some(ca) = ca {
-            tls = tls.ca_certificate(tonic::transport::Certificate::from_pem(ca));
-        }
-        if let (Some(c), Some(k)) = (cert, key) {
-            tls = tls.identity(tonic::transport::Identity::from_pem(c, k));
-        }
-        ep = ep.tls_config(tls).map_err(|e| CliError::Usage(format!("TLS settings: {e}")))?;
-    }
-    let token = match std::env::var(TOKEN_ENV) {
-        Ok(t) if !t.is_empty() => Some(format!("Bearer {t}").parse().map_err(|_| CliError::Usage(format!("{TOKEN_ENV} holds characters a header cannot carry")))?),
-        _ => None,
-    };
-    let ch = ep
-        .connect_timeout(Duration::from_secs(5))
-        .initial_stream_window_size(crate::server::STREAM_WINDOW_BYTES)
-        .initial_connection_window_size(crate::server::CONNECTION_WINDOW_BYTES)
-        .connect_lazy();
-    Ok(tonic::service::interceptor::InterceptedService::new(ch, TokenInterceptor(token)))
-}
-
-/// The error line for a failed call.
-pub fn status_error(what: &str, s: tonic::Status) -> CliError {
-    CliError::Usage(format!("{what}: {} ({:?})", s.message(), s.code()))
-}
-
-fn retryable(s: &tonic::Status) -> bool {
-    matches!(s.code(), Code::Unavailable | Code::Unknown | Code::Cancelled | Code::DeadlineExceeded)
 }
 
 #[derive(Default, Debug, Clone, Copy)]
@@ -267,36 +195,16 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
     Ok(())
 }
 
-async fn with_retry<T, F, Fut>(what: &str, mut call: F) -> Result<T, CliError>
-where
-    F: FnMut() -> Fut,
-    Fut: std::future::Future<Output = Result<tonic::Response<T>, tonic::Status>>,
-{
-    let mut delay = FIRST_BACKOFF;
-    for attempt in 1..=MAX_ATTEMPTS {
-        match call().await {
-            Ok(r) => return Ok(r.into_inner()),
-            Err(s) if retryable(&s) && attempt < MAX_ATTEMPTS => {
-                eprintln!("mtgauge: {what}: {} ({:?}); retrying in {:.1} s (attempt {} of {MAX_ATTEMPTS})", s.message(), s.code(), delay.as_secs_f64(), attempt + 1);
-                tokio::time::sleep(delay).await;
-                delay = (delay * 2).min(MAX_BACKOFF);
-            }
-            Err(s) => return Err(status_error(what, s)),
-        }
-    }
-    unreachable!("the last attempt returns")
-}
-
 /// Stream every batch, resuming after the last acknowledged one when the connection fails (the
 /// server's per-producer sequence marks make a resent batch count once).
 async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result<Totals, CliError> {
     let mut totals = Totals::default();
     let mut next = 0usize;
-    let mut delay = FIRST_BACKOFF;
+    let mut backoff = Backoff::default();
     let mut failures = 0u32;
     while next < batches.len() {
         let before = next;
-        let mut client = ScoringClient::new(ch.clone()).max_decoding_message_size(64 << 20).max_encoding_message_size(64 << 20);
+        let mut client = ScoringClient::new(ch.clone()).max_decoding_message_size(STREAM_MESSAGE_BYTES).max_encoding_message_size(STREAM_MESSAGE_BYTES);
         let outbound = tokio_stream::iter(batches[next..].to_vec());
         let result = async {
             let mut acks = client.stream(outbound).await?.into_inner();
@@ -318,11 +226,11 @@ async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result
             Ok(()) if next >= batches.len() => break,
             // The server ended the stream early (shutting down): reconnect and resume.
             Ok(()) => "the server ended the stream".to_owned(),
-            Err(s) if !retryable(&s) => return Err(status_error("scoring stream", s)),
+            Err(s) if !retryable(&s) => return Err(ClientError::call("scoring stream", s).into()),
             Err(s) => format!("{} ({:?})", s.message(), s.code()),
         };
         if next > before {
-            (failures, delay) = (0, FIRST_BACKOFF);
+            (failures, backoff) = (0, Backoff::default());
         }
         failures += 1;
         if failures >= MAX_ATTEMPTS {
@@ -331,9 +239,8 @@ async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result
         if show {
             eprintln!();
         }
-        eprintln!("mtgauge: scoring stream: {last}; {next} of {} batches acknowledged, resuming in {:.1} s (attempt {} of {MAX_ATTEMPTS})", batches.len(), delay.as_secs_f64(), failures + 1);
-        tokio::time::sleep(delay).await;
-        delay = (delay * 2).min(MAX_BACKOFF);
+        eprintln!("mtgauge: scoring stream: {last}; {next} of {} batches acknowledged, resuming in {:.1} s (attempt {} of {MAX_ATTEMPTS})", batches.len(), backoff.delay().as_secs_f64(), failures + 1);
+        backoff.wait().await;
     }
     Ok(totals)
 }

@@ -3,7 +3,7 @@
 use clap::Args;
 use serde_json::{json, Value};
 
-use super::send::{channel, status_error};
+use crate::client::{channel, ClientError};
 use super::CliError;
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
@@ -67,12 +67,12 @@ pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
         let mut sessions = SessionsClient::new(ch.clone());
         let mut scoring = ScoringClient::new(ch);
         let infos = match &a.session {
-            Some(name) => vec![sessions.get(pb::GetSessionRequest { name: name.clone() }).await.map_err(|s| status_error("get session", s))?.into_inner()],
-            None => sessions.list(pb::ListSessionsRequest {}).await.map_err(|s| status_error("list sessions", s))?.into_inner().sessions,
+            Some(name) => vec![sessions.get(pb::GetSessionRequest { name: name.clone() }).await.map_err(|s| ClientError::call("get session", s))?.into_inner()],
+            None => sessions.list(pb::ListSessionsRequest {}).await.map_err(|s| ClientError::call("list sessions", s))?.into_inner().sessions,
         };
         let mut out = Vec::new();
         for info in infos {
-            let r = scoring.get_scores(pb::GetScoresRequest { session: info.name.clone() }).await.map_err(|s| status_error("get scores", s))?.into_inner();
+            let r = scoring.get_scores(pb::GetScoresRequest { session: info.name.clone() }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
             out.push(render(&r, &info)?);
         }
         Ok::<_, CliError>(out)
