@@ -8,25 +8,13 @@ use clap::Args;
 use serde::Deserialize;
 
 use super::CliError;
+use crate::server::limits::{Limit, LimitsSection};
 use crate::server::{self, Limits, ServerConfig, StartupRefSet, DEFAULT_LISTEN, DEFAULT_METRICS_LISTEN};
-use crate::server::state::{DEFAULT_MAX_BATCH_ITEMS, DEFAULT_MAX_REFSETS, DEFAULT_MAX_REFSET_BYTES, DEFAULT_MAX_SESSIONS, DEFAULT_MAX_STREAMS, DEFAULT_MAX_TEXT_BYTES, DEFAULT_MAX_TOTAL_REFSET_BYTES, DEFAULT_MAX_WATCHERS, DEFAULT_MAX_CONNECTIONS, DEFAULT_CONNECTION_IDLE_SECONDS};
 use crate::telemetry::{self, LogFormat};
 
 /// The long help of `serve`, with every limit's default taken from its constant.
 pub fn long_about() -> String {
-    let limits = [
-        ("max_batch_items", DEFAULT_MAX_BATCH_ITEMS.to_string(), "items in one batch"),
-        ("max_text_bytes", DEFAULT_MAX_TEXT_BYTES.to_string(), "bytes of one hypothesis or source"),
-        ("max_sessions", DEFAULT_MAX_SESSIONS.to_string(), "sessions"),
-        ("max_refsets", DEFAULT_MAX_REFSETS.to_string(), "reference sets"),
-        ("max_refset_bytes", DEFAULT_MAX_REFSET_BYTES.to_string(), "input bytes of one reference set"),
-        ("max_total_refset_bytes", DEFAULT_MAX_TOTAL_REFSET_BYTES.to_string(), "memory of all reference sets"),
-        ("max_streams", DEFAULT_MAX_STREAMS.to_string(), "scoring streams open at once"),
-        ("max_watchers", DEFAULT_MAX_WATCHERS.to_string(), "watch subscribers at once"),
-        ("max_connections", DEFAULT_MAX_CONNECTIONS.to_string(), "connections open at once; more are refused"),
-        ("connection_idle_seconds", DEFAULT_CONNECTION_IDLE_SECONDS.to_string(), "seconds of silence that close a connection"),
-    ];
-    let table: String = limits.iter().map(|(k, d, what)| format!("  {k:<24} {d:>11}  {what}\n")).collect();
+    let table: String = Limit::ALL.iter().map(|l| format!("  {:<24} {:>11}  {}\n", l.name(), l.default_value(), l.help())).collect();
     format!(
         "\
 Run the monitoring daemon: reference sets in memory, sessions, streaming scoring over gRPC, and \
@@ -47,14 +35,16 @@ RESOURCE_EXHAUSTED or INVALID_ARGUMENT naming its key:
 {table}
 gRPC health reports SERVING once the startup reference sets are loaded. SIGTERM or SIGINT: \
 NOT_SERVING, no new batches, in-flight batches are scored and acknowledged, exit within the \
-drain time. Port 0 picks a free port; the bound addresses are logged at startup.",
+drain time. Port 0 picks a free port; the bound addresses are logged at startup. \
+--show-config prints the settings this command line and file resolve to (every default \
+filled in), the keys the file accepts and the metrics the server exports, as JSON, and exits.",
         data_dir = crate::store::DEFAULT_DATA_DIR,
         max_message = crate::server::DEFAULT_MAX_MESSAGE_BYTES,
     )
 }
 
 /// `serve` options.
-#[derive(Debug, Args)]
+#[derive(Debug, Default, Args)]
 pub struct ServeArgs {
     /// TOML configuration file (see above for its keys).
     #[arg(long, value_name = "FILE")]
@@ -105,6 +95,10 @@ pub struct ServeArgs {
     /// Log format on stderr (level from RUST_LOG, default info) [default: human].
     #[arg(long, value_enum)]
     pub log_format: Option<LogFormat>,
+    /// Print the resolved settings (file, flags and defaults), the accepted config keys and
+    /// the exported metric names as JSON, then exit without serving.
+    #[arg(long)]
+    pub show_config: bool,
 }
 
 /// Durability of acknowledged batches.
@@ -117,9 +111,18 @@ pub enum Durability {
     None,
 }
 
+/// The config file's top-level keys (what `FileConfig` reads).
+const FILE_KEYS: [&str; 16] = [
+    "tls_cert", "tls_key", "tls_client_ca", "health_listen", "tokens", "data_dir", "durability", "group_commit_ms", "listen",
+    "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "limits", "refset",
+];
+/// The keys of one `[[refset]]` entry.
+const REFSET_KEYS: [&str; 3] = ["name", "paths", "source"];
+
+/// The config file as read (every key optional).
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
-struct FileConfig {
+pub struct FileConfig {
     tls_cert: Option<PathBuf>,
     tls_key: Option<PathBuf>,
     tls_client_ca: Option<PathBuf>,
@@ -135,24 +138,9 @@ struct FileConfig {
     log_format: Option<String>,
     max_message_bytes: Option<u64>,
     #[serde(default)]
-    limits: FileLimits,
+    limits: LimitsSection,
     #[serde(default)]
     refset: Vec<FileRefSet>,
-}
-
-#[derive(Debug, Default, Deserialize)]
-#[serde(deny_unknown_fields)]
-struct FileLimits {
-    max_batch_items: Option<i64>,
-    max_text_bytes: Option<i64>,
-    max_sessions: Option<i64>,
-    max_refsets: Option<i64>,
-    max_refset_bytes: Option<i64>,
-    max_total_refset_bytes: Option<i64>,
-    max_streams: Option<i64>,
-    max_watchers: Option<i64>,
-    max_connections: Option<i64>,
-    connection_idle_seconds: Option<i64>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -161,15 +149,6 @@ struct FileRefSet {
     name: String,
     paths: Vec<PathBuf>,
     source: Option<PathBuf>,
-}
-
-/// A positive limit from the file, or the default.
-fn limit(key: &str, v: Option<i64>, default: u64) -> Result<u64, CliError> {
-    match v {
-        None => Ok(default),
-        Some(n) if n >= 1 => Ok(n as u64),
-        Some(n) => Err(CliError::Usage(format!("config key {key} must be at least 1, got {n}"))),
-    }
 }
 
 /// Parse `NAME=PATH[,PATH...][,source:PATH]`.
@@ -188,48 +167,53 @@ pub fn parse_refset_flag(s: &str) -> Result<StartupRefSet, CliError> {
     Ok(out)
 }
 
-pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
-    let file: FileConfig = match &a.config {
-        Some(p) => {
-            let text = std::fs::read_to_string(p).map_err(|e| CliError::Usage(format!("{}: {e}", p.display())))?;
-            toml::from_str(&text).map_err(|e| {
-                // One line on stderr: the parser's multi-line snippet is folded.
-                let text = e.to_string();
-                let msg: Vec<&str> = text.lines().map(str::trim).filter(|l| !l.is_empty() && *l != "|").collect();
-                CliError::Usage(format!("{}: {}", p.display(), msg.join(" ")))
-            })?
-        }
-        None => FileConfig::default(),
-    };
+/// Read a config file's text (`name` for errors); a parse error is one line.
+pub fn parse_file(name: &str, text: &str) -> Result<FileConfig, CliError> {
+    toml::from_str(text).map_err(|e| {
+        // One line on stderr: the parser's multi-line snippet is folded.
+        let text = e.to_string();
+        let msg: Vec<&str> = text.lines().map(str::trim).filter(|l| !l.is_empty() && *l != "|").collect();
+        CliError::Usage(format!("{name}: {}", msg.join(" ")))
+    })
+}
+
+/// Everything `serve` runs with, resolved from the flags, the config file and the defaults.
+pub struct Resolved {
+    /// The server's settings (without the parts that need I/O: tokens and the health listener).
+    pub server: ServerConfig,
+    /// gRPC address.
+    pub listen: SocketAddr,
+    /// Prometheus address.
+    pub metrics_listen: SocketAddr,
+    /// Plaintext health address.
+    pub health_listen: Option<SocketAddr>,
+    /// Tokens file.
+    pub tokens: Option<PathBuf>,
+    /// Log format.
+    pub log_format: LogFormat,
+}
+
+/// Resolve flags over the file over the defaults; no I/O (tests call this).
+pub fn resolve(a: &ServeArgs, file: FileConfig) -> Result<Resolved, CliError> {
     let log_format = match (a.log_format, file.log_format.as_deref()) {
         (Some(f), _) => f,
         (None, None | Some("human")) => LogFormat::Human,
         (None, Some("json")) => LogFormat::Json,
         (None, Some(other)) => return Err(CliError::Usage(format!("config key log_format must be human or json, got '{other}'"))),
     };
-    let l = &file.limits;
-    let limits = Limits {
-        max_batch_items: limit("limits.max_batch_items", l.max_batch_items, DEFAULT_MAX_BATCH_ITEMS as u64)? as usize,
-        max_text_bytes: limit("limits.max_text_bytes", l.max_text_bytes, DEFAULT_MAX_TEXT_BYTES as u64)? as usize,
-        max_sessions: limit("limits.max_sessions", l.max_sessions, DEFAULT_MAX_SESSIONS as u64)? as usize,
-        max_refsets: limit("limits.max_refsets", l.max_refsets, DEFAULT_MAX_REFSETS as u64)? as usize,
-        max_refset_bytes: limit("limits.max_refset_bytes", l.max_refset_bytes, DEFAULT_MAX_REFSET_BYTES)?,
-        max_total_refset_bytes: limit("limits.max_total_refset_bytes", l.max_total_refset_bytes, DEFAULT_MAX_TOTAL_REFSET_BYTES)?,
-        max_streams: limit("limits.max_streams", l.max_streams, DEFAULT_MAX_STREAMS as u64)? as usize,
-        max_watchers: limit("limits.max_watchers", l.max_watchers, DEFAULT_MAX_WATCHERS as u64)? as usize,
-        max_connections: limit("limits.max_connections", l.max_connections, DEFAULT_MAX_CONNECTIONS as u64)? as usize,
-        connection_idle: Duration::from_secs(limit("limits.connection_idle_seconds", l.connection_idle_seconds, DEFAULT_CONNECTION_IDLE_SECONDS)?),
-    };
+    let limits = Limits::from_section(&file.limits.0).map_err(|e| CliError::Usage(e.to_string()))?;
     let mut startup: Vec<StartupRefSet> = file.refset.into_iter().map(|r| StartupRefSet { name: r.name, paths: r.paths, source: r.source }).collect();
     for s in &a.refsets {
         startup.push(parse_refset_flag(s)?);
     }
-    let mut config = ServerConfig { refset_dir: a.refset_dir.or(file.refset_dir), startup_refsets: startup, limits, ..Default::default() };
+    let mut config = ServerConfig { refset_dir: a.refset_dir.clone().or(file.refset_dir), startup_refsets: startup, limits, ..Default::default() };
     if let Some(m) = file.max_message_bytes {
-        config.max_message_bytes = usize::try_from(m).ok().filter(|&m| m >= 1024).ok_or_else(|| CliError::Usage(format!("config key max_message_bytes must be at least 1024, got {m}")))?;
+        config.max_message_bytes = usize::try_from(m).ok().filter(|&m| m >= server::MIN_MAX_MESSAGE_BYTES).ok_or_else(|| {
+            CliError::Usage(format!("config key max_message_bytes must be at least {}, got {m}", server::MIN_MAX_MESSAGE_BYTES))
+        })?;
     }
     config.data_dir = match a.durability.or(file.durability).unwrap_or(Durability::Sync) {
-        Durability::Sync => Some(a.data_dir.or(file.data_dir).unwrap_or_else(|| PathBuf::from(crate::store::DEFAULT_DATA_DIR))),
+        Durability::Sync => Some(a.data_dir.clone().or(file.data_dir).unwrap_or_else(|| PathBuf::from(crate::store::DEFAULT_DATA_DIR))),
         Durability::None => None,
     };
     if let Some(ms) = a.group_commit_ms.or(file.group_commit_ms) {
@@ -238,20 +222,74 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
     if let Some(d) = a.drain_seconds.or(file.drain_seconds) {
         config.drain = Duration::from_secs(d);
     }
-    let default_addr = |s: &str| s.parse::<SocketAddr>().expect("valid default address");
-    let listen = a.listen.or(file.listen).unwrap_or_else(|| default_addr(DEFAULT_LISTEN));
-    let metrics_listen = a.metrics_listen.or(file.metrics_listen).unwrap_or_else(|| default_addr(DEFAULT_METRICS_LISTEN));
-
-    config.tls = match (a.tls_cert.or(file.tls_cert), a.tls_key.or(file.tls_key)) {
-        (Some(cert), Some(key)) => Some(server::TlsFiles { cert, key, client_ca: a.tls_client_ca.or(file.tls_client_ca) }),
+    let default_addr = |s: &str| s.parse::<SocketAddr>().map_err(|e| CliError::Usage(format!("default address {s}: {e}")));
+    let listen = match a.listen.or(file.listen) {
+        Some(l) => l,
+        None => default_addr(DEFAULT_LISTEN)?,
+    };
+    let metrics_listen = match a.metrics_listen.or(file.metrics_listen) {
+        Some(l) => l,
+        None => default_addr(DEFAULT_METRICS_LISTEN)?,
+    };
+    config.tls = match (a.tls_cert.clone().or(file.tls_cert), a.tls_key.clone().or(file.tls_key)) {
+        (Some(cert), Some(key)) => Some(server::TlsFiles { cert, key, client_ca: a.tls_client_ca.clone().or(file.tls_client_ca) }),
         (None, None) => None,
         _ => return Err(CliError::Usage("TLS needs both a certificate (tls_cert) and a key (tls_key)".into())),
     };
-    if let Some(p) = a.tokens.or(file.tokens) {
+    Ok(Resolved { server: config, listen, metrics_listen, health_listen: a.health_listen.or(file.health_listen), tokens: a.tokens.clone().or(file.tokens), log_format })
+}
+
+/// What `--show-config` prints: the resolved settings, the accepted keys and the metrics.
+pub fn show_config(r: &Resolved) -> serde_json::Value {
+    let c = &r.server;
+    let path = |p: &Option<PathBuf>| p.as_ref().map(|p| p.display().to_string());
+    let refsets: Vec<serde_json::Value> = c
+        .startup_refsets
+        .iter()
+        .map(|s| serde_json::json!({"name": s.name, "paths": s.paths.iter().map(|p| p.display().to_string()).collect::<Vec<_>>(), "source": path(&s.source)}))
+        .collect();
+    serde_json::json!({
+        "settings": {
+            "listen": r.listen.to_string(),
+            "metrics_listen": r.metrics_listen.to_string(),
+            "health_listen": r.health_listen.map(|a| a.to_string()),
+            "refset_dir": path(&c.refset_dir),
+            "durability": if c.data_dir.is_some() { "sync" } else { "none" },
+            "data_dir": path(&c.data_dir),
+            "group_commit_ms": c.group_commit.as_millis() as u64,
+            "drain_seconds": c.drain.as_secs(),
+            "max_message_bytes": c.max_message_bytes,
+            "log_format": match r.log_format { LogFormat::Human => "human", LogFormat::Json => "json" },
+            "tls_cert": c.tls.as_ref().map(|t| t.cert.display().to_string()),
+            "tls_key": c.tls.as_ref().map(|t| t.key.display().to_string()),
+            "tls_client_ca": c.tls.as_ref().and_then(|t| t.client_ca.as_ref()).map(|p| p.display().to_string()),
+            "tokens": path(&r.tokens),
+            "limits": c.limits.section(),
+            "refset": refsets,
+        },
+        "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS },
+        "metrics": telemetry::METRIC_NAMES,
+    })
+}
+
+pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
+    let file = match &a.config {
+        Some(p) => {
+            let text = std::fs::read_to_string(p).map_err(|e| CliError::Usage(format!("{}: {e}", p.display())))?;
+            parse_file(&p.display().to_string(), &text)?
+        }
+        None => FileConfig::default(),
+    };
+    let r = resolve(&a, file)?;
+    if a.show_config {
+        println!("{}", serde_json::to_string_pretty(&show_config(&r)).unwrap_or_default());
+        return Ok(());
+    }
+    let Resolved { server: mut config, listen, metrics_listen, health_listen, tokens, log_format } = r;
+    if let Some(p) = tokens {
         let text = std::fs::read_to_string(&p).map_err(|e| CliError::Usage(format!("{}: {e}", p.display())))?;
         config.tokens = Some(std::sync::Arc::new(server::auth::Tokens::parse(&p.display().to_string(), &text).map_err(CliError::Usage)?));
     }
-    let health_listen = a.health_listen.or(file.health_listen);
 
     telemetry::init_logs(log_format);
     let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
@@ -292,5 +330,45 @@ async fn shutdown_signal() {
     #[cfg(not(unix))]
     {
         let _ = tokio::signal::ctrl_c().await;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn resolved(args: ServeArgs, file: &str) -> Result<Resolved, CliError> {
+        resolve(&args, parse_file("test.toml", file)?)
+    }
+
+    #[test]
+    fn defaults_come_from_the_constants() {
+        let r = resolved(ServeArgs::default(), "").unwrap();
+        assert_eq!(r.listen.to_string(), DEFAULT_LISTEN);
+        assert_eq!(r.metrics_listen.to_string(), DEFAULT_METRICS_LISTEN);
+        assert_eq!(r.server.data_dir, Some(PathBuf::from(crate::store::DEFAULT_DATA_DIR)));
+        assert_eq!((r.server.drain, r.server.group_commit), (server::DEFAULT_DRAIN, server::DEFAULT_GROUP_COMMIT));
+        assert_eq!(r.server.limits, Limits::default());
+        let shown = show_config(&r);
+        assert_eq!(shown["settings"]["drain_seconds"], server::DEFAULT_DRAIN.as_secs());
+        assert_eq!(shown["settings"]["limits"]["max_streams"], Limit::MaxStreams.default_value());
+        assert_eq!(shown["keys"]["limits"].as_array().map(Vec::len), Some(Limit::ALL.len()));
+        assert!(shown["metrics"].as_array().unwrap().iter().any(|m| m == "mtgauge_segments_total"));
+    }
+
+    #[test]
+    fn flags_override_the_file_and_bad_values_name_their_key() {
+        let file = "listen = \"127.0.0.1:9000\"\ndrain_seconds = 4\ndurability = \"none\"\n[limits]\nmax_streams = 7\n";
+        let args = ServeArgs { listen: Some("127.0.0.1:9100".parse().unwrap()), group_commit_ms: Some(9), ..Default::default() };
+        let r = resolved(args, file).unwrap();
+        assert_eq!(r.listen.port(), 9100, "the flag wins");
+        assert_eq!((r.server.drain.as_secs(), r.server.group_commit.as_millis(), r.server.data_dir.is_none()), (4, 9, true));
+        assert_eq!(r.server.limits.max_streams, 7);
+        let e = |file: &str| resolved(ServeArgs::default(), file).err().map(|e| e.to_string()).unwrap_or_default();
+        assert_eq!(e("[limits]\nmax_watchers = 0\n"), "config key limits.max_watchers must be at least 1, got 0");
+        assert!(e("[limits]\nmax_batch = 5\n").contains("unknown field `max_batch`, expected one of `max_batch_items`"));
+        assert_eq!(e("max_message_bytes = 10\n"), "config key max_message_bytes must be at least 1024, got 10");
+        assert!(e("tls_cert = \"a.pem\"\n").contains("TLS needs both"));
+        assert_eq!(e("[limits]\nmax_streams = 1\nmax_streams = 2\n").is_empty(), false, "a key twice is refused");
     }
 }

@@ -4,6 +4,7 @@
 pub mod auth;
 pub mod conn;
 pub mod error;
+pub mod limits;
 mod services;
 pub mod state;
 
@@ -17,7 +18,8 @@ use tokio::sync::watch;
 
 pub use error::ServiceError;
 use error::NameMessageLimit;
-pub use state::{Format, Limits, State};
+pub use limits::Limits;
+pub use state::{Format, State};
 
 use crate::pb;
 
@@ -27,6 +29,8 @@ pub const DEFAULT_LISTEN: &str = "127.0.0.1:7410";
 pub const DEFAULT_METRICS_LISTEN: &str = "127.0.0.1:7411";
 /// Largest gRPC message in bytes unless configured.
 pub const DEFAULT_MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
+/// Smallest `max_message_bytes` accepted (a smaller limit would refuse ordinary calls).
+pub const MIN_MAX_MESSAGE_BYTES: usize = 1024;
 /// How long a shutdown waits for in-flight batches before the process exits.
 pub const DEFAULT_DRAIN: Duration = Duration::from_secs(10);
 /// Seconds between reports of a watch stream unless asked.

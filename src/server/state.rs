@@ -6,7 +6,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
-use std::time::{Duration, SystemTime, UNIX_EPOCH};
+use std::time::{SystemTime, UNIX_EPOCH};
 
 use dashmap::mapref::entry::Entry;
 use dashmap::DashMap;
@@ -18,70 +18,7 @@ use crate::store::{BatchWrite, Store};
 use crate::refs::{parse_jsonl, parse_plain, InputError, RefSet};
 use crate::session::{check_labels, check_name, Session, SessionSpec, DEFAULT_WINDOW, MAX_WINDOW};
 
-/// Most items in one batch unless configured.
-pub const DEFAULT_MAX_BATCH_ITEMS: usize = 10_000;
-/// Longest hypothesis or source text in bytes unless configured.
-pub const DEFAULT_MAX_TEXT_BYTES: usize = 64 * 1024;
-/// Most sessions unless configured.
-pub const DEFAULT_MAX_SESSIONS: usize = 1_000;
-/// Most reference sets unless configured.
-pub const DEFAULT_MAX_REFSETS: usize = 100;
-/// Largest reference-set input (all files of one set) in bytes unless configured.
-pub const DEFAULT_MAX_REFSET_BYTES: u64 = 2 * 1024 * 1024 * 1024;
-/// Largest memory of all loaded reference sets together unless configured.
-pub const DEFAULT_MAX_TOTAL_REFSET_BYTES: u64 = 8 * 1024 * 1024 * 1024;
-/// Most scoring streams open at once unless configured.
-pub const DEFAULT_MAX_STREAMS: usize = 1024;
-/// Most watch subscribers at once unless configured.
-pub const DEFAULT_MAX_WATCHERS: usize = 256;
-
-/// Most client connections open at once on the gRPC port unless configured.
-pub const DEFAULT_MAX_CONNECTIONS: usize = 1024;
-/// Seconds after which a connection on which nothing was received is closed unless configured
-/// (the server pings every connection several times within it, so live clients stay).
-pub const DEFAULT_CONNECTION_IDLE_SECONDS: u64 = 300;
-
-/// Configurable limits (config keys in parentheses in their errors).
-#[derive(Debug, Clone, Copy)]
-pub struct Limits {
-    /// `limits.max_batch_items`.
-    pub max_batch_items: usize,
-    /// `limits.max_text_bytes`.
-    pub max_text_bytes: usize,
-    /// `limits.max_sessions`.
-    pub max_sessions: usize,
-    /// `limits.max_refsets`.
-    pub max_refsets: usize,
-    /// `limits.max_refset_bytes`.
-    pub max_refset_bytes: u64,
-    /// `limits.max_total_refset_bytes`.
-    pub max_total_refset_bytes: u64,
-    /// `limits.max_streams`.
-    pub max_streams: usize,
-    /// `limits.max_watchers`.
-    pub max_watchers: usize,
-    /// `limits.max_connections`.
-    pub max_connections: usize,
-    /// `limits.connection_idle_seconds`.
-    pub connection_idle: Duration,
-}
-
-impl Default for Limits {
-    fn default() -> Self {
-        Limits {
-            max_batch_items: DEFAULT_MAX_BATCH_ITEMS,
-            max_text_bytes: DEFAULT_MAX_TEXT_BYTES,
-            max_sessions: DEFAULT_MAX_SESSIONS,
-            max_refsets: DEFAULT_MAX_REFSETS,
-            max_refset_bytes: DEFAULT_MAX_REFSET_BYTES,
-            max_total_refset_bytes: DEFAULT_MAX_TOTAL_REFSET_BYTES,
-            max_streams: DEFAULT_MAX_STREAMS,
-            max_watchers: DEFAULT_MAX_WATCHERS,
-            max_connections: DEFAULT_MAX_CONNECTIONS,
-            connection_idle: Duration::from_secs(DEFAULT_CONNECTION_IDLE_SECONDS),
-        }
-    }
-}
+use super::limits::Limits;
 
 /// A loaded reference-set version.
 #[derive(Debug)]

@@ -37,6 +37,31 @@ const CONNECTIONS_IDLE_CLOSED: &str = "mtgauge_connections_idle_closed_total";
 const WATCH_SKIPPED: &str = "mtgauge_watch_reports_skipped_total";
 const METRICS_REFUSED: &str = "mtgauge_metrics_requests_refused_total";
 
+/// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
+pub const METRIC_NAMES: [&str; 21] = [
+    SEGMENTS,
+    BLEU_MATCHES,
+    BLEU_NGRAMS,
+    HYP_TOKENS,
+    REF_TOKENS,
+    CHRF_MATCHES,
+    CHRF_HYP,
+    CHRF_REF,
+    SCORE,
+    SESSION_INFO,
+    REFSET_SEGMENTS,
+    REFSET_BYTES,
+    ACTIVE_STREAMS,
+    BUILD_INFO,
+    BATCH_SECONDS,
+    CONNECTIONS_OPEN,
+    CONNECTIONS_ACCEPTED,
+    CONNECTIONS_REFUSED,
+    CONNECTIONS_IDLE_CLOSED,
+    WATCH_SKIPPED,
+    METRICS_REFUSED,
+];
+
 /// Install the process-wide Prometheus recorder and describe every metric.
 pub fn install_metrics() -> Result<PrometheusHandle, String> {
     let recorder = PrometheusBuilder::new()
@@ -260,4 +285,22 @@ pub fn init_logs(format: LogFormat) {
         LogFormat::Human => b.with_ansi(false).try_init(),
         LogFormat::Json => b.json().try_init(),
     };
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn every_metric_name_is_listed() {
+        // Each `const NAME: &str = "mtgauge_..."` of this file is in METRIC_NAMES (the list
+        // `serve --show-config` prints and the deploy tests check dashboards and rules against).
+        let src = include_str!("mod.rs");
+        let declared: Vec<&str> = src
+            .lines()
+            .filter_map(|l| l.strip_prefix("const ").and_then(|l| l.split_once(": &str = \"mtgauge_")).map(|(_, rest)| rest.trim_end_matches("\";")))
+            .collect();
+        assert_eq!(declared.len(), super::METRIC_NAMES.len(), "{declared:?}");
+        for d in declared {
+            assert!(super::METRIC_NAMES.contains(&format!("mtgauge_{d}").as_str()), "mtgauge_{d} is not in METRIC_NAMES");
+        }
+    }
 }

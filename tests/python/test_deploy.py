@@ -9,7 +9,7 @@ No cluster, registry or systemd instance is used. What is checked:
     back the input unchanged (the client itself silently drops unknown keys);
   * the invariants that tie the files together: probes on the gRPC port, grace period vs
     drain time, security context, Service/PDB selectors, the headless Service, scrape
-    annotations, the ConfigMap's TOML (parsed with tomllib, keys as in src/cli/serve.rs), the
+    annotations, the ConfigMap's TOML (parsed with tomllib, keys as `mtgauge serve --show-config` lists them), the
     mounted paths it names; the same config then runs in the real daemon (MTGAUGE_BIN);
   * the Dockerfile's build command is `cargo build --release --locked`, the release build CI runs;
   * the Grafana dashboard parses, every panel has a query, its PromQL parses (promtool);
@@ -21,6 +21,7 @@ MTGAUGE_DEPLOY_DIR points the checks at another copy of deploy/ (used to try bro
 """
 
 import configparser
+import functools
 import json
 import os
 import re
@@ -46,10 +47,6 @@ DOCKERFILE = DEPLOY / "Dockerfile"
 UNIT = DEPLOY / "systemd" / "mtgauge.service"
 UNIT_TOML = DEPLOY / "systemd" / "mtgauge.toml"
 DASHBOARD = DEPLOY / "grafana" / "mtgauge-dashboard.json"
-SERVE_RS = REPO / "src" / "cli" / "serve.rs"
-SERVER_RS = REPO / "src" / "server" / "mod.rs"
-TELEMETRY_RS = REPO / "src" / "telemetry" / "mod.rs"
-STORE_RS = REPO / "src" / "store" / "mod.rs"
 CI_RUN = REPO / ".ci" / "run"
 
 # Margin the grace period / stop timeout must leave after the drain (seconds).
@@ -164,10 +161,19 @@ def config_toml():
     return tomllib.loads(config_toml_text())
 
 
+@functools.lru_cache(maxsize=None)
+def shown_config(config_path=None):
+    """`mtgauge serve [--config FILE] --show-config`: the settings the daemon resolves (every
+    default filled in), the config keys it accepts and the metric names it exports, asked of
+    the binary under test rather than read from its source."""
+    argv = [str(require_binary()), "serve", "--show-config"] + (["--config", str(config_path)] if config_path else [])
+    p = subprocess.run(argv, capture_output=True, text=True, timeout=30)
+    assert p.returncode == 0, f"{argv}: exit {p.returncode}: {p.stderr}"
+    return json.loads(p.stdout)
+
+
 def default_drain_seconds():
-    m = re.search(r"DEFAULT_DRAIN: Duration = Duration::from_secs\((\d+)\)", SERVER_RS.read_text())
-    assert m, f"DEFAULT_DRAIN not found in {SERVER_RS}"
-    return int(m.group(1))
+    return shown_config()["settings"]["drain_seconds"]
 
 
 def drain_seconds(cfg):
@@ -175,9 +181,7 @@ def drain_seconds(cfg):
 
 
 def default_data_dir():
-    m = re.search(r'DEFAULT_DATA_DIR: &str = "([^"]+)"', STORE_RS.read_text())
-    assert m, f"DEFAULT_DATA_DIR not found in {STORE_RS}"
-    return m.group(1)
+    return shown_config()["settings"]["data_dir"]
 
 
 def data_dir(cfg):
@@ -333,18 +337,12 @@ def check_against(data, schema, path, errors):
 
 
 # ---------------------------------------------------------------------------------------------
-# the daemon's config keys (from src/cli/serve.rs)
+# the daemon's config keys (as `mtgauge serve --show-config` lists them)
 # ---------------------------------------------------------------------------------------------
 
-def struct_fields(src, name):
-    m = re.search(r"struct " + name + r" \{(.*?)\n\}", src, re.S)
-    assert m, f"struct {name} not found in {SERVE_RS}: update this test's key list"
-    return {f for f in re.findall(r"^\s*(\w+):", m.group(1), re.M)}
-
-
 def known_config_keys():
-    src = SERVE_RS.read_text()
-    return struct_fields(src, "FileConfig"), struct_fields(src, "FileLimits"), struct_fields(src, "FileRefSet")
+    keys = shown_config()["keys"]
+    return set(keys["top"]), set(keys["limits"]), set(keys["refset"])
 
 
 def check_config_keys(cfg, where):
@@ -694,6 +692,19 @@ def test_servicemonitor_selects_exactly_the_metrics_service():
 def test_configmap_toml_parses_with_known_keys():
     cfg = config_toml()
     check_config_keys(cfg, "ConfigMap TOML")
+
+
+def test_configmap_toml_resolves_in_the_daemon(tmp_path):
+    """The daemon itself reads the ConfigMap's TOML: every value it sets is what the daemon
+    then runs with (`serve --config FILE --show-config`)."""
+    f = tmp_path / "configmap.toml"
+    f.write_text(config_toml_text())
+    cfg, shown = config_toml(), shown_config(f)["settings"]
+    for key in ("listen", "metrics_listen", "data_dir", "durability", "drain_seconds", "group_commit_ms", "log_format"):
+        if key in cfg:
+            assert shown[key] == cfg[key], f"{key}: the file says {cfg[key]!r}, the daemon resolves {shown[key]!r}"
+    for k, v in cfg.get("limits", {}).items():
+        assert shown["limits"][k] == v, f"limits.{k}: the file says {v}, the daemon resolves {shown['limits'][k]}"
 
 
 def mounted_under(path):
@@ -1105,8 +1116,8 @@ def test_dashboard_recorded_series_named_in_one_place():
 
 
 def test_dashboard_raw_metrics_exist():
-    exported = set(re.findall(r'const \w+: &str = "(mtgauge_\w+)";', TELEMETRY_RS.read_text()))
-    assert exported, f"no metric names found in {TELEMETRY_RS}"
+    exported = set(shown_config()["metrics"])
+    assert "mtgauge_segments_total" in exported, f"serve --show-config lists no metrics: {exported}"
     d = dashboard()
     variables = dashboard_vars(d)
     exprs = [t["expr"] for p in panels(d) for t in p.get("targets", [])]
