@@ -1,11 +1,10 @@
 //! Reading input files and drawing progress for the offline commands.
 
 use std::io::{Read, Write};
-use std::path::Path;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::time::Duration;
 
-use crate::refs::{parse_jsonl, parse_plain, InputError, RefSet};
+use crate::refs::{self, InputError, RefSet};
 
 /// Name used for standard input in messages.
 pub const STDIN_NAME: &str = "<stdin>";
@@ -46,30 +45,21 @@ pub enum RefFormat {
 
 /// Load a reference set from `--ref` files (and an optional aligned source file for plain text).
 pub fn load_refset(paths: &[String], format: RefFormat, source: Option<&str>) -> Result<RefSet, InputError> {
-    let is_jsonl_name = |p: &str| {
-        let ext = Path::new(p).extension().and_then(|e| e.to_str()).unwrap_or("");
-        ext.eq_ignore_ascii_case("jsonl") || ext.eq_ignore_ascii_case("ndjson")
+    let format = match format {
+        RefFormat::Jsonl => refs::RefFormat::Jsonl,
+        RefFormat::Plain => refs::RefFormat::Plain,
+        RefFormat::Auto => refs::RefFormat::detect(paths),
     };
-    let jsonl = match format {
-        RefFormat::Jsonl => true,
-        RefFormat::Plain => false,
-        RefFormat::Auto => paths.len() == 1 && is_jsonl_name(&paths[0]),
-    };
-    let segments = if jsonl {
-        if paths.len() != 1 {
-            return Err(InputError::file(&paths[1], "a JSONL reference set is one file; give --ref once"));
-        }
-        if let Some(s) = source {
-            return Err(InputError::file(s, "a JSONL reference set carries its sources; drop the source file"));
-        }
-        parse_jsonl(display_name(&paths[0]), &read_bytes(&paths[0])?)?
-    } else {
-        let bytes: Vec<Vec<u8>> = paths.iter().map(|p| read_bytes(p)).collect::<Result<_, _>>()?;
-        let streams: Vec<(&str, &[u8])> = paths.iter().map(|p| display_name(p)).zip(bytes.iter().map(Vec::as_slice)).collect();
-        let src = source.map(read_bytes).transpose()?;
-        parse_plain(&streams, source.zip(src.as_deref()))?
-    };
-    RefSet::new(segments).map_err(|e| InputError::file(&paths[0], e.to_string()))
+    let bytes: Vec<Vec<u8>> = paths.iter().map(|p| read_bytes(p)).collect::<Result<_, _>>()?;
+    let files: Vec<(&str, &[u8])> = paths.iter().map(|p| display_name(p)).zip(bytes.iter().map(Vec::as_slice)).collect();
+    let src = source.map(read_bytes).transpose()?;
+    refs::load(format, &files, source.zip(src.as_deref())).map_err(|e| match e {
+        refs::LoadError::Input(e) => e,
+        refs::LoadError::JsonlFiles(_) => InputError::file(paths.get(1).map_or("", String::as_str), "a JSONL reference set is one file; give --ref once"),
+        refs::LoadError::JsonlSource => InputError::file(source.unwrap_or(""), "a JSONL reference set carries its sources; drop the source file"),
+        refs::LoadError::NoReferences => InputError::file("--ref", "no reference file given"),
+        refs::LoadError::Set { file, message } => InputError::file(&file, message),
+    })
 }
 
 /// A progress line on stderr, redrawn from a background thread while work runs.

@@ -7,12 +7,14 @@
 
 pub mod compiled;
 mod intern;
+mod load;
 mod parse;
 
 use std::fmt;
 
 use sha2::{Digest, Sha256};
 
+pub use load::{load, LoadError, RefFormat};
 pub use parse::{check_same_length, parse_jsonl, parse_plain, split_lines, InputError};
 
 /// Prefix of the canonical encoding hashed into a reference set's digest; bump the version when

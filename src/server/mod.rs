@@ -19,7 +19,7 @@ use tokio::sync::watch;
 pub use error::ServiceError;
 use error::NameMessageLimit;
 pub use limits::Limits;
-pub use state::{Format, State};
+pub use state::State;
 
 use crate::pb;
 
@@ -109,9 +109,7 @@ fn load_startup(state: &State, r: &StartupRefSet) -> Result<(), ServiceError> {
     };
     let files: Vec<(String, Vec<u8>)> = r.paths.iter().map(read).collect::<Result<_, _>>()?;
     let source = r.source.as_ref().map(read).transpose()?;
-    let jsonl = r.paths.len() == 1 && r.paths[0].extension().is_some_and(|e| e.eq_ignore_ascii_case("jsonl") || e.eq_ignore_ascii_case("ndjson"));
-    let format = if jsonl { Format::Jsonl } else { Format::Plain };
-    let set = state.parse_refset(format, &files, source.as_ref())?;
+    let set = state.parse_refset(crate::refs::RefFormat::detect(&r.paths), &files, source.as_ref())?;
     let loaded = state.insert_refset(&r.name, set, true)?;
     crate::telemetry::record_refset(&loaded.name, loaded.set.len(), loaded.set.memory_bytes());
     tracing::info!(refset = %loaded.name, segments = loaded.set.len(), digest = %loaded.set.digest_hex(), "reference set loaded");

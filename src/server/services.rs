@@ -14,7 +14,8 @@ use tonic::{Request, Response, Status, Streaming};
 
 use super::auth::{Scope, Tokens};
 use super::error::{Result, ServiceError};
-use super::state::{unix_now, Format, LoadedSet, ProducerClaim, State};
+use super::state::{unix_now, LoadedSet, ProducerClaim, State};
+use crate::refs::RefFormat as Format;
 use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
 use crate::metric::CorpusStats;
 use crate::pb;

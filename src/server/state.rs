@@ -15,7 +15,7 @@ use super::error::{Result, ServiceError};
 use crate::metric::{CorpusStats, ScoreConfig};
 use crate::session::Outcome;
 use crate::store::{BatchWrite, Store};
-use crate::refs::{parse_jsonl, parse_plain, InputError, RefSet};
+use crate::refs::{InputError, LoadError, RefFormat, RefSet};
 use crate::session::{check_labels, check_name, Session, SessionSpec, DEFAULT_WINDOW, MAX_WINDOW};
 
 use super::limits::Limits;
@@ -27,15 +27,6 @@ pub struct LoadedSet {
     pub name: String,
     /// The segments.
     pub set: Arc<RefSet>,
-}
-
-/// Input format of a reference set.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Format {
-    /// Line-aligned plain text streams.
-    Plain,
-    /// One JSONL file.
-    Jsonl,
 }
 
 /// Shared state; clone the handle freely.
@@ -215,27 +206,17 @@ impl State {
     }
 
     /// Parse a reference set from named byte buffers (CPU work: call from a blocking thread).
-    pub fn parse_refset(&self, format: Format, files: &[(String, Vec<u8>)], source: Option<&(String, Vec<u8>)>) -> Result<RefSet> {
+    pub fn parse_refset(&self, format: RefFormat, files: &[(String, Vec<u8>)], source: Option<&(String, Vec<u8>)>) -> Result<RefSet> {
         let total: u64 = files.iter().chain(source).map(|(_, b)| b.len() as u64).sum();
         if total > self.inner.limits.max_refset_bytes {
             return Err(ServiceError::Limit { what: format!("reference set input of {total} bytes"), limit: self.inner.limits.max_refset_bytes, key: "limits.max_refset_bytes" });
         }
-        let segments = match format {
-            Format::Jsonl => {
-                if files.len() != 1 || source.is_some() {
-                    return Err(ServiceError::Invalid("a JSONL reference set is exactly one file, without a source file".into()));
-                }
-                parse_jsonl(&files[0].0, &files[0].1)?
-            }
-            Format::Plain => {
-                if files.is_empty() {
-                    return Err(ServiceError::Invalid("a plain reference set needs at least one reference file".into()));
-                }
-                let streams: Vec<(&str, &[u8])> = files.iter().map(|(n, b)| (n.as_str(), b.as_slice())).collect();
-                parse_plain(&streams, source.map(|(n, b)| (n.as_str(), b.as_slice())))?
-            }
-        };
-        RefSet::new(segments).map_err(|e| ServiceError::Invalid(format!("{}: {e}", files[0].0)))
+        let streams: Vec<(&str, &[u8])> = files.iter().map(|(n, b)| (n.as_str(), b.as_slice())).collect();
+        crate::refs::load(format, &streams, source.map(|(n, b)| (n.as_str(), b.as_slice()))).map_err(|e| match e {
+            LoadError::Input(e) => ServiceError::Input(e),
+            LoadError::JsonlFiles(_) | LoadError::JsonlSource => ServiceError::Invalid("a JSONL reference set is exactly one file, without a source file".into()),
+            e => ServiceError::Invalid(e.to_string()),
+        })
     }
 
     /// Register a reference set under `name`.
