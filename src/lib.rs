@@ -1,6 +1,15 @@
+#![warn(missing_docs)]
 //! mtgauge: live machine-translation quality monitoring.
 //!
-//! The scoring core (`text`, `metric`, `refs`) is pure and synchronous: no I/O, no async.
+//! Layers, each importing only the ones below it: `cli` (one file per command) and `client`
+//! (the gRPC client side) -> `server` (gRPC services, the one shared state, the admin
+//! listeners) -> `store` (durable state) and `session` (sessions, windows, batch apply) ->
+//! `refs` (reference sets, compiled tables) -> `metric` (statistics and the scores derived from
+//! them) -> `text` (tokenizers); `pb` (the API and its conversions), `telemetry` (metric names
+//! and recording) and `report` (renderings) serve the layers above them.
+//!
+//! The scoring core (`text`, `metric`, `refs`, `session`) is synchronous and free of I/O: no
+//! async, no files, no network; `session` guards each session's state with a short std mutex.
 pub mod cli;
 pub mod client;
 pub mod metric;

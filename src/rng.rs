@@ -15,10 +15,12 @@ impl SplitMix64 {
     /// 2^-53, scales a 53-bit integer into [0, 1).
     const FLOAT_SCALE: f64 = 1.0 / (1u64 << 53) as f64;
 
+    /// A generator starting from `seed` (the same seed gives the same sequence everywhere).
     pub fn new(seed: u64) -> Self {
         Self { state: seed }
     }
 
+    /// The next 64 random bits.
     pub fn next_u64(&mut self) -> u64 {
         self.state = self.state.wrapping_add(Self::GAMMA);
         let mut z = self.state;

@@ -76,6 +76,8 @@ struct Phase {
 
 /// Interval of the responsiveness probe.
 const PROBE_EVERY: Duration = Duration::from_millis(20);
+/// Bytes per message when the load reference set is uploaded.
+const UPLOAD_CHUNK_BYTES: usize = 1 << 20;
 
 async fn probe_health(ch: Conn, end: Instant) -> Vec<f64> {
     let mut health = tonic_health::pb::health_client::HealthClient::new(ch);
@@ -187,7 +189,7 @@ async fn upload(ch: &Conn, name: &str, corpus: &Corpus) -> Result<(), CliError> 
     let text: String = corpus.refs.iter().map(|r| r[0].clone() + "\n").collect();
     let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::RefFormat::Plain as i32, files: 1, has_source: false, replace: true })) };
     let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
-        .chain(text.as_bytes().chunks(1 << 20).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
+        .chain(text.as_bytes().chunks(UPLOAD_CHUNK_BYTES).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
         .collect();
     RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(|s| ClientError::call("upload", s))?;
     Ok(())

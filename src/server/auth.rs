@@ -12,7 +12,9 @@
 //! appears in a log line or an error message: only the entry's name does.
 
 use sha2::{Digest, Sha256};
-use tonic::{Request, Status};
+use tonic::Request;
+
+use super::error::ServiceError;
 
 /// What a call needs.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -95,10 +97,10 @@ impl Tokens {
     }
 
     /// Check a request's bearer token for `scope`.
-    pub fn check<T>(&self, req: &Request<T>, scope: Scope) -> Result<(), Status> {
+    pub fn check<T>(&self, req: &Request<T>, scope: Scope) -> Result<(), ServiceError> {
         let header = req.metadata().get("authorization").and_then(|v| v.to_str().ok()).unwrap_or("");
         let Some(token) = header.strip_prefix("Bearer ").map(str::trim).filter(|t| !t.is_empty()) else {
-            return Err(Status::unauthenticated("missing bearer token (authorization: Bearer <token>)"));
+            return Err(ServiceError::Unauthenticated("missing bearer token (authorization: Bearer <token>)".into()));
         };
         let presented: [u8; 32] = Sha256::digest(token.as_bytes()).into();
         // Compare with every entry, without an early exit, so timing says nothing.
@@ -109,11 +111,11 @@ impl Tokens {
                 found = Some(e);
             }
         }
-        let e = found.ok_or_else(|| Status::unauthenticated("invalid token"))?;
+        let e = found.ok_or_else(|| ServiceError::Unauthenticated("invalid token".into()))?;
         if e.scopes.contains(&scope) || e.scopes.contains(&Scope::Admin) {
             Ok(())
         } else {
-            Err(Status::permission_denied(format!("token '{}' lacks the '{}' scope", e.name, scope.name())))
+            Err(ServiceError::Forbidden(format!("token '{}' lacks the '{}' scope", e.name, scope.name())))
         }
     }
 }
@@ -134,12 +136,13 @@ mod tests {
             r
         };
         assert!(t.check(&req(Some("t-probe")), Scope::Submit).is_ok());
-        let denied = t.check(&req(Some("t-probe")), Scope::Admin).unwrap_err();
+        let status = |e: ServiceError| tonic::Status::from(e);
+        let denied = status(t.check(&req(Some("t-probe")), Scope::Admin).unwrap_err());
         assert_eq!(denied.code(), tonic::Code::PermissionDenied);
         assert!(!denied.message().contains("t-probe") && denied.message().contains("probe"));
         assert!(t.check(&req(Some("t-ops")), Scope::Read).is_ok(), "admin implies read");
-        assert_eq!(t.check(&req(Some("nope")), Scope::Read).unwrap_err().code(), tonic::Code::Unauthenticated);
-        assert_eq!(t.check(&req(None), Scope::Read).unwrap_err().code(), tonic::Code::Unauthenticated);
+        assert_eq!(status(t.check(&req(Some("nope")), Scope::Read).unwrap_err()).code(), tonic::Code::Unauthenticated);
+        assert_eq!(status(t.check(&req(None), Scope::Read).unwrap_err()).code(), tonic::Code::Unauthenticated);
         let e = Tokens::parse("tokens", "plaintext-token submit\n").err().unwrap();
         assert!(e.starts_with("tokens:1:") && !e.contains("plaintext-token"), "{e}");
         assert!(Tokens::parse("tokens", &format!("{} bogus x\n", token_line_hash("a"))).err().unwrap().contains("unknown scope"));

@@ -25,11 +25,16 @@ use tokio::time::{Instant, Sleep};
 use tokio_stream::wrappers::ReceiverStream;
 use tonic::transport::server::{Connected, TcpConnectInfo};
 
+use super::error::ServiceError;
+use super::limits::Limit;
 use crate::telemetry;
 
 /// Pause after a failed `accept` (for example out of file descriptors) before the next one, so
 /// that a persistent failure does not spin a core.
 pub const ACCEPT_ERROR_PAUSE: Duration = Duration::from_millis(50);
+/// Refused connections are logged at most once per this interval (a flood must not become a
+/// flood of log lines).
+pub const REFUSAL_LOG_INTERVAL: Duration = Duration::from_secs(1);
 /// Longest interval between the server's HTTP/2 keepalive pings.
 pub const KEEPALIVE_INTERVAL: Duration = Duration::from_secs(30);
 /// Longest wait for a ping's acknowledgement before the connection is closed.
@@ -71,10 +76,10 @@ impl Listener {
     }
 
     /// What a client past the limit of `max` connections is told.
-    fn refusal(self, max: usize) -> String {
+    fn refusal(self, max: usize) -> ServiceError {
         match self {
-            Listener::Grpc => format!("connection limit reached: {max} connections are open (limits.max_connections)"),
-            Listener::Health => format!("connection limit reached: {max} connections are open on the health listener"),
+            Listener::Grpc => ServiceError::Limit { what: format!("connection {}", max + 1), limit: max as u64, key: Limit::MaxConnections.key() },
+            Listener::Health => ServiceError::Busy(format!("connection limit reached: {max} connections are open on the health listener")),
         }
     }
 }
@@ -88,8 +93,8 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
     let (over_tx, over_rx) = mpsc::channel(ACCEPT_QUEUE);
     let open = Arc::new(Semaphore::new(max));
     let refusing = Arc::new(Semaphore::new(REFUSING_MAX_CONNECTIONS));
-    let refusal = which.refusal(max);
-    serve_refusals(ReceiverStream::new(over_rx), tls, refusal.clone())?;
+    let refusal = which.refusal(max).to_string();
+    serve_refusals(ReceiverStream::new(over_rx), tls, which, max)?;
     tokio::spawn(async move {
         // Log refusals at most once per second: a flood must not become a flood of log lines.
         let mut last_warning: Option<Instant> = None;
@@ -108,7 +113,7 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
             };
             let Ok(permit) = Arc::clone(&open).try_acquire_owned() else {
                 telemetry::connection_refused(which.label());
-                if last_warning.is_none_or(|t| t.elapsed() >= Duration::from_secs(1)) {
+                if last_warning.is_none_or(|t| t.elapsed() >= REFUSAL_LOG_INTERVAL) {
                     last_warning = Some(Instant::now());
                     tracing::warn!(%peer, listener = which.label(), "connection refused: {refusal}");
                 }
@@ -128,10 +133,10 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
     Ok(ReceiverStream::new(rx))
 }
 
-/// Answer every call on over-limit connections with RESOURCE_EXHAUSTED and `message`, and close
+/// Answer every call on over-limit connections with `which`'s refusal (RESOURCE_EXHAUSTED), and close
 /// each connection after [`REFUSING_CONNECTION_AGE`]. Ends when `over_limit` does.
-fn serve_refusals(over_limit: ReceiverStream<io::Result<Guarded>>, tls: Option<tonic::transport::ServerTlsConfig>, message: String) -> Result<(), String> {
-    let refuse = tonic::service::InterceptorLayer::new(move |_: tonic::Request<()>| -> Result<tonic::Request<()>, tonic::Status> { Err(tonic::Status::resource_exhausted(message.clone())) });
+fn serve_refusals(over_limit: ReceiverStream<io::Result<Guarded>>, tls: Option<tonic::transport::ServerTlsConfig>, which: Listener, max: usize) -> Result<(), String> {
+    let refuse = tonic::service::InterceptorLayer::new(move |_: tonic::Request<()>| -> Result<tonic::Request<()>, tonic::Status> { Err(which.refusal(max).into()) });
     let mut server = tonic::transport::Server::builder();
     if let Some(tls) = tls {
         server = server.tls_config(tls).map_err(|e| format!("TLS configuration: {e}"))?;

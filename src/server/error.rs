@@ -48,6 +48,15 @@ pub enum ServiceError {
         /// Producer id.
         producer: String,
     },
+    /// No valid credentials on a call that needs them.
+    #[error("{0}")]
+    Unauthenticated(String),
+    /// Valid credentials without the permission the call needs.
+    #[error("{0}")]
+    Forbidden(String),
+    /// A listener with no configurable limit is full.
+    #[error("{0}")]
+    Busy(String),
     /// The server is shutting down.
     #[error("the server is shutting down")]
     ShuttingDown,
@@ -63,8 +72,9 @@ impl From<ServiceError> for tonic::Status {
             ServiceError::UnknownSession(_) | ServiceError::UnknownRefSet(_) => Code::NotFound,
             ServiceError::SessionExists(_) | ServiceError::RefSetExists(_) => Code::AlreadyExists,
             ServiceError::Name(_) | ServiceError::Invalid(_) | ServiceError::Input(_) => Code::InvalidArgument,
-            ServiceError::PathDenied(_) => Code::PermissionDenied,
-            ServiceError::Limit { .. } => Code::ResourceExhausted,
+            ServiceError::PathDenied(_) | ServiceError::Forbidden(_) => Code::PermissionDenied,
+            ServiceError::Unauthenticated(_) => Code::Unauthenticated,
+            ServiceError::Limit { .. } | ServiceError::Busy(_) => Code::ResourceExhausted,
             ServiceError::ProducerBusy { .. } => Code::FailedPrecondition,
             ServiceError::ShuttingDown => Code::Unavailable,
             ServiceError::Internal(_) => Code::Internal,

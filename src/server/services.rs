@@ -25,6 +25,9 @@ use crate::report::PROXY_NOTE;
 use crate::session::{ItemKey, Outcome, Session};
 use crate::telemetry;
 
+/// Most files (reference streams plus source) of one upload.
+pub const MAX_UPLOAD_FILES: usize = 64;
+
 /// Batches of at most this many items are scored on the async worker itself.
 pub const INLINE_BATCH_ITEMS: usize = 256;
 
@@ -50,7 +53,7 @@ impl Services {
     /// Check the caller's token for `scope` (always passes without a tokens file).
     fn authorize<T>(&self, req: &Request<T>, scope: Scope) -> std::result::Result<(), Status> {
         match &self.tokens {
-            Some(t) => t.check(req, scope),
+            Some(t) => t.check(req, scope).map_err(Status::from),
             None => Ok(()),
         }
     }
@@ -141,8 +144,8 @@ impl pb::ref_sets_server::RefSets for Services {
         crate::session::check_name("reference set name", &h.name).map_err(ServiceError::from)?;
         let format = format_from_pb(h.format)?;
         let nfiles = h.files as usize + usize::from(h.has_source);
-        if nfiles == 0 || nfiles > 64 {
-            return Err(ServiceError::Invalid(format!("header.files must be 1..64, got {}", h.files)).into());
+        if nfiles == 0 || nfiles > MAX_UPLOAD_FILES {
+            return Err(ServiceError::Invalid(format!("header.files must be 1..{MAX_UPLOAD_FILES}, got {}", h.files)).into());
         }
         let mut files: Vec<Vec<u8>> = vec![Vec::new(); nfiles];
         let mut total = 0u64;

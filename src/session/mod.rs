@@ -101,8 +101,10 @@ pub fn normalize_source(text: &str, caseless: bool) -> String {
 /// Lookup of live traffic by source text. Segments whose normalised sources are equal become
 /// one multi-reference entry (the union of their references), compiled like any reference set.
 pub struct SourceIndex {
+    /// Normalised source -> index of its entry in the merged set.
     map: HashMap<String, u32>,
-    /// Entry `i` of the merged set: the ids of the segments it merges (for reporting).
+    /// The merged set, compiled for the session's configuration: entry `i` carries the id of
+    /// the first segment with that source and the references of all of them.
     compiled: Compiled,
 }
 
@@ -159,7 +161,14 @@ pub struct SessionSpec {
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Outcome {
     /// Scored against segment `index` (of the set, or of the source index when `by_source`).
-    Scored { stats: SegmentStats, by_source: bool, index: u32 },
+    Scored {
+        /// The segment's statistics.
+        stats: SegmentStats,
+        /// Matched by source text (live traffic) rather than by id.
+        by_source: bool,
+        /// Index of the segment (in the set, or in the source index when `by_source`).
+        index: u32,
+    },
     /// No segment with that id or source.
     Unknown,
 }

@@ -106,6 +106,8 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
 /// Scrape connections served at once; more are closed on arrival (Prometheus scrapes each target
 /// over one connection at a time, so a few cover several scrapers).
 pub const METRICS_MAX_CONNECTIONS: usize = 16;
+/// Most bytes of a scrape's request head read (a longer head is answered from what was read).
+pub const SCRAPE_HEAD_BYTES: usize = 4096;
 /// Longest time one scrape connection may take, reading the request and writing the answer.
 pub const METRICS_REQUEST_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(10);
 
@@ -134,7 +136,7 @@ pub async fn serve_metrics(listener: TcpListener, handle: PrometheusHandle) {
 }
 
 async fn answer_scrape(sock: &mut tokio::net::TcpStream, handle: &PrometheusHandle) {
-    let mut buf = vec![0u8; 4096];
+    let mut buf = vec![0u8; SCRAPE_HEAD_BYTES];
     let mut n = 0;
     // Read the request head (bounded); the body, if any, is ignored.
     while n < buf.len() {

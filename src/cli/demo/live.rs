@@ -23,6 +23,13 @@ use crate::rng::SplitMix64;
 use crate::server::{self, ServerConfig};
 use crate::telemetry;
 
+/// Bytes per message when the demo uploads its reference set.
+const UPLOAD_CHUNK_BYTES: usize = 16 * 1024;
+/// How long the in-process server may take to report SERVING.
+const STARTUP_TIMEOUT: Duration = Duration::from_secs(10);
+/// How often the demo asks whether the server is SERVING yet.
+const STARTUP_POLL: Duration = Duration::from_millis(20);
+
 /// Items per simulated batch.
 const DEMO_BATCH: usize = 6;
 /// Pause between a producer's batches.
@@ -82,7 +89,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     let jsonl = segments.iter().map(|s| serde_json::to_string(s).map(|l| l + "\n")).collect::<Result<String, _>>().map_err(|e| CliError::Usage(format!("demo: {e}")))?;
     let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: "ferry-notices".into(), format: pb::RefFormat::Jsonl as i32, files: 1, has_source: false, replace: false })) };
     let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
-        .chain(jsonl.as_bytes().chunks(16 * 1024).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
+        .chain(jsonl.as_bytes().chunks(UPLOAD_CHUNK_BYTES).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
         .collect();
     let info = RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(usage("upload"))?.into_inner();
     println!("reference set {}: {} segments, {} references, digest {}", info.name, info.segments, info.references, &info.digest[..16]);
@@ -158,7 +165,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
 
 async fn wait_serving(ch: &Channel) -> Result<(), CliError> {
     let mut health = tonic_health::pb::health_client::HealthClient::new(ch.clone());
-    let deadline = Instant::now() + Duration::from_secs(10);
+    let deadline = Instant::now() + STARTUP_TIMEOUT;
     loop {
         let ok = health.check(tonic_health::pb::HealthCheckRequest { service: String::new() }).await.is_ok_and(|r| r.into_inner().status == tonic_health::pb::health_check_response::ServingStatus::Serving as i32);
         if ok {
@@ -167,7 +174,7 @@ async fn wait_serving(ch: &Channel) -> Result<(), CliError> {
         if Instant::now() > deadline {
             return Err(CliError::Usage("demo: the in-process server did not start".into()));
         }
-        tokio::time::sleep(Duration::from_millis(20)).await;
+        tokio::time::sleep(STARTUP_POLL).await;
     }
 }
 
