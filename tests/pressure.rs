@@ -349,3 +349,31 @@ async fn send_rides_out_a_server_restart() {
     assert_eq!(stats_from_pb(r.cumulative.as_ref().unwrap()), offline(&items), "exactly the offline statistics: nothing lost, nothing doubled");
     eprintln!("killed after {counted} of {} items were counted; final {} segments; send said:\n{stderr}", items.len(), r.cumulative.unwrap().segments);
 }
+
+/// The scrape port takes at most 16 connections at once (src/server/admin.rs): one more is
+/// closed on arrival without an answer and counted; when the silent ones go, scrapes are served.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn scrapes_past_the_limit_are_closed_on_arrival_and_counted() {
+    const SCRAPE_LIMIT: usize = 16;
+    let server = Server::start(&["--durability", "none"]);
+    server.wait_serving().await;
+    let before = server.sample("mtgauge_metrics_requests_refused_total");
+    let silent: Vec<TcpStream> = (0..SCRAPE_LIMIT).map(|_| TcpStream::connect(&server.metrics).unwrap()).collect();
+    // Kernel order: the silent ones are accepted first; give the accept loop time to take them.
+    let extra = TcpStream::connect(&server.metrics).unwrap();
+    assert!(closed_by_server(&extra, WAIT), "a connection past the scrape limit is closed");
+    for s in &silent[..4] {
+        assert!(!closed_by_server(s, Duration::from_millis(50)), "a connection within the limit stays open");
+    }
+    drop(silent);
+    until("the silent connections are released", || {
+        std::net::TcpStream::connect(&server.metrics).is_ok_and(|mut s| {
+            use std::io::{Read, Write};
+            let mut out = String::new();
+            s.write_all(b"GET /metrics HTTP/1.1\r\nHost: x\r\n\r\n").is_ok() && s.read_to_string(&mut out).is_ok() && out.starts_with("HTTP/1.1 200")
+        })
+    })
+    .await;
+    assert!(server.sample("mtgauge_metrics_requests_refused_total") >= before + 1.0, "the refusal is counted");
+    assert!(server.sample("mtgauge_connections_refused_total{listener=\"metrics\"}") >= 1.0);
+}

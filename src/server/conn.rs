@@ -64,6 +64,8 @@ pub enum Listener {
     Grpc,
     /// The plaintext health port.
     Health,
+    /// The Prometheus scrape port (HTTP/1): past its limit a connection is closed on arrival.
+    Metrics,
 }
 
 impl Listener {
@@ -72,6 +74,7 @@ impl Listener {
         match self {
             Listener::Grpc => "grpc",
             Listener::Health => "health",
+            Listener::Metrics => "metrics",
         }
     }
 
@@ -80,7 +83,13 @@ impl Listener {
         match self {
             Listener::Grpc => ServiceError::Limit { what: format!("connection {}", max + 1), limit: max as u64, key: Limit::MaxConnections.key() },
             Listener::Health => ServiceError::Busy(format!("connection limit reached: {max} connections are open on the health listener")),
+            Listener::Metrics => ServiceError::Busy(format!("scrape limit reached: {max} scrapes are being answered")),
         }
+    }
+
+    /// Whether a client past the limit is answered (gRPC) rather than just closed (HTTP/1).
+    fn answers_refusals(self) -> bool {
+        !matches!(self, Listener::Metrics)
     }
 }
 
@@ -94,7 +103,9 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
     let open = Arc::new(Semaphore::new(max));
     let refusing = Arc::new(Semaphore::new(REFUSING_MAX_CONNECTIONS));
     let refusal = which.refusal(max).to_string();
-    serve_refusals(ReceiverStream::new(over_rx), tls, which, max)?;
+    if which.answers_refusals() {
+        serve_refusals(ReceiverStream::new(over_rx), tls, which, max)?;
+    }
     tokio::spawn(async move {
         // Log refusals at most once per second: a flood must not become a flood of log lines.
         let mut last_warning: Option<Instant> = None;
@@ -113,6 +124,10 @@ pub fn incoming(listener: TcpListener, which: Listener, max: usize, idle: Durati
             };
             let Ok(permit) = Arc::clone(&open).try_acquire_owned() else {
                 telemetry::connection_refused(which.label());
+                if !which.answers_refusals() {
+                    telemetry::scrape_refused();
+                    continue;
+                }
                 if last_warning.is_none_or(|t| t.elapsed() >= REFUSAL_LOG_INTERVAL) {
                     last_warning = Some(Instant::now());
                     tracing::warn!(%peer, listener = which.label(), "connection refused: {refusal}");

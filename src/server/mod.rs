@@ -1,6 +1,7 @@
 //! The gRPC server: reference sets, sessions and streaming scoring over one shared [`State`],
 //! gRPC health and reflection, a Prometheus listener, and a bounded graceful shutdown.
 
+pub mod admin;
 pub mod auth;
 pub mod conn;
 pub mod error;
@@ -43,8 +44,6 @@ pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
 /// Acknowledgements buffered per scoring stream before the server waits for the client.
 pub const ACK_BUFFER: usize = 16;
 
-/// Connections open at once on the plaintext health listener (probes open one at a time).
-pub const HEALTH_MAX_CONNECTIONS: usize = 64;
 
 /// Time the group-commit thread gathers batches into one transaction unless configured.
 pub const DEFAULT_GROUP_COMMIT: Duration = Duration::from_millis(2);
@@ -133,7 +132,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     }
     let (health, health_service) = tonic_health::server::health_reporter();
     health.set_service_status("", tonic_health::ServingStatus::NotServing).await;
-    let metrics_task = metrics.map(|(l, h)| tokio::spawn(crate::telemetry::serve_metrics(l, h)));
+    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h)).transpose()?;
 
     let reflection_v1 = tonic_reflection::server::Builder::configure()
         .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
@@ -164,19 +163,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     let (max_connections, idle) = (config.limits.max_connections, config.limits.connection_idle);
     let (ping_every, ping_wait) = conn::keepalive(idle);
     if let Some(l) = config.health_listener.take() {
-        let plain_health = tonic_health::pb::health_server::HealthServer::new(tonic_health::server::HealthService::from_health_reporter(health.clone()));
-        let mut stop = stop_rx.clone();
-        let admitted = conn::incoming(l, conn::Listener::Health, HEALTH_MAX_CONNECTIONS, idle, None)?;
-        tokio::spawn(async move {
-            let _ = tonic::transport::Server::builder()
-                .http2_keepalive_interval(Some(ping_every))
-                .http2_keepalive_timeout(Some(ping_wait))
-                .add_service(plain_health)
-                .serve_with_incoming_shutdown(admitted, async move {
-                    let _ = stop.wait_for(|s| *s).await;
-                })
-                .await;
-        });
+        admin::serve_health(l, &health, idle, stop_rx.clone())?;
     }
     let router = builder
         .http2_keepalive_interval(Some(ping_every))

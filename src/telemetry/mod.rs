@@ -6,8 +6,6 @@ use std::net::SocketAddr;
 
 use metrics::{counter, gauge, histogram, describe_counter, describe_gauge, describe_histogram, Unit};
 use metrics_exporter_prometheus::{Matcher, PrometheusBuilder, PrometheusHandle};
-use tokio::io::{AsyncReadExt, AsyncWriteExt};
-use tokio::net::TcpListener;
 
 use crate::metric::scores::corpus_score;
 use crate::metric::{CorpusStats, Metric, ScoreConfig};
@@ -103,63 +101,6 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     Ok(handle)
 }
 
-/// Scrape connections served at once; more are closed on arrival (Prometheus scrapes each target
-/// over one connection at a time, so a few cover several scrapers).
-pub const METRICS_MAX_CONNECTIONS: usize = 16;
-/// Most bytes of a scrape's request head read (a longer head is answered from what was read).
-pub const SCRAPE_HEAD_BYTES: usize = 4096;
-/// Longest time one scrape connection may take, reading the request and writing the answer.
-pub const METRICS_REQUEST_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(10);
-
-/// Serve `GET /metrics` (Prometheus text format) on `listener` until the task is dropped.
-pub async fn serve_metrics(listener: TcpListener, handle: PrometheusHandle) {
-    let open = std::sync::Arc::new(tokio::sync::Semaphore::new(METRICS_MAX_CONNECTIONS));
-    loop {
-        let mut sock = match listener.accept().await {
-            Ok((sock, _)) => sock,
-            Err(e) => {
-                tracing::warn!(error = %e, "metrics listener: accept failed");
-                tokio::time::sleep(crate::server::conn::ACCEPT_ERROR_PAUSE).await;
-                continue;
-            }
-        };
-        let Ok(permit) = std::sync::Arc::clone(&open).try_acquire_owned() else {
-            counter!(METRICS_REFUSED).increment(1);
-            continue;
-        };
-        let handle = handle.clone();
-        tokio::spawn(async move {
-            let _permit = permit;
-            let _ = tokio::time::timeout(METRICS_REQUEST_TIMEOUT, answer_scrape(&mut sock, &handle)).await;
-        });
-    }
-}
-
-async fn answer_scrape(sock: &mut tokio::net::TcpStream, handle: &PrometheusHandle) {
-    let mut buf = vec![0u8; SCRAPE_HEAD_BYTES];
-    let mut n = 0;
-    // Read the request head (bounded); the body, if any, is ignored.
-    while n < buf.len() {
-        match sock.read(&mut buf[n..]).await {
-            Ok(0) | Err(_) => return,
-            Ok(k) => n += k,
-        }
-        if buf[..n].windows(4).any(|w| w == b"\r\n\r\n") {
-            break;
-        }
-    }
-    let head = String::from_utf8_lossy(&buf[..n]);
-    let path = head.split_whitespace().nth(1).unwrap_or("");
-    let (status, ctype, body) = if head.starts_with("GET ") && (path == "/metrics" || path.starts_with("/metrics?")) {
-        ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render())
-    } else {
-        ("404 Not Found", "text/plain; charset=utf-8", "not found: try /metrics\n".to_string())
-    };
-    let resp = format!("HTTP/1.1 {status}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}", body.len());
-    let _ = sock.write_all(resp.as_bytes()).await;
-    let _ = sock.shutdown().await;
-}
-
 /// Count one applied batch: its outcome counts and the summed statistics of its scored items.
 pub fn record_batch(session: &str, config: &ScoreConfig, scored: u64, unknown: u64, rejected: u64, sum: &CorpusStats) {
     counters(session, config, [scored, unknown, rejected], sum, false);
@@ -231,6 +172,11 @@ pub fn record_refset(name: &str, segments: usize, bytes: usize) {
 /// One more (or one fewer) open scoring stream.
 pub fn streams_delta(delta: f64) {
     gauge!(ACTIVE_STREAMS).increment(delta);
+}
+
+/// A scrape connection was closed on arrival because too many were open.
+pub fn scrape_refused() {
+    counter!(METRICS_REFUSED).increment(1);
 }
 
 /// A connection was accepted on a listener.

@@ -1,0 +1,84 @@
+//! The admin listeners, apart from the data path: the Prometheus scrape port (`GET /metrics`)
+//! and the optional plaintext gRPC health port (for probes when the main port speaks TLS). Both
+//! take their connections from [`super::conn::incoming`], so they share its bound on open
+//! connections, its idle deadline and its accounting.
+
+use std::time::Duration;
+
+use metrics_exporter_prometheus::PrometheusHandle;
+use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
+use tokio::net::TcpListener;
+use tokio::sync::watch;
+use tokio_stream::StreamExt;
+
+use super::conn::{self, Listener};
+
+/// Scrape connections served at once; more are closed on arrival (Prometheus scrapes each target
+/// over one connection at a time, so a few cover several scrapers).
+pub const METRICS_MAX_CONNECTIONS: usize = 16;
+/// Most bytes of a scrape's request head read (a longer head is answered from what was read).
+pub const SCRAPE_HEAD_BYTES: usize = 4096;
+/// Longest time one scrape connection may take, reading the request and writing the answer.
+pub const METRICS_REQUEST_TIMEOUT: Duration = Duration::from_secs(10);
+/// Connections open at once on the plaintext health listener (probes open one at a time).
+pub const HEALTH_MAX_CONNECTIONS: usize = 64;
+
+/// Serve `GET /metrics` (Prometheus text format) on `listener` until the returned task is
+/// aborted.
+pub fn serve_metrics(listener: TcpListener, handle: PrometheusHandle) -> Result<tokio::task::JoinHandle<()>, String> {
+    let mut admitted = conn::incoming(listener, Listener::Metrics, METRICS_MAX_CONNECTIONS, METRICS_REQUEST_TIMEOUT, None)?;
+    Ok(tokio::spawn(async move {
+        while let Some(sock) = admitted.next().await {
+            let Ok(mut sock) = sock else { continue };
+            let handle = handle.clone();
+            tokio::spawn(async move {
+                let _ = tokio::time::timeout(METRICS_REQUEST_TIMEOUT, answer_scrape(&mut sock, &handle)).await;
+            });
+        }
+    }))
+}
+
+/// Read one request head and answer it: the metrics for `GET /metrics`, 404 for anything else.
+async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: &PrometheusHandle) {
+    let mut buf = vec![0u8; SCRAPE_HEAD_BYTES];
+    let mut n = 0;
+    // Read the request head (bounded); the body, if any, is ignored.
+    while n < buf.len() {
+        match sock.read(&mut buf[n..]).await {
+            Ok(0) | Err(_) => return,
+            Ok(k) => n += k,
+        }
+        if buf[..n].windows(4).any(|w| w == b"\r\n\r\n") {
+            break;
+        }
+    }
+    let head = String::from_utf8_lossy(&buf[..n]);
+    let path = head.split_whitespace().nth(1).unwrap_or("");
+    let (status, ctype, body) = if head.starts_with("GET ") && (path == "/metrics" || path.starts_with("/metrics?")) {
+        ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render())
+    } else {
+        ("404 Not Found", "text/plain; charset=utf-8", "not found: try /metrics\n".to_string())
+    };
+    let resp = format!("HTTP/1.1 {status}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}", body.len());
+    let _ = sock.write_all(resp.as_bytes()).await;
+    let _ = sock.shutdown().await;
+}
+
+/// Serve gRPC health alone, in plaintext, on `listener` (the same status as the main port's)
+/// until `stop` turns true.
+pub fn serve_health(listener: TcpListener, health: &tonic_health::server::HealthReporter, idle: Duration, mut stop: watch::Receiver<bool>) -> Result<(), String> {
+    let service = tonic_health::pb::health_server::HealthServer::new(tonic_health::server::HealthService::from_health_reporter(health.clone()));
+    let admitted = conn::incoming(listener, Listener::Health, HEALTH_MAX_CONNECTIONS, idle, None)?;
+    let (ping_every, ping_wait) = conn::keepalive(idle);
+    tokio::spawn(async move {
+        let _ = tonic::transport::Server::builder()
+            .http2_keepalive_interval(Some(ping_every))
+            .http2_keepalive_timeout(Some(ping_wait))
+            .add_service(service)
+            .serve_with_incoming_shutdown(admitted, async move {
+                let _ = stop.wait_for(|s| *s).await;
+            })
+            .await;
+    });
+    Ok(())
+}
