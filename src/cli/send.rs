@@ -84,76 +84,79 @@ struct Totals {
     duplicate_batches: u64,
 }
 
+/// A file of lines aligned with the hypotheses: its bytes (part of the default producer id)
+/// and its lines.
+fn aligned<'a>(hyp_name: &str, hyps: usize, path: Option<&str>, bytes: &'a Option<Vec<u8>>) -> Result<Option<Vec<&'a str>>, CliError> {
+    let (Some(name), Some(b)) = (path, bytes) else { return Ok(None) };
+    let lines = split_lines(display_name(name), b)?;
+    crate::refs::check_same_length(hyp_name, hyps, display_name(name), lines.len())?;
+    Ok(Some(lines))
+}
+
+/// The default producer id: stable for the same session, inputs and batch size, so that
+/// re-running the same command counts nothing twice. `inputs`: hypotheses, sources, ids.
+fn default_producer(session: &str, inputs: [Option<&[u8]>; 3], batch: usize) -> String {
+    let mut h = Sha256::new();
+    h.update(session.as_bytes());
+    for (tag, bytes) in inputs.iter().enumerate() {
+        if let Some(b) = bytes {
+            // Each input after a tag byte (0 hypotheses, 1 sources, 2 ids), so that the same
+            // bytes in another role give another id.
+            h.update([tag as u8]);
+            h.update(b);
+        }
+    }
+    h.update(batch.to_le_bytes());
+    let d = h.finalize();
+    format!("send-{}", d.iter().take(8).map(|b| format!("{b:02x}")).collect::<String>())
+}
+
+/// Line `line`'s item key: its source, its id from the ids file, or its line number.
+fn item_key(line: usize, sources: Option<&[&str]>, ids: Option<&[&str]>) -> pb::score_item::Key {
+    match (sources, ids) {
+        (Some(s), _) => pb::score_item::Key::Source(s[line].to_owned()),
+        (None, Some(ids)) => pb::score_item::Key::SegmentId(ids[line].to_owned()),
+        (None, None) => pb::score_item::Key::SegmentId((line + 1).to_string()),
+    }
+}
+
+/// The hypotheses in batches of `size`, numbered from 1 for `producer`.
+fn batches(session: &str, producer: &str, size: usize, hyps: &[&str], sources: Option<&[&str]>, ids: Option<&[&str]>) -> Vec<pb::ScoreBatch> {
+    hyps.chunks(size)
+        .enumerate()
+        .map(|(b, chunk)| pb::ScoreBatch {
+            session: session.to_owned(),
+            producer: producer.to_owned(),
+            sequence: b as u64 + 1,
+            want_segment_scores: false,
+            items: chunk.iter().enumerate().map(|(i, h)| pb::ScoreItem { key: Some(item_key(b * size + i, sources, ids)), hypothesis: (*h).to_owned() }).collect(),
+        })
+        .collect()
+}
+
+/// `--label KEY=VALUE` flags as a map.
+fn labels(flags: &[String]) -> Result<BTreeMap<String, String>, CliError> {
+    flags
+        .iter()
+        .map(|l| l.split_once('=').map(|(k, v)| (k.to_owned(), v.to_owned())).ok_or_else(|| CliError::Usage(format!("--label {l}: expected KEY=VALUE"))))
+        .collect()
+}
+
 pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
     if a.batch == 0 {
         return Err(CliError::Usage("--batch must be at least 1".into()));
     }
     let hyp_bytes = read_bytes(&a.hyp)?;
-    let hyps = split_lines(display_name(&a.hyp), &hyp_bytes)?;
+    let hyp_name = display_name(&a.hyp);
+    let hyps = split_lines(hyp_name, &hyp_bytes)?;
     let src_bytes = a.source.as_deref().map(read_bytes).transpose()?;
-    let sources = match (&a.source, &src_bytes) {
-        (Some(name), Some(b)) => {
-            let s = split_lines(display_name(name), b)?;
-            crate::refs::check_same_length(display_name(&a.hyp), hyps.len(), display_name(name), s.len())?;
-            Some(s)
-        }
-        _ => None,
-    };
+    let sources = aligned(hyp_name, hyps.len(), a.source.as_deref(), &src_bytes)?;
     let id_bytes = a.ids.as_deref().map(read_bytes).transpose()?;
-    let ids = match (&a.ids, &id_bytes) {
-        (Some(name), Some(b)) => {
-            let s = split_lines(display_name(name), b)?;
-            crate::refs::check_same_length(display_name(&a.hyp), hyps.len(), display_name(name), s.len())?;
-            Some(s)
-        }
-        _ => None,
-    };
-    let producer = a.producer.clone().unwrap_or_else(|| {
-        let mut h = Sha256::new();
-        h.update(a.session.as_bytes());
-        h.update([0]);
-        h.update(&hyp_bytes);
-        if let Some(s) = &src_bytes {
-            h.update([1]);
-            h.update(s);
-        }
-        if let Some(s) = &id_bytes {
-            h.update([2]);
-            h.update(s);
-        }
-        h.update(a.batch.to_le_bytes());
-        let d = h.finalize();
-        format!("send-{}", d.iter().take(8).map(|b| format!("{b:02x}")).collect::<String>())
-    });
-    let batches: Vec<pb::ScoreBatch> = hyps
-        .chunks(a.batch)
-        .enumerate()
-        .map(|(b, chunk)| pb::ScoreBatch {
-            session: a.session.clone(),
-            producer: producer.clone(),
-            sequence: b as u64 + 1,
-            want_segment_scores: false,
-            items: chunk
-                .iter()
-                .enumerate()
-                .map(|(i, h)| {
-                    let line = b * a.batch + i;
-                    let key = match (&sources, &ids) {
-                        (Some(s), _) => pb::score_item::Key::Source(s[line].to_owned()),
-                        (None, Some(ids)) => pb::score_item::Key::SegmentId(ids[line].to_owned()),
-                        (None, None) => pb::score_item::Key::SegmentId((line + 1).to_string()),
-                    };
-                    pb::ScoreItem { key: Some(key), hypothesis: (*h).to_owned() }
-                })
-                .collect(),
-        })
-        .collect();
+    let ids = aligned(hyp_name, hyps.len(), a.ids.as_deref(), &id_bytes)?;
+    let producer = a.producer.clone().unwrap_or_else(|| default_producer(&a.session, [Some(&hyp_bytes), src_bytes.as_deref(), id_bytes.as_deref()], a.batch));
+    let batches = batches(&a.session, &producer, a.batch, &hyps, sources.as_deref(), ids.as_deref());
     let config = a.scoring.config()?;
-    let mut labels = BTreeMap::new();
-    for l in &a.labels {
-        let (k, v) = l.split_once('=').ok_or_else(|| CliError::Usage(format!("--label {l}: expected KEY=VALUE")))?;
-        labels.insert(k.to_owned(), v.to_owned());
-    }
+    let labels = labels(&a.labels)?;
     let show = stderr_is_terminal() && !a.json;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
     let totals = rt.block_on(async {
@@ -243,4 +246,30 @@ async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result
         backoff.wait().await;
     }
     Ok(totals)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn default_producer_ids_are_stable() {
+        // Values of the formula (SHA-256 over the session, 0 + hypotheses, 1 + sources, 2 +
+        // ids, the batch size as 8 little-endian bytes; first 8 bytes in hex), computed with
+        // Python's hashlib: a re-run after an upgrade keeps its producer id.
+        let hyp = "Die Fähre.\n".as_bytes();
+        assert_eq!(default_producer("v7", [Some(hyp), Some(b"The ferry.\n"), None], 100), "send-15fad8dc936f7382");
+        assert_eq!(default_producer("v7", [Some(hyp), None, None], 100), "send-c9595bb27b1bfd38");
+        assert_ne!(default_producer("v7", [Some(hyp), None, None], 10), default_producer("v7", [Some(hyp), None, None], 100));
+    }
+
+    #[test]
+    fn batches_number_from_one_and_key_items() {
+        let b = batches("s", "p", 2, &["a", "b", "c"], None, None);
+        assert_eq!(b.iter().map(|b| (b.sequence, b.items.len())).collect::<Vec<_>>(), [(1, 2), (2, 1)]);
+        assert_eq!(b[1].items[0].key, Some(pb::score_item::Key::SegmentId("3".into())));
+        let by_source = batches("s", "p", 5, &["a"], Some(&["Gate C"]), None);
+        assert_eq!(by_source[0].items[0].key, Some(pb::score_item::Key::Source("Gate C".into())));
+        assert!(labels(&["model=v7".into()]).unwrap()["model"] == "v7" && labels(&["oops".into()]).is_err());
+    }
 }
