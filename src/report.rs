@@ -21,13 +21,30 @@ pub fn config_json(config: &ScoreConfig) -> Value {
 }
 
 /// The reference set's identity as JSON.
-pub fn refset_json(name: Option<&str>, refs: &RefSet) -> Value {
+pub fn refset_json(name: Option<&str>, refs: &RefSetSummary) -> Value {
     json!({
         "name": name,
-        "digest": refs.digest_hex(),
-        "segments": refs.len(),
-        "references": refs.reference_count(),
+        "digest": crate::refs::hex(&refs.digest),
+        "segments": refs.segments,
+        "references": refs.references,
     })
+}
+
+/// What a report says of a reference set: its digest and size.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct RefSetSummary {
+    /// [`RefSet::digest`].
+    pub digest: [u8; 32],
+    /// Segments.
+    pub segments: usize,
+    /// References over all segments.
+    pub references: usize,
+}
+
+impl From<&RefSet> for RefSetSummary {
+    fn from(r: &RefSet) -> Self {
+        RefSetSummary { digest: r.digest(), segments: r.len(), references: r.reference_count() }
+    }
 }
 
 fn object(r: &Report) -> Map<String, Value> {

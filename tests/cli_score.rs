@@ -590,3 +590,40 @@ fn help_mentions_the_commands_and_flags() {
     assert!(!out.status.success());
     assert!(out.stdout.is_empty());
 }
+
+/// The one-shot path (plain references, no --per-segment) and the compiled path (taken with
+/// --per-segment) print the same bytes, table and JSON, for every tokenizer and metric set, with
+/// several reference files and caseless scoring; so does standard input.
+#[test]
+fn one_shot_and_compiled_paths_print_the_same_bytes() {
+    let dir = TempDir::new("oneshot");
+    let r1 = dir.file("r1.txt", lines(&["Die Fähre nach Vop legt um 9 Uhr ab.", "Deck 4 ist geschlossen", "", "Kel &amp; Zin, 3.5 km"]));
+    let r2 = dir.file("r2.txt", lines(&["Die Fähre legt um 9 ab", "DECK 4 geschlossen.", "leer", "Kel und Zin 3,5 km"]));
+    let hyp_text = lines(&["die Fähre nach Vop legt ab", "Deck vier ist zu", "", "Kel & Zin 3.5 km"]);
+    let hyp = dir.file("hyp.txt", &hyp_text);
+    let seg = dir.path("seg.jsonl");
+    for tokenizer in ["whitespace", "nist", "nist-unicode", "cjk", "characters"] {
+        for metrics in [&["bleu"][..], &["chrf"], &["chrf++"], &["bleu:order=2,ref-length=shortest", "chrf:chars=4,beta=1", "chrf++"]] {
+            for caseless in [false, true] {
+                for json in [false, true] {
+                    let mut args = vec!["score", "--ref", &r1, "--ref", &r2, "--tokenizer", tokenizer];
+                    for m in metrics {
+                        args.extend(["--metric", m]);
+                    }
+                    if caseless {
+                        args.push("--caseless");
+                    }
+                    if json {
+                        args.push("--json");
+                    }
+                    let fast = run(&[&args[..], &["--hyp", &hyp]].concat());
+                    let long = run(&[&args[..], &["--hyp", &hyp, "--per-segment", &seg]].concat());
+                    let stdin = run_stdin(&[&args[..], &["--hyp", "-", "--threads", "1"]].concat(), Some(hyp_text.as_bytes()));
+                    assert!(fast.status.success() && long.status.success() && stdin.status.success(), "{args:?}: {}", text(&fast.stderr));
+                    assert_eq!(text(&fast.stdout), text(&long.stdout), "{args:?}");
+                    assert_eq!(text(&stdin.stdout), text(&long.stdout), "{args:?} from stdin");
+                }
+            }
+        }
+    }
+}

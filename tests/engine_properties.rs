@@ -696,3 +696,152 @@ proptest! {
         }
     }
 }
+
+// ---------------------------------------------------------------------------------------------
+// The one-shot path (refs::oneshot) against the compiled engine: the same integer statistics.
+// ---------------------------------------------------------------------------------------------
+
+use mtgauge::refs::oneshot::{self, SegmentScratch, ONESHOT_CHUNK};
+
+/// `cfg` with only the metrics `mask` picks (bit 0 BLEU, 1 chrF, 2 chrF++; never none).
+fn only(cfg: Flat, mask: u8) -> ScoreConfig {
+    let mut c = cfg.build();
+    let mask = if mask & 7 == 0 { 7 } else { mask };
+    if mask & 1 == 0 {
+        c.metrics.bleu = None;
+    }
+    if mask & 2 == 0 {
+        c.metrics.chrf = None;
+    }
+    if mask & 4 == 0 {
+        c.metrics.chrfpp = None;
+    }
+    c
+}
+
+/// Every segment scored by `oneshot::score_segment` (one scratch reused over all of them)
+/// equals `Compiled::score_segment`.
+fn assert_segments_equal(segs: &[Seg], c: ScoreConfig) {
+    let compiled = Compiled::build(refset(segs), c);
+    let (mut s, mut scratch) = (SegmentScratch::default(), Scratch::default());
+    for (i, seg) in segs.iter().enumerate() {
+        let refs: Vec<&str> = seg.refs.iter().map(String::as_str).collect();
+        let mut got = SegmentStats::default();
+        oneshot::score_segment(&c, &refs, &seg.hyp, &mut s, &mut got);
+        assert_eq!(got, compiled.score_segment(i, &seg.hyp, &mut scratch), "segment {i} under {c:?}");
+    }
+}
+
+/// Plain reference streams (`streams` of them; segment i's reference k is its k-th, or its first
+/// when it has fewer) and the hypothesis file of `segs`, lines ended by `eol`, `bom` first.
+fn plain_files(segs: &[Seg], streams: usize, eol: &str, bom: bool) -> (Vec<Vec<u8>>, Vec<u8>) {
+    let clean = |t: &str| t.replace(['\n', '\r'], " ");
+    let file = |lines: &mut dyn Iterator<Item = String>| {
+        let mut f = if bom { "\u{FEFF}".to_owned() } else { String::new() };
+        for l in lines {
+            f.push_str(&l);
+            f.push_str(eol);
+        }
+        f.into_bytes()
+    };
+    let refs = (0..streams).map(|k| file(&mut segs.iter().map(|s| clean(s.refs.get(k).unwrap_or(&s.refs[0]))))).collect();
+    (refs, file(&mut segs.iter().map(|s| clean(&s.hyp))))
+}
+
+/// `oneshot::score_plain` on 1, 2 and 3 threads equals the long way: the files loaded into a
+/// `RefSet` (its digest) and `Compiled::score_corpus` over the split hypothesis lines.
+fn assert_plain_equal(refs: &[Vec<u8>], hyp: &[u8], c: ScoreConfig) {
+    let named: Vec<(&str, &[u8])> = refs.iter().map(|r| ("ref", r.as_slice())).collect();
+    let set = Arc::new(mtgauge::refs::load(mtgauge::refs::RefFormat::Plain, &named, None).expect("valid files"));
+    let lines = mtgauge::refs::split_lines("hyp", hyp).expect("valid hypothesis");
+    let want = Compiled::build(Arc::clone(&set), c).score_corpus(&lines, 1, &AtomicUsize::new(0));
+    let slices: Vec<&[u8]> = refs.iter().map(Vec::as_slice).collect();
+    for threads in [1, 2, 3] {
+        let done = AtomicUsize::new(0);
+        let got = oneshot::score_plain(&c, &slices, hyp, threads, &done).expect("clean input");
+        assert_eq!(got.stats, want, "{threads} threads under {c:?}");
+        assert_eq!(got.digest, set.digest(), "digest");
+        assert_eq!((got.segments, got.references), (set.len(), set.reference_count()));
+        assert_eq!(done.into_inner(), set.len());
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 96, ..ProptestConfig::default() })]
+
+    /// Per segment, for every tokenizer, caseless on or off, any metric set and parameters.
+    #[test]
+    fn oneshot_segments_equal_the_compiled_engine(segs in corpus_strategy(6), cfg in any_config(any_tokenizer()), mask in 0u8..8) {
+        assert_segments_equal(&segs, only(cfg, mask));
+    }
+
+    /// The same on awkward text (controls, every white space, combining marks, CJK, ...).
+    #[test]
+    fn oneshot_segments_equal_the_compiled_engine_on_awkward_text(
+        refs in proptest::collection::vec(proptest::collection::vec(awkward_string(30), 1..=3), 1..=3),
+        hyps in proptest::collection::vec(awkward_string(30), 3),
+        cfg in any_config(any_tokenizer()),
+        mask in 0u8..8,
+    ) {
+        let segs: Vec<Seg> = refs.into_iter().zip(hyps).map(|(refs, hyp)| Seg { refs, hyp }).collect();
+        assert_segments_equal(&segs, only(cfg, mask));
+    }
+
+    /// Whole files: corpus statistics, digest and counts, with or without a BOM and CRLF.
+    #[test]
+    fn oneshot_files_equal_the_compiled_engine(segs in corpus_strategy(8), cfg in any_config(any_tokenizer()), mask in 0u8..8,
+                                              streams in 1usize..=3, crlf in any::<bool>(), bom in any::<bool>()) {
+        let (refs, hyp) = plain_files(&segs, streams, if crlf { "\r\n" } else { "\n" }, bom);
+        assert_plain_equal(&refs, &hyp, only(cfg, mask));
+    }
+}
+
+/// Many chunks (several threads take turns) and the last line without its newline.
+#[test]
+fn oneshot_files_over_many_chunks() {
+    let words = ["vop", "kel", "zin", "tarr", "Mulde", "ferry", "deck", "gate", "zinnober-kai"];
+    let segs: Vec<Seg> = (0..2 * ONESHOT_CHUNK + 77)
+        .map(|i| {
+            let w = |k: usize| words[(i * 7 + k * 3 + k * k) % words.len()];
+            let r: Vec<&str> = (0..3 + i % 9).map(w).collect();
+            let h: Vec<&str> = (1..2 + i % 11).map(w).collect();
+            Seg { refs: vec![r.join(" "), r[1..].join(" ")], hyp: h.join(" ") }
+        })
+        .collect();
+    let (refs, mut hyp) = plain_files(&segs, 2, "\n", false);
+    assert_eq!(hyp.pop(), Some(b'\n'));
+    for mask in 1..8 {
+        assert_plain_equal(&refs, &hyp, only(Flat { tokenizer: Tokenizer::Whitespace, ..Default::default() }, mask));
+    }
+    assert_plain_equal(&refs, &hyp, only(Flat { tokenizer: Tokenizer::Nist, lowercase: true, bleu_order: 8, ..Default::default() }, 7));
+}
+
+/// Segments with more distinct tokens than a `u64` key (and then a `u128` key) packs: the wider
+/// key and the per-segment gram table give the compiled engine's statistics.
+#[test]
+fn oneshot_wide_segments_take_the_wider_paths() {
+    let many = |n: usize, step: usize| (0..n).map(|i| format!("w{}", i * step % n)).collect::<Vec<_>>().join(" ");
+    let segs = vec![
+        Seg { refs: vec![many(300, 7), many(200, 3)], hyp: many(300, 11) },
+        Seg { refs: vec![many(40_000, 1)], hyp: many(40_000, 3) },
+        Seg { refs: vec!["vop kel".into()], hyp: "vop kel zin".into() },
+    ];
+    for order in [2, 4, 8] {
+        assert_segments_equal(&segs, only(Flat { tokenizer: Tokenizer::Whitespace, bleu_order: order, ..Default::default() }, 1));
+    }
+}
+
+/// Input the long way refuses (and words the error for) is refused here too: `None`.
+#[test]
+fn oneshot_refuses_what_the_parsers_refuse() {
+    let c = only(Flat { tokenizer: Tokenizer::Whitespace, ..Default::default() }, 7);
+    let score = |refs: &[&[u8]], hyp: &[u8]| oneshot::score_plain(&c, refs, hyp, 2, &AtomicUsize::new(0));
+    assert!(score(&[b"vop kel\nzin\n"], b"vop\n").is_none(), "fewer hypothesis lines");
+    assert!(score(&[b"vop kel\n"], b"vop\nkel\n").is_none(), "more hypothesis lines");
+    assert!(score(&[b"vop\nkel\n", b"zin\n"], b"vop\nkel\n").is_none(), "reference streams differ");
+    assert!(score(&[b"vop\n"], b"v\xFFp\n").is_none(), "invalid UTF-8");
+    assert!(score(&[], b"vop\n").is_none(), "no reference stream");
+    let ok = score(&[b"vop kel\n\n"], b"vop\n\n").expect("clean input");
+    assert_eq!((ok.segments, ok.stats.segments), (2, 2));
+    assert_eq!(score(&[b""], b"").expect("empty files").segments, 0);
+}

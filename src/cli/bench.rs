@@ -13,7 +13,7 @@ use clap::Args;
 use serde_json::{json, Value};
 
 use super::{default_threads, CliError};
-use crate::metric::{BleuStats, MetricSpec, ScoreConfig};
+use crate::metric::{BleuStats, MetricSpec, ScoreConfig, DEFAULT_CHRFPP_WORD_ORDER, DEFAULT_CHRF_CHAR_ORDER};
 use crate::refs::compiled::Compiled;
 use crate::refs::{RefSet, SegmentInput};
 use crate::rng::SplitMix64;
@@ -31,8 +31,12 @@ const ZIPF_EXPONENT: f64 = 1.0;
 const HYP_REPLACE: f64 = 0.15;
 const HYP_DROP: f64 = 0.05;
 const HYP_INSERT: f64 = 0.05;
-/// The NLTK timing script run with `--baseline-python`.
-const NLTK_SCRIPT: &str = include_str!("../../tests/python/bench_nltk.py");
+/// The outside baselines run with `--baseline-python` (NLTK's corpus_bleu; a plain chrF).
+const BASELINE_SCRIPT: &str = include_str!("bench_baselines.py");
+/// Runs of each end-to-end `mtgauge score` measurement (the fastest counts).
+const END_TO_END_RUNS: usize = 3;
+/// The chrF-family metrics the end-to-end rows time, with the orders the Python baseline gets.
+const END_TO_END_CHRF: [(&str, usize, usize); 2] = [("chrf", DEFAULT_CHRF_CHAR_ORDER, 0), ("chrf++", DEFAULT_CHRF_CHAR_ORDER, DEFAULT_CHRFPP_WORD_ORDER)];
 
 /// Arguments of `mtgauge bench`.
 #[derive(Debug, Args)]
@@ -182,34 +186,83 @@ fn throughput(compiled: &Compiled, hyps: &[&str], threads: usize) -> (f64, crate
     (hyps.len() as f64 / secs, corpus)
 }
 
-fn run_nltk(python: &PathBuf, c: &Corpus) -> Result<Value, CliError> {
-    let dir = std::env::temp_dir().join(format!("mtgauge-bench-{}", std::process::id()));
-    let io = |e| CliError::Output { what: dir.display().to_string(), source: e };
-    std::fs::create_dir_all(&dir).map_err(io)?;
-    let write = |name: &str, lines: &mut dyn Iterator<Item = &str>| -> Result<PathBuf, CliError> {
-        let p = dir.join(name);
-        let mut w = std::io::BufWriter::new(std::fs::File::create(&p).map_err(io)?);
-        for l in lines {
-            writeln!(w, "{l}").map_err(io)?;
-        }
-        w.flush().map_err(io)?;
-        Ok(p)
-    };
-    let refs = write("ref.txt", &mut c.refs.iter().map(|r| r[0].as_str()))?;
-    let hyps = write("hyp.txt", &mut c.hyps.iter().map(String::as_str))?;
-    let script = dir.join("bench_nltk.py");
-    std::fs::write(&script, NLTK_SCRIPT).map_err(io)?;
+/// The generated corpus written as line-aligned files (one reference) in a directory of its own,
+/// removed when dropped.
+struct CorpusFiles {
+    dir: PathBuf,
+    refs: PathBuf,
+    hyps: PathBuf,
+}
+
+impl CorpusFiles {
+    fn write(c: &Corpus) -> Result<CorpusFiles, CliError> {
+        let dir = std::env::temp_dir().join(format!("mtgauge-bench-{}", std::process::id()));
+        let io = |e| CliError::Output { what: dir.display().to_string(), source: e };
+        std::fs::create_dir_all(&dir).map_err(io)?;
+        let write = |name: &str, lines: &mut dyn Iterator<Item = &str>| -> Result<PathBuf, CliError> {
+            let p = dir.join(name);
+            let mut w = std::io::BufWriter::new(std::fs::File::create(&p).map_err(io)?);
+            for l in lines {
+                writeln!(w, "{l}").map_err(io)?;
+            }
+            w.flush().map_err(io)?;
+            Ok(p)
+        };
+        let refs = write("ref.txt", &mut c.refs.iter().map(|r| r[0].as_str()))?;
+        let hyps = write("hyp.txt", &mut c.hyps.iter().map(String::as_str))?;
+        Ok(CorpusFiles { dir, refs, hyps })
+    }
+}
+
+impl Drop for CorpusFiles {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.dir);
+    }
+}
+
+/// Run the baseline script in `mode` with `args` after the two file names; its JSON object.
+fn run_baseline(python: &PathBuf, files: &CorpusFiles, mode: &str, args: &[String]) -> Result<Value, CliError> {
+    let script = files.dir.join("bench_baselines.py");
+    std::fs::write(&script, BASELINE_SCRIPT).map_err(|e| CliError::Output { what: script.display().to_string(), source: e })?;
     let out = std::process::Command::new(python)
         .arg(&script)
-        .arg(&refs)
-        .arg(&hyps)
+        .arg(mode)
+        .arg(&files.refs)
+        .arg(&files.hyps)
+        .args(args)
         .output()
         .map_err(|e| CliError::Usage(format!("cannot run {}: {e}", python.display())))?;
-    let _ = std::fs::remove_dir_all(&dir);
     if !out.status.success() {
-        return Err(CliError::Usage(format!("NLTK baseline failed: {}", String::from_utf8_lossy(&out.stderr).trim())));
+        return Err(CliError::Usage(format!("{mode} baseline failed: {}", String::from_utf8_lossy(&out.stderr).trim())));
     }
-    serde_json::from_slice(&out.stdout).map_err(|e| CliError::Usage(format!("NLTK baseline printed no JSON: {e}")))
+    serde_json::from_slice(&out.stdout).map_err(|e| CliError::Usage(format!("{mode} baseline printed no JSON: {e}")))
+}
+
+/// The whole `mtgauge score` command on the files, as a user runs it (this executable, a new
+/// process each run, output read back): the fastest of [`END_TO_END_RUNS`] wall times and the
+/// JSON it printed.
+fn end_to_end(files: &CorpusFiles, metric: &str, threads: usize) -> Result<(f64, Value), CliError> {
+    let exe = std::env::current_exe().map_err(|e| CliError::Usage(format!("cannot find this executable: {e}")))?;
+    let mut best = f64::INFINITY;
+    let mut printed = Value::Null;
+    for _ in 0..END_TO_END_RUNS {
+        let (out, secs) = time(|| {
+            std::process::Command::new(&exe)
+                .args(["score", "--tokenizer", "whitespace", "--json", "--metric", metric, "--threads", &threads.to_string(), "--ref"])
+                .arg(&files.refs)
+                .arg("--hyp")
+                .arg(&files.hyps)
+                .stdin(std::process::Stdio::null())
+                .output()
+        });
+        let out = out.map_err(|e| CliError::Usage(format!("cannot run {}: {e}", exe.display())))?;
+        if !out.status.success() {
+            return Err(CliError::Usage(format!("mtgauge score failed: {}", String::from_utf8_lossy(&out.stderr).trim())));
+        }
+        best = best.min(secs);
+        printed = serde_json::from_slice(&out.stdout).map_err(|e| CliError::Usage(format!("mtgauge score printed no JSON: {e}")))?;
+    }
+    Ok((best, printed))
 }
 
 pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
@@ -275,9 +328,19 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
             "total": per_seg(two_set.memory_bytes() + two_bleu.memory_bytes(), two_set.len()),
         },
     });
+    let files = CorpusFiles::write(&corpus)?;
+    log(format!("timing the whole `mtgauge score` command on {threads} threads"));
+    let (e2e_bleu, printed) = end_to_end(&files, "bleu", threads)?;
+    let e2e_bleu_score = printed["bleu"]["score"].as_f64().unwrap_or(f64::NAN);
+    figures["end_to_end"] = json!({ "bleu_seconds": e2e_bleu, "bleu": e2e_bleu_score });
+    for (metric, _, _) in END_TO_END_CHRF {
+        let (secs, printed) = end_to_end(&files, metric, threads)?;
+        figures["end_to_end"][format!("{metric}_seconds")] = json!(secs);
+        figures["end_to_end"][metric] = printed[metric]["score"].clone();
+    }
     if let Some(py) = &a.baseline_python {
         log("timing NLTK corpus_bleu on the same corpus".into());
-        let nltk = run_nltk(py, &corpus)?;
+        let nltk = run_baseline(py, &files, "nltk", &[])?;
         let nltk_rate = nltk["segments"].as_f64().unwrap_or(0.0) / nltk["seconds"].as_f64().unwrap_or(f64::INFINITY);
         let nltk_bleu = 100.0 * nltk["bleu"].as_f64().unwrap_or(f64::NAN);
         figures["nltk"] = json!({
@@ -287,8 +350,23 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
             "bleu_difference": (nltk_bleu - figures["bleu"].as_f64().unwrap_or(0.0)).abs(),
             "ratio_1_thread": bleu_1 / nltk_rate,
             "ratio_n_threads": bleu_n / nltk_rate,
+            "total_seconds": nltk["total_seconds"],
+            "end_to_end_ratio": nltk["total_seconds"].as_f64().unwrap_or(f64::NAN) / e2e_bleu,
         });
+        for (metric, chars, words) in END_TO_END_CHRF {
+            log(format!("timing a plain Python {metric} on the same corpus"));
+            let py_out = run_baseline(py, &files, "chrf", &[chars.to_string(), words.to_string(), crate::metric::DEFAULT_CHRF_BETA.to_string()])?;
+            let total = py_out["total_seconds"].as_f64().unwrap_or(f64::NAN);
+            let ours = figures["end_to_end"][metric].as_f64().unwrap_or(f64::NAN);
+            figures[format!("python_{metric}")] = json!({
+                "total_seconds": total,
+                "score": py_out["score"],
+                "score_difference": (py_out["score"].as_f64().unwrap_or(f64::NAN) - ours).abs(),
+                "end_to_end_ratio": total / figures["end_to_end"][format!("{metric}_seconds")].as_f64().unwrap_or(f64::NAN),
+            });
+        }
     }
+    drop(files);
     let out = if a.json { serde_json::to_string_pretty(&figures).unwrap_or_default() + "\n" } else { human(&figures) };
     std::io::stdout().write_all(out.as_bytes()).map_err(|e| CliError::Output { what: "standard output".into(), source: e })
 }
@@ -321,6 +399,16 @@ fn human(f: &Value) -> String {
             f["threads"],
             g("bleu_difference")
         );
+    }
+    let e = &f["end_to_end"];
+    let g = |v: &Value, k: &str| v[k].as_f64().unwrap_or(f64::NAN);
+    s += &format!("  end to end (`mtgauge score`, whole process, {} threads):\n", f["threads"]);
+    for (metric, label, baseline, base_key) in [("bleu", "BLEU  ", "NLTK corpus_bleu", "nltk"), ("chrf", "chrF  ", "plain Python chrF", "python_chrf"), ("chrf++", "chrF++", "plain Python chrF++", "python_chrf++")] {
+        let mut line = format!("    {label}  {:8.3} s (score {:.2})", g(e, &format!("{metric}_seconds")), g(e, metric));
+        if let Some(b) = f.get(base_key) {
+            line += &format!("; {baseline} reading and scoring the same files {:.2} s -> {:.1}x faster", g(b, "total_seconds"), g(b, "end_to_end_ratio"));
+        }
+        s += &(line + "\n");
     }
     let m1 = &f["memory_bytes_per_segment_1_ref"];
     let m2 = &f["memory_bytes_per_segment_2_refs"];

@@ -43,14 +43,24 @@ pub enum RefFormat {
     Jsonl,
 }
 
-/// Load a reference set from `--ref` files (and an optional aligned source file for plain text).
-pub fn load_refset(paths: &[String], format: RefFormat, source: Option<&str>) -> Result<RefSet, InputError> {
-    let format = match format {
+/// The format `--ref-format` and the `--ref` paths name.
+pub fn resolve_format(paths: &[String], format: RefFormat) -> refs::RefFormat {
+    match format {
         RefFormat::Jsonl => refs::RefFormat::Jsonl,
         RefFormat::Plain => refs::RefFormat::Plain,
         RefFormat::Auto => refs::RefFormat::detect(paths),
-    };
-    let bytes: Vec<Vec<u8>> = paths.iter().map(|p| read_bytes(p)).collect::<Result<_, _>>()?;
+    }
+}
+
+/// Read every file of `paths`, in order (the first that cannot be read is the error).
+pub fn read_all(paths: &[String]) -> Result<Vec<Vec<u8>>, InputError> {
+    paths.iter().map(|p| read_bytes(p)).collect()
+}
+
+/// Load a reference set from `--ref` files already read (`bytes`, one per path), with an optional
+/// aligned source file for plain text.
+pub fn parse_refset(paths: &[String], format: RefFormat, bytes: &[Vec<u8>], source: Option<&str>) -> Result<RefSet, InputError> {
+    let format = resolve_format(paths, format);
     let files: Vec<(&str, &[u8])> = paths.iter().map(|p| display_name(p)).zip(bytes.iter().map(Vec::as_slice)).collect();
     let src = source.map(read_bytes).transpose()?;
     refs::load(format, &files, source.zip(src.as_deref())).map_err(|e| match e {

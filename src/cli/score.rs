@@ -7,12 +7,13 @@ use std::sync::Arc;
 use clap::Args;
 use serde_json::{json, Value};
 
-use super::input::{display_name, load_refset, read_bytes, Progress, RefFormat, PROGRESS_MIN_SEGMENTS};
+use super::input::{display_name, parse_refset, read_all, read_bytes, resolve_format, Progress, RefFormat, PROGRESS_MIN_SEGMENTS};
 use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::Compiled;
+use crate::refs::oneshot;
 use crate::refs::{check_same_length, split_lines, RefSet};
-use crate::report::{config_json, refset_json, segment_json, stats_json, stats_lines, PROXY_NOTE};
+use crate::report::{config_json, refset_json, segment_json, stats_json, stats_lines, RefSetSummary, PROXY_NOTE};
 
 pub(super) const LONG_ABOUT: &str = "\
 Score a hypothesis file against reference files, offline.
@@ -102,20 +103,18 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
     if a.threads == Some(0) {
         return Err(CliError::Usage("--threads must be at least 1".into()));
     }
-    let refs = Arc::new(load_refset(&a.refs, a.ref_format, None)?);
-    let hyp_name = display_name(&a.hyp);
-    let hyp_bytes = read_bytes(&a.hyp)?;
-    let hyps = split_lines(hyp_name, &hyp_bytes)?;
-    check_same_length(hyp_name, hyps.len(), display_name(&a.refs[0]), refs.len())?;
-    let show = stderr_is_terminal() && hyps.len() >= PROGRESS_MIN_SEGMENTS;
     let threads = a.threads.unwrap_or_else(default_threads);
-    let corpus = match &a.per_segment {
-        Some(path) => {
-            let scored = score_lines(Arc::clone(&refs), config, &hyps, threads, show);
-            write_per_segment(path, &scored)?;
-            scored.corpus()
-        }
-        None => score_corpus_lines(Arc::clone(&refs), config, &hyps, threads, show),
+    let ref_bytes = read_all(&a.refs)?;
+    let hyp_bytes = match read_bytes(&a.hyp) {
+        Ok(b) => b,
+        // The references are parsed before the hypothesis is read: their errors come first.
+        Err(e) => return Err(parse_refset(&a.refs, a.ref_format, &ref_bytes, None).err().unwrap_or(e).into()),
+    };
+    let one_shot = a.per_segment.is_none() && resolve_format(&a.refs, a.ref_format) == crate::refs::RefFormat::Plain;
+    let fast = one_shot.then(|| score_files(&config, &ref_bytes, &hyp_bytes, threads)).flatten();
+    let (corpus, refs) = match fast {
+        Some(scored) => (scored.stats, RefSetSummary { digest: scored.digest, segments: scored.segments, references: scored.references }),
+        None => score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads)?,
     };
     let out = if a.json {
         let mut m = stats_json(&corpus, &config);
@@ -133,6 +132,36 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         .map_err(|e| CliError::Output { what: "standard output".into(), source: e })
 }
 
+/// The one-shot path: line-aligned files scored chunk by chunk ([`oneshot::score_plain`]);
+/// `None` when the input is not clean (the long way then words the error).
+fn score_files(config: &ScoreConfig, refs: &[Vec<u8>], hyp: &[u8], threads: usize) -> Option<oneshot::PlainScored> {
+    let refs: Vec<&[u8]> = refs.iter().map(Vec::as_slice).collect();
+    // The line count is only wanted for the progress bar.
+    let total = if stderr_is_terminal() { memchr::memchr_iter(b'\n', hyp).count() } else { 0 };
+    let show = total >= PROGRESS_MIN_SEGMENTS;
+    let done = AtomicUsize::new(0);
+    Progress::new(&done, total).run(show, "scoring", || oneshot::score_plain(config, &refs, hyp, threads, &done))
+}
+
+/// The long way: the reference set parsed into a [`RefSet`], compiled and scored (per-segment
+/// output, JSONL references, and the wording of every input error).
+fn score_parsed(a: &ScoreArgs, config: ScoreConfig, ref_bytes: &[Vec<u8>], hyp_bytes: &[u8], threads: usize) -> Result<(CorpusStats, RefSetSummary), CliError> {
+    let refs = Arc::new(parse_refset(&a.refs, a.ref_format, ref_bytes, None)?);
+    let hyp_name = display_name(&a.hyp);
+    let hyps = split_lines(hyp_name, hyp_bytes)?;
+    check_same_length(hyp_name, hyps.len(), display_name(&a.refs[0]), refs.len())?;
+    let show = stderr_is_terminal() && hyps.len() >= PROGRESS_MIN_SEGMENTS;
+    let corpus = match &a.per_segment {
+        Some(path) => {
+            let scored = score_lines(Arc::clone(&refs), config, &hyps, threads, show);
+            write_per_segment(path, &scored)?;
+            scored.corpus()
+        }
+        None => score_corpus_lines(Arc::clone(&refs), config, &hyps, threads, show),
+    };
+    Ok((corpus, RefSetSummary::from(refs.as_ref())))
+}
+
 fn write_per_segment(path: &str, scored: &Scored) -> Result<(), CliError> {
     let err = |e| CliError::Output { what: path.to_owned(), source: e };
     let file = std::fs::File::create(path).map_err(err)?;
@@ -144,9 +173,9 @@ fn write_per_segment(path: &str, scored: &Scored) -> Result<(), CliError> {
     w.flush().map_err(err)
 }
 
-fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSet) -> String {
-    let per = refs.reference_count() as f64 / refs.len().max(1) as f64;
-    let digest = refs.digest_hex();
+fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSetSummary) -> String {
+    let per = refs.references as f64 / refs.segments.max(1) as f64;
+    let digest = crate::refs::hex(&refs.digest);
     let mut lines = vec![format!(
         "mtgauge score: {} segments, {:.2} references per segment, references {}",
         corpus.segments,

@@ -32,7 +32,7 @@ pub const SCORE_CHUNK: usize = 2048;
 
 /// Token-id sequences of every reference, each followed by `pad` zeros.
 #[derive(Default)]
-struct Sequences {
+pub(super) struct Sequences {
     pad: usize,
     seq: Vec<u32>,
     /// Start of each reference in `seq` (over all references of all segments).
@@ -42,7 +42,14 @@ struct Sequences {
 }
 
 impl Sequences {
-    fn push(&mut self, ids: impl Iterator<Item = u32>) {
+    /// No sequences, padded with `pad` zeros (keeping the buffers).
+    pub(super) fn reset(&mut self, pad: usize) {
+        self.pad = pad;
+        self.seq.clear();
+        self.start.clear();
+        self.len.clear();
+    }
+    pub(super) fn push(&mut self, ids: impl Iterator<Item = u32>) {
         let start = self.seq.len();
         self.start.push(start as u32);
         self.seq.extend(ids);
@@ -121,6 +128,13 @@ impl GramTables {
         };
         self.heads.push(head);
     }
+    fn clear(&mut self) {
+        self.heads.clear();
+        self.d8.clear();
+        self.d16.clear();
+        self.d32.clear();
+        self.keys.clear();
+    }
     fn shrink_to_fit(&mut self) {
         self.heads.shrink_to_fit();
         self.d8.shrink_to_fit();
@@ -139,7 +153,7 @@ impl GramTables {
 
 /// BLEU tables: per segment, a gram table of its references' tokens (counts are the largest in
 /// any one reference: the clipping counts).
-struct BleuTable {
+pub(super) struct BleuTable {
     order: usize,
     ref_length: crate::metric::RefLength,
     tables: GramTables,
@@ -147,6 +161,44 @@ struct BleuTable {
     long: Interner,
     /// Token count of each reference (over all references of all segments).
     ref_len: Vec<u32>,
+}
+
+/// Reusable buffers of building BLEU tables.
+#[derive(Default)]
+pub(super) struct BleuBuild {
+    buf: TokenBuf,
+    builder: GramBuilder,
+    keys: Vec<Vec<u64>>,
+}
+
+impl BleuTable {
+    pub(super) fn new(order: usize, ref_length: crate::metric::RefLength) -> BleuTable {
+        BleuTable { order, ref_length, tables: GramTables::default(), long: Interner::default(), ref_len: Vec::new() }
+    }
+
+    /// Forget every table (keeping the buffers), to build tables for `order` and `ref_length`.
+    pub(super) fn reset(&mut self, order: usize, ref_length: crate::metric::RefLength) {
+        (self.order, self.ref_length) = (order, ref_length);
+        self.tables.clear();
+        self.long.clear();
+        self.ref_len.clear();
+    }
+
+    /// Add the table of one more segment, of references `refs`.
+    pub(super) fn push_segment<'r>(&mut self, cfg: &ScoreConfig, refs: impl ExactSizeIterator<Item = &'r str>, b: &mut BleuBuild) {
+        let count = refs.len();
+        b.keys.resize_with(count.max(b.keys.len()), Vec::new);
+        for (k, r) in refs.enumerate() {
+            cfg.tokenizer.tokenize_into(r, cfg.caseless, &mut b.buf);
+            let text = b.buf.text_bytes();
+            let long = &mut LongTokens::Add(&mut self.long);
+            b.keys[k].clear();
+            b.keys[k].extend(b.buf.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, long)));
+            self.ref_len.push(b.keys[k].len() as u32);
+        }
+        let seqs: Vec<&[u64]> = b.keys[..count].iter().map(Vec::as_slice).collect();
+        self.tables.push(&mut b.builder, &seqs, self.order);
+    }
 }
 
 /// A reference set compiled for one configuration.
@@ -165,7 +217,7 @@ pub struct Compiled {
 /// order instead of sorting them): positions of one byte for references of up to 256
 /// characters, two bytes up to 65536; longer references are sorted when scored.
 #[derive(Default)]
-struct CharOrders {
+pub(super) struct CharOrders {
     /// Per reference: start in `by8` / `by16` shifted left by 2, or'ed with 1 (`by8`), 2
     /// (`by16`) or 0 (none).
     at: Vec<u64>,
@@ -379,21 +431,10 @@ impl Compiled {
     }
 
     fn build_bleu(&mut self, order: usize, ref_length: crate::metric::RefLength) -> BleuTable {
-        let mut t = BleuTable { order, ref_length, tables: GramTables::default(), long: Interner::default(), ref_len: Vec::new() };
-        let mut buf = TokenBuf::default();
-        let mut builder = GramBuilder::default();
-        let mut keys: Vec<Vec<u64>> = Vec::new();
+        let mut t = BleuTable::new(order, ref_length);
+        let mut b = BleuBuild::default();
         for seg in self.refs.segments() {
-            keys.resize_with(seg.ref_count(), Vec::new);
-            for (k, r) in seg.refs().enumerate() {
-                self.config.tokenizer.tokenize_into(r, self.config.caseless, &mut buf);
-                let text = buf.text_bytes();
-                keys[k].clear();
-                keys[k].extend(buf.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, &mut LongTokens::Add(&mut t.long))));
-                t.ref_len.push(keys[k].len() as u32);
-            }
-            let seqs: Vec<&[u64]> = keys[..seg.ref_count()].iter().map(Vec::as_slice).collect();
-            t.tables.push(&mut builder, &seqs, order);
+            t.push_segment(&self.config, seg.refs(), &mut b);
         }
         t.tables.shrink_to_fit();
         t.long.shrink_to_fit();
@@ -490,138 +531,12 @@ impl Compiled {
     fn score_configured(&self, seg: usize, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
         let refs = self.seg_ref[seg] as usize..self.seg_ref[seg + 1] as usize;
         if let Some(b) = &self.bleu {
-            self.score_bleu(b, seg, refs.clone(), hyp, s, out);
+            bleu_segment(&self.config, b, seg, refs.clone(), hyp, s, out);
         }
         if self.config.any_chrf() {
-            self.score_chrf(seg, refs, hyp, s, out);
-        }
-    }
-
-    fn score_bleu(&self, b: &BleuTable, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
-        let (head, wide) = &b.tables.heads[seg];
-        let st = &mut out.bleu;
-        *st = Default::default();
-        match wide {
-            Wide::U8 => self.bleu_matches(b, Gram::new(head, b.order, &b.tables.d8, &b.tables.keys), hyp, s, &mut st.matches),
-            Wide::U16 => self.bleu_matches(b, Gram::new(head, b.order, &b.tables.d16, &b.tables.keys), hyp, s, &mut st.matches),
-            Wide::U32 => self.bleu_matches(b, Gram::new(head, b.order, &b.tables.d32, &b.tables.keys), hyp, s, &mut st.matches),
-        }
-        let len = s.names.len();
-        for n in 1..=b.order {
-            st.totals[n - 1] = ngram_count(len, n);
-        }
-        st.hyp_len = len as u64;
-        st.ref_len = b.ref_length.pick(len as u64, refs.map(|r| b.ref_len[r] as u64));
-    }
-
-    /// Tokenize `hyp`, name its tokens in `g` (into `s.names`) and count clipped matches.
-    #[inline]
-    fn bleu_matches<W: Width>(&self, b: &BleuTable, g: Gram<'_, W>, hyp: &str, s: &mut Scratch, matches: &mut [u64]) {
-        // Keys first, then names: two tight loops overlap their loads better than one.
-        s.keys.clear();
-        let mut long = LongTokens::Get(&b.long);
-        if self.config.tokenizer == Tokenizer::Whitespace && !self.config.caseless {
-            let (text, keys) = (hyp.as_bytes(), &mut s.keys);
-            for_each_space_token(hyp, |a, e| keys.push(token_key(text, a, e, &mut long)));
-        } else {
-            self.config.tokenizer.tokenize_into(hyp, self.config.caseless, &mut s.tok);
-            let text = s.tok.text_bytes();
-            s.keys.extend(s.tok.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, &mut long)));
-        }
-        s.names.clear();
-        s.names.extend(s.keys.iter().map(|&k| g.lookup(k)));
-        g.count(&s.names, &mut s.gram, &mut matches[..b.order]);
-    }
-
-    fn score_chrf(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
-        if !self.score_chrf_packed(seg, refs.clone(), hyp, s, out) {
-            self.score_chrf_general(seg, refs, hyp, s, out);
-        }
-    }
-
-    /// chrF / chrF++ by packed keys; false when some n-gram does not fit the widest key (then
-    /// `out` is to be filled by [`Compiled::score_chrf_general`]).
-    fn score_chrf_packed(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) -> bool {
-        let cfg = &self.config;
-        let (c_order, w_order) = (cfg.max_chars(), cfg.max_words());
-        let p = &mut s.packed;
-        let hyp_max = char_items(hyp, cfg.caseless, &mut s.lower, &mut s.hyp_chars);
-        let hyp_len = s.hyp_chars.len();
-        p.hyp_chars.reset();
-        p.hyp_words.reset();
-        // Word ids: interned ids from 1, one more id for every word the references lack.
-        let unknown_word = self.words.len() as u32 + 1;
-        if self.word_seqs.is_some() {
-            let text = if cfg.caseless { s.lower.as_str() } else { hyp };
-            s.hyp_words.clear();
-            s.hyp_words.extend(text.split(is_space).filter(|w| !w.is_empty()).map(|w| match self.words.get(w.as_bytes()) {
-                super::intern::UNKNOWN => unknown_word,
-                id => id,
-            }));
-        }
-        let segment = self.refs.segment(seg);
-        let mut best = Best::new(out);
-        for (k, r) in refs.enumerate() {
-            let ref_max = char_items(segment.reference(k), cfg.caseless, &mut s.lower, &mut p.ref_items);
-            let by = self.char_orders.as_ref().map_or(RefOrder::Unknown, |o| o.get(r, p.ref_items.len()));
-            let mut st = ChrfStats::default();
-            if !packed_counts(c_order, hyp_max.max(ref_max), &s.hyp_chars, &mut p.hyp_chars, &p.ref_items, by, &mut p.bufs, &mut st.char.matches) {
-                return false;
-            }
-            let ref_len = p.ref_items.len();
-            for n in 1..=c_order {
-                st.char.hyp[n - 1] = ngram_count(hyp_len, n);
-                st.char.reference[n - 1] = ngram_count(ref_len, n);
-            }
-            if let Some(ws) = &self.word_seqs {
-                let words = &ws.seq[ws.range(r)];
-                if !packed_counts(w_order, unknown_word, &s.hyp_words, &mut p.hyp_words, words, RefOrder::Unknown, &mut p.bufs, &mut st.word.matches) {
-                    return false;
-                }
-                for n in 1..=w_order {
-                    st.word.hyp[n - 1] = ngram_count(s.hyp_words.len(), n);
-                    st.word.reference[n - 1] = ngram_count(words.len(), n);
-                }
-            }
-            best.offer(cfg, &st, k, out);
-        }
-        true
-    }
-
-    /// chrF / chrF++ for any orders and characters, sorting positions by item slices.
-    fn score_chrf_general(&self, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
-        let cfg = &self.config;
-        let (c_order, w_order) = (cfg.max_chars(), cfg.max_words());
-        s.lower.clear();
-        push_lowercased(hyp, cfg.caseless, &mut s.lower);
-        char_codes(&s.lower, c_order, &mut s.hyp_chars);
-        let hyp_len = s.hyp_chars.len() - c_order;
-        sort_positions(&s.hyp_chars, hyp_len, c_order, &mut s.hyp_char_pos);
-        let mut hyp_words = 0;
-        if self.word_seqs.is_some() {
-            s.hyp_words.clear();
-            s.hyp_words.extend(s.lower.split(is_space).filter(|w| !w.is_empty()).map(|w| self.words.get(w.as_bytes())));
-            hyp_words = s.hyp_words.len();
-            s.hyp_words.extend(std::iter::repeat(0).take(w_order));
-            sort_positions(&s.hyp_words, hyp_words, w_order, &mut s.hyp_word_pos);
-        }
-        let segment = self.refs.segment(seg);
-        let mut best = Best::new(out);
-        for (k, r) in refs.enumerate() {
-            s.lower.clear();
-            push_lowercased(segment.reference(k), cfg.caseless, &mut s.lower);
-            char_codes(&s.lower, c_order, &mut s.ref_chars);
-            let ref_len = s.ref_chars.len() - c_order;
-            sort_positions(&s.ref_chars, ref_len, c_order, &mut s.ref_char_pos);
-            let mut st = ChrfStats::default();
-            count_orders(c_order, (&s.hyp_chars, &s.hyp_char_pos, hyp_len), (&s.ref_chars, &s.ref_char_pos, ref_len), &mut st.char);
-            if let Some(ws) = &self.word_seqs {
-                let range = ws.range(r);
-                let wseq = &ws.seq[range.start..range.end + ws.pad];
-                sort_positions(wseq, range.len(), w_order, &mut s.ref_word_pos);
-                count_orders(w_order, (&s.hyp_words, &s.hyp_word_pos, hyp_words), (wseq, &s.ref_word_pos, range.len()), &mut st.word);
-            }
-            best.offer(cfg, &st, k, out);
+            let segment = self.refs.segment(seg);
+            let tables = ChrfTables { words: &self.words, word_seqs: self.word_seqs.as_ref(), char_orders: self.char_orders.as_ref() };
+            chrf_segment(&self.config, &tables, refs, |k| segment.reference(k), hyp, s, out);
         }
     }
 
@@ -703,6 +618,164 @@ impl Compiled {
             results[c] = stats;
         }
         results.into_iter().flatten().collect()
+    }
+}
+
+/// The per-reference tables chrF scoring uses (word ids and sequences for chrF++, known key
+/// orders of the references' characters), indexed by reference.
+pub(super) struct ChrfTables<'a> {
+    pub(super) words: &'a Interner,
+    pub(super) word_seqs: Option<&'a Sequences>,
+    pub(super) char_orders: Option<&'a CharOrders>,
+}
+
+pub(super) fn bleu_segment(cfg: &ScoreConfig, b: &BleuTable, seg: usize, refs: std::ops::Range<usize>, hyp: &str, s: &mut Scratch, out: &mut SegmentStats) {
+    let (head, wide) = &b.tables.heads[seg];
+    let st = &mut out.bleu;
+    *st = Default::default();
+    match wide {
+        Wide::U8 => bleu_matches(cfg, b, Gram::new(head, b.order, &b.tables.d8, &b.tables.keys), hyp, s, &mut st.matches),
+        Wide::U16 => bleu_matches(cfg, b, Gram::new(head, b.order, &b.tables.d16, &b.tables.keys), hyp, s, &mut st.matches),
+        Wide::U32 => bleu_matches(cfg, b, Gram::new(head, b.order, &b.tables.d32, &b.tables.keys), hyp, s, &mut st.matches),
+    }
+    let len = s.names.len();
+    for n in 1..=b.order {
+        st.totals[n - 1] = ngram_count(len, n);
+    }
+    st.hyp_len = len as u64;
+    st.ref_len = b.ref_length.pick(len as u64, refs.map(|r| b.ref_len[r] as u64));
+}
+
+/// Tokenize `hyp`, name its tokens in `g` (into `s.names`) and count clipped matches.
+#[inline]
+fn bleu_matches<W: Width>(cfg: &ScoreConfig, b: &BleuTable, g: Gram<'_, W>, hyp: &str, s: &mut Scratch, matches: &mut [u64]) {
+    // Keys first, then names: two tight loops overlap their loads better than one.
+    s.keys.clear();
+    let mut long = LongTokens::Get(&b.long);
+    if cfg.tokenizer == Tokenizer::Whitespace && !cfg.caseless {
+        let (text, keys) = (hyp.as_bytes(), &mut s.keys);
+        for_each_space_token(hyp, |a, e| keys.push(token_key(text, a, e, &mut long)));
+    } else {
+        cfg.tokenizer.tokenize_into(hyp, cfg.caseless, &mut s.tok);
+        let text = s.tok.text_bytes();
+        s.keys.extend(s.tok.spans().iter().map(|&(a, e)| token_key(text, a as usize, e as usize, &mut long)));
+    }
+    s.names.clear();
+    s.names.extend(s.keys.iter().map(|&k| g.lookup(k)));
+    g.count(&s.names, &mut s.gram, &mut matches[..b.order]);
+}
+
+/// chrF / chrF++ of `hyp` against references `refs` (indices into `t`'s per-reference
+/// tables; `reference(k)` is the text of the k-th of them).
+pub(super) fn chrf_segment<'r>(
+cfg: &ScoreConfig,
+t: &ChrfTables<'_>,
+refs: std::ops::Range<usize>,
+reference: impl Fn(usize) -> &'r str,
+hyp: &str,
+s: &mut Scratch,
+out: &mut SegmentStats,
+) {
+if !chrf_packed(cfg, t, refs.clone(), &reference, hyp, s, out) {
+    chrf_general(cfg, t, refs, &reference, hyp, s, out);
+}
+}
+
+/// chrF / chrF++ by packed keys; false when some n-gram does not fit the widest key (then
+/// `out` is to be filled by [`chrf_general`]).
+fn chrf_packed<'r>(
+cfg: &ScoreConfig,
+t: &ChrfTables<'_>,
+refs: std::ops::Range<usize>,
+reference: &impl Fn(usize) -> &'r str,
+hyp: &str,
+s: &mut Scratch,
+out: &mut SegmentStats,
+) -> bool {
+    let (c_order, w_order) = (cfg.max_chars(), cfg.max_words());
+    let p = &mut s.packed;
+    let hyp_max = char_items(hyp, cfg.caseless, &mut s.lower, &mut s.hyp_chars);
+    let hyp_len = s.hyp_chars.len();
+    p.hyp_chars.reset();
+    p.hyp_words.reset();
+    // Word ids: interned ids from 1, one more id for every word the references lack.
+    let unknown_word = t.words.len() as u32 + 1;
+    if t.word_seqs.is_some() {
+        let text = if cfg.caseless { s.lower.as_str() } else { hyp };
+        s.hyp_words.clear();
+        s.hyp_words.extend(text.split(is_space).filter(|w| !w.is_empty()).map(|w| match t.words.get(w.as_bytes()) {
+            super::intern::UNKNOWN => unknown_word,
+            id => id,
+        }));
+    }
+    let mut best = Best::new(out);
+    for (k, r) in refs.enumerate() {
+        let ref_max = char_items(reference(k), cfg.caseless, &mut s.lower, &mut p.ref_items);
+        let by = t.char_orders.as_ref().map_or(RefOrder::Unknown, |o| o.get(r, p.ref_items.len()));
+        let mut st = ChrfStats::default();
+        if !packed_counts(c_order, hyp_max.max(ref_max), &s.hyp_chars, &mut p.hyp_chars, &p.ref_items, by, &mut p.bufs, &mut st.char.matches) {
+            return false;
+        }
+        let ref_len = p.ref_items.len();
+        for n in 1..=c_order {
+            st.char.hyp[n - 1] = ngram_count(hyp_len, n);
+            st.char.reference[n - 1] = ngram_count(ref_len, n);
+        }
+        if let Some(ws) = t.word_seqs {
+            let words = &ws.seq[ws.range(r)];
+            if !packed_counts(w_order, unknown_word, &s.hyp_words, &mut p.hyp_words, words, RefOrder::Unknown, &mut p.bufs, &mut st.word.matches) {
+                return false;
+            }
+            for n in 1..=w_order {
+                st.word.hyp[n - 1] = ngram_count(s.hyp_words.len(), n);
+                st.word.reference[n - 1] = ngram_count(words.len(), n);
+            }
+        }
+        best.offer(cfg, &st, k, out);
+    }
+    true
+}
+
+/// chrF / chrF++ for any orders and characters, sorting positions by item slices.
+fn chrf_general<'r>(
+cfg: &ScoreConfig,
+t: &ChrfTables<'_>,
+refs: std::ops::Range<usize>,
+reference: &impl Fn(usize) -> &'r str,
+hyp: &str,
+s: &mut Scratch,
+out: &mut SegmentStats,
+) {
+    let (c_order, w_order) = (cfg.max_chars(), cfg.max_words());
+    s.lower.clear();
+    push_lowercased(hyp, cfg.caseless, &mut s.lower);
+    char_codes(&s.lower, c_order, &mut s.hyp_chars);
+    let hyp_len = s.hyp_chars.len() - c_order;
+    sort_positions(&s.hyp_chars, hyp_len, c_order, &mut s.hyp_char_pos);
+    let mut hyp_words = 0;
+    if t.word_seqs.is_some() {
+        s.hyp_words.clear();
+        s.hyp_words.extend(s.lower.split(is_space).filter(|w| !w.is_empty()).map(|w| t.words.get(w.as_bytes())));
+        hyp_words = s.hyp_words.len();
+        s.hyp_words.extend(std::iter::repeat(0).take(w_order));
+        sort_positions(&s.hyp_words, hyp_words, w_order, &mut s.hyp_word_pos);
+    }
+    let mut best = Best::new(out);
+    for (k, r) in refs.enumerate() {
+        s.lower.clear();
+        push_lowercased(reference(k), cfg.caseless, &mut s.lower);
+        char_codes(&s.lower, c_order, &mut s.ref_chars);
+        let ref_len = s.ref_chars.len() - c_order;
+        sort_positions(&s.ref_chars, ref_len, c_order, &mut s.ref_char_pos);
+        let mut st = ChrfStats::default();
+        count_orders(c_order, (&s.hyp_chars, &s.hyp_char_pos, hyp_len), (&s.ref_chars, &s.ref_char_pos, ref_len), &mut st.char);
+        if let Some(ws) = t.word_seqs {
+            let range = ws.range(r);
+            let wseq = &ws.seq[range.start..range.end + ws.pad];
+            sort_positions(wseq, range.len(), w_order, &mut s.ref_word_pos);
+            count_orders(w_order, (&s.hyp_words, &s.hyp_word_pos, hyp_words), (wseq, &s.ref_word_pos, range.len()), &mut st.word);
+        }
+        best.offer(cfg, &st, k, out);
     }
 }
 

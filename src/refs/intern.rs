@@ -9,6 +9,9 @@ pub const UNKNOWN: u32 = u32::MAX;
 /// Largest number of distinct tokens (ids stay below [`UNKNOWN`]).
 const MAX_TOKENS: usize = (u32::MAX - 1) as usize;
 
+/// Largest lookup table [`Interner::clear`] keeps.
+const KEEP_SLOTS: usize = 4096;
+
 #[derive(Default)]
 pub struct Interner {
     /// Key bytes of every token, in id order.
@@ -93,6 +96,18 @@ impl Interner {
                 i = (i + 1) & mask;
             }
             self.table[i] = e;
+        }
+    }
+
+    /// Forget every token, keeping the buffers (a table grown past [`KEEP_SLOTS`] is let go,
+    /// so that one large input does not make every later clearing slow).
+    pub fn clear(&mut self) {
+        self.arena.clear();
+        self.starts.clear();
+        if self.table.len() > KEEP_SLOTS {
+            self.table = Vec::new();
+        } else {
+            self.table.fill(0);
         }
     }
 

@@ -8,6 +8,7 @@
 pub mod compiled;
 mod intern;
 mod load;
+pub mod oneshot;
 mod parse;
 
 use std::fmt;
@@ -132,8 +133,8 @@ impl RefSet {
             by_id: Default::default(),
             digest: [0; 32],
         };
-        let mut hasher = Sha256::new();
-        hasher.update(DIGEST_DOMAIN);
+        let mut digest = SetDigest::new();
+        let mut encoded = Vec::new();
         for (i, seg) in segments.into_iter().enumerate() {
             if seg.id.is_empty() {
                 return Err(RefSetError::EmptyId(i + 1));
@@ -145,25 +146,19 @@ impl RefSet {
                 return Err(RefSetError::DuplicateId { id: seg.id, first: first as usize + 1, second: i + 1 });
             }
             set.by_id.insert(seg.id.as_str().into(), i as u32);
-            hash_field(&mut hasher, seg.id.as_bytes());
-            match &seg.source {
-                Some(s) => {
-                    hasher.update([1u8]);
-                    hash_field(&mut hasher, s.as_bytes());
-                }
-                None => hasher.update([0u8]),
-            }
-            hasher.update((seg.refs.len() as u64).to_le_bytes());
+            encoded.clear();
+            SetDigest::segment_head(&mut encoded, seg.id.as_bytes(), seg.source.as_deref().map(str::as_bytes), seg.refs.len());
             set.push_field(&seg.id)?;
             set.push_field(seg.source.as_deref().unwrap_or(""))?;
             set.has_source.push(seg.source.is_some());
             for r in &seg.refs {
-                hash_field(&mut hasher, r.as_bytes());
+                SetDigest::field(&mut encoded, r.as_bytes());
                 set.push_field(r)?;
             }
+            digest.update(&encoded);
             set.first_field.push(set.ends.len() as u32);
         }
-        set.digest = hasher.finalize().into();
+        set.digest = digest.finish();
         set.arena.shrink_to_fit();
         set.ends.shrink_to_fit();
         Ok(set)
@@ -223,22 +218,10 @@ impl RefSet {
     pub fn encode(&self) -> Vec<u8> {
         let mut out = Vec::with_capacity(DIGEST_DOMAIN.len() + self.arena.len() + 24 * self.ends.len());
         out.extend_from_slice(DIGEST_DOMAIN);
-        let field = |out: &mut Vec<u8>, s: &str| {
-            out.extend_from_slice(&(s.len() as u64).to_le_bytes());
-            out.extend_from_slice(s.as_bytes());
-        };
         for seg in self.segments() {
-            field(&mut out, seg.id());
-            match seg.source() {
-                Some(src) => {
-                    out.push(1);
-                    field(&mut out, src);
-                }
-                None => out.push(0),
-            }
-            out.extend_from_slice(&(seg.ref_count() as u64).to_le_bytes());
+            SetDigest::segment_head(&mut out, seg.id().as_bytes(), seg.source().map(str::as_bytes), seg.ref_count());
             for r in seg.refs() {
-                field(&mut out, r);
+                SetDigest::field(&mut out, r.as_bytes());
             }
         }
         out
@@ -319,9 +302,47 @@ pub fn hex(bytes: &[u8]) -> String {
     bytes.iter().map(|b| format!("{b:02x}")).collect()
 }
 
-fn hash_field(h: &mut Sha256, bytes: &[u8]) {
-    h.update((bytes.len() as u64).to_le_bytes());
-    h.update(bytes);
+/// The SHA-256 of a reference set's canonical encoding (see [`RefSet::digest`]), fed segment by
+/// segment with the encoding [`SetDigest::segment_head`] and [`SetDigest::field`] write.
+pub(crate) struct SetDigest(Sha256);
+
+impl SetDigest {
+    /// A hash that has taken the domain tag.
+    pub(crate) fn new() -> SetDigest {
+        let mut h = Sha256::new();
+        h.update(DIGEST_DOMAIN);
+        SetDigest(h)
+    }
+
+    /// Append the encoding of a segment's id, source and reference count to `out` (its
+    /// references follow, each a [`SetDigest::field`]).
+    pub(crate) fn segment_head(out: &mut Vec<u8>, id: &[u8], source: Option<&[u8]>, refs: usize) {
+        SetDigest::field(out, id);
+        match source {
+            Some(s) => {
+                out.push(1);
+                SetDigest::field(out, s);
+            }
+            None => out.push(0),
+        }
+        out.extend_from_slice(&(refs as u64).to_le_bytes());
+    }
+
+    /// Append one length-prefixed string to `out`.
+    pub(crate) fn field(out: &mut Vec<u8>, bytes: &[u8]) {
+        out.extend_from_slice(&(bytes.len() as u64).to_le_bytes());
+        out.extend_from_slice(bytes);
+    }
+
+    /// Hash encoded bytes.
+    pub(crate) fn update(&mut self, bytes: &[u8]) {
+        self.0.update(bytes);
+    }
+
+    /// The digest.
+    pub(crate) fn finish(self) -> [u8; 32] {
+        self.0.finalize().into()
+    }
 }
 
 #[cfg(test)]

@@ -47,7 +47,7 @@ impl fmt::Display for InputError {
 
 impl std::error::Error for InputError {}
 
-const BOM: &[u8] = b"\xEF\xBB\xBF";
+pub(super) const BOM: &[u8] = b"\xEF\xBB\xBF";
 
 /// Split a file's bytes into lines, checking that each is valid UTF-8.
 pub fn split_lines<'a>(file: &str, bytes: &'a [u8]) -> Result<Vec<&'a str>, InputError> {
