@@ -72,7 +72,7 @@ const LONG_KEY: u64 = 0xFF << 56;
 /// (top byte, at most 7); longer tokens, [`LONG_KEY`] and their id from `long`, interned when
 /// `add` is set (else [`super::intern::UNKNOWN`], which no table holds). `text[a..e]` is the token.
 #[inline(always)]
-fn token_key(text: &[u8], a: usize, e: usize, long: &mut LongTokens<'_>) -> u64 {
+pub(super) fn token_key(text: &[u8], a: usize, e: usize, long: &mut LongTokens<'_>) -> u64 {
     let len = e - a;
     if len <= 7 {
         let w = match text.get(a..a + 8) {
@@ -93,7 +93,7 @@ fn token_key(text: &[u8], a: usize, e: usize, long: &mut LongTokens<'_>) -> u64 
     }
 }
 
-enum LongTokens<'a> {
+pub(super) enum LongTokens<'a> {
     Add(&'a mut Interner),
     Get(&'a Interner),
 }

@@ -21,7 +21,7 @@
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::Mutex;
 
-use super::compiled::{bleu_segment, chrf_segment, BleuBuild, BleuTable, ChrfTables, Scratch, Sequences};
+use super::compiled::{bleu_segment, chrf_segment, token_key, BleuBuild, BleuTable, ChrfTables, LongTokens, Scratch, Sequences};
 use super::intern::Interner;
 use crate::metric::ngram::{ngram_count, packed_bits, packed_fits, Packed};
 use crate::metric::{BleuParams, CorpusStats, ScoreConfig, SegmentStats};
@@ -31,6 +31,9 @@ use crate::text::{for_each_space_token, is_space, push_lowercased, TokenBuf, Tok
 pub const ONESHOT_CHUNK: usize = 2048;
 /// Smallest n-gram table (slots) of the BLEU counter.
 const MIN_TABLE_SLOTS: usize = 64;
+/// Distinct long tokens (8 bytes or more) a thread's interner holds before it is cleared between
+/// segments.
+const MAX_LONG_TOKENS: usize = 1 << 16;
 /// Bytes of digest input gathered before they are handed to the hash.
 const DIGEST_BATCH: usize = 1 << 16;
 
@@ -38,10 +41,11 @@ const DIGEST_BATCH: usize = 1 << 16;
 #[derive(Default)]
 pub struct SegmentScratch {
     tok: TokenBuf,
-    ids: Interner,
+    ids: TokenIds,
     ref_ids: Vec<u32>,
     ref_ends: Vec<usize>,
     hyp_ids: Vec<u32>,
+    unigrams: Unigrams,
     t64: ClipTable<u64>,
     t128: ClipTable<u128>,
     fallback: Option<(BleuTable, BleuBuild)>,
@@ -86,17 +90,90 @@ fn score_configured(cfg: &ScoreConfig, refs: &[&str], hyp: &str, s: &mut Segment
     }
 }
 
-/// Call `f` with the bytes of every token of `text` (as `cfg` tokenizes it).
+/// Call `f(text, start, end)` for every token of `text` as `cfg` tokenizes it (`text` the
+/// tokenized text, the token its bytes `start..end`).
 #[inline]
-fn for_each_token(cfg: &ScoreConfig, text: &str, tok: &mut TokenBuf, mut f: impl FnMut(&[u8])) {
+fn for_each_token(cfg: &ScoreConfig, text: &str, tok: &mut TokenBuf, mut f: impl FnMut(&[u8], usize, usize)) {
     if cfg.tokenizer == Tokenizer::Whitespace && !cfg.caseless {
         let bytes = text.as_bytes();
-        for_each_space_token(text, |a, e| f(&bytes[a..e]));
+        for_each_space_token(text, |a, e| f(bytes, a, e));
     } else {
         cfg.tokenizer.tokenize_into(text, cfg.caseless, tok);
         let bytes = tok.text_bytes();
         for &(a, e) in tok.spans() {
-            f(&bytes[a as usize..e as usize]);
+            f(bytes, a as usize, e as usize);
+        }
+    }
+}
+
+/// Dense ids (from 1) of the tokens of one segment, by their keys ([`token_key`]: the bytes of a
+/// token of up to 7 bytes, an interned id for a longer one), in a table cleared by bumping the
+/// generation.
+#[derive(Default)]
+struct TokenIds {
+    /// Key, generation, id.
+    slots: Vec<(u64, u32, u32)>,
+    gen: u32,
+    shift: u32,
+    len: u32,
+    long: Interner,
+}
+
+impl TokenIds {
+    fn clear(&mut self) {
+        if self.slots.is_empty() {
+            self.resize(MIN_TABLE_SLOTS);
+        }
+        if self.long.len() > MAX_LONG_TOKENS {
+            self.long.clear();
+        }
+        self.len = 0;
+        self.gen = self.gen.wrapping_add(1);
+        if self.gen == 0 {
+            self.slots.fill((0, 0, 0));
+            self.gen = 1;
+        }
+    }
+
+    fn len(&self) -> usize {
+        self.len as usize
+    }
+
+    /// The id of token `text[a..e]`, given one if new.
+    #[inline(always)]
+    fn id(&mut self, text: &[u8], a: usize, e: usize) -> u32 {
+        let key = token_key(text, a, e, &mut LongTokens::Add(&mut self.long));
+        let mask = self.slots.len() - 1;
+        let mut i = (key.mix() >> self.shift) as usize;
+        loop {
+            let (k, g, id) = self.slots[i];
+            if g != self.gen {
+                self.len += 1;
+                self.slots[i] = (key, self.gen, self.len);
+                let id = self.len;
+                if 2 * self.len as usize >= self.slots.len() {
+                    self.resize(2 * self.slots.len());
+                }
+                return id;
+            }
+            if k == key {
+                return id;
+            }
+            i = (i + 1) & mask;
+        }
+    }
+
+    /// A table of `n` slots holding this generation's entries.
+    fn resize(&mut self, n: usize) {
+        let old = std::mem::replace(&mut self.slots, vec![(0, 0, 0); n]);
+        self.shift = 64 - n.trailing_zeros();
+        let gen = self.gen;
+        for (k, g, id) in old.into_iter().filter(|&(_, g, _)| g == gen) {
+            let mut i = (k.mix() >> self.shift) as usize;
+            while self.slots[i].1 == gen {
+                i = (i + 1) & (n - 1);
+            }
+            self.slots[i] = (k, g, id);
         }
     }
 }
@@ -109,17 +186,19 @@ fn bleu(cfg: &ScoreConfig, p: BleuParams, refs: &[&str], hyp: &str, s: &mut Segm
     s.hyp_ids.clear();
     let (ids, tok) = (&mut s.ids, &mut s.tok);
     for r in refs {
-        for_each_token(cfg, r, tok, |t| s.ref_ids.push(ids.intern(t)));
+        for_each_token(cfg, r, tok, |t, a, e| s.ref_ids.push(ids.id(t, a, e)));
         s.ref_ends.push(s.ref_ids.len());
     }
-    for_each_token(cfg, hyp, tok, |t| s.hyp_ids.push(ids.intern(t)));
+    for_each_token(cfg, hyp, tok, |t, a, e| s.hyp_ids.push(ids.id(t, a, e)));
     let max = ids.len() as u32;
     let st = &mut out.bleu;
     *st = Default::default();
     if packed_fits::<u64>(order, max) {
-        s.t64.clip(order, &s.ref_ids, &s.ref_ends, &s.hyp_ids, &mut st.matches);
+        s.unigrams.count(ids.len(), &s.ref_ids, &s.ref_ends);
+        s.t64.clip(order, &s.ref_ids, &s.ref_ends, &s.hyp_ids, &mut s.unigrams, &mut st.matches);
     } else if packed_fits::<u128>(order, max) {
-        s.t128.clip(order, &s.ref_ids, &s.ref_ends, &s.hyp_ids, &mut st.matches);
+        s.unigrams.count(ids.len(), &s.ref_ids, &s.ref_ends);
+        s.t128.clip(order, &s.ref_ids, &s.ref_ends, &s.hyp_ids, &mut s.unigrams, &mut st.matches);
     } else {
         let (table, build) = s.fallback.get_or_insert_with(|| (BleuTable::new(order, p.ref_length), BleuBuild::default()));
         table.reset(order, p.ref_length);
@@ -141,6 +220,54 @@ fn bleu(cfg: &ScoreConfig, p: BleuParams, refs: &[&str], hyp: &str, s: &mut Segm
             l
         }),
     );
+}
+
+/// Clipping counts of single tokens, by dense id: no hashing for order 1.
+#[derive(Default)]
+struct Unigrams {
+    /// Count in the reference being counted.
+    count: Vec<u32>,
+    /// Largest count in any one reference.
+    max: Vec<u32>,
+    /// Hypothesis occurrences matched so far.
+    used: Vec<u32>,
+}
+
+impl Unigrams {
+    /// Count the references `ids` (ending at `ends`), ids in `1..=distinct`.
+    fn count(&mut self, distinct: usize, ids: &[u32], ends: &[usize]) {
+        for v in [&mut self.count, &mut self.max, &mut self.used] {
+            v.clear();
+            v.resize(distinct + 1, 0);
+        }
+        let mut start = 0;
+        for &end in ends {
+            let seq = &ids[start..end];
+            start = end;
+            for &id in seq {
+                self.count[id as usize] += 1;
+            }
+            for &id in seq {
+                let i = id as usize;
+                self.max[i] = self.max[i].max(self.count[i]);
+                self.count[i] = 0;
+            }
+        }
+    }
+
+    /// Whether a hypothesis occurrence of `id` matches (and count it if so); `None` when the
+    /// references lack the token.
+    #[inline(always)]
+    fn matched(&mut self, id: u32) -> Option<bool> {
+        let i = id as usize;
+        let max = *self.max.get(i)?;
+        if max == 0 {
+            return None;
+        }
+        let hit = self.used[i] < max;
+        self.used[i] += hit as u32;
+        Some(hit)
+    }
 }
 
 /// A key type of the BLEU n-gram table.
@@ -242,17 +369,18 @@ impl<K: ClipKey> ClipTable<K> {
     /// Clipped matches of orders 1..=`order` (into `matches`) of hypothesis ids `hyp` against
     /// the references `ids` (ending at `ends`); every id is at least 1 and fits
     /// [`packed_bits`]`::<K>(order)` bits, so that keys of different orders never meet.
-    fn clip(&mut self, order: usize, ids: &[u32], ends: &[usize], hyp: &[u32], matches: &mut [u64]) {
+    /// Order 1 is `uni`'s, counted already.
+    fn clip(&mut self, order: usize, ids: &[u32], ends: &[usize], hyp: &[u32], uni: &mut Unigrams, matches: &mut [u64]) {
         let bits = packed_bits::<K>(order);
-        self.start(ids.len() * order);
+        self.start(ids.len() * (order - 1));
         let mut start = 0;
         for (r, &end) in ends.iter().enumerate() {
             let seq = &ids[start..end];
             start = end;
             let tag = r as u32 + 1;
             for i in 0..seq.len() {
-                let mut key = K::default();
-                for &id in &seq[i..(i + order).min(seq.len())] {
+                let mut key = K::from(seq[i]);
+                for &id in &seq[i + 1..(i + order).min(seq.len())] {
                     key = (key << bits) | K::from(id);
                     let e = self.entry(key);
                     if e.reference != tag {
@@ -265,14 +393,16 @@ impl<K: ClipKey> ClipTable<K> {
             }
         }
         for i in 0..hyp.len() {
-            let mut key = K::default();
-            for (n, &id) in hyp[i..(i + order).min(hyp.len())].iter().enumerate() {
+            // An n-gram the references lack extends to none they have.
+            let Some(hit) = uni.matched(hyp[i]) else { continue };
+            matches[0] += hit as u64;
+            let mut key = K::from(hyp[i]);
+            for (n, &id) in hyp[i + 1..(i + order).min(hyp.len())].iter().enumerate() {
                 key = (key << bits) | K::from(id);
-                // An n-gram the references lack extends to none they have.
                 let Some(e) = self.find(key) else { break };
                 if e.used < e.max {
                     e.used += 1;
-                    matches[n] += 1;
+                    matches[n + 1] += 1;
                 }
             }
         }
