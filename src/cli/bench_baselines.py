@@ -37,6 +37,9 @@ def nltk_main(ref_path, hyp_path):
 
 
 def ngrams(items, n):
+    """Counts of the n-grams of a string (substrings) or a list of words (tuples)."""
+    if isinstance(items, str):
+        return Counter(items[i:i + n] for i in range(len(items) - n + 1))
     return Counter(tuple(items[i:i + n]) for i in range(len(items) - n + 1))
 
 
