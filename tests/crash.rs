@@ -213,3 +213,86 @@ async fn restart_restores_sessions_refsets_and_windows() {
     let sets = pb::ref_sets_client::RefSetsClient::new(ch.clone()).list(pb::ListRefSetsRequest {}).await.unwrap().into_inner();
     assert_eq!(sets.refsets.len(), 1, "the reference set is rebuilt from the store, without its files");
 }
+
+/// A store that cannot be written (its file may not grow: RLIMIT_FSIZE) stops the server with
+/// exit code 70 and a clear message; the batch that hit it is refused with UNAVAILABLE, never
+/// acknowledged; and after a restart with room, exactly the acknowledged batches are there.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_store_that_cannot_be_written_stops_the_server_and_keeps_what_was_acknowledged() {
+    let dir = temp_dir("store-full");
+    demo_files(&dir);
+    let data = dir.join("data");
+    let data_s = data.to_str().unwrap().to_owned();
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let args = ["--refset", refs.as_str(), "--data-dir", data_s.as_str()];
+    let config = config();
+    {
+        let mut server = Server::start(&args);
+        let ch = server.wait_serving().await;
+        // A window as large as allowed: every scored segment adds a stored row.
+        let create = pb::CreateSessionRequest { name: "full".into(), refset: "ferry".into(), config: Some(config_to_pb(&config)), labels: Default::default(), window: mtgauge::session::MAX_WINDOW as u32, if_not_exists: false };
+        SessionsClient::new(ch.clone()).create(create).await.unwrap();
+        assert!(server.terminate().success());
+    }
+    let size = std::fs::metadata(data.join(mtgauge::store::STORE_FILE)).unwrap().len();
+    let mut server = Server::start_with_file_size_limit(&args, size + 256 * 1024);
+    let ch = server.wait_serving().await;
+    let mut scoring = ScoringClient::new(ch.clone());
+    let (segs, hyps) = (demo_segments(), &demo_systems()[0].hypotheses);
+    let batch = |sequence: u64| {
+        let items = (0..50).map(|i| {
+            let s = (sequence as usize * 50 + i) % segs.len();
+            pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone() }
+        });
+        pb::ScoreBatch { session: "full".into(), producer: "p".into(), sequence, want_segment_scores: false, items: items.collect() }
+    };
+    let mut acked = 0u64;
+    let refused = loop {
+        match scoring.submit(batch(acked + 1)).await {
+            Ok(ack) => {
+                assert_eq!(ack.into_inner().scored, 50);
+                acked += 1;
+                assert!(acked < 10_000, "the store never ran out of room");
+            }
+            Err(status) => break status,
+        }
+    };
+    assert!(acked > 0, "no batch fitted before the store was full");
+    assert_eq!(refused.code(), tonic::Code::Unavailable, "{refused:?}");
+    assert!(refused.message().contains("cannot write its store"), "{}", refused.message());
+    let deadline = std::time::Instant::now() + common::STARTUP_TIMEOUT;
+    let status = loop {
+        if let Some(st) = server.child.try_wait().unwrap() {
+            break st;
+        }
+        assert!(std::time::Instant::now() < deadline, "the server kept running with a store it cannot write");
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    };
+    assert_eq!(status.code(), Some(mtgauge::server::EXIT_STORE_FAILURE as i32));
+    std::thread::sleep(std::time::Duration::from_millis(100));
+    let logs = server.logs.lock().unwrap().join("\n");
+    assert!(logs.contains("mtgauge: error: cannot write the store:"), "{logs}");
+    drop(server);
+
+    // With room again: exactly the acknowledged batches, and the refused one is new.
+    let server = Server::start(&args);
+    let ch = server.wait_serving().await;
+    let want = {
+        let compiled = Compiled::build(common::demo_refset(), config);
+        let ids: std::collections::HashMap<&str, usize> = segs.iter().enumerate().map(|(i, s)| (s.id.as_str(), i)).collect();
+        let mut scratch = Scratch::default();
+        let mut sum = CorpusStats::default();
+        for seq in 1..=acked {
+            for it in batch(seq).items {
+                let Some(pb::score_item::Key::SegmentId(id)) = &it.key else { unreachable!() };
+                sum.add_segment(&compiled.score_segment(ids[id.as_str()], &it.hypothesis, &mut scratch));
+            }
+        }
+        sum
+    };
+    let mut scoring = ScoringClient::new(ch.clone());
+    let got = scoring.get_scores(pb::GetScoresRequest { session: "full".into() }).await.unwrap().into_inner();
+    assert_eq!(stats_from_pb(got.cumulative.as_ref().unwrap()), want, "after {acked} acknowledged batches");
+    let again = scoring.submit(batch(acked + 1)).await.unwrap().into_inner();
+    assert!(!again.duplicate && again.scored == 50, "the refused batch was never applied: {again:?}");
+}

@@ -305,7 +305,22 @@ async fn bad_requests_get_precise_statuses() {
     assert_eq!(code(sessions.create(req("v7", "ferry")).await), Code::AlreadyExists);
     let mut again = req("v7", "ferry");
     again.if_not_exists = true;
-    sessions.create(again).await.expect("identical definition with if_not_exists");
+    sessions.create(again.clone()).await.expect("identical definition with if_not_exists");
+    // A re-create is idempotent only for the whole definition: other labels or another window
+    // are refused, naming what differs (one rule, also when two creates race).
+    let mut labelled = again.clone();
+    labelled.labels = [("model".to_string(), "v8".to_string())].into_iter().collect();
+    let mut wider = again.clone();
+    wider.window = 77;
+    let mut both = labelled.clone();
+    both.window = 77;
+    for (r, want) in [(labelled, "with another definition (differs in labels)"), (wider, "with another definition (differs in window)"), (both, "with another definition (differs in labels, window)")] {
+        let e = sessions.create(r).await.unwrap_err();
+        assert_eq!(e.code(), Code::AlreadyExists, "{e:?}");
+        assert!(e.message().contains(&format!("'v7' already exists {want}")), "{}", e.message());
+    }
+    let e = sessions.create(req("v7", "ferry")).await.unwrap_err();
+    assert!(e.message().contains("(ask with if_not_exists to reuse it)"), "{}", e.message());
 
     let batch = |session: &str, items: Vec<pb::ScoreItem>| pb::ScoreBatch { session: session.into(), producer: String::new(), sequence: 0, items, want_segment_scores: false };
     let it = |id: &str, hyp: &str| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(id.into())), hypothesis: hyp.into() };
@@ -510,4 +525,26 @@ fn zero_or_negative_limits_are_refused_naming_the_key() {
         let err = String::from_utf8_lossy(&out.stderr);
         assert!(err.contains(key), "{body}: {err}");
     }
+}
+
+/// The server as a library: `server::run` on a listener the test bound, with a startup
+/// reference set, scores a batch exactly, stops when its shutdown future resolves, and returns.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn run_in_process_serves_until_its_shutdown_future_resolves() {
+    let dir = temp_dir("in-process");
+    demo_files(&dir);
+    let config = mtgauge::server::ServerConfig { startup_refsets: vec![mtgauge::server::StartupRefSet { name: "ferry".into(), paths: vec![dir.join("refs.jsonl")], source: None }], ..Default::default() };
+    let server = common::InProcess::start(config).await;
+    let ch = server.wait_serving().await;
+    create(&ch, "inproc", "ferry", all_metrics()).await;
+    let items: Vec<(usize, String)> = demo_items().into_iter().take(40).collect();
+    let batch = pb::ScoreBatch { session: "inproc".into(), producer: "p".into(), sequence: 1, want_segment_scores: false, items: items.iter().map(|(i, h)| item(false, *i, h)).collect() };
+    let ack = ScoringClient::new(ch.clone()).submit(batch).await.unwrap().into_inner();
+    assert_eq!((ack.scored, ack.duplicate), (40, false));
+    let got = scores(&ch, "inproc").await;
+    assert_eq!(stats_from_pb(got.cumulative.as_ref().unwrap()), offline(&items, all_metrics()));
+    let grpc = server.grpc.clone();
+    server.stop().await.expect("a clean stop");
+    let after = tonic::transport::Endpoint::from_shared(grpc).unwrap().connect().await;
+    assert!(after.is_err(), "the listener is closed after run returns");
 }

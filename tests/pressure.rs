@@ -274,6 +274,24 @@ async fn a_subscriber_that_stops_reading_skips_reports_instead_of_queueing_them(
         assert!(stale <= 4, "more than 4 stale reports were kept for a subscriber that did not read");
     }
     eprintln!("{stale} stale reports, {} skipped", server.sample("mtgauge_watch_reports_skipped_total"));
+
+    // One that goes away is dropped (counted as closed); one that stops reading for good is
+    // ended after MAX_UNREAD_REPORTS reports in a row, counted as stalled, and told why.
+    drop(fast);
+    until("the subscriber that went away is dropped", || server.sample(r#"mtgauge_watch_subscribers_dropped_total{reason="closed"}"#) >= 1.0).await;
+    until("the stalled subscriber is ended", || server.sample(r#"mtgauge_watch_subscribers_dropped_total{reason="stalled"}"#) >= 1.0).await;
+    let mut stale = 0;
+    let status = loop {
+        match slow.message().await {
+            Ok(Some(_)) => stale += 1,
+            Ok(None) => panic!("the ended watch closed without saying why"),
+            Err(status) => break status,
+        }
+        assert!(stale <= 4, "more than 4 reports after the watch was ended");
+    };
+    assert_eq!(status.code(), tonic::Code::ResourceExhausted, "{status:?}");
+    assert!(status.message().contains(&format!("{} reports in a row were left unread", mtgauge::server::watchers::MAX_UNREAD_REPORTS)), "{}", status.message());
+    assert!(matches!(slow.message().await, Ok(None) | Err(_)), "nothing follows the closing status");
 }
 
 fn offline(items: &[(String, String)]) -> CorpusStats {

@@ -146,6 +146,9 @@ pub enum CliError {
     /// A call to a running server failed, or its connection settings are bad.
     #[error(transparent)]
     Client(#[from] crate::client::ClientError),
+    /// The server stopped with an error.
+    #[error(transparent)]
+    Server(#[from] crate::server::RunError),
     /// Writing output failed.
     #[error("cannot write {what}: {source}")]
     Output {
@@ -173,7 +176,10 @@ pub fn run(cli: Cli) -> ExitCode {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
             eprintln!("mtgauge: error: {e}");
-            ExitCode::from(EXIT_FAILURE)
+            match &e {
+                CliError::Server(s) => ExitCode::from(s.exit_code(EXIT_FAILURE)),
+                _ => ExitCode::from(EXIT_FAILURE),
+            }
         }
     }
 }

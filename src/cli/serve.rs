@@ -304,7 +304,7 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
             config.health_listener = Some(l);
         }
         telemetry::log_listening(g, m);
-        server::run(config, grpc, Some((metrics, handle)), shutdown_signal()).await.map_err(CliError::Usage)
+        server::run(config, grpc, Some((metrics, handle)), shutdown_signal()).await.map_err(CliError::Server)
     })?;
     tracing::info!("stopped");
     Ok(())

@@ -12,9 +12,15 @@ pub enum ServiceError {
     /// No reference set of that name.
     #[error("no reference set named '{0}'")]
     UnknownRefSet(String),
-    /// A session of that name exists (with another definition).
-    #[error("a session named '{0}' already exists with a different definition")]
-    SessionExists(String),
+    /// A session of that name exists (`differs`: the parts of its definition that differ
+    /// from the request; empty when only `if_not_exists` was missing).
+    #[error("a session named '{name}' already exists{}", describe_differences(differs))]
+    SessionExists {
+        /// Session name.
+        name: String,
+        /// What differs: "reference set", "configuration", "labels", "window".
+        differs: Vec<&'static str>,
+    },
     /// A reference set of that name exists and `replace` was not set.
     #[error("a reference set named '{0}' already exists (set replace to replace it)")]
     RefSetExists(String),
@@ -60,9 +66,20 @@ pub enum ServiceError {
     /// The server is shutting down.
     #[error("the server is shutting down")]
     ShuttingDown,
+    /// The store cannot be written: the batch was not applied durably, and the server stops.
+    #[error("the server cannot write its store and is stopping (the batch was not acknowledged; send it again): {0}")]
+    StoreFailed(String),
     /// A bug or an I/O failure on the server.
     #[error("internal error: {0}")]
     Internal(String),
+}
+
+fn describe_differences(differs: &[&str]) -> String {
+    if differs.is_empty() {
+        " (ask with if_not_exists to reuse it)".into()
+    } else {
+        format!(" with another definition (differs in {})", differs.join(", "))
+    }
 }
 
 impl From<ServiceError> for tonic::Status {
@@ -70,13 +87,13 @@ impl From<ServiceError> for tonic::Status {
         use tonic::Code;
         let code = match &e {
             ServiceError::UnknownSession(_) | ServiceError::UnknownRefSet(_) => Code::NotFound,
-            ServiceError::SessionExists(_) | ServiceError::RefSetExists(_) => Code::AlreadyExists,
+            ServiceError::SessionExists { .. } | ServiceError::RefSetExists(_) => Code::AlreadyExists,
             ServiceError::Name(_) | ServiceError::Invalid(_) | ServiceError::Input(_) => Code::InvalidArgument,
             ServiceError::PathDenied(_) | ServiceError::Forbidden(_) => Code::PermissionDenied,
             ServiceError::Unauthenticated(_) => Code::Unauthenticated,
             ServiceError::Limit { .. } | ServiceError::Busy(_) => Code::ResourceExhausted,
             ServiceError::ProducerBusy { .. } => Code::FailedPrecondition,
-            ServiceError::ShuttingDown => Code::Unavailable,
+            ServiceError::ShuttingDown | ServiceError::StoreFailed(_) => Code::Unavailable,
             ServiceError::Internal(_) => Code::Internal,
         };
         tonic::Status::new(code, e.to_string())

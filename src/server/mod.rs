@@ -8,6 +8,7 @@ pub mod error;
 pub mod limits;
 mod services;
 pub mod state;
+pub mod watchers;
 
 use std::future::Future;
 use std::path::PathBuf;
@@ -115,114 +116,177 @@ fn load_startup(state: &State, r: &StartupRefSet) -> Result<(), ServiceError> {
     Ok(())
 }
 
-/// Run the server on bound listeners until `shutdown` resolves, then drain (bounded by
-/// `config.drain`). Tests call this with `127.0.0.1:0` listeners.
-pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpListener, metrics_exporter_prometheus::PrometheusHandle)>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), String> {
-    let store = match config.data_dir.clone() {
-        Some(dir) => Some(Arc::new(tokio::task::spawn_blocking(move || crate::store::Store::open(&dir)).await.map_err(|e| e.to_string())?.map_err(|e| e.to_string())?)),
-        None => None,
-    };
-    let state = State::with_store(config.refset_dir.clone(), config.limits, store, config.group_commit).map_err(|e| e.to_string())?;
-    if let Some(store) = state.store() {
-        let st = state.clone();
-        let n = tokio::task::spawn_blocking(move || st.restore()).await.map_err(|e| e.to_string())?.map_err(|e| e.to_string())?;
-        tracing::info!(store = %store.path().display(), sessions = n, "durable state restored");
-    } else {
-        tracing::warn!("durability none: state is kept in memory only and is lost on exit");
+/// Exit code of the process when the store cannot be written: acknowledged batches must be
+/// durable, so the server stops rather than acknowledge what it could not keep.
+pub const EXIT_STORE_FAILURE: u8 = 70;
+
+/// Why [`run`] returned an error.
+#[derive(Debug, thiserror::Error)]
+pub enum RunError {
+    /// The server could not start (store, TLS, listeners, startup reference sets).
+    #[error("{0}")]
+    Setup(String),
+    /// The gRPC server failed while serving.
+    #[error("gRPC server failed: {0}")]
+    Serve(String),
+    /// The store could not be written while serving: nothing more can be acknowledged.
+    #[error("cannot write the store: {0}")]
+    Store(String),
+}
+
+impl RunError {
+    /// The process exit code this error calls for (`default` unless it has its own).
+    pub fn exit_code(&self, default: u8) -> u8 {
+        match self {
+            RunError::Store(_) => EXIT_STORE_FAILURE,
+            _ => default,
+        }
     }
+}
+
+fn setup<E: std::fmt::Display>(e: E) -> RunError {
+    RunError::Setup(e.to_string())
+}
+
+/// Run the server on bound listeners until `shutdown` resolves, then drain (bounded by
+/// `config.drain`). `metrics`: the scrape listener and the recorder's handle. Used by `serve`
+/// and, in process, by the tests' server helper.
+pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(TcpListener, metrics_exporter_prometheus::PrometheusHandle)>, shutdown: impl Future<Output = ()> + Send + 'static) -> Result<(), RunError> {
+    let state = open_state(&config).await?;
     let (health, health_service) = tonic_health::server::health_reporter();
     health.set_service_status("", tonic_health::ServingStatus::NotServing).await;
-    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h)).transpose()?;
-
-    let reflection_v1 = tonic_reflection::server::Builder::configure()
-        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
-        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
-        .build_v1()
-        .map_err(|e| e.to_string())?;
-    let reflection_v1alpha = tonic_reflection::server::Builder::configure()
-        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
-        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
-        .build_v1alpha()
-        .map_err(|e| e.to_string())?;
-
+    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h)).transpose().map_err(RunError::Setup)?;
     let (stop_tx, stop_rx) = watch::channel(false);
-    let svc = services::Services::new(state.clone(), stop_rx.clone(), config.tokens.clone(), config.max_message_bytes);
-    let max = config.max_message_bytes;
-    let mut builder = tonic::transport::Server::builder();
-    let mut tls_config = None;
-    if let Some(t) = &config.tls {
-        let _ = rustls::crypto::ring::default_provider().install_default();
-        let read = |p: &PathBuf| std::fs::read(p).map_err(|e| format!("{}: {e}", p.display()));
-        let mut tls = tonic::transport::ServerTlsConfig::new().timeout(conn::TLS_HANDSHAKE_TIMEOUT).identity(tonic::transport::Identity::from_pem(read(&t.cert)?, read(&t.key)?));
-        if let Some(ca) = &t.client_ca {
-            tls = tls.client_ca_root(tonic::transport::Certificate::from_pem(read(ca)?));
-        }
-        tls_config = Some(tls.clone());
-        builder = builder.tls_config(tls).map_err(|e| format!("TLS configuration: {e}"))?;
-    }
-    let (max_connections, idle) = (config.limits.max_connections, config.limits.connection_idle);
-    let (ping_every, ping_wait) = conn::keepalive(idle);
+    let tls = tls_config(config.tls.as_ref())?;
+    let idle = config.limits.connection_idle;
     if let Some(l) = config.health_listener.take() {
-        admin::serve_health(l, &health, idle, stop_rx.clone())?;
+        admin::serve_health(l, &health, idle, stop_rx.clone()).map_err(RunError::Setup)?;
     }
-    let router = builder
-        .http2_keepalive_interval(Some(ping_every))
-        .http2_keepalive_timeout(Some(ping_wait))
-        .initial_stream_window_size(STREAM_WINDOW_BYTES)
-        .initial_connection_window_size(CONNECTION_WINDOW_BYTES)
-        .add_service(health_service)
-        .add_service(reflection_v1)
-        .add_service(reflection_v1alpha)
-        .add_service(NameMessageLimit::new(pb::ref_sets_server::RefSetsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
-        .add_service(NameMessageLimit::new(pb::sessions_server::SessionsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
-        .add_service(NameMessageLimit::new(pb::scoring_server::ScoringServer::new(svc).max_decoding_message_size(max).max_encoding_message_size(max), max));
+    let router = router(&config, &state, stop_rx, tls.clone(), health_service)?;
 
     // Graceful part: when `shutdown` fires, report NOT_SERVING, tell streams to finish their
     // current batch and end, and let tonic stop accepting.
     let (graceful_tx, graceful_rx) = tokio::sync::oneshot::channel::<()>();
     let health_for_stop = health.clone();
+    let failed = state.clone();
     tokio::spawn(async move {
-        shutdown.await;
+        // A store that cannot be written stops the server the same way: every batch that
+        // reaches it from now on is refused, and the answers in flight still go out.
+        tokio::select! {
+            _ = shutdown => {}
+            _ = failed.store_failure() => {}
+        }
         tracing::info!("shutting down: NOT_SERVING, finishing in-flight batches");
         health_for_stop.set_service_status("", tonic_health::ServingStatus::NotServing).await;
         let _ = stop_tx.send(true);
         let _ = graceful_tx.send(());
     });
-    let (drain_tx, mut drain_rx) = watch::channel(false);
-    let admitted = conn::incoming(grpc, conn::Listener::Grpc, max_connections, idle, tls_config)?;
-    let serve = router.serve_with_incoming_shutdown(admitted, async move {
+    let (drain_tx, drain_rx) = watch::channel(false);
+    let admitted = conn::incoming(grpc, conn::Listener::Grpc, config.limits.max_connections, idle, tls).map_err(RunError::Setup)?;
+    let serving = tokio::spawn(router.serve_with_incoming_shutdown(admitted, async move {
         let _ = graceful_rx.await;
         let _ = drain_tx.send(true);
-    });
-    let serving = tokio::spawn(serve);
+    }));
 
-    // Startup reference sets, then SERVING.
-    let st = state.clone();
-    let startup = config.startup_refsets.clone();
-    let loaded = tokio::task::spawn_blocking(move || startup.iter().try_for_each(|r| load_startup(&st, r))).await.map_err(|e| e.to_string())?;
-    if let Err(e) = loaded {
+    if let Err(e) = load_startup_sets(&state, config.startup_refsets.clone()).await {
         serving.abort();
-        return Err(format!("cannot load startup reference set: {e}"));
+        return Err(e);
     }
     health.set_service_status("", tonic_health::ServingStatus::Serving).await;
     tracing::info!("serving");
+    let result = serve_until_done(serving, drain_rx, config.drain, &state).await;
+    if let Some(t) = metrics_task {
+        t.abort();
+    }
+    result
+}
 
-    let mut serving = serving;
+/// Open the store (when durable) and restore the state it holds.
+async fn open_state(config: &ServerConfig) -> Result<State, RunError> {
+    let store = match config.data_dir.clone() {
+        Some(dir) => Some(Arc::new(tokio::task::spawn_blocking(move || crate::store::Store::open(&dir)).await.map_err(setup)?.map_err(setup)?)),
+        None => None,
+    };
+    let state = State::with_store(config.refset_dir.clone(), config.limits, store, config.group_commit).map_err(setup)?;
+    if let Some(store) = state.store() {
+        let st = state.clone();
+        let n = tokio::task::spawn_blocking(move || st.restore()).await.map_err(setup)?.map_err(setup)?;
+        tracing::info!(store = %store.path().display(), sessions = n, "durable state restored");
+    } else {
+        tracing::warn!("durability none: state is kept in memory only and is lost on exit");
+    }
+    Ok(state)
+}
+
+/// The TLS settings of the gRPC listener, read from their PEM files.
+fn tls_config(files: Option<&TlsFiles>) -> Result<Option<tonic::transport::ServerTlsConfig>, RunError> {
+    let Some(t) = files else { return Ok(None) };
+    let _ = rustls::crypto::ring::default_provider().install_default();
+    let read = |p: &PathBuf| std::fs::read(p).map_err(|e| RunError::Setup(format!("{}: {e}", p.display())));
+    let mut tls = tonic::transport::ServerTlsConfig::new().timeout(conn::TLS_HANDSHAKE_TIMEOUT).identity(tonic::transport::Identity::from_pem(read(&t.cert)?, read(&t.key)?));
+    if let Some(ca) = &t.client_ca {
+        tls = tls.client_ca_root(tonic::transport::Certificate::from_pem(read(ca)?));
+    }
+    Ok(Some(tls))
+}
+
+/// Every gRPC service (ours, health, reflection) on one router with the transport settings.
+fn router(config: &ServerConfig, state: &State, stop: watch::Receiver<bool>, tls: Option<tonic::transport::ServerTlsConfig>, health: tonic_health::pb::health_server::HealthServer<impl tonic_health::pb::health_server::Health>) -> Result<tonic::transport::server::Router, RunError> {
+    let reflection_v1 = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1()
+        .map_err(setup)?;
+    let reflection_v1alpha = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1alpha()
+        .map_err(setup)?;
+    let max = config.max_message_bytes;
+    let svc = services::Services::new(state.clone(), stop, config.tokens.clone(), max);
+    let mut builder = tonic::transport::Server::builder();
+    if let Some(tls) = tls {
+        builder = builder.tls_config(tls).map_err(|e| RunError::Setup(format!("TLS configuration: {e}")))?;
+    }
+    let (ping_every, ping_wait) = conn::keepalive(config.limits.connection_idle);
+    Ok(builder
+        .http2_keepalive_interval(Some(ping_every))
+        .http2_keepalive_timeout(Some(ping_wait))
+        .initial_stream_window_size(STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(CONNECTION_WINDOW_BYTES)
+        .add_service(health)
+        .add_service(reflection_v1)
+        .add_service(reflection_v1alpha)
+        .add_service(NameMessageLimit::new(pb::ref_sets_server::RefSetsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
+        .add_service(NameMessageLimit::new(pb::sessions_server::SessionsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
+        .add_service(NameMessageLimit::new(pb::scoring_server::ScoringServer::new(svc).max_decoding_message_size(max).max_encoding_message_size(max), max)))
+}
+
+/// Load the startup reference sets (before SERVING).
+async fn load_startup_sets(state: &State, sets: Vec<StartupRefSet>) -> Result<(), RunError> {
+    let st = state.clone();
+    let loaded = tokio::task::spawn_blocking(move || sets.iter().try_for_each(|r| load_startup(&st, r))).await.map_err(setup)?;
+    loaded.map_err(|e| RunError::Setup(format!("cannot load startup reference set: {e}")))
+}
+
+/// Wait for the server to end: after a graceful shutdown (bounded by `drain`), or when it
+/// fails; a store that could not be written is the error then.
+async fn serve_until_done(mut serving: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>, mut drain_rx: watch::Receiver<bool>, drain: Duration, state: &State) -> Result<(), RunError> {
     let result = tokio::select! {
         r = &mut serving => r,
-        _ = async { let _ = drain_rx.wait_for(|d| *d).await; tokio::time::sleep(config.drain).await } => {
-            tracing::warn!(drain_seconds = config.drain.as_secs_f64(), "drain time over; closing remaining connections");
+        _ = async { let _ = drain_rx.wait_for(|d| *d).await; tokio::time::sleep(drain).await } => {
+            tracing::warn!(drain_seconds = drain.as_secs_f64(), "drain time over; closing remaining connections");
             serving.abort();
             Ok(Ok(()))
         }
     };
-    if let Some(t) = metrics_task {
-        t.abort();
+    if let Some(message) = state.failed() {
+        return Err(RunError::Store(message));
     }
     match result {
         Ok(Ok(())) => Ok(()),
-        Ok(Err(e)) => Err(format!("gRPC server failed: {e}")),
+        Ok(Err(e)) => Err(RunError::Serve(e.to_string())),
         Err(e) if e.is_cancelled() => Ok(()),
-        Err(e) => Err(format!("gRPC server task failed: {e}")),
+        Err(e) => Err(RunError::Serve(format!("task failed: {e}"))),
     }
 }

@@ -14,8 +14,10 @@ use tonic::{Request, Response, Status, Streaming};
 
 use super::auth::{Scope, Tokens};
 use super::error::{Result, ServiceError};
-use super::state::{unix_now, LoadedSet, ProducerClaim, State};
-use crate::refs::RefFormat as Format;
+use super::limits::Limit;
+use super::state::{unix_now, LoadedSet, Pending, ProducerClaim, State};
+use crate::refs::RefFormat;
+use super::watchers::Watchers;
 use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
 use crate::metric::CorpusStats;
 use crate::pb;
@@ -43,11 +45,15 @@ pub struct Services {
     stop: watch::Receiver<bool>,
     tokens: Option<Arc<Tokens>>,
     max_message_bytes: usize,
+    watchers: Watchers,
 }
 
 impl Services {
+    /// The services over `state`, and the one watch publisher they share (so: call inside a
+    /// Tokio runtime).
     pub fn new(state: State, stop: watch::Receiver<bool>, tokens: Option<Arc<Tokens>>, max_message_bytes: usize) -> Services {
-        Services { state, stop, tokens, max_message_bytes }
+        let watchers = Watchers::start(state.clone(), stop.clone(), report);
+        Services { state, stop, tokens, max_message_bytes, watchers }
     }
 
     /// Check the caller's token for `scope` (always passes without a tokens file).
@@ -95,10 +101,10 @@ fn session_info(s: &Session) -> pb::SessionInfo {
     }
 }
 
-fn format_from_pb(f: i32) -> Result<Format> {
+fn format_from_pb(f: i32) -> Result<RefFormat> {
     match pb::RefFormat::try_from(f) {
-        Ok(pb::RefFormat::Plain) => Ok(Format::Plain),
-        Ok(pb::RefFormat::Jsonl) => Ok(Format::Jsonl),
+        Ok(pb::RefFormat::Plain) => Ok(RefFormat::Plain),
+        Ok(pb::RefFormat::Jsonl) => Ok(RefFormat::Jsonl),
         _ => Err(ServiceError::Invalid("format must be REF_FORMAT_PLAIN or REF_FORMAT_JSONL".into())),
     }
 }
@@ -156,7 +162,7 @@ impl pb::ref_sets_server::RefSets for Services {
             let slot = files.get_mut(d.file as usize).ok_or_else(|| ServiceError::Invalid(format!("data for file {} of {}", d.file, nfiles)))?;
             total += d.data.len() as u64;
             if total > limit {
-                return Err(ServiceError::Limit { what: format!("upload of more than {total} bytes"), limit, key: "limits.max_refset_bytes" }.into());
+                return Err(ServiceError::Limit { what: format!("upload of more than {total} bytes"), limit, key: Limit::MaxRefsetBytes.key() }.into());
             }
             slot.extend_from_slice(&d.data);
         }
@@ -256,7 +262,7 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
     }
     let limits = *state.limits();
     if batch.items.len() > limits.max_batch_items {
-        return Err(ServiceError::Limit { what: format!("batch of {} items", batch.items.len()), limit: limits.max_batch_items as u64, key: "limits.max_batch_items" });
+        return Err(ServiceError::Limit { what: format!("batch of {} items", batch.items.len()), limit: limits.max_batch_items as u64, key: Limit::MaxBatchItems.key() });
     }
     let mut ack = pb::BatchAck { session: batch.session.clone(), producer: batch.producer.clone(), sequence: batch.sequence, ..Default::default() };
     if session.state().is_duplicate(&batch.producer, batch.sequence) {
@@ -266,74 +272,69 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
     let scoring = Arc::clone(&session);
     let slot = state.scoring_slot().await;
     let inline = batch.items.len() <= INLINE_BATCH_ITEMS;
-    let work = move || {
-        let mut outcomes = Vec::with_capacity(batch.items.len());
-        let mut rejections = Vec::new();
-        SCRATCH.with(|s| {
-            let scratch = &mut s.borrow_mut();
-            for (i, item) in batch.items.iter().enumerate() {
-                let key = match &item.key {
-                    Some(pb::score_item::Key::SegmentId(id)) => ItemKey::Id(id),
-                    Some(pb::score_item::Key::Source(src)) if src.len() > limits.max_text_bytes => {
-                        rejections.push(pb::Rejection { index: i as u32, reason: format!("source of {} bytes exceeds limits.max_text_bytes ({})", src.len(), limits.max_text_bytes) });
-                        continue;
-                    }
-                    Some(pb::score_item::Key::Source(src)) => ItemKey::Source(src),
-                    None => {
-                        rejections.push(pb::Rejection { index: i as u32, reason: "item has neither segment_id nor source".into() });
-                        continue;
-                    }
-                };
-                if item.hypothesis.len() > limits.max_text_bytes {
-                    rejections.push(pb::Rejection { index: i as u32, reason: format!("hypothesis of {} bytes exceeds limits.max_text_bytes ({})", item.hypothesis.len(), limits.max_text_bytes) });
-                    continue;
-                }
-                outcomes.push((i as u32, scoring.score_item(key, &item.hypothesis, scratch)));
-            }
-        });
-        Ok((batch, outcomes, rejections))
-    };
+    let work = move || Ok(score_items(&scoring, &batch, &limits));
     // A small batch is scored right here (well under a millisecond: the runtime stays
     // responsive, see `mtgauge load`'s health probe); a large one on the blocking pool, which
     // costs two thread hand-offs.
-    let (batch, outcomes, rejections) = if inline { work()? } else { blocking(work).await? };
+    let scored = if inline { work()? } else { blocking(work).await? };
     drop(slot);
 
-    let plain: Vec<Outcome> = outcomes.iter().map(|(_, o)| *o).collect();
-    let mut sum = CorpusStats::default();
-    let (mut scored, mut unknown) = (0u32, 0u32);
-    for o in &plain {
-        match o {
-            Outcome::Scored { stats, .. } => {
-                sum.add_segment(stats);
-                scored += 1;
-            }
-            Outcome::Unknown => unknown += 1,
-        }
-    }
-    let rejected = rejections.len() as u32;
-    let after = state.apply_batch(Arc::clone(&session), batch.producer.clone(), batch.sequence, plain, rejected as u64).await?;
-    let Some((cumulative, recent)) = after else {
+    let rejected = scored.rejections.len() as u64;
+    let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected };
+    let Some(effect) = state.apply_batch(pending).await? else {
         ack.duplicate = true;
         return Ok(ack);
     };
-    let spec = session.spec();
-    telemetry::record_batch(&spec.name, &spec.config, scored as u64, unknown as u64, rejected as u64, &sum);
-    telemetry::record_scores(&spec.name, &spec.config, &cumulative, &recent);
-    (ack.scored, ack.unknown, ack.rejected, ack.rejections) = (scored, unknown, rejected, rejections);
-    if batch.want_segment_scores {
-        for (index, o) in &outcomes {
-            if let Outcome::Scored { stats, by_source, index: seg } = o {
-                ack.segment_scores.push(pb::SegmentScore {
-                    index: *index,
-                    segment_id: session.segment_id(*by_source, *seg).to_owned(),
-                    scores: segment_scores_to_pb(stats, &spec.config),
-                });
-            }
-        }
-    }
+    let b = effect.batch;
+    (ack.scored, ack.unknown, ack.rejected) = (b.scored as u32, b.unknown as u32, b.rejected as u32);
+    (ack.rejections, ack.segment_scores) = (scored.rejections, scored.segment_scores);
     telemetry::record_batch_seconds(started.elapsed().as_secs_f64());
     Ok(ack)
+}
+
+/// A batch after scoring, before it is applied.
+struct ScoredItems {
+    /// Outcomes of the valid items, in order.
+    outcomes: Vec<Outcome>,
+    /// Items refused, by index.
+    rejections: Vec<pb::Rejection>,
+    /// Per-segment scores, when the batch asked for them.
+    segment_scores: Vec<pb::SegmentScore>,
+}
+
+/// Validate and score every item of a batch (CPU work, no lock taken); per-segment scores are
+/// derived here, once.
+fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits) -> ScoredItems {
+    let mut out = ScoredItems { outcomes: Vec::with_capacity(batch.items.len()), rejections: Vec::new(), segment_scores: Vec::new() };
+    let too_long = |what: &str, len: usize| format!("{what} of {len} bytes exceeds {} ({})", Limit::MaxTextBytes.key(), limits.max_text_bytes);
+    SCRATCH.with(|s| {
+        let scratch = &mut s.borrow_mut();
+        for (i, item) in batch.items.iter().enumerate() {
+            let index = i as u32;
+            let key = match &item.key {
+                Some(pb::score_item::Key::SegmentId(id)) => ItemKey::Id(id),
+                Some(pb::score_item::Key::Source(src)) if src.len() > limits.max_text_bytes => {
+                    out.rejections.push(pb::Rejection { index, reason: too_long("source", src.len()) });
+                    continue;
+                }
+                Some(pb::score_item::Key::Source(src)) => ItemKey::Source(src),
+                None => {
+                    out.rejections.push(pb::Rejection { index, reason: "item has neither segment_id nor source".into() });
+                    continue;
+                }
+            };
+            if item.hypothesis.len() > limits.max_text_bytes {
+                out.rejections.push(pb::Rejection { index, reason: too_long("hypothesis", item.hypothesis.len()) });
+                continue;
+            }
+            let outcome = session.score_item(key, &item.hypothesis, scratch);
+            if let (true, Outcome::Scored { stats, by_source, index: seg }) = (batch.want_segment_scores, &outcome) {
+                out.segment_scores.push(pb::SegmentScore { index, segment_id: session.segment_id(*by_source, *seg).to_owned(), scores: segment_scores_to_pb(stats, &session.spec().config) });
+            }
+            out.outcomes.push(outcome);
+        }
+    });
+    out
 }
 
 fn report(session: &Session) -> pb::ScoresReport {
@@ -453,31 +454,7 @@ impl pb::scoring_server::Scoring for Services {
         let session = self.state.session(&r.session)?;
         let gate = self.state.enter_watcher()?;
         let secs = if r.interval_seconds == 0 { DEFAULT_WATCH_SECONDS } else { r.interval_seconds };
-        let state = self.state.clone();
-        // One report in flight per subscriber: a slow one skips ticks instead of buffering.
-        let (tx, rx) = mpsc::channel(1);
-        let mut stop = self.stop.clone();
-        tokio::spawn(async move {
-            let _gate = gate;
-            let mut tick = tokio::time::interval(Duration::from_secs(secs as u64));
-            tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
-            loop {
-                tokio::select! {
-                    _ = stop.wait_for(|s| *s) => break,
-                    _ = tick.tick() => {}
-                }
-                // A closed session ends the watch.
-                if !state.session(&session.spec().name).is_ok_and(|s| Arc::ptr_eq(&s, &session)) {
-                    let _ = tx.send(Err(ServiceError::UnknownSession(session.spec().name.clone()).into())).await;
-                    break;
-                }
-                match tx.try_send(Ok(report(&session))) {
-                    Ok(()) => {}
-                    Err(mpsc::error::TrySendError::Full(_)) => telemetry::watch_report_skipped(),
-                    Err(mpsc::error::TrySendError::Closed(_)) => break,
-                }
-            }
-        });
+        let rx = self.watchers.subscribe(session, Duration::from_secs(secs as u64), gate)?;
         Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
     }
 }

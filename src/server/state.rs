@@ -12,13 +12,13 @@ use dashmap::mapref::entry::Entry;
 use dashmap::DashMap;
 
 use super::error::{Result, ServiceError};
-use crate::metric::{CorpusStats, ScoreConfig};
-use crate::session::Outcome;
-use crate::store::{BatchWrite, Store};
+use crate::metric::ScoreConfig;
+use crate::session::{Applied, Outcome};
+use crate::store::{BatchWrite, Store, StoreError};
 use crate::refs::{InputError, LoadError, RefFormat, RefSet};
 use crate::session::{check_labels, check_name, Session, SessionSpec, DEFAULT_WINDOW, MAX_WINDOW};
 
-use super::limits::Limits;
+use super::limits::{Limit, Limits};
 
 /// A loaded reference-set version.
 #[derive(Debug)]
@@ -51,24 +51,29 @@ struct Inner {
     store: Option<Arc<Store>>,
     /// Queue of the group-commit thread (with a store).
     committer: Option<std::sync::Mutex<std::sync::mpsc::Sender<CommitRequest>>>,
+    /// Set once when the store cannot be written (see [`State::store_failure`]).
+    failure: tokio::sync::watch::Sender<Option<String>>,
 }
 
-/// Statistics after an applied batch: (cumulative, recent).
-pub type AfterBatch = (CorpusStats, CorpusStats);
+/// A scored batch on its way into its session.
+pub struct Pending {
+    /// The session it was scored for.
+    pub session: Arc<Session>,
+    /// Producer id (empty: no duplicate detection).
+    pub producer: String,
+    /// The producer's batch sequence number.
+    pub sequence: u64,
+    /// What each valid item came to.
+    pub outcomes: Vec<Outcome>,
+    /// Items refused as invalid.
+    pub rejected: u64,
+}
 
 /// One batch waiting for the group commit.
 struct CommitRequest {
-    session: Arc<Session>,
-    producer: String,
-    sequence: u64,
-    outcomes: Vec<Outcome>,
-    rejected: u64,
-    reply: tokio::sync::oneshot::Sender<Option<AfterBatch>>,
+    batch: Pending,
+    reply: tokio::sync::oneshot::Sender<Result<Option<Applied>>>,
 }
-
-/// Exit code of the process when the store cannot be written: acknowledged batches must be
-/// durable, so the server stops rather than acknowledge what it could not keep.
-pub const EXIT_STORE_FAILURE: i32 = 70;
 
 /// Seconds since the Unix epoch.
 pub fn unix_now() -> i64 {
@@ -91,7 +96,8 @@ impl State {
         let slots = std::thread::available_parallelism().map_or(1, |n| n.get());
         let (tx, rx) = std::sync::mpsc::channel::<CommitRequest>();
         let committer = store.as_ref().map(|_| std::sync::Mutex::new(tx));
-        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer }) };
+        let (failure, _) = tokio::sync::watch::channel(None);
+        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer, failure }) };
         if let Some(store) = store {
             // The thread holds only a weak handle, so it ends when the state is dropped.
             let weak = Arc::downgrade(&state.inner);
@@ -115,20 +121,37 @@ impl State {
         }
     }
 
-    /// Apply a scored batch to its session; with a store, only once it is durable. None: the
-    /// batch was a duplicate and changed nothing.
-    pub async fn apply_batch(&self, session: Arc<Session>, producer: String, sequence: u64, outcomes: Vec<Outcome>, rejected: u64) -> Result<Option<AfterBatch>> {
-        match &self.inner.committer {
-            None => {
-                let mut st = session.state();
-                Ok(st.apply(&producer, sequence, &outcomes, rejected).map(|_| (st.cumulative, st.window.stats())))
-            }
-            Some(tx) => {
-                let (reply, rx) = tokio::sync::oneshot::channel();
-                let req = CommitRequest { session, producer, sequence, outcomes, rejected, reply };
-                tx.lock().unwrap_or_else(|e| e.into_inner()).send(req).map_err(|_| ServiceError::ShuttingDown)?;
-                rx.await.map_err(|_| ServiceError::ShuttingDown)
-            }
+    /// Apply a scored batch to its session through [`commit`]: in memory right here, or with a
+    /// store on the group-commit thread, answered only once it is durable. None: the batch was
+    /// a duplicate and changed nothing.
+    pub async fn apply_batch(&self, batch: Pending) -> Result<Option<Applied>> {
+        let Some(tx) = &self.inner.committer else {
+            let effects = commit(Some(&self.inner), None, std::slice::from_ref(&batch)).map_err(|e| ServiceError::StoreFailed(e.to_string()))?;
+            return Ok(effects.into_iter().next().flatten());
+        };
+        let (reply, rx) = tokio::sync::oneshot::channel();
+        let sent = tx.lock().unwrap_or_else(|e| e.into_inner()).send(CommitRequest { batch, reply });
+        match (sent, self.failed()) {
+            (_, Some(e)) => Err(ServiceError::StoreFailed(e)),
+            (Err(_), None) => Err(ServiceError::ShuttingDown),
+            (Ok(()), None) => rx.await.map_err(|_| self.failed().map_or(ServiceError::ShuttingDown, ServiceError::StoreFailed))?,
+        }
+    }
+
+    /// The store failure, once there was one.
+    pub fn failed(&self) -> Option<String> {
+        self.inner.failure.borrow().clone()
+    }
+
+    /// Resolves when the store could not be written, with the error: the server must stop,
+    /// since it can no longer acknowledge anything durably.
+    pub async fn store_failure(&self) -> String {
+        let mut rx = self.inner.failure.subscribe();
+        let got = rx.wait_for(Option::is_some).await.map(|f| f.clone().unwrap_or_default());
+        match got {
+            Ok(message) => message,
+            // The sender lives in `self`: unreachable while it is borrowed.
+            Err(_) => std::future::pending().await,
         }
     }
 
@@ -166,12 +189,12 @@ impl State {
 
     /// Count one more open scoring stream, or refuse it past `limits.max_streams`.
     pub fn enter_stream(&self) -> Result<Gate> {
-        Gate::enter(&self.inner.streams, self.inner.limits.max_streams, "scoring streams", "limits.max_streams")
+        Gate::enter(&self.inner.streams, self.inner.limits.max_streams, "scoring streams", Limit::MaxStreams.key())
     }
 
     /// Count one more watch subscriber, or refuse it past `limits.max_watchers`.
     pub fn enter_watcher(&self) -> Result<Gate> {
-        Gate::enter(&self.inner.watchers, self.inner.limits.max_watchers, "watch subscribers", "limits.max_watchers")
+        Gate::enter(&self.inner.watchers, self.inner.limits.max_watchers, "watch subscribers", Limit::MaxWatchers.key())
     }
 
     /// Wait for a scoring slot (see `scoring_slots`).
@@ -209,7 +232,7 @@ impl State {
     pub fn parse_refset(&self, format: RefFormat, files: &[(String, Vec<u8>)], source: Option<&(String, Vec<u8>)>) -> Result<RefSet> {
         let total: u64 = files.iter().chain(source).map(|(_, b)| b.len() as u64).sum();
         if total > self.inner.limits.max_refset_bytes {
-            return Err(ServiceError::Limit { what: format!("reference set input of {total} bytes"), limit: self.inner.limits.max_refset_bytes, key: "limits.max_refset_bytes" });
+            return Err(ServiceError::Limit { what: format!("reference set input of {total} bytes"), limit: self.inner.limits.max_refset_bytes, key: Limit::MaxRefsetBytes.key() });
         }
         let streams: Vec<(&str, &[u8])> = files.iter().map(|(n, b)| (n.as_str(), b.as_slice())).collect();
         crate::refs::load(format, &streams, source.map(|(n, b)| (n.as_str(), b.as_slice()))).map_err(|e| match e {
@@ -242,7 +265,7 @@ impl State {
             }
             Entry::Vacant(e) => {
                 if len >= self.inner.limits.max_refsets {
-                    return Err(ServiceError::Limit { what: format!("{} reference sets", len + 1), limit: self.inner.limits.max_refsets as u64, key: "limits.max_refsets" });
+                    return Err(ServiceError::Limit { what: format!("{} reference sets", len + 1), limit: self.inner.limits.max_refsets as u64, key: Limit::MaxRefsets.key() });
                 }
                 self.persist(|s| s.put_refset(name, &loaded.set))?;
                 e.insert(Arc::clone(&loaded));
@@ -259,7 +282,7 @@ impl State {
         let total = others + set.memory_bytes() as u64;
         let limit = self.inner.limits.max_total_refset_bytes;
         if total > limit {
-            return Err(ServiceError::Limit { what: format!("{total} bytes of loaded reference sets"), limit, key: "limits.max_total_refset_bytes" });
+            return Err(ServiceError::Limit { what: format!("{total} bytes of loaded reference sets"), limit, key: Limit::MaxTotalRefsetBytes.key() });
         }
         Ok(())
     }
@@ -303,27 +326,25 @@ impl State {
     }
 
     /// Create a session (builds its tables: CPU work, call from a blocking thread). With
-    /// `if_not_exists`, an existing session with the same definition is returned as is.
+    /// `if_not_exists`, an existing session with the same whole definition (reference set name,
+    /// configuration, labels and window) is returned as is; any difference is refused, naming
+    /// what differs, so that a re-create never silently keeps other labels or another window.
     pub fn create_session(&self, spec: SessionSpec, if_not_exists: bool) -> Result<(Arc<Session>, bool)> {
         let set = self.refset(&spec.refset)?;
-        if let Some(existing) = self.inner.sessions.get(&spec.name) {
-            let same = existing.spec().refset == spec.refset && existing.spec().config == spec.config && existing.spec().labels == spec.labels && existing.spec().window == spec.window;
-            return if if_not_exists && same { Ok((Arc::clone(existing.value()), false)) } else { Err(ServiceError::SessionExists(spec.name)) };
+        let existing = |other: &Arc<Session>| match (if_not_exists, differences(other.spec(), &spec)) {
+            (true, d) if d.is_empty() => Ok((Arc::clone(other), false)),
+            (_, differs) => Err(ServiceError::SessionExists { name: spec.name.clone(), differs }),
+        };
+        if let Some(e) = self.inner.sessions.get(&spec.name) {
+            return existing(e.value());
         }
         if self.inner.sessions.len() >= self.inner.limits.max_sessions {
-            return Err(ServiceError::Limit { what: format!("{} sessions", self.inner.sessions.len() + 1), limit: self.inner.limits.max_sessions as u64, key: "limits.max_sessions" });
+            return Err(ServiceError::Limit { what: format!("{} sessions", self.inner.sessions.len() + 1), limit: self.inner.limits.max_sessions as u64, key: Limit::MaxSessions.key() });
         }
-        let session = Arc::new(Session::new(spec, Arc::clone(&set.set), unix_now()));
-        match self.inner.sessions.entry(session.spec().name.clone()) {
-            Entry::Occupied(e) => {
-                // Created concurrently by another request.
-                let same = e.get().spec().config == session.spec().config && e.get().spec().refset == session.spec().refset;
-                if if_not_exists && same {
-                    Ok((Arc::clone(e.get()), false))
-                } else {
-                    Err(ServiceError::SessionExists(session.spec().name.clone()))
-                }
-            }
+        let session = Arc::new(Session::new(spec.clone(), Arc::clone(&set.set), unix_now()));
+        match self.inner.sessions.entry(spec.name.clone()) {
+            // Created concurrently by another request: the same rule.
+            Entry::Occupied(e) => existing(e.get()),
             Entry::Vacant(e) => {
                 self.persist(|s| s.put_session(session.spec(), &session.refs().digest_hex(), session.created_unix()))?;
                 e.insert(Arc::clone(&session));
@@ -366,6 +387,12 @@ impl State {
     }
 }
 
+/// The parts of a session definition in which `a` and `b` differ (empty: the same).
+pub fn differences(a: &SessionSpec, b: &SessionSpec) -> Vec<&'static str> {
+    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window)];
+    parts.into_iter().filter(|(_, same)| !same).map(|(what, _)| what).collect()
+}
+
 /// A live stream's hold on (session, producer).
 pub struct ProducerClaim {
     state: State,
@@ -378,10 +405,38 @@ impl Drop for ProducerClaim {
     }
 }
 
+/// The one path of an applied batch, in both modes: apply each batch of `group` to its
+/// session in memory, write the effects in one transaction (with a store), and only then
+/// publish them to telemetry. The effects come back in the order of `group` (None: a
+/// duplicate). A session closed meanwhile (not the one registered under its name in `live`)
+/// is neither written nor published.
+fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std::result::Result<Vec<Option<Applied>>, StoreError> {
+    let mut effects = Vec::with_capacity(group.len());
+    for p in group {
+        let current = live.is_some_and(|l| l.sessions.get(&p.session.spec().name).is_some_and(|e| Arc::ptr_eq(e.value(), &p.session)));
+        let applied = p.session.state().apply(&p.producer, p.sequence, &p.outcomes, p.rejected);
+        effects.push((applied, current));
+    }
+    let kept = || effects.iter().zip(group).filter_map(|((a, current), p)| Some((p, a.as_ref().filter(|_| *current)?)));
+    if let Some(store) = store {
+        let writes: Vec<BatchWrite<'_>> = kept().map(|(p, applied)| BatchWrite { session: &p.session.spec().name, applied }).collect();
+        if !writes.is_empty() {
+            store.commit_batches(&writes)?;
+        }
+    }
+    for (p, a) in kept() {
+        let spec = p.session.spec();
+        crate::telemetry::record_batch(&spec.name, &spec.config, a.batch.scored, a.batch.unknown, a.batch.rejected, &a.added);
+        crate::telemetry::record_scores(&spec.name, &spec.config, &a.cumulative, &a.recent);
+    }
+    Ok(effects.into_iter().map(|(a, _)| a).collect())
+}
+
 /// The group-commit thread: the one writer of batch effects. Each round takes everything that
-/// arrives within `interval` of the first request, applies it to the sessions in memory, writes
-/// it in one transaction, and only then answers (so an acknowledged batch is durable, and a
-/// duplicate is only acknowledged once its original is).
+/// arrives within `interval` of the first request and passes it to [`commit`] as one group, and
+/// only then answers (so an acknowledged batch is durable, and a duplicate is only acknowledged
+/// once its original is). When the store cannot be written, every waiting batch is refused,
+/// the failure is reported through [`State::store_failure`], and the thread ends.
 fn commit_loop(store: Arc<Store>, state: std::sync::Weak<Inner>, rx: std::sync::mpsc::Receiver<CommitRequest>, interval: std::time::Duration) {
     use std::sync::mpsc::RecvTimeoutError;
     while let Ok(first) = rx.recv() {
@@ -395,30 +450,24 @@ fn commit_loop(store: Arc<Store>, state: std::sync::Weak<Inner>, rx: std::sync::
             }
         }
         let live = state.upgrade();
-        let mut writes = Vec::new();
-        let mut replies = Vec::with_capacity(group.len());
-        for r in group {
-            let name = r.session.spec().name.clone();
-            // A session closed meanwhile: nothing is written for it.
-            let current = live.as_ref().and_then(|s| s.sessions.get(&name).map(|e| Arc::ptr_eq(e.value(), &r.session))).unwrap_or(false);
-            let mut st = r.session.state();
-            let applied = st.apply(&r.producer, r.sequence, &r.outcomes, r.rejected);
-            let after = applied.as_ref().map(|_| (st.cumulative, st.window.stats()));
-            drop(st);
-            if let (Some(a), true) = (applied, current) {
-                writes.push(BatchWrite { session: name, applied: a });
+        let (batches, replies): (Vec<Pending>, Vec<_>) = group.into_iter().map(|r| (r.batch, r.reply)).unzip();
+        match commit(live.as_deref(), Some(&store), &batches) {
+            Ok(effects) => {
+                for (reply, effect) in replies.into_iter().zip(effects) {
+                    let _ = reply.send(Ok(effect));
+                }
             }
-            replies.push((r.reply, after));
-        }
-        if !writes.is_empty() {
-            if let Err(e) = store.commit_batches(&writes) {
-                tracing::error!(error = %e, "cannot write the store; stopping so that nothing unsaved is acknowledged");
-                eprintln!("mtgauge: error: {e}");
-                std::process::exit(EXIT_STORE_FAILURE);
+            Err(e) => {
+                let message = e.to_string();
+                tracing::error!(error = %message, "cannot write the store; stopping so that nothing unsaved is acknowledged");
+                if let Some(l) = &live {
+                    l.failure.send_replace(Some(message.clone()));
+                }
+                for reply in replies {
+                    let _ = reply.send(Err(ServiceError::StoreFailed(message.clone())));
+                }
+                return;
             }
-        }
-        for (reply, after) in replies {
-            let _ = reply.send(after);
         }
     }
 }

@@ -308,7 +308,7 @@ impl SessionState {
     }
 
     /// Apply the outcomes of one batch. Returns None (and changes nothing) for a duplicate,
-    /// else what changed (for a durable copy).
+    /// else its whole effect: what it added, and the totals after it.
     pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64) -> Option<Applied> {
         if self.is_duplicate(producer, sequence) {
             return None;
@@ -318,30 +318,49 @@ impl SessionState {
             (producer.to_owned(), sequence)
         });
         let mut pushed = Vec::new();
+        let mut added = CorpusStats::default();
+        let mut batch = Counts { rejected, ..Counts::default() };
         for o in outcomes {
             match o {
                 Outcome::Scored { stats, .. } => {
-                    self.cumulative.add_segment(stats);
+                    added.add_segment(stats);
                     pushed.push(self.window.push(stats));
-                    self.counts.scored += 1;
+                    batch.scored += 1;
                 }
-                Outcome::Unknown => self.counts.unknown += 1,
+                Outcome::Unknown => batch.unknown += 1,
             }
         }
-        self.counts.rejected += rejected;
-        Some(Applied { mark, pushed, cumulative: self.cumulative, counts: self.counts, next_row: self.window.next_id() })
+        self.cumulative += added;
+        self.counts.add(&batch);
+        Some(Applied { mark, pushed, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id() })
     }
 }
 
-/// The effect of one applied batch on a session, as a durable copy needs it.
-#[derive(Debug, Clone)]
+impl Counts {
+    /// Add another set of counters.
+    pub fn add(&mut self, o: &Counts) {
+        self.scored += o.scored;
+        self.unknown += o.unknown;
+        self.rejected += o.rejected;
+    }
+}
+
+/// The whole effect of one applied batch on a session: what the acknowledgement, the
+/// telemetry and the durable copy need, computed once under the session's lock.
+#[derive(Debug, Clone, Default)]
 pub struct Applied {
     /// The producer's new sequence mark.
     pub mark: Option<(String, u64)>,
     /// Window rows added (and dropped).
     pub pushed: Vec<Pushed>,
+    /// Statistics the batch added.
+    pub added: CorpusStats,
+    /// The batch's own outcome counts.
+    pub batch: Counts,
     /// Cumulative statistics after the batch.
     pub cumulative: CorpusStats,
+    /// Statistics of the recent window after the batch.
+    pub recent: CorpusStats,
     /// Counters after the batch.
     pub counts: Counts,
     /// The window's next row id after the batch.

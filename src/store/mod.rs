@@ -121,12 +121,12 @@ pub struct Snapshot {
 }
 
 /// The effect of one applied batch, to be written in a group commit.
-#[derive(Debug, Clone)]
-pub struct BatchWrite {
+#[derive(Debug, Clone, Copy)]
+pub struct BatchWrite<'a> {
     /// Session name.
-    pub session: String,
+    pub session: &'a str,
     /// What changed.
-    pub applied: Applied,
+    pub applied: &'a Applied,
 }
 
 /// An open store.
@@ -314,11 +314,11 @@ impl Store {
 
     /// Write the effects of several applied batches in one transaction (group commit). Later
     /// writes of the same session win (they carry the newer totals).
-    pub fn commit_batches(&self, writes: &[BatchWrite]) -> Result<(), StoreError> {
+    pub fn commit_batches(&self, writes: &[BatchWrite<'_>]) -> Result<(), StoreError> {
         let mut latest: HashMap<&str, Vec<u8>> = HashMap::new();
         for w in writes {
             let st = StoredStats { cumulative: w.applied.cumulative, counts: w.applied.counts, next_row: w.applied.next_row };
-            latest.insert(&w.session, serde_json::to_vec(&st).map_err(|e| self.err(e))?);
+            latest.insert(w.session, serde_json::to_vec(&st).map_err(|e| self.err(e))?);
         }
         self.write(|txn| {
             let mut stats = txn.open_table(STATS)?;
@@ -329,13 +329,13 @@ impl Store {
             let mut marks = txn.open_table(MARKS)?;
             for w in writes {
                 for p in &w.applied.pushed {
-                    window.insert((w.session.as_str(), p.id), row_bytes(&p.row).as_slice())?;
+                    window.insert((w.session, p.id), row_bytes(&p.row).as_slice())?;
                     if let Some(d) = p.dropped {
-                        window.remove((w.session.as_str(), d))?;
+                        window.remove((w.session, d))?;
                     }
                 }
                 if let Some((producer, seq)) = &w.applied.mark {
-                    marks.insert((w.session.as_str(), producer.as_str()), *seq)?;
+                    marks.insert((w.session, producer.as_str()), *seq)?;
                 }
             }
             Ok(())
@@ -413,8 +413,8 @@ mod tests {
             st.put_refset("r", &set("Tor C")).unwrap();
             st.put_session(&spec, &set("Tor C").digest_hex(), 42).unwrap();
             st.put_refset("r", &set("Gate C")).unwrap();
-            let applied = Applied { mark: Some(("p".into(), 7)), pushed: vec![crate::session::Pushed { id: 0, row: vec![1, 2, 3], dropped: None }], cumulative: CorpusStats { segments: 1, ..Default::default() }, counts: Counts { scored: 1, unknown: 2, rejected: 0 }, next_row: 1 };
-            st.commit_batches(&[BatchWrite { session: "s".into(), applied }]).unwrap();
+            let applied = Applied { mark: Some(("p".into(), 7)), pushed: vec![crate::session::Pushed { id: 0, row: vec![1, 2, 3], dropped: None }], cumulative: CorpusStats { segments: 1, ..Default::default() }, counts: Counts { scored: 1, unknown: 2, rejected: 0 }, next_row: 1, ..Default::default() };
+            st.commit_batches(&[BatchWrite { session: "s", applied: &applied }]).unwrap();
             assert!(matches!(Store::open(&d), Err(StoreError::InUse(_))), "a second open is refused");
         }
         let st = Store::open(&d).unwrap();

@@ -33,10 +33,11 @@ const CONNECTIONS_ACCEPTED: &str = "mtgauge_connections_accepted_total";
 const CONNECTIONS_REFUSED: &str = "mtgauge_connections_refused_total";
 const CONNECTIONS_IDLE_CLOSED: &str = "mtgauge_connections_idle_closed_total";
 const WATCH_SKIPPED: &str = "mtgauge_watch_reports_skipped_total";
+const WATCH_DROPPED: &str = "mtgauge_watch_subscribers_dropped_total";
 const METRICS_REFUSED: &str = "mtgauge_metrics_requests_refused_total";
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 21] = [
+pub const METRIC_NAMES: [&str; 22] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -57,6 +58,7 @@ pub const METRIC_NAMES: [&str; 21] = [
     CONNECTIONS_REFUSED,
     CONNECTIONS_IDLE_CLOSED,
     WATCH_SKIPPED,
+    WATCH_DROPPED,
     METRICS_REFUSED,
 ];
 
@@ -88,6 +90,7 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(CONNECTIONS_REFUSED, "Connections refused (RESOURCE_EXHAUSTED, then closed) because limits.max_connections were open.");
     describe_counter!(CONNECTIONS_IDLE_CLOSED, "Connections closed after nothing was received for limits.connection_idle_seconds.");
     describe_counter!(WATCH_SKIPPED, "Watch reports not sent because the subscriber had not taken the previous one (slow subscribers skip, never queue).");
+    describe_counter!(WATCH_DROPPED, "Watch subscribers the server ended: `reason` stalled (left too many reports unread) or closed (went away).");
     describe_counter!(METRICS_REFUSED, "Scrape connections closed on arrival because too many were open.");
     for l in ["grpc", "health"] {
         gauge!(CONNECTIONS_OPEN, "listener" => l).set(0.0);
@@ -96,6 +99,9 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
         counter!(CONNECTIONS_IDLE_CLOSED, "listener" => l).absolute(0);
     }
     counter!(WATCH_SKIPPED).absolute(0);
+    for reason in ["stalled", "closed"] {
+        counter!(WATCH_DROPPED, "reason" => reason).absolute(0);
+    }
     counter!(METRICS_REFUSED).absolute(0);
     gauge!(BUILD_INFO, "version" => env!("CARGO_PKG_VERSION")).set(1.0);
     Ok(handle)
@@ -203,6 +209,11 @@ pub fn connection_idle_closed(listener: &'static str) {
 /// A watch report was skipped for a slow subscriber.
 pub fn watch_report_skipped() {
     counter!(WATCH_SKIPPED).increment(1);
+}
+
+/// A watch subscriber was ended by the server; `reason`: "stalled" or "closed".
+pub fn watch_subscriber_dropped(reason: &'static str) {
+    counter!(WATCH_DROPPED, "reason" => reason).increment(1);
 }
 
 /// Time of one batch.

@@ -37,6 +37,17 @@ impl Server {
 
     /// [`Server::start`] on a given gRPC address (to restart a server where its clients expect it).
     pub fn start_on(listen: &str, extra: &[&str]) -> Server {
+        Server::spawn(listen, extra, None)
+    }
+
+    /// [`Server::start`] in a process that may write no file past `bytes` (RLIMIT_FSIZE, with
+    /// SIGXFSZ ignored so that a write past it fails with EFBIG instead of killing the process):
+    /// a store that runs out of room.
+    pub fn start_with_file_size_limit(extra: &[&str], bytes: u64) -> Server {
+        Server::spawn("127.0.0.1:0", extra, Some(bytes))
+    }
+
+    fn spawn(listen: &str, extra: &[&str], file_size_limit: Option<u64>) -> Server {
         static N: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
         let own = !extra.iter().any(|a| *a == "--data-dir" || *a == "--durability" || *a == "--config");
         let dir = temp_dir(&format!("data-{}", N.fetch_add(1, std::sync::atomic::Ordering::Relaxed)));
@@ -44,15 +55,23 @@ impl Server {
         if own {
             args.extend(["--data-dir".to_string(), dir.display().to_string()]);
         }
-        let mut child = Command::new(env!("CARGO_BIN_EXE_mtgauge"))
-            .args(["serve", "--listen", listen, "--metrics-listen", "127.0.0.1:0"])
-            .args(&args)
-            .env("RUST_LOG", "info")
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(Stdio::piped())
-            .spawn()
-            .expect("start mtgauge serve");
+        let mut command = Command::new(env!("CARGO_BIN_EXE_mtgauge"));
+        command.args(["serve", "--listen", listen, "--metrics-listen", "127.0.0.1:0"]).args(&args).env("RUST_LOG", "info").stdin(Stdio::null()).stdout(Stdio::null()).stderr(Stdio::piped());
+        if let Some(bytes) = file_size_limit {
+            use std::os::unix::process::CommandExt;
+            // SAFETY: only async-signal-safe calls (signal, setrlimit) between fork and exec.
+            unsafe {
+                command.pre_exec(move || {
+                    libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
+                    let limit = libc::rlimit { rlim_cur: bytes as libc::rlim_t, rlim_max: bytes as libc::rlim_t };
+                    if libc::setrlimit(libc::RLIMIT_FSIZE, &limit) != 0 {
+                        return Err(std::io::Error::last_os_error());
+                    }
+                    Ok(())
+                });
+            }
+        }
+        let mut child = command.spawn().expect("start mtgauge serve");
         let stderr = child.stderr.take().unwrap();
         let logs = Arc::new(Mutex::new(Vec::new()));
         let (tx, rx) = std::sync::mpsc::channel::<String>();
@@ -159,4 +178,48 @@ pub fn demo_refset() -> Arc<mtgauge::refs::RefSet> {
 /// Write the demo files into `dir`.
 pub fn demo_files(dir: &Path) {
     mtgauge::cli::demo::scenario::write_demo_files(dir).unwrap();
+}
+
+/// A server running inside the test process on `mtgauge::server::run` (no scrape listener: the
+/// Prometheus recorder is process-wide), stopped by [`InProcess::stop`].
+pub struct InProcess {
+    pub grpc: String,
+    shutdown: Option<tokio::sync::oneshot::Sender<()>>,
+    task: tokio::task::JoinHandle<Result<(), mtgauge::server::RunError>>,
+}
+
+impl InProcess {
+    /// Bind loopback port 0 and run `config` on it (inside a Tokio runtime).
+    pub async fn start(config: mtgauge::server::ServerConfig) -> InProcess {
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.expect("bind 127.0.0.1:0");
+        let grpc = format!("http://{}", listener.local_addr().unwrap());
+        let (shutdown, stopped) = tokio::sync::oneshot::channel::<()>();
+        let task = tokio::spawn(mtgauge::server::run(config, listener, None, async move {
+            let _ = stopped.await;
+        }));
+        InProcess { grpc, shutdown: Some(shutdown), task }
+    }
+
+    /// A channel once gRPC health reports SERVING.
+    pub async fn wait_serving(&self) -> Channel {
+        let deadline = Instant::now() + STARTUP_TIMEOUT;
+        loop {
+            if let Ok(ch) = tonic::transport::Endpoint::from_shared(self.grpc.clone()).unwrap().connect().await {
+                let r = tonic_health::pb::health_client::HealthClient::new(ch.clone()).check(tonic_health::pb::HealthCheckRequest { service: String::new() }).await;
+                if r.is_ok_and(|r| r.into_inner().status == tonic_health::pb::health_check_response::ServingStatus::Serving as i32) {
+                    return ch;
+                }
+            }
+            assert!(Instant::now() < deadline, "in-process server never reported SERVING");
+            tokio::time::sleep(Duration::from_millis(20)).await;
+        }
+    }
+
+    /// Resolve the shutdown future and wait for `run` to return.
+    pub async fn stop(mut self) -> Result<(), mtgauge::server::RunError> {
+        if let Some(s) = self.shutdown.take() {
+            let _ = s.send(());
+        }
+        tokio::time::timeout(STARTUP_TIMEOUT, &mut self.task).await.expect("run returned after its shutdown").expect("run did not panic")
+    }
 }
