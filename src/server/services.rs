@@ -15,7 +15,7 @@ use tonic::{Request, Response, Status, Streaming};
 use super::auth::{Scope, Tokens};
 use super::error::{Result, ServiceError};
 use super::limits::Limit;
-use super::state::{unix_now, LoadedSet, Pending, ProducerClaim, State};
+use super::state::{unix_now, Committing, LoadedSet, Pending, ProducerClaim, State};
 use crate::refs::RefFormat;
 use super::watchers::Watchers;
 use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
@@ -29,6 +29,10 @@ use crate::telemetry;
 
 /// Most files (reference streams plus source) of one upload.
 pub const MAX_UPLOAD_FILES: usize = 64;
+
+/// Batches of one stream scored ahead of their acknowledgement: while the oldest waits for its
+/// group commit, the next ones are scored and queued behind it.
+pub const PIPELINE_DEPTH: usize = 4;
 
 /// Batches of at most this many items are scored on the async worker itself.
 pub const INLINE_BATCH_ITEMS: usize = 256;
@@ -253,8 +257,42 @@ impl pb::sessions_server::Sessions for Services {
     }
 }
 
-/// Score one batch and apply it to its session; the one path of both `Stream` and `Submit`.
+/// Score one batch and apply it to its session; the one path of both `Stream` and `Submit`
+/// (a stream runs the two halves apart: see [`Scoring::stream`]).
 async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::BatchAck> {
+    begin_batch(state, batch).await?.finish(state).await
+}
+
+/// A batch scored and handed to its session, and the acknowledgement it will get.
+struct InFlight {
+    ack: pb::BatchAck,
+    /// None: answered already (a known duplicate).
+    committing: Option<Committing>,
+    started: Instant,
+}
+
+impl InFlight {
+    /// Wait for the batch's effect and complete its acknowledgement.
+    async fn finish(self, state: &State) -> Result<pb::BatchAck> {
+        let InFlight { mut ack, committing, started } = self;
+        let Some(c) = committing else { return Ok(ack) };
+        match c.wait(state).await? {
+            Some(effect) => {
+                let b = effect.batch;
+                (ack.scored, ack.unknown, ack.rejected) = (b.scored as u32, b.unknown as u32, b.rejected as u32);
+            }
+            None => {
+                ack.duplicate = true;
+                (ack.rejections, ack.segment_scores) = (Vec::new(), Vec::new());
+            }
+        }
+        telemetry::record_batch_seconds(started.elapsed().as_secs_f64());
+        Ok(ack)
+    }
+}
+
+/// Validate and score a batch, and hand it to its session.
+async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     let started = Instant::now();
     let session = state.session(&batch.session)?;
     if batch.items.is_empty() {
@@ -267,7 +305,7 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
     let mut ack = pb::BatchAck { session: batch.session.clone(), producer: batch.producer.clone(), sequence: batch.sequence, ..Default::default() };
     if session.state().is_duplicate(&batch.producer, batch.sequence) {
         ack.duplicate = true;
-        return Ok(ack);
+        return Ok(InFlight { ack, committing: None, started });
     }
     let scoring = Arc::clone(&session);
     let slot = state.scoring_slot().await;
@@ -281,15 +319,9 @@ async fn process_batch(state: &State, batch: pb::ScoreBatch) -> Result<pb::Batch
 
     let rejected = scored.rejections.len() as u64;
     let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected };
-    let Some(effect) = state.apply_batch(pending).await? else {
-        ack.duplicate = true;
-        return Ok(ack);
-    };
-    let b = effect.batch;
-    (ack.scored, ack.unknown, ack.rejected) = (b.scored as u32, b.unknown as u32, b.rejected as u32);
+    let committing = state.submit_batch(pending)?;
     (ack.rejections, ack.segment_scores) = (scored.rejections, scored.segment_scores);
-    telemetry::record_batch_seconds(started.elapsed().as_secs_f64());
-    Ok(ack)
+    Ok(InFlight { ack, committing: Some(committing), started })
 }
 
 /// A batch after scoring, before it is applied.
@@ -392,6 +424,24 @@ impl pb::scoring_server::Scoring for Services {
         tokio::spawn(async move {
             let _gate = gate;
             let _gauge = StreamGauge::new();
+            // Batches scored and handed to their session, waiting for their effect, in order:
+            // the next batch is scored while the previous ones commit.
+            let (ahead_tx, mut ahead) = mpsc::channel::<std::result::Result<InFlight, Status>>(PIPELINE_DEPTH);
+            let forward = {
+                let state = state.clone();
+                tokio::spawn(async move {
+                    while let Some(next) = ahead.recv().await {
+                        let out = match next {
+                            Ok(f) => f.finish(&state).await.map_err(Status::from),
+                            Err(s) => Err(s),
+                        };
+                        let failed = out.is_err();
+                        if tx.send(out).await.is_err() || failed {
+                            break;
+                        }
+                    }
+                })
+            };
             let mut claims: HashMap<(String, String), ProducerClaim> = HashMap::new();
             loop {
                 // Stop only between batches: a batch that has arrived is scored and acknowledged.
@@ -406,7 +456,7 @@ impl pb::scoring_server::Scoring for Services {
                     Err(status) => {
                         // A message past max_message_bytes: tell the client, by the key's name.
                         if let Some(s) = crate::server::error::name_message_limit(&status, max_message) {
-                            let _ = tx.send(Err(s)).await;
+                            let _ = ahead_tx.send(Err(s)).await;
                         }
                         tracing::debug!(%status, "scoring stream ended by the client");
                         break;
@@ -419,17 +469,20 @@ impl pb::scoring_server::Scoring for Services {
                             claims.insert(key, c);
                         }
                         Err(e) => {
-                            let _ = tx.send(Err(e.into())).await;
+                            let _ = ahead_tx.send(Err(e.into())).await;
                             break;
                         }
                     }
                 }
-                let out = process_batch(&state, batch).await.map_err(Status::from);
-                let failed = out.is_err();
-                if tx.send(out).await.is_err() || failed {
+                let begun = begin_batch(&state, batch).await.map_err(Status::from);
+                let failed = begun.is_err();
+                if ahead_tx.send(begun).await.is_err() || failed {
                     break;
                 }
             }
+            drop(ahead_tx);
+            let _ = forward.await;
+            drop(claims);
         });
         Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
     }

@@ -69,6 +69,24 @@ pub struct Pending {
     pub rejected: u64,
 }
 
+/// A batch handed to [`commit`]: its effect, or the answer to wait for.
+pub enum Committing {
+    /// Applied already (in memory).
+    Done(Option<Applied>),
+    /// Queued for the group commit.
+    Waiting(tokio::sync::oneshot::Receiver<Result<Option<Applied>>>),
+}
+
+impl Committing {
+    /// The batch's effect once applied (and durable); None for a duplicate.
+    pub async fn wait(self, state: &State) -> Result<Option<Applied>> {
+        match self {
+            Committing::Done(effect) => Ok(effect),
+            Committing::Waiting(rx) => rx.await.map_err(|_| state.failed().map_or(ServiceError::ShuttingDown, ServiceError::StoreFailed))?,
+        }
+    }
+}
+
 /// One batch waiting for the group commit.
 struct CommitRequest {
     batch: Pending,
@@ -125,16 +143,22 @@ impl State {
     /// store on the group-commit thread, answered only once it is durable. None: the batch was
     /// a duplicate and changed nothing.
     pub async fn apply_batch(&self, batch: Pending) -> Result<Option<Applied>> {
+        self.submit_batch(batch)?.wait(self).await
+    }
+
+    /// Hand a scored batch to [`commit`] now (so batches of one stream keep their order) and
+    /// return what to wait on for its effect: a stream scores its next batch meanwhile.
+    pub fn submit_batch(&self, batch: Pending) -> Result<Committing> {
         let Some(tx) = &self.inner.committer else {
             let effects = commit(Some(&self.inner), None, std::slice::from_ref(&batch)).map_err(|e| ServiceError::StoreFailed(e.to_string()))?;
-            return Ok(effects.into_iter().next().flatten());
+            return Ok(Committing::Done(effects.into_iter().next().flatten()));
         };
         let (reply, rx) = tokio::sync::oneshot::channel();
         let sent = tx.lock().unwrap_or_else(|e| e.into_inner()).send(CommitRequest { batch, reply });
         match (sent, self.failed()) {
             (_, Some(e)) => Err(ServiceError::StoreFailed(e)),
             (Err(_), None) => Err(ServiceError::ShuttingDown),
-            (Ok(()), None) => rx.await.map_err(|_| self.failed().map_or(ServiceError::ShuttingDown, ServiceError::StoreFailed))?,
+            (Ok(()), None) => Ok(Committing::Waiting(rx)),
         }
     }
 
@@ -438,17 +462,14 @@ fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std
 /// once its original is). When the store cannot be written, every waiting batch is refused,
 /// the failure is reported through [`State::store_failure`], and the thread ends.
 fn commit_loop(store: Arc<Store>, state: std::sync::Weak<Inner>, rx: std::sync::mpsc::Receiver<CommitRequest>, interval: std::time::Duration) {
-    use std::sync::mpsc::RecvTimeoutError;
     while let Ok(first) = rx.recv() {
-        let mut group = vec![first];
-        let deadline = std::time::Instant::now() + interval;
-        loop {
-            let left = deadline.saturating_duration_since(std::time::Instant::now());
-            match rx.recv_timeout(left) {
-                Ok(r) => group.push(r),
-                Err(RecvTimeoutError::Timeout) | Err(RecvTimeoutError::Disconnected) => break,
-            }
+        // Sleep out the gathering time, then take everything that came: one wake-up per group,
+        // not one per batch.
+        if !interval.is_zero() {
+            std::thread::sleep(interval);
         }
+        let mut group = vec![first];
+        group.extend(rx.try_iter());
         let live = state.upgrade();
         let (batches, replies): (Vec<Pending>, Vec<_>) = group.into_iter().map(|r| (r.batch, r.reply)).unzip();
         match commit(live.as_deref(), Some(&store), &batches) {

@@ -15,7 +15,7 @@ use crate::refs::compiled::{Compiled, Scratch};
 use crate::refs::{RefSet, SegmentInput};
 use crate::text::{is_space, push_lowercased};
 
-pub use window::{Pushed, Window};
+pub use window::Window;
 
 /// Size of the `recent` window in segments unless the session sets one.
 pub const DEFAULT_WINDOW: usize = 1000;
@@ -317,14 +317,15 @@ impl SessionState {
             self.producers.insert(producer.to_owned(), sequence);
             (producer.to_owned(), sequence)
         });
-        let mut pushed = Vec::new();
+        let first_row = self.window.next_id();
+        let mut rows = Vec::new();
         let mut added = CorpusStats::default();
         let mut batch = Counts { rejected, ..Counts::default() };
         for o in outcomes {
             match o {
                 Outcome::Scored { stats, .. } => {
                     added.add_segment(stats);
-                    pushed.push(self.window.push(stats));
+                    rows.extend_from_slice(self.window.push(stats));
                     batch.scored += 1;
                 }
                 Outcome::Unknown => batch.unknown += 1,
@@ -332,7 +333,7 @@ impl SessionState {
         }
         self.cumulative += added;
         self.counts.add(&batch);
-        Some(Applied { mark, pushed, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id() })
+        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id() })
     }
 }
 
@@ -351,8 +352,10 @@ impl Counts {
 pub struct Applied {
     /// The producer's new sequence mark.
     pub mark: Option<(String, u64)>,
-    /// Window rows added (and dropped).
-    pub pushed: Vec<Pushed>,
+    /// Id of the first window record the batch added (one per scored item, ids consecutive).
+    pub first_row: u64,
+    /// The window records the batch added, one after the other.
+    pub rows: Vec<u64>,
     /// Statistics the batch added.
     pub added: CorpusStats,
     /// The batch's own outcome counts.

@@ -2,8 +2,6 @@
 //! per-segment records plus their running sum (add the new segment, subtract the one that
 //! falls out). A record holds only the fields the configuration uses.
 
-use std::collections::VecDeque;
-
 use crate::metric::{CorpusStats, OrderCounts, ScoreConfig, SegmentStats};
 
 /// Fields kept per segment, in order.
@@ -47,6 +45,7 @@ impl Layout {
         counts(&s.chrfpp.word, self.chrfpp.1, out);
     }
 
+    #[cfg(test)]
     fn decode(&self, mut r: &[u64]) -> SegmentStats {
         let mut s = SegmentStats::default();
         let mut take = |dst: &mut [u64]| {
@@ -74,13 +73,54 @@ impl Layout {
     }
 }
 
+impl Layout {
+    /// Add a record to `sum` (`add`), or take it away, without building its [`SegmentStats`]:
+    /// the same fields, in the order of [`Layout::encode`].
+    fn fold(&self, mut r: &[u64], sum: &mut CorpusStats, add: bool) {
+        let mut step = |dst: &mut [u64]| {
+            let (a, b) = r.split_at(dst.len());
+            for (d, v) in dst.iter_mut().zip(a) {
+                if add {
+                    *d += v;
+                } else {
+                    *d -= v;
+                }
+            }
+            r = b;
+        };
+        if self.bleu > 0 {
+            step(&mut sum.bleu.matches[..self.bleu]);
+            step(&mut sum.bleu.totals[..self.bleu]);
+            step(std::slice::from_mut(&mut sum.bleu.hyp_len));
+            step(std::slice::from_mut(&mut sum.bleu.ref_len));
+        }
+        let mut counts = |c: &mut OrderCounts, n: usize| {
+            step(&mut c.matches[..n]);
+            step(&mut c.hyp[..n]);
+            step(&mut c.reference[..n]);
+        };
+        counts(&mut sum.chrf.char, self.chrf.0);
+        counts(&mut sum.chrf.word, self.chrf.1);
+        counts(&mut sum.chrfpp.char, self.chrfpp.0);
+        counts(&mut sum.chrfpp.word, self.chrfpp.1);
+        if add {
+            sum.segments += 1;
+        } else {
+            sum.segments -= 1;
+        }
+    }
+}
+
 /// Exact statistics of the last `capacity` segments.
 #[derive(Debug)]
 pub struct Window {
     capacity: usize,
     layout: Layout,
-    /// Records of `layout.width()` values each, oldest first.
-    rows: VecDeque<u64>,
+    /// A ring of records of `layout.width()` values each: filled in order up to `capacity`,
+    /// then each new record overwrites the oldest, at `head`.
+    rows: Vec<u64>,
+    /// Index (in records) of the oldest record once the ring is full.
+    head: usize,
     sum: CorpusStats,
     scratch: Vec<u64>,
     /// Id the next pushed segment gets (ids only grow, across resets too), so that a durable
@@ -88,22 +128,11 @@ pub struct Window {
     next_id: u64,
 }
 
-/// What one push changed, for a durable copy of the window.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct Pushed {
-    /// Id of the new row.
-    pub id: u64,
-    /// The new row.
-    pub row: Vec<u64>,
-    /// Id of the row that fell out, if any.
-    pub dropped: Option<u64>,
-}
-
 impl Window {
     /// An empty window of `capacity` segments (at least 1).
     pub fn new(capacity: usize, config: &ScoreConfig) -> Window {
         let layout = Layout::new(config);
-        Window { capacity: capacity.max(1), layout, rows: VecDeque::new(), sum: CorpusStats::default(), scratch: Vec::new(), next_id: 0 }
+        Window { capacity: capacity.max(1), layout, rows: Vec::new(), head: 0, sum: CorpusStats::default(), scratch: Vec::new(), next_id: 0 }
     }
 
     /// Rebuild a window from durable rows (oldest first, at most `capacity` of them) and the id
@@ -118,7 +147,7 @@ impl Window {
             if w.sum.segments as usize == w.capacity {
                 return Err("more window rows than the window holds".into());
             }
-            w.sum.add_segment(&w.layout.decode(&row));
+            w.layout.fold(&row, &mut w.sum, true);
             w.rows.extend(row);
         }
         w.next_id = next_id;
@@ -135,24 +164,34 @@ impl Window {
         self.capacity
     }
 
-    /// Add a segment, dropping the oldest when full.
-    pub fn push(&mut self, s: &SegmentStats) -> Pushed {
+    /// Add a segment, dropping the oldest when full; the new record (as kept: what a durable
+    /// copy stores), whose id is `next_id() - 1` afterwards.
+    pub fn push(&mut self, s: &SegmentStats) -> &[u64] {
         let w = self.layout.width();
-        let len = self.sum.segments;
-        let mut dropped = None;
-        if len as usize == self.capacity {
-            let old: Vec<u64> = self.rows.drain(..w).collect();
-            self.sum.sub_segment(&self.layout.decode(&old));
-            dropped = Some(self.next_id - len);
-        }
         self.scratch.clear();
         self.layout.encode(s, &mut self.scratch);
-        self.rows.extend(self.scratch.iter().copied());
+        if self.len() == self.capacity {
+            let at = self.head * w;
+            self.layout.fold(&self.rows[at..at + w], &mut self.sum, false);
+            self.rows[at..at + w].copy_from_slice(&self.scratch);
+            self.head = (self.head + 1) % self.capacity;
+        } else {
+            self.rows.extend_from_slice(&self.scratch);
+        }
         // Add what was kept, so that what is later subtracted is exactly what was added.
-        self.sum.add_segment(&self.layout.decode(&self.scratch));
-        let id = self.next_id;
+        self.layout.fold(&self.scratch, &mut self.sum, true);
         self.next_id += 1;
-        Pushed { id, row: self.scratch.clone(), dropped }
+        &self.scratch
+    }
+
+    /// Segments in the window.
+    pub fn len(&self) -> usize {
+        self.sum.segments as usize
+    }
+
+    /// Whether the window holds no segment.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
     }
 
     /// Sum over the segments in the window.
@@ -163,6 +202,7 @@ impl Window {
     /// Forget everything.
     pub fn clear(&mut self) {
         self.rows.clear();
+        self.head = 0;
         self.sum = CorpusStats::default();
     }
 
@@ -200,10 +240,10 @@ mod tests {
         let mut w = Window::new(4, &config);
         let mut rows = std::collections::BTreeMap::new();
         for _ in 0..11 {
-            let p = w.push(&random_stats(&mut rng));
-            rows.insert(p.id, p.row);
-            if let Some(d) = p.dropped {
-                assert!(rows.remove(&d).is_some(), "dropped id {d} was a live row");
+            let row = w.push(&random_stats(&mut rng)).to_vec();
+            rows.insert(w.next_id() - 1, row);
+            while rows.len() > w.len() {
+                rows.pop_first();
             }
         }
         assert_eq!(rows.len(), 4);

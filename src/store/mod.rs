@@ -19,8 +19,11 @@ use crate::session::{Applied, Counts, SessionSpec};
 pub const STORE_FILE: &str = "mtgauge.redb";
 /// Data directory unless configured (the conventional place of a service's state).
 pub const DEFAULT_DATA_DIR: &str = "/var/lib/mtgauge";
-/// Version of the layout below; bump on any incompatible change.
-pub const SCHEMA_VERSION: u64 = 1;
+/// Version of the layout below; bump on any incompatible change (and upgrade the older one in
+/// [`Store::open`] where possible).
+pub const SCHEMA_VERSION: u64 = 2;
+/// The first layout: one stored row per window record (upgraded to blocks on open).
+const SCHEMA_ROWS: u64 = 1;
 
 const META: TableDefinition<&str, u64> = TableDefinition::new("meta");
 /// Reference-set digest (hex) -> canonical encoding.
@@ -31,8 +34,12 @@ const NAMES: TableDefinition<&str, &str> = TableDefinition::new("refset_names");
 const SESSIONS: TableDefinition<&str, &[u8]> = TableDefinition::new("sessions");
 /// Session name -> JSON of [`StoredStats`].
 const STATS: TableDefinition<&str, &[u8]> = TableDefinition::new("session_stats");
-/// (session, row id) -> window row (little-endian u64 values).
-const WINDOW: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("window_rows");
+/// Schema 1 only: (session, record id) -> one window record (little-endian u64 values).
+const WINDOW_ROWS: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("window_rows");
+/// (session, id of its first record) -> a block of consecutive window records: the number of
+/// records, then every value, as LEB128 varints. One block per session per group commit; a
+/// block goes when all its records have left the window.
+const WINDOW: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("window_blocks");
 /// (session, producer) -> highest applied sequence.
 const MARKS: TableDefinition<(&str, &str), u64> = TableDefinition::new("producer_marks");
 
@@ -135,8 +142,58 @@ pub struct Store {
     path: PathBuf,
 }
 
-fn row_bytes(row: &[u64]) -> Vec<u8> {
-    row.iter().flat_map(|v| v.to_le_bytes()).collect()
+/// Append `v` as an LEB128 varint.
+fn put_varint(out: &mut Vec<u8>, mut v: u64) {
+    while v >= 0x80 {
+        out.push(v as u8 | 0x80);
+        v >>= 7;
+    }
+    out.push(v as u8);
+}
+
+/// Read one LEB128 varint.
+fn get_varint(b: &mut &[u8]) -> Option<u64> {
+    let mut v = 0u64;
+    for shift in (0..64).step_by(7) {
+        let (&byte, rest) = b.split_first()?;
+        *b = rest;
+        v |= u64::from(byte & 0x7f) << shift;
+        if byte < 0x80 {
+            return Some(v);
+        }
+    }
+    None
+}
+
+/// A block of `n` records (their values one after the other).
+fn encode_block(n: u64, values: &[u64]) -> Vec<u8> {
+    let mut out = Vec::with_capacity(values.len() + 4);
+    put_varint(&mut out, n);
+    values.iter().for_each(|&v| put_varint(&mut out, v));
+    out
+}
+
+/// The records of a block.
+fn decode_block(mut b: &[u8]) -> Option<Vec<Vec<u64>>> {
+    let n = get_varint(&mut b)? as usize;
+    let mut values = Vec::new();
+    while !b.is_empty() {
+        values.push(get_varint(&mut b)?);
+    }
+    if n == 0 || values.len() % n != 0 {
+        return None;
+    }
+    let width = values.len() / n;
+    Some(values.chunks(width.max(1)).map(<[u64]>::to_vec).collect())
+}
+
+/// New window records of one session within a group commit, as blocks of consecutive ids.
+#[derive(Default)]
+struct SessionBlocks<'a> {
+    last: Option<&'a Applied>,
+    /// (first id, records, values).
+    blocks: Vec<(u64, u64, Vec<u64>)>,
+    marks: Vec<(&'a str, u64)>,
 }
 
 impl Store {
@@ -192,6 +249,11 @@ impl Store {
             }
             found
         };
+        if found == Some(SCHEMA_ROWS) {
+            upgrade_rows_to_blocks(&txn).map_err(|e| self.err(format!("upgrading schema {SCHEMA_ROWS} to {SCHEMA_VERSION}: {e}")))?;
+            txn.open_table(META).map_err(|e| self.err(e))?.insert("schema_version", SCHEMA_VERSION).map_err(|e| self.err(e))?;
+            return txn.commit().map_err(|e| self.err(e));
+        }
         match found {
             None | Some(SCHEMA_VERSION) => txn.commit().map_err(|e| self.err(e)),
             Some(v) if v > SCHEMA_VERSION => Err(StoreError::Schema { path: self.path.clone(), found: v, hint: "written by a newer mtgauge; run that version or move the data dir aside" }),
@@ -230,14 +292,23 @@ impl Store {
                 Some(b) => serde_json::from_slice(b.value()).map_err(|e| self.err(format!("statistics of {name}: {e}")))?,
                 None => StoredStats::default(),
             };
+            // The window holds the last min(capacity, segments since reset) records, whose ids
+            // end at next_row - 1; older records of the first block are skipped.
+            let live = (st.cumulative.segments as usize).min(s.window.max(1)) as u64;
+            let first_live = st.next_row.checked_sub(live).ok_or_else(|| self.err(format!("window of {name}: {live} records before record {}", st.next_row)))?;
             let mut rows = Vec::new();
             for r in window.range((name, 0)..=(name, u64::MAX)).map_err(|e| self.err(e))? {
-                let (_, v) = r.map_err(|e| self.err(e))?;
-                let b = v.value();
-                if b.len() % 8 != 0 {
-                    return Err(self.err(format!("window row of {name} has {} bytes", b.len())));
+                let (k, v) = r.map_err(|e| self.err(e))?;
+                let first = k.value().1;
+                let block = decode_block(v.value()).ok_or_else(|| self.err(format!("window block {first} of {name} does not decode")))?;
+                for (i, row) in block.into_iter().enumerate() {
+                    if first + i as u64 >= first_live {
+                        rows.push(row);
+                    }
                 }
-                rows.push(b.chunks_exact(8).map(|c| u64::from_le_bytes(c.try_into().unwrap_or([0; 8]))).collect());
+            }
+            if rows.len() as u64 != live {
+                return Err(self.err(format!("window of {name} has {} records, expected {live}", rows.len())));
             }
             let mut m = HashMap::new();
             for r in marks.range((name, "")..).map_err(|e| self.err(e))? {
@@ -315,32 +386,93 @@ impl Store {
     /// Write the effects of several applied batches in one transaction (group commit). Later
     /// writes of the same session win (they carry the newer totals).
     pub fn commit_batches(&self, writes: &[BatchWrite<'_>]) -> Result<(), StoreError> {
-        let mut latest: HashMap<&str, Vec<u8>> = HashMap::new();
+        // Coalesce per session: its new window records become one block (their ids follow each
+        // other: the commit thread is the only writer), its totals the last write's.
+        let mut order: Vec<&str> = Vec::new();
+        let mut by_session: HashMap<&str, SessionBlocks<'_>> = HashMap::new();
         for w in writes {
-            let st = StoredStats { cumulative: w.applied.cumulative, counts: w.applied.counts, next_row: w.applied.next_row };
-            latest.insert(w.session, serde_json::to_vec(&st).map_err(|e| self.err(e))?);
+            let e = by_session.entry(w.session).or_insert_with(|| {
+                order.push(w.session);
+                SessionBlocks::default()
+            });
+            let a = w.applied;
+            e.last = Some(a);
+            if let Some((producer, seq)) = &a.mark {
+                e.marks.push((producer.as_str(), *seq));
+            }
+            let n = a.batch.scored;
+            if n == 0 {
+                continue;
+            }
+            match e.blocks.last_mut() {
+                Some((first, count, values)) if *first + *count == a.first_row => {
+                    *count += n;
+                    values.extend_from_slice(&a.rows);
+                }
+                _ => e.blocks.push((a.first_row, n, a.rows.clone())),
+            }
+        }
+        let mut encoded = Vec::with_capacity(order.len());
+        for name in &order {
+            let e = &by_session[name];
+            let Some(last) = e.last else { continue };
+            let st = StoredStats { cumulative: last.cumulative, counts: last.counts, next_row: last.next_row };
+            let stats = serde_json::to_vec(&st).map_err(|e| self.err(e))?;
+            let blocks: Vec<(u64, Vec<u8>)> = e.blocks.iter().map(|(first, n, values)| (*first, encode_block(*n, values))).collect();
+            encoded.push((*name, stats, blocks, last.next_row - last.recent.segments));
         }
         self.write(|txn| {
             let mut stats = txn.open_table(STATS)?;
-            for (s, b) in &latest {
-                stats.insert(*s, b.as_slice())?;
-            }
             let mut window = txn.open_table(WINDOW)?;
             let mut marks = txn.open_table(MARKS)?;
-            for w in writes {
-                for p in &w.applied.pushed {
-                    window.insert((w.session, p.id), row_bytes(&p.row).as_slice())?;
-                    if let Some(d) = p.dropped {
-                        window.remove((w.session, d))?;
-                    }
+            for (name, st, blocks, first_live) in &encoded {
+                stats.insert(*name, st.as_slice())?;
+                for (first, b) in blocks {
+                    window.insert((*name, *first), b.as_slice())?;
                 }
-                if let Some((producer, seq)) = &w.applied.mark {
-                    marks.insert((w.session, producer.as_str()), *seq)?;
+                // Blocks that start at or before the first live record: all but the last of
+                // them hold only records that left the window.
+                let mut old = Vec::new();
+                for r in window.range((*name, 0)..=(*name, *first_live))? {
+                    old.push(r?.0.value().1);
+                }
+                old.pop();
+                for first in old {
+                    window.remove((*name, first))?;
+                }
+                for (producer, seq) in &by_session[name].marks {
+                    marks.insert((*name, *producer), *seq)?;
                 }
             }
             Ok(())
         })
     }
+}
+
+/// Schema 1 -> 2: each session's window records, one row each, become one block.
+fn upgrade_rows_to_blocks(txn: &redb::WriteTransaction) -> Result<(), String> {
+    let e = |e: redb::Error| e.to_string();
+    let mut runs: BTreeMap<String, (u64, u64, Vec<u64>)> = BTreeMap::new();
+    {
+        let rows = txn.open_table(WINDOW_ROWS).map_err(|x| e(x.into()))?;
+        for r in rows.iter().map_err(|x| e(x.into()))? {
+            let (k, v) = r.map_err(|x| e(x.into()))?;
+            let (session, id) = k.value();
+            let run = runs.entry(session.to_owned()).or_insert((id, 0, Vec::new()));
+            if run.0 + run.1 != id {
+                return Err(format!("window rows of {session} are not consecutive at {id}"));
+            }
+            run.1 += 1;
+            run.2.extend(v.value().chunks_exact(8).map(|c| u64::from_le_bytes(c.try_into().unwrap_or([0; 8]))));
+        }
+    }
+    let mut window = txn.open_table(WINDOW).map_err(|x| e(x.into()))?;
+    for (session, (first, n, values)) in &runs {
+        window.insert((session.as_str(), *first), encode_block(*n, values).as_slice()).map_err(|x| e(x.into()))?;
+    }
+    drop(window);
+    txn.delete_table(WINDOW_ROWS).map_err(|x| e(x.into()))?;
+    Ok(())
 }
 
 fn parse_digest(hex: &str) -> Option<[u8; 32]> {
@@ -413,7 +545,8 @@ mod tests {
             st.put_refset("r", &set("Tor C")).unwrap();
             st.put_session(&spec, &set("Tor C").digest_hex(), 42).unwrap();
             st.put_refset("r", &set("Gate C")).unwrap();
-            let applied = Applied { mark: Some(("p".into(), 7)), pushed: vec![crate::session::Pushed { id: 0, row: vec![1, 2, 3], dropped: None }], cumulative: CorpusStats { segments: 1, ..Default::default() }, counts: Counts { scored: 1, unknown: 2, rejected: 0 }, next_row: 1, ..Default::default() };
+            let one = CorpusStats { segments: 1, ..Default::default() };
+            let applied = Applied { mark: Some(("p".into(), 7)), first_row: 0, rows: vec![1, 2, 3], batch: Counts { scored: 1, unknown: 2, rejected: 0 }, cumulative: one, recent: one, counts: Counts { scored: 1, unknown: 2, rejected: 0 }, next_row: 1, ..Default::default() };
             st.commit_batches(&[BatchWrite { session: "s", applied: &applied }]).unwrap();
             assert!(matches!(Store::open(&d), Err(StoreError::InUse(_))), "a second open is refused");
         }
@@ -428,6 +561,125 @@ mod tests {
         let snap = st.load().unwrap();
         assert_eq!(snap.versions.len(), 1, "unused version collected");
         assert!(snap.sessions.is_empty());
+    }
+
+    /// Random per-segment statistics of a plausible shape.
+    fn stats(rng: &mut crate::rng::SplitMix64) -> crate::metric::SegmentStats {
+        let mut s = crate::metric::SegmentStats::default();
+        for n in 0..4 {
+            s.bleu.totals[n] = rng.below(30);
+            s.bleu.matches[n] = rng.below(s.bleu.totals[n] + 1);
+            s.chrf.char.hyp[n] = 200 + rng.below(300);
+            s.chrf.char.matches[n] = rng.below(200);
+            s.chrf.char.reference[n] = 200 + rng.below(300);
+        }
+        (s.bleu.hyp_len, s.bleu.ref_len) = (rng.below(40), rng.below(40));
+        s
+    }
+
+    /// Group commits of batches of random sizes (some several per group, some all unknown, one
+    /// reset) keep exactly the in-memory window, in a handful of blocks, across reopenings.
+    #[test]
+    fn window_blocks_hold_exactly_the_window() {
+        use crate::session::{Outcome, Session};
+        let d = dir("blocks");
+        let refs = std::sync::Arc::new(set("Tor C"));
+        let config: ScoreConfig = "bleu chrf".parse().unwrap();
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37 };
+        let session = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
+        let mut rng = crate::rng::SplitMix64::new(3);
+        let st = Store::open(&d).unwrap();
+        st.put_refset("r", &refs).unwrap();
+        st.put_session(&spec, &refs.digest_hex(), 1).unwrap();
+        let mut seq = 0;
+        let mut commits: Vec<(u64, u64)> = Vec::new();
+        for round in 0..60 {
+            if round == 40 {
+                let next_row = session.state().window.next_id();
+                session.reset();
+                st.reset_session("s", next_row).unwrap();
+                commits.clear();
+            }
+            let mut group = Vec::new();
+            for _ in 0..1 + rng.below(3) {
+                seq += 1;
+                let n = rng.below(25) as usize;
+                let outcomes: Vec<Outcome> = (0..n).map(|i| if i % 7 == 3 { Outcome::Unknown } else { Outcome::Scored { stats: stats(&mut rng), by_source: false, index: 0 } }).collect();
+                group.push(session.state().apply("p", seq, &outcomes, 0).unwrap());
+            }
+            let writes: Vec<BatchWrite<'_>> = group.iter().map(|applied| BatchWrite { session: "s", applied }).collect();
+            st.commit_batches(&writes).unwrap();
+            // One block per group that added records; only the groups with a live record stay.
+            let added: u64 = group.iter().map(|a| a.batch.scored).sum();
+            if added > 0 {
+                commits.push((group[0].first_row, added));
+            }
+            let (next, len) = {
+                let mem = session.state();
+                (mem.window.next_id(), mem.window.len() as u64)
+            };
+            let live = commits.iter().filter(|(first, n)| first + n > next - len).count() as u64;
+            let blocks = st.db.begin_read().unwrap().open_table(WINDOW).unwrap().len().unwrap();
+            assert_eq!(blocks, live, "round {round}: blocks kept");
+        }
+        drop(st);
+        let snap = Store::open(&d).unwrap().load().unwrap();
+        let s = &snap.sessions[0];
+        let mem = session.state();
+        let back = crate::session::Window::restore(37, &config, s.window_rows.clone(), s.next_row).unwrap();
+        assert_eq!((back.stats(), back.len(), s.next_row, s.cumulative, s.counts, s.marks["p"]), (mem.window.stats(), mem.window.len(), mem.window.next_id(), mem.cumulative, mem.counts, seq));
+        assert_eq!(back.len(), 37, "the window is full again after the reset");
+    }
+
+    /// A store of schema 1 (one stored row per window record) is upgraded on open: the same
+    /// window loads, and the old table is gone.
+    #[test]
+    fn schema_one_stores_are_upgraded() {
+        let d = dir("upgrade");
+        let refs = set("Tor C");
+        let config: ScoreConfig = "bleu:order=2".parse().unwrap();
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3 };
+        {
+            let st = Store::open(&d).unwrap();
+            st.put_refset("r", &refs).unwrap();
+            st.put_session(&spec, &refs.digest_hex(), 1).unwrap();
+        }
+        // Records 2, 3, 4 of five, as the first layout kept them (6 values each for order 2).
+        let rows: Vec<Vec<u64>> = (2..5u64).map(|i| vec![i, i + 1, 10, 10, 12, 11 + i]).collect();
+        let cumulative = CorpusStats { segments: 5, ..Default::default() };
+        {
+            let db = Database::create(d.join(STORE_FILE)).unwrap();
+            let txn = db.begin_write().unwrap();
+            txn.open_table(META).unwrap().insert("schema_version", SCHEMA_ROWS).unwrap();
+            txn.delete_table(WINDOW).unwrap();
+            let mut old = txn.open_table(WINDOW_ROWS).unwrap();
+            for (i, r) in rows.iter().enumerate() {
+                let bytes: Vec<u8> = r.iter().flat_map(|v| v.to_le_bytes()).collect();
+                old.insert(("s", 2 + i as u64), bytes.as_slice()).unwrap();
+            }
+            drop(old);
+            let st = serde_json::to_vec(&StoredStats { cumulative, counts: Counts { scored: 5, ..Default::default() }, next_row: 5 }).unwrap();
+            txn.open_table(STATS).unwrap().insert("s", st.as_slice()).unwrap();
+            txn.commit().unwrap();
+        }
+        let st = Store::open(&d).unwrap();
+        let s = &st.load().unwrap().sessions[0];
+        assert_eq!((&s.window_rows, s.next_row, s.counts.scored), (&rows, 5, 5));
+        let txn = st.db.begin_read().unwrap();
+        assert_eq!(txn.open_table(META).unwrap().get("schema_version").unwrap().unwrap().value(), SCHEMA_VERSION);
+        assert!(txn.open_table(WINDOW_ROWS).is_err(), "the schema 1 table is gone");
+    }
+
+    #[test]
+    fn varints_round_trip() {
+        for v in [0, 1, 127, 128, 300, u32::MAX as u64, u64::MAX] {
+            let mut b = Vec::new();
+            put_varint(&mut b, v);
+            assert_eq!(get_varint(&mut b.as_slice()), Some(v), "{v}");
+        }
+        assert_eq!(decode_block(&encode_block(2, &[1, 2, 3, 4])), Some(vec![vec![1, 2], vec![3, 4]]));
+        assert_eq!(decode_block(&encode_block(2, &[1, 2, 3])), None, "values not a multiple of the records");
+        assert_eq!(decode_block(&[0x80]), None, "a truncated varint");
     }
 
     #[test]
