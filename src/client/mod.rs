@@ -92,8 +92,8 @@ pub fn channel(url: &str) -> Result<Conn, ClientError> {
     };
     let ch = ep
         .connect_timeout(CONNECT_TIMEOUT)
-        .initial_stream_window_size(crate::server::STREAM_WINDOW_BYTES)
-        .initial_connection_window_size(crate::server::CONNECTION_WINDOW_BYTES)
+        .initial_stream_window_size(crate::pb::STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(crate::pb::CONNECTION_WINDOW_BYTES)
         .connect_lazy();
     Ok(tonic::service::interceptor::InterceptedService::new(ch, TokenInterceptor(token)))
 }

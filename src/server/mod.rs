@@ -37,11 +37,7 @@ pub const MIN_MAX_MESSAGE_BYTES: usize = 1024;
 pub const DEFAULT_DRAIN: Duration = Duration::from_secs(10);
 /// Seconds between reports of a watch stream unless asked.
 pub const DEFAULT_WATCH_SECONDS: u32 = 5;
-/// HTTP/2 flow-control window of one gRPC stream (the protocol's 64 KiB default throttles
-/// many producers sharing one connection).
-pub const STREAM_WINDOW_BYTES: u32 = 1 << 20;
-/// HTTP/2 flow-control window of one connection.
-pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
+pub use crate::pb::{CONNECTION_WINDOW_BYTES, STREAM_WINDOW_BYTES};
 /// Acknowledgements buffered per scoring stream before the server waits for the client.
 pub const ACK_BUFFER: usize = 16;
 
