@@ -1,6 +1,6 @@
 //! `mtgauge score`: offline corpus scoring of one hypothesis file.
 
-use std::io::Write;
+use std::io::{Read, Write};
 use std::sync::atomic::AtomicUsize;
 use std::sync::Arc;
 
@@ -12,7 +12,7 @@ use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::Compiled;
 use crate::refs::oneshot;
-use crate::refs::{check_same_length, split_lines, RefSet};
+use crate::refs::{check_same_length, split_lines, InputError, RefSet};
 use crate::report::{config_json, refset_json, segment_json, stats_json, stats_lines, RefSetSummary, PROXY_NOTE};
 
 pub(super) const LONG_ABOUT: &str = "\
@@ -104,17 +104,21 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         return Err(CliError::Usage("--threads must be at least 1".into()));
     }
     let threads = a.threads.unwrap_or_else(default_threads);
-    let ref_bytes = read_all(&a.refs)?;
-    let hyp_bytes = match read_bytes(&a.hyp) {
-        Ok(b) => b,
-        // The references are parsed before the hypothesis is read: their errors come first.
-        Err(e) => return Err(parse_refset(&a.refs, a.ref_format, &ref_bytes, None).err().unwrap_or(e).into()),
-    };
     let one_shot = a.per_segment.is_none() && resolve_format(&a.refs, a.ref_format) == crate::refs::RefFormat::Plain;
-    let fast = one_shot.then(|| score_files(&config, &ref_bytes, &hyp_bytes, threads)).flatten();
+    // Standard input cannot be read twice: read whole, for either way.
+    let stdin_hyp = (a.hyp == "-").then(|| read_bytes(&a.hyp));
+    let fast = one_shot.then(|| score_files(&config, &a.refs, &a.hyp, stdin_hyp.as_ref(), threads)).flatten();
     let (corpus, refs) = match fast {
         Some(scored) => (scored.stats, RefSetSummary { digest: scored.digest, segments: scored.segments, references: scored.references }),
-        None => score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads)?,
+        None => {
+            let ref_bytes = read_all(&a.refs)?;
+            let hyp_bytes = match stdin_hyp.unwrap_or_else(|| read_bytes(&a.hyp)) {
+                Ok(b) => b,
+                // The references are parsed before the hypothesis is read: their errors come first.
+                Err(e) => return Err(parse_refset(&a.refs, a.ref_format, &ref_bytes, None).err().unwrap_or(e).into()),
+            };
+            score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads)?
+        }
     };
     let out = if a.json {
         let mut m = stats_json(&corpus, &config);
@@ -132,15 +136,36 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         .map_err(|e| CliError::Output { what: "standard output".into(), source: e })
 }
 
-/// The one-shot path: line-aligned files scored chunk by chunk ([`oneshot::score_plain`]);
-/// `None` when the input is not clean (the long way then words the error).
-fn score_files(config: &ScoreConfig, refs: &[Vec<u8>], hyp: &[u8], threads: usize) -> Option<oneshot::PlainScored> {
-    let refs: Vec<&[u8]> = refs.iter().map(Vec::as_slice).collect();
-    // The line count is only wanted for the progress bar.
-    let total = if stderr_is_terminal() { memchr::memchr_iter(b'\n', hyp).count() } else { 0 };
+/// The one-shot path: line-aligned files streamed and scored chunk by chunk
+/// ([`oneshot::score_readers`]); `stdin` is the hypothesis already read when it is standard
+/// input. `None` when a file cannot be opened or the input is not clean (the long way then
+/// words the error).
+fn score_files(config: &ScoreConfig, refs: &[String], hyp: &str, stdin: Option<&Result<Vec<u8>, InputError>>, threads: usize) -> Option<oneshot::PlainScored> {
+    let open = |path: &str| -> Option<Box<dyn Read + Send + '_>> {
+        match stdin {
+            Some(bytes) if path == "-" => Some(Box::new(bytes.as_ref().ok()?.as_slice())),
+            _ => Some(Box::new(std::fs::File::open(path).ok()?)),
+        }
+    };
+    let readers: Vec<_> = refs.iter().map(|p| open(p)).collect::<Option<_>>()?;
+    let hyp_reader = open(hyp)?;
+    // The line count is only wanted for the progress bar (and only counted for a terminal).
+    let total = if stderr_is_terminal() { count_lines(open(hyp)?) } else { 0 };
     let show = total >= PROGRESS_MIN_SEGMENTS;
     let done = AtomicUsize::new(0);
-    Progress::new(&done, total).run(show, "scoring", || oneshot::score_plain(config, &refs, hyp, threads, &done))
+    Progress::new(&done, total).run(show, "scoring", || oneshot::score_readers(config, readers, hyp_reader, threads, &done))
+}
+
+/// Newlines in what `r` reads (0 on a read error).
+fn count_lines(mut r: impl Read) -> usize {
+    let mut buf = vec![0u8; 1 << 16];
+    let mut lines = 0;
+    loop {
+        match r.read(&mut buf) {
+            Ok(0) | Err(_) => return lines,
+            Ok(n) => lines += memchr::memchr_iter(b'\n', &buf[..n]).count(),
+        }
+    }
 }
 
 /// The long way: the reference set parsed into a [`RefSet`], compiled and scored (per-segment
