@@ -47,10 +47,6 @@ const DIGEST_BATCH: usize = 1 << 16;
 pub struct SegmentScratch {
     tok: TokenBuf,
     ids: TokenIds,
-    ref_ids: Vec<u32>,
-    ref_of: Vec<u32>,
-    ref_ends: Vec<usize>,
-    hyp_ids: Vec<u32>,
     clip: Clip,
     fallback: Option<(BleuTable, BleuBuild)>,
     words: Interner,
@@ -145,10 +141,6 @@ impl TokenIds {
         }
     }
 
-    fn len(&self) -> usize {
-        self.len as usize
-    }
-
     /// The id of token `text[a..e]`, given one if new.
     #[inline(always)]
     fn id(&mut self, text: &[u8], a: usize, e: usize) -> u32 {
@@ -190,29 +182,23 @@ impl TokenIds {
 
 fn bleu(cfg: &ScoreConfig, p: BleuParams, refs: &[&str], hyp: &str, s: &mut SegmentScratch, out: &mut SegmentStats) {
     s.ids.clear();
-    s.ref_ids.clear();
-    s.ref_of.clear();
-    s.ref_ends.clear();
-    s.hyp_ids.clear();
-    let (ids, tok) = (&mut s.ids, &mut s.tok);
+    let (ids, tok, clip) = (&mut s.ids, &mut s.tok, &mut s.clip);
+    clip.start();
     for (k, r) in refs.iter().enumerate() {
-        for_each_token(cfg, r, tok, |t, a, e| s.ref_ids.push(ids.id(t, a, e)));
-        s.ref_ends.push(s.ref_ids.len());
-        // Id 0 ends every reference: no hypothesis token has it, so no match runs past the end.
-        s.ref_ids.push(0);
-        s.ref_of.resize(s.ref_ids.len(), k as u32);
+        for_each_token(cfg, r, tok, |t, a, e| clip.push_ref(ids.id(t, a, e)));
+        clip.end_ref(k as u32);
     }
-    for_each_token(cfg, hyp, tok, |t, a, e| s.hyp_ids.push(ids.id(t, a, e)));
+    for_each_token(cfg, hyp, tok, |t, a, e| clip.push_hyp(ids.id(t, a, e)));
     let st = &mut out.bleu;
     *st = Default::default();
-    if !s.clip.count(p.order, ids.len(), &s.ref_ids, &s.ref_of, &s.hyp_ids, &mut st.matches) {
+    if !clip.count(p.order, &mut st.matches) {
         let (table, build) = s.fallback.get_or_insert_with(|| (BleuTable::new(p.order, p.ref_length), BleuBuild::default()));
         table.reset(p.order, p.ref_length);
         table.push_segment(cfg, refs.iter().copied(), build);
         bleu_segment(cfg, table, 0, 0..refs.len(), hyp, &mut s.scratch, out);
         return;
     }
-    let len = s.hyp_ids.len();
+    let len = clip.hyp_ids.len();
     for n in 1..=p.order {
         st.totals[n - 1] = ngram_count(len, n);
     }
@@ -220,7 +206,7 @@ fn bleu(cfg: &ScoreConfig, p: BleuParams, refs: &[&str], hyp: &str, s: &mut Segm
     let mut start = 0;
     st.ref_len = p.ref_length.pick(
         len as u64,
-        s.ref_ends.iter().map(|&e| {
+        clip.ref_ends.iter().map(|&e| {
             let l = (e - start) as u64;
             start = e + 1;
             l
@@ -228,139 +214,177 @@ fn bleu(cfg: &ScoreConfig, p: BleuParams, refs: &[&str], hyp: &str, s: &mut Segm
     );
 }
 
-/// The positions of each token id in one sequence, ascending, grouped by id (a counting sort).
-#[derive(Default)]
-struct Postings {
-    /// Positions of id `k` are `pos[start[k]..start[k + 1]]`.
-    start: Vec<u32>,
-    pos: Vec<u32>,
-}
-
-impl Postings {
-    /// Index `seq`, whose ids lie in `0..=max`.
-    fn build(&mut self, max: usize, seq: &[u32]) {
-        self.start.clear();
-        self.start.resize(max + 2, 0);
-        for &id in seq {
-            self.start[id as usize] += 1;
-        }
-        let mut sum = 0;
-        for c in &mut self.start {
-            sum += *c;
-            *c = sum;
-        }
-        self.pos.clear();
-        self.pos.resize(seq.len(), 0);
-        for (i, &id) in seq.iter().enumerate().rev() {
-            let c = &mut self.start[id as usize];
-            *c -= 1;
-            self.pos[*c as usize] = i as u32;
-        }
-    }
-
-    #[inline(always)]
-    fn of(&self, id: u32) -> &[u32] {
-        let k = id as usize;
-        &self.pos[self.start[k] as usize..self.start[k + 1] as usize]
-    }
-}
+/// No position.
+const NONE: u32 = u32::MAX;
 
 /// Clipped n-gram matches of one segment without n-gram tables.
 ///
 /// For hypothesis position `i` and a position `j` holding the same token, `run(i, j)` is the
 /// length of the common run of tokens from there (capped at the order): one more than
-/// `run(i + 1, j + 1)`. Going through the hypothesis backwards and through each token's
-/// positions only, the runs of row `i + 1` are still in place when row `i` needs them. The
-/// n-gram at `i` then occurs in a reference as often as that reference's positions with a run
-/// of at least `n`, and earlier in the hypothesis as often as earlier hypothesis positions with
-/// such a run; counting a hypothesis occurrence as matched while fewer earlier ones were than
-/// the largest count in any one reference sums, over the distinct n-grams g,
+/// `run(i + 1, j + 1)`. Each position links to the previous one holding the same token, so
+/// going through the hypothesis backwards visits only the pairs of equal tokens, and keeping
+/// the runs by the parity of `i` leaves row `i + 1` in place while row `i` is made. The n-gram
+/// at `i` then occurs in a reference as often as that reference's positions with a run of at
+/// least `n`, and earlier in the hypothesis as often as earlier hypothesis positions with such
+/// a run; counting a hypothesis occurrence as matched while fewer earlier ones were than the
+/// largest count in any one reference sums, over the distinct n-grams g,
 /// `min(count_hyp(g), max_ref count_ref(g))`: the clipped count of Papineni et al. 2002.
+/// A hypothesis token no reference has starts no n-gram that matches, so its row is skipped
+/// (rows before it only read runs through it for n-grams that cannot match either).
 #[derive(Default)]
 struct Clip {
-    refs: Postings,
-    hyps: Postings,
-    /// Per reference position: the hypothesis position its run is of, and the run.
-    ref_row: Vec<u32>,
-    ref_run: Vec<u8>,
-    /// The same per hypothesis position (runs against later hypothesis positions).
-    hyp_row: Vec<u32>,
-    hyp_run: Vec<u8>,
+    /// Token ids of the references, each reference ended by id 0 (no token has it).
+    ref_ids: Vec<u32>,
+    /// The reference of each position of `ref_ids`.
+    ref_of: Vec<u32>,
+    /// Where each reference ends in `ref_ids`.
+    ref_ends: Vec<usize>,
+    hyp_ids: Vec<u32>,
+    /// Per token id, its last position so far in the references and in the hypothesis.
+    ref_last: Vec<u32>,
+    hyp_last: Vec<u32>,
+    /// Per position, the previous one holding the same token id.
+    ref_prev: Vec<u32>,
+    hyp_prev: Vec<u32>,
+    /// Per row parity and position: `stamp << 8 | run` (runs of reference positions, and of
+    /// earlier hypothesis positions).
+    ref_cells: [Vec<u64>; 2],
+    hyp_cells: [Vec<u64>; 2],
+    /// The last row stamp given out (stamps never repeat, so the cells are never cleared).
+    stamp: u64,
 }
 
 impl Clip {
-    /// Add the clipped matches of orders 1..=`order` of `hyp` against the references `ids`
-    /// (each ended by id 0; `ref_of` the reference of each position) into `matches`; token ids
-    /// lie in `1..=distinct`. False (and nothing added) when the pairs of equal tokens are too
-    /// many ([`PAIRS_PER_TOKEN`]).
-    fn count(&mut self, order: usize, distinct: usize, ids: &[u32], ref_of: &[u32], hyp: &[u32], matches: &mut [u64]) -> bool {
-        let cap = order as u8;
-        self.refs.build(distinct, ids);
-        self.hyps.build(distinct, hyp);
-        let budget = PAIRS_PER_TOKEN * (ids.len() + hyp.len());
+    /// Start a segment.
+    fn start(&mut self) {
+        for v in [&mut self.ref_ids, &mut self.ref_of, &mut self.hyp_ids, &mut self.ref_prev, &mut self.hyp_prev] {
+            v.clear();
+        }
+        self.ref_ends.clear();
+        self.ref_last.clear();
+        self.hyp_last.clear();
+    }
+
+    /// Room in the per-id tables for `id`.
+    #[inline(always)]
+    fn see(&mut self, id: u32) {
+        if id as usize >= self.ref_last.len() {
+            self.ref_last.resize(id as usize + 1, NONE);
+            self.hyp_last.resize(id as usize + 1, NONE);
+        }
+    }
+
+    /// The next token of the current reference.
+    #[inline(always)]
+    fn push_ref(&mut self, id: u32) {
+        self.see(id);
+        let last = &mut self.ref_last[id as usize];
+        self.ref_prev.push(*last);
+        *last = self.ref_ids.len() as u32;
+        self.ref_ids.push(id);
+    }
+
+    /// The end of reference `k`.
+    fn end_ref(&mut self, k: u32) {
+        self.ref_ends.push(self.ref_ids.len());
+        self.ref_ids.push(0);
+        self.ref_prev.push(NONE);
+        self.ref_of.resize(self.ref_ids.len(), k);
+    }
+
+    /// The next hypothesis token.
+    #[inline(always)]
+    fn push_hyp(&mut self, id: u32) {
+        self.see(id);
+        let last = &mut self.hyp_last[id as usize];
+        self.hyp_prev.push(*last);
+        *last = self.hyp_ids.len() as u32;
+        self.hyp_ids.push(id);
+    }
+
+    /// Add the clipped matches of orders 1..=`order` (at most [`MAX_BLEU_ORDER`]) of the
+    /// hypothesis against the references into `matches`. False (and nothing added) when the
+    /// pairs of equal tokens are more than [`PAIRS_PER_TOKEN`] per token.
+    fn count(&mut self, order: usize, matches: &mut [u64]) -> bool {
+        let cap = order as u64;
+        let (nr, nh) = (self.ref_ids.len(), self.hyp_ids.len());
+        for c in self.ref_cells.iter_mut() {
+            if c.len() <= nr {
+                c.resize(nr + 1, 0);
+            }
+        }
+        for c in self.hyp_cells.iter_mut() {
+            if c.len() <= nh {
+                c.resize(nh + 1, 0);
+            }
+        }
+        // Row i has stamp base + (nh - i); row nh (past the end) is never written.
+        let base = self.stamp + 1;
+        self.stamp = base + nh as u64;
+        let budget = PAIRS_PER_TOKEN * (nr + nh);
         let mut pairs = 0;
-        for id in 1..=distinct as u32 {
-            let h = self.hyps.of(id).len();
-            pairs += h * (self.refs.of(id).len() + h);
-        }
-        if pairs > budget {
-            return false;
-        }
-        for (row, run, len) in [(&mut self.ref_row, &mut self.ref_run, ids.len()), (&mut self.hyp_row, &mut self.hyp_run, hyp.len())] {
-            row.clear();
-            row.resize(len + 1, u32::MAX);
-            run.clear();
-            run.resize(len + 1, 0);
-        }
-        for i in (0..hyp.len()).rev() {
-            let id = hyp[i];
-            let at = self.refs.of(id);
-            if at.is_empty() {
-                // No n-gram from here matches; rows before this one never need its runs for
-                // an n-gram that could.
+        let several = self.ref_ends.len() > 1;
+        let mut found = [0u64; MAX_BLEU_ORDER];
+        for i in (0..nh).rev() {
+            let id = self.hyp_ids[i] as usize;
+            let mut j = self.ref_last[id];
+            if j == NONE {
                 continue;
             }
-            let (here, next) = (i as u32, i as u32 + 1);
+            let here = base + (nh - i) as u64;
+            let next = here - 1;
+            let [even, odd] = &mut self.ref_cells;
+            let (read, write) = if i & 1 == 0 { (&*odd, even) } else { (&*even, odd) };
             // Largest count in any one reference of each order's n-gram from `i`.
             let mut best = [0u32; MAX_BLEU_ORDER];
             let mut cur = [0u32; MAX_BLEU_ORDER];
-            let mut owner = ref_of[at[0] as usize];
-            for &j in at {
-                let j = j as usize;
-                if ref_of[j] != owner {
-                    owner = ref_of[j];
+            let mut owner = self.ref_of[j as usize];
+            while j != NONE {
+                let ju = j as usize;
+                pairs += 1;
+                if several && self.ref_of[ju] != owner {
+                    owner = self.ref_of[ju];
                     for n in 0..order {
                         best[n] = best[n].max(cur[n]);
                     }
                     cur = [0; MAX_BLEU_ORDER];
                 }
-                let run = if self.ref_row[j + 1] == next { (self.ref_run[j + 1] + 1).min(cap) } else { 1 };
-                self.ref_row[j] = here;
-                self.ref_run[j] = run;
+                let c = read[ju + 1];
+                let run = if c >> 8 == next { ((c & 0xFF) + 1).min(cap) } else { 1 };
+                write[ju] = here << 8 | run;
                 for c in &mut cur[..run as usize] {
                     *c += 1;
                 }
+                j = self.ref_prev[ju];
             }
             for n in 0..order {
                 best[n] = best[n].max(cur[n]);
             }
             // Earlier hypothesis occurrences of each order's n-gram from `i`.
+            let [even, odd] = &mut self.hyp_cells;
+            let (read, write) = if i & 1 == 0 { (&*odd, even) } else { (&*even, odd) };
             let mut seen = [0u32; MAX_BLEU_ORDER];
-            for &e in self.hyps.of(id) {
-                if e >= here {
-                    break;
-                }
-                let e = e as usize;
-                let run = if self.hyp_row[e + 1] == next { (self.hyp_run[e + 1] + 1).min(cap) } else { 1 };
-                self.hyp_row[e] = here;
-                self.hyp_run[e] = run;
+            let mut e = self.hyp_prev[i];
+            while e != NONE {
+                let eu = e as usize;
+                pairs += 1;
+                let c = read[eu + 1];
+                let run = if c >> 8 == next { ((c & 0xFF) + 1).min(cap) } else { 1 };
+                write[eu] = here << 8 | run;
                 for c in &mut seen[..run as usize] {
                     *c += 1;
                 }
+                e = self.hyp_prev[eu];
+            }
+            if pairs > budget {
+                return false;
             }
             for n in 0..order {
-                matches[n] += (seen[n] < best[n]) as u64;
+                found[n] += (seen[n] < best[n]) as u64;
             }
+        }
+        for (m, f) in matches.iter_mut().zip(found) {
+            *m += f;
         }
         true
     }
@@ -654,32 +678,41 @@ fn itoa_buf(mut n: usize) -> Decimal {
 mod tests {
     use super::*;
 
-    /// Reference `a b a b a b c` (ids 1 2 3, ended by 0), hypothesis `a b a b c a b a b`, counted
-    /// by hand: unigrams a 3 of 4, b 3 of 4, c 1; bigrams ab 3, ba 2, bc 1; trigrams aba 2,
-    /// bab 2, abc 1; 4-grams abab 2, babc 1.
+    /// The clipped matches (orders 1..=`order`) of hypothesis ids `hyp` against references
+    /// `refs`, or None when left to the gram table.
+    fn clipped(order: usize, refs: &[&[u32]], hyp: &[u32], clip: &mut Clip) -> Option<Vec<u64>> {
+        clip.start();
+        for (k, r) in refs.iter().enumerate() {
+            r.iter().for_each(|&id| clip.push_ref(id));
+            clip.end_ref(k as u32);
+        }
+        hyp.iter().for_each(|&id| clip.push_hyp(id));
+        let mut m = [0u64; MAX_BLEU_ORDER];
+        let ok = clip.count(order, &mut m);
+        assert!(ok || m == [0; MAX_BLEU_ORDER], "nothing added when refused");
+        ok.then(|| m[..order].to_vec())
+    }
+
+    /// Reference `a b a b a b c` (ids 1 2 3), hypothesis `a b a b c a b a b`, counted by hand:
+    /// unigrams a 3 of 4, b 3 of 4, c 1; bigrams ab 3, ba 2, bc 1; trigrams aba 2, bab 2,
+    /// abc 1; 4-grams abab 2, babc 1. One scratch over several segments (stamps never repeat).
     #[test]
     fn runs_give_the_hand_counted_clipped_matches() {
-        let refs = [1, 2, 1, 2, 1, 2, 3, 0];
-        let hyp = [1, 2, 1, 2, 3, 1, 2, 1, 2];
         let mut clip = Clip::default();
-        let mut m = [0u64; MAX_BLEU_ORDER];
-        assert!(clip.count(4, 3, &refs, &[0; 8], &hyp, &mut m));
-        assert_eq!(m[..4], [7, 6, 5, 3]);
-        // References `a b` and `c a b a b`, hypothesis `a b a b a b`: the largest count in any one
-        // reference clips (a 2, b 2; ab 2 from the second, ba 1).
-        let refs = [1, 2, 0, 3, 1, 2, 1, 2, 0];
-        let mut m = [0u64; MAX_BLEU_ORDER];
-        assert!(clip.count(2, 3, &refs, &[0, 0, 0, 1, 1, 1, 1, 1, 1], &[1, 2, 1, 2, 1, 2], &mut m));
-        assert_eq!(m[..2], [4, 3]);
+        for _ in 0..3 {
+            assert_eq!(clipped(4, &[&[1, 2, 1, 2, 1, 2, 3]], &[1, 2, 1, 2, 3, 1, 2, 1, 2], &mut clip), Some(vec![7, 6, 5, 3]));
+            // References `a b` and `c a b a b`, hypothesis `a b a b a b`: the largest count in
+            // any one reference clips (a 2, b 2; ab 2 from the second, ba 1).
+            assert_eq!(clipped(2, &[&[1, 2], &[3, 1, 2, 1, 2]], &[1, 2, 1, 2, 1, 2], &mut clip), Some(vec![4, 3]));
+            // A hypothesis token no reference has (4) breaks the runs through it.
+            assert_eq!(clipped(3, &[&[1, 2, 3, 1, 2, 3]], &[1, 2, 4, 1, 2, 3], &mut clip), Some(vec![5, 3, 1]));
+        }
     }
 
     #[test]
     fn too_many_equal_pairs_are_left_to_the_gram_table() {
         let n = 4 * PAIRS_PER_TOKEN;
-        let mut refs = vec![1u32; n];
-        refs.push(0);
-        let mut m = [0u64; MAX_BLEU_ORDER];
-        assert!(!Clip::default().count(4, 1, &refs, &vec![0; n + 1], &vec![1; n], &mut m));
-        assert_eq!(m, [0; MAX_BLEU_ORDER], "nothing added");
+        assert_eq!(clipped(4, &[&vec![1u32; n]], &vec![1; n], &mut Clip::default()), None);
+        assert!(clipped(4, &[&[1, 1, 2]], &[1, 1], &mut Clip::default()).is_some());
     }
 }
