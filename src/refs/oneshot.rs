@@ -217,6 +217,40 @@ fn bleu(cfg: &ScoreConfig, p: BleuParams, refs: &[&str], hyp: &str, s: &mut Segm
 /// No position.
 const NONE: u32 = u32::MAX;
 
+/// Counts per order, one lane each (i32: the lanes compare as signed vector code).
+type Lanes = [i32; MAX_BLEU_ORDER];
+
+/// `RUNS[r]`: one in the lanes of the orders up to `r`.
+const RUNS: [Lanes; MAX_BLEU_ORDER + 1] = {
+    let mut t = [[0; MAX_BLEU_ORDER]; MAX_BLEU_ORDER + 1];
+    let mut r = 0;
+    while r <= MAX_BLEU_ORDER {
+        let mut n = 0;
+        while n < r {
+            t[r][n] = 1;
+            n += 1;
+        }
+        r += 1;
+    }
+    t
+};
+
+/// Add one to the counts of the orders up to `run` (at most [`MAX_BLEU_ORDER`]).
+#[inline(always)]
+fn lanes_count(counts: &mut Lanes, run: u64) {
+    for (c, &one) in counts.iter_mut().zip(&RUNS[run as usize]) {
+        *c += one;
+    }
+}
+
+/// `best` the larger of itself and `cur`, order by order.
+#[inline(always)]
+fn lanes_max(best: &mut Lanes, cur: &Lanes) {
+    for (b, &c) in best.iter_mut().zip(cur) {
+        *b = (*b).max(c);
+    }
+}
+
 /// Clipped n-gram matches of one segment without n-gram tables.
 ///
 /// For hypothesis position `i` and a position `j` holding the same token, `run(i, j)` is the
@@ -324,7 +358,9 @@ impl Clip {
         let budget = PAIRS_PER_TOKEN * (nr + nh);
         let mut pairs = 0;
         let several = self.ref_ends.len() > 1;
-        let mut found = [0u64; MAX_BLEU_ORDER];
+        // Per order (all MAX_BLEU_ORDER lanes, so that the loops are straight vector code: the
+        // orders past `order` stay 0, as runs are capped at `order`).
+        let mut found: Lanes = [0; MAX_BLEU_ORDER];
         for i in (0..nh).rev() {
             let id = self.hyp_ids[i] as usize;
             let mut j = self.ref_last[id];
@@ -336,34 +372,28 @@ impl Clip {
             let [even, odd] = &mut self.ref_cells;
             let (read, write) = if i & 1 == 0 { (&*odd, even) } else { (&*even, odd) };
             // Largest count in any one reference of each order's n-gram from `i`.
-            let mut best = [0u32; MAX_BLEU_ORDER];
-            let mut cur = [0u32; MAX_BLEU_ORDER];
+            let mut best: Lanes = [0; MAX_BLEU_ORDER];
+            let mut cur: Lanes = [0; MAX_BLEU_ORDER];
             let mut owner = self.ref_of[j as usize];
             while j != NONE {
                 let ju = j as usize;
                 pairs += 1;
                 if several && self.ref_of[ju] != owner {
                     owner = self.ref_of[ju];
-                    for n in 0..order {
-                        best[n] = best[n].max(cur[n]);
-                    }
+                    lanes_max(&mut best, &cur);
                     cur = [0; MAX_BLEU_ORDER];
                 }
                 let c = read[ju + 1];
                 let run = if c >> 8 == next { ((c & 0xFF) + 1).min(cap) } else { 1 };
                 write[ju] = here << 8 | run;
-                for c in &mut cur[..run as usize] {
-                    *c += 1;
-                }
+                lanes_count(&mut cur, run);
                 j = self.ref_prev[ju];
             }
-            for n in 0..order {
-                best[n] = best[n].max(cur[n]);
-            }
+            lanes_max(&mut best, &cur);
             // Earlier hypothesis occurrences of each order's n-gram from `i`.
             let [even, odd] = &mut self.hyp_cells;
             let (read, write) = if i & 1 == 0 { (&*odd, even) } else { (&*even, odd) };
-            let mut seen = [0u32; MAX_BLEU_ORDER];
+            let mut seen: Lanes = [0; MAX_BLEU_ORDER];
             let mut e = self.hyp_prev[i];
             while e != NONE {
                 let eu = e as usize;
@@ -371,20 +401,18 @@ impl Clip {
                 let c = read[eu + 1];
                 let run = if c >> 8 == next { ((c & 0xFF) + 1).min(cap) } else { 1 };
                 write[eu] = here << 8 | run;
-                for c in &mut seen[..run as usize] {
-                    *c += 1;
-                }
+                lanes_count(&mut seen, run);
                 e = self.hyp_prev[eu];
             }
             if pairs > budget {
                 return false;
             }
-            for n in 0..order {
-                found[n] += (seen[n] < best[n]) as u64;
+            for n in 0..MAX_BLEU_ORDER {
+                found[n] += (seen[n] < best[n]) as i32;
             }
         }
         for (m, f) in matches.iter_mut().zip(found) {
-            *m += f;
+            *m += f as u64;
         }
         true
     }
