@@ -495,6 +495,26 @@ fn invalid_utf8_names_file_and_line() {
     assert_fails(&out, &["<stdin>:1:", "UTF-8"]);
 }
 
+/// A reference that is not a regular file (here a pipe, /dev/stdin) is read once, whole: the
+/// scores equal those of the same reference in a file, and its errors are worded from the bytes
+/// read (not from a second, empty read).
+#[test]
+fn a_piped_reference_is_read_once() {
+    let c = corpus("pipe");
+    if !std::path::Path::new("/dev/stdin").exists() {
+        return;
+    }
+    let reference = std::fs::read(&c.r1).expect("read reference");
+    let piped = run_stdin(&["score", "--ref", "/dev/stdin", "--hyp", &c.hyp, "--json", "--metric", "bleu"], Some(&reference));
+    let filed = run(&["score", "--ref", &c.r1, "--hyp", &c.hyp, "--json", "--metric", "bleu"]);
+    assert!(piped.status.success() && filed.status.success(), "{}", text(&piped.stderr));
+    assert_eq!(text(&piped.stdout), text(&filed.stdout));
+    let mut bad = reference.clone();
+    bad.splice(0..0, b"\xC3\x28\n".iter().copied());
+    let out = run_stdin(&["score", "--ref", "/dev/stdin", "--hyp", &c.hyp], Some(&bad));
+    assert_fails(&out, &["/dev/stdin:1:", "UTF-8"]);
+}
+
 #[test]
 fn malformed_jsonl() {
     let c = corpus("badjsonl");

@@ -845,3 +845,79 @@ fn oneshot_refuses_what_the_parsers_refuse() {
     assert_eq!((ok.segments, ok.stats.segments), (2, 2));
     assert_eq!(score(&[b""], b"").expect("empty files").segments, 0);
 }
+
+/// Segments where a few tokens repeat many times: the run counting of the one-shot path while
+/// the pairs of equal tokens stay few, the per-segment gram table past
+/// `oneshot::PAIRS_PER_TOKEN` of them; both give the compiled engine's statistics.
+#[test]
+fn oneshot_repetitive_segments_equal_the_compiled_engine() {
+    let rep = |w: &str, n: usize| vec![w; n].join(" ");
+    let many = 4 * oneshot::PAIRS_PER_TOKEN;
+    let segs = vec![
+        // Over the bound: every token of the hypothesis equals every token of the reference.
+        Seg { refs: vec![rep("vop", many)], hyp: rep("vop", many + 3) },
+        Seg { refs: vec![rep("vop kel", many), rep("kel", 2 * many)], hyp: rep("kel vop", many) },
+        // Under it: a few repeats among distinct tokens.
+        Seg { refs: vec!["vop kel vop kel zin vop".into(), "kel vop kel".into()], hyp: "vop kel vop kel vop kel zin".into() },
+        Seg { refs: vec!["a b a b a b c".into()], hyp: "a b a b c a b a b".into() },
+    ];
+    for order in [1, 2, 4, 8] {
+        for mask in [1, 7] {
+            assert_segments_equal(&segs, only(Flat { tokenizer: Tokenizer::Whitespace, bleu_order: order, ..Default::default() }, mask));
+        }
+    }
+}
+
+/// A reader handing out at most `step` bytes per read (or failing after `fail_after` bytes).
+struct Trickle<'a> {
+    bytes: &'a [u8],
+    step: usize,
+    fail_after: Option<usize>,
+    given: usize,
+}
+
+fn trickle(bytes: &[u8], step: usize, fail_after: Option<usize>) -> Trickle<'_> {
+    Trickle { bytes, step, fail_after, given: 0 }
+}
+
+impl std::io::Read for Trickle<'_> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        if self.fail_after.is_some_and(|f| self.given >= f) {
+            return Err(std::io::Error::other("broken file"));
+        }
+        let n = self.step.min(buf.len()).min(self.bytes.len());
+        buf[..n].copy_from_slice(&self.bytes[..n]);
+        self.bytes = &self.bytes[n..];
+        self.given += n;
+        Ok(n)
+    }
+}
+
+/// Files read a few bytes at a time (lines, a byte-order mark and `\r\n` split across reads)
+/// give what the same files in memory give; a read error is refused.
+#[test]
+fn oneshot_streams_read_in_small_pieces_equal_whole_files() {
+    let words = ["vop", "kel", "zin", "tarr", "Mulde", "größer", "deck"];
+    let segs: Vec<Seg> = (0..ONESHOT_CHUNK + 300)
+        .map(|i| {
+            let w = |k: usize| words[(i * 5 + k * k + k) % words.len()];
+            let r: Vec<&str> = (0..i % 13).map(w).collect();
+            let h: Vec<&str> = (2..3 + i % 7).map(w).collect();
+            Seg { refs: vec![r.join(" "), h[1..].join(" ")], hyp: h.join(" ") }
+        })
+        .collect();
+    let c = only(Flat { tokenizer: Tokenizer::Whitespace, ..Default::default() }, 7);
+    for (eol, bom) in [("\n", false), ("\r\n", true)] {
+        let (refs, hyp) = plain_files(&segs, 2, eol, bom);
+        let slices: Vec<&[u8]> = refs.iter().map(Vec::as_slice).collect();
+        let want = oneshot::score_plain(&c, &slices, &hyp, 2, &AtomicUsize::new(0)).expect("clean input");
+        assert_eq!(want.segments, segs.len());
+        for step in [1, 2, 7, 4093] {
+            let got = oneshot::score_readers(&c, refs.iter().map(|r| trickle(r, step, None)).collect(), trickle(&hyp, step, None), 3, &AtomicUsize::new(0));
+            assert_eq!(got.as_ref(), Some(&want), "{step} bytes per read, eol {eol:?}, bom {bom}");
+        }
+        let readers = vec![trickle(&refs[0], 999, None), trickle(&refs[1], 999, Some(5000))];
+        let got = oneshot::score_readers(&c, readers, trickle(&hyp, 999, None), 2, &AtomicUsize::new(0));
+        assert!(got.is_none(), "a read error is refused");
+    }
+}

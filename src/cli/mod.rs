@@ -72,6 +72,7 @@ pub enum Command {
     /// Drive a running server with synthetic load and print throughput and latency.
     Load(load::LoadArgs),
     /// Measure scoring speed on a generated corpus and print ratios against a baseline measured in the same run.
+    #[command(long_about = bench::LONG_ABOUT)]
     Bench(bench::BenchArgs),
 }
 

@@ -1,6 +1,6 @@
 //! `mtgauge score`: offline corpus scoring of one hypothesis file.
 
-use std::io::Write;
+use std::io::{Read, Write};
 use std::sync::atomic::AtomicUsize;
 use std::sync::Arc;
 
@@ -12,7 +12,7 @@ use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::Compiled;
 use crate::refs::oneshot;
-use crate::refs::{check_same_length, split_lines, RefSet};
+use crate::refs::{check_same_length, split_lines, InputError, RefSet};
 use crate::report::{config_json, refset_json, segment_json, stats_json, stats_lines, RefSetSummary, PROXY_NOTE};
 
 pub(super) const LONG_ABOUT: &str = "\
@@ -104,17 +104,24 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         return Err(CliError::Usage("--threads must be at least 1".into()));
     }
     let threads = a.threads.unwrap_or_else(default_threads);
-    let ref_bytes = read_all(&a.refs)?;
-    let hyp_bytes = match read_bytes(&a.hyp) {
-        Ok(b) => b,
-        // The references are parsed before the hypothesis is read: their errors come first.
-        Err(e) => return Err(parse_refset(&a.refs, a.ref_format, &ref_bytes, None).err().unwrap_or(e).into()),
-    };
     let one_shot = a.per_segment.is_none() && resolve_format(&a.refs, a.ref_format) == crate::refs::RefFormat::Plain;
-    let fast = one_shot.then(|| score_files(&config, &ref_bytes, &hyp_bytes, threads)).flatten();
+    let inputs = one_shot.then(|| (a.refs.iter().map(|p| Input::open(p)).collect::<Vec<_>>(), Input::open(&a.hyp)));
+    let fast = inputs.as_ref().and_then(|(refs, hyp)| score_files(&config, refs, hyp, &a.hyp, threads));
     let (corpus, refs) = match fast {
         Some(scored) => (scored.stats, RefSetSummary { digest: scored.digest, segments: scored.segments, references: scored.references }),
-        None => score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads)?,
+        None => {
+            let (ref_inputs, hyp_input) = inputs.unzip();
+            let ref_bytes = match ref_inputs {
+                Some(r) => r.into_iter().zip(&a.refs).map(|(i, p)| i.into_bytes(p)).collect::<Result<Vec<_>, _>>()?,
+                None => read_all(&a.refs)?,
+            };
+            let hyp_bytes = match hyp_input.map_or_else(|| read_bytes(&a.hyp), |h| h.into_bytes(&a.hyp)) {
+                Ok(b) => b,
+                // The references are parsed before the hypothesis is read: their errors come first.
+                Err(e) => return Err(parse_refset(&a.refs, a.ref_format, &ref_bytes, None).err().unwrap_or(e).into()),
+            };
+            score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads)?
+        }
     };
     let out = if a.json {
         let mut m = stats_json(&corpus, &config);
@@ -132,15 +139,72 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         .map_err(|e| CliError::Output { what: "standard output".into(), source: e })
 }
 
-/// The one-shot path: line-aligned files scored chunk by chunk ([`oneshot::score_plain`]);
-/// `None` when the input is not clean (the long way then words the error).
-fn score_files(config: &ScoreConfig, refs: &[Vec<u8>], hyp: &[u8], threads: usize) -> Option<oneshot::PlainScored> {
-    let refs: Vec<&[u8]> = refs.iter().map(Vec::as_slice).collect();
-    // The line count is only wanted for the progress bar.
-    let total = if stderr_is_terminal() { memchr::memchr_iter(b'\n', hyp).count() } else { 0 };
+/// An input of the one-shot path: a regular file, streamed (and read again should the long way
+/// need it), or anything else (standard input, a pipe, what cannot be opened) read whole once,
+/// for either way, as it may not be read twice.
+enum Input {
+    Stream(std::fs::File),
+    Whole(Result<Vec<u8>, InputError>),
+}
+
+impl Input {
+    fn open(path: &str) -> Input {
+        if path != "-" {
+            if let Ok(f) = std::fs::File::open(path) {
+                if f.metadata().is_ok_and(|m| m.is_file()) {
+                    return Input::Stream(f);
+                }
+            }
+        }
+        Input::Whole(read_bytes(path))
+    }
+
+    /// A reader of the input; `None` when it could not be read.
+    fn reader(&self) -> Option<Box<dyn Read + Send + '_>> {
+        match self {
+            Input::Stream(f) => Some(Box::new(f)),
+            Input::Whole(bytes) => Some(Box::new(bytes.as_ref().ok()?.as_slice())),
+        }
+    }
+
+    /// The whole input (a regular file read again from `path`).
+    fn into_bytes(self, path: &str) -> Result<Vec<u8>, InputError> {
+        match self {
+            Input::Stream(_) => read_bytes(path),
+            Input::Whole(bytes) => bytes,
+        }
+    }
+}
+
+/// The one-shot path: line-aligned files streamed and scored chunk by chunk
+/// ([`oneshot::score_readers`]). `None` when an input could not be read or is not clean (the
+/// long way then words the error).
+fn score_files(config: &ScoreConfig, refs: &[Input], hyp: &Input, hyp_path: &str, threads: usize) -> Option<oneshot::PlainScored> {
+    let readers: Vec<_> = refs.iter().map(Input::reader).collect::<Option<_>>()?;
+    let hyp_reader = hyp.reader()?;
+    // The line count is only wanted for the progress bar (and only counted for a terminal).
+    let total = if !stderr_is_terminal() {
+        0
+    } else if let Input::Whole(Ok(bytes)) = hyp {
+        memchr::memchr_iter(b'\n', bytes).count()
+    } else {
+        std::fs::File::open(hyp_path).map_or(0, count_lines)
+    };
     let show = total >= PROGRESS_MIN_SEGMENTS;
     let done = AtomicUsize::new(0);
-    Progress::new(&done, total).run(show, "scoring", || oneshot::score_plain(config, &refs, hyp, threads, &done))
+    Progress::new(&done, total).run(show, "scoring", || oneshot::score_readers(config, readers, hyp_reader, threads, &done))
+}
+
+/// Newlines in what `r` reads (0 on a read error).
+fn count_lines(mut r: impl Read) -> usize {
+    let mut buf = vec![0u8; 1 << 16];
+    let mut lines = 0;
+    loop {
+        match r.read(&mut buf) {
+            Ok(0) | Err(_) => return lines,
+            Ok(n) => lines += memchr::memchr_iter(b'\n', &buf[..n]).count(),
+        }
+    }
 }
 
 /// The long way: the reference set parsed into a [`RefSet`], compiled and scored (per-segment
