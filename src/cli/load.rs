@@ -14,7 +14,7 @@ use clap::Args;
 use serde_json::json;
 use tokio::sync::mpsc;
 
-use super::bench::{generate, refset, Corpus};
+use super::demo::corpus::{generate, refset, Corpus};
 use crate::client::{channel, ClientError, Conn};
 use super::CliError;
 use crate::pb;

@@ -10,6 +10,7 @@ use clap::Args;
 
 use super::score::score_corpus_lines;
 use super::{default_threads, CliError};
+pub(crate) mod corpus;
 mod live;
 mod phrases;
 pub mod scenario;
