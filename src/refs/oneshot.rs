@@ -5,8 +5,9 @@
 //! references and hypothesis are tokenized and counted together, and nothing outlives the
 //! segment but the integer statistics added into the corpus sums.
 //!
-//! BLEU: a segment's tokens get dense ids (a table cleared per segment); each token id's
-//! positions in the references and in the hypothesis are listed (a counting sort), and the
+//! BLEU: a segment's tokens get dense ids (a table cleared per segment); each position links to
+//! the previous position of the same token in the references and in the hypothesis (set as the
+//! tokens are read), and the
 //! clipped matches of every order come from the lengths of the common runs that start at equal
 //! tokens ([`Clip`]): no n-gram is hashed or stored. A segment where a few tokens repeat so
 //! often that the pairs of equal tokens outnumber [`PAIRS_PER_TOKEN`] per token goes through
