@@ -108,7 +108,7 @@ impl<'a> Progress<'a> {
     fn draw(&self, label: &str) {
         const WIDTH: usize = 30;
         let done = self.done.load(Ordering::Relaxed).min(self.total);
-        let filled = if self.total == 0 { WIDTH } else { done * WIDTH / self.total };
+        let filled = (done * WIDTH).checked_div(self.total).unwrap_or(WIDTH);
         let bar: String = "#".repeat(filled) + &"-".repeat(WIDTH - filled);
         let mut err = std::io::stderr().lock();
         let _ = write!(err, "\r{label} [{bar}] {done}/{}", self.total);

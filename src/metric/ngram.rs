@@ -172,7 +172,7 @@ fn home_slots(items: usize) -> usize {
 /// The home slot of `key` among `home` slots.
 #[inline(always)]
 fn home(key: u64, home: usize) -> usize {
-    ((slot_hash(key) >> 32) * home as u64 >> 32) as usize
+    (((slot_hash(key) >> 32) * home as u64) >> 32) as usize
 }
 
 /// Entries of a table of `positions` positions, `items` distinct items, for `order`.
@@ -250,7 +250,7 @@ impl GramBuilder {
         };
         let w = |v: u32| if v == NONE { W::of(W::MAX) } else { W::of(v as usize) };
         data.extend(self.item.iter().map(|&v| w(v)));
-        data.extend(std::iter::repeat(W::of(W::MAX)).take(order));
+        data.extend(std::iter::repeat_n(W::of(W::MAX), order));
         let next_at = data.len();
         data.resize(next_at + (order - 1) * (p + 1), W::of(d));
         let count_at = data.len();

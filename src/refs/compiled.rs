@@ -54,7 +54,7 @@ impl Sequences {
         self.start.push(start as u32);
         self.seq.extend(ids);
         self.len.push((self.seq.len() - start) as u32);
-        self.seq.extend(std::iter::repeat(0).take(self.pad));
+        self.seq.extend(std::iter::repeat_n(0, self.pad));
     }
     fn range(&self, r: usize) -> std::ops::Range<usize> {
         let s = self.start[r] as usize;
@@ -352,6 +352,7 @@ fn packed_orders<K: PackedBufs>(
 
 /// Matches of orders 1..=`order` by packed keys in the narrowest type that holds items up to
 /// `max`; false (and nothing written) when none does.
+#[allow(clippy::too_many_arguments)]
 fn packed_counts(
     order: usize,
     max: u32,
@@ -757,7 +758,7 @@ out: &mut SegmentStats,
         s.hyp_words.clear();
         s.hyp_words.extend(s.lower.split(is_space).filter(|w| !w.is_empty()).map(|w| t.words.get(w.as_bytes())));
         hyp_words = s.hyp_words.len();
-        s.hyp_words.extend(std::iter::repeat(0).take(w_order));
+        s.hyp_words.extend(std::iter::repeat_n(0, w_order));
         sort_positions(&s.hyp_words, hyp_words, w_order, &mut s.hyp_word_pos);
     }
     let mut best = Best::new(out);
@@ -815,7 +816,7 @@ impl Best {
 fn char_codes(text: &str, pad: usize, out: &mut Vec<u32>) {
     out.clear();
     out.extend(text.chars().filter(|&c| !is_space(c)).map(|c| c as u32 + 1));
-    out.extend(std::iter::repeat(0).take(pad));
+    out.extend(std::iter::repeat_n(0, pad));
 }
 
 /// Fill matches / hyp / reference counts of orders 1..=order.

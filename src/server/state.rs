@@ -72,7 +72,7 @@ pub struct Pending {
 /// A batch handed to [`commit`]: its effect, or the answer to wait for.
 pub enum Committing {
     /// Applied already (in memory).
-    Done(Option<Applied>),
+    Done(Box<Option<Applied>>),
     /// Queued for the group commit.
     Waiting(tokio::sync::oneshot::Receiver<Result<Option<Applied>>>),
 }
@@ -81,7 +81,7 @@ impl Committing {
     /// The batch's effect once applied (and durable); None for a duplicate.
     pub async fn wait(self, state: &State) -> Result<Option<Applied>> {
         match self {
-            Committing::Done(effect) => Ok(effect),
+            Committing::Done(effect) => Ok(*effect),
             Committing::Waiting(rx) => rx.await.map_err(|_| state.failed().map_or(ServiceError::ShuttingDown, ServiceError::StoreFailed))?,
         }
     }
@@ -151,7 +151,7 @@ impl State {
     pub fn submit_batch(&self, batch: Pending) -> Result<Committing> {
         let Some(tx) = &self.inner.committer else {
             let effects = commit(Some(&self.inner), None, std::slice::from_ref(&batch)).map_err(|e| ServiceError::StoreFailed(e.to_string()))?;
-            return Ok(Committing::Done(effects.into_iter().next().flatten()));
+            return Ok(Committing::Done(Box::new(effects.into_iter().next().flatten())));
         };
         let (reply, rx) = tokio::sync::oneshot::channel();
         let sent = tx.lock().unwrap_or_else(|e| e.into_inner()).send(CommitRequest { batch, reply });

@@ -158,6 +158,8 @@ pub struct SessionSpec {
 }
 
 /// How one item of a batch came out.
+// Nearly every outcome is `Scored`: boxing its statistics would allocate once per item.
+#[allow(clippy::large_enum_variant)]
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Outcome {
     /// Scored against segment `index` (of the set, or of the source index when `by_source`).
