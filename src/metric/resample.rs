@@ -158,30 +158,32 @@ pub struct ReplicateMismatch;
 
 /// Per replicate, the weighted sums of the configured integer statistics (only the fields the
 /// configuration uses, as the `recent` window keeps them) and the sum of the weights.
+///
+/// Stored field-major: the R sums of one field are contiguous, so adding a segment is, per
+/// field the segment has non-zero, one pass of `sum[r] += value * weight[r]` over the
+/// replicates (vectorised; fields that are zero, often the higher BLEU orders, cost nothing).
 #[derive(Debug, Clone)]
 pub struct Replicates {
     config: ScoreConfig,
     layout: Layout,
     seed: u64,
     resamples: usize,
-    /// `resamples` rows of `layout.width()` values.
+    /// `layout.width() + 1` fields of `resamples` sums each; the last field is the summed weight
+    /// (the replicate's segment count).
     sums: Vec<u64>,
-    /// Per replicate, the summed weights (the replicate's segment count).
-    weights: Vec<u64>,
     scratch: Scratch,
 }
 
 #[derive(Debug, Clone, Default)]
 struct Scratch {
     weights: Vec<u8>,
+    wide: Vec<u32>,
     row: Vec<u64>,
-    /// The row times 1..=MAX_WEIGHT, one after the other.
-    multiples: Vec<u64>,
 }
 
 impl PartialEq for Replicates {
     fn eq(&self, o: &Self) -> bool {
-        self.same_kind(o) && self.sums == o.sums && self.weights == o.weights
+        self.same_kind(o) && self.sums == o.sums
     }
 }
 
@@ -191,15 +193,7 @@ impl Replicates {
     /// Empty sums of `resamples` replicates (0: none, no interval) for `config` under `seed`.
     pub fn new(config: &ScoreConfig, resamples: usize, seed: u64) -> Replicates {
         let layout = Layout::new(config);
-        Replicates {
-            config: *config,
-            layout,
-            seed,
-            resamples,
-            sums: vec![0; resamples * layout.width()],
-            weights: vec![0; resamples],
-            scratch: Scratch::default(),
-        }
+        Replicates { config: *config, layout, seed, resamples, sums: vec![0; resamples * (layout.width() + 1)], scratch: Scratch::default() }
     }
 
     /// Replicates kept.
@@ -232,31 +226,26 @@ impl Replicates {
     }
 
     fn apply<const ADD: bool>(&mut self, key: u64, s: &SegmentStats) {
-        if self.resamples == 0 {
+        let r = self.resamples;
+        if r == 0 {
             return;
         }
-        let w = self.layout.width();
         let sc = &mut self.scratch;
         sc.row.clear();
         self.layout.encode(s, &mut sc.row);
-        sc.multiples.clear();
-        for k in 1..=u64::from(MAX_WEIGHT) {
-            sc.multiples.extend(sc.row.iter().map(|&v| v * k));
-        }
-        sc.weights.resize(self.resamples, 0);
+        sc.row.push(1);
+        sc.weights.resize(r, 0);
         fill_weights(key, self.seed, &mut sc.weights);
-        for ((dst, &k), total) in self.sums.chunks_exact_mut(w).zip(&sc.weights).zip(&mut self.weights) {
-            if k == 0 {
+        sc.wide.clear();
+        sc.wide.extend(sc.weights.iter().map(|&w| u32::from(w)));
+        for (dst, &x) in self.sums.chunks_exact_mut(r).zip(&sc.row) {
+            if x == 0 {
                 continue;
             }
-            let at = (usize::from(k) - 1) * w;
-            let m = &sc.multiples[at..at + w];
-            if ADD {
-                dst.iter_mut().zip(m).for_each(|(d, v)| *d += v);
-                *total += u64::from(k);
-            } else {
-                dst.iter_mut().zip(m).for_each(|(d, v)| *d -= v);
-                *total -= u64::from(k);
+            // Values that fit 32 bits (all real ones) take the 32 x 32 -> 64 bit multiply.
+            match u32::try_from(x) {
+                Ok(x) => weighted::<ADD>(dst, &sc.wide, |w| u64::from(x) * u64::from(w)),
+                Err(_) => weighted::<ADD>(dst, &sc.wide, |w| x * u64::from(w)),
             }
         }
     }
@@ -275,7 +264,7 @@ impl Replicates {
         if !self.same_kind(o) {
             return Err(ReplicateMismatch);
         }
-        for (a, b) in self.sums.iter_mut().zip(&o.sums).chain(self.weights.iter_mut().zip(&o.weights)) {
+        for (a, b) in self.sums.iter_mut().zip(&o.sums) {
             if add {
                 *a += b;
             } else {
@@ -288,9 +277,10 @@ impl Replicates {
     /// The statistics of replicate `r` (`segments` = its summed weights).
     pub fn replicate(&self, r: usize) -> CorpusStats {
         let w = self.layout.width();
+        let row: Vec<u64> = (0..w).map(|f| self.sums[f * self.resamples + r]).collect();
         let mut st = CorpusStats::default();
-        self.layout.fold(&self.sums[r * w..(r + 1) * w], &mut st, true);
-        st.segments = self.weights[r];
+        self.layout.fold(&row, &mut st, true);
+        st.segments = self.sums[w * self.resamples + r];
         st
     }
 
@@ -302,7 +292,8 @@ impl Replicates {
     /// The percentile interval of `m` at `level`; `None` without replicates, when `m` is not
     /// configured, or before any segment.
     pub fn interval(&self, m: Metric, level: f64) -> Option<Interval> {
-        if self.weights.iter().all(|&w| w == 0) {
+        let counts = &self.sums[self.layout.width() * self.resamples..];
+        if counts.iter().all(|&w| w == 0) {
             return None;
         }
         let (low, high) = percentile_interval(&mut self.scores(m)?, level)?;
@@ -311,7 +302,17 @@ impl Replicates {
 
     /// Heap bytes held by the sums.
     pub fn memory_bytes(&self) -> usize {
-        self.sums.capacity() * 8 + self.weights.capacity() * 8
+        self.sums.capacity() * 8
+    }
+}
+
+/// `dst[r] += term(weights[r])` (or `-=`) for every replicate r.
+#[inline(always)]
+fn weighted<const ADD: bool>(dst: &mut [u64], weights: &[u32], term: impl Fn(u32) -> u64) {
+    if ADD {
+        dst.iter_mut().zip(weights).for_each(|(d, &w)| *d += term(w));
+    } else {
+        dst.iter_mut().zip(weights).for_each(|(d, &w)| *d -= term(w));
     }
 }
 
