@@ -8,7 +8,7 @@ use std::sync::atomic::AtomicUsize;
 use std::sync::Arc;
 use std::time::Instant;
 
-use mtgauge::metric::resample::{segment_key, Replicates, DAEMON_RESAMPLES, DEFAULT_RESAMPLE_SEED, OFFLINE_RESAMPLES};
+use mtgauge::metric::resample::{fill_weights, segment_key, Replicates, DAEMON_RESAMPLES, DEFAULT_RESAMPLE_SEED, OFFLINE_RESAMPLES};
 use mtgauge::metric::{ScoreConfig, SegmentStats};
 use mtgauge::refs::compiled::{Compiled, Scratch};
 use mtgauge::refs::{RefSet, SegmentInput};
@@ -20,7 +20,7 @@ const DEFAULT_SEGMENTS: usize = 20_000;
 const VOCAB: u64 = 20_000;
 const MEAN_TOKENS: u32 = 25;
 /// Timed passes per variant; the fastest counts.
-const PASSES: usize = 3;
+const PASSES: usize = 5;
 
 fn word(mut k: u64) -> String {
     const SYL: [&str; 16] = ["ka", "lo", "mi", "nu", "pe", "ra", "su", "ti", "vo", "ze", "bri", "dol", "fen", "gat", "hus", "jor"];
@@ -91,6 +91,16 @@ fn main() {
             with / alone,
             (with - alone) / n as f64 * 1e6
         );
+    }
+    for r in [DAEMON_RESAMPLES, OFFLINE_RESAMPLES] {
+        let mut w = vec![0u8; r];
+        let t = best(&mut || {
+            for &k in &keys {
+                fill_weights(k, DEFAULT_RESAMPLE_SEED, &mut w);
+                sink = sink.wrapping_add(u64::from(w[r - 1]));
+            }
+        });
+        println!("  of which weights for {r:>4}       {:>10.1} us/segment", t / n as f64 * 1e6);
     }
     println!("  (checksum {sink})");
 }
