@@ -4,6 +4,7 @@
 
 use serde_json::{json, Map, Value};
 
+use crate::metric::resample::{Replicates, METHOD};
 use crate::metric::scores::Report;
 use crate::metric::{BleuScore, CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::RefSet;
@@ -116,6 +117,54 @@ pub fn stats_lines(stats: &CorpusStats, config: &ScoreConfig, indent: &str) -> V
             c.precision,
             c.recall
         ));
+    }
+    out
+}
+
+/// What an interval was asked for with: replicates, seed of the weights, level.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct IntervalSettings {
+    /// Replicates (at least 1).
+    pub resamples: usize,
+    /// Seed of the replicate weights.
+    pub seed: u64,
+    /// Confidence level, strictly between 0 and 1.
+    pub level: f64,
+}
+
+impl IntervalSettings {
+    /// The settings as JSON, for the `config` object (what reproduces the interval).
+    pub fn json(&self) -> Value {
+        json!({"level": self.level, "resamples": self.resamples, "method": METHOD, "seed": self.seed})
+    }
+}
+
+/// Add `interval` to each configured metric's object in `scores` (as made by [`stats_json`])
+/// and the settings to `config` (as made by [`config_json`]).
+pub fn intervals_json(scores: &mut Map<String, Value>, config: &mut Value, reps: &Replicates, set: &IntervalSettings) {
+    for m in reps.config().metric_list() {
+        if let (Some(Value::Object(o)), Some(i)) = (scores.get_mut(m.name()), reps.interval(m, set.level)) {
+            o.insert("interval".into(), serde_json::to_value(i).unwrap_or(Value::Null));
+        }
+    }
+    if let Value::Object(c) = config {
+        c.insert("interval".into(), set.json());
+    }
+}
+
+/// Human lines of the intervals: a heading with the method and settings, then one line per
+/// metric with its range.
+pub fn interval_lines(reps: &Replicates, set: &IntervalSettings, indent: &str) -> Vec<String> {
+    let mut out = vec![format!(
+        "{indent}{}% intervals (percentile, Poisson bootstrap over segments, {} resamples, seed {})",
+        (100.0 * set.level * 1e6).round() / 1e6,
+        set.resamples,
+        set.seed
+    )];
+    for m in reps.config().metric_list() {
+        if let Some(i) = reps.interval(m, set.level) {
+            out.push(format!("{indent}  {:<8}{:>6.2} .. {:.2}", m.title(), i.low, i.high));
+        }
     }
     out
 }

@@ -545,6 +545,77 @@ fn bad_option_values_fail_like_input_errors() {
 }
 
 // ---------------------------------------------------------------------------------------------
+// --interval
+// ---------------------------------------------------------------------------------------------
+
+/// `n` segments of invented words (a seeded LCG; common practice constants of Knuth's MMIX),
+/// hypotheses as noisy copies of the first reference.
+fn generated(n: usize) -> (Vec<String>, Vec<String>) {
+    const SYL: [&str; 12] = ["ka", "lo", "mi", "nu", "pe", "ra", "su", "ti", "vo", "ze", "bri", "dol"];
+    let mut x: u64 = 17;
+    let mut next = |m: u64| {
+        x = x.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        (x >> 33) % m
+    };
+    let (mut refs, mut hyps) = (Vec::new(), Vec::new());
+    for _ in 0..n {
+        let len = 3 + next(12) as usize;
+        let words: Vec<String> = (0..len).map(|_| format!("{}{}", SYL[next(12) as usize], SYL[next(12) as usize])).collect();
+        let hyp: Vec<String> = words.iter().map(|w| if next(10) < 3 { format!("{}{}", SYL[next(12) as usize], SYL[next(12) as usize]) } else { w.clone() }).collect();
+        refs.push(words.join(" "));
+        hyps.push(hyp.join(" "));
+    }
+    (refs, hyps)
+}
+
+#[test]
+fn interval_in_json_and_in_the_table() {
+    let dir = TempDir::new("interval");
+    let (refs, hyps) = generated(300);
+    let r = dir.file("ref.txt", refs.iter().map(|l| format!("{l}\n")).collect::<String>());
+    let h = dir.file("hyp.txt", hyps.iter().map(|l| format!("{l}\n")).collect::<String>());
+    let base = ["score", "--ref", &r, "--hyp", &h, "--json", "--metric", "bleu", "--metric", "chrf", "--metric", "chrf++"];
+    let plain = json_ok(&base, None);
+    let with = |extra: &[&str]| json_ok(&[&base[..], extra].concat(), None);
+    let j = with(&["--interval"]);
+    for m in ["bleu", "chrf", "chrf++"] {
+        let i = &j[m]["interval"];
+        let (score, low, high) = (f64_of(&j[m]["score"]), f64_of(&i["low"]), f64_of(&i["high"]));
+        // The point estimate is the one-shot path's, to the bit.
+        assert_eq!(j[m]["score"], plain[m]["score"], "{m}");
+        assert!(low < score && score < high, "{m}: {score} outside {i}");
+        assert!(high - low < 25.0, "{m}: 300 segments give a range of a few points: {i}");
+        assert_eq!(i["level"], 0.95);
+        assert_eq!(i["resamples"], 1000);
+        assert_eq!(i["seed"], 1);
+        assert_eq!(i["method"], "poisson-bootstrap-percentile");
+        assert!(plain[m].get("interval").is_none());
+    }
+    assert_eq!(j["config"]["interval"], serde_json::json!({"level": 0.95, "resamples": 1000, "method": "poisson-bootstrap-percentile", "seed": 1}));
+    // Deterministic, whatever the threads; the seed and the level change it.
+    assert_eq!(with(&["--interval", "--threads", "1"]), with(&["--interval", "--threads", "3"]));
+    let other = with(&["--interval", "--seed", "2", "--resamples", "200", "--level", "0.9"]);
+    assert_ne!(other["bleu"]["interval"]["low"], j["bleu"]["interval"]["low"]);
+    assert_eq!((other["bleu"]["interval"]["resamples"].as_u64(), other["config"]["interval"]["level"].as_f64()), (Some(200), Some(0.9)));
+    // 0 replicates: no interval at all.
+    assert_eq!(with(&["--interval", "--resamples", "0"]), plain);
+    // JSONL references with the ids plain files get (line numbers) give the same interval.
+    let jl: String = refs.iter().enumerate().map(|(i, t)| jsonl_record(Value::from(i + 1), None, &[t])).collect();
+    let jl = dir.file("refs.jsonl", jl);
+    let from_jsonl = json_ok(&["score", "--ref", &jl, "--hyp", &h, "--json", "--metric", "bleu", "--metric", "chrf", "--metric", "chrf++", "--interval"], None);
+    assert_eq!(from_jsonl["bleu"], j["bleu"]);
+    assert_eq!(from_jsonl["chrf++"], j["chrf++"]);
+    // The table shows the ranges.
+    let out = run(&["score", "--ref", &r, "--hyp", &h, "--interval"]);
+    let t = text(&out.stdout);
+    assert!(t.contains("95% intervals (percentile, Poisson bootstrap over segments, 1000 resamples, seed 1)"), "{t}");
+    let lo = format!("{:.2} .. {:.2}", f64_of(&j["bleu"]["interval"]["low"]), f64_of(&j["bleu"]["interval"]["high"]));
+    assert!(t.lines().any(|l| l.trim_start().starts_with("BLEU") && l.contains(&lo)), "{lo} in {t}");
+    assert_fails(&run(&["score", "--ref", &r, "--hyp", &h, "--interval", "--level", "1"]), &["--level"]);
+    assert_fails(&run(&["score", "--ref", &r, "--hyp", &h, "--interval", "--resamples", "20001"]), &["--resamples", "20000"]);
+}
+
+// ---------------------------------------------------------------------------------------------
 // demo and help
 // ---------------------------------------------------------------------------------------------
 

@@ -15,7 +15,9 @@ use serde_json::{json, Value};
 use super::demo::corpus::{generate, refset, Corpus};
 use super::{default_threads, CliError};
 use crate::metric::{BleuStats, MetricSpec, ScoreConfig, DEFAULT_CHRFPP_WORD_ORDER, DEFAULT_CHRF_CHAR_ORDER};
-use crate::refs::compiled::Compiled;
+use crate::metric::resample;
+use crate::metric::SegmentStats;
+use crate::refs::compiled::{Compiled, Scratch};
 use crate::text::Tokenizer;
 
 /// Segments in the generated corpus unless told.
@@ -26,6 +28,12 @@ pub const DEFAULT_BENCH_TOKENS: usize = 25;
 pub const DEFAULT_BENCH_VOCAB: usize = 20_000;
 /// The outside baselines run with `--baseline-python` (NLTK's corpus_bleu; a plain chrF).
 const BASELINE_SCRIPT: &str = include_str!("bench_baselines.py");
+/// Replicate counts whose cost `bench` measures: the daemon's and the offline default.
+const BENCH_RESAMPLES: [usize; 2] = [resample::DAEMON_RESAMPLES, resample::OFFLINE_RESAMPLES];
+/// Passes of each replicate-cost measurement (the fastest counts).
+const REPLICATE_PASSES: usize = 3;
+/// Corpus segments the replicate cost is measured on (at most).
+const REPLICATE_SEGMENTS: usize = 20_000;
 /// Runs of each end-to-end `mtgauge score` measurement (the fastest counts).
 const END_TO_END_RUNS: usize = 3;
 /// The chrF-family metrics the end-to-end rows time, with the orders the Python baseline gets.
@@ -55,6 +63,10 @@ the fastest and slowest of 3 runs on --threads threads. With --baseline-python, 
 baseline script reading the same files, splitting the lines and scoring (NLTK corpus_bleu for \
 BLEU, a plain Python chrF / chrF++; interpreter start and imports not counted), and the ratio of \
 that time over the fastest run (and over the slowest).
+  bootstrap replicates
+      the 1-thread BLEU+chrF scoring loop on up to 20,000 segments, alone and with every segment \
+also added to R replicate sums (R = 200, the daemon's, and 1000, `score --interval`'s default), as \
+segments/s and as the ratio of the time with replicates over the time alone.
   memory per segment
       bytes the reference set and the compiled tables keep per segment (1 and 2 references).";
 
@@ -131,6 +143,40 @@ fn throughput(compiled: &Compiled, hyps: &[&str], threads: usize) -> (f64, crate
     let done = AtomicUsize::new(0);
     let (corpus, secs) = time(|| compiled.score_corpus(hyps, threads, &done));
     (hyps.len() as f64 / secs, corpus)
+}
+
+/// What bootstrap replicates cost on top of scoring: segments/s of the 1-thread scoring loop
+/// of `compiled` over the corpus, alone and with every segment also added to R replicate sums
+/// (as `score --interval` and, later, a session add it), for each R of
+/// [`BENCH_RESAMPLES`]; the fastest of [`REPLICATE_PASSES`] passes counts.
+fn replicate_cost(compiled: &Compiled, config: &ScoreConfig, hyps: &[&str]) -> (f64, Vec<(usize, f64)>) {
+    let keys: Vec<u64> = compiled.refs().segments().map(|s| resample::segment_key(s.id().as_bytes())).collect();
+    let best = |f: &mut dyn FnMut()| (0..REPLICATE_PASSES).map(|_| time(&mut *f).1).fold(f64::INFINITY, f64::min);
+    let mut sink = 0u64;
+    let alone = best(&mut || {
+        let (mut scratch, mut one) = (Scratch::default(), SegmentStats::default());
+        for (i, h) in hyps.iter().enumerate() {
+            compiled.score_segment_into(i, h, &mut scratch, &mut one);
+            sink = sink.wrapping_add(one.bleu.hyp_len);
+        }
+    });
+    let with: Vec<(usize, f64)> = BENCH_RESAMPLES
+        .iter()
+        .map(|&r| {
+            let secs = best(&mut || {
+                let (mut scratch, mut one) = (Scratch::default(), SegmentStats::default());
+                let mut reps = resample::Replicates::new(config, r, resample::DEFAULT_RESAMPLE_SEED);
+                for (i, h) in hyps.iter().enumerate() {
+                    compiled.score_segment_into(i, h, &mut scratch, &mut one);
+                    reps.add(keys[i], &one);
+                }
+                sink = sink.wrapping_add(reps.replicate(0).segments);
+            });
+            (r, hyps.len() as f64 / secs)
+        })
+        .collect();
+    std::hint::black_box(sink);
+    (hyps.len() as f64 / alone, with)
 }
 
 /// The generated corpus written as line-aligned files (one reference) in a directory of its own,
@@ -245,6 +291,10 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
     let chrfpp = Compiled::build(Arc::clone(&set), config("chrf++", Tokenizer::Whitespace));
     let (chrfpp_1, _) = throughput(&chrfpp, &hyps, 1);
 
+    let interval_cfg = config("bleu chrf", Tokenizer::Whitespace);
+    let interval_compiled = Compiled::build(Arc::clone(&set), interval_cfg);
+    let (alone, with) = replicate_cost(&interval_compiled, &interval_cfg, &hyps[..hyps.len().min(REPLICATE_SEGMENTS)]);
+
     // Memory per segment with two references of about `tokens` tokens each.
     let two = generate(a.segments.min(20_000), a.tokens, a.vocab, 2, a.seed ^ 1);
     let two_set = Arc::new(refset(&two));
@@ -264,6 +314,12 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
         "chrf_segments_per_s_1_thread": chrf_1,
         "chrfpp_segments_per_s_1_thread": chrfpp_1,
         "baseline_hashmap_bleu_segments_per_s": naive,
+        "replicates": {
+            "metrics": interval_cfg.describe(),
+            "segments": hyps.len().min(REPLICATE_SEGMENTS),
+            "segments_per_s_alone": alone,
+            "with": with.iter().map(|(r, rate)| json!({ "resamples": r, "segments_per_s": rate, "time_ratio": alone / rate })).collect::<Vec<_>>(),
+        },
         "ratio_vs_hashmap_baseline_1_thread": bleu_1 / naive,
         "memory_bytes_per_segment_1_ref": {
             "refset": per_seg(set.memory_bytes(), set.len()),
@@ -367,6 +423,12 @@ fn human(f: &Value) -> String {
         }
         s += &(line + "\n");
     }
+    let r = &f["replicates"];
+    s += &format!("  bootstrap replicates ({} segments, BLEU+chrF, 1 thread): scoring alone {:.0} segments/s", r["segments"], g(r, "segments_per_s_alone"));
+    for w in r["with"].as_array().into_iter().flatten() {
+        s += &format!("; with {} replicates {:.0} segments/s ({:.2}x the time)", w["resamples"], g(w, "segments_per_s"), g(w, "time_ratio"));
+    }
+    s += "\n";
     let m1 = &f["memory_bytes_per_segment_1_ref"];
     let m2 = &f["memory_bytes_per_segment_2_refs"];
     s += &format!(

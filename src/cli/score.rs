@@ -9,11 +9,12 @@ use serde_json::{json, Value};
 
 use super::input::{display_name, parse_refset, read_all, read_bytes, resolve_format, Progress, RefFormat, PROGRESS_MIN_SEGMENTS};
 use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
+use crate::metric::resample::{self, Replicates};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::Compiled;
 use crate::refs::oneshot;
 use crate::refs::{check_same_length, split_lines, InputError, RefSet};
-use crate::report::{config_json, refset_json, segment_json, stats_json, stats_lines, RefSetSummary, PROXY_NOTE};
+use crate::report::{config_json, interval_lines, intervals_json, refset_json, segment_json, stats_json, stats_lines, IntervalSettings, RefSetSummary, PROXY_NOTE};
 
 pub(super) const LONG_ABOUT: &str = "\
 Score a hypothesis file against reference files, offline.
@@ -27,10 +28,13 @@ Examples:
   mtgauge score --ref refs.jsonl --hyp - --metric bleu --metric chrf++ --json < hyp.de.txt
   mtgauge score --ref ref.txt --hyp hyp.txt --per-segment segments.jsonl --metric bleu:smoothing=plus-one
   mtgauge score --ref ref.txt --hyp hyp.txt --tokenizer nist-unicode --caseless --metric chrf:chars=4,beta=1
+  mtgauge score --ref ref.txt --hyp hyp.txt --interval --resamples 2000 --seed 7
 
 Corpus BLEU is computed from summed statistics (clipped n-gram matches and totals, hypothesis \
 length, effective reference length), never averaged over sentences; chrF from summed per-order \
-statistics. Errors (unreadable file, invalid UTF-8, line-count mismatch, malformed JSONL) print \
+statistics. --interval adds a bootstrap percentile interval to each score: replicates that \
+reweight the segments by Poisson(1) weights, a fixed function of segment id, replicate and seed \
+(the same segment gets the same weights in every run). Errors (unreadable file, invalid UTF-8, line-count mismatch, malformed JSONL) print \
 one line naming the file and line, exit with code 2, and print nothing on stdout.";
 
 /// Arguments of `mtgauge score`.
@@ -56,6 +60,42 @@ pub struct ScoreArgs {
     /// Scoring threads (default: the number of CPUs). Results never depend on it.
     #[arg(long, value_name = "N")]
     pub threads: Option<usize>,
+    #[command(flatten)]
+    pub interval: IntervalArgs,
+}
+
+/// Options of the bootstrap interval (`--interval`).
+#[derive(Debug, Args)]
+pub struct IntervalArgs {
+    /// Also give each score a bootstrap confidence interval: the percentile interval over
+    /// replicates that reweight the segments by Poisson(1) weights drawn from the segment id.
+    #[arg(long)]
+    pub interval: bool,
+    /// Replicates for --interval (0: no interval).
+    #[arg(long, value_name = "N", default_value_t = resample::OFFLINE_RESAMPLES, requires = "interval")]
+    pub resamples: usize,
+    /// Seed of the replicate weights for --interval (same seed, same weights per segment id).
+    #[arg(long, value_name = "S", default_value_t = resample::DEFAULT_RESAMPLE_SEED, requires = "interval")]
+    pub seed: u64,
+    /// Confidence level of --interval, strictly between 0 and 1.
+    #[arg(long, value_name = "L", default_value_t = resample::DEFAULT_LEVEL, requires = "interval")]
+    pub level: f64,
+}
+
+impl IntervalArgs {
+    /// The checked settings; `None` when no interval is asked for (or 0 replicates).
+    fn settings(&self) -> Result<Option<IntervalSettings>, CliError> {
+        if !self.interval || self.resamples == 0 {
+            return Ok(None);
+        }
+        if self.resamples > resample::MAX_RESAMPLES {
+            return Err(CliError::Usage(format!("--resamples must be at most {}", resample::MAX_RESAMPLES)));
+        }
+        if !resample::valid_level(self.level) {
+            return Err(CliError::Usage("--level must be strictly between 0 and 1".into()));
+        }
+        Ok(Some(IntervalSettings { resamples: self.resamples, seed: self.seed, level: self.level }))
+    }
 }
 
 /// The outcome of scoring a file: the compiled references and per-segment statistics.
@@ -104,11 +144,13 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         return Err(CliError::Usage("--threads must be at least 1".into()));
     }
     let threads = a.threads.unwrap_or_else(default_threads);
-    let one_shot = a.per_segment.is_none() && resolve_format(&a.refs, a.ref_format) == crate::refs::RefFormat::Plain;
+    let interval = a.interval.settings()?;
+    // An interval needs each segment's statistics: the Compiled path.
+    let one_shot = a.per_segment.is_none() && interval.is_none() && resolve_format(&a.refs, a.ref_format) == crate::refs::RefFormat::Plain;
     let inputs = one_shot.then(|| (a.refs.iter().map(|p| Input::open(p)).collect::<Vec<_>>(), Input::open(&a.hyp)));
     let fast = inputs.as_ref().and_then(|(refs, hyp)| score_files(&config, refs, hyp, &a.hyp, threads));
-    let (corpus, refs) = match fast {
-        Some(scored) => (scored.stats, RefSetSummary { digest: scored.digest, segments: scored.segments, references: scored.references }),
+    let (corpus, refs, reps) = match fast {
+        Some(scored) => (scored.stats, RefSetSummary { digest: scored.digest, segments: scored.segments, references: scored.references }, None),
         None => {
             let (ref_inputs, hyp_input) = inputs.unzip();
             let ref_bytes = match ref_inputs {
@@ -120,17 +162,22 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
                 // The references are parsed before the hypothesis is read: their errors come first.
                 Err(e) => return Err(parse_refset(&a.refs, a.ref_format, &ref_bytes, None).err().unwrap_or(e).into()),
             };
-            score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads)?
+            score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads, interval)?
         }
     };
+    let reps = interval.zip(reps);
     let out = if a.json {
         let mut m = stats_json(&corpus, &config);
+        let mut c = config_json(&config);
+        if let Some((set, reps)) = &reps {
+            intervals_json(&mut m, &mut c, reps, set);
+        }
         m.insert("refset".into(), refset_json(None, &refs));
-        m.insert("config".into(), config_json(&config));
+        m.insert("config".into(), c);
         m.insert("note".into(), json!(PROXY_NOTE));
         serde_json::to_string_pretty(&Value::Object(m)).unwrap_or_default() + "\n"
     } else {
-        human(&corpus, &config, &refs)
+        human(&corpus, &config, &refs, reps.as_ref())
     };
     let mut stdout = std::io::stdout().lock();
     stdout
@@ -209,21 +256,35 @@ fn count_lines(mut r: impl Read) -> usize {
 
 /// The long way: the reference set parsed into a [`RefSet`], compiled and scored (per-segment
 /// output, JSONL references, and the wording of every input error).
-fn score_parsed(a: &ScoreArgs, config: ScoreConfig, ref_bytes: &[Vec<u8>], hyp_bytes: &[u8], threads: usize) -> Result<(CorpusStats, RefSetSummary), CliError> {
+/// With `interval`, also the replicate sums of the segments, keyed by segment id.
+fn score_parsed(
+    a: &ScoreArgs,
+    config: ScoreConfig,
+    ref_bytes: &[Vec<u8>],
+    hyp_bytes: &[u8],
+    threads: usize,
+    interval: Option<IntervalSettings>,
+) -> Result<(CorpusStats, RefSetSummary, Option<Replicates>), CliError> {
     let refs = Arc::new(parse_refset(&a.refs, a.ref_format, ref_bytes, None)?);
     let hyp_name = display_name(&a.hyp);
     let hyps = split_lines(hyp_name, hyp_bytes)?;
     check_same_length(hyp_name, hyps.len(), display_name(&a.refs[0]), refs.len())?;
     let show = stderr_is_terminal() && hyps.len() >= PROGRESS_MIN_SEGMENTS;
-    let corpus = match &a.per_segment {
-        Some(path) => {
+    let (corpus, reps) = match (&a.per_segment, interval) {
+        (None, None) => (score_corpus_lines(Arc::clone(&refs), config, &hyps, threads, show), None),
+        (path, interval) => {
             let scored = score_lines(Arc::clone(&refs), config, &hyps, threads, show);
-            write_per_segment(path, &scored)?;
-            scored.corpus()
+            if let Some(path) = path {
+                write_per_segment(path, &scored)?;
+            }
+            let reps = interval.map(|i| {
+                let keys: Vec<u64> = scored.refs.segments().take(scored.segments.len()).map(|s| resample::segment_key(s.id().as_bytes())).collect();
+                resample::accumulate(&config, i.resamples, i.seed, &keys, &scored.segments, threads)
+            });
+            (scored.corpus(), reps)
         }
-        None => score_corpus_lines(Arc::clone(&refs), config, &hyps, threads, show),
     };
-    Ok((corpus, RefSetSummary::from(refs.as_ref())))
+    Ok((corpus, RefSetSummary::from(refs.as_ref()), reps))
 }
 
 fn write_per_segment(path: &str, scored: &Scored) -> Result<(), CliError> {
@@ -237,7 +298,7 @@ fn write_per_segment(path: &str, scored: &Scored) -> Result<(), CliError> {
     w.flush().map_err(err)
 }
 
-fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSetSummary) -> String {
+fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSetSummary, reps: Option<&(IntervalSettings, Replicates)>) -> String {
     let per = refs.references as f64 / refs.segments.max(1) as f64;
     let digest = crate::refs::hex(&refs.digest);
     let mut lines = vec![format!(
@@ -247,6 +308,9 @@ fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSetSummary) -> St
         &digest[..16]
     )];
     lines.extend(stats_lines(corpus, config, "  "));
+    if let Some((set, reps)) = reps {
+        lines.extend(interval_lines(reps, set, "  "));
+    }
     lines.push(format!("  config  {}", config.describe()));
     lines.push(PROXY_NOTE.to_owned());
     lines.join("\n") + "\n"

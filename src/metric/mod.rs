@@ -5,13 +5,17 @@
 //!   sentence-level smoothing after Chen & Cherry 2014.
 //! - [`chrf`]: Popović 2015 (chrF) and 2017 (chrF++): character (and word) n-gram F-score.
 //! - [`ngram`]: the exact n-gram counting both use (packed integer keys, gram tables).
+//! - [`resample`]: bootstrap replicates (Poisson weights per segment, weighted integer sums)
+//!   and the percentile intervals derived from them.
 //! - [`scores`]: every score of a corpus or a segment under a configuration, derived in one place
 //!   for all outputs.
 
 pub mod bleu;
 pub mod chrf;
 mod config;
+pub(crate) mod layout;
 pub mod ngram;
+pub mod resample;
 pub mod scores;
 
 pub use bleu::{BleuScore, BleuStats, RefLength, Smoothing, TokenCounts};
