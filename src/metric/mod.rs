@@ -81,6 +81,20 @@ impl CorpusStats {
         self.chrfpp += s.chrfpp;
     }
 
+    /// [`CorpusStats::add_segment`] for the parts a configuration scores: BLEU when `bleu`, chrF
+    /// and chrF++ when `chrf` (the other parts of `s` are zero, so skipping them changes nothing).
+    #[inline]
+    pub fn add_scored_parts(&mut self, s: &SegmentStats, bleu: bool, chrf: bool) {
+        self.segments += 1;
+        if bleu {
+            self.bleu += s.bleu;
+        }
+        if chrf {
+            self.chrf += s.chrf;
+            self.chrfpp += s.chrfpp;
+        }
+    }
+
     /// Remove what [`CorpusStats::add_segment`] added (for sliding windows).
     pub fn sub_segment(&mut self, s: &SegmentStats) {
         self.segments -= 1;

@@ -562,14 +562,7 @@ impl Compiled {
                 let (bleu, chrf) = (self.bleu.is_some(), self.config.any_chrf());
                 for (i, h) in chunk.iter().enumerate() {
                     self.score_configured(base + i, h, &mut scratch, &mut one);
-                    sum.segments += 1;
-                    if bleu {
-                        sum.bleu += one.bleu;
-                    }
-                    if chrf {
-                        sum.chrf += one.chrf;
-                        sum.chrfpp += one.chrfpp;
-                    }
+                    sum.add_scored_parts(&one, bleu, chrf);
                 }
                 done.fetch_add(chunk.len(), Ordering::Relaxed);
             }

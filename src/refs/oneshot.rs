@@ -645,14 +645,7 @@ pub fn score_readers<R: Read + Send>(cfg: &ScoreConfig, refs: Vec<R>, hyp: R, th
                     return sum;
                 }
                 score_configured(cfg, &texts[1..], texts[0], &mut s, &mut one);
-                sum.segments += 1;
-                if bleu {
-                    sum.bleu += one.bleu;
-                }
-                if chrf {
-                    sum.chrf += one.chrf;
-                    sum.chrfpp += one.chrfpp;
-                }
+                sum.add_scored_parts(&one, bleu, chrf);
             }
             done.fetch_add(lines, Ordering::Relaxed);
         }
