@@ -75,7 +75,7 @@ async fn snapshot(ch: &Channel) -> Snapshot {
     sessions.sort_by(|a, b| a.name.cmp(&b.name));
     let mut scores = Vec::new();
     for s in &sessions {
-        let mut r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: s.name.clone() }).await.expect("get scores").into_inner();
+        let mut r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: s.name.clone(), ..Default::default() }).await.expect("get scores").into_inner();
         r.unix_time = 0;
         scores.push(r);
     }
@@ -133,6 +133,7 @@ fn create_req(name: &str, refset: &str, labels: &[(&str, &str)]) -> pb::CreateSe
         labels: labels.iter().map(|(k, v)| (k.to_string(), v.to_string())).collect(),
         window: 20,
         if_not_exists: false,
+        ..Default::default()
     }
 }
 
@@ -234,7 +235,7 @@ async fn api_bad_inputs_get_clear_statuses_and_change_nothing() {
         sessions.create(create_req("blank-probe", "blank", &[])).await.expect("session on the set with an empty reference");
         let ack = scoring.submit(batch("blank-probe", "", 0, vec![by_id("2", "Die Boje treibt."), by_id("2", ""), by_id("3", "Ebbe kommt um drei.")])).await.unwrap().into_inner();
         assert_eq!((ack.scored, ack.unknown, ack.rejected), (3, 0, 0), "{what}: {ack:?}");
-        let rep = scoring.get_scores(pb::GetScoresRequest { session: "blank-probe".into() }).await.unwrap().into_inner();
+        let rep = scoring.get_scores(pb::GetScoresRequest { session: "blank-probe".into(), ..Default::default() }).await.unwrap().into_inner();
         let cum = rep.cumulative.unwrap();
         // Segment 2's reference has no token: the effective reference length is 0 + 0 + 5
         // ("Ebbe kommt um drei ." of segment 3).
@@ -253,9 +254,9 @@ async fn api_bad_inputs_get_clear_statuses_and_change_nothing() {
     table.add("Sessions/Reset 'ghost'", out);
     let out = failed("Close ghost", sessions.close(pb::CloseSessionRequest { name: "ghost".into() }).await, Code::NotFound, &[ghost]);
     table.add("Sessions/Close 'ghost'", out);
-    let out = failed("GetScores ghost", scoring.get_scores(pb::GetScoresRequest { session: "ghost".into() }).await, Code::NotFound, &[ghost]);
+    let out = failed("GetScores ghost", scoring.get_scores(pb::GetScoresRequest { session: "ghost".into(), ..Default::default() }).await, Code::NotFound, &[ghost]);
     table.add("Scoring/GetScores 'ghost'", out);
-    let out = failed("WatchScores ghost", scoring.watch_scores(pb::WatchScoresRequest { session: "ghost".into(), interval_seconds: 1 }).await, Code::NotFound, &[ghost]);
+    let out = failed("WatchScores ghost", scoring.watch_scores(pb::WatchScoresRequest { session: "ghost".into(), interval_seconds: 1, ..Default::default() }).await, Code::NotFound, &[ghost]);
     table.add("Scoring/WatchScores 'ghost'", out);
     let out = failed("Submit ghost", scoring.submit(batch("ghost", "p", 1, vec![by_id("notice-0001", "Hunde an Deck.")])).await, Code::NotFound, &[ghost]);
     table.add("Scoring/Submit to 'ghost'", out);

@@ -112,7 +112,7 @@ async fn crash_round(seed: u64) {
     let mut server = Server::start(&args);
     let ch = server.wait_serving().await;
     SessionsClient::new(ch.clone())
-        .create(pb::CreateSessionRequest { name: "crash".into(), refset: "ferry".into(), config: Some(config_to_pb(&config())), labels: Default::default(), window: 100, if_not_exists: true })
+        .create(pb::CreateSessionRequest { name: "crash".into(), refset: "ferry".into(), config: Some(config_to_pb(&config())), labels: Default::default(), window: 100, if_not_exists: true, ..Default::default() })
         .await
         .unwrap();
 
@@ -154,12 +154,14 @@ async fn crash_round(seed: u64) {
     for ((h, _), b) in after.iter().zip(&plan) {
         assert_eq!(*h as usize, b.len(), "every batch acknowledged on the re-run");
     }
-    let report = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "crash".into() }).await.unwrap().into_inner();
+    let report = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "crash".into(), ..Default::default() }).await.unwrap().into_inner();
     let got = stats_from_pb(report.cumulative.as_ref().unwrap());
     let want = offline(&plan);
     assert_eq!(got, want, "final statistics equal the offline engine's (seed {seed})");
     assert_eq!(got.segments, 1800);
     assert_eq!(stats_from_pb(report.recent.as_ref().unwrap()).segments, 100);
+    assert!(report.cumulative.as_ref().and_then(|t| t.bleu.as_ref()).is_some_and(|b| b.interval.is_some()), "the replicate sums are rebuilt after a kill");
+    assert!(report.interval_note.is_empty(), "{}", report.interval_note);
     eprintln!("crash round seed {seed}: killed after {acked_before} of {total_batches} batches acknowledged; final statistics equal the offline engine's ({} segments, BLEU {:.4})", got.segments, got.bleu.score(4).score);
 }
 
@@ -181,14 +183,14 @@ async fn restart_restores_sessions_refsets_and_windows() {
     let load = pb::LoadRefSetRequest { name: "ferry".into(), format: pb::RefFormat::Jsonl as i32, paths: vec!["refs.jsonl".into()], source_path: String::new(), replace: false };
     pb::ref_sets_client::RefSetsClient::new(ch.clone()).load(load).await.unwrap();
     let labels = [("model".to_string(), "v7".to_string())].into_iter().collect();
-    SessionsClient::new(ch.clone()).create(pb::CreateSessionRequest { name: "keep".into(), refset: "ferry".into(), config: Some(config_to_pb(&config())), labels, window: 7, if_not_exists: false }).await.unwrap();
+    SessionsClient::new(ch.clone()).create(pb::CreateSessionRequest { name: "keep".into(), refset: "ferry".into(), config: Some(config_to_pb(&config())), labels, window: 7, if_not_exists: false, ..Default::default() }).await.unwrap();
     let plan = plan(9);
     let mut first: Vec<pb::ScoreBatch> = plan[0].clone();
     for b in &mut first {
         b.session = "keep".into();
     }
     run_producers(&ch, &[first.clone()], Arc::new(AtomicU64::new(0))).await;
-    let before = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "keep".into() }).await.unwrap().into_inner();
+    let before = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "keep".into(), ..Default::default() }).await.unwrap().into_inner();
     let mut server = server;
     assert!(server.terminate().success());
     // A second server on the same directory while the first runs is refused.
@@ -197,8 +199,10 @@ async fn restart_restores_sessions_refsets_and_windows() {
     let busy = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["serve", "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0", "--data-dir", &data_s]).output().unwrap();
     assert_eq!(busy.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&busy.stderr).contains("in use by another process"), "{}", String::from_utf8_lossy(&busy.stderr));
-    let after = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "keep".into() }).await.unwrap().into_inner();
-    assert_eq!(after.cumulative, before.cumulative, "cumulative statistics survive a restart");
+    let after = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "keep".into(), ..Default::default() }).await.unwrap().into_inner();
+    let bleu_interval = |t: &Option<pb::Totals>| t.as_ref().and_then(|t| t.bleu.as_ref()).and_then(|b| b.interval.clone());
+    assert!(bleu_interval(&before.cumulative).is_some() && bleu_interval(&before.recent).is_some(), "intervals by default");
+    assert_eq!(after.cumulative, before.cumulative, "cumulative statistics survive a restart (intervals included)");
     assert_eq!(after.recent, before.recent, "the window survives a restart");
     assert_eq!((after.unknown, after.refset_digest.clone()), (before.unknown, before.refset_digest.clone()));
     let info = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "keep".into() }).await.unwrap().into_inner();
@@ -230,7 +234,7 @@ async fn a_store_that_cannot_be_written_stops_the_server_and_keeps_what_was_ackn
         let mut server = Server::start(&args);
         let ch = server.wait_serving().await;
         // A window as large as allowed: every scored segment adds a stored row.
-        let create = pb::CreateSessionRequest { name: "full".into(), refset: "ferry".into(), config: Some(config_to_pb(&config)), labels: Default::default(), window: mtgauge::session::MAX_WINDOW as u32, if_not_exists: false };
+        let create = pb::CreateSessionRequest { name: "full".into(), refset: "ferry".into(), config: Some(config_to_pb(&config)), labels: Default::default(), window: mtgauge::session::MAX_WINDOW as u32, if_not_exists: false, ..Default::default() };
         SessionsClient::new(ch.clone()).create(create).await.unwrap();
         assert!(server.terminate().success());
     }
@@ -291,7 +295,7 @@ async fn a_store_that_cannot_be_written_stops_the_server_and_keeps_what_was_ackn
         sum
     };
     let mut scoring = ScoringClient::new(ch.clone());
-    let got = scoring.get_scores(pb::GetScoresRequest { session: "full".into() }).await.unwrap().into_inner();
+    let got = scoring.get_scores(pb::GetScoresRequest { session: "full".into(), ..Default::default() }).await.unwrap().into_inner();
     assert_eq!(stats_from_pb(got.cumulative.as_ref().unwrap()), want, "after {acked} acknowledged batches");
     let again = scoring.submit(batch(acked + 1)).await.unwrap().into_inner();
     assert!(!again.duplicate && again.scored == 50, "the refused batch was never applied: {again:?}");

@@ -38,11 +38,11 @@ fn offline(items: &[(usize, String)], config: ScoreConfig) -> CorpusStats {
 async fn create(ch: &tonic::transport::Channel, name: &str, refset: &str, config: ScoreConfig) -> pb::SessionInfo {
     let mut s = SessionsClient::new(ch.clone());
     let labels = [("model".to_string(), "v7".to_string())].into_iter().collect();
-    s.create(pb::CreateSessionRequest { name: name.into(), refset: refset.into(), config: Some(config_to_pb(&config)), labels, window: 50, if_not_exists: false }).await.expect("create session").into_inner()
+    s.create(pb::CreateSessionRequest { name: name.into(), refset: refset.into(), config: Some(config_to_pb(&config)), labels, window: 50, if_not_exists: false, ..Default::default() }).await.expect("create session").into_inner()
 }
 
 async fn scores(ch: &tonic::transport::Channel, session: &str) -> pb::ScoresReport {
-    ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: session.into() }).await.expect("get scores").into_inner()
+    ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: session.into(), ..Default::default() }).await.expect("get scores").into_inner()
 }
 
 fn item(by_source: bool, seg: usize, hyp: &str) -> pb::ScoreItem {
@@ -208,7 +208,7 @@ async fn lifecycle_unknown_reset_close_replace_watch() {
     assert_eq!((ack.scored, ack.unknown, ack.rejected), (2, 2, 0));
 
     // Watch: a report per interval.
-    let mut watch = scoring.watch_scores(pb::WatchScoresRequest { session: "old".into(), interval_seconds: 1 }).await.unwrap().into_inner();
+    let mut watch = scoring.watch_scores(pb::WatchScoresRequest { session: "old".into(), interval_seconds: 1, ..Default::default() }).await.unwrap().into_inner();
     let first = watch.message().await.unwrap().unwrap();
     assert_eq!(first.cumulative.unwrap().segments, 2);
 
@@ -238,7 +238,7 @@ async fn lifecycle_unknown_reset_close_replace_watch() {
 
     // Close: gone, and the watch ends with NOT_FOUND.
     SessionsClient::new(ch.clone()).close(pb::CloseSessionRequest { name: "old".into() }).await.unwrap();
-    let err = scoring.get_scores(pb::GetScoresRequest { session: "old".into() }).await.unwrap_err();
+    let err = scoring.get_scores(pb::GetScoresRequest { session: "old".into(), ..Default::default() }).await.unwrap_err();
     assert_eq!(err.code(), Code::NotFound);
     loop {
         match watch.message().await {
@@ -290,7 +290,7 @@ async fn bad_requests_get_precise_statuses() {
     assert_eq!(code(refsets.load(load("bad name", "refs.jsonl")).await), Code::InvalidArgument);
     assert_eq!(code(refsets.describe(pb::DescribeRefSetRequest { name: "nope".into() }).await), Code::NotFound);
 
-    let req = |name: &str, refset: &str| pb::CreateSessionRequest { name: name.into(), refset: refset.into(), config: None, labels: Default::default(), window: 0, if_not_exists: false };
+    let req = |name: &str, refset: &str| pb::CreateSessionRequest { name: name.into(), refset: refset.into(), config: None, labels: Default::default(), window: 0, if_not_exists: false, ..Default::default() };
     assert_eq!(code(sessions.create(req("v7", "nope")).await), Code::NotFound);
     for bad in ["", "a b", "quote\"d", "new\nline", &"x".repeat(65)] {
         assert_eq!(code(sessions.create(req(bad, "ferry")).await), Code::InvalidArgument, "{bad:?}");
@@ -417,16 +417,20 @@ async fn send_twice_counts_once_and_status_matches_score() {
     let status = mtgauge(&["status", "--server", &server.grpc, "--session", "v7", "--json"]);
     assert!(status.status.success(), "{}", String::from_utf8_lossy(&status.stderr));
     let st: serde_json::Value = serde_json::from_slice(&status.stdout).unwrap();
-    let score = mtgauge(&["score", "--ref", refs.to_str().unwrap(), "--hyp", &p("hyp.model-v7.de.txt"), "--json"]);
+    // The daemon's default replicates (200, seed 1) weigh each segment as `score --interval`
+    // does with the same settings (weights keyed by segment id): the intervals are equal.
+    let score = mtgauge(&["score", "--ref", refs.to_str().unwrap(), "--hyp", &p("hyp.model-v7.de.txt"), "--json", "--interval", "--resamples", "200", "--seed", "1"]);
     let sc: serde_json::Value = serde_json::from_slice(&score.stdout).unwrap();
     let cum = &st["cumulative"];
     assert_eq!(cum["segments"], sc["segments"]);
-    assert_eq!(cum["bleu"], sc["bleu"], "status cumulative has score --json's BLEU fields and values");
+    assert_eq!(cum["bleu"], sc["bleu"], "status cumulative has score --json's BLEU fields and values, interval included");
+    assert!(cum["bleu"]["interval"]["low"].as_f64().unwrap() < cum["bleu"]["score"].as_f64().unwrap());
     assert_eq!(cum["chrf"], sc["chrf"]);
     assert_eq!(st["config"], sc["config"]);
     assert_eq!(st["refset"]["digest"], sc["refset"]["digest"]);
     assert_eq!(st["refset"]["name"], "ferry");
     assert_eq!(st["recent"]["segments"], 300);
+    assert_eq!(st["recent"]["bleu"]["interval"], cum["bleu"]["interval"], "the window holds every segment: the same interval");
 
     // Human status and an unknown session.
     let human = mtgauge(&["status", "--server", &server.grpc]);
@@ -480,7 +484,7 @@ async fn each_limit_is_enforced_and_named() {
     assert!(m.contains("limits.max_refsets") && m.contains("3 reference sets"), "{m}");
 
     let mut sessions = SessionsClient::new(ch.clone());
-    let req = |name: &str| pb::CreateSessionRequest { name: name.into(), refset: "a".into(), config: None, labels: Default::default(), window: 0, if_not_exists: false };
+    let req = |name: &str| pb::CreateSessionRequest { name: name.into(), refset: "a".into(), config: None, labels: Default::default(), window: 0, if_not_exists: false, ..Default::default() };
     sessions.create(req("s1")).await.unwrap();
     sessions.create(req("s2")).await.unwrap();
     let m = limit_of(sessions.create(req("s3")).await.unwrap_err());
@@ -509,8 +513,8 @@ async fn each_limit_is_enforced_and_named() {
     drop(tx2);
 
     // Watchers: one at a time.
-    let _w = scoring.watch_scores(pb::WatchScoresRequest { session: "s1".into(), interval_seconds: 1 }).await.unwrap();
-    let m = limit_of(scoring.watch_scores(pb::WatchScoresRequest { session: "s1".into(), interval_seconds: 1 }).await.unwrap_err());
+    let _w = scoring.watch_scores(pb::WatchScoresRequest { session: "s1".into(), interval_seconds: 1, ..Default::default() }).await.unwrap();
+    let m = limit_of(scoring.watch_scores(pb::WatchScoresRequest { session: "s1".into(), interval_seconds: 1, ..Default::default() }).await.unwrap_err());
     assert!(m.contains("limits.max_watchers"), "{m}");
 }
 

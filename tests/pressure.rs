@@ -162,13 +162,13 @@ async fn silent_connections_are_closed_and_live_idle_clients_stay() {
 
 async fn create_session(ch: &Channel, name: &str) {
     SessionsClient::new(ch.clone())
-        .create(pb::CreateSessionRequest { name: name.into(), refset: "ferry".into(), config: None, labels: Default::default(), window: 0, if_not_exists: false })
+        .create(pb::CreateSessionRequest { name: name.into(), refset: "ferry".into(), config: None, labels: Default::default(), window: 0, if_not_exists: false, ..Default::default() })
         .await
         .expect("create session");
 }
 
 async fn report(ch: &Channel, session: &str) -> pb::ScoresReport {
-    ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: session.into() }).await.unwrap().into_inner()
+    ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: session.into(), ..Default::default() }).await.unwrap().into_inner()
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -243,8 +243,8 @@ async fn a_subscriber_that_stops_reading_skips_reports_instead_of_queueing_them(
     // A subscriber with a tiny HTTP/2 receive window: once a report or two are in flight, the
     // server cannot send it more until it reads.
     let slow_ch = Endpoint::from_shared(server.grpc.clone()).unwrap().initial_stream_window_size(256).initial_connection_window_size(65_535).connect().await.unwrap();
-    let mut slow = ScoringClient::new(slow_ch).watch_scores(pb::WatchScoresRequest { session: "w".into(), interval_seconds: 1 }).await.unwrap().into_inner();
-    let mut fast = ScoringClient::new(ch.clone()).watch_scores(pb::WatchScoresRequest { session: "w".into(), interval_seconds: 1 }).await.unwrap().into_inner();
+    let mut slow = ScoringClient::new(slow_ch).watch_scores(pb::WatchScoresRequest { session: "w".into(), interval_seconds: 1, ..Default::default() }).await.unwrap().into_inner();
+    let mut fast = ScoringClient::new(ch.clone()).watch_scores(pb::WatchScoresRequest { session: "w".into(), interval_seconds: 1, ..Default::default() }).await.unwrap().into_inner();
 
     // Traffic while the slow one does not read: one batch per report the fast one receives.
     let segs = demo_segments();
@@ -344,7 +344,7 @@ async fn send_rides_out_a_server_restart() {
     let mut counted = 0;
     let deadline = Instant::now() + WAIT;
     while counted == 0 {
-        if let Ok(r) = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "retry".into() }).await {
+        if let Ok(r) = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "retry".into(), ..Default::default() }).await {
             counted = r.into_inner().cumulative.unwrap().segments;
         }
         assert!(Instant::now() < deadline, "send never delivered");

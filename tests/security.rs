@@ -151,7 +151,7 @@ async fn tokens_scopes_and_secrecy() {
         }
         req
     };
-    let create = || tonic::Request::new(pb::CreateSessionRequest { name: "s".into(), refset: "ferry".into(), config: None, labels: Default::default(), window: 0, if_not_exists: true });
+    let create = || tonic::Request::new(pb::CreateSessionRequest { name: "s".into(), refset: "ferry".into(), config: None, labels: Default::default(), window: 0, if_not_exists: true, ..Default::default() });
     let mut sessions = SessionsClient::new(ch.clone());
     let e = sessions.create(with(None, create())).await.unwrap_err();
     assert_eq!(e.code(), Code::Unauthenticated);
@@ -170,7 +170,7 @@ async fn tokens_scopes_and_secrecy() {
     let mut r = tonic::Request::new(batch());
     r.metadata_mut().insert("authorization", format!("Bearer {submit}").parse().unwrap());
     assert_eq!(scoring.submit(r).await.unwrap().into_inner().scored, 1);
-    let mut r = tonic::Request::new(pb::GetScoresRequest { session: "s".into() });
+    let mut r = tonic::Request::new(pb::GetScoresRequest { session: "s".into(), ..Default::default() });
     r.metadata_mut().insert("authorization", format!("Bearer {read}").parse().unwrap());
     assert_eq!(scoring.get_scores(r).await.unwrap().into_inner().cumulative.unwrap().segments, 1);
     // Health stays open for probes.

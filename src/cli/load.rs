@@ -61,6 +61,10 @@ pub struct LoadArgs {
     /// `score --metric`.
     #[arg(long = "metric", default_value = "bleu", value_name = "SPEC")]
     pub metrics: Vec<String>,
+    /// Bootstrap replicates the load session keeps for its intervals (0: none; run once with
+    /// and once without to see their cost).
+    #[arg(long, default_value_t = crate::metric::resample::DAEMON_RESAMPLES, value_name = "N")]
+    pub resamples: usize,
     /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
@@ -139,7 +143,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         log(format!("uploading the reference set as '{name}'"));
         upload(&ch, &name, &corpus).await?;
         SessionsClient::new(ch.clone())
-            .create(pb::CreateSessionRequest { name: name.clone(), refset: name.clone(), config: Some(config_to_pb(&config)), labels: Default::default(), window: 0, if_not_exists: false })
+            .create(pb::CreateSessionRequest { name: name.clone(), refset: name.clone(), config: Some(config_to_pb(&config)), labels: Default::default(), window: 0, if_not_exists: false, resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: None }) })
             .await
             .map_err(|s| ClientError::call("create session", s))?;
         log(format!("phase 1: {} streams, batches of {}, as fast as acknowledged, {} s", a.streams, a.batch, a.seconds));
@@ -161,6 +165,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         "batch": a.batch,
         "seconds_per_phase": a.seconds,
         "config": config.describe(),
+        "resamples": a.resamples,
         "offline_1_thread_segments_per_s": offline,
         "daemon_segments_per_s": full.rate(),
         "ratio_daemon_vs_offline_1_thread": full.rate() / offline,
@@ -174,7 +179,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         println!("{}", serde_json::to_string_pretty(&figures).unwrap_or_default());
     } else {
         let f = |k: &str| figures[k].as_f64().unwrap_or(f64::NAN);
-        println!("mtgauge load: {} streams x batches of {} ({}), {} s per phase", a.streams, a.batch, config.describe(), a.seconds);
+        println!("mtgauge load: {} streams x batches of {} ({}, {} bootstrap replicates), {} s per phase", a.streams, a.batch, config.describe(), a.resamples, a.seconds);
         println!("  offline engine, 1 thread      {:>10.0} segments/s", f("offline_1_thread_segments_per_s"));
         println!("  daemon, full speed            {:>10.0} segments/s -> {:.2}x the offline 1-thread rate", f("daemon_segments_per_s"), f("ratio_daemon_vs_offline_1_thread"));
         println!("    acknowledgement latency     p50 {:.2} ms, p99 {:.2} ms", 1e3 * full.quantile(0.5), 1e3 * full.quantile(0.99));

@@ -70,6 +70,13 @@ pub struct SendArgs {
     /// Print the acknowledged counts as JSON.
     #[arg(long)]
     pub json: bool,
+    /// With --create: bootstrap replicates the session keeps for its intervals (0: none).
+    #[arg(long, default_value_t = crate::metric::resample::DAEMON_RESAMPLES, value_name = "N", requires = "create")]
+    pub resamples: usize,
+    /// With --create: seed of the replicate weights (sessions whose intervals are compared or
+    /// summed across replicas use the same).
+    #[arg(long, default_value_t = crate::metric::resample::DEFAULT_RESAMPLE_SEED, value_name = "S", requires = "create")]
+    pub seed: u64,
     /// Scoring configuration of the session to create.
     #[command(flatten)]
     pub scoring: ScoringArgs,
@@ -169,6 +176,7 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
                 labels: labels.into_iter().collect(),
                 window: 0,
                 if_not_exists: true,
+                resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: Some(a.seed) }),
             };
             with_retry("create session", || {
                 let mut c = SessionsClient::new(ch.clone());

@@ -8,8 +8,10 @@ use super::CliError;
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
-use crate::report::{config_json, stats_json, stats_lines, PROXY_NOTE};
-use crate::pb::convert::{config_from_pb, stats_from_pb};
+use crate::report::{config_json, stats_json, stats_lines, IntervalSettings, PROXY_NOTE};
+use crate::pb::convert::{config_from_pb, interval_of, stats_from_pb};
+use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
+use crate::metric::ScoreConfig;
 
 /// `status` options.
 #[derive(Debug, Args)]
@@ -24,19 +26,49 @@ pub struct StatusArgs {
     /// of `mtgauge score --json`.
     #[arg(long)]
     pub json: bool,
+    /// Confidence level of the intervals, strictly between 0 and 1.
+    #[arg(long, value_name = "L", default_value_t = DEFAULT_LEVEL)]
+    pub level: f64,
 }
 
-fn render(r: &pb::ScoresReport, info: &pb::SessionInfo) -> Result<(Value, String), CliError> {
+/// `stats_json` of a window with each score's interval (as in `score --json`), and the human
+/// lines of the intervals.
+fn window_view(t: Option<&pb::Totals>, config: &ScoreConfig, indent: &str) -> (Value, Vec<String>) {
+    let empty = pb::Totals::default();
+    let t = t.unwrap_or(&empty);
+    let mut m = stats_json(&stats_from_pb(t), config);
+    let mut lines = Vec::new();
+    for metric in config.metric_list() {
+        let Some(i) = interval_of(t, metric) else { continue };
+        if let Some(Value::Object(o)) = m.get_mut(metric.name()) {
+            o.insert("interval".into(), serde_json::to_value(i).unwrap_or(Value::Null));
+        }
+        lines.push(format!("{indent}{:<8}{:>6.2} .. {:.2}   {}% interval, {} resamples, seed {}", metric.title(), i.low, i.high, (100.0 * i.level * 1e6).round() / 1e6, i.resamples, i.seed));
+    }
+    (Value::Object(m), lines)
+}
+
+fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(Value, String), CliError> {
     let config = config_from_pb(r.config.as_ref()).map_err(|e| CliError::Usage(format!("server sent a bad configuration: {e}")))?;
     let cumulative = stats_from_pb(r.cumulative.as_ref().unwrap_or(&Default::default()));
     let recent = stats_from_pb(r.recent.as_ref().unwrap_or(&Default::default()));
+    let (cum_json, cum_ranges) = window_view(r.cumulative.as_ref(), &config, "    ");
+    let (recent_json, recent_ranges) = window_view(r.recent.as_ref(), &config, "    ");
+    let resampling = r.resampling.unwrap_or_default();
+    let mut config_j = config_json(&config);
+    // The settings behind the intervals, as `score --interval` records them.
+    if let (Value::Object(c), Some(n @ 1..)) = (&mut config_j, resampling.resamples) {
+        let settings = IntervalSettings { resamples: n as usize, seed: resampling.seed.unwrap_or_default(), level };
+        c.insert("interval".into(), settings.json());
+    }
     let j = json!({
         "session": r.session,
         "labels": info.labels,
         "refset": { "name": info.refset, "digest": r.refset_digest },
-        "config": config_json(&config),
-        "cumulative": Value::Object(stats_json(&cumulative, &config)),
-        "recent": Value::Object(stats_json(&recent, &config)),
+        "config": config_j,
+        "cumulative": cum_json,
+        "recent": recent_json,
+        "interval_note": (!r.interval_note.is_empty()).then_some(&r.interval_note),
         "window": r.window,
         "memory_bytes": info.memory_bytes,
         "unknown": r.unknown,
@@ -46,14 +78,17 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo) -> Result<(Value, String
     });
     let mut text = format!("session {} (reference set {}, digest {})\n", r.session, info.refset, &r.refset_digest[..16.min(r.refset_digest.len())]);
     text += &format!("  cumulative: {} segments scored, {} unknown, {} rejected\n", cumulative.segments, r.unknown, r.rejected);
-    for l in stats_lines(&cumulative, &config, "    ") {
+    for l in stats_lines(&cumulative, &config, "    ").into_iter().chain(cum_ranges) {
         text += &l;
         text.push('\n');
     }
     text += &format!("  recent (last {} segments): {} segments\n", r.window, recent.segments);
-    for l in stats_lines(&recent, &config, "    ") {
+    for l in stats_lines(&recent, &config, "    ").into_iter().chain(recent_ranges) {
         text += &l;
         text.push('\n');
+    }
+    if !r.interval_note.is_empty() {
+        text += &format!("  note    {}\n", r.interval_note);
     }
     text += &format!("  config  {}\n", config.describe());
     text += &format!("  memory  {} bytes of session tables\n", info.memory_bytes);
@@ -61,6 +96,9 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo) -> Result<(Value, String
 }
 
 pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
+    if !valid_level(a.level) {
+        return Err(CliError::Usage(format!("--level {} is not strictly between 0 and 1", a.level)));
+    }
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
     let rendered = rt.block_on(async {
         let ch = channel(&a.server)?;
@@ -72,8 +110,8 @@ pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
         };
         let mut out = Vec::new();
         for info in infos {
-            let r = scoring.get_scores(pb::GetScoresRequest { session: info.name.clone() }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
-            out.push(render(&r, &info)?);
+            let r = scoring.get_scores(pb::GetScoresRequest { session: info.name.clone(), level: a.level }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
+            out.push(render(&r, &info, a.level)?);
         }
         Ok::<_, CliError>(out)
     })?;

@@ -226,19 +226,34 @@ impl Replicates {
     }
 
     fn apply<const ADD: bool>(&mut self, key: u64, s: &SegmentStats) {
+        if self.resamples == 0 {
+            return;
+        }
+        let mut row = std::mem::take(&mut self.scratch.row);
+        row.clear();
+        self.layout.encode(s, &mut row);
+        self.apply_row::<ADD>(key, &row);
+        self.scratch.row = row;
+    }
+
+    /// Add a segment given as its row of the configuration's fields (as the `recent` window
+    /// keeps it: [`Layout::encode`]).
+    pub(crate) fn add_row(&mut self, key: u64, row: &[u64]) {
+        self.apply_row::<true>(key, row);
+    }
+
+    fn apply_row<const ADD: bool>(&mut self, key: u64, row: &[u64]) {
         let r = self.resamples;
         if r == 0 {
             return;
         }
+        debug_assert_eq!(row.len(), self.layout.width());
         let sc = &mut self.scratch;
-        sc.row.clear();
-        self.layout.encode(s, &mut sc.row);
-        sc.row.push(1);
         sc.weights.resize(r, 0);
         fill_weights(key, self.seed, &mut sc.weights);
         sc.wide.clear();
         sc.wide.extend(sc.weights.iter().map(|&w| u32::from(w)));
-        for (dst, &x) in self.sums.chunks_exact_mut(r).zip(&sc.row) {
+        for (dst, &x) in self.sums.chunks_exact_mut(r).zip(row.iter().chain(&[1])) {
             if x == 0 {
                 continue;
             }
@@ -264,12 +279,11 @@ impl Replicates {
         if !self.same_kind(o) {
             return Err(ReplicateMismatch);
         }
+        // Modulo 2^64: a difference of sums taken at two moments (a window's, see
+        // `session::replicates`) may pass through a negative intermediate and is exact all the
+        // same once its terms are in.
         for (a, b) in self.sums.iter_mut().zip(&o.sums) {
-            if add {
-                *a += b;
-            } else {
-                *a -= b;
-            }
+            *a = if add { a.wrapping_add(*b) } else { a.wrapping_sub(*b) };
         }
         Ok(())
     }
@@ -292,8 +306,7 @@ impl Replicates {
     /// The percentile interval of `m` at `level`; `None` without replicates, when `m` is not
     /// configured, or before any segment.
     pub fn interval(&self, m: Metric, level: f64) -> Option<Interval> {
-        let counts = &self.sums[self.layout.width() * self.resamples..];
-        if counts.iter().all(|&w| w == 0) {
+        if self.is_empty() {
             return None;
         }
         let (low, high) = percentile_interval(&mut self.scores(m)?, level)?;
@@ -303,6 +316,49 @@ impl Replicates {
     /// Heap bytes held by the sums.
     pub fn memory_bytes(&self) -> usize {
         self.sums.capacity() * 8
+    }
+
+    /// The sums, field-major: `fields()` fields of `resamples()` sums each, the last field the
+    /// summed weights (what a durable copy stores).
+    pub fn sums(&self) -> &[u64] {
+        &self.sums
+    }
+
+    /// Fields per replicate, the summed weight included.
+    pub fn fields(&self) -> usize {
+        self.layout.width() + 1
+    }
+
+    /// Sums read back from a durable copy: `None` when their number does not fit the kind.
+    pub fn from_sums(config: &ScoreConfig, resamples: usize, seed: u64, sums: Vec<u64>) -> Option<Replicates> {
+        let mut r = Replicates::new(config, resamples, seed);
+        if sums.len() != r.sums.len() {
+            return None;
+        }
+        r.sums = sums;
+        Some(r)
+    }
+
+    /// Whether no segment was added (every summed weight is 0).
+    pub fn is_empty(&self) -> bool {
+        self.sums[self.layout.width() * self.resamples..].iter().all(|&w| w == 0)
+    }
+}
+
+/// How a live session resamples for its intervals: replicates kept (0: none) and the seed of
+/// the weights. Part of a session's definition: sessions whose intervals are to be compared or
+/// summed across replicas use the same.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
+pub struct Resampling {
+    /// Replicates (0: no intervals).
+    pub resamples: usize,
+    /// Seed of the weights.
+    pub seed: u64,
+}
+
+impl Default for Resampling {
+    fn default() -> Self {
+        Resampling { resamples: DAEMON_RESAMPLES, seed: DEFAULT_RESAMPLE_SEED }
     }
 }
 

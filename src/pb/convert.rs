@@ -1,6 +1,7 @@
 //! Conversions between the API messages and the engine's types. The scores in a
 //! [`super::Totals`] come from [`crate::metric::scores`], like every other output's.
 
+use crate::metric::resample::{Interval, Replicates, Resampling};
 use crate::metric::scores::{NgramCounts, Report};
 use crate::metric::{BleuParams, ChrfParams, CorpusStats, Metric, MetricSpec, OrderCounts, ScoreConfig, SegmentStats};
 use crate::pb;
@@ -101,6 +102,7 @@ pub fn totals_to_pb(st: &CorpusStats, c: &ScoreConfig) -> pb::Totals {
             precision: b.precision,
             tokens: Some(pb::TokenCounts { hypothesis: b.tokens.hypothesis, reference: b.tokens.reference, ratio: b.tokens.ratio }),
             brevity: b.brevity,
+            interval: None,
         }),
         chrf: r
             .chrf
@@ -112,9 +114,55 @@ pub fn totals_to_pb(st: &CorpusStats, c: &ScoreConfig) -> pb::Totals {
                 recall: x.recall,
                 chars: Some(counts_to_pb(x.chars)),
                 words: x.words.map(counts_to_pb),
+                interval: None,
             })
             .collect(),
     }
+}
+
+/// [`totals_to_pb`] with each configured score's interval at `level` from `reps` (when given
+/// and not empty).
+pub fn totals_with_intervals(st: &CorpusStats, c: &ScoreConfig, reps: Option<&Replicates>, level: f64) -> pb::Totals {
+    let mut t = totals_to_pb(st, c);
+    let Some(reps) = reps else { return t };
+    let of = |m: Metric| reps.interval(m, level).map(interval_to_pb);
+    if let Some(b) = &mut t.bleu {
+        b.interval = of(Metric::Bleu);
+    }
+    for x in &mut t.chrf {
+        x.interval = Metric::ALL.into_iter().find(|m| m.name() == x.metric).and_then(of);
+    }
+    t
+}
+
+/// An interval in an API message.
+pub fn interval_to_pb(i: Interval) -> pb::Interval {
+    pb::Interval { level: i.level, low: i.low, high: i.high, resamples: i.resamples as u32, method: i.method.to_owned(), seed: i.seed }
+}
+
+/// An interval from an API message (the method as this version names it).
+pub fn interval_from_pb(i: &pb::Interval) -> Interval {
+    Interval { level: i.level, low: i.low, high: i.high, resamples: i.resamples as usize, method: crate::metric::resample::METHOD, seed: i.seed }
+}
+
+/// The interval of `m` in an API message, when present.
+pub fn interval_of(t: &pb::Totals, m: Metric) -> Option<Interval> {
+    let i = match m {
+        Metric::Bleu => t.bleu.as_ref()?.interval.as_ref(),
+        m => t.chrf.iter().find(|c| c.metric == m.name())?.interval.as_ref(),
+    };
+    i.map(interval_from_pb)
+}
+
+/// A session's resampling, every default filled in.
+pub fn resampling_to_pb(r: &Resampling) -> pb::Resampling {
+    pb::Resampling { resamples: Some(r.resamples as u32), seed: Some(r.seed) }
+}
+
+/// The resampling a request asks for (unset fields: the defaults).
+pub fn resampling_from_pb(r: Option<&pb::Resampling>) -> Resampling {
+    let d = Resampling::default();
+    Resampling { resamples: r.and_then(|r| r.resamples).map_or(d.resamples, |n| n as usize), seed: r.and_then(|r| r.seed).unwrap_or(d.seed) }
 }
 
 /// Sentence-level scores of one segment, keyed by metric name (for acknowledgements).

@@ -21,7 +21,8 @@ use super::watchers::Watchers;
 use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
 use crate::metric::CorpusStats;
 use crate::pb;
-use crate::pb::convert::{config_from_pb, config_to_pb, segment_scores_to_pb, totals_to_pb};
+use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
+use crate::pb::convert::{config_from_pb, config_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals};
 use crate::refs::compiled::Scratch;
 use crate::report::PROXY_NOTE;
 use crate::session::{ItemKey, Outcome, Session};
@@ -102,6 +103,7 @@ fn session_info(s: &Session) -> pb::SessionInfo {
         rejected: counts.rejected,
         created_unix: s.created_unix(),
         memory_bytes: s.memory_bytes() as u64,
+        resampling: Some(resampling_to_pb(&spec.resampling)),
     }
 }
 
@@ -211,7 +213,7 @@ impl pb::sessions_server::Sessions for Services {
         let r = req.into_inner();
         let config = config_from_pb(r.config.as_ref()).map_err(|e| ServiceError::Invalid(e.0))?;
         let labels: BTreeMap<String, String> = r.labels.into_iter().collect();
-        let spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize)?;
+        let spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize, resampling_from_pb(r.resampling.as_ref()))?;
         let state = self.state.clone();
         let (session, created) = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
         let spec = session.spec();
@@ -318,7 +320,7 @@ async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     drop(slot);
 
     let rejected = scored.rejections.len() as u64;
-    let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected };
+    let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected, replicates: scored.replicates };
     let committing = state.submit_batch(pending)?;
     (ack.rejections, ack.segment_scores) = (scored.rejections, scored.segment_scores);
     Ok(InFlight { ack, committing: Some(committing), started })
@@ -332,12 +334,14 @@ struct ScoredItems {
     rejections: Vec<pb::Rejection>,
     /// Per-segment scores, when the batch asked for them.
     segment_scores: Vec<pb::SegmentScore>,
+    /// Replicate sums of the scored items (sessions with replicates).
+    replicates: Option<crate::metric::resample::Replicates>,
 }
 
 /// Validate and score every item of a batch (CPU work, no lock taken); per-segment scores are
 /// derived here, once.
 fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits) -> ScoredItems {
-    let mut out = ScoredItems { outcomes: Vec::with_capacity(batch.items.len()), rejections: Vec::new(), segment_scores: Vec::new() };
+    let mut out = ScoredItems { outcomes: Vec::with_capacity(batch.items.len()), rejections: Vec::new(), segment_scores: Vec::new(), replicates: None };
     let too_long = |what: &str, len: usize| format!("{what} of {len} bytes exceeds {} ({})", Limit::MaxTextBytes.key(), limits.max_text_bytes);
     SCRATCH.with(|s| {
         let scratch = &mut s.borrow_mut();
@@ -366,27 +370,57 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
             out.outcomes.push(outcome);
         }
     });
+    out.replicates = session.replicate_delta(&out.outcomes);
     out
 }
 
-fn report(session: &Session) -> pb::ScoresReport {
+/// Why a session that keeps replicates gives no interval for a window with segments.
+const CUMULATIVE_PREDATES: &str = "no cumulative interval: the statistics were kept before this session kept replicates; reset the session to start them";
+const RECENT_PREDATES: &str = "no recent interval yet: the window still holds segments kept before this session kept replicates";
+
+/// A session's scores now, intervals at `level` (0: the default).
+pub fn report(session: &Session, level: f64) -> pb::ScoresReport {
     let spec = session.spec();
+    let level = if level == 0.0 { DEFAULT_LEVEL } else { level };
+    // Statistics and replicates are read under two short locks: a batch applied in between
+    // makes them differ by that batch, which an interval (a range) tolerates.
     let (cumulative, recent, counts) = {
         let st = session.state();
         (st.cumulative, st.window.stats(), st.counts)
     };
+    let (cum_reps, recent_reps) = session.replicates();
     let c = &spec.config;
+    let mut notes = Vec::new();
+    if spec.resampling.resamples > 0 {
+        if cum_reps.is_none() && cumulative.segments > 0 {
+            notes.push(CUMULATIVE_PREDATES);
+        }
+        if recent_reps.is_none() && recent.segments > 0 {
+            notes.push(RECENT_PREDATES);
+        }
+    }
     pb::ScoresReport {
         session: spec.name.clone(),
         refset_digest: session.refs().digest_hex(),
         config: Some(config_to_pb(c)),
-        cumulative: Some(totals_to_pb(&cumulative, c)),
-        recent: Some(totals_to_pb(&recent, c)),
+        cumulative: Some(totals_with_intervals(&cumulative, c, cum_reps.as_ref(), level)),
+        recent: Some(totals_with_intervals(&recent, c, recent_reps.as_ref(), level)),
         window: spec.window as u32,
         unknown: counts.unknown,
         rejected: counts.rejected,
         unix_time: unix_now(),
         note: PROXY_NOTE.to_owned(),
+        interval_note: notes.join("; "),
+        resampling: Some(resampling_to_pb(&spec.resampling)),
+    }
+}
+
+/// A requested interval level: 0 (the default) or strictly between 0 and 1.
+fn check_level(level: f64) -> Result<f64> {
+    if level == 0.0 || valid_level(level) {
+        Ok(level)
+    } else {
+        Err(ServiceError::Invalid(format!("level {level} is not strictly between 0 and 1")))
     }
 }
 
@@ -497,17 +531,20 @@ impl pb::scoring_server::Scoring for Services {
 
     async fn get_scores(&self, req: Request<pb::GetScoresRequest>) -> std::result::Result<Response<pb::ScoresReport>, Status> {
         self.authorize(&req, Scope::Read)?;
-        let s = self.state.session(&req.into_inner().session)?;
-        Ok(Response::new(report(&s)))
+        let r = req.into_inner();
+        let level = check_level(r.level)?;
+        let s = self.state.session(&r.session)?;
+        Ok(Response::new(blocking(move || Ok(report(&s, level))).await?))
     }
 
     async fn watch_scores(&self, req: Request<pb::WatchScoresRequest>) -> std::result::Result<Response<Self::WatchScoresStream>, Status> {
         self.authorize(&req, Scope::Read)?;
         let r = req.into_inner();
+        let level = check_level(r.level)?;
         let session = self.state.session(&r.session)?;
         let gate = self.state.enter_watcher()?;
         let secs = if r.interval_seconds == 0 { DEFAULT_WATCH_SECONDS } else { r.interval_seconds };
-        let rx = self.watchers.subscribe(session, Duration::from_secs(secs as u64), gate)?;
+        let rx = self.watchers.subscribe(session, Duration::from_secs(secs as u64), level, gate)?;
         Ok(Response::new(Box::pin(ReceiverStream::new(rx))))
     }
 }

@@ -12,6 +12,7 @@ use dashmap::mapref::entry::Entry;
 use dashmap::DashMap;
 
 use super::error::{Result, ServiceError};
+use crate::metric::resample::{Resampling, MAX_RESAMPLES};
 use crate::metric::ScoreConfig;
 use crate::session::{Applied, Outcome};
 use crate::store::{BatchWrite, Store, StoreError};
@@ -67,6 +68,9 @@ pub struct Pending {
     pub outcomes: Vec<Outcome>,
     /// Items refused as invalid.
     pub rejected: u64,
+    /// The replicate sums of the scored items ([`Session::replicate_delta`], computed while
+    /// scoring; None: computed when applied, or the session keeps none).
+    pub replicates: Option<crate::metric::resample::Replicates>,
 }
 
 /// A batch handed to [`commit`]: its effect, or the answer to wait for.
@@ -192,12 +196,18 @@ impl State {
         for s in snap.sessions {
             let config = s.spec.config;
             let session = Session::new(s.spec, Arc::clone(&versions[&s.refset_digest]), s.created_unix);
-            let window = crate::session::Window::restore(session.spec().window, &config, s.window_rows, s.next_row).map_err(|e| ServiceError::Internal(format!("store: session {}: {e}", session.spec().name)))?;
+            let bad = |e: String| ServiceError::Internal(format!("store: session {}: {e}", session.spec().name));
+            let in_window = s.records.len() - s.window_len;
+            let window = crate::session::Window::restore(session.spec().window, &config, s.records[in_window..].iter().cloned(), s.next_row).map_err(bad)?;
             let spec = session.spec();
+            let replicates = match spec.resampling.resamples {
+                0 => None,
+                _ => Some(crate::session::SessionReplicates::restore(&config, spec.resampling, &window, s.replicates, s.records_from, &s.records, |c| session.key_of(c)).map_err(bad)?),
+            };
             crate::telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.labels, true);
             crate::telemetry::init_session(&spec.name, &config, [s.counts.scored, s.counts.unknown, s.counts.rejected], &s.cumulative);
             crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
-            session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks });
+            session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
         }
         Ok(n)
@@ -338,7 +348,7 @@ impl State {
     }
 
     /// Check a session definition and fill in defaults.
-    pub fn session_spec(&self, name: &str, refset: &str, config: ScoreConfig, labels: BTreeMap<String, String>, window: usize) -> Result<SessionSpec> {
+    pub fn session_spec(&self, name: &str, refset: &str, config: ScoreConfig, labels: BTreeMap<String, String>, window: usize, resampling: Resampling) -> Result<SessionSpec> {
         check_name("session name", name)?;
         check_labels(&labels)?;
         config.validate().map_err(|e| ServiceError::Invalid(e.to_string()))?;
@@ -346,7 +356,10 @@ impl State {
         if window > MAX_WINDOW {
             return Err(ServiceError::Invalid(format!("window {window} is larger than {MAX_WINDOW}")));
         }
-        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window })
+        if resampling.resamples > MAX_RESAMPLES {
+            return Err(ServiceError::Invalid(format!("{} resamples are more than {MAX_RESAMPLES}", resampling.resamples)));
+        }
+        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling })
     }
 
     /// Create a session (builds its tables: CPU work, call from a blocking thread). With
@@ -413,7 +426,7 @@ impl State {
 
 /// The parts of a session definition in which `a` and `b` differ (empty: the same).
 pub fn differences(a: &SessionSpec, b: &SessionSpec) -> Vec<&'static str> {
-    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window)];
+    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling)];
     parts.into_iter().filter(|(_, same)| !same).map(|(what, _)| what).collect()
 }
 
@@ -438,7 +451,7 @@ fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std
     let mut effects = Vec::with_capacity(group.len());
     for p in group {
         let current = live.is_some_and(|l| l.sessions.get(&p.session.spec().name).is_some_and(|e| Arc::ptr_eq(e.value(), &p.session)));
-        let applied = p.session.state().apply(&p.producer, p.sequence, &p.outcomes, p.rejected);
+        let applied = p.session.apply(&p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref());
         effects.push((applied, current));
     }
     let kept = || effects.iter().zip(group).filter_map(|((a, current), p)| Some((p, a.as_ref().filter(|_| *current)?)));

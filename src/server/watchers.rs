@@ -39,6 +39,8 @@ pub struct Watchers {
 struct Subscriber {
     session: Arc<Session>,
     every: Duration,
+    /// Interval level of its reports (0: the default).
+    level: f64,
     due: Instant,
     tx: mpsc::Sender<Report>,
     unread: u32,
@@ -49,7 +51,7 @@ struct Subscriber {
 impl Watchers {
     /// Start the publisher (inside a Tokio runtime); it ends, ending every watch, when `stop`
     /// turns true. `report` builds a session's current report.
-    pub fn start(state: State, stop: watch::Receiver<bool>, report: fn(&Session) -> pb::ScoresReport) -> Watchers {
+    pub fn start(state: State, stop: watch::Receiver<bool>, report: fn(&Session, f64) -> pb::ScoresReport) -> Watchers {
         let (join, joined) = mpsc::unbounded_channel();
         tokio::spawn(publish(state, stop, joined, report));
         Watchers { join }
@@ -57,15 +59,15 @@ impl Watchers {
 
     /// Subscribe to `session` every `every` (rounded up to [`WATCH_TICK`]); the first report
     /// comes at once. The receiver gets one report at a time.
-    pub fn subscribe(&self, session: Arc<Session>, every: Duration, gate: Gate) -> std::result::Result<mpsc::Receiver<Report>, ServiceError> {
+    pub fn subscribe(&self, session: Arc<Session>, every: Duration, level: f64, gate: Gate) -> std::result::Result<mpsc::Receiver<Report>, ServiceError> {
         let (tx, rx) = mpsc::channel(1);
-        let sub = Subscriber { session, every: every.max(WATCH_TICK), due: Instant::now(), tx, unread: 0, _gate: gate };
+        let sub = Subscriber { session, every: every.max(WATCH_TICK), level, due: Instant::now(), tx, unread: 0, _gate: gate };
         self.join.send(sub).map_err(|_| ServiceError::ShuttingDown)?;
         Ok(rx)
     }
 }
 
-async fn publish(state: State, mut stop: watch::Receiver<bool>, mut joined: mpsc::UnboundedReceiver<Subscriber>, report: fn(&Session) -> pb::ScoresReport) {
+async fn publish(state: State, mut stop: watch::Receiver<bool>, mut joined: mpsc::UnboundedReceiver<Subscriber>, report: fn(&Session, f64) -> pb::ScoresReport) {
     let mut subscribers: Vec<Subscriber> = Vec::new();
     let mut tick = tokio::time::interval(WATCH_TICK);
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
@@ -82,8 +84,8 @@ async fn publish(state: State, mut stop: watch::Receiver<bool>, mut joined: mpsc
 
 /// Offer the current report to every subscriber that is due at `now`, and drop the ones that
 /// went away, stalled, or watch a session that was closed.
-fn round(subscribers: &mut Vec<Subscriber>, state: &State, now: Instant, report: fn(&Session) -> pb::ScoresReport) {
-    let mut reports: HashMap<String, pb::ScoresReport> = HashMap::new();
+fn round(subscribers: &mut Vec<Subscriber>, state: &State, now: Instant, report: fn(&Session, f64) -> pb::ScoresReport) {
+    let mut reports: HashMap<(String, u64), pb::ScoresReport> = HashMap::new();
     subscribers.retain_mut(|s| {
         if s.tx.is_closed() {
             telemetry::watch_subscriber_dropped("closed");
@@ -100,7 +102,7 @@ fn round(subscribers: &mut Vec<Subscriber>, state: &State, now: Instant, report:
             closing_status(s.tx.clone(), ServiceError::UnknownSession(name.clone()).into());
             return false;
         }
-        let r = reports.entry(name.clone()).or_insert_with(|| report(&s.session)).clone();
+        let r = reports.entry((name.clone(), s.level.to_bits())).or_insert_with(|| report(&s.session, s.level)).clone();
         match s.tx.try_send(Ok(r)) {
             Ok(()) => {
                 s.unread = 0;

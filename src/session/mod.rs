@@ -3,6 +3,7 @@
 //!
 //! Pure and synchronous like the scoring core: the server owns sessions and calls in here.
 
+mod replicates;
 mod window;
 
 use std::collections::{BTreeMap, HashMap};
@@ -10,12 +11,14 @@ use std::sync::{Arc, Mutex, MutexGuard};
 
 use unicode_normalization::UnicodeNormalization;
 
+use crate::metric::resample::{segment_key, Replicates, Resampling};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::{Compiled, Scratch};
 use crate::refs::{RefSet, SegmentInput};
 use crate::text::{is_space, push_lowercased};
 
-pub use window::Window;
+pub use replicates::{checkpoint_spacing, ReplicateCopy, SavedReplicates, SessionReplicates, REPLICATE_SAVE_RECORDS};
+pub use window::{segment_code, Window, NO_SEGMENT};
 
 /// Size of the `recent` window in segments unless the session sets one.
 pub const DEFAULT_WINDOW: usize = 1000;
@@ -155,6 +158,8 @@ pub struct SessionSpec {
     pub labels: BTreeMap<String, String>,
     /// `recent` window size in segments.
     pub window: usize,
+    /// Bootstrap replicates for intervals.
+    pub resampling: Resampling,
 }
 
 /// How one item of a batch came out.
@@ -206,6 +211,8 @@ pub struct SessionState {
     pub counts: Counts,
     /// Highest applied sequence per producer (exactly-once batches).
     pub producers: HashMap<String, u64>,
+    /// Bootstrap replicate sums (None: the session keeps none).
+    pub replicates: Option<SessionReplicates>,
 }
 
 /// A live session.
@@ -213,6 +220,10 @@ pub struct Session {
     spec: SessionSpec,
     compiled: Compiled,
     sources: Option<SourceIndex>,
+    /// Replicate keys ([`segment_key`] of the id) of the set's segments and of the source
+    /// index's entries.
+    keys: Vec<u64>,
+    source_keys: Vec<u64>,
     created_unix: i64,
     /// Held only to add a batch's statistics or to read a snapshot, never across an await or
     /// while scoring: a std mutex is right for such short sections.
@@ -224,8 +235,63 @@ impl Session {
     pub fn new(spec: SessionSpec, refs: Arc<RefSet>, created_unix: i64) -> Session {
         let sources = SourceIndex::build(&refs, spec.config);
         let compiled = Compiled::build(refs, spec.config);
-        let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new() };
-        Session { spec, compiled, sources, created_unix, state: Mutex::new(state) }
+        let keys_of = |set: &RefSet| set.segments().map(|s| segment_key(s.id().as_bytes())).collect::<Vec<u64>>();
+        let keys = keys_of(compiled.refs());
+        let source_keys = sources.as_ref().map_or_else(Vec::new, |ix| keys_of(ix.compiled.refs()));
+        let replicates = (spec.resampling.resamples > 0).then(|| SessionReplicates::new(&spec.config, spec.resampling, spec.window, 0));
+        let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new(), replicates };
+        Session { spec, compiled, sources, keys, source_keys, created_unix, state: Mutex::new(state) }
+    }
+
+    /// The replicate key of the segment a window record names by its [`segment_code`].
+    pub fn key_of(&self, code: u64) -> Option<u64> {
+        let keys = if code & 1 == 1 { &self.source_keys } else { &self.keys };
+        keys.get(usize::try_from(code >> 1).ok()?).copied()
+    }
+
+    /// The replicate sums a batch's scored items add (CPU work, no lock taken); None when the
+    /// session keeps no replicates.
+    pub fn replicate_delta(&self, outcomes: &[Outcome]) -> Option<Replicates> {
+        let r = self.spec.resampling;
+        (r.resamples > 0).then(|| {
+            let mut d = Replicates::new(&self.spec.config, r.resamples, r.seed);
+            for o in outcomes {
+                if let Outcome::Scored { stats, by_source, index } = o {
+                    let key = if *by_source { self.source_keys[*index as usize] } else { self.keys[*index as usize] };
+                    d.add(key, stats);
+                }
+            }
+            d
+        })
+    }
+
+    /// Apply a batch (see [`SessionState::apply`]); `delta` is its [`Session::replicate_delta`],
+    /// computed here when not given.
+    pub fn apply(&self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>) -> Option<Applied> {
+        let own;
+        let delta = match delta {
+            Some(d) => Some(d),
+            None => {
+                own = self.replicate_delta(outcomes);
+                own.as_ref()
+            }
+        };
+        self.state().apply(producer, sequence, outcomes, rejected, delta)
+    }
+
+    /// The cumulative and recent replicate sums now (each None when not available: no
+    /// replicates, or statistics from before the session kept them). The window's sums are
+    /// derived outside the lock from a short copy.
+    pub fn replicates(&self) -> (Option<Replicates>, Option<Replicates>) {
+        let copy = {
+            let st = self.state();
+            match &st.replicates {
+                Some(r) => r.copy(&st.window),
+                None => return (None, None),
+            }
+        };
+        let recent = copy.recent(|c| self.key_of(c));
+        (copy.cumulative, recent)
     }
 
     /// The definition.
@@ -251,7 +317,9 @@ impl Session {
     /// Heap bytes of the compiled tables of this session.
     pub fn memory_bytes(&self) -> usize {
         let sources = self.sources.as_ref().map_or(0, |s| s.compiled.memory_bytes() + s.compiled.refs().memory_bytes() + s.map.capacity() * 48 + s.map.keys().map(String::len).sum::<usize>());
-        self.compiled.memory_bytes() + sources + self.state().window.memory_bytes()
+        let st = self.state();
+        let replicates = st.replicates.as_ref().map_or(0, SessionReplicates::memory_bytes);
+        self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + st.window.memory_bytes() + replicates
     }
 
     /// Score one item (CPU work, no lock taken).
@@ -299,6 +367,10 @@ impl Session {
         st.cumulative = CorpusStats::default();
         st.window.clear();
         st.counts = Counts::default();
+        let next = st.window.next_id();
+        if let Some(r) = &mut st.replicates {
+            r.reset(next);
+        }
     }
 }
 
@@ -309,9 +381,10 @@ impl SessionState {
         !producer.is_empty() && sequence > 0 && self.producers.get(producer).is_some_and(|&s| sequence <= s)
     }
 
-    /// Apply the outcomes of one batch. Returns None (and changes nothing) for a duplicate,
-    /// else its whole effect: what it added, and the totals after it.
-    pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64) -> Option<Applied> {
+    /// Apply the outcomes of one batch, with `delta` the replicate sums of its scored items
+    /// (needed when the session keeps replicates). Returns None (and changes nothing) for a
+    /// duplicate, else its whole effect: what it added, and the totals after it.
+    pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>) -> Option<Applied> {
         if self.is_duplicate(producer, sequence) {
             return None;
         }
@@ -325,9 +398,9 @@ impl SessionState {
         let mut batch = Counts { rejected, ..Counts::default() };
         for o in outcomes {
             match o {
-                Outcome::Scored { stats, .. } => {
+                Outcome::Scored { stats, by_source, index } => {
                     added.add_segment(stats);
-                    rows.extend_from_slice(self.window.push(stats));
+                    rows.extend_from_slice(self.window.push(stats, segment_code(*by_source, *index)));
                     batch.scored += 1;
                 }
                 Outcome::Unknown => batch.unknown += 1,
@@ -335,7 +408,15 @@ impl SessionState {
         }
         self.cumulative += added;
         self.counts.add(&batch);
-        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id() })
+        let (mut save_replicates, mut keep_from) = (None, self.window.first_id());
+        if let Some(r) = &mut self.replicates {
+            match delta {
+                Some(d) => save_replicates = r.add_batch(d, &self.window),
+                None => debug_assert!(false, "a session with replicates applies a batch without them"),
+            }
+            keep_from = keep_from.min(r.saved_to());
+        }
+        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from })
     }
 }
 
@@ -370,6 +451,11 @@ pub struct Applied {
     pub counts: Counts,
     /// The window's next row id after the batch.
     pub next_row: u64,
+    /// A durable copy of the cumulative replicate sums, when one is due.
+    pub save_replicates: Option<SavedReplicates>,
+    /// Oldest window record a durable copy must keep: the window's first, or an older one
+    /// that the last saved replicate sums do not cover yet.
+    pub keep_from: u64,
 }
 
 #[cfg(test)]
@@ -390,7 +476,7 @@ mod tests {
 
     fn spec(caseless: bool) -> SessionSpec {
         let config = ScoreConfig { caseless, ..Default::default() };
-        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2 }
+        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2, resampling: Resampling::default() }
     }
 
     #[test]
@@ -438,11 +524,11 @@ mod tests {
         let s = Session::new(spec(false), set(), 0);
         let mut scratch = Scratch::default();
         let o = s.score_item(ItemKey::Id("2"), "Bitte behalten Sie Ihr Ticket.", &mut scratch);
-        let mut st = s.state();
-        assert!(st.apply("p1", 1, &[o, Outcome::Unknown], 1).is_some());
-        assert!(st.apply("p1", 1, &[o], 0).is_none(), "same sequence again is a duplicate");
-        assert!(st.apply("p2", 1, &[o], 0).is_some(), "another producer has its own sequence");
-        assert!(st.apply("", 0, &[o], 0).is_some() && st.apply("", 0, &[o], 0).is_some(), "anonymous batches are not deduplicated");
+        assert!(s.apply("p1", 1, &[o, Outcome::Unknown], 1, None).is_some());
+        assert!(s.apply("p1", 1, &[o], 0, None).is_none(), "same sequence again is a duplicate");
+        assert!(s.apply("p2", 1, &[o], 0, None).is_some(), "another producer has its own sequence");
+        assert!(s.apply("", 0, &[o], 0, None).is_some() && s.apply("", 0, &[o], 0, None).is_some(), "anonymous batches are not deduplicated");
+        let st = s.state();
         assert_eq!(st.counts, Counts { scored: 4, unknown: 1, rejected: 1 });
         assert_eq!(st.cumulative.segments, 4);
         assert_eq!(st.window.stats().segments, 2, "window of 2");

@@ -1,7 +1,8 @@
 //! Durable state in an embedded ACID store (redb): reference-set versions (their canonical
 //! encoding, so a restart rebuilds everything without the original files), reference-set names,
-//! session definitions, cumulative statistics and counters, the `recent` window rows, and the
-//! per-producer sequence marks that make batches count exactly once.
+//! session definitions, cumulative statistics and counters, the `recent` window rows, copies of
+//! the bootstrap replicate sums, and the per-producer sequence marks that make batches count
+//! exactly once.
 //!
 //! Synchronous: the server calls it from blocking threads. One process opens a store at a time.
 
@@ -11,9 +12,10 @@ use std::path::{Path, PathBuf};
 use redb::{Database, ReadableDatabase, ReadableTable, ReadableTableMetadata, TableDefinition};
 use serde::{Deserialize, Serialize};
 
+use crate::metric::resample::Resampling;
 use crate::metric::{CorpusStats, ScoreConfig};
 use crate::refs::RefSet;
-use crate::session::{Applied, Counts, SessionSpec};
+use crate::session::{Applied, Counts, SavedReplicates, SessionSpec};
 
 /// File name of the store inside `--data-dir`.
 pub const STORE_FILE: &str = "mtgauge.redb";
@@ -21,9 +23,13 @@ pub const STORE_FILE: &str = "mtgauge.redb";
 pub const DEFAULT_DATA_DIR: &str = "/var/lib/mtgauge";
 /// Version of the layout below; bump on any incompatible change (and upgrade the older one in
 /// [`Store::open`] where possible).
-pub const SCHEMA_VERSION: u64 = 2;
+pub const SCHEMA_VERSION: u64 = 3;
 /// The first layout: one stored row per window record (upgraded to blocks on open).
 const SCHEMA_ROWS: u64 = 1;
+/// Window blocks without replicate copies (upgraded on open: its sessions get intervals of
+/// their `recent` window once it has turned over, and of the cumulative statistics after a
+/// reset).
+const SCHEMA_BLOCKS: u64 = 2;
 
 const META: TableDefinition<&str, u64> = TableDefinition::new("meta");
 /// Reference-set digest (hex) -> canonical encoding.
@@ -40,6 +46,11 @@ const WINDOW_ROWS: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("w
 /// records, then every value, as LEB128 varints. One block per session per group commit; a
 /// block goes when all its records have left the window.
 const WINDOW: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("window_blocks");
+/// Session name -> a copy of its cumulative bootstrap replicate sums, as LEB128 varints: the
+/// record id it covers up to (exclusive), 1 when it covers every segment since creation or
+/// reset (else 0), then the sums (none: all zero). Window records after the covered id are
+/// kept until a newer copy covers them.
+const REPLICATES: TableDefinition<&str, &[u8]> = TableDefinition::new("replicate_sums");
 /// (session, producer) -> highest applied sequence.
 const MARKS: TableDefinition<(&str, &str), u64> = TableDefinition::new("producer_marks");
 
@@ -86,6 +97,9 @@ struct StoredSession {
     labels: BTreeMap<String, String>,
     window: usize,
     created_unix: i64,
+    /// Absent in sessions stored before intervals: the daemon's defaults.
+    #[serde(default)]
+    resampling: Resampling,
 }
 
 #[derive(Debug, Default, Serialize, Deserialize)]
@@ -108,8 +122,15 @@ pub struct LoadedSession {
     pub cumulative: CorpusStats,
     /// Counters.
     pub counts: Counts,
-    /// Window rows, oldest first.
-    pub window_rows: Vec<Vec<u64>>,
+    /// Window records from id `records_from` to `next_row` (exclusive), oldest first: the
+    /// window's, and older ones the replicate copy does not cover yet.
+    pub records: Vec<Vec<u64>>,
+    /// Id of the first of `records`.
+    pub records_from: u64,
+    /// Records of the window: the last `window_len` of `records`.
+    pub window_len: usize,
+    /// The copy of the cumulative replicate sums (None: stored before sessions kept them).
+    pub replicates: Option<SavedReplicates>,
     /// Next window row id.
     pub next_row: u64,
     /// Sequence marks.
@@ -174,12 +195,9 @@ fn encode_block(n: u64, values: &[u64]) -> Vec<u8> {
 }
 
 /// The records of a block.
-fn decode_block(mut b: &[u8]) -> Option<Vec<Vec<u64>>> {
-    let n = get_varint(&mut b)? as usize;
-    let mut values = Vec::new();
-    while !b.is_empty() {
-        values.push(get_varint(&mut b)?);
-    }
+fn decode_block(b: &[u8]) -> Option<Vec<Vec<u64>>> {
+    let (n, values) = decode_values(b)?;
+    let n = n as usize;
     if n == 0 || values.len() % n != 0 {
         return None;
     }
@@ -187,10 +205,40 @@ fn decode_block(mut b: &[u8]) -> Option<Vec<Vec<u64>>> {
     Some(values.chunks(width.max(1)).map(<[u64]>::to_vec).collect())
 }
 
+/// A copy of replicate sums.
+fn encode_replicates(r: &SavedReplicates) -> Vec<u8> {
+    let mut out = Vec::with_capacity(r.sums.len() * 3 + 12);
+    put_varint(&mut out, r.covered_to);
+    put_varint(&mut out, u64::from(r.complete));
+    r.sums.iter().for_each(|&v| put_varint(&mut out, v));
+    out
+}
+
+fn decode_replicates(b: &[u8]) -> Option<SavedReplicates> {
+    let (covered_to, mut values) = decode_values(b)?;
+    if values.is_empty() {
+        return None;
+    }
+    let complete = values.remove(0) == 1;
+    Some(SavedReplicates { covered_to, complete, sums: values })
+}
+
+/// A leading varint and the ones after it.
+fn decode_values(mut b: &[u8]) -> Option<(u64, Vec<u64>)> {
+    let first = get_varint(&mut b)?;
+    let mut values = Vec::new();
+    while !b.is_empty() {
+        values.push(get_varint(&mut b)?);
+    }
+    Some((first, values))
+}
+
 /// New window records of one session within a group commit, as blocks of consecutive ids.
 #[derive(Default)]
 struct SessionBlocks<'a> {
     last: Option<&'a Applied>,
+    /// The newest replicate copy due.
+    replicates: Option<&'a SavedReplicates>,
     /// (first id, records, values).
     blocks: Vec<(u64, u64, Vec<u64>)>,
     marks: Vec<(&'a str, u64)>,
@@ -234,6 +282,7 @@ impl Store {
             txn.open_table(STATS)?;
             txn.open_table(WINDOW)?;
             txn.open_table(MARKS)?;
+            txn.open_table(REPLICATES)?;
             Ok(())
         })()
         .map_err(|e| self.err(e))?;
@@ -251,6 +300,10 @@ impl Store {
         };
         if found == Some(SCHEMA_ROWS) {
             upgrade_rows_to_blocks(&txn).map_err(|e| self.err(format!("upgrading schema {SCHEMA_ROWS} to {SCHEMA_VERSION}: {e}")))?;
+        }
+        if found == Some(SCHEMA_ROWS) || found == Some(SCHEMA_BLOCKS) {
+            // Schema 2 -> 3 adds the replicate table (created above); sessions without a copy
+            // load with incomplete cumulative replicates.
             txn.open_table(META).map_err(|e| self.err(e))?.insert("schema_version", SCHEMA_VERSION).map_err(|e| self.err(e))?;
             return txn.commit().map_err(|e| self.err(e));
         }
@@ -281,6 +334,7 @@ impl Store {
         let stats = txn.open_table(STATS).map_err(|e| self.err(e))?;
         let window = txn.open_table(WINDOW).map_err(|e| self.err(e))?;
         let marks = txn.open_table(MARKS).map_err(|e| self.err(e))?;
+        let replicates = txn.open_table(REPLICATES).map_err(|e| self.err(e))?;
         for entry in txn.open_table(SESSIONS).map_err(|e| self.err(e))?.iter().map_err(|e| self.err(e))? {
             let (k, v) = entry.map_err(|e| self.err(e))?;
             let name = k.value();
@@ -296,19 +350,24 @@ impl Store {
             // end at next_row - 1; older records of the first block are skipped.
             let live = (st.cumulative.segments as usize).min(s.window.max(1)) as u64;
             let first_live = st.next_row.checked_sub(live).ok_or_else(|| self.err(format!("window of {name}: {live} records before record {}", st.next_row)))?;
+            let saved = match replicates.get(name).map_err(|e| self.err(e))? {
+                Some(b) => Some(decode_replicates(b.value()).ok_or_else(|| self.err(format!("replicate sums of {name} do not decode")))?),
+                None => None,
+            };
+            let records_from = saved.as_ref().map_or(first_live, |r| r.covered_to.min(first_live));
             let mut rows = Vec::new();
             for r in window.range((name, 0)..=(name, u64::MAX)).map_err(|e| self.err(e))? {
                 let (k, v) = r.map_err(|e| self.err(e))?;
                 let first = k.value().1;
                 let block = decode_block(v.value()).ok_or_else(|| self.err(format!("window block {first} of {name} does not decode")))?;
                 for (i, row) in block.into_iter().enumerate() {
-                    if first + i as u64 >= first_live {
+                    if first + i as u64 >= records_from {
                         rows.push(row);
                     }
                 }
             }
-            if rows.len() as u64 != live {
-                return Err(self.err(format!("window of {name} has {} records, expected {live}", rows.len())));
+            if rows.len() as u64 != st.next_row - records_from {
+                return Err(self.err(format!("window of {name} has {} records from record {records_from}, expected {}", rows.len(), st.next_row - records_from)));
             }
             let mut m = HashMap::new();
             for r in marks.range((name, "")..).map_err(|e| self.err(e))? {
@@ -319,8 +378,20 @@ impl Store {
                 }
                 m.insert(producer.to_owned(), v.value());
             }
-            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window };
-            snap.sessions.push(LoadedSession { spec, refset_digest: s.refset_digest, created_unix: s.created_unix, cumulative: st.cumulative, counts: st.counts, window_rows: rows, next_row: st.next_row, marks: m });
+            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling };
+            snap.sessions.push(LoadedSession {
+                spec,
+                refset_digest: s.refset_digest,
+                created_unix: s.created_unix,
+                cumulative: st.cumulative,
+                counts: st.counts,
+                records: rows,
+                records_from,
+                window_len: live as usize,
+                replicates: saved,
+                next_row: st.next_row,
+                marks: m,
+            });
         }
         Ok(snap)
     }
@@ -356,11 +427,13 @@ impl Store {
 
     /// Record a new session (its statistics start empty).
     pub fn put_session(&self, spec: &SessionSpec, refset_digest: &str, created_unix: i64) -> Result<(), StoreError> {
-        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix };
+        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling };
         let bytes = serde_json::to_vec(&s).map_err(|e| self.err(e))?;
         self.write(|txn| {
             txn.open_table(SESSIONS)?.insert(spec.name.as_str(), bytes.as_slice())?;
-            clear_session_data(txn, &spec.name, true)
+            clear_session_data(txn, &spec.name, true)?;
+            txn.open_table(REPLICATES)?.insert(spec.name.as_str(), encode_replicates(&SavedReplicates { covered_to: 0, complete: true, sums: Vec::new() }).as_slice())?;
+            Ok(())
         })
     }
 
@@ -379,6 +452,7 @@ impl Store {
         self.write(|txn| {
             clear_session_data(txn, name, false)?;
             txn.open_table(STATS)?.insert(name, st.as_slice())?;
+            txn.open_table(REPLICATES)?.insert(name, encode_replicates(&SavedReplicates { covered_to: next_row, complete: true, sums: Vec::new() }).as_slice())?;
             Ok(())
         })
     }
@@ -397,6 +471,9 @@ impl Store {
             });
             let a = w.applied;
             e.last = Some(a);
+            if let Some(r) = &a.save_replicates {
+                e.replicates = Some(r);
+            }
             if let Some((producer, seq)) = &a.mark {
                 e.marks.push((producer.as_str(), *seq));
             }
@@ -419,19 +496,25 @@ impl Store {
             let st = StoredStats { cumulative: last.cumulative, counts: last.counts, next_row: last.next_row };
             let stats = serde_json::to_vec(&st).map_err(|e| self.err(e))?;
             let blocks: Vec<(u64, Vec<u8>)> = e.blocks.iter().map(|(first, n, values)| (*first, encode_block(*n, values))).collect();
-            encoded.push((*name, stats, blocks, last.next_row - last.recent.segments));
+            let reps = e.replicates.map(encode_replicates);
+            encoded.push((*name, stats, blocks, last.keep_from, reps));
         }
         self.write(|txn| {
             let mut stats = txn.open_table(STATS)?;
             let mut window = txn.open_table(WINDOW)?;
             let mut marks = txn.open_table(MARKS)?;
-            for (name, st, blocks, first_live) in &encoded {
+            let mut replicates = txn.open_table(REPLICATES)?;
+            for (name, st, blocks, first_live, reps) in &encoded {
                 stats.insert(*name, st.as_slice())?;
+                if let Some(r) = reps {
+                    replicates.insert(*name, r.as_slice())?;
+                }
                 for (first, b) in blocks {
                     window.insert((*name, *first), b.as_slice())?;
                 }
-                // Blocks that start at or before the first live record: all but the last of
-                // them hold only records that left the window.
+                // Blocks that start at or before the first record to keep: all but the last of
+                // them hold only records that left the window and that the replicate copy
+                // covers.
                 let mut old = Vec::new();
                 for r in window.range((*name, 0)..=(*name, *first_live))? {
                     old.push(r?.0.value().1);
@@ -489,6 +572,7 @@ fn parse_digest(hex: &str) -> Option<[u8; 32]> {
 /// Delete a session's statistics and window rows (and its marks when `marks`).
 fn clear_session_data(txn: &redb::WriteTransaction, name: &str, marks: bool) -> Result<(), redb::Error> {
     txn.open_table(STATS)?.remove(name)?;
+    txn.open_table(REPLICATES)?.remove(name)?;
     txn.open_table(WINDOW)?.retain_in((name, 0)..=(name, u64::MAX), |_, _| false)?;
     if marks {
         let mut m = txn.open_table(MARKS)?;
@@ -539,7 +623,7 @@ mod tests {
     #[test]
     fn round_trip_and_versions() {
         let d = dir("rt");
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3 };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3, resampling: Resampling::default() };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &set("Tor C")).unwrap();
@@ -556,7 +640,7 @@ mod tests {
         assert_eq!(snap.names["r"], set("Gate C").digest_hex());
         let s = &snap.sessions[0];
         assert_eq!(s.refset_digest, set("Tor C").digest_hex());
-        assert_eq!((s.counts.unknown, s.marks["p"], s.window_rows.clone(), s.next_row, s.created_unix), (2, 7, vec![vec![1, 2, 3]], 1, 42));
+        assert_eq!((s.counts.unknown, s.marks["p"], s.records.clone(), s.next_row, s.created_unix), (2, 7, vec![vec![1, 2, 3]], 1, 42));
         st.delete_session("s").unwrap();
         let snap = st.load().unwrap();
         assert_eq!(snap.versions.len(), 1, "unused version collected");
@@ -585,8 +669,10 @@ mod tests {
         let d = dir("blocks");
         let refs = std::sync::Arc::new(set("Tor C"));
         let config: ScoreConfig = "bleu chrf".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37 };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37, resampling: Resampling { resamples: 20, seed: 5 } };
         let session = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
+        // Copies of the replicate sums every 100 records here, so that some are written.
+        session.state().replicates.as_mut().unwrap().set_save_every(100);
         let mut rng = crate::rng::SplitMix64::new(3);
         let st = Store::open(&d).unwrap();
         st.put_refset("r", &refs).unwrap();
@@ -605,20 +691,22 @@ mod tests {
                 seq += 1;
                 let n = rng.below(25) as usize;
                 let outcomes: Vec<Outcome> = (0..n).map(|i| if i % 7 == 3 { Outcome::Unknown } else { Outcome::Scored { stats: stats(&mut rng), by_source: false, index: 0 } }).collect();
-                group.push(session.state().apply("p", seq, &outcomes, 0).unwrap());
+                group.push(session.apply("p", seq, &outcomes, 0, None).unwrap());
             }
             let writes: Vec<BatchWrite<'_>> = group.iter().map(|applied| BatchWrite { session: "s", applied }).collect();
             st.commit_batches(&writes).unwrap();
-            // One block per group that added records; only the groups with a live record stay.
+            // One block per group that added records; only the groups with a record to keep
+            // stay: in the window, or not yet covered by the last copy of the replicate sums.
             let added: u64 = group.iter().map(|a| a.batch.scored).sum();
             if added > 0 {
                 commits.push((group[0].first_row, added));
             }
-            let (next, len) = {
+            let keep_from = group.last().unwrap().keep_from;
+            {
                 let mem = session.state();
-                (mem.window.next_id(), mem.window.len() as u64)
-            };
-            let live = commits.iter().filter(|(first, n)| first + n > next - len).count() as u64;
+                assert_eq!(keep_from, mem.window.first_id().min(mem.replicates.as_ref().unwrap().saved_to()));
+            }
+            let live = commits.iter().filter(|(first, n)| first + n > keep_from).count() as u64;
             let blocks = st.db.begin_read().unwrap().open_table(WINDOW).unwrap().len().unwrap();
             assert_eq!(blocks, live, "round {round}: blocks kept");
         }
@@ -626,9 +714,18 @@ mod tests {
         let snap = Store::open(&d).unwrap().load().unwrap();
         let s = &snap.sessions[0];
         let mem = session.state();
-        let back = crate::session::Window::restore(37, &config, s.window_rows.clone(), s.next_row).unwrap();
+        let back = crate::session::Window::restore(37, &config, s.records[s.records.len() - s.window_len..].iter().cloned(), s.next_row).unwrap();
         assert_eq!((back.stats(), back.len(), s.next_row, s.cumulative, s.counts, s.marks["p"]), (mem.window.stats(), mem.window.len(), mem.window.next_id(), mem.cumulative, mem.counts, seq));
         assert_eq!(back.len(), 37, "the window is full again after the reset");
+        assert!(s.replicates.as_ref().is_some_and(|r| r.covered_to > 0 && r.complete), "a copy of the replicate sums was written: {:?}", s.replicates.as_ref().map(|r| r.covered_to));
+        let reps = crate::session::SessionReplicates::restore(&config, spec.resampling, &back, s.replicates.clone(), s.records_from, &s.records, |c| session.key_of(c)).unwrap();
+        drop(mem);
+        let restored = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
+        restored.restore(crate::session::SessionState { cumulative: s.cumulative, window: back, counts: s.counts, producers: s.marks.clone(), replicates: Some(reps) });
+        let (c1, r1) = session.replicates();
+        let (c2, r2) = restored.replicates();
+        assert!(c1.is_some() && r1.is_some());
+        assert_eq!((c1, r1), (c2, r2), "replicate sums rebuilt from the copy and the kept records");
     }
 
     /// A store of schema 1 (one stored row per window record) is upgraded on open: the same
@@ -638,7 +735,7 @@ mod tests {
         let d = dir("upgrade");
         let refs = set("Tor C");
         let config: ScoreConfig = "bleu:order=2".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3 };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3, resampling: Resampling::default() };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &refs).unwrap();
@@ -652,6 +749,7 @@ mod tests {
             let txn = db.begin_write().unwrap();
             txn.open_table(META).unwrap().insert("schema_version", SCHEMA_ROWS).unwrap();
             txn.delete_table(WINDOW).unwrap();
+            txn.delete_table(REPLICATES).unwrap();
             let mut old = txn.open_table(WINDOW_ROWS).unwrap();
             for (i, r) in rows.iter().enumerate() {
                 let bytes: Vec<u8> = r.iter().flat_map(|v| v.to_le_bytes()).collect();
@@ -664,7 +762,8 @@ mod tests {
         }
         let st = Store::open(&d).unwrap();
         let s = &st.load().unwrap().sessions[0];
-        assert_eq!((&s.window_rows, s.next_row, s.counts.scored), (&rows, 5, 5));
+        assert_eq!((&s.records, s.window_len, s.next_row, s.counts.scored), (&rows, 3, 5, 5));
+        assert_eq!(s.replicates, None, "no copy of replicate sums: they are incomplete");
         let txn = st.db.begin_read().unwrap();
         assert_eq!(txn.open_table(META).unwrap().get("schema_version").unwrap().unwrap().value(), SCHEMA_VERSION);
         assert!(txn.open_table(WINDOW_ROWS).is_err(), "the schema 1 table is gone");

@@ -97,7 +97,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
         let config = config_to_pb(&ScoreConfig::default());
         let labels = [("model".to_string(), w.model.to_string()), ("lang".to_string(), "en-de".to_string())].into_iter().collect();
         SessionsClient::new(ch.clone())
-            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true })
+            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true, resampling: None })
             .await
             .map_err(usage("create session"))?;
     }
@@ -123,7 +123,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
             println!("  -- {:>3}s: model-v8-rc is redeployed with a broken tokenizer setting; watch its recent BLEU --", t);
         }
         for w in SESSIONS {
-            let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into() }).await.map_err(usage("get scores"))?.into_inner();
+            let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0 }).await.map_err(usage("get scores"))?.into_inner();
             let (c, rec) = (r.cumulative.unwrap_or_default(), r.recent.unwrap_or_default());
             println!(
                 "{:>4}s  {:<26} {:>8.2} {:>8.2} {:>8.2} {:>9} {:>8}",
@@ -143,7 +143,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     }
     let elapsed = start.elapsed().as_secs_f64();
     for w in SESSIONS {
-        let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into() }).await.map_err(usage("get scores"))?.into_inner();
+        let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0 }).await.map_err(usage("get scores"))?.into_inner();
         let config = config_from_pb(r.config.as_ref()).map_err(|e| CliError::Usage(format!("demo: {e}")))?;
         println!("\n{} at the end, cumulative:", w.session);
         for line in stats_lines(&stats_from_pb(&r.cumulative.unwrap_or_default()), &config, "  ") {
