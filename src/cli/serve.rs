@@ -27,7 +27,7 @@ startup; a batch is acknowledged only once it is on disk. --durability none keep
 Settings come from --config FILE (TOML) and flags; a flag overrides the file. Keys of the file:
   listen, metrics_listen, health_listen, tls_cert, tls_key, tls_client_ca, tokens,
   refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
-  log_format, max_message_bytes (default {max_message}),
+  log_format, max_message_bytes (default {max_message}), exported_resamples (default {exported}),
   [limits] (below), [[refset]] name, paths = [...], source (loaded at startup).
 
 [limits] keys, each at least 1, with their defaults; a request past one is refused with \
@@ -40,6 +40,7 @@ drain time. Port 0 picks a free port; the bound addresses are logged at startup.
 filled in), the keys the file accepts and the metrics the server exports, as JSON, and exits.",
         data_dir = crate::store::DEFAULT_DATA_DIR,
         max_message = crate::server::DEFAULT_MAX_MESSAGE_BYTES,
+        exported = telemetry::DEFAULT_EXPORTED_RESAMPLES,
     )
 }
 
@@ -95,6 +96,11 @@ pub struct ServeArgs {
     /// Log format on stderr (level from RUST_LOG, default info) [default: human].
     #[arg(long, value_enum)]
     pub log_format: Option<LogFormat>,
+    /// Bootstrap replicates per session exported to Prometheus as per-replicate counters (the
+    /// first N of each session's; 0: none). Each costs (1 + 2 x order + 2 + 3 x chrF orders)
+    /// series per session [default: 100].
+    #[arg(long, value_name = "N")]
+    pub exported_resamples: Option<usize>,
     /// Print the resolved settings (file, flags and defaults), the accepted config keys and
     /// the exported metric names as JSON, then exit without serving.
     #[arg(long)]
@@ -112,9 +118,9 @@ pub enum Durability {
 }
 
 /// The config file's top-level keys (what `FileConfig` reads).
-const FILE_KEYS: [&str; 16] = [
+const FILE_KEYS: [&str; 17] = [
     "tls_cert", "tls_key", "tls_client_ca", "health_listen", "tokens", "data_dir", "durability", "group_commit_ms", "listen",
-    "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "limits", "refset",
+    "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "exported_resamples", "limits", "refset",
 ];
 /// The keys of one `[[refset]]` entry.
 const REFSET_KEYS: [&str; 3] = ["name", "paths", "source"];
@@ -137,6 +143,7 @@ pub struct FileConfig {
     drain_seconds: Option<u64>,
     log_format: Option<String>,
     max_message_bytes: Option<u64>,
+    exported_resamples: Option<usize>,
     #[serde(default)]
     limits: LimitsSection,
     #[serde(default)]
@@ -219,6 +226,9 @@ pub fn resolve(a: &ServeArgs, file: FileConfig) -> Result<Resolved, CliError> {
     if let Some(ms) = a.group_commit_ms.or(file.group_commit_ms) {
         config.group_commit = Duration::from_millis(ms);
     }
+    if let Some(n) = a.exported_resamples.or(file.exported_resamples) {
+        config.exported_resamples = n;
+    }
     if let Some(d) = a.drain_seconds.or(file.drain_seconds) {
         config.drain = Duration::from_secs(d);
     }
@@ -259,6 +269,7 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "group_commit_ms": c.group_commit.as_millis() as u64,
             "drain_seconds": c.drain.as_secs(),
             "max_message_bytes": c.max_message_bytes,
+            "exported_resamples": c.exported_resamples,
             "log_format": match r.log_format { LogFormat::Human => "human", LogFormat::Json => "json" },
             "tls_cert": c.tls.as_ref().map(|t| t.cert.display().to_string()),
             "tls_key": c.tls.as_ref().map(|t| t.key.display().to_string()),

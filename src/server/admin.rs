@@ -23,23 +23,26 @@ pub const METRICS_REQUEST_TIMEOUT: Duration = Duration::from_secs(10);
 /// Connections open at once on the plaintext health listener (probes open one at a time).
 pub const HEALTH_MAX_CONNECTIONS: usize = 64;
 
+/// Series rendered at scrape time and appended to the recorder's (the per-replicate counters).
+pub type ExtraSeries = std::sync::Arc<dyn Fn() -> String + Send + Sync>;
+
 /// Serve `GET /metrics` (Prometheus text format) on `listener` until the returned task is
 /// aborted.
-pub fn serve_metrics(listener: TcpListener, handle: PrometheusHandle) -> Result<tokio::task::JoinHandle<()>, String> {
+pub fn serve_metrics(listener: TcpListener, handle: PrometheusHandle, extra: ExtraSeries) -> Result<tokio::task::JoinHandle<()>, String> {
     let mut admitted = conn::incoming(listener, Listener::Metrics, METRICS_MAX_CONNECTIONS, METRICS_REQUEST_TIMEOUT, None)?;
     Ok(tokio::spawn(async move {
         while let Some(sock) = admitted.next().await {
             let Ok(mut sock) = sock else { continue };
-            let handle = handle.clone();
+            let (handle, extra) = (handle.clone(), extra.clone());
             tokio::spawn(async move {
-                let _ = tokio::time::timeout(METRICS_REQUEST_TIMEOUT, answer_scrape(&mut sock, &handle)).await;
+                let _ = tokio::time::timeout(METRICS_REQUEST_TIMEOUT, answer_scrape(&mut sock, &handle, &extra)).await;
             });
         }
     }))
 }
 
 /// Read one request head and answer it: the metrics for `GET /metrics`, 404 for anything else.
-async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: &PrometheusHandle) {
+async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: &PrometheusHandle, extra: &ExtraSeries) {
     let mut buf = vec![0u8; SCRAPE_HEAD_BYTES];
     let mut n = 0;
     // Read the request head (bounded); the body, if any, is ignored.
@@ -55,7 +58,9 @@ async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: 
     let head = String::from_utf8_lossy(&buf[..n]);
     let path = head.split_whitespace().nth(1).unwrap_or("");
     let (status, ctype, body) = if head.starts_with("GET ") && (path == "/metrics" || path.starts_with("/metrics?")) {
-        ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render())
+        let extra = std::sync::Arc::clone(extra);
+        let more = tokio::task::spawn_blocking(move || extra()).await.unwrap_or_default();
+        ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render() + &more)
     } else {
         ("404 Not Found", "text/plain; charset=utf-8", "not found: try /metrics\n".to_string())
     };

@@ -78,6 +78,8 @@ pub struct ServerConfig {
     pub health_listener: Option<TcpListener>,
     /// Bearer tokens (None: no authentication).
     pub tokens: Option<Arc<auth::Tokens>>,
+    /// Bootstrap replicates per session exported to Prometheus.
+    pub exported_resamples: usize,
 }
 
 /// PEM files of the server's TLS identity.
@@ -93,7 +95,7 @@ pub struct TlsFiles {
 
 impl Default for ServerConfig {
     fn default() -> Self {
-        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None }
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES }
     }
 }
 
@@ -144,6 +146,19 @@ fn setup<E: std::fmt::Display>(e: E) -> RunError {
     RunError::Setup(e.to_string())
 }
 
+/// The per-replicate counters of every session with complete cumulative replicates, rendered
+/// at each scrape.
+fn replicate_series(state: &State, exported: usize) -> admin::ExtraSeries {
+    let state = state.clone();
+    Arc::new(move || {
+        if exported == 0 {
+            return String::new();
+        }
+        let sessions: Vec<_> = state.sessions().into_iter().filter_map(|s| s.cumulative_replicates().map(|r| (s.spec().name.clone(), s.spec().config, r))).collect();
+        crate::telemetry::render_replicates(&sessions, exported)
+    })
+}
+
 /// Run the server on bound listeners until `shutdown` resolves, then drain (bounded by
 /// `config.drain`). `metrics`: the scrape listener and the recorder's handle. Used by `serve`
 /// and, in process, by the tests' server helper.
@@ -151,7 +166,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     let state = open_state(&config).await?;
     let (health, health_service) = tonic_health::server::health_reporter();
     health.set_service_status("", tonic_health::ServingStatus::NotServing).await;
-    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h)).transpose().map_err(RunError::Setup)?;
+    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h, replicate_series(&state, config.exported_resamples))).transpose().map_err(RunError::Setup)?;
     let (stop_tx, stop_rx) = watch::channel(false);
     let tls = tls_config(config.tls.as_ref())?;
     let idle = config.limits.connection_idle;

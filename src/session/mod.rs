@@ -279,6 +279,12 @@ impl Session {
         self.state().apply(producer, sequence, outcomes, rejected, delta)
     }
 
+    /// The cumulative replicate sums now, when complete.
+    pub fn cumulative_replicates(&self) -> Option<Replicates> {
+        let st = self.state();
+        st.replicates.as_ref().and_then(SessionReplicates::cumulative)
+    }
+
     /// The cumulative and recent replicate sums now (each None when not available: no
     /// replicates, or statistics from before the session kept them). The window's sums are
     /// derived outside the lock from a short copy.

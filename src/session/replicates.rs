@@ -148,6 +148,11 @@ impl SessionReplicates {
         })
     }
 
+    /// The cumulative sums, when complete.
+    pub fn cumulative(&self) -> Option<Replicates> {
+        self.complete.then(|| self.cumulative.clone())
+    }
+
     /// The cumulative sums as a durable copy.
     pub fn saved(&self) -> SavedReplicates {
         SavedReplicates { covered_to: self.saved_to, complete: self.complete, sums: self.cumulative.sums().to_vec() }

@@ -35,9 +35,21 @@ const CONNECTIONS_IDLE_CLOSED: &str = "mtgauge_connections_idle_closed_total";
 const WATCH_SKIPPED: &str = "mtgauge_watch_reports_skipped_total";
 const WATCH_DROPPED: &str = "mtgauge_watch_subscribers_dropped_total";
 const METRICS_REFUSED: &str = "mtgauge_metrics_requests_refused_total";
+const REP_SEGMENTS: &str = "mtgauge_replicate_segments_total";
+const REP_BLEU_MATCHES: &str = "mtgauge_replicate_bleu_matches_total";
+const REP_BLEU_NGRAMS: &str = "mtgauge_replicate_bleu_ngrams_total";
+const REP_HYP_TOKENS: &str = "mtgauge_replicate_hypothesis_tokens_total";
+const REP_REF_TOKENS: &str = "mtgauge_replicate_reference_tokens_total";
+const REP_CHRF_MATCHES: &str = "mtgauge_replicate_chrf_matches_total";
+const REP_CHRF_HYP: &str = "mtgauge_replicate_chrf_hypothesis_ngrams_total";
+const REP_CHRF_REF: &str = "mtgauge_replicate_chrf_reference_ngrams_total";
+
+/// Bootstrap replicates per session exported to Prometheus unless configured (the first ones
+/// of the session's replicates; 0 exports none).
+pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 22] = [
+pub const METRIC_NAMES: [&str; 30] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -60,7 +72,74 @@ pub const METRIC_NAMES: [&str; 22] = [
     WATCH_SKIPPED,
     WATCH_DROPPED,
     METRICS_REFUSED,
+    REP_SEGMENTS,
+    REP_BLEU_MATCHES,
+    REP_BLEU_NGRAMS,
+    REP_HYP_TOKENS,
+    REP_REF_TOKENS,
+    REP_CHRF_MATCHES,
+    REP_CHRF_HYP,
+    REP_CHRF_REF,
 ];
+
+/// The replicate families: name, help, and the labels after `session` and `replicate`.
+const REPLICATE_FAMILIES: [(&str, &str); 8] = [
+    (REP_SEGMENTS, "Per session and bootstrap replicate: the summed Poisson(1) weights of its segments (the replicate's segment count)."),
+    (REP_BLEU_MATCHES, "Per session, bootstrap replicate and order: weighted BLEU clipped matches (sum over replicas, then derive each replicate's BLEU)."),
+    (REP_BLEU_NGRAMS, "Per session, bootstrap replicate and order: weighted BLEU hypothesis n-grams."),
+    (REP_HYP_TOKENS, "Per session and bootstrap replicate: weighted BLEU hypothesis tokens."),
+    (REP_REF_TOKENS, "Per session and bootstrap replicate: weighted BLEU effective reference tokens."),
+    (REP_CHRF_MATCHES, "Per session, bootstrap replicate, metric, kind and order: weighted chrF matches."),
+    (REP_CHRF_HYP, "Per session, bootstrap replicate, metric, kind and order: weighted chrF hypothesis n-grams."),
+    (REP_CHRF_REF, "Per session, bootstrap replicate, metric, kind and order: weighted chrF reference n-grams."),
+];
+
+/// The per-replicate counters of sessions' cumulative replicate sums, in the Prometheus text
+/// format: the first `exported` replicates of each (session, config, sums). Rendered at scrape
+/// time from the sums themselves (no per-batch cost). Series per session: `exported` x (1 +
+/// (2 order + 2) for BLEU + 3 (chars + words) per chrF metric).
+pub fn render_replicates(sessions: &[(String, ScoreConfig, crate::metric::resample::Replicates)], exported: usize) -> String {
+    use std::fmt::Write;
+    let mut fam: Vec<String> = REPLICATE_FAMILIES.iter().map(|(name, help)| format!("# HELP {name} {help}\n# TYPE {name} counter\n")).collect();
+    let mut any = vec![false; fam.len()];
+    for (session, config, reps) in sessions {
+        let session = escape_label(session);
+        for r in 0..exported.min(reps.resamples()) {
+            let st = reps.replicate(r);
+            let mut put = |i: usize, labels: &str, v: u64| {
+                any[i] = true;
+                let _ = writeln!(fam[i], "{}{{session=\"{session}\",replicate=\"{r}\"{labels}}} {v}", REPLICATE_FAMILIES[i].0);
+            };
+            put(0, "", st.segments);
+            if let Some(b) = config.metrics.bleu {
+                for n in 0..b.order {
+                    let l = format!(",order=\"{}\"", n + 1);
+                    put(1, &l, st.bleu.matches[n]);
+                    put(2, &l, st.bleu.totals[n]);
+                }
+                put(3, "", st.bleu.hyp_len);
+                put(4, "", st.bleu.ref_len);
+            }
+            for (metric, p) in config.chrf_family() {
+                let c = if metric == Metric::ChrfPlusPlus { &st.chrfpp } else { &st.chrf };
+                for (kind, counts, orders) in [("chars", &c.char, p.chars), ("words", &c.word, p.words)] {
+                    for n in 0..orders {
+                        let l = format!(",metric=\"{}\",kind=\"{kind}\",order=\"{}\"", metric.name(), n + 1);
+                        put(5, &l, counts.matches[n]);
+                        put(6, &l, counts.hyp[n]);
+                        put(7, &l, counts.reference[n]);
+                    }
+                }
+            }
+        }
+    }
+    fam.into_iter().zip(any).filter(|(_, a)| *a).map(|(f, _)| f).collect()
+}
+
+/// A label value in the text format: backslash, double quote and line feed escaped.
+fn escape_label(v: &str) -> String {
+    v.replace('\\', "\\\\").replace('"', "\\\"").replace('\n', "\\n")
+}
 
 /// Install the process-wide Prometheus recorder and describe every metric.
 pub fn install_metrics() -> Result<PrometheusHandle, String> {

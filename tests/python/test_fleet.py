@@ -48,6 +48,7 @@ PROM_DIR = REPO / "deploy" / "prometheus"
 RULES = PROM_DIR / "mtgauge-rules.yml"
 ALERTS = PROM_DIR / "mtgauge-alerts.yml"
 THRESHOLDS = PROM_DIR / "mtgauge-thresholds.yml"
+INTERVAL_RULES = PROM_DIR / "mtgauge-interval-rules.yml"
 
 # Alerts whose `for:` the test shortens (in a rewritten copy of mtgauge-alerts.yml; expressions,
 # labels and annotations stay as in production) so that they can fire within the test.
@@ -321,7 +322,7 @@ def bleu_threshold(offline):
 @pytest.fixture(scope="module")
 def prometheus(tmp_path_factory, replicas, bleu_threshold):
     binary = prometheus_binary()
-    for f in (RULES, ALERTS, THRESHOLDS):
+    for f in (RULES, ALERTS, THRESHOLDS, INTERVAL_RULES):
         assert f.is_file(), f"missing {f}"
     d = tmp_path_factory.mktemp("prometheus")
     alerts = d / "mtgauge-alerts.fast-for.yml"
@@ -337,7 +338,7 @@ def prometheus(tmp_path_factory, replicas, bleu_threshold):
                           + overrides, encoding="utf-8")
     targets = ", ".join(json.dumps(r.metrics_addr) for r in replicas)
     rule_files = "".join(f"  - {json.dumps(str(p))}\n"
-                         for p in (RULES, THRESHOLDS, thresholds, alerts))
+                         for p in (RULES, THRESHOLDS, thresholds, alerts, INTERVAL_RULES))
     config = d / "prometheus.yml"
     config.write_text(
         "global:\n"
@@ -390,19 +391,22 @@ def prometheus(tmp_path_factory, replicas, bleu_threshold):
 
 
 def send_all(jobs, tmp: Path):
-    """Run `mtgauge send` jobs concurrently: each (replica, session, producer, hyps, ids).
+    """Run `mtgauge send` jobs concurrently: each (replica, session, producer, hyps, ids[,
+    extra send arguments]).
 
     Returns the parsed --json acknowledgements, in job order; fails on any error.
     """
     binary = require_binary()
     procs = []
-    for i, (replica, session, producer, hyps, ids) in enumerate(jobs):
+    for i, job in enumerate(jobs):
+        replica, session, producer, hyps, ids = job[:5]
+        extra = list(job[5]) if len(job) > 5 else []
         hyp_f = write_lines(tmp / f"{producer}.hyp.txt", hyps)
         ids_f = write_lines(tmp / f"{producer}.ids.txt", ids)
         out, err = open(tmp / f"{producer}.out", "wb"), open(tmp / f"{producer}.err", "wb")
         cmd = [str(binary), "send", "--server", f"http://{replica.grpc_addr}",
                "--session", session, "--create", "--refset", "ferry", "--metric", "bleu", "--metric", "chrf",
-               "--hyp", str(hyp_f), "--ids", str(ids_f), "--producer", producer, "--json"]
+               "--hyp", str(hyp_f), "--ids", str(ids_f), "--producer", producer, "--json", *extra]
         procs.append((cmd, subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=out, stderr=err),
                       out, err, producer, len(hyps)))
     acks = []
@@ -589,6 +593,100 @@ def test_degraded_session_fires_bleu_low_alert(replicas, prometheus, corpus, off
         assert not found, f"MtgaugeFleetBleuLow for {session}: {found}"
 
 
+SESSION_IV = "fleet-interval"
+SESSION_IV_ONE = "fleet-interval-one"
+# Replicates of the interval sessions: the server's default --exported-resamples (100), so that
+# the daemon's own interval and Prometheus' use the same replicates.
+IV_RESAMPLES = 100
+REPLICATE_FAMILIES = {
+    "mtgauge_replicate_segments_total": (),
+    "mtgauge_replicate_bleu_matches_total": ("order",),
+    "mtgauge_replicate_bleu_ngrams_total": ("order",),
+    "mtgauge_replicate_hypothesis_tokens_total": (),
+    "mtgauge_replicate_reference_tokens_total": (),
+    "mtgauge_replicate_chrf_matches_total": ("metric", "kind", "order"),
+    "mtgauge_replicate_chrf_hypothesis_ngrams_total": ("metric", "kind", "order"),
+    "mtgauge_replicate_chrf_reference_ngrams_total": ("metric", "kind", "order"),
+}
+
+
+def promql_quantile(values, q):
+    """PromQL's quantile(q, v): rank q (N - 1) over the sorted values, 0-based, interpolated
+    linearly between its neighbours (Prometheus documentation, "Aggregation operators", and its
+    promql/quantile.go; from memory; the agreement below checks it)."""
+    v = sorted(values)
+    rank = q * (len(v) - 1)
+    lo = int(rank)
+    hi = min(lo + 1, len(v) - 1)
+    return v[lo] + (rank - lo) * (v[hi] - v[lo])
+
+
+def test_fleet_interval_equals_one_process(replicas, prometheus, corpus, tmp_path):
+    """Half of the corpus on each replica vs the whole corpus in one process: the per-replicate
+    counters summed over the replicas equal the one process's exactly, and so do the intervals
+    that the rules of mtgauge-interval-rules.yml derive from them. The daemon's own interval
+    picks the replicate at rank ceil(q N); PromQL's quantile interpolates: both are checked
+    against the replicate scores Prometheus recorded."""
+    ids, hyps = corpus
+    lines = list(zip(ids, hyps[V7]))
+    extra = ["--resamples", str(IV_RESAMPLES)]
+    jobs = [(replica, SESSION_IV, f"iv-{replica.name}", [h for _, h in half], [i for i, _ in half], extra)
+            for replica, half in zip(replicas, chunks(lines, len(replicas)))]
+    jobs.append((replicas[0], SESSION_IV_ONE, "iv-one", [h for _, h in lines], [i for i, _ in lines], extra))
+    send_all(jobs, tmp_path)
+    n = len(ids)
+    for session in (SESSION_IV, SESSION_IV_ONE):
+        wait_until(f"{n} scored segments of {session} in the replicate counters",
+                   lambda: prometheus.scalar(f'sum(mtgauge_replicate_segments_total{{session="{session}", '
+                                             f'replicate="0"}}) and on () '
+                                             f'sum(session_outcome:mtgauge_segments_total:sum{{session="{session}", '
+                                             f'outcome="scored"}}) == {n}') is not None,
+                   PROM_TIMEOUT)
+    time.sleep(3 * INTERVAL_S)
+
+    # Replicate sums: the fleet's equal the one process's, series by series.
+    for family, labels in REPLICATE_FAMILIES.items():
+        by = ", ".join(("replicate",) + labels)
+        fleet = {tuple(m.get(k) for k in ("replicate",) + labels): v
+                 for m, v in prometheus.query(f'sum by ({by}) ({family}{{session="{SESSION_IV}"}})')}
+        one = {tuple(m.get(k) for k in ("replicate",) + labels): v
+               for m, v in prometheus.query(f'sum by ({by}) ({family}{{session="{SESSION_IV_ONE}"}})')}
+        assert len({k[0] for k in one}) == IV_RESAMPLES, (family, len(one))
+        assert fleet == one, f"{family}: the replicas' sums differ from the one process's"
+
+    # Intervals from Prometheus: fleet and one process alike.
+    bounds = {}
+    for session in (SESSION_IV, SESSION_IV_ONE):
+        sel = f'session="{session}"'
+        bounds[session] = (one_value(prometheus, f"session:mtgauge_bleu_interval_low:sum{{{sel}}}"),
+                           one_value(prometheus, f"session:mtgauge_bleu_interval_high:sum{{{sel}}}"),
+                           one_value(prometheus, f'session_metric:mtgauge_chrf_interval_low:sum{{{sel}, metric="chrf"}}'),
+                           one_value(prometheus, f'session_metric:mtgauge_chrf_interval_high:sum{{{sel}, metric="chrf"}}'))
+    for a, b in zip(bounds[SESSION_IV], bounds[SESSION_IV_ONE]):
+        assert abs(a - b) <= 1e-9, (bounds)
+
+    # The replicate scores Prometheus recorded, and the daemon's own interval of the one process.
+    bleu_reps = [v for _, v in prometheus.query(f'session_replicate:mtgauge_bleu:sum{{session="{SESSION_IV_ONE}"}}')]
+    chrf_reps = [v for _, v in prometheus.query(f'session_metric_replicate:mtgauge_chrf:sum{{session="{SESSION_IV_ONE}", metric="chrf"}}')]
+    assert len(bleu_reps) == len(chrf_reps) == IV_RESAMPLES
+    status = subprocess.run([str(require_binary()), "status", "--server", f"http://{replicas[0].grpc_addr}",
+                             "--session", SESSION_IV_ONE, "--json"], capture_output=True, text=True, timeout=60)
+    assert status.returncode == 0, status.stderr
+    cum = json.loads(status.stdout)["cumulative"]
+    own = {"bleu": cum["bleu"]["interval"], "chrf": cum["chrf"]["interval"]}
+    assert own["bleu"]["resamples"] == IV_RESAMPLES and own["bleu"]["level"] == 0.95
+    for metric, reps, (low, high) in [("bleu", bleu_reps, bounds[SESSION_IV][:2]), ("chrf", chrf_reps, bounds[SESSION_IV][2:])]:
+        v = sorted(reps)
+        # mtgauge: x_(ceil(q N)), 1-based (src/metric/resample.rs); N = 100: x_(3) and x_(98).
+        assert abs(own[metric]["low"] - v[2]) <= 1e-9 and abs(own[metric]["high"] - v[97]) <= 1e-9, (metric, own[metric], v[:4], v[-4:])
+        # PromQL: interpolated at rank 0.025 x 99 = 2.475 and 0.975 x 99 = 96.525 (0-based).
+        assert abs(low - promql_quantile(v, 0.025)) <= 1e-9 and abs(high - promql_quantile(v, 0.975)) <= 1e-9
+        # Hence the two differ by at most the gap between neighbouring replicate scores.
+        assert v[2] <= low <= v[3] and v[96] <= high <= v[97]
+        print(f"\n{metric}: fleet interval from Prometheus [{low:.4f}, {high:.4f}] (interpolated); "
+              f"one process, mtgauge's own [{own[metric]['low']:.4f}, {own[metric]['high']:.4f}] (rank ceil(qN))")
+
+
 def test_stopped_replica_fires_target_down(replicas, prometheus):
     victim, survivor = replicas[-1], replicas[0]
     victim.stopped_by_test = True
@@ -608,3 +706,4 @@ def test_stopped_replica_fires_target_down(replicas, prometheus):
     others = [a for a in prometheus.alerts("MtgaugeTargetDown")
               if a["labels"].get("instance") == survivor.metrics_addr]
     assert not others, others
+
