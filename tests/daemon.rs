@@ -377,7 +377,7 @@ fn live_demo_shows_the_degrading_model() {
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["demo", "--seconds", "6"]).output().unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let text = String::from_utf8_lossy(&out.stdout);
-    // Rows: "<t>s  <session> <BLEU> <recent> <chrF> <segments> <unknown>".
+    // Rows: "<t>s  <session> <BLEU> <recent> <low..high> <chrF> <segments> <unknown>".
     let recent = |session: &str| -> Vec<f64> {
         text.lines().filter(|l| l.split_whitespace().nth(1) == Some(session)).map(|l| l.split_whitespace().nth(3).unwrap().parse().unwrap()).collect()
     };
@@ -387,6 +387,15 @@ fn live_demo_shows_the_degrading_model() {
     assert!(rc[0] > 80.0 && *rc.last().unwrap() < rc[0] - 20.0, "the candidate degrades: {rc:?}");
     assert!((v7[0] - v7.last().unwrap()).abs() < 10.0, "the production model stays: {v7:?}");
     assert!(text.contains("mtgauge status --server"), "ends with commands to try");
+    let ranges: Vec<(f64, f64)> = text
+        .lines()
+        .filter(|l| l.split_whitespace().nth(1) == Some("ferry-en-de.model-v7"))
+        .map(|l| {
+            let (lo, hi) = l.split_whitespace().nth(4).unwrap().split_once("..").unwrap();
+            (lo.parse().unwrap(), hi.parse().unwrap())
+        })
+        .collect();
+    assert!(ranges.iter().all(|(lo, hi)| lo < hi), "a recent interval on every row: {ranges:?}");
 }
 
 fn mtgauge(args: &[&str]) -> std::process::Output {

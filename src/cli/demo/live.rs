@@ -13,7 +13,7 @@ use crate::cli::CliError;
 use super::scenario::{degraded_hypothesis, demo_segments};
 use crate::refs::SegmentInput;
 use crate::metric::{Metric, ScoreConfig};
-use crate::pb::convert::{config_from_pb, config_to_pb, score_of, stats_from_pb};
+use crate::pb::convert::{config_from_pb, config_to_pb, interval_of, score_of, stats_from_pb};
 use crate::pb;
 use crate::pb::ref_sets_client::RefSetsClient;
 use crate::pb::scoring_client::ScoringClient;
@@ -116,7 +116,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     let start = Instant::now();
     let mut tick = tokio::time::interval(Duration::from_secs(1));
     tick.tick().await;
-    println!("{:>5}  {:<26} {:>8} {:>8} {:>8} {:>9} {:>8}", "time", "session", "BLEU", "recent", "chrF", "segments", "unknown");
+    println!("{:>5}  {:<26} {:>8} {:>8} {:>13} {:>8} {:>9} {:>8}", "time", "session", "BLEU", "recent", "recent 95%", "chrF", "segments", "unknown");
     for t in 1..=seconds {
         tick.tick().await;
         if t == seconds.div_ceil(2) && !degraded.swap(true, Ordering::Relaxed) {
@@ -125,12 +125,14 @@ async fn live(seconds: u64) -> Result<(), CliError> {
         for w in SESSIONS {
             let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0 }).await.map_err(usage("get scores"))?.into_inner();
             let (c, rec) = (r.cumulative.unwrap_or_default(), r.recent.unwrap_or_default());
+            let range = interval_of(&rec, Metric::Bleu).map_or_else(|| "-".to_owned(), |i| format!("{:.1}..{:.1}", i.low, i.high));
             println!(
-                "{:>4}s  {:<26} {:>8.2} {:>8.2} {:>8.2} {:>9} {:>8}",
+                "{:>4}s  {:<26} {:>8.2} {:>8.2} {:>13} {:>8.2} {:>9} {:>8}",
                 t,
                 w.session,
                 score_of(&c, Metric::Bleu).unwrap_or(0.0),
                 score_of(&rec, Metric::Bleu).unwrap_or(0.0),
+                range,
                 score_of(&rec, Metric::Chrf).unwrap_or(0.0),
                 c.segments,
                 r.unknown
@@ -146,13 +148,20 @@ async fn live(seconds: u64) -> Result<(), CliError> {
         let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0 }).await.map_err(usage("get scores"))?.into_inner();
         let config = config_from_pb(r.config.as_ref()).map_err(|e| CliError::Usage(format!("demo: {e}")))?;
         println!("\n{} at the end, cumulative:", w.session);
-        for line in stats_lines(&stats_from_pb(&r.cumulative.unwrap_or_default()), &config, "  ") {
+        let c = r.cumulative.unwrap_or_default();
+        for line in stats_lines(&stats_from_pb(&c), &config, "  ") {
             println!("{line}");
+        }
+        for m in config.metric_list() {
+            if let Some(i) = interval_of(&c, m) {
+                println!("  {:<8}{:>6.2} .. {:.2}   95% bootstrap interval ({} resamples over segments)", m.title(), i.low, i.high, i.resamples);
+            }
         }
     }
     let _ = stop_tx.send(());
     let _ = server.await;
     println!("\nran {elapsed:.0} s. 'recent' is the exact BLEU of the last {DEMO_WINDOW} segments; the cumulative score moves slowly by design.");
+    println!("'recent 95%' is its bootstrap interval: a move inside it can be chance alone (which segments happened to come).");
     println!("{PROXY_NOTE}\n");
     println!("try it against a real server:");
     println!("  mtgauge demo --offline --write-files demo-data");
