@@ -45,7 +45,6 @@ impl Layout {
         counts(&s.chrfpp.word, self.chrfpp.1, out);
     }
 
-    #[cfg(test)]
     pub(crate) fn decode(&self, mut r: &[u64]) -> SegmentStats {
         let mut s = SegmentStats::default();
         let mut take = |dst: &mut [u64]| {

@@ -279,6 +279,32 @@ impl Session {
         self.state().apply(producer, sequence, outcomes, rejected, delta)
     }
 
+    /// The segments of the `recent` window, keyed by their replicate key, oldest first; a
+    /// segment scored more than once counts with its latest record. Records kept before
+    /// windows named their segment are left out.
+    pub fn recent_segments(&self) -> Vec<(u64, SegmentStats)> {
+        let layout = crate::metric::layout::Layout::new(&self.spec.config);
+        let records: Vec<Vec<u64>> = {
+            let st = self.state();
+            st.window.records(0, u64::MAX).map(<[u64]>::to_vec).collect()
+        };
+        let fields = layout.width();
+        let mut latest: HashMap<u64, usize> = HashMap::new();
+        let mut out: Vec<(u64, SegmentStats)> = Vec::new();
+        for rec in &records {
+            let Some(key) = rec.get(fields).filter(|&&c| c != NO_SEGMENT).and_then(|&c| self.key_of(c)) else { continue };
+            let stats = layout.decode(&rec[..fields]);
+            match latest.get(&key) {
+                Some(&i) => out[i].1 = stats,
+                None => {
+                    latest.insert(key, out.len());
+                    out.push((key, stats));
+                }
+            }
+        }
+        out
+    }
+
     /// The cumulative replicate sums now, when complete.
     pub fn cumulative_replicates(&self) -> Option<Replicates> {
         let st = self.state();
