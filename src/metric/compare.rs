@@ -48,7 +48,10 @@ use super::resample::{self, accumulate, mix64, percentile_ranks, Interval, Repli
 use super::scores::corpus_score;
 use super::{CorpusStats, Metric, ScoreConfig, SegmentStats};
 
-/// Randomization trials unless configured (measured: see the README's timing of `compare`).
+/// Randomization trials unless configured. Measured (release build, 2 cores, loaded machine):
+/// 100,000 segments of about 25 words that all differ between the systems, BLEU and chrF,
+/// take about 2.6 s of CPU for 10,000 trials, about as much as the 1000 bootstrap replicates of
+/// both systems; segments where the systems agree cost nothing.
 pub const DEFAULT_TRIALS: usize = 10_000;
 /// Most randomization trials accepted.
 pub const MAX_TRIALS: usize = 1_000_000;
