@@ -1,9 +1,11 @@
 //! Renderings of scores, shared by the commands: JSON (`score --json`, `--per-segment`,
-//! `status --json`) and the human view (`score`, `status`, the demo). The numbers themselves
-//! come from [`crate::metric::scores`].
+//! `status --json`, `compare --json`) and the human view (`score`, `compare`, `status`, the
+//! demo). The numbers themselves come from [`crate::metric::scores`] and
+//! [`crate::metric::compare`].
 
 use serde_json::{json, Map, Value};
 
+use crate::metric::compare::{self, CompareSettings, Comparison};
 use crate::metric::resample::{Replicates, METHOD};
 use crate::metric::scores::Report;
 use crate::metric::{BleuScore, CorpusStats, ScoreConfig, SegmentStats};
@@ -164,6 +166,74 @@ pub fn interval_lines(reps: &Replicates, set: &IntervalSettings, indent: &str) -
     for m in reps.config().metric_list() {
         if let Some(i) = reps.interval(m, set.level) {
             out.push(format!("{indent}  {:<8}{:>6.2} .. {:.2}", m.title(), i.low, i.high));
+        }
+    }
+    out
+}
+
+/// The settings of a comparison as JSON, for the `config` object (what reproduces the interval
+/// and the p-value).
+pub fn compare_settings_json(s: &CompareSettings) -> Value {
+    json!({
+        "level": s.level,
+        "resamples": s.resamples,
+        "interval_method": compare::DIFFERENCE_METHOD,
+        "seed": s.seed,
+        "trials": s.trials,
+        "test": compare::TEST_METHOD,
+        "tie_tolerance": compare::TIE_TOLERANCE,
+    })
+}
+
+/// A comparison as JSON: `segments`, then one object per configured metric (keyed like
+/// [`stats_json`]) with `a`, `b` (score and own interval), `difference` (a - b), `interval` (of
+/// the difference), `p_value`, `trials`, `extreme_trials` and `segments`.
+pub fn comparison_json(c: &Comparison) -> Map<String, Value> {
+    let mut m = Map::new();
+    m.insert("segments".into(), json!(c.segments));
+    for x in &c.metrics {
+        m.insert(x.metric.name().into(), serde_json::to_value(x).unwrap_or(Value::Null));
+    }
+    m
+}
+
+/// A signed score difference for the human view.
+fn signed(x: f64) -> String {
+    // -0.00 reads as a difference where there is none.
+    if x.abs() < 0.005 {
+        format!("{:.2}", 0.0)
+    } else {
+        format!("{x:+.2}")
+    }
+}
+
+/// Human lines of a comparison (no trailing newline), each starting with `indent`: a table with
+/// one row per metric (A, B, A - B, the interval of A - B, the p-value), then what the columns
+/// mean with the settings behind them.
+pub fn comparison_lines(c: &Comparison, indent: &str) -> Vec<String> {
+    let s = &c.settings;
+    let pct = (100.0 * s.level * 1e6).round() / 1e6;
+    let head = format!("{pct}% interval of A - B");
+    let mut out = vec![format!("{indent}{:<8}{:>8}{:>8}{:>9}   {head:^24}{:>9}", "", "A", "B", "A - B", "p-value")];
+    for x in &c.metrics {
+        let interval = x.interval.map_or_else(|| "-".to_owned(), |i| format!("{} .. {}", signed(i.low), signed(i.high)));
+        let p = x.p_value.map_or_else(|| "-".to_owned(), |p| format!("{p:.4}"));
+        out.push(format!("{indent}{:<8}{:>8.2}{:>8.2}{:>9}   {interval:^24}{p:>9}", x.metric.title(), x.a.score, x.b.score, signed(x.difference)));
+    }
+    out.push(format!("{indent}A - B above 0: A scores higher on these {} segments.", c.segments));
+    if c.metrics.iter().any(|x| x.interval.is_some()) {
+        out.push(format!(
+            "{indent}interval: paired bootstrap, {} replicates reweighting every segment by Poisson(1) weights drawn from its id (the same weight for A and B), seed {}",
+            s.resamples, s.seed
+        ));
+    }
+    if c.metrics.iter().any(|x| x.p_value.is_some()) {
+        out.push(format!(
+            "{indent}p-value: approximate randomization, {} trials each swapping A's and B's output of every segment with probability 1/2 (seed {}); (c + 1) / (trials + 1), c = trials with |A - B| at least the observed",
+            s.trials, s.seed
+        ));
+        if c.metrics.iter().any(|x| x.p_value.is_some() && x.extreme_trials == 0) {
+            out.push(format!("{indent}  a p-value of {:.4} is the smallest {} trials can give: no trial came as far apart", compare::p_value(0, s.trials), s.trials));
         }
     }
     out

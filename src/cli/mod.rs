@@ -4,6 +4,7 @@
 //! for a failed command.
 
 mod bench;
+mod compare;
 pub mod demo;
 mod input;
 mod load;
@@ -54,6 +55,10 @@ pub enum Command {
     /// Score a hypothesis file against reference files, offline.
     #[command(long_about = score::LONG_ABOUT)]
     Score(score::ScoreArgs),
+    /// Compare two systems' hypothesis files on the same references, offline: the difference of
+    /// their scores, its paired-bootstrap interval and an approximate-randomization p-value.
+    #[command(long_about = compare::LONG_ABOUT)]
+    Compare(compare::CompareArgs),
     /// Print the tokens a tokenizer makes of each input line (one output line per input line).
     Tokenize(tokenize::TokenizeArgs),
     /// Show mtgauge live on built-in demo data (an invented ferry operator's passenger notices).
@@ -164,6 +169,7 @@ pub enum CliError {
 pub fn run(cli: Cli) -> ExitCode {
     let result = match cli.command {
         Command::Score(a) => score::run(a),
+        Command::Compare(a) => compare::run(a),
         Command::Tokenize(a) => tokenize::run(a),
         Command::Demo(a) => demo::run(a),
         Command::Bench(a) => bench::run(a),

@@ -132,6 +132,13 @@ pub fn score_lines(refs: Arc<RefSet>, config: ScoreConfig, hyps: &[&str], thread
     Scored { refs, config, segments }
 }
 
+/// Per-segment statistics of several systems' aligned hypotheses against one reference set,
+/// compiled once (`compare`); one vector per system, in the order given.
+pub fn score_systems(refs: Arc<RefSet>, config: ScoreConfig, systems: &[Vec<&str>], threads: usize, show_progress: bool) -> Vec<Vec<SegmentStats>> {
+    let total = systems.iter().map(Vec::len).sum();
+    scoring(refs, config, total, show_progress, |c, done| systems.iter().map(|hyps| c.score_aligned(hyps, threads, done)).collect())
+}
+
 /// The corpus statistics of aligned hypotheses, without keeping per-segment statistics (memory
 /// is the references and the input, nothing per scored segment).
 pub fn score_corpus_lines(refs: Arc<RefSet>, config: ScoreConfig, hyps: &[&str], threads: usize, show_progress: bool) -> CorpusStats {

@@ -7,11 +7,14 @@
 //! - [`ngram`]: the exact n-gram counting both use (packed integer keys, gram tables).
 //! - [`resample`]: bootstrap replicates (Poisson weights per segment, weighted integer sums)
 //!   and the percentile intervals derived from them.
+//! - [`compare`]: two systems on the same segments: the difference of their scores, its paired
+//!   bootstrap interval and an approximate-randomization p-value.
 //! - [`scores`]: every score of a corpus or a segment under a configuration, derived in one place
 //!   for all outputs.
 
 pub mod bleu;
 pub mod chrf;
+pub mod compare;
 mod config;
 pub(crate) mod layout;
 pub mod ngram;

@@ -1,0 +1,167 @@
+//! `mtgauge compare`: two systems' hypothesis files scored against the same references,
+//! offline, with the difference of their scores, its paired-bootstrap interval and an
+//! approximate-randomization p-value ([`crate::metric::compare`]).
+
+use std::io::Write;
+use std::sync::Arc;
+
+use clap::Args;
+use serde_json::{json, Value};
+
+use super::input::{display_name, parse_refset, read_all, read_bytes, RefFormat, PROGRESS_MIN_SEGMENTS};
+use super::score::score_systems;
+use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
+use crate::metric::compare::{self, CompareSettings, Comparison, DEFAULT_TRIALS, MAX_TRIALS};
+use crate::metric::resample::{self, DEFAULT_LEVEL, DEFAULT_RESAMPLE_SEED, OFFLINE_RESAMPLES};
+use crate::metric::ScoreConfig;
+use crate::refs::{check_same_length, split_lines};
+use crate::report::{comparison_json, comparison_lines, compare_settings_json, config_json, refset_json, RefSetSummary, PROXY_NOTE};
+
+pub(super) const LONG_ABOUT: &str = "\
+Compare two systems offline: score system A's and system B's hypothesis files against the same \
+references and report, per metric, both corpus scores, their difference A - B, a confidence \
+interval of the difference and a p-value.
+
+References are read as by `mtgauge score` (plain line-aligned files, one --ref per reference \
+stream, or one JSONL file); each hypothesis file has one line per segment, in segment order.
+
+The interval (paired bootstrap): each of --resamples replicates gives every segment a random \
+Poisson(1) weight, the same for A and B (the weights are a function of segment id, replicate \
+and --seed), recomputes both corpus scores and takes their difference; the interval is the \
+central --level share of those differences. It says how much the difference could move if the \
+test set were drawn again: an interval that excludes 0 means the sign of the difference is \
+unlikely to be a matter of which segments happened to be in the test set.
+
+The p-value (approximate randomization): each of --trials trials swaps A's and B's outputs of \
+every segment with probability 1/2 (coins drawn from segment id, trial and --seed) and \
+recomputes the difference; c counts the trials whose |A - B| is at least the observed one, and \
+p = (c + 1) / (trials + 1). It is the chance of a difference at least this large if the two \
+systems were interchangeable on every segment; a small p (say below 0.05) means the difference \
+is unlikely to be chance alone. The smallest p that N trials can give is 1 / (N + 1).
+
+Both concern these references and this configuration only: metrics are a proxy for quality, \
+and differences are comparable only under the same tokenizer, references and configuration.
+
+Examples:
+  mtgauge compare --ref ref.de.txt --hyp system-a.de.txt --hyp system-b.de.txt
+  mtgauge compare --ref refs.jsonl --hyp a.txt --hyp b.txt --metric chrf++ --json
+  mtgauge compare --ref ref.txt --hyp a.txt --hyp b.txt --resamples 2000 --trials 20000 --seed 7
+
+Errors (unreadable file, invalid UTF-8, a hypothesis file with more or fewer lines than the \
+references, malformed JSONL) print one line naming the file and line, exit with code 2, and \
+print nothing on stdout.";
+
+/// Arguments of `mtgauge compare`.
+#[derive(Debug, Args)]
+pub struct CompareArgs {
+    /// Reference file: repeat for several reference streams, or give one .jsonl file.
+    #[arg(long = "ref", value_name = "FILE", required = true)]
+    pub refs: Vec<String>,
+    /// Hypothesis file of system A, then (given again) of system B: --hyp A --hyp B. One line per
+    /// segment; `-` reads standard input (for one of the two).
+    #[arg(long = "hyp", value_name = "FILE", required = true)]
+    pub hyps: Vec<String>,
+    /// How to read --ref files.
+    #[arg(long, value_enum, default_value_t = RefFormat::Auto, value_name = "FORMAT")]
+    pub ref_format: RefFormat,
+    #[command(flatten)]
+    pub scoring: ScoringArgs,
+    /// Print one JSON object instead of the table.
+    #[arg(long)]
+    pub json: bool,
+    /// Threads for scoring, replicates and trials (default: the number of CPUs). Results never
+    /// depend on it.
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Bootstrap replicates for the interval of the difference (0: no interval).
+    #[arg(long, value_name = "N", default_value_t = OFFLINE_RESAMPLES)]
+    pub resamples: usize,
+    /// Randomization trials for the p-value (0: no p-value).
+    #[arg(long, value_name = "N", default_value_t = DEFAULT_TRIALS)]
+    pub trials: usize,
+    /// Seed of the bootstrap weights and of the swap coins (same seed, same result).
+    #[arg(long, value_name = "S", default_value_t = DEFAULT_RESAMPLE_SEED)]
+    pub seed: u64,
+    /// Confidence level of the intervals, strictly between 0 and 1.
+    #[arg(long, value_name = "L", default_value_t = DEFAULT_LEVEL)]
+    pub level: f64,
+}
+
+impl CompareArgs {
+    fn settings(&self) -> Result<CompareSettings, CliError> {
+        if self.resamples > resample::MAX_RESAMPLES {
+            return Err(CliError::Usage(format!("--resamples must be at most {}", resample::MAX_RESAMPLES)));
+        }
+        if self.trials > MAX_TRIALS {
+            return Err(CliError::Usage(format!("--trials must be at most {MAX_TRIALS}")));
+        }
+        if !resample::valid_level(self.level) {
+            return Err(CliError::Usage("--level must be strictly between 0 and 1".into()));
+        }
+        Ok(CompareSettings { resamples: self.resamples, seed: self.seed, level: self.level, trials: self.trials })
+    }
+}
+
+pub(super) fn run(a: CompareArgs) -> Result<(), CliError> {
+    let config = a.scoring.config()?;
+    if a.hyps.len() != 2 {
+        return Err(CliError::Usage(format!("give --hyp exactly twice (system A, then system B); got {}", a.hyps.len())));
+    }
+    if a.hyps.iter().all(|h| h == "-") {
+        return Err(CliError::Usage("standard input (-) can be only one of the two --hyp files".into()));
+    }
+    if a.threads == Some(0) {
+        return Err(CliError::Usage("--threads must be at least 1".into()));
+    }
+    let threads = a.threads.unwrap_or_else(default_threads);
+    let settings = a.settings()?;
+    let ref_bytes = read_all(&a.refs)?;
+    // The references are parsed before the hypotheses are read: their errors come first.
+    let refs = Arc::new(parse_refset(&a.refs, a.ref_format, &ref_bytes, None)?);
+    let hyp_bytes = a.hyps.iter().map(|p| read_bytes(p)).collect::<Result<Vec<_>, _>>()?;
+    let mut systems = Vec::with_capacity(2);
+    for (path, bytes) in a.hyps.iter().zip(&hyp_bytes) {
+        let name = display_name(path);
+        let lines = split_lines(name, bytes)?;
+        check_same_length(name, lines.len(), display_name(&a.refs[0]), refs.len())?;
+        systems.push(lines);
+    }
+    let show = stderr_is_terminal() && refs.len() >= PROGRESS_MIN_SEGMENTS;
+    let stats = score_systems(Arc::clone(&refs), config, &systems, threads, show);
+    let keys: Vec<u64> = refs.segments().map(|s| resample::segment_key(s.id().as_bytes())).collect();
+    let result = compare::compare(&config, &keys, &stats[0], &stats[1], &settings, threads);
+    let summary = RefSetSummary::from(refs.as_ref());
+    let out = if a.json { json_view(&result, &config, &summary, &a.hyps) } else { human(&result, &config, &summary, &a.hyps) };
+    let mut stdout = std::io::stdout().lock();
+    stdout
+        .write_all(out.as_bytes())
+        .and_then(|_| stdout.flush())
+        .map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+fn json_view(result: &Comparison, config: &ScoreConfig, refs: &RefSetSummary, hyps: &[String]) -> String {
+    let mut m = comparison_json(result);
+    m.insert("systems".into(), json!({"a": display_name(&hyps[0]), "b": display_name(&hyps[1])}));
+    m.insert("refset".into(), refset_json(None, refs));
+    let mut c = config_json(config);
+    if let Value::Object(o) = &mut c {
+        o.insert("comparison".into(), compare_settings_json(&result.settings));
+    }
+    m.insert("config".into(), c);
+    m.insert("note".into(), json!(PROXY_NOTE));
+    serde_json::to_string_pretty(&Value::Object(m)).unwrap_or_default() + "\n"
+}
+
+fn human(result: &Comparison, config: &ScoreConfig, refs: &RefSetSummary, hyps: &[String]) -> String {
+    let per = refs.references as f64 / refs.segments.max(1) as f64;
+    let digest = crate::refs::hex(&refs.digest);
+    let mut lines = vec![
+        format!("mtgauge compare: {} segments, {:.2} references per segment, references {}", result.segments, per, &digest[..16]),
+        format!("  A = {}", display_name(&hyps[0])),
+        format!("  B = {}", display_name(&hyps[1])),
+    ];
+    lines.extend(comparison_lines(result, "  "));
+    lines.push(format!("  config  {}", config.describe()));
+    lines.push(PROXY_NOTE.to_owned());
+    lines.join("\n") + "\n"
+}
