@@ -561,3 +561,66 @@ async fn run_in_process_serves_until_its_shutdown_future_resolves() {
     let after = tonic::transport::Endpoint::from_shared(grpc).unwrap().connect().await;
     assert!(after.is_err(), "the listener is closed after run returns");
 }
+
+/// `compare --server`: two sessions on the same reference set compared over their windows
+/// give exactly what `compare` gives offline on the same files (the windows hold every segment,
+/// the weights and swap coins are keyed by segment id, so the order segments arrived in does
+/// not matter); identical systems differ by 0 with p = 1; sessions of another configuration
+/// are refused.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn compare_live_equals_compare_offline() {
+    let dir = temp_dir("compare");
+    demo_files(&dir);
+    let refs = dir.join("refs.jsonl");
+    let ids: String = demo_segments().iter().map(|s| s.id.clone() + "\n").collect();
+    std::fs::write(dir.join("ids.txt"), ids).unwrap();
+    let server = Server::start(&["--refset", &format!("ferry={}", refs.display())]);
+    server.wait_serving().await;
+    let p = |n: &str| dir.join(n).to_str().unwrap().to_owned();
+    let send = |session: &str, hyp: &str, extra: &[&str]| {
+        let mut args = vec!["send", "--server", &server.grpc, "--session", session, "--create", "--refset", "ferry", "--ids"];
+        let (ids, hyp) = (p("ids.txt"), p(hyp));
+        args.extend([ids.as_str(), "--hyp", hyp.as_str(), "--batch", "37"]);
+        args.extend(extra);
+        let out = mtgauge(&args);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    };
+    send("v7", "hyp.model-v7.de.txt", &[]);
+    send("v7-again", "hyp.model-v7.de.txt", &[]);
+    send("fallback", "hyp.fallback-dictionary.de.txt", &[]);
+    send("v7-caseless", "hyp.model-v7.de.txt", &["--caseless"]);
+    let live = |a: &str, b: &str| -> serde_json::Value {
+        let out = mtgauge(&["compare", "--server", &server.grpc, "--session", a, "--session", b, "--json", "--trials", "2000"]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        serde_json::from_slice(&out.stdout).unwrap()
+    };
+    let worse = live("v7", "fallback");
+    let offline = mtgauge(&["compare", "--ref", refs.to_str().unwrap(), "--hyp", &p("hyp.model-v7.de.txt"), "--hyp", &p("hyp.fallback-dictionary.de.txt"), "--json", "--trials", "2000", "--resamples", "200"]);
+    assert!(offline.status.success(), "{}", String::from_utf8_lossy(&offline.stderr));
+    let offline: serde_json::Value = serde_json::from_slice(&offline.stdout).unwrap();
+    assert_eq!(worse["segments"], 300);
+    assert_eq!((&worse["recent"]["a"], &worse["recent"]["b"]), (&serde_json::json!(300), &serde_json::json!(300)));
+    for m in ["bleu", "chrf"] {
+        assert_eq!(worse[m], offline[m], "{m}: live and offline comparisons agree exactly");
+    }
+    assert_eq!(worse["config"]["comparison"], offline["config"]["comparison"]);
+    assert!(worse["bleu"]["difference"].as_f64().unwrap() > 5.0 && worse["bleu"]["p_value"].as_f64().unwrap() < 0.01);
+    assert!(worse["bleu"]["interval"]["low"].as_f64().unwrap() > 0.0, "the interval excludes 0: {}", worse["bleu"]);
+    // B vs A: the negation.
+    let back = live("fallback", "v7");
+    assert_eq!(back["bleu"]["difference"].as_f64(), worse["bleu"]["difference"].as_f64().map(|d| -d));
+    assert_eq!(back["bleu"]["interval"]["low"].as_f64(), worse["bleu"]["interval"]["high"].as_f64().map(|d| -d));
+    assert_eq!(back["bleu"]["p_value"], worse["bleu"]["p_value"]);
+    // The same output in two sessions.
+    let same = live("v7", "v7-again");
+    assert_eq!((same["bleu"]["difference"].as_f64(), same["bleu"]["p_value"].as_f64()), (Some(0.0), Some(1.0)));
+    assert!(same["bleu"]["interval"]["low"].as_f64().unwrap() <= 0.0 && same["bleu"]["interval"]["high"].as_f64().unwrap() >= 0.0);
+    // Another configuration: refused, naming both.
+    let refused = mtgauge(&["compare", "--server", &server.grpc, "--session", "v7", "--session", "v7-caseless"]);
+    assert_eq!(refused.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&refused.stderr);
+    assert!(err.contains("different configurations") && err.contains("caseless=yes"), "{err}");
+    let human = mtgauge(&["compare", "--server", &server.grpc, "--session", "v7", "--session", "fallback", "--trials", "500"]);
+    let text = String::from_utf8_lossy(&human.stdout);
+    assert!(text.contains("300 segments in both recent windows") && text.contains("A = session v7") && text.contains("proxy"), "{text}");
+}

@@ -42,7 +42,10 @@ is unlikely to be chance alone. The smallest p that N trials can give is 1 / (N 
 Both concern these references and this configuration only: metrics are a proxy for quality, \
 and differences are comparable only under the same tokenizer, references and configuration.
 
+Live: with --server URL --session A --session B, a running server compares two of its sessions over the segments both `recent` windows hold (matched by segment id; a segment scored more than once counts with its latest score). Both sessions must score against the same reference-set version with the same configuration, else the server refuses with FAILED_PRECONDITION. The default replicates there are 200 (the daemon's).
+
 Examples:
+  mtgauge compare --server http://127.0.0.1:7410 --session model-v7 --session model-v8-rc
   mtgauge compare --ref ref.de.txt --hyp system-a.de.txt --hyp system-b.de.txt
   mtgauge compare --ref refs.jsonl --hyp a.txt --hyp b.txt --metric chrf++ --json
   mtgauge compare --ref ref.txt --hyp a.txt --hyp b.txt --resamples 2000 --trials 20000 --seed 7
@@ -55,12 +58,18 @@ print nothing on stdout.";
 #[derive(Debug, Args)]
 pub struct CompareArgs {
     /// Reference file: repeat for several reference streams, or give one .jsonl file.
-    #[arg(long = "ref", value_name = "FILE", required = true)]
+    #[arg(long = "ref", value_name = "FILE", required_unless_present = "server")]
     pub refs: Vec<String>,
     /// Hypothesis file of system A, then (given again) of system B: --hyp A --hyp B. One line per
     /// segment; `-` reads standard input (for one of the two).
-    #[arg(long = "hyp", value_name = "FILE", required = true)]
+    #[arg(long = "hyp", value_name = "FILE", required_unless_present = "server")]
     pub hyps: Vec<String>,
+    /// Compare two sessions of a running server instead of files, e.g. http://127.0.0.1:7410.
+    #[arg(long, value_name = "URL", conflicts_with_all = ["refs", "hyps"], requires = "sessions")]
+    pub server: Option<String>,
+    /// With --server: session A, then (given again) session B.
+    #[arg(long = "session", value_name = "NAME", requires = "server")]
+    pub sessions: Vec<String>,
     /// How to read --ref files.
     #[arg(long, value_enum, default_value_t = RefFormat::Auto, value_name = "FORMAT")]
     pub ref_format: RefFormat,
@@ -73,9 +82,10 @@ pub struct CompareArgs {
     /// depend on it.
     #[arg(long, value_name = "N")]
     pub threads: Option<usize>,
-    /// Bootstrap replicates for the interval of the difference (0: no interval).
-    #[arg(long, value_name = "N", default_value_t = OFFLINE_RESAMPLES)]
-    pub resamples: usize,
+    /// Bootstrap replicates for the interval of the difference (0: no interval) [default: 1000
+    /// offline, 200 with --server].
+    #[arg(long, value_name = "N")]
+    pub resamples: Option<usize>,
     /// Randomization trials for the p-value (0: no p-value).
     #[arg(long, value_name = "N", default_value_t = DEFAULT_TRIALS)]
     pub trials: usize,
@@ -89,7 +99,9 @@ pub struct CompareArgs {
 
 impl CompareArgs {
     fn settings(&self) -> Result<CompareSettings, CliError> {
-        if self.resamples > resample::MAX_RESAMPLES {
+        let default = if self.server.is_some() { resample::DAEMON_RESAMPLES } else { OFFLINE_RESAMPLES };
+        let resamples = self.resamples.unwrap_or(default);
+        if resamples > resample::MAX_RESAMPLES {
             return Err(CliError::Usage(format!("--resamples must be at most {}", resample::MAX_RESAMPLES)));
         }
         if self.trials > MAX_TRIALS {
@@ -98,11 +110,14 @@ impl CompareArgs {
         if !resample::valid_level(self.level) {
             return Err(CliError::Usage("--level must be strictly between 0 and 1".into()));
         }
-        Ok(CompareSettings { resamples: self.resamples, seed: self.seed, level: self.level, trials: self.trials })
+        Ok(CompareSettings { resamples, seed: self.seed, level: self.level, trials: self.trials })
     }
 }
 
 pub(super) fn run(a: CompareArgs) -> Result<(), CliError> {
+    if let Some(server) = &a.server {
+        return live(&a, server);
+    }
     let config = a.scoring.config()?;
     if a.hyps.len() != 2 {
         return Err(CliError::Usage(format!("give --hyp exactly twice (system A, then system B); got {}", a.hyps.len())));
@@ -137,6 +152,91 @@ pub(super) fn run(a: CompareArgs) -> Result<(), CliError> {
         .write_all(out.as_bytes())
         .and_then(|_| stdout.flush())
         .map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+/// `compare --server`: the server compares two of its sessions.
+fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
+    if a.sessions.len() != 2 {
+        return Err(CliError::Usage(format!("give --session exactly twice (session A, then session B); got {}", a.sessions.len())));
+    }
+    let settings = a.settings()?;
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
+    let report = rt.block_on(async {
+        let ch = crate::client::channel(server)?;
+        let req = crate::pb::CompareRequest {
+            session_a: a.sessions[0].clone(),
+            session_b: a.sessions[1].clone(),
+            level: settings.level,
+            resamples: Some(settings.resamples as u32),
+            trials: Some(settings.trials as u32),
+            seed: Some(settings.seed),
+        };
+        let r = crate::pb::scoring_client::ScoringClient::new(ch).compare(req).await.map_err(|s| crate::client::ClientError::call("compare", s))?;
+        Ok::<_, CliError>(r.into_inner())
+    })?;
+    let config = crate::pb::convert::config_from_pb(report.config.as_ref()).map_err(|e| CliError::Usage(format!("server sent a bad configuration: {e}")))?;
+    let result = comparison_from_pb(&report);
+    let out = if a.json {
+        let mut m = comparison_json(&result);
+        m.insert("sessions".into(), json!({"a": report.session_a, "b": report.session_b}));
+        m.insert("recent".into(), json!({"a": report.recent_a, "b": report.recent_b}));
+        m.insert("refset".into(), json!({"digest": report.refset_digest}));
+        let mut c = config_json(&config);
+        if let Value::Object(o) = &mut c {
+            o.insert("comparison".into(), compare_settings_json(&result.settings));
+        }
+        m.insert("config".into(), c);
+        m.insert("unix_time".into(), json!(report.unix_time));
+        m.insert("note".into(), json!(PROXY_NOTE));
+        serde_json::to_string_pretty(&Value::Object(m)).unwrap_or_default() + "\n"
+    } else {
+        let mut lines = vec![
+            format!(
+                "mtgauge compare: {} segments in both recent windows ({} in A's, {} in B's), references {}",
+                report.segments,
+                report.recent_a,
+                report.recent_b,
+                &report.refset_digest[..16.min(report.refset_digest.len())]
+            ),
+            format!("  A = session {}", report.session_a),
+            format!("  B = session {}", report.session_b),
+        ];
+        lines.extend(comparison_lines(&result, "  "));
+        lines.push(format!("  config  {}", config.describe()));
+        lines.push(PROXY_NOTE.to_owned());
+        lines.join("\n") + "\n"
+    };
+    let mut stdout = std::io::stdout().lock();
+    stdout.write_all(out.as_bytes()).and_then(|_| stdout.flush()).map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+/// A server's comparison as the engine's (for the shared renderings).
+fn comparison_from_pb(r: &crate::pb::CompareReport) -> Comparison {
+    use crate::pb::convert::interval_from_pb;
+    let settings = CompareSettings { resamples: r.resamples as usize, seed: r.seed, level: r.level, trials: r.trials as usize };
+    let metrics = r
+        .metrics
+        .iter()
+        .filter_map(|m| {
+            let metric = crate::metric::Metric::ALL.into_iter().find(|x| x.name() == m.metric)?;
+            let mut interval = m.interval.as_ref().map(interval_from_pb);
+            if let Some(i) = &mut interval {
+                i.method = compare::DIFFERENCE_METHOD;
+            }
+            Some(compare::MetricComparison {
+                metric,
+                segments: r.segments,
+                a: compare::SystemScore { score: m.a, interval: m.a_interval.as_ref().map(interval_from_pb) },
+                b: compare::SystemScore { score: m.b, interval: m.b_interval.as_ref().map(interval_from_pb) },
+                difference: m.difference,
+                interval,
+                p_value: m.p_value,
+                trials: m.trials as usize,
+                extreme_trials: m.extreme_trials as usize,
+            })
+        })
+        .collect();
+    Comparison { segments: r.segments, settings, metrics }
 }
 
 fn json_view(result: &Comparison, config: &ScoreConfig, refs: &RefSetSummary, hyps: &[String]) -> String {

@@ -54,6 +54,9 @@ pub enum ServiceError {
         /// Producer id.
         producer: String,
     },
+    /// Two sessions that cannot be compared (another reference-set version or configuration).
+    #[error("{0}")]
+    NotComparable(String),
     /// No valid credentials on a call that needs them.
     #[error("{0}")]
     Unauthenticated(String),
@@ -92,7 +95,7 @@ impl From<ServiceError> for tonic::Status {
             ServiceError::PathDenied(_) | ServiceError::Forbidden(_) => Code::PermissionDenied,
             ServiceError::Unauthenticated(_) => Code::Unauthenticated,
             ServiceError::Limit { .. } | ServiceError::Busy(_) => Code::ResourceExhausted,
-            ServiceError::ProducerBusy { .. } => Code::FailedPrecondition,
+            ServiceError::ProducerBusy { .. } | ServiceError::NotComparable(_) => Code::FailedPrecondition,
             ServiceError::ShuttingDown | ServiceError::StoreFailed(_) => Code::Unavailable,
             ServiceError::Internal(_) => Code::Internal,
         };

@@ -22,7 +22,7 @@ use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
 use crate::metric::CorpusStats;
 use crate::pb;
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
-use crate::pb::convert::{config_from_pb, config_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals};
+use crate::pb::convert::{config_from_pb, config_to_pb, interval_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals};
 use crate::refs::compiled::Scratch;
 use crate::report::PROXY_NOTE;
 use crate::session::{ItemKey, Outcome, Session};
@@ -415,6 +415,85 @@ pub fn report(session: &Session, level: f64) -> pb::ScoresReport {
     }
 }
 
+/// Compare two sessions over the segments both `recent` windows hold (CPU work: call from a
+/// blocking thread).
+fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<pb::CompareReport> {
+    use crate::metric::compare::{compare, CompareSettings, DEFAULT_TRIALS, MAX_TRIALS};
+    if a.refs().digest() != b.refs().digest() {
+        return Err(ServiceError::NotComparable(format!(
+            "sessions '{}' and '{}' score against different reference-set versions ({} and {}): their segments cannot be paired",
+            a.spec().name,
+            b.spec().name,
+            &a.refs().digest_hex()[..16],
+            &b.refs().digest_hex()[..16]
+        )));
+    }
+    if a.spec().config != b.spec().config {
+        return Err(ServiceError::NotComparable(format!(
+            "sessions '{}' and '{}' use different configurations ({} vs {}): their scores are not comparable",
+            a.spec().name,
+            b.spec().name,
+            a.spec().config.describe(),
+            b.spec().config.describe()
+        )));
+    }
+    let level = check_level(r.level)?;
+    let settings = CompareSettings {
+        resamples: r.resamples.map_or(crate::metric::resample::DAEMON_RESAMPLES, |n| n as usize),
+        seed: r.seed.unwrap_or(crate::metric::resample::DEFAULT_RESAMPLE_SEED),
+        level: if level == 0.0 { DEFAULT_LEVEL } else { level },
+        trials: r.trials.map_or(DEFAULT_TRIALS, |n| n as usize),
+    };
+    if settings.resamples > crate::metric::resample::MAX_RESAMPLES || settings.trials > MAX_TRIALS {
+        return Err(ServiceError::Invalid(format!("at most {} resamples and {MAX_TRIALS} trials", crate::metric::resample::MAX_RESAMPLES)));
+    }
+    let (in_a, in_b) = (a.recent_segments(), b.recent_segments());
+    let of_b: HashMap<u64, &crate::metric::SegmentStats> = in_b.iter().map(|(k, s)| (*k, s)).collect();
+    let (mut keys, mut sa, mut sb) = (Vec::new(), Vec::new(), Vec::new());
+    for (k, s) in &in_a {
+        if let Some(t) = of_b.get(k) {
+            keys.push(*k);
+            sa.push(*s);
+            sb.push(**t);
+        }
+    }
+    let config = &a.spec().config;
+    let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let c = compare(config, &keys, &sa, &sb, &settings, threads);
+    let metrics = c
+        .metrics
+        .iter()
+        .map(|m| pb::MetricComparison {
+            metric: m.metric.name().to_owned(),
+            a: m.a.score,
+            b: m.b.score,
+            a_interval: m.a.interval.map(interval_to_pb),
+            b_interval: m.b.interval.map(interval_to_pb),
+            difference: m.difference,
+            interval: m.interval.map(interval_to_pb),
+            p_value: m.p_value,
+            trials: m.trials as u64,
+            extreme_trials: m.extreme_trials as u64,
+        })
+        .collect();
+    Ok(pb::CompareReport {
+        session_a: a.spec().name.clone(),
+        session_b: b.spec().name.clone(),
+        refset_digest: a.refs().digest_hex(),
+        config: Some(config_to_pb(config)),
+        segments: c.segments,
+        recent_a: in_a.len() as u64,
+        recent_b: in_b.len() as u64,
+        metrics,
+        level: settings.level,
+        resamples: settings.resamples as u32,
+        trials: settings.trials as u32,
+        seed: settings.seed,
+        unix_time: unix_now(),
+        note: PROXY_NOTE.to_owned(),
+    })
+}
+
 /// A requested interval level: 0 (the default) or strictly between 0 and 1.
 fn check_level(level: f64) -> Result<f64> {
     if level == 0.0 || valid_level(level) {
@@ -535,6 +614,16 @@ impl pb::scoring_server::Scoring for Services {
         let level = check_level(r.level)?;
         let s = self.state.session(&r.session)?;
         Ok(Response::new(blocking(move || Ok(report(&s, level))).await?))
+    }
+
+    async fn compare(&self, req: Request<pb::CompareRequest>) -> std::result::Result<Response<pb::CompareReport>, Status> {
+        self.authorize(&req, Scope::Read)?;
+        let r = req.into_inner();
+        let (a, b) = (self.state.session(&r.session_a)?, self.state.session(&r.session_b)?);
+        let slot = self.state.scoring_slot().await;
+        let report = blocking(move || compare_sessions(&a, &b, &r)).await?;
+        drop(slot);
+        Ok(Response::new(report))
     }
 
     async fn watch_scores(&self, req: Request<pb::WatchScoresRequest>) -> std::result::Result<Response<Self::WatchScoresStream>, Status> {
