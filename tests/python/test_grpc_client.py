@@ -747,3 +747,65 @@ def test_load_reports_its_config_line(mtgauge, server, serving):
     assert figures["config"] == ("tokenizer=nist caseless=no "
                                  "bleu:order=2,ref-length=closest,smoothing=epsilon,epsilon=0.1 "
                                  "chrf++:chars=6,words=1,beta=2"), figures["config"]
+
+
+# ---------------------------------------------------------------------------
+# intervals and comparisons through the API (the expected numbers come from the binary's own
+# offline `score --interval`: the same Poisson weights keyed by segment id)
+
+
+def test_intervals_by_level_and_resampling(stubs, api, mtgauge, demo_dir, v7_stream):
+    info = api.sessions.Get(stubs.sessions.GetSessionRequest(name=V7_SESSION), timeout=RPC_TIMEOUT)
+    assert (info.resampling.resamples, info.resampling.seed) == (200, 1), "the daemon's defaults"
+    report = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION), timeout=RPC_TIMEOUT)
+    off = mtgauge.score_json(["--ref", demo_dir / "refs.jsonl", "--hyp", demo_dir / "hyp.model-v7.de.txt",
+                              *[a for m in METRICS for a in ("--metric", m)],
+                              "--interval", "--resamples", "200", "--seed", "1"])
+    got = report.cumulative.bleu.interval
+    want = off["bleu"]["interval"]
+    assert (got.level, got.resamples, got.seed, got.method) == (0.95, 200, 1, want["method"])
+    assert (got.low, got.high) == (want["low"], want["high"]), (got, want)
+    assert report.recent.bleu.interval.low == got.low, "the window holds every segment"
+    assert report.interval_note == ""
+    for c in report.cumulative.chrf:
+        assert c.interval.low < c.score < c.interval.high, c
+    # A lower level gives a narrower interval around the same replicates.
+    narrow = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION, level=0.5),
+                                   timeout=RPC_TIMEOUT).cumulative.bleu.interval
+    assert got.low < narrow.low < narrow.high < got.high, (got, narrow)
+    _expect_error(grpc.StatusCode.INVALID_ARGUMENT, api.scoring.GetScores,
+                  stubs.scoring.GetScoresRequest(session=V7_SESSION, level=1.5))
+
+
+def test_session_without_replicates_has_no_interval(stubs, api, demo_refs):
+    name = "py-no-replicates"
+    info = create_session(stubs, api, name, resampling=stubs.common.Resampling(resamples=0))
+    assert info.resampling.resamples == 0
+    item = stubs.scoring.ScoreItem(segment_id=demo_refs[0]["id"], hypothesis="Die Fähre fährt.")
+    api.scoring.Submit(stubs.scoring.ScoreBatch(session=name, items=[item]), timeout=RPC_TIMEOUT)
+    report = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=name), timeout=RPC_TIMEOUT)
+    assert report.cumulative.segments == 1
+    assert not report.cumulative.bleu.HasField("interval") and report.interval_note == ""
+
+
+def test_compare_call(stubs, api, demo_dir, demo_refs, v7_stream):
+    ids = [r["id"] for r in demo_refs]
+    for name, system in [("py-v7-copy", "model-v7"), ("py-fallback", "fallback-dictionary")]:
+        create_session(stubs, api, name)
+        hyps = read_lines(demo_dir / f"hyp.{system}.de.txt")
+        items = [stubs.scoring.ScoreItem(segment_id=i, hypothesis=h) for i, h in zip(ids, hyps)]
+        batches = [stubs.scoring.ScoreBatch(session=name, producer="py", sequence=s, items=chunk)
+                   for s, chunk in enumerate(batches_of(items, BATCH_SIZE), start=1)]
+        stream_batches(api, batches)
+    same = api.scoring.Compare(stubs.scoring.CompareRequest(session_a=V7_SESSION, session_b="py-v7-copy", trials=500),
+                               timeout=RPC_TIMEOUT)
+    assert same.segments == 300 and (same.recent_a, same.recent_b) == (300, 300)
+    bleu = next(m for m in same.metrics if m.metric == "bleu")
+    assert (bleu.difference, bleu.p_value, bleu.trials) == (0.0, 1.0, 500)
+    worse = api.scoring.Compare(stubs.scoring.CompareRequest(session_a=V7_SESSION, session_b="py-fallback"),
+                                timeout=RPC_TIMEOUT)
+    bleu = next(m for m in worse.metrics if m.metric == "bleu")
+    assert bleu.difference == bleu.a - bleu.b > 0 and bleu.interval.low > 0 and bleu.p_value < 0.01, bleu
+    assert (worse.resamples, worse.trials, worse.seed, worse.level) == (200, 10000, 1, 0.95)
+    _expect_error(grpc.StatusCode.NOT_FOUND, api.scoring.Compare,
+                  stubs.scoring.CompareRequest(session_a=V7_SESSION, session_b="py-no-such-session"))
