@@ -43,13 +43,15 @@ const REP_REF_TOKENS: &str = "mtgauge_replicate_reference_tokens_total";
 const REP_CHRF_MATCHES: &str = "mtgauge_replicate_chrf_matches_total";
 const REP_CHRF_HYP: &str = "mtgauge_replicate_chrf_hypothesis_ngrams_total";
 const REP_CHRF_REF: &str = "mtgauge_replicate_chrf_reference_ngrams_total";
+const ALERT_DELIVERIES: &str = "mtgauge_alert_deliveries_total";
+const ALERT_RETRIES: &str = "mtgauge_alert_delivery_retries_total";
 
 /// Bootstrap replicates per session exported to Prometheus unless configured (the first ones
 /// of the session's replicates; 0 exports none).
 pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 30] = [
+pub const METRIC_NAMES: [&str; 32] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -80,6 +82,8 @@ pub const METRIC_NAMES: [&str; 30] = [
     REP_CHRF_MATCHES,
     REP_CHRF_HYP,
     REP_CHRF_REF,
+    ALERT_DELIVERIES,
+    ALERT_RETRIES,
 ];
 
 /// The replicate families: name, help, and the labels after `session` and `replicate`.
@@ -171,6 +175,8 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(WATCH_SKIPPED, "Watch reports not sent because the subscriber had not taken the previous one (slow subscribers skip, never queue).");
     describe_counter!(WATCH_DROPPED, "Watch subscribers the server ended: `reason` stalled (left too many reports unread) or closed (went away).");
     describe_counter!(METRICS_REFUSED, "Scrape connections closed on arrival because too many were open.");
+    describe_counter!(ALERT_DELIVERIES, "Alert events per delivery target by outcome: sent (accepted), failed (refused with a 4xx, or out of attempts), dropped (pushed out of a full queue).");
+    describe_counter!(ALERT_RETRIES, "Alert delivery attempts after the first one of a batch, per target.");
     for l in ["grpc", "health"] {
         gauge!(CONNECTIONS_OPEN, "listener" => l).set(0.0);
         counter!(CONNECTIONS_ACCEPTED, "listener" => l).absolute(0);
@@ -293,6 +299,24 @@ pub fn watch_report_skipped() {
 /// A watch subscriber was ended by the server; `reason`: "stalled" or "closed".
 pub fn watch_subscriber_dropped(reason: &'static str) {
     counter!(WATCH_DROPPED, "reason" => reason).increment(1);
+}
+
+/// Publish an alert target's counters at zero (at delivery start).
+pub fn alert_target_init(target: &str) {
+    for outcome in ["sent", "failed", "dropped"] {
+        counter!(ALERT_DELIVERIES, "target" => target.to_owned(), "outcome" => outcome).increment(0);
+    }
+    counter!(ALERT_RETRIES, "target" => target.to_owned()).increment(0);
+}
+
+/// `n` alert events reached an outcome at a target: "sent", "failed" or "dropped".
+pub fn alert_deliveries(target: &str, outcome: &'static str, n: u64) {
+    counter!(ALERT_DELIVERIES, "target" => target.to_owned(), "outcome" => outcome).increment(n);
+}
+
+/// One more delivery attempt of a batch to a target.
+pub fn alert_delivery_retry(target: &str) {
+    counter!(ALERT_RETRIES, "target" => target.to_owned()).increment(1);
 }
 
 /// Time of one batch.

@@ -1,0 +1,2 @@
+//! Alert rules, their evaluation and their delivery.
+pub mod deliver;
