@@ -196,6 +196,7 @@ impl Delivery {
                 wake: Notify::new(),
                 counts: Counts::default(),
                 target: endpoint.shown.clone(),
+                in_flight: AtomicU64::new(0),
             });
             telemetry::alert_target_init(&q.target);
             tasks.push(rt.spawn(run_target(endpoint, q.clone(), settings.clone())));
@@ -229,7 +230,7 @@ impl DeliveryHandle {
     }
 
     /// Stop taking events, let every task deliver what it holds (retries included) for at most
-    /// `grace`, then end them; events still queued then are counted failed.
+    /// `grace`, then end them; events still queued or being tried then are counted failed.
     pub async fn shutdown(&self, grace: Duration) {
         for q in &self.queues {
             q.pending.lock().unwrap().closed = true;
@@ -241,7 +242,7 @@ impl DeliveryHandle {
             let abort = t.abort_handle();
             if tokio::time::timeout_at(deadline, t).await.is_err() {
                 abort.abort();
-                let left = q.pending.lock().unwrap().events.drain(..).count() as u64;
+                let left = q.pending.lock().unwrap().events.drain(..).count() as u64 + q.in_flight.swap(0, Ordering::SeqCst);
                 if left > 0 {
                     q.counts.add(&q.target, Outcome::Failed, left);
                     tracing::warn!(target_url = %q.target, events = left, "alert delivery: shutdown before these events were delivered");
@@ -277,6 +278,8 @@ struct Queue {
     wake: Notify,
     counts: Counts,
     target: String,
+    /// Events of the batch being tried now (whoever swaps it to 0 counts them).
+    in_flight: AtomicU64,
 }
 
 impl Queue {
@@ -467,24 +470,31 @@ enum Attempt {
 async fn run_target(endpoint: Endpoint, queue: Arc<Queue>, settings: Arc<Settings>) {
     while let Some(batch) = queue.take().await {
         let n = batch.len() as u64;
+        queue.in_flight.store(n, Ordering::SeqCst);
+        let done = |outcome| {
+            let n = queue.in_flight.swap(0, Ordering::SeqCst);
+            if n > 0 {
+                queue.counts.add(&queue.target, outcome, n);
+            }
+        };
         let body = Bytes::from(payload(endpoint.kind, &batch));
         let mut backoff = settings.initial_backoff;
         let mut attempt = 1;
         loop {
             match post(&endpoint, body.clone(), settings.timeout).await {
                 Attempt::Sent => {
-                    queue.counts.add(&queue.target, Outcome::Sent, n);
+                    done(Outcome::Sent);
                     tracing::debug!(target_url = %endpoint.shown, events = n, attempt, "alerts delivered");
                     break;
                 }
                 Attempt::Refused(status, snippet) => {
-                    queue.counts.add(&queue.target, Outcome::Failed, n);
+                    done(Outcome::Failed);
                     tracing::warn!(target_url = %endpoint.shown, events = n, status, body = %snippet, "alert target refused the batch; not retried");
                     break;
                 }
                 Attempt::Retry(why) => {
                     if attempt >= settings.max_attempts {
-                        queue.counts.add(&queue.target, Outcome::Failed, n);
+                        done(Outcome::Failed);
                         tracing::warn!(target_url = %endpoint.shown, events = n, attempts = attempt, error = %why, "alert delivery gave up");
                         break;
                     }
