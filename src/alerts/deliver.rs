@@ -206,7 +206,8 @@ impl Delivery {
     }
 }
 
-/// Sends events to the delivery tasks. Cheap to share behind an `Arc`.
+/// Sends events to the delivery tasks; share it behind an `Arc`. Dropping it ends the tasks at
+/// once: call [`DeliveryHandle::shutdown`] first to deliver what is still queued.
 pub struct DeliveryHandle {
     queues: Vec<Arc<Queue>>,
     tasks: Mutex<Vec<tokio::task::JoinHandle<()>>>,

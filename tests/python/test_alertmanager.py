@@ -34,7 +34,7 @@ REQUIRE = os.environ.get("MTGAUGE_REQUIRE_ALERTMANAGER") == "1"
 
 def alertmanager_bin():
     found = os.environ.get("ALERTMANAGER_BIN") or shutil.which("prometheus-alertmanager") or shutil.which("alertmanager")
-    if not found:
+    if not found or not os.access(found, os.X_OK):
         msg = "Alertmanager not found (ALERTMANAGER_BIN, prometheus-alertmanager, alertmanager); Debian: apt-get install prometheus-alertmanager"
         if REQUIRE:
             pytest.fail(f"MTGAUGE_REQUIRE_ALERTMANAGER=1 but {msg}", pytrace=False)
