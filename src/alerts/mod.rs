@@ -1,0 +1,3 @@
+//! Alert rules, their evaluation and their delivery.
+
+pub mod rules;
