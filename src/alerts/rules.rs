@@ -139,9 +139,8 @@ impl RuleEntry {
         if self.session.is_none() && self.labels.is_empty() {
             return Err(err("give `session` (a name) or `labels` (a selector), or both".into()));
         }
-        let metric = match self.metric.as_deref().unwrap_or("bleu") {
-            m => Metric::ALL.into_iter().find(|x| x.name() == m).ok_or_else(|| err(format!("metric '{m}' is not one of bleu, chrf, chrf++")))?,
-        };
+        let m = self.metric.as_deref().unwrap_or("bleu");
+        let metric = Metric::ALL.into_iter().find(|x| x.name() == m).ok_or_else(|| err(format!("metric '{m}' is not one of bleu, chrf, chrf++")))?;
         match self.window.as_deref().unwrap_or("recent") {
             "recent" => {}
             w => return Err(err(format!("window '{w}': only `recent` is evaluated by the daemon so far (time windows are rendered for Prometheus only later)"))),
@@ -160,7 +159,7 @@ impl RuleEntry {
             Some("drop") => {
                 let baseline = self.baseline.clone().ok_or_else(|| err("`when = \"drop\"` needs `baseline` (a session name)".into()))?;
                 let points = self.points.ok_or_else(|| err("`when = \"drop\"` needs `points`".into()))?;
-                if !(points >= 0.0 && points <= 100.0) {
+                if !(0.0..=100.0).contains(&points) {
                     return Err(err(format!("points {points} is not between 0 and 100")));
                 }
                 if self.threshold.is_some() {
@@ -172,7 +171,7 @@ impl RuleEntry {
             None => return Err(err("`when` is missing: below or drop".into())),
         };
         let clear_margin = self.clear_margin.unwrap_or(DEFAULT_CLEAR_MARGIN);
-        if !(clear_margin >= 0.0) {
+        if clear_margin.is_nan() || clear_margin < 0.0 {
             return Err(err(format!("clear_margin {clear_margin} is negative")));
         }
         Ok(Rule {
