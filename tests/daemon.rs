@@ -693,6 +693,12 @@ team = "ferry-mt"
     assert!(scrape.lines().any(|l| l == "mtgauge_alert_firing{rule=\"worse-than-production\",session=\"fallback\"} 1"), "{scrape}");
     assert!(scrape.lines().any(|l| l == "mtgauge_alert_firing{rule=\"floor\",session=\"v7\"} 0"), "{scrape}");
     assert!(scrape.lines().any(|l| l == "mtgauge_alert_state{rule=\"floor\",session=\"fallback\",state=\"firing\"} 1"), "{scrape}");
+    // The shipped example parses, every rule checked.
+    let example = concat!(env!("CARGO_MANIFEST_DIR"), "/deploy/alerts/mtgauge-alert-rules.example.toml");
+    let out = mtgauge(&["serve", "--config", example, "--show-config"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let shown: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(shown["settings"]["alert"].as_array().map(Vec::len), Some(2));
     // A rule with a mistake is refused at startup, naming the rule and the key.
     std::fs::write(&config, "[[alert]]\nname = \"bad\"\nsession = \"x\"\nwhen = \"below\"\n").unwrap();
     let out = mtgauge(&["serve", "--config", config.to_str().unwrap(), "--show-config"]);
