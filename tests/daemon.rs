@@ -624,3 +624,84 @@ async fn compare_live_equals_compare_offline() {
     let text = String::from_utf8_lossy(&human.stdout);
     assert!(text.contains("300 segments in both recent windows") && text.contains("A = session v7") && text.contains("proxy"), "{text}");
 }
+
+/// Alert rules of the config file, evaluated by the daemon: the degraded system fires both its
+/// floor rule (its whole interval below the threshold) and its drop rule against production;
+/// production itself fires nothing. States show in `status` and in the metrics.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn alert_rules_fire_on_the_degraded_session_only() {
+    let dir = temp_dir("alerts");
+    demo_files(&dir);
+    let refs = dir.join("refs.jsonl");
+    let ids: String = demo_segments().iter().map(|s| s.id.clone() + "\n").collect();
+    std::fs::write(dir.join("ids.txt"), ids).unwrap();
+    let config = dir.join("mtgauge.toml");
+    std::fs::write(
+        &config,
+        r#"
+alert_eval_seconds = 1
+
+[[alert]]
+name = "floor"
+labels = { tier = "watched" }
+metric = "bleu"
+when = "below"
+threshold = 45.0
+min_segments = 100
+for_seconds = 1
+severity = "page"
+
+[[alert]]
+name = "worse-than-production"
+session = "fallback"
+when = "drop"
+baseline = "v7"
+points = 5
+min_segments = 100
+for_seconds = 0
+[alert.extra_labels]
+team = "ferry-mt"
+"#,
+    )
+    .unwrap();
+    let server = Server::start(&["--refset", &format!("ferry={}", refs.display()), "--config", config.to_str().unwrap()]);
+    server.wait_serving().await;
+    let p = |n: &str| dir.join(n).to_str().unwrap().to_owned();
+    for (session, hyp) in [("v7", "hyp.model-v7.de.txt"), ("fallback", "hyp.fallback-dictionary.de.txt")] {
+        let out = mtgauge(&["send", "--server", &server.grpc, "--session", session, "--create", "--refset", "ferry", "--label", "tier=watched", "--ids", &p("ids.txt"), "--hyp", &p(hyp)]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    }
+    let states = |session: &str| -> Vec<(String, String)> {
+        let out = mtgauge(&["status", "--server", &server.grpc, "--session", session, "--json"]);
+        let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+        v["alerts"].as_array().unwrap().iter().map(|a| (a["rule"].as_str().unwrap().to_owned(), a["state"].as_str().unwrap().to_owned())).collect()
+    };
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
+    loop {
+        let f = states("fallback");
+        if f.iter().filter(|(_, s)| s == "firing").count() == 2 {
+            break;
+        }
+        assert!(std::time::Instant::now() < deadline, "the degraded session's rules did not fire: {f:?}");
+        std::thread::sleep(std::time::Duration::from_millis(300));
+    }
+    assert_eq!(states("v7"), vec![("floor".to_owned(), "inactive".to_owned())], "production fires nothing, and has no drop rule");
+    let human = mtgauge(&["status", "--server", &server.grpc, "--session", "fallback"]);
+    let text = String::from_utf8_lossy(&human.stdout);
+    assert!(text.contains("alert   FIRING   floor [page]: recent bleu 95% interval entirely below 45"), "{text}");
+    let scrape = server.scrape();
+    assert!(scrape.lines().any(|l| l == "mtgauge_alert_firing{rule=\"worse-than-production\",session=\"fallback\"} 1"), "{scrape}");
+    assert!(scrape.lines().any(|l| l == "mtgauge_alert_firing{rule=\"floor\",session=\"v7\"} 0"), "{scrape}");
+    assert!(scrape.lines().any(|l| l == "mtgauge_alert_state{rule=\"floor\",session=\"fallback\",state=\"firing\"} 1"), "{scrape}");
+    // The shipped example parses, every rule checked.
+    let example = concat!(env!("CARGO_MANIFEST_DIR"), "/deploy/alerts/mtgauge-alert-rules.example.toml");
+    let out = mtgauge(&["serve", "--config", example, "--show-config"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let shown: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(shown["settings"]["alert"].as_array().map(Vec::len), Some(2));
+    // A rule with a mistake is refused at startup, naming the rule and the key.
+    std::fs::write(&config, "[[alert]]\nname = \"bad\"\nsession = \"x\"\nwhen = \"below\"\n").unwrap();
+    let out = mtgauge(&["serve", "--config", config.to_str().unwrap(), "--show-config"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("alert rule 'bad': `when = \"below\"` needs `threshold`"), "{}", String::from_utf8_lossy(&out.stderr));
+}

@@ -1,2 +1,4 @@
 //! Alert rules, their evaluation and their delivery.
+
 pub mod deliver;
+pub mod rules;

@@ -28,6 +28,7 @@ Settings come from --config FILE (TOML) and flags; a flag overrides the file. Ke
   listen, metrics_listen, health_listen, tls_cert, tls_key, tls_client_ca, tokens,
   refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
   log_format, max_message_bytes (default {max_message}), exported_resamples (default {exported}),
+  alert_eval_seconds (default {eval}), [[alert]] (alert rules the daemon evaluates: see README),
   [limits] (below), [[refset]] name, paths = [...], source (loaded at startup).
 
 [limits] keys, each at least 1, with their defaults; a request past one is refused with \
@@ -41,6 +42,7 @@ filled in), the keys the file accepts and the metrics the server exports, as JSO
         data_dir = crate::store::DEFAULT_DATA_DIR,
         max_message = crate::server::DEFAULT_MAX_MESSAGE_BYTES,
         exported = telemetry::DEFAULT_EXPORTED_RESAMPLES,
+        eval = crate::alerts::rules::DEFAULT_EVAL_SECONDS,
     )
 }
 
@@ -118,9 +120,10 @@ pub enum Durability {
 }
 
 /// The config file's top-level keys (what `FileConfig` reads).
-const FILE_KEYS: [&str; 17] = [
+const FILE_KEYS: [&str; 19] = [
     "tls_cert", "tls_key", "tls_client_ca", "health_listen", "tokens", "data_dir", "durability", "group_commit_ms", "listen",
-    "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "exported_resamples", "limits", "refset",
+    "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "exported_resamples", "alert_eval_seconds", "limits", "refset",
+    "alert",
 ];
 /// The keys of one `[[refset]]` entry.
 const REFSET_KEYS: [&str; 3] = ["name", "paths", "source"];
@@ -144,6 +147,9 @@ pub struct FileConfig {
     log_format: Option<String>,
     max_message_bytes: Option<u64>,
     exported_resamples: Option<usize>,
+    alert_eval_seconds: Option<u64>,
+    #[serde(default)]
+    alert: Vec<crate::alerts::rules::RuleEntry>,
     #[serde(default)]
     limits: LimitsSection,
     #[serde(default)]
@@ -229,6 +235,13 @@ pub fn resolve(a: &ServeArgs, file: FileConfig) -> Result<Resolved, CliError> {
     if let Some(n) = a.exported_resamples.or(file.exported_resamples) {
         config.exported_resamples = n;
     }
+    config.alert_rules = crate::alerts::rules::check_rules(&file.alert).map_err(|e| CliError::Usage(e.to_string()))?;
+    if let Some(s) = file.alert_eval_seconds {
+        if s == 0 {
+            return Err(CliError::Usage("config key alert_eval_seconds must be at least 1".into()));
+        }
+        config.alert_every = Duration::from_secs(s);
+    }
     if let Some(d) = a.drain_seconds.or(file.drain_seconds) {
         config.drain = Duration::from_secs(d);
     }
@@ -270,6 +283,8 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "drain_seconds": c.drain.as_secs(),
             "max_message_bytes": c.max_message_bytes,
             "exported_resamples": c.exported_resamples,
+            "alert_eval_seconds": c.alert_every.as_secs(),
+            "alert": c.alert_rules,
             "log_format": match r.log_format { LogFormat::Human => "human", LogFormat::Json => "json" },
             "tls_cert": c.tls.as_ref().map(|t| t.cert.display().to_string()),
             "tls_key": c.tls.as_ref().map(|t| t.key.display().to_string()),
@@ -278,8 +293,8 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "limits": c.limits.section(),
             "refset": refsets,
         },
-        "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS },
-        "metrics": telemetry::METRIC_NAMES,
+        "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS, "alert": crate::alerts::rules::RULE_KEYS },
+        "metrics": telemetry::METRIC_NAMES.as_slice(),
     })
 }
 

@@ -69,6 +69,10 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
         "cumulative": cum_json,
         "recent": recent_json,
         "interval_note": (!r.interval_note.is_empty()).then_some(&r.interval_note),
+        "alerts": r.alerts.iter().map(|a| json!({
+            "rule": a.rule, "state": a.state, "since_unix": a.since_unix, "condition": a.condition,
+            "value": a.value, "low": a.low, "high": a.high, "segments": a.segments, "severity": a.severity,
+        })).collect::<Vec<_>>(),
         "window": r.window,
         "memory_bytes": info.memory_bytes,
         "unknown": r.unknown,
@@ -86,6 +90,13 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     for l in stats_lines(&recent, &config, "    ").into_iter().chain(recent_ranges) {
         text += &l;
         text.push('\n');
+    }
+    for al in &r.alerts {
+        let measured = match (al.value, al.low, al.high) {
+            (Some(v), Some(lo), Some(hi)) => format!("{v:.2} ({lo:.2} .. {hi:.2}, {} segments)", al.segments),
+            _ => "nothing to judge by yet".to_owned(),
+        };
+        text += &format!("  alert   {:<8} {} [{}]: {}; now {measured}\n", al.state.to_uppercase(), al.rule, al.severity, al.condition);
     }
     if !r.interval_note.is_empty() {
         text += &format!("  note    {}\n", r.interval_note);

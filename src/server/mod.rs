@@ -2,7 +2,9 @@
 //! gRPC health and reflection, a Prometheus listener, and a bounded graceful shutdown.
 
 pub mod admin;
+pub mod alerting;
 pub mod auth;
+pub mod compare;
 pub mod conn;
 pub mod error;
 pub mod limits;
@@ -80,6 +82,10 @@ pub struct ServerConfig {
     pub tokens: Option<Arc<auth::Tokens>>,
     /// Bootstrap replicates per session exported to Prometheus.
     pub exported_resamples: usize,
+    /// Alert rules the daemon evaluates.
+    pub alert_rules: Vec<crate::alerts::rules::Rule>,
+    /// Time between two evaluations of the alert rules.
+    pub alert_every: Duration,
 }
 
 /// PEM files of the server's TLS identity.
@@ -95,7 +101,7 @@ pub struct TlsFiles {
 
 impl Default for ServerConfig {
     fn default() -> Self {
-        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES }
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES, alert_rules: Vec::new(), alert_every: Duration::from_secs(crate::alerts::rules::DEFAULT_EVAL_SECONDS) }
     }
 }
 
@@ -173,6 +179,7 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     if let Some(l) = config.health_listener.take() {
         admin::serve_health(l, &health, idle, stop_rx.clone()).map_err(RunError::Setup)?;
     }
+    alerting::start(state.clone(), config.alert_rules.clone(), config.alert_every, state.alerts().clone(), stop_rx.clone());
     let router = router(&config, &state, stop_rx, tls.clone(), health_service)?;
 
     // Graceful part: when `shutdown` fires, report NOT_SERVING, tell streams to finish their

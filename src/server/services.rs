@@ -379,7 +379,7 @@ const CUMULATIVE_PREDATES: &str = "no cumulative interval: the statistics were k
 const RECENT_PREDATES: &str = "no recent interval yet: the window still holds segments kept before this session kept replicates";
 
 /// A session's scores now, intervals at `level` (0: the default).
-pub fn report(session: &Session, level: f64) -> pb::ScoresReport {
+pub fn report(state: &State, session: &Session, level: f64) -> pb::ScoresReport {
     let spec = session.spec();
     let level = if level == 0.0 { DEFAULT_LEVEL } else { level };
     // Statistics and replicates are read under two short locks: a batch applied in between
@@ -412,31 +412,14 @@ pub fn report(session: &Session, level: f64) -> pb::ScoresReport {
         note: PROXY_NOTE.to_owned(),
         interval_note: notes.join("; "),
         resampling: Some(resampling_to_pb(&spec.resampling)),
+        alerts: state.alerts().of(&spec.name),
     }
 }
 
 /// Compare two sessions over the segments both `recent` windows hold (CPU work: call from a
 /// blocking thread).
 fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<pb::CompareReport> {
-    use crate::metric::compare::{compare, CompareSettings, DEFAULT_TRIALS, MAX_TRIALS};
-    if a.refs().digest() != b.refs().digest() {
-        return Err(ServiceError::NotComparable(format!(
-            "sessions '{}' and '{}' score against different reference-set versions ({} and {}): their segments cannot be paired",
-            a.spec().name,
-            b.spec().name,
-            &a.refs().digest_hex()[..16],
-            &b.refs().digest_hex()[..16]
-        )));
-    }
-    if a.spec().config != b.spec().config {
-        return Err(ServiceError::NotComparable(format!(
-            "sessions '{}' and '{}' use different configurations ({} vs {}): their scores are not comparable",
-            a.spec().name,
-            b.spec().name,
-            a.spec().config.describe(),
-            b.spec().config.describe()
-        )));
-    }
+    use crate::metric::compare::{CompareSettings, DEFAULT_TRIALS, MAX_TRIALS};
     let level = check_level(r.level)?;
     let settings = CompareSettings {
         resamples: r.resamples.map_or(crate::metric::resample::DAEMON_RESAMPLES, |n| n as usize),
@@ -447,19 +430,9 @@ fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<
     if settings.resamples > crate::metric::resample::MAX_RESAMPLES || settings.trials > MAX_TRIALS {
         return Err(ServiceError::Invalid(format!("at most {} resamples and {MAX_TRIALS} trials", crate::metric::resample::MAX_RESAMPLES)));
     }
-    let (in_a, in_b) = (a.recent_segments(), b.recent_segments());
-    let of_b: HashMap<u64, &crate::metric::SegmentStats> = in_b.iter().map(|(k, s)| (*k, s)).collect();
-    let (mut keys, mut sa, mut sb) = (Vec::new(), Vec::new(), Vec::new());
-    for (k, s) in &in_a {
-        if let Some(t) = of_b.get(k) {
-            keys.push(*k);
-            sa.push(*s);
-            sb.push(**t);
-        }
-    }
-    let config = &a.spec().config;
     let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
-    let c = compare(config, &keys, &sa, &sb, &settings, threads);
+    let p = super::compare::paired(a, b, &settings, threads)?;
+    let c = p.comparison;
     let metrics = c
         .metrics
         .iter()
@@ -480,10 +453,10 @@ fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<
         session_a: a.spec().name.clone(),
         session_b: b.spec().name.clone(),
         refset_digest: a.refs().digest_hex(),
-        config: Some(config_to_pb(config)),
+        config: Some(config_to_pb(&a.spec().config)),
         segments: c.segments,
-        recent_a: in_a.len() as u64,
-        recent_b: in_b.len() as u64,
+        recent_a: p.recent_a,
+        recent_b: p.recent_b,
         metrics,
         level: settings.level,
         resamples: settings.resamples as u32,
@@ -613,7 +586,8 @@ impl pb::scoring_server::Scoring for Services {
         let r = req.into_inner();
         let level = check_level(r.level)?;
         let s = self.state.session(&r.session)?;
-        Ok(Response::new(blocking(move || Ok(report(&s, level))).await?))
+        let state = self.state.clone();
+        Ok(Response::new(blocking(move || Ok(report(&state, &s, level))).await?))
     }
 
     async fn compare(&self, req: Request<pb::CompareRequest>) -> std::result::Result<Response<pb::CompareReport>, Status> {

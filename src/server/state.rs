@@ -54,6 +54,8 @@ struct Inner {
     committer: Option<std::sync::Mutex<std::sync::mpsc::Sender<CommitRequest>>>,
     /// Set once when the store cannot be written (see [`State::store_failure`]).
     failure: tokio::sync::watch::Sender<Option<String>>,
+    /// The alert states the evaluator last published.
+    alerts: super::alerting::AlertBoard,
 }
 
 /// A scored batch on its way into its session.
@@ -119,7 +121,7 @@ impl State {
         let (tx, rx) = std::sync::mpsc::channel::<CommitRequest>();
         let committer = store.as_ref().map(|_| std::sync::Mutex::new(tx));
         let (failure, _) = tokio::sync::watch::channel(None);
-        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer, failure }) };
+        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer, failure, alerts: Default::default() }) };
         if let Some(store) = store {
             // The thread holds only a weak handle, so it ends when the state is dropped.
             let weak = Arc::downgrade(&state.inner);
@@ -129,6 +131,11 @@ impl State {
                 .map_err(|e| ServiceError::Internal(format!("cannot start the commit thread: {e}")))?;
         }
         Ok(state)
+    }
+
+    /// The alert states as last evaluated.
+    pub fn alerts(&self) -> &super::alerting::AlertBoard {
+        &self.inner.alerts
     }
 
     /// The store, when durable.

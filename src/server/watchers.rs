@@ -51,7 +51,7 @@ struct Subscriber {
 impl Watchers {
     /// Start the publisher (inside a Tokio runtime); it ends, ending every watch, when `stop`
     /// turns true. `report` builds a session's current report.
-    pub fn start(state: State, stop: watch::Receiver<bool>, report: fn(&Session, f64) -> pb::ScoresReport) -> Watchers {
+    pub fn start(state: State, stop: watch::Receiver<bool>, report: fn(&State, &Session, f64) -> pb::ScoresReport) -> Watchers {
         let (join, joined) = mpsc::unbounded_channel();
         tokio::spawn(publish(state, stop, joined, report));
         Watchers { join }
@@ -67,7 +67,7 @@ impl Watchers {
     }
 }
 
-async fn publish(state: State, mut stop: watch::Receiver<bool>, mut joined: mpsc::UnboundedReceiver<Subscriber>, report: fn(&Session, f64) -> pb::ScoresReport) {
+async fn publish(state: State, mut stop: watch::Receiver<bool>, mut joined: mpsc::UnboundedReceiver<Subscriber>, report: fn(&State, &Session, f64) -> pb::ScoresReport) {
     let mut subscribers: Vec<Subscriber> = Vec::new();
     let mut tick = tokio::time::interval(WATCH_TICK);
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
@@ -84,7 +84,7 @@ async fn publish(state: State, mut stop: watch::Receiver<bool>, mut joined: mpsc
 
 /// Offer the current report to every subscriber that is due at `now`, and drop the ones that
 /// went away, stalled, or watch a session that was closed.
-fn round(subscribers: &mut Vec<Subscriber>, state: &State, now: Instant, report: fn(&Session, f64) -> pb::ScoresReport) {
+fn round(subscribers: &mut Vec<Subscriber>, state: &State, now: Instant, report: fn(&State, &Session, f64) -> pb::ScoresReport) {
     let mut reports: HashMap<(String, u64), pb::ScoresReport> = HashMap::new();
     subscribers.retain_mut(|s| {
         if s.tx.is_closed() {
@@ -102,7 +102,7 @@ fn round(subscribers: &mut Vec<Subscriber>, state: &State, now: Instant, report:
             closing_status(s.tx.clone(), ServiceError::UnknownSession(name.clone()).into());
             return false;
         }
-        let r = reports.entry((name.clone(), s.level.to_bits())).or_insert_with(|| report(&s.session, s.level)).clone();
+        let r = reports.entry((name.clone(), s.level.to_bits())).or_insert_with(|| report(state, &s.session, s.level)).clone();
         match s.tx.try_send(Ok(r)) {
             Ok(()) => {
                 s.unread = 0;

@@ -35,6 +35,8 @@ const CONNECTIONS_IDLE_CLOSED: &str = "mtgauge_connections_idle_closed_total";
 const WATCH_SKIPPED: &str = "mtgauge_watch_reports_skipped_total";
 const WATCH_DROPPED: &str = "mtgauge_watch_subscribers_dropped_total";
 const METRICS_REFUSED: &str = "mtgauge_metrics_requests_refused_total";
+const ALERT_FIRING: &str = "mtgauge_alert_firing";
+const ALERT_STATE: &str = "mtgauge_alert_state";
 const REP_SEGMENTS: &str = "mtgauge_replicate_segments_total";
 const REP_BLEU_MATCHES: &str = "mtgauge_replicate_bleu_matches_total";
 const REP_BLEU_NGRAMS: &str = "mtgauge_replicate_bleu_ngrams_total";
@@ -51,7 +53,7 @@ const ALERT_RETRIES: &str = "mtgauge_alert_delivery_retries_total";
 pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 32] = [
+pub const METRIC_NAMES: [&str; 34] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -74,6 +76,8 @@ pub const METRIC_NAMES: [&str; 32] = [
     WATCH_SKIPPED,
     WATCH_DROPPED,
     METRICS_REFUSED,
+    ALERT_FIRING,
+    ALERT_STATE,
     REP_SEGMENTS,
     REP_BLEU_MATCHES,
     REP_BLEU_NGRAMS,
@@ -177,6 +181,8 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(METRICS_REFUSED, "Scrape connections closed on arrival because too many were open.");
     describe_counter!(ALERT_DELIVERIES, "Alert events per delivery target by outcome: sent (accepted), failed (refused with a 4xx, or out of attempts), dropped (pushed out of a full queue).");
     describe_counter!(ALERT_RETRIES, "Alert delivery attempts after the first one of a batch, per target.");
+    describe_gauge!(ALERT_FIRING, "1 while the daemon's alert rule fires for the session, else 0.");
+    describe_gauge!(ALERT_STATE, "1 for the state (inactive, pending, firing) the daemon's alert rule is in for the session, 0 for the others.");
     for l in ["grpc", "health"] {
         gauge!(CONNECTIONS_OPEN, "listener" => l).set(0.0);
         counter!(CONNECTIONS_ACCEPTED, "listener" => l).absolute(0);
@@ -252,6 +258,14 @@ pub fn record_session_info(session: &str, refset: &str, digest: &str, config: &s
     let mut l = vec![("session".to_owned(), session.to_owned()), ("refset".to_owned(), refset.to_owned()), ("digest".to_owned(), digest.to_owned()), ("config".to_owned(), config.to_owned())];
     l.extend(labels.iter().map(|(k, v)| (k.clone(), v.clone())));
     gauge!(SESSION_INFO, &l).set(if live { 1.0 } else { 0.0 });
+}
+
+/// Publish the state of an alert rule on a session.
+pub fn record_alert(rule: &str, session: &str, state: &str, states: &[&'static str]) {
+    gauge!(ALERT_FIRING, "rule" => rule.to_owned(), "session" => session.to_owned()).set(if state == "firing" { 1.0 } else { 0.0 });
+    for s in states {
+        gauge!(ALERT_STATE, "rule" => rule.to_owned(), "session" => session.to_owned(), "state" => *s).set(if *s == state { 1.0 } else { 0.0 });
+    }
 }
 
 /// Publish a reference set's size.

@@ -58,6 +58,34 @@ const SESSIONS: &[Watched] = &[
     Watched { session: "ferry-en-de.model-v8-rc", model: "model-v8-rc", quality: (0.92, 0.35) },
 ];
 
+/// The alert rules of the demo, as a config file would declare them (printed at the end).
+const DEMO_RULES: &str = r#"alert_eval_seconds = 1
+
+[[alert]]
+name = "bleu-floor"
+labels = { lang = "en-de" }
+when = "below"
+threshold = 50.0
+min_segments = 100
+for_seconds = 2
+
+[[alert]]
+name = "candidate-worse-than-production"
+session = "ferry-en-de.model-v8-rc"
+when = "drop"
+baseline = "ferry-en-de.model-v7"
+points = 2.0
+min_segments = 100
+for_seconds = 2
+"#;
+
+/// The checked rules of [`DEMO_RULES`].
+fn demo_rules() -> Result<(Vec<crate::alerts::rules::Rule>, Duration), CliError> {
+    let file = super::super::serve::parse_file("demo rules", DEMO_RULES)?;
+    let resolved = super::super::serve::resolve(&Default::default(), file)?;
+    Ok((resolved.server.alert_rules, resolved.server.alert_every))
+}
+
 pub(super) fn run(seconds: u64) -> Result<(), CliError> {
     let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
     rt.block_on(live(seconds.max(1)))
@@ -73,7 +101,8 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     let (g, m) = (grpc.local_addr().map_err(usage("address"))?, metrics.local_addr().map_err(usage("address"))?);
     let handle = telemetry::install_metrics().map_err(CliError::Usage)?;
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
-    let server = tokio::spawn(server::run(ServerConfig { drain: Duration::from_secs(2), ..Default::default() }, grpc, Some((metrics, handle)), async move {
+    let (alert_rules, alert_every) = demo_rules()?;
+    let server = tokio::spawn(server::run(ServerConfig { drain: Duration::from_secs(2), alert_rules, alert_every, ..Default::default() }, grpc, Some((metrics, handle)), async move {
         let _ = stop_rx.await;
     }));
     let url = format!("http://{g}");
@@ -117,6 +146,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     let mut tick = tokio::time::interval(Duration::from_secs(1));
     tick.tick().await;
     println!("{:>5}  {:<26} {:>8} {:>8} {:>13} {:>8} {:>9} {:>8}", "time", "session", "BLEU", "recent", "recent 95%", "chrF", "segments", "unknown");
+    let mut alert_states: std::collections::HashMap<(String, String), String> = std::collections::HashMap::new();
     for t in 1..=seconds {
         tick.tick().await;
         if t == seconds.div_ceil(2) && !degraded.swap(true, Ordering::Relaxed) {
@@ -137,6 +167,14 @@ async fn live(seconds: u64) -> Result<(), CliError> {
                 c.segments,
                 r.unknown
             );
+            for a in &r.alerts {
+                let before = alert_states.insert((w.session.to_owned(), a.rule.clone()), a.state.clone());
+                let was_firing = before.as_deref() == Some("firing");
+                if (a.state == "firing") != was_firing {
+                    let verb = if was_firing { "resolved" } else { "FIRING" };
+                    println!("  !! alert {} {verb} on {}: {} (now {:.2}, interval up to {:.2}); shown by `status`, in mtgauge_alert_firing and the log", a.rule, w.session, a.condition, a.value.unwrap_or(f64::NAN), a.high.unwrap_or(f64::NAN));
+                }
+            }
         }
     }
     stop.store(true, Ordering::Relaxed);
@@ -162,6 +200,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     let _ = server.await;
     println!("\nran {elapsed:.0} s. 'recent' is the exact BLEU of the last {DEMO_WINDOW} segments; the cumulative score moves slowly by design.");
     println!("'recent 95%' is its bootstrap interval: a move inside it can be chance alone (which segments happened to come).");
+    println!("\nthe alert rules of this demo, as a `serve --config` file declares them:\n{DEMO_RULES}");
     println!("{PROXY_NOTE}\n");
     println!("try it against a real server:");
     println!("  mtgauge demo --offline --write-files demo-data");

@@ -1,0 +1,392 @@
+//! Alert rules as the config file declares them (`[[alert]]` entries of `serve --config`), checked
+//! once at startup, and the state machine each (rule, session) pair goes through.
+//!
+//! Pure and synchronous: the server's evaluator feeds it what it measured.
+//!
+//! # Conditions
+//! - `below`: the score's whole confidence interval lies below `threshold` (its upper bound is
+//!   under it). A score that dips below the threshold by chance, with an interval that still
+//!   reaches above it, does not fire.
+//! - `drop`: against a `baseline` session on the same reference set, the upper bound of the
+//!   paired-bootstrap interval of (session - baseline), over the segments both `recent` windows
+//!   hold, lies below `-points`: the session is worse by at least `points` beyond resampling
+//!   noise.
+//!
+//! # States (the Prometheus vocabulary)
+//! inactive -> pending when the condition holds (with at least `min_segments` behind it);
+//! pending -> firing once it has held for `for_seconds`; pending -> inactive as soon as it does
+//! not. A firing alert resolves (-> inactive) only once its bound has come back past the
+//! threshold by `clear_margin` points (hysteresis), or when there are fewer than
+//! `min_segments` segments to judge by.
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+use crate::metric::Metric;
+
+/// Segments a rule needs behind its interval unless it sets `min_segments` (common practice:
+/// a corpus score over fewer segments moves by points by chance alone).
+pub const DEFAULT_MIN_SEGMENTS: u64 = 200;
+/// Seconds a condition must hold before its alert fires, unless the rule sets `for_seconds`.
+pub const DEFAULT_FOR_SECONDS: u64 = 60;
+/// Points past the threshold a firing alert's bound must come back by to resolve, unless the
+/// rule sets `clear_margin`.
+pub const DEFAULT_CLEAR_MARGIN: f64 = 0.5;
+/// Severity label unless the rule sets one.
+pub const DEFAULT_SEVERITY: &str = "warning";
+/// Seconds between two evaluations of every rule unless configured (`alert_eval_seconds`).
+pub const DEFAULT_EVAL_SECONDS: u64 = 5;
+/// Most rules a config file may declare.
+pub const MAX_RULES: usize = 256;
+/// Keys of one `[[alert]]` entry.
+pub const RULE_KEYS: [&str; 15] = [
+    "name", "session", "labels", "metric", "window", "when", "threshold", "baseline", "points", "min_segments", "for_seconds", "clear_margin", "severity", "extra_labels",
+    "annotations",
+];
+
+/// One `[[alert]]` entry as written.
+#[derive(Debug, Clone, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RuleEntry {
+    name: String,
+    session: Option<String>,
+    #[serde(default)]
+    labels: BTreeMap<String, String>,
+    metric: Option<String>,
+    window: Option<String>,
+    when: Option<String>,
+    threshold: Option<f64>,
+    baseline: Option<String>,
+    points: Option<f64>,
+    min_segments: Option<u64>,
+    for_seconds: Option<u64>,
+    clear_margin: Option<f64>,
+    severity: Option<String>,
+    #[serde(default)]
+    annotations: BTreeMap<String, String>,
+    /// Extra labels of the alert (`[alert.extra_labels]`).
+    #[serde(default)]
+    extra_labels: BTreeMap<String, String>,
+}
+
+/// What a rule tests.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "when", rename_all = "lowercase")]
+pub enum Condition {
+    /// The interval's upper bound below `threshold`.
+    Below {
+        /// Score, 0-100.
+        threshold: f64,
+    },
+    /// The paired interval of (session - baseline) entirely below `-points`.
+    Drop {
+        /// The baseline session's name.
+        baseline: String,
+        /// Points of drop, at least.
+        points: f64,
+    },
+}
+
+/// A checked rule.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Rule {
+    /// Rule name (a Prometheus label value).
+    pub name: String,
+    /// Sessions it watches: by name, and/or by labels (all must match).
+    pub session: Option<String>,
+    /// Label selector.
+    pub labels: BTreeMap<String, String>,
+    /// The metric.
+    #[serde(serialize_with = "metric_name")]
+    pub metric: Metric,
+    /// What fires it.
+    pub condition: Condition,
+    /// Segments needed behind the interval.
+    pub min_segments: u64,
+    /// Seconds the condition must hold.
+    pub for_seconds: u64,
+    /// Hysteresis, in score points.
+    pub clear_margin: f64,
+    /// Severity label.
+    pub severity: String,
+    /// Extra labels of the alert.
+    pub extra_labels: BTreeMap<String, String>,
+    /// Annotations of the alert.
+    pub annotations: BTreeMap<String, String>,
+}
+
+fn metric_name<S: serde::Serializer>(m: &Metric, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_str(m.name())
+}
+
+/// Why a rule is not acceptable (names the rule and the key).
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[error("alert rule '{rule}': {message}")]
+pub struct RuleError {
+    /// The rule's name (or its position when unnamed).
+    pub rule: String,
+    /// What is wrong.
+    pub message: String,
+}
+
+impl RuleEntry {
+    /// Check the entry and fill in the defaults.
+    pub fn check(&self, position: usize) -> Result<Rule, RuleError> {
+        let rule = if self.name.is_empty() { format!("#{}", position + 1) } else { self.name.clone() };
+        let err = |m: String| RuleError { rule: rule.clone(), message: m };
+        crate::session::check_name("rule name", &self.name).map_err(|e| err(e.to_string()))?;
+        if self.session.is_none() && self.labels.is_empty() {
+            return Err(err("give `session` (a name) or `labels` (a selector), or both".into()));
+        }
+        let m = self.metric.as_deref().unwrap_or("bleu");
+        let metric = Metric::ALL.into_iter().find(|x| x.name() == m).ok_or_else(|| err(format!("metric '{m}' is not one of bleu, chrf, chrf++")))?;
+        match self.window.as_deref().unwrap_or("recent") {
+            "recent" => {}
+            w => return Err(err(format!("window '{w}': only `recent` is evaluated by the daemon so far (time windows are rendered for Prometheus only later)"))),
+        }
+        let condition = match self.when.as_deref() {
+            Some("below") => {
+                let threshold = self.threshold.ok_or_else(|| err("`when = \"below\"` needs `threshold`".into()))?;
+                if !(0.0..=100.0).contains(&threshold) {
+                    return Err(err(format!("threshold {threshold} is not a score between 0 and 100")));
+                }
+                if self.baseline.is_some() || self.points.is_some() {
+                    return Err(err("`baseline` and `points` belong to `when = \"drop\"`".into()));
+                }
+                Condition::Below { threshold }
+            }
+            Some("drop") => {
+                let baseline = self.baseline.clone().ok_or_else(|| err("`when = \"drop\"` needs `baseline` (a session name)".into()))?;
+                let points = self.points.ok_or_else(|| err("`when = \"drop\"` needs `points`".into()))?;
+                if !(0.0..=100.0).contains(&points) {
+                    return Err(err(format!("points {points} is not between 0 and 100")));
+                }
+                if self.threshold.is_some() {
+                    return Err(err("`threshold` belongs to `when = \"below\"`".into()));
+                }
+                Condition::Drop { baseline, points }
+            }
+            Some(w) => return Err(err(format!("when '{w}' is not one of below, drop"))),
+            None => return Err(err("`when` is missing: below or drop".into())),
+        };
+        let clear_margin = self.clear_margin.unwrap_or(DEFAULT_CLEAR_MARGIN);
+        if clear_margin.is_nan() || clear_margin < 0.0 {
+            return Err(err(format!("clear_margin {clear_margin} is negative")));
+        }
+        Ok(Rule {
+            name: self.name.clone(),
+            session: self.session.clone(),
+            labels: self.labels.clone(),
+            metric,
+            condition,
+            min_segments: self.min_segments.unwrap_or(DEFAULT_MIN_SEGMENTS),
+            for_seconds: self.for_seconds.unwrap_or(DEFAULT_FOR_SECONDS),
+            clear_margin,
+            severity: self.severity.clone().unwrap_or_else(|| DEFAULT_SEVERITY.to_owned()),
+            extra_labels: self.extra_labels.clone(),
+            annotations: self.annotations.clone(),
+        })
+    }
+}
+
+/// Check every entry; names must be unique.
+pub fn check_rules(entries: &[RuleEntry]) -> Result<Vec<Rule>, RuleError> {
+    if entries.len() > MAX_RULES {
+        return Err(RuleError { rule: format!("#{}", entries.len()), message: format!("more than {MAX_RULES} rules") });
+    }
+    let rules = entries.iter().enumerate().map(|(i, e)| e.check(i)).collect::<Result<Vec<_>, _>>()?;
+    let mut seen = std::collections::HashSet::new();
+    for r in &rules {
+        if !seen.insert(&r.name) {
+            return Err(RuleError { rule: r.name.clone(), message: "declared twice".into() });
+        }
+    }
+    Ok(rules)
+}
+
+impl Rule {
+    /// Whether the rule watches a session with this name and these labels.
+    pub fn selects(&self, name: &str, labels: &BTreeMap<String, String>) -> bool {
+        self.session.as_deref().is_none_or(|s| s == name) && self.labels.iter().all(|(k, v)| labels.get(k) == Some(v))
+    }
+
+    /// Whether a measured upper bound meets the condition (`fires`), and whether it is past the
+    /// clearing point (`clears`).
+    fn judge(&self, upper: f64) -> (bool, bool) {
+        let limit = match &self.condition {
+            Condition::Below { threshold } => *threshold,
+            Condition::Drop { points, .. } => -points,
+        };
+        (upper < limit, upper >= limit + self.clear_margin)
+    }
+}
+
+/// State of one (rule, session) pair.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum State {
+    /// Condition not met.
+    Inactive,
+    /// Condition met, not yet for long enough.
+    Pending,
+    /// Firing.
+    Firing,
+}
+
+impl State {
+    /// Every state, in order.
+    pub const ALL: [State; 3] = [State::Inactive, State::Pending, State::Firing];
+
+    /// The name in outputs.
+    pub fn name(self) -> &'static str {
+        match self {
+            State::Inactive => "inactive",
+            State::Pending => "pending",
+            State::Firing => "firing",
+        }
+    }
+}
+
+/// What one evaluation measured for a (rule, session) pair.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Measured {
+    /// The score (or difference) and its interval's bounds.
+    pub value: f64,
+    /// Lower bound.
+    pub low: f64,
+    /// Upper bound.
+    pub high: f64,
+    /// Segments behind it.
+    pub segments: u64,
+}
+
+/// The running state of a (rule, session) pair.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Tracker {
+    /// Current state.
+    pub state: State,
+    /// When the current state began (seconds since the epoch).
+    pub since: i64,
+    /// The last measurement (None: nothing to judge by, e.g. no interval yet).
+    pub last: Option<Measured>,
+}
+
+/// A change of state worth telling (firing or resolved).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Transition {
+    /// Started firing.
+    Fired,
+    /// Stopped firing.
+    Resolved,
+}
+
+impl Tracker {
+    /// A new pair, inactive since `now`.
+    pub fn new(now: i64) -> Tracker {
+        Tracker { state: State::Inactive, since: now, last: None }
+    }
+
+    /// Advance with one evaluation at `now` (`m`: None when there is no interval to judge by).
+    pub fn step(&mut self, rule: &Rule, m: Option<Measured>, now: i64) -> Option<Transition> {
+        self.last = m;
+        let judged = m.filter(|m| m.segments >= rule.min_segments).map(|m| rule.judge(m.high));
+        let (next, t) = match (self.state, judged) {
+            (State::Firing, Some((_, false))) => (State::Firing, None),
+            (State::Firing, _) => (State::Inactive, Some(Transition::Resolved)),
+            (State::Pending, Some((true, _))) if now - self.since >= rule.for_seconds as i64 => (State::Firing, Some(Transition::Fired)),
+            (State::Pending, Some((true, _))) => (State::Pending, None),
+            (State::Inactive, Some((true, _))) if rule.for_seconds == 0 => (State::Firing, Some(Transition::Fired)),
+            (State::Inactive, Some((true, _))) => (State::Pending, None),
+            (_, _) => (State::Inactive, None),
+        };
+        if next != self.state {
+            self.state = next;
+            self.since = now;
+        }
+        t
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn entry(toml_text: &str) -> RuleEntry {
+        toml::from_str(toml_text).unwrap()
+    }
+
+    fn below(threshold: f64, for_seconds: u64) -> Rule {
+        entry(&format!("name = \"floor\"\nsession = \"ferry-en-de.model-v8-rc\"\nwhen = \"below\"\nthreshold = {threshold}\nfor_seconds = {for_seconds}\nmin_segments = 100\nclear_margin = 1.0")).check(0).unwrap()
+    }
+
+    fn m(high: f64, segments: u64) -> Option<Measured> {
+        Some(Measured { value: high - 2.0, low: high - 4.0, high, segments })
+    }
+
+    #[test]
+    fn entries_are_checked_with_messages_naming_the_rule_and_key() {
+        let r = below(45.0, 30);
+        assert_eq!((r.metric, r.condition.clone(), r.severity.as_str()), (Metric::Bleu, Condition::Below { threshold: 45.0 }, DEFAULT_SEVERITY));
+        let d = entry("name = \"vs-prod\"\nlabels = { model = \"v8-rc\" }\nmetric = \"chrf\"\nwhen = \"drop\"\nbaseline = \"ferry-en-de.model-v7\"\npoints = 2").check(0).unwrap();
+        assert_eq!(d.condition, Condition::Drop { baseline: "ferry-en-de.model-v7".into(), points: 2.0 });
+        assert!(d.selects("anything", &[("model".to_string(), "v8-rc".to_string())].into()) && !d.selects("x", &BTreeMap::new()));
+        for (text, want) in [
+            ("name = \"a\"\nwhen = \"below\"\nthreshold = 40", "give `session`"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"", "needs `threshold`"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"drop\"\npoints = 1", "needs `baseline`"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"above\"", "not one of below, drop"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 140", "between 0 and 100"),
+            ("name = \"a\"\nsession = \"s\"\nmetric = \"ter\"\nwhen = \"below\"\nthreshold = 4", "metric 'ter'"),
+            ("name = \"a\"\nsession = \"s\"\nwindow = \"15m\"\nwhen = \"below\"\nthreshold = 4", "only `recent`"),
+            ("name = \"a b\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4", "rule name"),
+        ] {
+            let e = entry(text).check(0).unwrap_err();
+            assert!(e.to_string().contains(want), "{text}: {e}");
+        }
+        assert!(toml::from_str::<RuleEntry>("name = \"a\"\nthreshhold = 3").is_err(), "unknown keys are refused");
+        let twice = check_rules(&[entry("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4"), entry("name = \"a\"\nsession = \"t\"\nwhen = \"below\"\nthreshold = 5")]);
+        assert!(twice.unwrap_err().to_string().contains("declared twice"));
+    }
+
+    #[test]
+    fn states_follow_for_duration_and_hysteresis() {
+        let r = below(45.0, 30);
+        let mut t = Tracker::new(0);
+        // A score whose interval still reaches above the threshold does not count.
+        assert_eq!(t.step(&r, m(46.0, 500), 0), None);
+        assert_eq!(t.state, State::Inactive);
+        // Below, but too few segments: nothing.
+        assert_eq!(t.step(&r, m(40.0, 99), 5), None);
+        assert_eq!(t.state, State::Inactive);
+        assert_eq!(t.step(&r, m(44.0, 500), 10), None);
+        assert_eq!((t.state, t.since), (State::Pending, 10));
+        // Back above for one evaluation: pending ends.
+        assert_eq!(t.step(&r, m(45.2, 500), 15), None);
+        assert_eq!(t.state, State::Inactive);
+        assert_eq!(t.step(&r, m(44.0, 500), 20), None);
+        assert_eq!(t.step(&r, m(43.0, 500), 49), None, "29 s are not 30");
+        assert_eq!(t.step(&r, m(43.0, 500), 50), Some(Transition::Fired));
+        assert_eq!(t.state, State::Firing);
+        // Hysteresis: back at 45.5 (< 45 + 1) keeps firing; 46 resolves.
+        assert_eq!(t.step(&r, m(45.5, 500), 55), None);
+        assert_eq!(t.state, State::Firing);
+        assert_eq!(t.step(&r, m(46.0, 500), 60), Some(Transition::Resolved));
+        assert_eq!((t.state, t.since), (State::Inactive, 60));
+        // No interval (or too few segments) resolves a firing alert: nothing to judge by.
+        let zero = below(45.0, 0);
+        let mut t = Tracker::new(0);
+        assert_eq!(t.step(&zero, m(40.0, 500), 1), Some(Transition::Fired), "for_seconds = 0 fires at once");
+        assert_eq!(t.step(&zero, None, 2), Some(Transition::Resolved));
+    }
+
+    #[test]
+    fn a_drop_is_judged_on_the_difference_interval() {
+        let r = entry("name = \"vs-prod\"\nsession = \"c\"\nwhen = \"drop\"\nbaseline = \"p\"\npoints = 2\nfor_seconds = 0\nmin_segments = 1\nclear_margin = 0.5").check(0).unwrap();
+        let mut t = Tracker::new(0);
+        assert_eq!(t.step(&r, m(-1.9, 300), 1), None, "upper bound -1.9 is not below -2");
+        assert_eq!(t.step(&r, m(-2.1, 300), 2), Some(Transition::Fired));
+        assert_eq!(t.step(&r, m(-1.6, 300), 3), None, "-1.6 < -2 + 0.5: still firing");
+        assert_eq!(t.step(&r, m(-1.5, 300), 4), Some(Transition::Resolved));
+    }
+}
