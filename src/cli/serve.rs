@@ -29,6 +29,7 @@ Settings come from --config FILE (TOML) and flags; a flag overrides the file. Ke
   refset_dir, data_dir, durability, group_commit_ms, drain_seconds,
   log_format, max_message_bytes (default {max_message}), exported_resamples (default {exported}),
   alert_eval_seconds (default {eval}), [[alert]] (alert rules the daemon evaluates: see README),
+  [[alert_target]] kind = alertmanager|webhook, url, bearer_token_file, ca_file (where alerts go),
   [limits] (below), [[refset]] name, paths = [...], source (loaded at startup).
 
 [limits] keys, each at least 1, with their defaults; a request past one is refused with \
@@ -120,11 +121,13 @@ pub enum Durability {
 }
 
 /// The config file's top-level keys (what `FileConfig` reads).
-const FILE_KEYS: [&str; 19] = [
+const FILE_KEYS: [&str; 20] = [
     "tls_cert", "tls_key", "tls_client_ca", "health_listen", "tokens", "data_dir", "durability", "group_commit_ms", "listen",
     "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "exported_resamples", "alert_eval_seconds", "limits", "refset",
-    "alert",
+    "alert", "alert_target",
 ];
+/// The keys of one `[[alert_target]]` entry.
+const TARGET_KEYS: [&str; 4] = ["kind", "url", "bearer_token_file", "ca_file"];
 /// The keys of one `[[refset]]` entry.
 const REFSET_KEYS: [&str; 3] = ["name", "paths", "source"];
 
@@ -151,9 +154,20 @@ pub struct FileConfig {
     #[serde(default)]
     alert: Vec<crate::alerts::rules::RuleEntry>,
     #[serde(default)]
+    alert_target: Vec<FileTarget>,
+    #[serde(default)]
     limits: LimitsSection,
     #[serde(default)]
     refset: Vec<FileRefSet>,
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct FileTarget {
+    kind: String,
+    url: String,
+    bearer_token_file: Option<PathBuf>,
+    ca_file: Option<PathBuf>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -204,6 +218,8 @@ pub struct Resolved {
     pub tokens: Option<PathBuf>,
     /// Log format.
     pub log_format: LogFormat,
+    /// Bearer-token files of the alert targets, by their index in `server.alert_targets`.
+    pub alert_token_files: Vec<(usize, PathBuf)>,
 }
 
 /// Resolve flags over the file over the defaults; no I/O (tests call this).
@@ -236,6 +252,18 @@ pub fn resolve(a: &ServeArgs, file: FileConfig) -> Result<Resolved, CliError> {
         config.exported_resamples = n;
     }
     config.alert_rules = crate::alerts::rules::check_rules(&file.alert).map_err(|e| CliError::Usage(e.to_string()))?;
+    let mut alert_token_files = Vec::new();
+    for (i, t) in file.alert_target.iter().enumerate() {
+        let kind = match t.kind.as_str() {
+            "alertmanager" => crate::alerts::deliver::TargetKind::Alertmanager,
+            "webhook" => crate::alerts::deliver::TargetKind::Webhook,
+            k => return Err(CliError::Usage(format!("alert_target {}: kind '{k}' is not alertmanager or webhook", i + 1))),
+        };
+        if let Some(p) = &t.bearer_token_file {
+            alert_token_files.push((i, p.clone()));
+        }
+        config.alert_targets.push(crate::alerts::deliver::Target { kind, url: t.url.clone(), bearer_token: None, ca_file: t.ca_file.clone() });
+    }
     if let Some(s) = file.alert_eval_seconds {
         if s == 0 {
             return Err(CliError::Usage("config key alert_eval_seconds must be at least 1".into()));
@@ -259,7 +287,7 @@ pub fn resolve(a: &ServeArgs, file: FileConfig) -> Result<Resolved, CliError> {
         (None, None) => None,
         _ => return Err(CliError::Usage("TLS needs both a certificate (tls_cert) and a key (tls_key)".into())),
     };
-    Ok(Resolved { server: config, listen, metrics_listen, health_listen: a.health_listen.or(file.health_listen), tokens: a.tokens.clone().or(file.tokens), log_format })
+    Ok(Resolved { server: config, listen, metrics_listen, health_listen: a.health_listen.or(file.health_listen), tokens: a.tokens.clone().or(file.tokens), log_format, alert_token_files })
 }
 
 /// What `--show-config` prints: the resolved settings, the accepted keys and the metrics.
@@ -285,6 +313,7 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "exported_resamples": c.exported_resamples,
             "alert_eval_seconds": c.alert_every.as_secs(),
             "alert": c.alert_rules,
+            "alert_target": c.alert_targets.iter().map(|t| serde_json::json!({"kind": format!("{:?}", t.kind).to_lowercase(), "url": t.url, "ca_file": path(&t.ca_file)})).collect::<Vec<_>>(),
             "log_format": match r.log_format { LogFormat::Human => "human", LogFormat::Json => "json" },
             "tls_cert": c.tls.as_ref().map(|t| t.cert.display().to_string()),
             "tls_key": c.tls.as_ref().map(|t| t.key.display().to_string()),
@@ -293,7 +322,7 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "limits": c.limits.section(),
             "refset": refsets,
         },
-        "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS, "alert": crate::alerts::rules::RULE_KEYS },
+        "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS, "alert": crate::alerts::rules::RULE_KEYS, "alert_target": TARGET_KEYS },
         "metrics": telemetry::METRIC_NAMES.as_slice(),
     })
 }
@@ -311,7 +340,11 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
         println!("{}", serde_json::to_string_pretty(&show_config(&r)).unwrap_or_default());
         return Ok(());
     }
-    let Resolved { server: mut config, listen, metrics_listen, health_listen, tokens, log_format } = r;
+    let Resolved { server: mut config, listen, metrics_listen, health_listen, tokens, log_format, alert_token_files } = r;
+    for (i, p) in alert_token_files {
+        let text = std::fs::read_to_string(&p).map_err(|e| CliError::Usage(format!("alert_target {}: bearer_token_file {}: {e}", i + 1, p.display())))?;
+        config.alert_targets[i].bearer_token = Some(text.trim().to_owned());
+    }
     if let Some(p) = tokens {
         let text = std::fs::read_to_string(&p).map_err(|e| CliError::Usage(format!("{}: {e}", p.display())))?;
         config.tokens = Some(std::sync::Arc::new(server::auth::Tokens::parse(&p.display().to_string(), &text).map_err(CliError::Usage)?));

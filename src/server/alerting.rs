@@ -11,6 +11,7 @@ use std::time::Duration;
 use tokio::sync::watch;
 
 use super::state::{unix_now, State};
+use crate::alerts::deliver::{AlertEvent, DeliveryHandle};
 use crate::alerts::rules::{Condition, Measured, Rule, State as AlertState, Tracker, Transition};
 use crate::metric::compare::CompareSettings;
 use crate::metric::resample::DEFAULT_LEVEL;
@@ -37,14 +38,29 @@ impl AlertBoard {
     }
 }
 
-/// Start evaluating `rules` every `every` until `stop` turns true (inside a Tokio runtime).
-pub fn start(state: State, rules: Vec<Rule>, every: Duration, board: AlertBoard, mut stop: watch::Receiver<bool>) {
+/// Seconds between two posts of a firing alert to the targets: Alertmanager ends an alert it
+/// has not heard of for its resolve timeout (5 minutes by default), so a firing alert is sent
+/// again well within it (common practice: once a minute).
+pub const RESEND_SECONDS: i64 = 60;
+
+/// A (rule, session) pair as the evaluator keeps it.
+#[derive(Debug, Clone, Copy)]
+pub struct Pair {
+    tracker: Tracker,
+    /// When the alert last fired (its startsAt) and when it was last posted.
+    fired_at: i64,
+    posted_at: i64,
+}
+
+/// Start evaluating `rules` every `every` until `stop` turns true (inside a Tokio runtime);
+/// firing and resolved alerts go to `delivery`.
+pub fn start(state: State, rules: Vec<Rule>, every: Duration, board: AlertBoard, delivery: Option<Arc<DeliveryHandle>>, mut stop: watch::Receiver<bool>) {
     if rules.is_empty() {
         return;
     }
     let rules = Arc::new(rules);
     tokio::spawn(async move {
-        let mut trackers: HashMap<(String, String), Tracker> = HashMap::new();
+        let mut trackers: HashMap<(String, String), Pair> = HashMap::new();
         let mut tick = tokio::time::interval(every.max(Duration::from_secs(1)));
         tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
         loop {
@@ -52,9 +68,9 @@ pub fn start(state: State, rules: Vec<Rule>, every: Duration, board: AlertBoard,
                 _ = stop.wait_for(|s| *s) => break,
                 _ = tick.tick() => {}
             }
-            let (st, r, b) = (state.clone(), Arc::clone(&rules), board.clone());
+            let (st, r, b, d) = (state.clone(), Arc::clone(&rules), board.clone(), delivery.clone());
             let owned = std::mem::take(&mut trackers);
-            match tokio::task::spawn_blocking(move || evaluate(&st, &r, owned, &b, unix_now())).await {
+            match tokio::task::spawn_blocking(move || evaluate(&st, &r, owned, &b, d.as_deref(), unix_now())).await {
                 Ok(t) => trackers = t,
                 Err(e) => tracing::error!(error = %e, "alert evaluation failed"),
             }
@@ -64,29 +80,74 @@ pub fn start(state: State, rules: Vec<Rule>, every: Duration, board: AlertBoard,
 
 /// One round over every rule and every session it selects; returns the trackers (pairs whose
 /// session went away are dropped).
-pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, String), Tracker>, board: &AlertBoard, now: i64) -> HashMap<(String, String), Tracker> {
+pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, String), Pair>, board: &AlertBoard, delivery: Option<&DeliveryHandle>, now: i64) -> HashMap<(String, String), Pair> {
     let mut next = HashMap::new();
     let mut views: HashMap<String, Vec<pb::AlertStatus>> = HashMap::new();
     for session in state.sessions() {
         let spec = session.spec();
         for rule in rules.iter().filter(|r| r.selects(&spec.name, &spec.labels)) {
             let key = (rule.name.clone(), spec.name.clone());
-            let mut t = trackers.remove(&key).unwrap_or_else(|| Tracker::new(now));
+            let mut p = trackers.remove(&key).unwrap_or(Pair { tracker: Tracker::new(now), fired_at: now, posted_at: now });
             let m = measure(state, rule, &session);
-            if let Some(change) = t.step(rule, m, now) {
+            let change = p.tracker.step(rule, m, now);
+            if let Some(change) = change {
                 log_transition(rule, &spec.name, change, m);
             }
-            telemetry::record_alert(&rule.name, &spec.name, t.state.name(), &AlertState::ALL.map(AlertState::name));
-            views.entry(spec.name.clone()).or_default().push(view(rule, &t));
-            next.insert(key, t);
+            if change == Some(Transition::Fired) {
+                p.fired_at = now;
+            }
+            let resend = p.tracker.state == AlertState::Firing && now - p.posted_at >= RESEND_SECONDS;
+            if let (Some(d), true) = (delivery, change.is_some() || resend) {
+                d.send(event(rule, &session, &p, change == Some(Transition::Resolved), now));
+                p.posted_at = now;
+            }
+            telemetry::record_alert(&rule.name, &spec.name, p.tracker.state.name(), &AlertState::ALL.map(AlertState::name));
+            views.entry(spec.name.clone()).or_default().push(view(rule, &p.tracker));
+            next.insert(key, p);
         }
     }
-    // Pairs that are gone (session closed) stop firing in the gauges.
-    for ((rule, session), _) in trackers {
+    // Pairs that are gone (session closed) stop firing in the gauges, and at the targets.
+    for ((rule, session), p) in trackers {
+        if let (Some(d), AlertState::Firing, Some(r)) = (delivery, p.tracker.state, rules.iter().find(|r| r.name == rule)) {
+            d.send(closed_event(r, &session, &p, now));
+        }
         telemetry::record_alert(&rule, &session, AlertState::Inactive.name(), &AlertState::ALL.map(AlertState::name));
     }
     board.publish(views);
     next
+}
+
+fn at(unix: i64) -> std::time::SystemTime {
+    std::time::UNIX_EPOCH + Duration::from_secs(unix.max(0) as u64)
+}
+
+/// The labels of a (rule, session) alert: its identity at the targets.
+fn labels(rule: &Rule, session: &str) -> std::collections::BTreeMap<String, String> {
+    let mut l = rule.extra_labels.clone();
+    l.insert("alertname".into(), rule.name.clone());
+    l.insert("session".into(), session.to_owned());
+    l.insert("severity".into(), rule.severity.clone());
+    l.insert("metric".into(), rule.metric.name().to_owned());
+    l
+}
+
+/// The alert as posted: firing (with its latest measurement) or resolved at `now`.
+fn event(rule: &Rule, session: &Session, p: &Pair, resolved: bool, now: i64) -> AlertEvent {
+    let mut annotations = rule.annotations.clone();
+    let measured = p.tracker.last.map_or_else(|| "nothing to judge by".to_owned(), |m| format!("{:.2} (95% interval {:.2} .. {:.2}, {} segments)", m.value, m.low, m.high, m.segments));
+    annotations.entry("summary".into()).or_insert_with(|| format!("{}: {} on session {}", rule.name, describe(rule), session.spec().name));
+    annotations.insert("measured".into(), measured);
+    annotations.insert(
+        "description".into(),
+        format!("{} is an automatic proxy for translation quality: look at the session's recent output and at what changed (model, input, references) before concluding anything.", rule.metric.title()),
+    );
+    AlertEvent { labels: labels(rule, &session.spec().name), annotations, starts_at: at(p.fired_at), ends_at: resolved.then(|| at(now)), generator_url: String::new() }
+}
+
+/// A firing alert whose session was closed: resolved at `now`.
+fn closed_event(rule: &Rule, session: &str, p: &Pair, now: i64) -> AlertEvent {
+    let annotations = [("summary".to_owned(), format!("{}: session {session} was closed", rule.name))].into();
+    AlertEvent { labels: labels(rule, session), annotations, starts_at: at(p.fired_at), ends_at: Some(at(now)), generator_url: String::new() }
 }
 
 /// What the rule judges by, now (None: nothing to judge by).

@@ -86,6 +86,8 @@ pub struct ServerConfig {
     pub alert_rules: Vec<crate::alerts::rules::Rule>,
     /// Time between two evaluations of the alert rules.
     pub alert_every: Duration,
+    /// Where firing and resolved alerts are posted (Alertmanager, webhooks).
+    pub alert_targets: Vec<crate::alerts::deliver::Target>,
 }
 
 /// PEM files of the server's TLS identity.
@@ -101,7 +103,7 @@ pub struct TlsFiles {
 
 impl Default for ServerConfig {
     fn default() -> Self {
-        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES, alert_rules: Vec::new(), alert_every: Duration::from_secs(crate::alerts::rules::DEFAULT_EVAL_SECONDS) }
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES, alert_rules: Vec::new(), alert_every: Duration::from_secs(crate::alerts::rules::DEFAULT_EVAL_SECONDS), alert_targets: Vec::new() }
     }
 }
 
@@ -179,7 +181,11 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     if let Some(l) = config.health_listener.take() {
         admin::serve_health(l, &health, idle, stop_rx.clone()).map_err(RunError::Setup)?;
     }
-    alerting::start(state.clone(), config.alert_rules.clone(), config.alert_every, state.alerts().clone(), stop_rx.clone());
+    let delivery = match config.alert_targets.is_empty() {
+        true => None,
+        false => Some(Arc::new(crate::alerts::deliver::Delivery::start(crate::alerts::deliver::DeliveryConfig::new(config.alert_targets.clone())).map_err(setup)?)),
+    };
+    alerting::start(state.clone(), config.alert_rules.clone(), config.alert_every, state.alerts().clone(), delivery.clone(), stop_rx.clone());
     let router = router(&config, &state, stop_rx, tls.clone(), health_service)?;
 
     // Graceful part: when `shutdown` fires, report NOT_SERVING, tell streams to finish their
@@ -213,6 +219,10 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     health.set_service_status("", tonic_health::ServingStatus::Serving).await;
     tracing::info!("serving");
     let result = serve_until_done(serving, drain_rx, config.drain, &state).await;
+    if let Some(d) = &delivery {
+        // What is queued goes out before the process ends (bounded like the drain).
+        d.shutdown(config.drain).await;
+    }
     if let Some(t) = metrics_task {
         t.abort();
     }

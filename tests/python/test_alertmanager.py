@@ -17,6 +17,7 @@ group_interval, repeat_interval; a webhook_configs receiver with send_resolved P
 
 import json
 import os
+import re
 import shutil
 import socket
 import subprocess
@@ -25,9 +26,11 @@ import time
 import urllib.request
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 
+import contextlib
+
 import pytest
 
-from mtg_helpers import REPO
+from mtg_helpers import REPO, require_binary
 
 REQUIRE = os.environ.get("MTGAUGE_REQUIRE_ALERTMANAGER") == "1"
 
@@ -167,3 +170,142 @@ def test_firing_then_resolved_reach_alertmanager_and_its_receiver(tmp_path):
             am.kill()
         hook.shutdown()
         log.close()
+
+
+@contextlib.contextmanager
+def running_alertmanager(tmp_path, notes, group_by):
+    """An Alertmanager on loopback whose one receiver is the webhook of `notes`; yields its URL."""
+    binary = alertmanager_bin()
+    hook = ThreadingHTTPServer(("127.0.0.1", 0), notes.handler())
+    threading.Thread(target=hook.serve_forever, daemon=True).start()
+    web_port = free_port()
+    config = tmp_path / "alertmanager.yml"
+    config.write_text(
+        "route:\n"
+        "  receiver: ferry-hook\n"
+        f"  group_by: {json.dumps(group_by)}\n"
+        "  group_wait: 1s\n"
+        "  group_interval: 1s\n"
+        "  repeat_interval: 1h\n"
+        "receivers:\n"
+        "  - name: ferry-hook\n"
+        "    webhook_configs:\n"
+        f"      - url: http://127.0.0.1:{hook.server_address[1]}/ferry-alerts\n"
+        "        send_resolved: true\n"
+    )
+    (tmp_path / "data").mkdir()
+    log = open(tmp_path / "alertmanager.log", "w+b")
+    am = subprocess.Popen(
+        [binary, f"--config.file={config}", f"--storage.path={tmp_path / 'data'}",
+         f"--web.listen-address=127.0.0.1:{web_port}", "--cluster.listen-address="],
+        stdout=log, stderr=subprocess.STDOUT,
+    )
+    base = f"http://127.0.0.1:{web_port}"
+    try:
+        deadline = time.monotonic() + 30
+        while True:
+            try:
+                with urllib.request.urlopen(f"{base}/-/ready", timeout=2) as r:
+                    if r.status == 200:
+                        break
+            except OSError:
+                pass
+            if am.poll() is not None or time.monotonic() > deadline:
+                log.seek(0)
+                pytest.fail(f"Alertmanager did not become ready:\n{log.read().decode(errors='replace')}")
+            time.sleep(0.1)
+        yield base
+    finally:
+        am.terminate()
+        try:
+            am.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            am.kill()
+        hook.shutdown()
+        log.close()
+
+
+def test_daemon_rules_fire_and_resolve_through_alertmanager(tmp_path):
+    """The whole path: `mtgauge serve` with an [[alert]] rule and an [[alert_target]] pointing at a
+    real Alertmanager; the degraded session's drop against production fires, Alertmanager
+    notifies its receiver; closing the session resolves the alert there too."""
+    mtgauge = require_binary()
+    demo = tmp_path / "demo"
+    subprocess.run([str(mtgauge), "demo", "--offline", "--write-files", str(demo)], check=True,
+                   capture_output=True, timeout=120)
+    ids = [json.loads(line)["id"] for line in (demo / "refs.jsonl").read_text(encoding="utf-8").splitlines()]
+    (demo / "ids.txt").write_text("".join(i + "\n" for i in ids), encoding="utf-8")
+    notes = Notifications()
+    with running_alertmanager(tmp_path, notes, ["alertname", "session"]) as am_url:
+        config = tmp_path / "mtgauge.toml"
+        config.write_text(
+            "alert_eval_seconds = 1\n"
+            "[[alert]]\n"
+            'name = "worse-than-production"\n'
+            'session = "fallback"\n'
+            'when = "drop"\n'
+            'baseline = "v7"\n'
+            "points = 5\n"
+            "min_segments = 100\n"
+            "for_seconds = 1\n"
+            "[alert.extra_labels]\n"
+            f'run = "daemon{os.getpid()}"\n'
+            "[[alert_target]]\n"
+            'kind = "alertmanager"\n'
+            f'url = "{am_url}"\n'
+        )
+        log = open(tmp_path / "serve.log", "w+b")
+        srv = subprocess.Popen([str(mtgauge), "serve", "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0",
+                                "--durability", "none", "--config", str(config),
+                                "--refset", f"ferry={demo / 'refs.jsonl'}"], stdout=log, stderr=subprocess.STDOUT)
+        try:
+            deadline = time.monotonic() + 30
+            grpc = None
+            while grpc is None:
+                log.seek(0)
+                m = re.search(rb"listening grpc=(\S+)", log.read())
+                if m:
+                    grpc = m.group(1).decode()
+                elif srv.poll() is not None or time.monotonic() > deadline:
+                    log.seek(0)
+                    pytest.fail(f"mtgauge serve did not start:\n{log.read().decode(errors='replace')}")
+                else:
+                    time.sleep(0.1)
+            server = f"http://{grpc}"
+            for session, hyp in [("v7", "hyp.model-v7.de.txt"), ("fallback", "hyp.fallback-dictionary.de.txt")]:
+                subprocess.run([str(mtgauge), "send", "--server", server, "--session", session, "--create", "--refset", "ferry",
+                                "--ids", str(demo / "ids.txt"), "--hyp", str(demo / hyp)], check=True, capture_output=True, timeout=120)
+            run = f"daemon{os.getpid()}"
+
+            def ours():
+                return [b for b in notes.bodies if any(a["labels"].get("run") == run for a in b.get("alerts", []))]
+
+            deadline = time.monotonic() + 40
+            while not any(b["status"] == "firing" for b in ours()) and time.monotonic() < deadline:
+                time.sleep(0.2)
+            firing = [b for b in ours() if b["status"] == "firing"]
+            assert firing, f"no firing notification: {notes.bodies}"
+            [a] = firing[0]["alerts"]
+            assert a["labels"]["alertname"] == "worse-than-production" and a["labels"]["session"] == "fallback", a
+            assert a["labels"]["severity"] == "warning" and a["labels"]["metric"] == "bleu", a
+            assert "proxy" in a["annotations"]["description"], a
+            # The fallback session recovers: production-quality output fills its window (1000
+            # segments), the drop is gone, the alert resolves at Alertmanager.
+            for k in range(4):
+                subprocess.run([str(mtgauge), "send", "--server", server, "--session", "fallback", "--producer", f"recover-{k}",
+                                "--ids", str(demo / "ids.txt"), "--hyp", str(demo / "hyp.model-v7.de.txt")],
+                               check=True, capture_output=True, timeout=120)
+            deadline = time.monotonic() + 40
+            while not any(b["status"] == "resolved" for b in ours()) and time.monotonic() < deadline:
+                time.sleep(0.2)
+            resolved = [b for b in ours() if b["status"] == "resolved"]
+            assert resolved, f"no resolved notification: {ours()}"
+            [r] = resolved[0]["alerts"]
+            assert r["labels"] == a["labels"] and r["startsAt"] == a["startsAt"] and r["endsAt"] > r["startsAt"], (a, r)
+        finally:
+            srv.terminate()
+            try:
+                srv.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                srv.kill()
+            log.close()
