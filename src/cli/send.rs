@@ -70,7 +70,8 @@ pub struct SendArgs {
     /// Print the acknowledged counts as JSON.
     #[arg(long)]
     pub json: bool,
-    /// With --create: bootstrap replicates the session keeps for its intervals (0: none).
+    /// With --create: bootstrap replicates the session keeps for its intervals (0: none; at most
+    /// 1000).
     #[arg(long, default_value_t = crate::metric::resample::DAEMON_RESAMPLES, value_name = "N", requires = "create")]
     pub resamples: usize,
     /// With --create: seed of the replicate weights (sessions whose intervals are compared or

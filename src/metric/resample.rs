@@ -53,6 +53,9 @@ pub const OFFLINE_RESAMPLES: usize = 1000;
 pub const DAEMON_RESAMPLES: usize = 200;
 /// Most replicates accepted (memory: replicates x fields x 8 bytes per shard).
 pub const MAX_RESAMPLES: usize = 20_000;
+/// Most replicates a daemon session may keep: it holds about ten copies of its sums (cumulative
+/// and the window's checkpoints), 2.3 MB at this many for bleu + chrf.
+pub const MAX_SESSION_RESAMPLES: usize = 1_000;
 /// Seed of the replicate weights unless configured.
 pub const DEFAULT_RESAMPLE_SEED: u64 = 1;
 /// Interval level unless configured (common practice).

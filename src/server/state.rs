@@ -12,7 +12,7 @@ use dashmap::mapref::entry::Entry;
 use dashmap::DashMap;
 
 use super::error::{Result, ServiceError};
-use crate::metric::resample::{Resampling, MAX_RESAMPLES};
+use crate::metric::resample::{Resampling, MAX_SESSION_RESAMPLES};
 use crate::metric::ScoreConfig;
 use crate::session::{Applied, Outcome};
 use crate::store::{BatchWrite, Store, StoreError};
@@ -363,8 +363,8 @@ impl State {
         if window > MAX_WINDOW {
             return Err(ServiceError::Invalid(format!("window {window} is larger than {MAX_WINDOW}")));
         }
-        if resampling.resamples > MAX_RESAMPLES {
-            return Err(ServiceError::Invalid(format!("{} resamples are more than {MAX_RESAMPLES}", resampling.resamples)));
+        if resampling.resamples > MAX_SESSION_RESAMPLES {
+            return Err(ServiceError::Invalid(format!("{} resamples are more than a session may keep ({MAX_SESSION_RESAMPLES})", resampling.resamples)));
         }
         Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling })
     }

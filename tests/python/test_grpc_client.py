@@ -786,6 +786,11 @@ def test_session_without_replicates_has_no_interval(stubs, api, demo_refs):
     report = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=name), timeout=RPC_TIMEOUT)
     assert report.cumulative.segments == 1
     assert not report.cumulative.bleu.HasField("interval") and report.interval_note == ""
+    # More replicates than a session may keep (1000: about ten copies of the sums each).
+    req = stubs.sessions.CreateSessionRequest(name="py-too-many", refset="ferry",
+                                              resampling=stubs.common.Resampling(resamples=1001))
+    err = _expect_error(grpc.StatusCode.INVALID_ARGUMENT, api.sessions.Create, req)
+    assert "1000" in err.details(), err.details()
 
 
 def test_compare_call(stubs, api, demo_dir, demo_refs, v7_stream):
