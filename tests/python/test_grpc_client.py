@@ -777,6 +777,24 @@ def test_intervals_by_level_and_resampling(stubs, api, mtgauge, demo_dir, v7_str
                   stubs.scoring.GetScoresRequest(session=V7_SESSION, level=1.5))
 
 
+def test_watch_streams_carry_intervals_at_their_own_level(stubs, api, v7_stream):
+    """Two watchers of one session at different levels each get their own intervals (the
+    publisher builds one report per session and level)."""
+    def first(level):
+        stream = api.scoring.WatchScores(stubs.scoring.WatchScoresRequest(session=V7_SESSION, interval_seconds=1, level=level),
+                                         timeout=RPC_TIMEOUT)
+        try:
+            return next(iter(stream))
+        finally:
+            stream.cancel()
+    wide, narrow = first(0.0), first(0.5)
+    want = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION, level=0.5), timeout=RPC_TIMEOUT)
+    assert wide.cumulative.bleu.interval.level == 0.95 and narrow.cumulative.bleu.interval.level == 0.5
+    assert narrow.cumulative.bleu.interval == want.cumulative.bleu.interval
+    assert wide.cumulative.bleu.interval.low < narrow.cumulative.bleu.interval.low
+    assert narrow.cumulative.bleu.interval.high < wide.cumulative.bleu.interval.high
+
+
 def test_session_without_replicates_has_no_interval(stubs, api, demo_refs):
     name = "py-no-replicates"
     info = create_session(stubs, api, name, resampling=stubs.common.Resampling(resamples=0))
