@@ -213,7 +213,7 @@ async fn restart_restores_sessions_refsets_and_windows() {
     assert!(scrape.lines().any(|l| l == format!("mtgauge_segments_total{{session=\"keep\",outcome=\"scored\"}} {scored}")), "{scrape}");
     let m1 = after.cumulative.as_ref().unwrap().bleu.as_ref().unwrap().matched[0];
     assert!(scrape.lines().any(|l| l == format!("mtgauge_bleu_matches_total{{session=\"keep\",order=\"1\"}} {m1}")), "{scrape}");
-    assert!(scrape.lines().any(|l| l.starts_with("mtgauge_session_info{") && l.contains("session=\"keep\"") && l.contains("model=\"v7\"") && l.contains("config=\"tokenizer=nist caseless=no bleu:order=4,")), "{scrape}");
+    assert!(scrape.lines().any(|l| l.starts_with("mtgauge_session_info{") && l.contains("session=\"keep\"") && l.contains("model=\"v7\"") && l.contains("config=\"tokenizer=nist caseless=no bleu:order=4,") && l.contains("resampling=\"resamples=200,seed=1\"")), "{scrape}");
     let sets = pb::ref_sets_client::RefSetsClient::new(ch.clone()).list(pb::ListRefSetsRequest {}).await.unwrap().into_inner();
     assert_eq!(sets.refsets.len(), 1, "the reference set is rebuilt from the store, without its files");
 }

@@ -359,6 +359,13 @@ pub struct Resampling {
     pub seed: u64,
 }
 
+impl Resampling {
+    /// One line for labels and logs: `resamples=200,seed=1`.
+    pub fn describe(&self) -> String {
+        format!("resamples={},seed={}", self.resamples, self.seed)
+    }
+}
+
 impl Default for Resampling {
     fn default() -> Self {
         Resampling { resamples: DAEMON_RESAMPLES, seed: DEFAULT_RESAMPLE_SEED }

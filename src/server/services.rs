@@ -220,7 +220,7 @@ impl pb::sessions_server::Sessions for Services {
         if created {
             // Counters start at zero with the session (only then: an existing session's
             // counters are moved by its batches alone).
-            telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.labels, true);
+            telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.resampling.describe(), &spec.labels, true);
             telemetry::init_session(&spec.name, &spec.config, [0; 3], &CorpusStats::default());
         }
         tracing::info!(session = %spec.name, refset = %spec.refset, config = %spec.config.describe(), "session ready");
@@ -253,7 +253,7 @@ impl pb::sessions_server::Sessions for Services {
         self.authorize(&req, Scope::Admin)?;
         let s = self.state.close_session(&req.into_inner().name)?;
         let spec = s.spec();
-        telemetry::record_session_info(&spec.name, &spec.refset, &s.refs().digest_hex(), &spec.config.describe(), &spec.labels, false);
+        telemetry::record_session_info(&spec.name, &spec.refset, &s.refs().digest_hex(), &spec.config.describe(), &spec.resampling.describe(), &spec.labels, false);
         tracing::info!(session = %spec.name, "session closed");
         Ok(Response::new(pb::CloseSessionResponse {}))
     }

@@ -211,7 +211,7 @@ impl State {
                 0 => None,
                 _ => Some(crate::session::SessionReplicates::restore(&config, spec.resampling, &window, s.replicates, s.records_from, &s.records, |c| session.key_of(c)).map_err(bad)?),
             };
-            crate::telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.labels, true);
+            crate::telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.resampling.describe(), &spec.labels, true);
             crate::telemetry::init_session(&spec.name, &config, [s.counts.scored, s.counts.unknown, s.counts.rejected], &s.cumulative);
             crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });

@@ -31,7 +31,7 @@ pub const MAX_LABELS: usize = 16;
 /// Longest label value.
 pub const MAX_LABEL_VALUE_LEN: usize = 256;
 /// Label names a session may not use: the server sets them itself.
-const RESERVED_LABELS: &[&str] = &["session", "refset", "digest", "config", "metric", "window", "outcome", "order", "kind", "version"];
+const RESERVED_LABELS: &[&str] = &["session", "refset", "digest", "config", "resampling", "replicate", "metric", "window", "outcome", "order", "kind", "version"];
 
 /// Why a name or label is not acceptable.
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]

@@ -166,7 +166,7 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(CHRF_HYP, "chrF hypothesis n-grams per session, metric, kind and order.");
     describe_counter!(CHRF_REF, "chrF reference n-grams per session, metric, kind and order.");
     describe_gauge!(SCORE, "Score (0-100) per session, metric and window (cumulative, recent), derived from this replica's statistics.");
-    describe_gauge!(SESSION_INFO, "Constant 1 per live session, with its reference set, digest and labels.");
+    describe_gauge!(SESSION_INFO, "Constant 1 per live session, with its reference set, digest, configuration, resampling (replicates and seed of its intervals) and labels.");
     describe_gauge!(REFSET_SEGMENTS, "Segments of each loaded reference set.");
     describe_gauge!(REFSET_BYTES, Unit::Bytes, "Memory of each loaded reference set's text.");
     describe_gauge!(ACTIVE_STREAMS, "Scoring streams open now.");
@@ -254,8 +254,14 @@ pub fn record_scores(session: &str, config: &ScoreConfig, cumulative: &CorpusSta
 
 /// Publish (or re-publish) a session's info series; `config` is the scoring configuration as
 /// one string, so that replicas running a session differently can be told apart.
-pub fn record_session_info(session: &str, refset: &str, digest: &str, config: &str, labels: &BTreeMap<String, String>, live: bool) {
-    let mut l = vec![("session".to_owned(), session.to_owned()), ("refset".to_owned(), refset.to_owned()), ("digest".to_owned(), digest.to_owned()), ("config".to_owned(), config.to_owned())];
+pub fn record_session_info(session: &str, refset: &str, digest: &str, config: &str, resampling: &str, labels: &BTreeMap<String, String>, live: bool) {
+    let mut l = vec![
+        ("session".to_owned(), session.to_owned()),
+        ("refset".to_owned(), refset.to_owned()),
+        ("digest".to_owned(), digest.to_owned()),
+        ("config".to_owned(), config.to_owned()),
+        ("resampling".to_owned(), resampling.to_owned()),
+    ];
     l.extend(labels.iter().map(|(k, v)| (k.clone(), v.clone())));
     gauge!(SESSION_INFO, &l).set(if live { 1.0 } else { 0.0 });
 }
