@@ -2,3 +2,4 @@
 
 pub mod deliver;
 pub mod rules;
+pub mod shift;

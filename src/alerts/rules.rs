@@ -7,6 +7,10 @@
 //! - `below`: the score's whole confidence interval lies below `threshold` (its upper bound is
 //!   under it). A score that dips below the threshold by chance, with an interval that still
 //!   reaches above it, does not fire.
+//! - `decline`: against the session's own past: a sequential test (the CUSUM of
+//!   [`super::shift`]) over chunks of at least `min_segments` new segments flags a drop of
+//!   `points` beyond each chunk's bootstrap standard error; it resolves once the test is back
+//!   at 0.
 //! - `drop`: against a `baseline` session on the same reference set, the upper bound of the
 //!   paired-bootstrap interval of (session - baseline), over the segments both `recent` windows
 //!   hold, lies below `-points`: the session is worse by at least `points` beyond resampling
@@ -78,6 +82,11 @@ pub enum Condition {
     Below {
         /// Score, 0-100.
         threshold: f64,
+    },
+    /// A drop of `points` against the session's own past chunks (CUSUM).
+    Decline {
+        /// Points of drop to detect.
+        points: f64,
     },
     /// The paired interval of (session - baseline) entirely below `-points`.
     Drop {
@@ -167,8 +176,18 @@ impl RuleEntry {
                 }
                 Condition::Drop { baseline, points }
             }
-            Some(w) => return Err(err(format!("when '{w}' is not one of below, drop"))),
-            None => return Err(err("`when` is missing: below or drop".into())),
+            Some("decline") => {
+                let points = self.points.ok_or_else(|| err("`when = \"decline\"` needs `points` (the drop to detect)".into()))?;
+                if !(points > 0.0 && points <= 100.0) {
+                    return Err(err(format!("points {points} is not above 0 and at most 100")));
+                }
+                if self.threshold.is_some() || self.baseline.is_some() {
+                    return Err(err("`threshold` and `baseline` do not belong to `when = \"decline\"`".into()));
+                }
+                Condition::Decline { points }
+            }
+            Some(w) => return Err(err(format!("when '{w}' is not one of below, drop, decline"))),
+            None => return Err(err("`when` is missing: below, drop or decline".into())),
         };
         let clear_margin = self.clear_margin.unwrap_or(DEFAULT_CLEAR_MARGIN);
         if clear_margin.is_nan() || clear_margin < 0.0 {
@@ -211,14 +230,19 @@ impl Rule {
         self.session.as_deref().is_none_or(|s| s == name) && self.labels.iter().all(|(k, v)| labels.get(k) == Some(v))
     }
 
-    /// Whether a measured upper bound meets the condition (`fires`), and whether it is past the
-    /// clearing point (`clears`).
-    fn judge(&self, upper: f64) -> (bool, bool) {
+    /// Whether a measurement meets the condition (`fires`), and whether it is past the
+    /// clearing point (`clears`): the upper bound against the limit with `clear_margin`, or for
+    /// `decline` the test statistic against its decision limit (clear at 0).
+    fn judge(&self, m: &Measured) -> (bool, bool) {
         let limit = match &self.condition {
             Condition::Below { threshold } => *threshold,
             Condition::Drop { points, .. } => -points,
+            Condition::Decline { .. } => {
+                let s = m.statistic.unwrap_or(0.0);
+                return (s > super::shift::DECISION_LIMIT, s == 0.0);
+            }
         };
-        (upper < limit, upper >= limit + self.clear_margin)
+        (m.high < limit, m.high >= limit + self.clear_margin)
     }
 }
 
@@ -259,6 +283,8 @@ pub struct Measured {
     pub high: f64,
     /// Segments behind it.
     pub segments: u64,
+    /// `decline` rules: the test statistic, in standard errors.
+    pub statistic: Option<f64>,
 }
 
 /// The running state of a (rule, session) pair.
@@ -290,7 +316,7 @@ impl Tracker {
     /// Advance with one evaluation at `now` (`m`: None when there is no interval to judge by).
     pub fn step(&mut self, rule: &Rule, m: Option<Measured>, now: i64) -> Option<Transition> {
         self.last = m;
-        let judged = m.filter(|m| m.segments >= rule.min_segments).map(|m| rule.judge(m.high));
+        let judged = m.filter(|m| m.segments >= rule.min_segments).map(|m| rule.judge(&m));
         let (next, t) = match (self.state, judged) {
             (State::Firing, Some((_, false))) => (State::Firing, None),
             (State::Firing, _) => (State::Inactive, Some(Transition::Resolved)),
@@ -321,7 +347,7 @@ mod tests {
     }
 
     fn m(high: f64, segments: u64) -> Option<Measured> {
-        Some(Measured { value: high - 2.0, low: high - 4.0, high, segments })
+        Some(Measured { value: high - 2.0, low: high - 4.0, high, segments, statistic: None })
     }
 
     #[test]
@@ -335,7 +361,8 @@ mod tests {
             ("name = \"a\"\nwhen = \"below\"\nthreshold = 40", "give `session`"),
             ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"", "needs `threshold`"),
             ("name = \"a\"\nsession = \"s\"\nwhen = \"drop\"\npoints = 1", "needs `baseline`"),
-            ("name = \"a\"\nsession = \"s\"\nwhen = \"above\"", "not one of below, drop"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"above\"", "not one of below, drop, decline"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"decline\"", "needs `points`"),
             ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 140", "between 0 and 100"),
             ("name = \"a\"\nsession = \"s\"\nmetric = \"ter\"\nwhen = \"below\"\nthreshold = 4", "metric 'ter'"),
             ("name = \"a\"\nsession = \"s\"\nwindow = \"15m\"\nwhen = \"below\"\nthreshold = 4", "only `recent`"),

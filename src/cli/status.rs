@@ -72,6 +72,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
         "alerts": r.alerts.iter().map(|a| json!({
             "rule": a.rule, "state": a.state, "since_unix": a.since_unix, "condition": a.condition,
             "value": a.value, "low": a.low, "high": a.high, "segments": a.segments, "severity": a.severity,
+            "statistic": a.statistic,
         })).collect::<Vec<_>>(),
         "window": r.window,
         "memory_bytes": info.memory_bytes,
@@ -93,7 +94,10 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     }
     for al in &r.alerts {
         let measured = match (al.value, al.low, al.high) {
-            (Some(v), Some(lo), Some(hi)) => format!("{v:.2} ({lo:.2} .. {hi:.2}, {} segments)", al.segments),
+            (Some(v), Some(lo), Some(hi)) => {
+                let test = al.statistic.map_or_else(String::new, |s| format!(", test statistic {s:.2}"));
+                format!("{v:.2} ({lo:.2} .. {hi:.2}, {} segments{test})", al.segments)
+            }
             _ => "nothing to judge by yet".to_owned(),
         };
         text += &format!("  alert   {:<8} {} [{}]: {}; now {measured}\n", al.state.to_uppercase(), al.rule, al.severity, al.condition);

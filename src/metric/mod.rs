@@ -116,6 +116,16 @@ impl std::ops::AddAssign for CorpusStats {
     }
 }
 
+impl std::ops::SubAssign for CorpusStats {
+    /// Take away a part that was added before (a later total minus an earlier one).
+    fn sub_assign(&mut self, o: Self) {
+        self.segments -= o.segments;
+        self.bleu -= o.bleu;
+        self.chrf -= o.chrf;
+        self.chrfpp -= o.chrfpp;
+    }
+}
+
 impl std::ops::Add for CorpusStats {
     type Output = Self;
     fn add(mut self, o: Self) -> Self {

@@ -13,6 +13,9 @@ use tokio::sync::watch;
 use super::state::{unix_now, State};
 use crate::alerts::deliver::{AlertEvent, DeliveryHandle};
 use crate::alerts::rules::{Condition, Measured, Rule, State as AlertState, Tracker, Transition};
+use crate::alerts::shift::Cusum;
+use crate::metric::resample::Replicates;
+use crate::metric::CorpusStats;
 use crate::metric::compare::CompareSettings;
 use crate::metric::resample::DEFAULT_LEVEL;
 use crate::metric::scores::corpus_score;
@@ -44,12 +47,22 @@ impl AlertBoard {
 pub const RESEND_SECONDS: i64 = 60;
 
 /// A (rule, session) pair as the evaluator keeps it.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone)]
 pub struct Pair {
     tracker: Tracker,
     /// When the alert last fired (its startsAt) and when it was last posted.
     fired_at: i64,
     posted_at: i64,
+    /// `decline` rules: the test, and the session's cumulative statistics and replicate sums
+    /// where the current chunk began.
+    cusum: Cusum,
+    chunk_start: Option<(CorpusStats, Replicates)>,
+}
+
+impl Pair {
+    fn new(now: i64) -> Pair {
+        Pair { tracker: Tracker::new(now), fired_at: now, posted_at: now, cusum: Cusum::default(), chunk_start: None }
+    }
 }
 
 /// Start evaluating `rules` every `every` until `stop` turns true (inside a Tokio runtime);
@@ -87,8 +100,8 @@ pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, St
         let spec = session.spec();
         for rule in rules.iter().filter(|r| r.selects(&spec.name, &spec.labels)) {
             let key = (rule.name.clone(), spec.name.clone());
-            let mut p = trackers.remove(&key).unwrap_or(Pair { tracker: Tracker::new(now), fired_at: now, posted_at: now });
-            let m = measure(state, rule, &session);
+            let mut p = trackers.remove(&key).unwrap_or_else(|| Pair::new(now));
+            let m = measure(state, rule, &session, &mut p);
             let change = p.tracker.step(rule, m, now);
             if let Some(change) = change {
                 log_transition(rule, &spec.name, change, m);
@@ -151,7 +164,7 @@ fn closed_event(rule: &Rule, session: &str, p: &Pair, now: i64) -> AlertEvent {
 }
 
 /// What the rule judges by, now (None: nothing to judge by).
-fn measure(state: &State, rule: &Rule, session: &Session) -> Option<Measured> {
+fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair) -> Option<Measured> {
     let config = &session.spec().config;
     if !config.has(rule.metric) {
         return None;
@@ -161,7 +174,7 @@ fn measure(state: &State, rule: &Rule, session: &Session) -> Option<Measured> {
             let stats = session.state().window.stats();
             let (_, recent) = session.replicates();
             let i = recent?.interval(rule.metric, DEFAULT_LEVEL)?;
-            Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments })
+            Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments, statistic: None })
         }
         Condition::Drop { baseline, .. } => {
             let base = state.session(baseline).ok()?;
@@ -170,9 +183,43 @@ fn measure(state: &State, rule: &Rule, session: &Session) -> Option<Measured> {
             let p = super::compare::paired(session, &base, &settings, 1).ok()?;
             let m = p.comparison.get(rule.metric)?;
             let i = m.interval?;
-            Some(Measured { value: m.difference, low: i.low, high: i.high, segments: p.comparison.segments })
+            Some(Measured { value: m.difference, low: i.low, high: i.high, segments: p.comparison.segments, statistic: None })
         }
+        Condition::Decline { points } => decline(rule, session, p, *points),
     }
+}
+
+/// A `decline` rule: close a chunk once `min_segments` new segments were scored and feed it to
+/// the test; between chunks, the last measurement stands.
+fn decline(rule: &Rule, session: &Session, p: &mut Pair, points: f64) -> Option<Measured> {
+    let config = &session.spec().config;
+    let (stats, reps) = session.cumulative_with_replicates();
+    let reps = reps?;
+    let Some((start, start_reps)) = &p.chunk_start else {
+        p.chunk_start = Some((stats, reps));
+        return p.tracker.last;
+    };
+    if stats.segments < start.segments {
+        // The session was reset: start over.
+        (p.cusum, p.chunk_start) = (Cusum::default(), Some((stats, reps)));
+        return None;
+    }
+    if stats.segments - start.segments < rule.min_segments {
+        return p.tracker.last;
+    }
+    let mut chunk = stats;
+    chunk -= *start;
+    let mut chunk_reps = reps.clone();
+    chunk_reps.subtract(start_reps).ok()?;
+    p.chunk_start = Some((stats, reps));
+    let x = corpus_score(&chunk, config, rule.metric)?;
+    let scores = chunk_reps.scores(rule.metric)?;
+    let mean = scores.iter().sum::<f64>() / scores.len().max(1) as f64;
+    let se = (scores.iter().map(|s| (s - mean) * (s - mean)).sum::<f64>() / (scores.len().max(2) - 1) as f64).sqrt();
+    let step = p.cusum.observe(x, se, points);
+    // The chunk's score with a normal-approximation 95% range (1.96 standard errors), and the
+    // test statistic (None while the baseline is being learned).
+    Some(Measured { value: x, low: x - 1.96 * se, high: x + 1.96 * se, segments: chunk.segments, statistic: step.map(|s| s.statistic) })
 }
 
 /// The condition in words.
@@ -180,6 +227,12 @@ pub fn describe(rule: &Rule) -> String {
     match &rule.condition {
         Condition::Below { threshold } => format!("recent {} 95% interval entirely below {threshold}", rule.metric.name()),
         Condition::Drop { baseline, points } => format!("recent {} at least {points} points below session {baseline} (paired 95% interval of the difference below -{points})", rule.metric.name()),
+        Condition::Decline { points } => format!(
+            "{} of chunks of {} segments {points} points below the session's own past (CUSUM past {} standard errors)",
+            rule.metric.name(),
+            rule.min_segments,
+            crate::alerts::shift::DECISION_LIMIT
+        ),
     }
 }
 
@@ -194,6 +247,7 @@ fn view(rule: &Rule, t: &Tracker) -> pb::AlertStatus {
         high: t.last.map(|m| m.high),
         segments: t.last.map_or(0, |m| m.segments),
         severity: rule.severity.clone(),
+        statistic: t.last.and_then(|m| m.statistic),
     }
 }
 
@@ -202,5 +256,55 @@ fn log_transition(rule: &Rule, session: &str, change: Transition, m: Option<Meas
     match change {
         Transition::Fired => tracing::warn!(alert = %rule.name, session, severity = %rule.severity, condition = %describe(rule), ?value, ?high, "alert firing"),
         Transition::Resolved => tracing::info!(alert = %rule.name, session, condition = %describe(rule), ?value, ?high, "alert resolved"),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::refs::compiled::Scratch;
+    use crate::refs::{RefSet, SegmentInput};
+    use crate::rng::SplitMix64;
+    use crate::session::ItemKey;
+
+    const WORDS: &[&str] = &["die", "Fähre", "nach", "Kiel", "fährt", "heute", "um", "neun", "Uhr", "ab", "Deck", "sieben", "bleibt", "geschlossen", "bitte", "Ticket", "bereithalten"];
+
+    /// A session fed chunks of 60 segments, first close to the references, then with most words
+    /// dropped, then close again: a `decline` rule learns its baseline, fires on the drop within
+    /// a few chunks, and resolves after it; a stable run never fires.
+    #[test]
+    fn a_decline_rule_fires_on_a_drop_and_resolves_after() {
+        let mut rng = SplitMix64::new(3);
+        let segments: Vec<SegmentInput> = (0..2000)
+            .map(|i| SegmentInput { id: format!("s{i}"), source: None, refs: vec![(0..12).map(|_| WORDS[rng.index(WORDS.len())]).collect::<Vec<_>>().join(" ")] })
+            .collect();
+        let state = State::new(None, crate::server::Limits::default()).unwrap();
+        state.insert_refset("ferry", RefSet::new(segments.clone()).unwrap(), false).unwrap();
+        let spec = state.session_spec("watched", "ferry", Default::default(), Default::default(), 0, Default::default()).unwrap();
+        let (session, _) = state.create_session(spec, false).unwrap();
+        let toml_rule = "name = \"decline\"\nsession = \"watched\"\nwhen = \"decline\"\npoints = 3\nmin_segments = 60\nfor_seconds = 0";
+        let rules = crate::alerts::rules::check_rules(&[toml::from_str(toml_rule).unwrap()]).unwrap();
+        let board = AlertBoard::default();
+        let mut trackers = HashMap::new();
+        let mut scratch = Scratch::default();
+        let mut states = Vec::new();
+        for chunk in 0..80 {
+            // Chunks 40..50 drop 60% of the words instead of 10%.
+            let drop = if (40..50).contains(&chunk) { 0.6 } else { 0.1 };
+            let outcomes: Vec<_> = (0..60)
+                .map(|_| {
+                    let seg = &segments[rng.index(segments.len())];
+                    let hyp: Vec<&str> = seg.refs[0].split(' ').filter(|_| !rng.chance(drop)).collect();
+                    session.score_item(ItemKey::Id(&seg.id), &hyp.join(" "), &mut scratch)
+                })
+                .collect();
+            session.apply("", 0, &outcomes, 0, None).unwrap();
+            trackers = evaluate(&state, &rules, trackers, &board, None, chunk);
+            states.push(board.of("watched")[0].state.clone());
+        }
+        let first_firing = states.iter().position(|s| s == "firing");
+        assert!(states[..40].iter().all(|s| s == "inactive"), "no alarm while stable: {states:?}");
+        assert!(first_firing.is_some_and(|f| (40..44).contains(&f)), "fires within a few chunks of the drop: {states:?}");
+        assert_eq!(states.last().map(String::as_str), Some("inactive"), "resolves after the drop: {states:?}");
     }
 }

@@ -305,6 +305,12 @@ impl Session {
         out
     }
 
+    /// The cumulative statistics and (when complete) replicate sums, read together.
+    pub fn cumulative_with_replicates(&self) -> (CorpusStats, Option<Replicates>) {
+        let st = self.state();
+        (st.cumulative, st.replicates.as_ref().and_then(SessionReplicates::cumulative))
+    }
+
     /// The cumulative replicate sums now, when complete.
     pub fn cumulative_replicates(&self) -> Option<Replicates> {
         let st = self.state();
