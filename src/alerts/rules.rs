@@ -16,6 +16,14 @@
 //!   hold, lies below `-points`: the session is worse by at least `points` beyond resampling
 //!   noise.
 //!
+//! # Windows
+//! What `below` and `drop` judge: `recent` (default), the session's recent window of the last
+//! segments; `all`, everything since the session was created or reset; or a time window such
+//! as `15m` or `1h` (an integer and s, m, h or d), the segments scored in the last that long.
+//! The daemon evaluates all three; `mtgauge rules` renders `all` and time windows for Prometheus
+//! (`recent` counts segments, which Prometheus cannot: daemon only). `decline` tests chunks of
+//! new segments and takes no window.
+//!
 //! # States (the Prometheus vocabulary)
 //! inactive -> pending when the condition holds (with at least `min_segments` behind it);
 //! pending -> firing once it has held for `for_seconds`; pending -> inactive as soon as it does
@@ -41,8 +49,14 @@ pub const DEFAULT_CLEAR_MARGIN: f64 = 0.5;
 pub const DEFAULT_SEVERITY: &str = "warning";
 /// Seconds between two evaluations of every rule unless configured (`alert_eval_seconds`).
 pub const DEFAULT_EVAL_SECONDS: u64 = 5;
+/// Shortest time window a rule may use, in seconds.
+pub const MIN_WINDOW_SECONDS: u64 = 60;
+/// Longest time window a rule may use, in seconds (7 days).
+pub const MAX_WINDOW_SECONDS: u64 = 7 * 86_400;
 /// Most rules a config file may declare.
 pub const MAX_RULES: usize = 256;
+/// Labels every alert carries, set by mtgauge (not by `extra_labels`).
+pub const ALERT_LABELS: [&str; 4] = ["alertname", "session", "severity", "metric"];
 /// Keys of one `[[alert]]` entry.
 pub const RULE_KEYS: [&str; 15] = [
     "name", "session", "labels", "metric", "window", "when", "threshold", "baseline", "points", "min_segments", "for_seconds", "clear_margin", "severity", "extra_labels",
@@ -72,6 +86,72 @@ pub struct RuleEntry {
     /// Extra labels of the alert (`[alert.extra_labels]`).
     #[serde(default)]
     extra_labels: BTreeMap<String, String>,
+}
+
+/// The segments a `below` or `drop` rule judges.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Window {
+    /// The session's recent window (its last segments).
+    Recent,
+    /// Everything since the session was created or reset.
+    All,
+    /// The segments scored in the last this many seconds.
+    Last(u64),
+}
+
+impl Window {
+    /// Parse `recent`, `all` or a duration (`90s`, `15m`, `1h`, `2d`).
+    pub fn parse(text: &str) -> Result<Window, String> {
+        match text {
+            "recent" => return Ok(Window::Recent),
+            "all" => return Ok(Window::All),
+            _ => {}
+        }
+        let bad = || format!("window '{text}' is not recent, all, or a duration such as 15m or 1h (an integer and s, m, h or d)");
+        let split = text.find(|c: char| !c.is_ascii_digit()).ok_or_else(bad)?;
+        let (digits, unit) = text.split_at(split);
+        let n: u64 = digits.parse().map_err(|_| bad())?;
+        let scale = match unit {
+            "s" => 1,
+            "m" => 60,
+            "h" => 3_600,
+            "d" => 86_400,
+            _ => return Err(bad()),
+        };
+        let seconds = n.checked_mul(scale).ok_or_else(bad)?;
+        if !(MIN_WINDOW_SECONDS..=MAX_WINDOW_SECONDS).contains(&seconds) {
+            return Err(format!("window '{text}' is not between {MIN_WINDOW_SECONDS} s and {} days", MAX_WINDOW_SECONDS / 86_400));
+        }
+        Ok(Window::Last(seconds))
+    }
+
+    /// The name in outputs: `recent`, `all`, or the duration in its largest whole unit (`15m`);
+    /// also a valid Prometheus range.
+    pub fn name(self) -> String {
+        match self {
+            Window::Recent => "recent".into(),
+            Window::All => "all".into(),
+            Window::Last(s) => {
+                let (n, u) = [(86_400, "d"), (3_600, "h"), (60, "m")].into_iter().find(|(n, _)| s % n == 0).unwrap_or((1, "s"));
+                format!("{}{u}", s / n)
+            }
+        }
+    }
+
+    /// Words for descriptions: "recent", "since start", "last 15m".
+    pub fn describe(self) -> String {
+        match self {
+            Window::Recent => "recent".into(),
+            Window::All => "since start".into(),
+            Window::Last(_) => format!("last {}", self.name()),
+        }
+    }
+}
+
+impl Serialize for Window {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(&self.name())
+    }
 }
 
 /// What a rule tests.
@@ -109,6 +189,8 @@ pub struct Rule {
     /// The metric.
     #[serde(serialize_with = "metric_name")]
     pub metric: Metric,
+    /// The segments `below` and `drop` judge (`recent` for `decline`, which takes none).
+    pub window: Window,
     /// What fires it.
     pub condition: Condition,
     /// Segments needed behind the interval.
@@ -150,10 +232,7 @@ impl RuleEntry {
         }
         let m = self.metric.as_deref().unwrap_or("bleu");
         let metric = Metric::ALL.into_iter().find(|x| x.name() == m).ok_or_else(|| err(format!("metric '{m}' is not one of bleu, chrf, chrf++")))?;
-        match self.window.as_deref().unwrap_or("recent") {
-            "recent" => {}
-            w => return Err(err(format!("window '{w}': only `recent` is evaluated by the daemon so far (time windows are rendered for Prometheus only later)"))),
-        }
+        let window = Window::parse(self.window.as_deref().unwrap_or("recent")).map_err(err)?;
         let condition = match self.when.as_deref() {
             Some("below") => {
                 let threshold = self.threshold.ok_or_else(|| err("`when = \"below\"` needs `threshold`".into()))?;
@@ -184,11 +263,23 @@ impl RuleEntry {
                 if self.threshold.is_some() || self.baseline.is_some() {
                     return Err(err("`threshold` and `baseline` do not belong to `when = \"decline\"`".into()));
                 }
+                if self.window.is_some() {
+                    return Err(err("`window` does not belong to `when = \"decline\"`: it tests chunks of new segments (min_segments each)".into()));
+                }
                 Condition::Decline { points }
             }
             Some(w) => return Err(err(format!("when '{w}' is not one of below, drop, decline"))),
             None => return Err(err("`when` is missing: below, drop or decline".into())),
         };
+        crate::session::check_labels(&self.labels).map_err(|e| err(format!("labels: {e}")))?;
+        for (what, map) in [("extra_labels", &self.extra_labels), ("annotations", &self.annotations)] {
+            for k in map.keys() {
+                let valid = !k.is_empty() && !k.starts_with("__") && k.bytes().enumerate().all(|(i, b)| b == b'_' || b.is_ascii_alphabetic() || (i > 0 && b.is_ascii_digit()));
+                if !valid || (what == "extra_labels" && ALERT_LABELS.contains(&k.as_str())) {
+                    return Err(err(format!("{what}: '{}' is not a valid name: use [a-zA-Z_][a-zA-Z0-9_]*, not starting with '__'{}", k.escape_debug(), if what == "extra_labels" { ", and none of alertname, session, severity, metric" } else { "" })));
+                }
+            }
+        }
         let clear_margin = self.clear_margin.unwrap_or(DEFAULT_CLEAR_MARGIN);
         if clear_margin.is_nan() || clear_margin < 0.0 {
             return Err(err(format!("clear_margin {clear_margin} is negative")));
@@ -198,6 +289,7 @@ impl RuleEntry {
             session: self.session.clone(),
             labels: self.labels.clone(),
             metric,
+            window,
             condition,
             min_segments: self.min_segments.unwrap_or(DEFAULT_MIN_SEGMENTS),
             for_seconds: self.for_seconds.unwrap_or(DEFAULT_FOR_SECONDS),
@@ -225,6 +317,22 @@ pub fn check_rules(entries: &[RuleEntry]) -> Result<Vec<Rule>, RuleError> {
 }
 
 impl Rule {
+    /// The condition in words (reports, logs, rendered rules).
+    pub fn describe(&self) -> String {
+        match &self.condition {
+            Condition::Below { threshold } => format!("{} {} 95% interval entirely below {threshold}", self.window.describe(), self.metric.name()),
+            Condition::Drop { baseline, points } => {
+                format!("{} {} at least {points} points below session {baseline} (paired 95% interval of the difference below -{points})", self.window.describe(), self.metric.name())
+            }
+            Condition::Decline { points } => format!(
+                "{} of chunks of {} segments {points} points below the session's own past (CUSUM past {} standard errors)",
+                self.metric.name(),
+                self.min_segments,
+                super::shift::DECISION_LIMIT
+            ),
+        }
+    }
+
     /// Whether the rule watches a session with this name and these labels.
     pub fn selects(&self, name: &str, labels: &BTreeMap<String, String>) -> bool {
         self.session.as_deref().is_none_or(|s| s == name) && self.labels.iter().all(|(k, v)| labels.get(k) == Some(v))
@@ -365,13 +473,23 @@ mod tests {
             ("name = \"a\"\nsession = \"s\"\nwhen = \"decline\"", "needs `points`"),
             ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 140", "between 0 and 100"),
             ("name = \"a\"\nsession = \"s\"\nmetric = \"ter\"\nwhen = \"below\"\nthreshold = 4", "metric 'ter'"),
-            ("name = \"a\"\nsession = \"s\"\nwindow = \"15m\"\nwhen = \"below\"\nthreshold = 4", "only `recent`"),
+            ("name = \"a\"\nsession = \"s\"\nwindow = \"15 m\"\nwhen = \"below\"\nthreshold = 4", "window '15 m' is not recent, all, or a duration"),
+            ("name = \"a\"\nsession = \"s\"\nwindow = \"30s\"\nwhen = \"below\"\nthreshold = 4", "not between 60 s and 7 days"),
+            ("name = \"a\"\nsession = \"s\"\nwindow = \"1h\"\nwhen = \"decline\"\npoints = 2", "`window` does not belong"),
             ("name = \"a b\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4", "rule name"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4\n[extra_labels]\nseverity = \"page\"", "extra_labels: 'severity'"),
+            ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4\n[annotations]\n\"run-book\" = \"x\"", "annotations: 'run-book'"),
+            ("name = \"a\"\nlabels = { \"1x\" = \"y\" }\nwhen = \"below\"\nthreshold = 4", "labels: "),
         ] {
             let e = entry(text).check(0).unwrap_err();
             assert!(e.to_string().contains(want), "{text}: {e}");
         }
         assert!(toml::from_str::<RuleEntry>("name = \"a\"\nthreshhold = 3").is_err(), "unknown keys are refused");
+        for (text, window, name) in [("recent", Window::Recent, "recent"), ("all", Window::All, "all"), ("15m", Window::Last(900), "15m"), ("90m", Window::Last(5400), "90m"), ("120m", Window::Last(7200), "2h"), ("3600s", Window::Last(3600), "1h"), ("7d", Window::Last(604_800), "7d")] {
+            assert_eq!(Window::parse(text), Ok(window), "{text}");
+            assert_eq!(window.name(), name);
+        }
+        assert!(Window::parse("8d").is_err() && Window::parse("m").is_err() && Window::parse("5").is_err() && Window::parse("99999999999999999999h").is_err());
         let twice = check_rules(&[entry("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4"), entry("name = \"a\"\nsession = \"t\"\nwhen = \"below\"\nthreshold = 5")]);
         assert!(twice.unwrap_err().to_string().contains("declared twice"));
     }

@@ -8,6 +8,7 @@ mod compare;
 pub mod demo;
 mod input;
 mod load;
+mod rules;
 mod score;
 mod send;
 mod serve;
@@ -74,6 +75,9 @@ pub enum Command {
     /// Make a bearer token and the line for the server's tokens file.
     #[command(long_about = token::LONG_ABOUT)]
     Token(token::TokenArgs),
+    /// Render the alert rules of a serve config file as Prometheus recording and alerting rules.
+    #[command(long_about = rules::LONG_ABOUT)]
+    Rules(rules::RulesArgs),
     /// Drive a running server with synthetic load and print throughput and latency.
     Load(load::LoadArgs),
     /// Measure scoring speed on a generated corpus and print ratios against a baseline measured in the same run.
@@ -175,6 +179,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Bench(a) => bench::run(a),
         Command::Serve(a) => serve::run(a),
         Command::Load(a) => load::run(a),
+        Command::Rules(a) => rules::run(a),
         Command::Token(a) => token::run(a),
         Command::Send(a) => send::run(a),
         Command::Status(a) => status::run(a),

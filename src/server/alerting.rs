@@ -12,11 +12,11 @@ use tokio::sync::watch;
 
 use super::state::{unix_now, State};
 use crate::alerts::deliver::{AlertEvent, DeliveryHandle};
-use crate::alerts::rules::{Condition, Measured, Rule, State as AlertState, Tracker, Transition};
+use crate::alerts::rules::{Condition, Measured, Rule, State as AlertState, Tracker, Transition, Window};
 use crate::alerts::shift::Cusum;
 use crate::metric::resample::Replicates;
 use crate::metric::CorpusStats;
-use crate::metric::compare::CompareSettings;
+use crate::metric::compare::{difference_interval, CompareSettings};
 use crate::metric::resample::DEFAULT_LEVEL;
 use crate::metric::scores::corpus_score;
 use crate::pb;
@@ -57,11 +57,64 @@ pub struct Pair {
     /// where the current chunk began.
     cusum: Cusum,
     chunk_start: Option<(CorpusStats, Replicates)>,
+    /// Time-window rules: the session's cumulative statistics as seen at past evaluations, and
+    /// the baseline session's (`drop`).
+    history: History,
+    baseline_history: History,
 }
 
 impl Pair {
     fn new(now: i64) -> Pair {
-        Pair { tracker: Tracker::new(now), fired_at: now, posted_at: now, cusum: Cusum::default(), chunk_start: None }
+        Pair { tracker: Tracker::new(now), fired_at: now, posted_at: now, cusum: Cusum::default(), chunk_start: None, history: History::default(), baseline_history: History::default() }
+    }
+}
+
+/// Points a time window's history keeps (about; one more at its far edge): a window's start
+/// is known to within 1/30 of its length (30 s of 15 minutes). Each point holds a copy of the
+/// session's cumulative replicate sums (R x fields x 8 bytes: 46 KB at R = 200 for bleu + chrf).
+pub const HISTORY_POINTS: u64 = 30;
+
+/// A session's cumulative statistics and replicate sums at past evaluations, for a time
+/// window: the window's part is the cumulative now minus the cumulative at the newest point at
+/// least the window's length old. Until the evaluator has watched a session for that long,
+/// the window starts where it began watching, or at the session's creation (or reset) when
+/// that is within the window.
+#[derive(Debug, Clone, Default)]
+pub struct History {
+    points: std::collections::VecDeque<(i64, CorpusStats, Replicates)>,
+}
+
+impl History {
+    /// Take the cumulative `(stats, reps)` at `now` and return the part of the last `seconds`.
+    pub fn window(&mut self, now: i64, seconds: u64, created_unix: i64, stats: CorpusStats, reps: Replicates) -> (CorpusStats, Replicates) {
+        let (config, resamples, seed) = (*reps.config(), reps.resamples(), reps.seed());
+        let zero = || (CorpusStats::default(), Replicates::new(&config, resamples, seed));
+        let reset = self.points.back().is_some_and(|(_, s, r)| s.segments > stats.segments || r.config() != reps.config() || r.resamples() != reps.resamples() || r.seed() != reps.seed());
+        if reset {
+            // Reset (or recreated): the session starts over about now.
+            self.points.clear();
+            let (s, r) = zero();
+            self.points.push_back((now, s, r));
+        } else if self.points.is_empty() && created_unix > now - seconds as i64 {
+            // Created within the window: all of its life is in it.
+            let (s, r) = zero();
+            self.points.push_back((created_unix, s, r));
+        }
+        let spacing = (seconds / HISTORY_POINTS).max(1) as i64;
+        if self.points.back().is_none_or(|(t, _, _)| now - t >= spacing) {
+            self.points.push_back((now, stats, reps.clone()));
+        }
+        let edge = now - seconds as i64;
+        while self.points.len() >= 2 && self.points[1].0 <= edge {
+            self.points.pop_front();
+        }
+        let (_, s0, r0) = &self.points[0];
+        let (mut s, mut r) = (stats, reps);
+        s -= *s0;
+        if r.subtract(r0).is_err() {
+            return zero();
+        }
+        (s, r)
     }
 }
 
@@ -101,7 +154,7 @@ pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, St
         for rule in rules.iter().filter(|r| r.selects(&spec.name, &spec.labels)) {
             let key = (rule.name.clone(), spec.name.clone());
             let mut p = trackers.remove(&key).unwrap_or_else(|| Pair::new(now));
-            let m = measure(state, rule, &session, &mut p);
+            let m = measure(state, rule, &session, &mut p, now);
             let change = p.tracker.step(rule, m, now);
             if let Some(change) = change {
                 log_transition(rule, &spec.name, change, m);
@@ -164,19 +217,20 @@ fn closed_event(rule: &Rule, session: &str, p: &Pair, now: i64) -> AlertEvent {
 }
 
 /// What the rule judges by, now (None: nothing to judge by).
-fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair) -> Option<Measured> {
+fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64) -> Option<Measured> {
     let config = &session.spec().config;
     if !config.has(rule.metric) {
         return None;
     }
-    match &rule.condition {
-        Condition::Below { .. } => {
+    match (&rule.condition, rule.window) {
+        (Condition::Decline { points }, _) => decline(rule, session, p, *points),
+        (Condition::Below { .. }, Window::Recent) => {
             let stats = session.state().window.stats();
             let (_, recent) = session.replicates();
             let i = recent?.interval(rule.metric, DEFAULT_LEVEL)?;
             Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments, statistic: None })
         }
-        Condition::Drop { baseline, .. } => {
+        (Condition::Drop { baseline, .. }, Window::Recent) => {
             let base = state.session(baseline).ok()?;
             let r = session.spec().resampling;
             let settings = CompareSettings { resamples: r.resamples, seed: r.seed, level: DEFAULT_LEVEL, trials: 0 };
@@ -185,7 +239,35 @@ fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair) -> Optio
             let i = m.interval?;
             Some(Measured { value: m.difference, low: i.low, high: i.high, segments: p.comparison.segments, statistic: None })
         }
-        Condition::Decline { points } => decline(rule, session, p, *points),
+        (Condition::Below { .. }, w) => {
+            let (stats, reps) = windowed(session, w, &mut p.history, now)?;
+            let i = reps.interval(rule.metric, DEFAULT_LEVEL)?;
+            Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments, statistic: None })
+        }
+        (Condition::Drop { baseline, .. }, w) => {
+            // Each session's window on its own, paired through the replicates: the same
+            // segment has the same weights in both, whichever window it falls in.
+            let base = state.session(baseline).ok()?;
+            if base.refs().digest() != session.refs().digest() || base.spec().config != *config {
+                return None;
+            }
+            let (sa, ra) = windowed(session, w, &mut p.history, now)?;
+            let (sb, rb) = windowed(&base, w, &mut p.baseline_history, now)?;
+            let i = difference_interval(&ra, &rb, rule.metric, DEFAULT_LEVEL)?;
+            rb.interval(rule.metric, DEFAULT_LEVEL)?;
+            let value = corpus_score(&sa, config, rule.metric)? - corpus_score(&sb, config, rule.metric)?;
+            Some(Measured { value, low: i.low, high: i.high, segments: sa.segments.min(sb.segments), statistic: None })
+        }
+    }
+}
+
+/// A session's statistics and replicate sums over `window` (`all` or a time window).
+fn windowed(session: &Session, window: Window, history: &mut History, now: i64) -> Option<(CorpusStats, Replicates)> {
+    let (stats, reps) = session.cumulative_with_replicates();
+    let reps = reps?;
+    match window {
+        Window::Last(seconds) => Some(history.window(now, seconds, session.created_unix(), stats, reps)),
+        _ => Some((stats, reps)),
     }
 }
 
@@ -224,16 +306,7 @@ fn decline(rule: &Rule, session: &Session, p: &mut Pair, points: f64) -> Option<
 
 /// The condition in words.
 pub fn describe(rule: &Rule) -> String {
-    match &rule.condition {
-        Condition::Below { threshold } => format!("recent {} 95% interval entirely below {threshold}", rule.metric.name()),
-        Condition::Drop { baseline, points } => format!("recent {} at least {points} points below session {baseline} (paired 95% interval of the difference below -{points})", rule.metric.name()),
-        Condition::Decline { points } => format!(
-            "{} of chunks of {} segments {points} points below the session's own past (CUSUM past {} standard errors)",
-            rule.metric.name(),
-            rule.min_segments,
-            crate::alerts::shift::DECISION_LIMIT
-        ),
-    }
+    rule.describe()
 }
 
 fn view(rule: &Rule, t: &Tracker) -> pb::AlertStatus {
@@ -306,5 +379,94 @@ mod tests {
         assert!(states[..40].iter().all(|s| s == "inactive"), "no alarm while stable: {states:?}");
         assert!(first_firing.is_some_and(|f| (40..44).contains(&f)), "fires within a few chunks of the drop: {states:?}");
         assert_eq!(states.last().map(String::as_str), Some("inactive"), "resolves after the drop: {states:?}");
+    }
+
+    fn ferry_state(n: usize, sessions: &[&str]) -> (State, Vec<SegmentInput>, Vec<Arc<Session>>) {
+        let mut rng = SplitMix64::new(11);
+        let segments: Vec<SegmentInput> = (0..n)
+            .map(|i| SegmentInput { id: format!("s{i}"), source: None, refs: vec![(0..12).map(|_| WORDS[rng.index(WORDS.len())]).collect::<Vec<_>>().join(" ")] })
+            .collect();
+        let state = State::new(None, crate::server::Limits::default()).unwrap();
+        state.insert_refset("ferry", RefSet::new(segments.clone()).unwrap(), false).unwrap();
+        let sessions = sessions
+            .iter()
+            .map(|name| {
+                let spec = state.session_spec(name, "ferry", Default::default(), Default::default(), 0, Default::default()).unwrap();
+                state.create_session(spec, false).unwrap().0
+            })
+            .collect();
+        (state, segments, sessions)
+    }
+
+    /// Score `count` segments on `session`, each keeping its reference words with chance `1 - drop`.
+    fn feed(session: &Session, segments: &[SegmentInput], rng: &mut SplitMix64, count: usize, drop: f64) {
+        let mut scratch = Scratch::default();
+        let outcomes: Vec<_> = (0..count)
+            .map(|_| {
+                let seg = &segments[rng.index(segments.len())];
+                let hyp: Vec<&str> = seg.refs[0].split(' ').filter(|_| !rng.chance(drop)).collect();
+                session.score_item(ItemKey::Id(&seg.id), &hyp.join(" "), &mut scratch)
+            })
+            .collect();
+        session.apply("", 0, &outcomes, 0, None).unwrap();
+    }
+
+    /// A time-window rule judges what was scored in the last that long (to within the
+    /// history's spacing); `all` judges everything since creation; a reset starts the window
+    /// over; a `drop` rule over a time window pairs the two sessions' windows.
+    #[test]
+    fn time_windows_judge_the_segments_of_their_last_minutes() {
+        let (state, segments, sessions) = ferry_state(3000, &["cand", "prod"]);
+        let rule = |name: &str, window: &str, rest: &str| -> toml::Value { toml::from_str(&format!("name = \"{name}\"\nwindow = \"{window}\"\nmin_segments = 100\nfor_seconds = 0\n{rest}")).unwrap() };
+        let entries: Vec<crate::alerts::rules::RuleEntry> = [
+            rule("floor-5m", "5m", "session = \"cand\"\nwhen = \"below\"\nthreshold = 50"),
+            rule("floor-all", "all", "session = \"cand\"\nwhen = \"below\"\nthreshold = 50"),
+            rule("worse-5m", "5m", "session = \"cand\"\nwhen = \"drop\"\nbaseline = \"prod\"\npoints = 10"),
+        ]
+        .into_iter()
+        .map(|v| v.try_into().unwrap())
+        .collect();
+        let rules = crate::alerts::rules::check_rules(&entries).unwrap();
+        let board = AlertBoard::default();
+        let mut trackers = HashMap::new();
+        let mut rng = SplitMix64::new(5);
+        let created = sessions[0].created_unix();
+        let of = |board: &AlertBoard, rule: &str| board.of("cand").into_iter().find(|a| a.rule == rule).unwrap();
+        let mut first_5m = None;
+        // 10 minutes good (10% of the words dropped), then 10 minutes bad (60%), 60 segments
+        // every 10 s on both sessions; production stays good.
+        for step in 0..=120i64 {
+            let now = created + 10 * step;
+            feed(&sessions[0], &segments, &mut rng, 60, if step > 60 { 0.6 } else { 0.1 });
+            feed(&sessions[1], &segments, &mut rng, 60, 0.1);
+            trackers = evaluate(&state, &rules, trackers, &board, None, now);
+            let (w, a, d) = (of(&board, "floor-5m"), of(&board, "floor-all"), of(&board, "worse-5m"));
+            if step <= 60 {
+                assert!(w.state == "inactive" && a.state == "inactive" && d.state == "inactive", "step {step}: {w:?} {a:?} {d:?}");
+            }
+            if (31..=90).contains(&step) {
+                // The window holds the 30 batches after the point at its edge (10 s apart).
+                assert_eq!(w.segments, 30 * 60, "step {step}");
+            }
+            if step == 90 {
+                assert_eq!(w.state, "firing", "after 5 minutes of bad output the 5m window is all bad: {w:?}");
+                assert_eq!(d.state, "firing", "{d:?}");
+                assert_eq!(a.state, "inactive", "everything since creation is still mostly good: {a:?}");
+                assert_eq!(a.segments, 91 * 60);
+            }
+            if w.state == "firing" && first_5m.is_none() {
+                first_5m = Some(step);
+            }
+        }
+        assert!(first_5m.is_some_and(|s| s > 61 && s <= 90), "{first_5m:?}");
+        // A reset starts every window over.
+        sessions[0].reset();
+        let now = created + 1220;
+        feed(&sessions[0], &segments, &mut rng, 60, 0.1);
+        trackers = evaluate(&state, &rules, trackers, &board, None, now);
+        let (w, a) = (of(&board, "floor-5m"), of(&board, "floor-all"));
+        assert_eq!((w.segments, a.segments), (60, 60));
+        assert_eq!((w.state.as_str(), a.state.as_str()), ("inactive", "inactive"), "too few segments to judge by");
+        drop(trackers);
     }
 }

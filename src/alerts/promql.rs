@@ -1,0 +1,445 @@
+//! Alert rules rendered as Prometheus recording and alerting rules (`mtgauge rules`): the same
+//! `[[alert]]` definitions the daemon evaluates, judged by Prometheus over the fleet's summed
+//! counters and per-replicate series (`mtgauge_replicate_*_total`, the first
+//! `exported_resamples` replicates of every session).
+//!
+//! Pure: rules in, YAML text out.
+//!
+//! # What is rendered
+//! `below` and `drop` rules over the `all` window (each replica's counters, summed) or a time
+//! window (`increase()` over it, summed). Not rendered, and listed in the output's header:
+//! `recent` windows (a count of segments, which Prometheus cannot select) and `decline` rules
+//! (a sequential test over the stream, in the daemon only).
+//!
+//! One group, in dependency order (a rule reads only rules above it, evaluated at the same
+//! timestamp): per (metric, window) the replicate scores and the scored-segment count; per rule
+//! the upper bound it judges (`session_rule:mtgauge_alert_bound:quantile`, label `rule`); then
+//! the alerting rules.
+//! - replicate scores: the formulas of `deploy/prometheus/mtgauge-rules.yml` (BLEU of Papineni
+//!   et al. 2002 unsmoothed over the exported orders; chrF of Popović 2015/2017 with beta 2)
+//!   applied to each replicate's sums over the replicas;
+//! - `below`: the `Q`-quantile by session of the replicate scores, Q = (1 + level) / 2 (0.975
+//!   for the 95% interval): its upper bound;
+//! - `drop`: the same quantile of the per-replicate difference (session - baseline), paired by
+//!   replicate: the same segment has the same weights in both sessions.
+//!
+//! An alert's condition is the daemon's: the bound below the limit (threshold, or -points),
+//! or, once firing (the `ALERTS` series Prometheus keeps for its own alerts), below the limit
+//! plus `clear_margin`; with at least `min_segments` scored segments in the window (for `drop`,
+//! in both sessions' windows); for `for_seconds`. Its labels are the daemon's (alertname,
+//! session, severity, metric and the rule's extra labels), so that the same alert from the
+//! daemon and from Prometheus is one alert at Alertmanager.
+//!
+//! Differences from the daemon, by construction: PromQL's quantile interpolates between
+//! neighbouring replicate scores (the daemon takes ranks), it sees the exported replicates only
+//! (`serve --exported-resamples`, default 100), `increase()` extrapolates to the window's
+//! edges, `all` is what the replicas' counters hold (since each replica's start), and the
+//! formulas assume unsmoothed BLEU and chrF beta 2.
+
+use std::collections::BTreeSet;
+use std::fmt::Write;
+
+use super::rules::{Condition, Rule, Window};
+use crate::metric::resample::DEFAULT_LEVEL;
+use crate::metric::Metric;
+
+/// The record that holds each rule's judged bound (label `rule`).
+pub const BOUND_RECORD: &str = "session_rule:mtgauge_alert_bound:quantile";
+/// The group every rendered rule is in.
+pub const GROUP: &str = "mtgauge-alert-rules";
+
+/// The rendered file, and the rules left out with the reason.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Rendered {
+    /// Prometheus rule file (YAML).
+    pub yaml: String,
+    /// Rules rendered.
+    pub rendered: Vec<String>,
+    /// Rules not rendered: (name, why).
+    pub skipped: Vec<(String, String)>,
+}
+
+/// Why a rule cannot be rendered, if it cannot.
+pub fn daemon_only(rule: &Rule) -> Option<&'static str> {
+    match (&rule.condition, rule.window) {
+        (Condition::Decline { .. }, _) => Some("a `decline` rule is a sequential test over the stream of chunks: the daemon evaluates it, Prometheus cannot"),
+        (_, Window::Recent) => Some("the `recent` window is the session's last segments by count, which Prometheus cannot select: use `all` or a time window such as 15m"),
+        _ => None,
+    }
+}
+
+/// The operation part of a record name for a window: `sum` (since start) or `increase15m`.
+fn op(w: Window) -> String {
+    match w {
+        Window::Last(_) => format!("increase{}", w.name()),
+        _ => "sum".into(),
+    }
+}
+
+/// `sum by (by) (family)` for `all`, `sum by (by) (increase(family[w]))` for a time window.
+fn agg(family: &str, by: &str, w: Window) -> String {
+    match w {
+        Window::Last(_) => format!("sum by ({by}) (increase({family}[{}]))", w.name()),
+        _ => format!("sum by ({by}) ({family})"),
+    }
+}
+
+/// A PromQL string literal.
+pub fn promql_string(s: &str) -> String {
+    let mut out = String::from("\"");
+    for c in s.chars() {
+        match c {
+            '"' => out.push_str("\\\""),
+            '\\' => out.push_str("\\\\"),
+            '\n' => out.push_str("\\n"),
+            '\r' => out.push_str("\\r"),
+            '\t' => out.push_str("\\t"),
+            c => out.push(c),
+        }
+    }
+    out.push('"');
+    out
+}
+
+/// A YAML double-quoted scalar (JSON strings are valid YAML).
+fn yaml_string(s: &str) -> String {
+    serde_json::Value::String(s.to_owned()).to_string()
+}
+
+/// Annotation text as Prometheus shows it literally (`{{` would start a template).
+fn literal(s: &str) -> String {
+    s.replace("{{", "{{ \"{{\" }}")
+}
+
+/// The replicate-score record of a metric over a window, and its selector part for the metric.
+fn replicate_record(m: Metric, w: Window) -> (String, String) {
+    match m {
+        Metric::Bleu => (format!("session_replicate:mtgauge_alert_bleu:{}", op(w)), String::new()),
+        _ => (format!("session_metric_replicate:mtgauge_alert_chrf:{}", op(w)), format!("metric={}", promql_string(m.name()))),
+    }
+}
+
+fn segments_record(w: Window) -> String {
+    format!("session:mtgauge_alert_segments:{}", op(w))
+}
+
+/// A selector `{a="x", b="y"}` of the non-empty parts (empty string when none).
+fn selector(parts: &[String]) -> String {
+    let parts: Vec<&String> = parts.iter().filter(|p| !p.is_empty()).collect();
+    if parts.is_empty() {
+        String::new()
+    } else {
+        format!("{{{}}}", parts.iter().map(|p| p.as_str()).collect::<Vec<_>>().join(", "))
+    }
+}
+
+/// Push a recording rule (expression lines indented under `expr: |2`).
+fn record(out: &mut String, name: &str, expr: &str, labels: &[(&str, &str)]) {
+    let _ = writeln!(out, "      - record: {name}");
+    let _ = writeln!(out, "        expr: |2");
+    for line in expr.lines() {
+        let _ = writeln!(out, "            {line}");
+    }
+    if !labels.is_empty() {
+        let _ = writeln!(out, "        labels:");
+        for (k, v) in labels {
+            let _ = writeln!(out, "          {k}: {}", yaml_string(v));
+        }
+    }
+    out.push('\n');
+}
+
+/// The series rules of one (metric, window): replicate scores.
+fn series(out: &mut String, m: Metric, w: Window) {
+    let o = op(w);
+    if m == Metric::Bleu {
+        let by = "session, replicate, order";
+        let p = format!("session_replicate_order:mtgauge_alert_bleu_precision:{o}");
+        record(out, &p, &format!("  {}\n/\n  clamp_min({}, 1)", agg("mtgauge_replicate_bleu_matches_total", by, w), agg("mtgauge_replicate_bleu_ngrams_total", by, w)), &[]);
+        let by = "session, replicate";
+        let expr = format!(
+            "  100 * exp(clamp_max(\n      1\n    -\n        {}\n      /\n        ({} > 0),\n    0))\n* on (session, replicate)\n  exp(avg by (session, replicate) (ln({p})))",
+            agg("mtgauge_replicate_reference_tokens_total", by, w),
+            agg("mtgauge_replicate_hypothesis_tokens_total", by, w)
+        );
+        record(out, &replicate_record(m, w).0, &expr, &[]);
+    } else if !out.contains(&format!("record: {}\n", replicate_record(m, w).0)) {
+        // chrF and chrF++ share their records (label metric).
+        let by = "session, metric, replicate, kind, order";
+        let (matches, hyp, rf) = (agg("mtgauge_replicate_chrf_matches_total", by, w), agg("mtgauge_replicate_chrf_hypothesis_ngrams_total", by, w), agg("mtgauge_replicate_chrf_reference_ngrams_total", by, w));
+        let p = format!("session_metric_replicate:mtgauge_alert_chrf_precision:{o}");
+        let r = format!("session_metric_replicate:mtgauge_alert_chrf_recall:{o}");
+        let mean = "avg by (session, metric, replicate)";
+        record(out, &p, &format!("  {mean} (\n      {matches}\n    /\n      ({hyp} > 0)\n  )\nor on (session, metric, replicate)\n  0 * {mean} (\n      {matches}\n    /\n      ({rf} > 0)\n  )"), &[]);
+        record(out, &r, &format!("  {mean} (\n      {matches}\n    /\n      ({rf} > 0)\n  )\nor on (session, metric, replicate)\n  0 * {p}"), &[]);
+        record(out, &replicate_record(m, w).0, &format!("  100 * (1 + 2^2) * {p} * {r}\n/\n  ((2^2 * {p} + {r}) > 0)\nor on (session, metric, replicate)\n  0 * {p}"), &[]);
+    }
+}
+
+/// Render `rules` (those that can be); `source` names the file in the header.
+pub fn render(rules: &[Rule], source: &str) -> Rendered {
+    let q = (1.0 + DEFAULT_LEVEL) / 2.0;
+    let (mut rendered, mut skipped) = (Vec::new(), Vec::new());
+    let mut keep = Vec::new();
+    for r in rules {
+        match daemon_only(r) {
+            Some(why) => skipped.push((r.name.clone(), why.to_owned())),
+            None => {
+                rendered.push(r.name.clone());
+                keep.push(r);
+            }
+        }
+    }
+    let mut out = String::new();
+    let _ = writeln!(out, "# Prometheus recording and alerting rules rendered by `mtgauge rules` from {source}: the");
+    let _ = writeln!(out, "# [[alert]] rules the mtgauge daemon evaluates itself, judged here over the fleet's summed");
+    let _ = writeln!(out, "# counters and the per-replicate series of `serve --exported-resamples` (default 100).");
+    let _ = writeln!(out, "# Do not edit: change the [[alert]] entries and render again.");
+    let _ = writeln!(out, "#");
+    let _ = writeln!(out, "# Each alert fires when the upper bound of the {:.0}% bootstrap interval (the {q} quantile of", DEFAULT_LEVEL * 100.0);
+    let _ = writeln!(out, "# the replicate scores, or of the paired per-replicate differences for `drop`) is below the");
+    let _ = writeln!(out, "# rule's limit, with the rule's minimum of scored segments, for its `for` duration; a firing");
+    let _ = writeln!(out, "# alert resolves once the bound is back above the limit by clear_margin. Alerts carry the");
+    let _ = writeln!(out, "# daemon's labels, so the same alert from both is one alert at Alertmanager. BLEU is rendered");
+    let _ = writeln!(out, "# unsmoothed and chrF with beta 2; `all` is what the replicas' counters hold; increase()");
+    let _ = writeln!(out, "# extrapolates to a time window's edges. BLEU and chrF are automatic proxies for translation");
+    let _ = writeln!(out, "# quality, comparable only under the same tokenizer, references and configuration.");
+    let _ = writeln!(out, "#");
+    if rendered.is_empty() {
+        let _ = writeln!(out, "# Rendered: none.");
+    } else {
+        let _ = writeln!(out, "# Rendered: {}.", rendered.join(", "));
+    }
+    for (name, why) in &skipped {
+        let _ = writeln!(out, "# Not rendered (daemon only): {name}: {why}.");
+    }
+    out.push('\n');
+    if keep.is_empty() {
+        out.push_str("groups: []\n");
+        return Rendered { yaml: out, rendered, skipped };
+    }
+    let _ = writeln!(out, "groups:\n  - name: {GROUP}\n    rules:");
+    // Series per (metric, window), and segments per window, in a stable order.
+    let needed: BTreeSet<(usize, String, u64)> = keep.iter().map(|r| (Metric::ALL.iter().position(|m| *m == r.metric).unwrap_or(0), r.window.name(), window_key(r.window))).collect();
+    let windows: BTreeSet<(u64, String)> = keep.iter().map(|r| (window_key(r.window), r.window.name())).collect();
+    for (key, _) in &windows {
+        let w = keep.iter().map(|r| r.window).find(|w| window_key(*w) == *key).unwrap_or(Window::All);
+        record(&mut out, &segments_record(w), &agg("mtgauge_segments_total{outcome=\"scored\"}", "session", w), &[]);
+    }
+    for (mi, _, key) in &needed {
+        let w = keep.iter().map(|r| r.window).find(|w| window_key(*w) == *key).unwrap_or(Window::All);
+        series(&mut out, Metric::ALL[*mi], w);
+    }
+    for r in &keep {
+        bound(&mut out, r, q);
+    }
+    for r in &keep {
+        alert(&mut out, r);
+    }
+    Rendered { yaml: out, rendered, skipped }
+}
+
+/// Order windows: `all` first, then by length.
+fn window_key(w: Window) -> u64 {
+    match w {
+        Window::Last(s) => s,
+        _ => 0,
+    }
+}
+
+/// The session selector parts of a rule's own session.
+fn own_session(rule: &Rule) -> Vec<String> {
+    rule.session.iter().map(|s| format!("session={}", promql_string(s))).collect()
+}
+
+/// `and on (session) (mtgauge_session_info{...} == 1)` for a label selector, else empty.
+fn label_filter(rule: &Rule) -> String {
+    if rule.labels.is_empty() {
+        return String::new();
+    }
+    let parts: Vec<String> = rule.labels.iter().map(|(k, v)| format!("{k}={}", promql_string(v))).collect();
+    format!("\nand on (session)\n  (mtgauge_session_info{} == 1)", selector(&parts))
+}
+
+fn bound(out: &mut String, rule: &Rule, q: f64) {
+    let (rec, metric_part) = replicate_record(rule.metric, rule.window);
+    let by = if rule.metric == Metric::Bleu { "session" } else { "session, metric" };
+    let mut own = own_session(rule);
+    own.push(metric_part.clone());
+    let expr = match &rule.condition {
+        Condition::Below { .. } => format!("quantile by ({by}) ({q}, {rec}{})", selector(&own)),
+        Condition::Drop { baseline, .. } => {
+            let base = selector(&[format!("session={}", promql_string(baseline)), metric_part]);
+            format!("quantile by ({by}) ({q},\n    {rec}{}\n  - ignoring (session) group_left\n    {rec}{base}\n)", selector(&own))
+        }
+        Condition::Decline { .. } => unreachable!("decline rules are not rendered"),
+    };
+    let expr = format!("{expr}{}", label_filter(rule));
+    record(out, BOUND_RECORD, &expr, &[("rule", &rule.name)]);
+}
+
+/// A number as PromQL reads it, without trailing noise.
+fn num(x: f64) -> String {
+    let s = format!("{x}");
+    if s.contains('e') {
+        format!("{x:.6}")
+    } else {
+        s
+    }
+}
+
+fn alert(out: &mut String, rule: &Rule) {
+    let limit = match &rule.condition {
+        Condition::Below { threshold } => *threshold,
+        Condition::Drop { points, .. } => -points,
+        Condition::Decline { .. } => unreachable!("decline rules are not rendered"),
+    };
+    let b = format!("max by (session) ({BOUND_RECORD}{{rule={}}})", promql_string(&rule.name));
+    let firing = format!("ALERTS{{alertname={}, alertstate=\"firing\"}}", promql_string(&rule.name));
+    let seg = segments_record(rule.window);
+    let mut expr = format!(
+        "  (\n      {b} < {}\n    or\n      (\n          {b} < {}\n        and on (session)\n          {firing}\n      )\n  )\nand on (session)\n  {seg} >= {}",
+        num(limit),
+        num(limit + rule.clear_margin),
+        rule.min_segments
+    );
+    if let Condition::Drop { baseline, .. } = &rule.condition {
+        let _ = write!(expr, "\nand on ()\n  {seg}{{session={}}} >= {}", promql_string(baseline), rule.min_segments);
+    }
+    let _ = writeln!(out, "      - alert: {}", rule.name);
+    let _ = writeln!(out, "        expr: |2");
+    for line in expr.lines() {
+        let _ = writeln!(out, "            {line}");
+    }
+    let _ = writeln!(out, "        for: {}s", rule.for_seconds);
+    let _ = writeln!(out, "        labels:");
+    let mut labels = rule.extra_labels.clone();
+    labels.insert("severity".into(), rule.severity.clone());
+    labels.insert("metric".into(), rule.metric.name().into());
+    for (k, v) in &labels {
+        let _ = writeln!(out, "          {k}: {}", yaml_string(v));
+    }
+    let _ = writeln!(out, "        annotations:");
+    let mut ann: std::collections::BTreeMap<String, String> = rule.annotations.iter().map(|(k, v)| (k.clone(), literal(v))).collect();
+    ann.entry("summary".into()).or_insert_with(|| literal(&format!("{}: {}", rule.name, describe(rule))) + " on session {{ $labels.session }}");
+    ann.insert("measured".into(), format!("upper bound of the {:.0}% interval {{{{ $value | printf \"%.2f\" }}}} (Prometheus, over the exported replicates)", DEFAULT_LEVEL * 100.0));
+    ann.insert(
+        "description".into(),
+        literal(&format!(
+            "{} is an automatic proxy for translation quality: look at the session's recent output and at what changed (model, input, references) before concluding anything.",
+            rule.metric.title()
+        )),
+    );
+    for (k, v) in &ann {
+        let _ = writeln!(out, "          {k}: {}", yaml_string(v));
+    }
+    out.push('\n');
+}
+
+/// The condition in words (as the daemon's reports say it).
+fn describe(rule: &Rule) -> String {
+    rule.describe()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::alerts::rules::{check_rules, RuleEntry};
+
+    fn rules(text: &str) -> Vec<Rule> {
+        #[derive(serde::Deserialize)]
+        struct F {
+            alert: Vec<RuleEntry>,
+        }
+        let f: F = toml::from_str(text).unwrap();
+        check_rules(&f.alert).unwrap()
+    }
+
+    const RULES: &str = r#"
+[[alert]]
+name = "floor"
+session = "ferry.v8"
+window = "15m"
+when = "below"
+threshold = 45
+clear_margin = 0.5
+min_segments = 300
+for_seconds = 120
+[alert.extra_labels]
+team = "ferry \"mt\""
+[alert.annotations]
+runbook = "see {{ the wiki }}"
+
+[[alert]]
+name = "worse"
+labels = { model = "v8-rc" }
+metric = "chrf"
+window = "all"
+when = "drop"
+baseline = "ferry.v7"
+points = 2
+
+[[alert]]
+name = "recent-floor"
+session = "ferry.v8"
+when = "below"
+threshold = 40
+
+[[alert]]
+name = "slide"
+session = "ferry.v7"
+when = "decline"
+points = 2
+"#;
+
+    #[test]
+    fn renders_below_and_drop_and_lists_what_it_cannot() {
+        let r = render(&rules(RULES), "serve.toml");
+        assert_eq!(r.rendered, ["floor", "worse"]);
+        assert_eq!(r.skipped.iter().map(|(n, _)| n.as_str()).collect::<Vec<_>>(), ["recent-floor", "slide"]);
+        let y = &r.yaml;
+        assert!(y.contains("# Not rendered (daemon only): recent-floor: the `recent` window"), "{y}");
+        // One segments record per window, replicate scores per (metric, window).
+        assert_eq!(y.matches("- record: session:mtgauge_alert_segments:sum\n").count(), 1);
+        assert_eq!(y.matches("- record: session:mtgauge_alert_segments:increase15m\n").count(), 1);
+        assert!(y.contains("sum by (session) (increase(mtgauge_segments_total{outcome=\"scored\"}[15m]))"));
+        assert_eq!(y.matches("- record: session_replicate:mtgauge_alert_bleu:increase15m\n").count(), 1);
+        assert_eq!(y.matches("- record: session_metric_replicate:mtgauge_alert_chrf:sum\n").count(), 1);
+        // The below rule's bound: the 0.975 quantile of its session's replicate scores.
+        assert!(y.contains("quantile by (session) (0.975, session_replicate:mtgauge_alert_bleu:increase15m{session=\"ferry.v8\"})"), "{y}");
+        // The drop rule: paired differences against the baseline, label selector by session info.
+        assert!(y.contains("  - ignoring (session) group_left\n"));
+        assert!(y.contains("session_metric_replicate:mtgauge_alert_chrf:sum{session=\"ferry.v7\", metric=\"chrf\"}"), "{y}");
+        assert!(y.contains("(mtgauge_session_info{model=\"v8-rc\"} == 1)"));
+        // Conditions with hysteresis and guards.
+        assert!(y.contains("{rule=\"floor\"}) < 45\n") && y.contains("{rule=\"floor\"}) < 45.5\n"), "{y}");
+        assert!(y.contains("{rule=\"worse\"}) < -2\n") && y.contains("{rule=\"worse\"}) < -1.5\n"));
+        assert!(y.contains("ALERTS{alertname=\"floor\", alertstate=\"firing\"}"));
+        assert!(y.contains("session:mtgauge_alert_segments:increase15m >= 300\n"));
+        assert!(y.contains("session:mtgauge_alert_segments:sum{session=\"ferry.v7\"} >= 200\n"), "drop: the baseline's guard too");
+        assert!(y.contains("        for: 120s\n") && y.contains("        for: 60s\n"));
+        // Labels and annotations quoted; template braces of user text kept literal.
+        assert!(y.contains("          team: \"ferry \\\"mt\\\"\"\n"), "{y}");
+        assert!(y.contains("          metric: \"chrf\"\n") && y.contains("          severity: \"warning\"\n"));
+        assert!(y.contains("runbook: \"see {{ \\\"{{\\\" }} the wiki }}\""), "{y}");
+        assert!(y.contains("automatic proxy"));
+        // Dependency order: every record is defined above its first use.
+        let first_def = |name: &str| y.find(&format!("- record: {name}\n"));
+        for name in ["session_replicate_order:mtgauge_alert_bleu_precision:increase15m", "session_replicate:mtgauge_alert_bleu:increase15m", "session_metric_replicate:mtgauge_alert_chrf_precision:sum", BOUND_RECORD] {
+            let def = first_def(name).unwrap_or_else(|| panic!("{name} not recorded"));
+            let used = y.find(&format!("{name}{{")).or_else(|| y.find(&format!("({name})"))).or_else(|| y.find(&format!("* {name}"))).unwrap();
+            assert!(def < used, "{name} used before it is recorded");
+        }
+    }
+
+    #[test]
+    fn nothing_to_render_is_an_empty_rule_file() {
+        let r = render(&rules("[[alert]]\nname = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 30\n"), "x.toml");
+        assert!(r.rendered.is_empty() && r.yaml.ends_with("groups: []\n"));
+    }
+
+    #[test]
+    fn promql_strings_are_escaped() {
+        assert_eq!(promql_string("a\"b\\c\nd"), "\"a\\\"b\\\\c\\nd\"");
+    }
+}
