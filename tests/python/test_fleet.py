@@ -6,8 +6,10 @@ bound addresses; Prometheus gets a port found free just before it starts). The d
 built-in, invented ferry-notice demo (`mtgauge demo --offline --write-files`). Half of a corpus
 goes to each replica, from several producers at once; the fleet-wide BLEU and chrF that
 Prometheus records from the summed counters must equal the offline `mtgauge score --json` of the
-whole corpus. A degraded corpus must then bring the low-BLEU alert to firing, while a session
-with as bad a score but thin traffic must not; a stopped replica must fire the target-down alert.
+whole corpus. The alert rules of one config file, evaluated by a separate daemon that gets all
+the data and rendered by `mtgauge rules` for this Prometheus over the two replicas, must agree on
+which rules fire (a degraded session fires, a good one and one with as bad a score but thin
+traffic do not); a stopped replica must fire the target-down alert.
 
 Every expected number comes from the binary itself (offline scoring of the same files). No
 outside scoring tool is used or imitated.
@@ -47,12 +49,11 @@ from mtg_helpers import REPO, read_jsonl, require_binary, require_tool
 PROM_DIR = REPO / "deploy" / "prometheus"
 RULES = PROM_DIR / "mtgauge-rules.yml"
 ALERTS = PROM_DIR / "mtgauge-alerts.yml"
-THRESHOLDS = PROM_DIR / "mtgauge-thresholds.yml"
 INTERVAL_RULES = PROM_DIR / "mtgauge-interval-rules.yml"
 
 # Alerts whose `for:` the test shortens (in a rewritten copy of mtgauge-alerts.yml; expressions,
 # labels and annotations stay as in production) so that they can fire within the test.
-FAST_FOR = {"MtgaugeFleetBleuLow": "1s", "MtgaugeTargetDown": "1s"}
+FAST_FOR = {"MtgaugeTargetDown": "1s"}
 
 # Time bounds. Scrapes and rule evaluations run every second.
 STARTUP_TIMEOUT = 30.0
@@ -69,15 +70,20 @@ SCORE_TOL = 1e-6
 V7 = "model-v7"
 DEGRADED = "fallback-dictionary"
 SESSION_V7 = "fleet-v7"
-SESSION_DEGRADED = "fleet-fallback"
-SESSION_THIN = "fleet-thin"
 PRODUCERS_PER_REPLICA = 3
-DEGRADED_REPEATS = 2  # full degraded corpus per replica, each from its own producer
 WARMUP_LINES = 10
 THIN_EXTRA_LINES = 40
-MIN_SEGMENTS_DEFAULT = 200  # mtgauge:min_segments_default in deploy/prometheus/mtgauge-thresholds.yml
+# The alert agreement test: sessions, their label, and the rules' minimum of segments.
+AGREE_V7 = "agree-v7"
+AGREE_DEGRADED = "agree-fallback"
+AGREE_THIN = "agree-thin"
+AGREE_LABEL = "suite=agree"
+AGREE_MIN_SEGMENTS = 200
+AGREE_RESAMPLES = 100  # = the replicas' --exported-resamples default: the same replicates
+AGREE_HOLD_S = 4.0  # seconds both evaluators must keep agreeing once they agree
 
 LISTENING_RE = re.compile(r"listening grpc=(\S+) metrics=(\S+)")
+SERVING_RE = re.compile(r"mtgauge::server: serving$")
 ANSI_RE = re.compile(r"\x1b\[[0-9;]*m")
 
 # Loopback HTTP only: never through a proxy from the environment.
@@ -142,7 +148,7 @@ def stop_process(proc, timeout=SHUTDOWN_TIMEOUT):
 
 
 class Replica:
-    def __init__(self, name, demo_dir, data_dir):
+    def __init__(self, name, demo_dir, data_dir, extra=()):
         self.name = name
         # Each replica has its own durable store: the default --data-dir (/var/lib/mtgauge) is
         # shared by every server of the machine, and one store admits one `mtgauge serve`.
@@ -150,7 +156,7 @@ class Replica:
         cmd = [str(require_binary()), "serve",
                "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0",
                "--data-dir", str(data_dir),
-               "--refset", f"ferry={demo_dir / 'refs.jsonl'}"]
+               "--refset", f"ferry={demo_dir / 'refs.jsonl'}", *map(str, extra)]
         self.proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                                      stderr=subprocess.PIPE)
         self.log_lines = []
@@ -171,11 +177,14 @@ class Replica:
         self._lines.put(None)
 
     def wait_listening(self):
+        """Until the replica listens and has loaded its startup reference set ("serving": the
+        addresses are logged before the startup sets load)."""
         deadline = time.monotonic() + STARTUP_TIMEOUT
-        while self.grpc_addr is None:
+        serving = False
+        while self.grpc_addr is None or not serving:
             left = deadline - time.monotonic()
             if left <= 0:
-                pytest.fail(f"replica {self.name}: no 'listening grpc=...' line within "
+                pytest.fail(f"replica {self.name}: no 'listening grpc=...' and 'serving' lines within "
                             f"{STARTUP_TIMEOUT} s:\n{self.log_tail()}", pytrace=False)
             try:
                 line = self._lines.get(timeout=left)
@@ -184,10 +193,11 @@ class Replica:
             if line is None:
                 self.proc.wait(timeout=10)
                 pytest.fail(f"replica {self.name} exited with {self.proc.returncode} before "
-                            f"listening:\n{self.log_tail()}", pytrace=False)
+                            f"serving:\n{self.log_tail()}", pytrace=False)
             m = LISTENING_RE.search(line)
             if m:
                 self.grpc_addr, self.metrics_addr = m.group(1), m.group(2)
+            serving = serving or SERVING_RE.search(line) is not None
 
     def stop(self):
         was_running = self.proc.poll() is None
@@ -312,33 +322,73 @@ class Prometheus:
 
 
 @pytest.fixture(scope="module")
-def bleu_threshold(offline):
-    """The test sessions' BLEU threshold: halfway between the two systems' offline BLEU."""
-    good, bad = offline[V7]["bleu"]["score"], offline[DEGRADED]["bleu"]["score"]
-    assert bad + 10 < good, f"demo data changed: {DEGRADED} BLEU {bad}, {V7} BLEU {good}"
-    return (good + bad) / 2
+def thresholds(offline):
+    """BLEU and chrF thresholds of the agreement rules: halfway between the two systems' offline
+    scores."""
+    out = {}
+    for metric in ("bleu", "chrf"):
+        good, bad = offline[V7][metric]["score"], offline[DEGRADED][metric]["score"]
+        assert bad + 10 < good, f"demo data changed: {DEGRADED} {metric} {bad}, {V7} {metric} {good}"
+        out[metric] = (good + bad) / 2
+    return out
+
+
+# The rules both evaluators judge: (name, TOML body). Expected to fire: on the degraded session
+# only (the good one is above the thresholds and not worse than itself; the thin one has too few
+# segments).
+AGREE_RULES = [
+    ("agree-floor", 'labels = {{ suite = "agree" }}\nwindow = "all"\nwhen = "below"\nthreshold = {bleu}\n[alert.extra_labels]\nteam = "ferry-mt"'),
+    ("agree-chrf-15m", 'labels = {{ suite = "agree" }}\nmetric = "chrf"\nwindow = "15m"\nwhen = "below"\nthreshold = {chrf}'),
+    ("agree-worse", f'session = "{AGREE_DEGRADED}"\nwindow = "all"\nwhen = "drop"\nbaseline = "{AGREE_V7}"\npoints = 5'),
+    ("agree-better", f'session = "{AGREE_V7}"\nwindow = "all"\nwhen = "drop"\nbaseline = "{AGREE_DEGRADED}"\npoints = 5'),
+]
+AGREE_EXPECTED = {("agree-floor", AGREE_DEGRADED), ("agree-chrf-15m", AGREE_DEGRADED), ("agree-worse", AGREE_DEGRADED)}
 
 
 @pytest.fixture(scope="module")
-def prometheus(tmp_path_factory, replicas, bleu_threshold):
+def agreement_config(tmp_path_factory, thresholds):
+    """The serve config with the agreement rules (for_seconds 1, evaluated every second)."""
+    path = tmp_path_factory.mktemp("agree") / "mtgauge.toml"
+    body = "alert_eval_seconds = 1\n"
+    for name, rule in AGREE_RULES:
+        text = rule.format(bleu=repr(thresholds["bleu"]), chrf=repr(thresholds["chrf"]))
+        head, _, tail = text.partition("\n[alert.extra_labels]")
+        body += (f'\n[[alert]]\nname = "{name}"\n{head}\nmin_segments = {AGREE_MIN_SEGMENTS}\n'
+                 f'for_seconds = 1\n' + (f"[alert.extra_labels]{tail}\n" if tail else ""))
+    path.write_text(body, encoding="utf-8")
+    return path
+
+
+@pytest.fixture(scope="module")
+def judge(demo_dir, tmp_path_factory, agreement_config):
+    """One more daemon, not scraped, that gets all the data and evaluates the rules itself."""
+    r = Replica("judge", demo_dir, tmp_path_factory.mktemp("judge_store"), extra=["--config", agreement_config])
+    try:
+        r.wait_listening()
+    except BaseException:
+        r.stop()
+        raise
+    yield r
+    was_running = r.stop()
+    assert was_running and r.graceful and r.proc.returncode == 0, f"judge daemon:\n{r.log_tail()}"
+
+
+@pytest.fixture(scope="module")
+def prometheus(tmp_path_factory, replicas, agreement_config):
     binary = prometheus_binary()
-    for f in (RULES, ALERTS, THRESHOLDS, INTERVAL_RULES):
+    for f in (RULES, ALERTS, INTERVAL_RULES):
         assert f.is_file(), f"missing {f}"
     d = tmp_path_factory.mktemp("prometheus")
     alerts = d / "mtgauge-alerts.fast-for.yml"
     alerts.write_text(fast_alerts_text(ALERTS.read_text(encoding="utf-8")), encoding="utf-8")
-    thresholds = d / "thresholds-fleet-test.yml"
-    overrides = "".join(
-        f"      - record: mtgauge:bleu_threshold\n"
-        f"        expr: vector({bleu_threshold!r})\n"
-        f"        labels:\n"
-        f"          session: {session}\n"
-        for session in (SESSION_V7, SESSION_DEGRADED, SESSION_THIN))
-    thresholds.write_text("groups:\n  - name: mtgauge-thresholds-fleet-test\n    rules:\n"
-                          + overrides, encoding="utf-8")
+    # The agreement rules, rendered from the judge's config file by the binary itself.
+    rendered = d / "mtgauge-alert-rules.rendered.yml"
+    proc = subprocess.run([str(require_binary()), "rules", "--config", str(agreement_config), "--output", str(rendered)],
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 0 and f"{len(AGREE_RULES)} of {len(AGREE_RULES)} rules rendered" in proc.stderr, proc.stderr
     targets = ", ".join(json.dumps(r.metrics_addr) for r in replicas)
     rule_files = "".join(f"  - {json.dumps(str(p))}\n"
-                         for p in (RULES, THRESHOLDS, thresholds, alerts, INTERVAL_RULES))
+                         for p in (RULES, alerts, INTERVAL_RULES, rendered))
     config = d / "prometheus.yml"
     config.write_text(
         "global:\n"
@@ -527,70 +577,102 @@ def test_fleet_scores_equal_offline_score(replicas, prometheus, corpus, offline,
     assert not bad, f"rules with evaluation errors: {bad}"
 
 
-def test_degraded_session_fires_bleu_low_alert(replicas, prometheus, corpus, offline,
-                                               bleu_threshold, tmp_path):
+def daemon_firing(judge, sessions):
+    """{(rule, session)} the judge daemon reports firing, and its alerts by pair."""
+    firing, seen = set(), {}
+    for session in sessions:
+        proc = subprocess.run([str(require_binary()), "status", "--server", f"http://{judge.grpc_addr}",
+                               "--session", session, "--json"], capture_output=True, text=True, timeout=60)
+        assert proc.returncode == 0, proc.stderr
+        for a in json.loads(proc.stdout)["alerts"]:
+            seen[(a["rule"], session)] = a
+            if a["state"] == "firing":
+                firing.add((a["rule"], session))
+    return firing, seen
+
+
+def prometheus_firing(prom):
+    """{(alertname, session)} of the agreement rules firing in Prometheus, and the alerts."""
+    names = {name for name, _ in AGREE_RULES}
+    alerts = [a for a in prom.api("/api/v1/alerts")["alerts"] if a["labels"].get("alertname") in names]
+    firing = {(a["labels"]["alertname"], a["labels"]["session"]): a for a in alerts if a["state"] == "firing"}
+    return set(firing), firing
+
+
+def test_daemon_and_prometheus_agree_on_alerts(replicas, prometheus, judge, corpus, offline, thresholds, tmp_path):
+    """The same rules, the same data: one daemon evaluating them itself, and Prometheus
+    evaluating the rules `mtgauge rules` renders over two replicas that each got part of the
+    data. Both must fire exactly AGREE_EXPECTED, with the same labels."""
     ids, hyps = corpus
-    lines = list(zip(ids, hyps[DEGRADED]))
-    assert offline[DEGRADED]["bleu"]["score"] < bleu_threshold < offline[V7]["bleu"]["score"]
+    good, bad = list(zip(ids, hyps[V7])), list(zip(ids, hyps[DEGRADED]))
+    thin = bad[:WARMUP_LINES * len(replicas) + THIN_EXTRA_LINES]
+    assert len(thin) < AGREE_MIN_SEGMENTS
+    extra = ["--label", AGREE_LABEL, "--resamples", str(AGREE_RESAMPLES)]
+    sessions = {AGREE_V7: good, AGREE_DEGRADED: bad, AGREE_THIN: thin}
+    warm_n = WARMUP_LINES * len(replicas)
 
-    # Warm-up: one small batch per replica and session, so that each counter series exists (and
-    # has been scraped) before the traffic the 15-minute window must see: increase() cannot see
-    # the counts a series is first exported with.
-    warm = [(rep, session, f"warm-{session}-{rep.name}",
-             [h for _, h in lines[i * WARMUP_LINES:(i + 1) * WARMUP_LINES]],
-             [x for x, _ in lines[i * WARMUP_LINES:(i + 1) * WARMUP_LINES]])
-            for session in (SESSION_DEGRADED, SESSION_THIN)
-            for i, rep in enumerate(replicas)]
-    send_all(warm, tmp_path)
-    for session in (SESSION_DEGRADED, SESSION_THIN):
-        wait_until(f"counters of {session} scraped from both replicas",
+    def jobs(part):
+        out = []
+        for session, lines in sessions.items():
+            chosen = lines[:warm_n] if part == "warm" else lines[warm_n:]
+            if not chosen:
+                continue
+            for rep, half in zip(replicas, chunks(chosen, len(replicas))):
+                out.append((rep, session, f"{part}-{session}-{rep.name}", [h for _, h in half], [i for i, _ in half], extra))
+            out.append((judge, session, f"{part}-{session}-judge", [h for _, h in chosen], [i for i, _ in chosen], extra))
+        return out
+
+    # Warm-up first, so that every counter series exists (and is scraped) before the traffic a
+    # 15-minute window must see: increase() cannot see the counts a series is first exported with.
+    send_all(jobs("warm"), tmp_path)
+    for session in sessions:
+        wait_until(f"replicate counters of {session} scraped from both replicas",
                    lambda s=session: prometheus.scalar(
-                       f'count(mtgauge_segments_total{{session="{s}", outcome="scored"}})')
-                   == len(replicas), PROM_TIMEOUT)
+                       f'count(mtgauge_replicate_segments_total{{session="{s}", replicate="0"}})') == len(replicas),
+                   PROM_TIMEOUT)
     time.sleep(2 * INTERVAL_S)
+    send_all(jobs("rest"), tmp_path)
 
-    jobs = []
-    for rep in replicas:
-        for k in range(DEGRADED_REPEATS):
-            jobs.append((rep, SESSION_DEGRADED, f"deg-{rep.name}-{k + 1}",
-                         [h for _, h in lines], [x for x, _ in lines]))
-        extra = lines[-THIN_EXTRA_LINES:]
-        jobs.append((rep, SESSION_THIN, f"thin-{rep.name}",
-                     [h for _, h in extra], [x for x, _ in extra]))
-    send_all(jobs, tmp_path)
-    thin_total = len(replicas) * (WARMUP_LINES + THIN_EXTRA_LINES)
-    assert thin_total < MIN_SEGMENTS_DEFAULT
+    def agree():
+        d, _ = daemon_firing(judge, sessions)
+        p, _ = prometheus_firing(prometheus)
+        return d == p == AGREE_EXPECTED
 
-    def firing():
-        return [a for a in prometheus.alerts("MtgaugeFleetBleuLow")
-                if a["labels"].get("session") == SESSION_DEGRADED and a["state"] == "firing"]
-
-    alert = wait_until(f"MtgaugeFleetBleuLow firing for {SESSION_DEGRADED}", firing,
-                       PROM_TIMEOUT)[0]
-    assert alert["labels"]["severity"] == "warning"
-    assert "proxy" in alert["annotations"]["description"]
-    window_bleu = one_value(prometheus, f'session:mtgauge_bleu:increase15m{{session="{SESSION_DEGRADED}"}}')
-    scored_15m = one_value(prometheus, f'session_outcome:mtgauge_segments:increase15m'
-                                       f'{{session="{SESSION_DEGRADED}", outcome="scored"}}')
-    print(f"\n{SESSION_DEGRADED}: 15m BLEU {window_bleu:.4f} (offline {DEGRADED} "
-          f"{offline[DEGRADED]['bleu']['score']:.4f}), threshold {bleu_threshold:.4f}, "
-          f"scored in 15m {scored_15m:.1f}")
-    assert window_bleu < bleu_threshold
-    assert scored_15m >= MIN_SEGMENTS_DEFAULT
-
-    # Thin traffic: the 15-minute BLEU of fleet-thin is as low, but it has fewer scored segments
-    # than the minimum, so it must not alert (not even pending). It has been evaluated for as
-    # long as fleet-fallback, whose alert (for: 1s) is already firing.
-    thin_bleu = one_value(prometheus, f'session:mtgauge_bleu:increase15m{{session="{SESSION_THIN}"}}')
-    thin_15m = one_value(prometheus, f'session_outcome:mtgauge_segments:increase15m'
-                                     f'{{session="{SESSION_THIN}", outcome="scored"}}')
-    print(f"{SESSION_THIN}: 15m BLEU {thin_bleu:.4f}, scored in 15m {thin_15m:.1f}")
-    assert thin_bleu < bleu_threshold
-    assert thin_15m < MIN_SEGMENTS_DEFAULT
-    for session in (SESSION_THIN, SESSION_V7):
-        found = [a for a in prometheus.alerts("MtgaugeFleetBleuLow")
-                 if a["labels"].get("session") == session]
-        assert not found, f"MtgaugeFleetBleuLow for {session}: {found}"
+    try:
+        wait_until("the daemon and Prometheus both firing exactly the expected alerts", agree, PROM_TIMEOUT)
+    except BaseException:
+        print("daemon:", daemon_firing(judge, sessions)[0], "\nprometheus:", prometheus_firing(prometheus)[0])
+        raise
+    # They keep agreeing (nothing else starts firing on either side).
+    deadline = time.monotonic() + AGREE_HOLD_S
+    while time.monotonic() < deadline:
+        d, seen = daemon_firing(judge, sessions)
+        p, palerts = prometheus_firing(prometheus)
+        assert d == p == AGREE_EXPECTED, (d, p)
+        time.sleep(0.5)
+    # The thin session was judged by the daemon and had too few segments.
+    for rule in ("agree-floor", "agree-chrf-15m"):
+        a = seen[(rule, AGREE_THIN)]
+        assert a["state"] == "inactive" and a["segments"] == len(thin), a
+    # The same labels on both sides: the daemon's (alertname, session, severity, metric, extra
+    # labels), so that Alertmanager sees one alert.
+    assert palerts[("agree-floor", AGREE_DEGRADED)]["labels"] == {
+        "alertname": "agree-floor", "session": AGREE_DEGRADED, "severity": "warning", "metric": "bleu", "team": "ferry-mt"}
+    assert palerts[("agree-chrf-15m", AGREE_DEGRADED)]["labels"]["metric"] == "chrf"
+    assert "proxy" in palerts[("agree-floor", AGREE_DEGRADED)]["annotations"]["description"]
+    # The bounds judged: over `all`, the replicas' replicate sums add up to the judge's exactly;
+    # PromQL's quantile interpolates between the replicate scores at ranks 97 and 98 (1-based),
+    # the daemon takes rank 98: Prometheus' bound is at most the daemon's.
+    bounds = {m["rule"]: v for m, v in prometheus.query(f'session_rule:mtgauge_alert_bound:quantile{{session="{AGREE_DEGRADED}"}}')}
+    for rule, _ in AGREE_RULES[:3]:
+        own = seen[(rule, AGREE_DEGRADED)]
+        print(f"\n{rule}: daemon value {own['value']:.4f}, upper bound {own['high']:.4f} over {own['segments']} segments; "
+              f"Prometheus upper bound {bounds[rule]:.4f}")
+    for rule in ("agree-floor", "agree-worse"):
+        own = seen[(rule, AGREE_DEGRADED)]["high"]
+        assert bounds[rule] <= own + 1e-9 and own - bounds[rule] < 1.0, (rule, bounds[rule], own)
+    assert seen[("agree-floor", AGREE_DEGRADED)]["segments"] == len(bad)
+    assert thresholds["bleu"] > seen[("agree-floor", AGREE_DEGRADED)]["high"]
 
 
 SESSION_IV = "fleet-interval"

@@ -36,10 +36,13 @@ TESTS_DIR = PROM_DIR / "tests"
 RULES = PROM_DIR / "mtgauge-rules.yml"
 ALERTS = PROM_DIR / "mtgauge-alerts.yml"
 THRESHOLDS = PROM_DIR / "mtgauge-thresholds.yml"
+# The score alerts, rendered by `mtgauge rules` from the example [[alert]] rules (checked to be
+# up to date by test_rendered_rules.py).
+RENDERED = PROM_DIR / "mtgauge-alert-rules.yml"
 EXAMPLE_CONFIG = PROM_DIR / "prometheus.example.yml"
 
 EXPECTED_ALERTS = {
-    "MtgaugeFleetBleuLow", "MtgaugeUnknownSegmentsHigh", "MtgaugeNoScoredTraffic",
+    "MtgaugeUnknownSegmentsHigh", "MtgaugeNoScoredTraffic",
     "MtgaugeRefsetDigestMismatch", "MtgaugeTargetDown",
 }
 
@@ -65,9 +68,9 @@ def promtool_test_files():
 
 
 def test_expected_files_exist():
-    for f in (RULES, ALERTS, THRESHOLDS, EXAMPLE_CONFIG):
+    for f in (RULES, ALERTS, THRESHOLDS, RENDERED, EXAMPLE_CONFIG):
         assert f.is_file(), f"missing {f}"
-    assert set(rule_files()) >= {RULES, ALERTS, THRESHOLDS}
+    assert set(rule_files()) >= {RULES, ALERTS, THRESHOLDS, RENDERED}
     assert promtool_test_files(), f"no promtool test files in {TESTS_DIR}"
 
 
@@ -81,8 +84,8 @@ def test_promtool_check_rules(path):
 def test_promtool_check_example_config():
     proc, out = run_promtool("check", "config", EXAMPLE_CONFIG)
     assert proc.returncode == 0, out
-    # The example loads the three production rule files (their paths are relative to it).
-    for f in (RULES, THRESHOLDS, ALERTS):
+    # The example loads the four production rule files (their paths are relative to it).
+    for f in (RULES, THRESHOLDS, ALERTS, RENDERED):
         assert f"Checking {f.name}" in out or f"Checking {f}" in out, out
 
 

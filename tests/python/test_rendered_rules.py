@@ -25,7 +25,10 @@ import subprocess
 
 import pytest
 
-from mtg_helpers import require_binary, require_tool
+from mtg_helpers import REPO, require_binary, require_tool
+
+EXAMPLE_RULES = REPO / "deploy" / "alerts" / "mtgauge-alert-rules.example.toml"
+SHIPPED = REPO / "deploy" / "prometheus" / "mtgauge-alert-rules.yml"
 
 REPLICAS = ("a", "b")
 PHASE = 10  # minutes per phase; 11 samples each (x10)
@@ -246,3 +249,20 @@ def test_rules_refuses_a_config_without_alert_rules(tmp_path):
     config.write_text('[[alert]]\nname = "x"\nsession = "s"\nwhen = "below"\nthreshold = 40\nwindow = "15 min"\n', encoding="utf-8")
     proc = subprocess.run([str(require_binary()), "rules", "--config", str(config)], capture_output=True, text=True, timeout=60)
     assert proc.returncode != 0 and "alert rule 'x': window '15 min'" in proc.stderr, proc.stderr
+
+
+def test_shipped_rule_file_is_the_rendering_of_the_example(tmp_path):
+    """deploy/prometheus/mtgauge-alert-rules.yml (loaded by prometheus.example.yml in place of
+    hand-written score thresholds) is exactly what `mtgauge rules` makes of the example rules:
+    the daemon and Prometheus judge the same definitions."""
+    out = tmp_path / "rendered.yml"
+    proc = subprocess.run([str(require_binary()), "rules", "--config", str(EXAMPLE_RULES), "--output", str(out)],
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 0, proc.stderr
+    assert "2 of 3 rules rendered" in proc.stderr, proc.stderr
+    assert "not rendered (daemon only): production-chrf-decline" in proc.stderr, proc.stderr
+    assert SHIPPED.read_text(encoding="utf-8") == out.read_text(encoding="utf-8"), (
+        f"{SHIPPED} is out of date: run `mtgauge rules --config {EXAMPLE_RULES.relative_to(REPO)} "
+        f"--output {SHIPPED.relative_to(REPO)}`")
+    for alert in ("candidate-bleu-floor", "candidate-worse-than-production"):
+        assert f"- alert: {alert}\n" in out.read_text(encoding="utf-8"), alert
