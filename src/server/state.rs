@@ -161,8 +161,10 @@ impl State {
     /// return what to wait on for its effect: a stream scores its next batch meanwhile.
     pub fn submit_batch(&self, batch: Pending) -> Result<Committing> {
         let Some(tx) = &self.inner.committer else {
-            let effects = commit(Some(&self.inner), None, std::slice::from_ref(&batch)).map_err(|e| ServiceError::StoreFailed(e.to_string()))?;
-            return Ok(Committing::Done(Box::new(effects.into_iter().next().flatten())));
+            let group = std::slice::from_ref(&batch);
+            let effects = commit(Some(&self.inner), None, group).map_err(|e| ServiceError::StoreFailed(e.to_string()))?;
+            publish(to_publish(group, &effects));
+            return Ok(Committing::Done(Box::new(effects.into_iter().next().and_then(|(a, _)| a))));
         };
         let (reply, rx) = tokio::sync::oneshot::channel();
         let sent = tx.lock().unwrap_or_else(|e| e.into_inner()).send(CommitRequest { batch, reply });
@@ -450,37 +452,72 @@ impl Drop for ProducerClaim {
 }
 
 /// The one path of an applied batch, in both modes: apply each batch of `group` to its
-/// session in memory, write the effects in one transaction (with a store), and only then
-/// publish them to telemetry. The effects come back in the order of `group` (None: a
-/// duplicate). A session closed meanwhile (not the one registered under its name in `live`)
-/// is neither written nor published.
-fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std::result::Result<Vec<Option<Applied>>, StoreError> {
+/// session in memory and write the effects in one transaction (with a store); [`publish`]
+/// then hands them to telemetry, only once they are written. The effects come back in the
+/// order of `group` (None: a duplicate), each with whether it is to be published: a session
+/// closed meanwhile (not the one registered under its name in `live`) is neither written nor
+/// published.
+fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std::result::Result<Vec<(Option<Applied>, bool)>, StoreError> {
     let mut effects = Vec::with_capacity(group.len());
     for p in group {
         let current = live.is_some_and(|l| l.sessions.get(&p.session.spec().name).is_some_and(|e| Arc::ptr_eq(e.value(), &p.session)));
         let applied = p.session.apply(&p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref());
         effects.push((applied, current));
     }
-    let kept = || effects.iter().zip(group).filter_map(|((a, current), p)| Some((p, a.as_ref().filter(|_| *current)?)));
     if let Some(store) = store {
-        let writes: Vec<BatchWrite<'_>> = kept().map(|(p, applied)| BatchWrite { session: &p.session.spec().name, applied }).collect();
+        let writes: Vec<BatchWrite<'_>> = kept(group, &effects).map(|(p, applied)| BatchWrite { session: &p.session.spec().name, applied }).collect();
         if !writes.is_empty() {
             store.commit_batches(&writes)?;
         }
     }
-    for (p, a) in kept() {
-        let spec = p.session.spec();
-        crate::telemetry::record_batch(&spec.name, &spec.config, a.batch.scored, a.batch.unknown, a.batch.rejected, &a.added);
-        crate::telemetry::record_scores(&spec.name, &spec.config, &a.cumulative, &a.recent);
+    Ok(effects)
+}
+
+/// The written effects of a group, with their batches.
+fn kept<'a>(group: &'a [Pending], effects: &'a [(Option<Applied>, bool)]) -> impl Iterator<Item = (&'a Pending, &'a Applied)> {
+    group.iter().zip(effects).filter_map(|(p, (a, current))| Some((p, a.as_ref().filter(|_| *current)?)))
+}
+
+/// What telemetry takes of one written batch.
+struct Published {
+    session: Arc<Session>,
+    batch: crate::session::Counts,
+    added: crate::metric::CorpusStats,
+    /// The session's scores after the batch, for its last batch of the group only.
+    scores: Option<(crate::metric::CorpusStats, crate::metric::CorpusStats)>,
+}
+
+/// The telemetry of a committed group, taken before the effects go to their batches: counters
+/// per batch, and each session's scores once, after its last batch of the group.
+fn to_publish(group: &[Pending], effects: &[(Option<Applied>, bool)]) -> Vec<Published> {
+    let written: Vec<_> = kept(group, effects).collect();
+    written
+        .iter()
+        .enumerate()
+        .map(|(i, (p, a))| {
+            let last = !written[i + 1..].iter().any(|(q, _)| Arc::ptr_eq(&q.session, &p.session));
+            Published { session: Arc::clone(&p.session), batch: a.batch, added: a.added.clone(), scores: last.then(|| (a.cumulative.clone(), a.recent.clone())) }
+        })
+        .collect()
+}
+
+/// Hand a committed group's telemetry over (only once it is written).
+fn publish(records: Vec<Published>) {
+    for r in records {
+        let spec = r.session.spec();
+        crate::telemetry::record_batch(&spec.name, &spec.config, r.batch.scored, r.batch.unknown, r.batch.rejected, &r.added);
+        if let Some((cumulative, recent)) = &r.scores {
+            crate::telemetry::record_scores(&spec.name, &spec.config, cumulative, recent);
+        }
     }
-    Ok(effects.into_iter().map(|(a, _)| a).collect())
 }
 
 /// The group-commit thread: the one writer of batch effects. Each round takes everything that
 /// arrives within `interval` of the first request and passes it to [`commit`] as one group, and
 /// only then answers (so an acknowledged batch is durable, and a duplicate is only acknowledged
-/// once its original is). When the store cannot be written, every waiting batch is refused,
-/// the failure is reported through [`State::store_failure`], and the thread ends.
+/// once its original is); telemetry follows the answers. When the store cannot be written,
+/// every waiting batch is refused, the failure is reported through [`State::store_failure`],
+/// and the thread ends.
 fn commit_loop(store: Arc<Store>, state: std::sync::Weak<Inner>, rx: std::sync::mpsc::Receiver<CommitRequest>, interval: std::time::Duration) {
     while let Ok(first) = rx.recv() {
         // Sleep out the gathering time, then take everything that came: one wake-up per group,
@@ -490,13 +527,17 @@ fn commit_loop(store: Arc<Store>, state: std::sync::Weak<Inner>, rx: std::sync::
         }
         let mut group = vec![first];
         group.extend(rx.try_iter());
+        let started = std::time::Instant::now();
         let live = state.upgrade();
         let (batches, replies): (Vec<Pending>, Vec<_>) = group.into_iter().map(|r| (r.batch, r.reply)).unzip();
         match commit(live.as_deref(), Some(&store), &batches) {
             Ok(effects) => {
-                for (reply, effect) in replies.into_iter().zip(effects) {
+                crate::telemetry::record_group_commit(batches.len(), started.elapsed().as_secs_f64());
+                let records = to_publish(&batches, &effects);
+                for (reply, (effect, _)) in replies.into_iter().zip(effects) {
                     let _ = reply.send(Ok(effect));
                 }
+                publish(records);
             }
             Err(e) => {
                 let message = e.to_string();

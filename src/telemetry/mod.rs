@@ -47,13 +47,20 @@ const REP_CHRF_HYP: &str = "mtgauge_replicate_chrf_hypothesis_ngrams_total";
 const REP_CHRF_REF: &str = "mtgauge_replicate_chrf_reference_ngrams_total";
 const ALERT_DELIVERIES: &str = "mtgauge_alert_deliveries_total";
 const ALERT_RETRIES: &str = "mtgauge_alert_delivery_retries_total";
+const COMMIT_SECONDS: &str = "mtgauge_store_commit_seconds";
+const COMMIT_BATCHES: &str = "mtgauge_store_commit_batches";
+
+/// Buckets of `mtgauge_store_commit_seconds` (seconds; one group's apply, write and sync).
+pub const COMMIT_SECONDS_BUCKETS: &[f64] = &[0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0];
+/// Buckets of `mtgauge_store_commit_batches` (batches in one group commit).
+pub const COMMIT_BATCHES_BUCKETS: &[f64] = &[1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.0, 128.0, 256.0];
 
 /// Bootstrap replicates per session exported to Prometheus unless configured (the first ones
 /// of the session's replicates; 0 exports none).
 pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 34] = [
+pub const METRIC_NAMES: [&str; 36] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -88,6 +95,8 @@ pub const METRIC_NAMES: [&str; 34] = [
     REP_CHRF_REF,
     ALERT_DELIVERIES,
     ALERT_RETRIES,
+    COMMIT_SECONDS,
+    COMMIT_BATCHES,
 ];
 
 /// The replicate families: name, help, and the labels after `session` and `replicate`.
@@ -154,6 +163,10 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     let recorder = PrometheusBuilder::new()
         .set_buckets_for_metric(Matcher::Full(BATCH_SECONDS.into()), BATCH_SECONDS_BUCKETS)
         .map_err(|e| e.to_string())?
+        .set_buckets_for_metric(Matcher::Full(COMMIT_SECONDS.into()), COMMIT_SECONDS_BUCKETS)
+        .map_err(|e| e.to_string())?
+        .set_buckets_for_metric(Matcher::Full(COMMIT_BATCHES.into()), COMMIT_BATCHES_BUCKETS)
+        .map_err(|e| e.to_string())?
         .build_recorder();
     let handle = recorder.handle();
     metrics::set_global_recorder(recorder).map_err(|e| e.to_string())?;
@@ -172,6 +185,8 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_gauge!(ACTIVE_STREAMS, "Scoring streams open now.");
     describe_gauge!(BUILD_INFO, "Constant 1, labelled with the mtgauge version.");
     describe_histogram!(BATCH_SECONDS, Unit::Seconds, "Time from receiving a batch to its acknowledgement.");
+    describe_histogram!(COMMIT_SECONDS, Unit::Seconds, "Durable mode: time of one group commit (apply the group's batches, write them in one transaction, sync), without the gathering wait.");
+    describe_histogram!(COMMIT_BATCHES, "Durable mode: batches written by one group commit (one transaction).");
     describe_gauge!(CONNECTIONS_OPEN, "Connections open now per listener (grpc, health); at most limits.max_connections.");
     describe_counter!(CONNECTIONS_ACCEPTED, "Connections accepted per listener.");
     describe_counter!(CONNECTIONS_REFUSED, "Connections refused (RESOURCE_EXHAUSTED, then closed) because limits.max_connections were open.");
@@ -342,6 +357,12 @@ pub fn alert_delivery_retry(target: &str) {
 /// Time of one batch.
 pub fn record_batch_seconds(secs: f64) {
     histogram!(BATCH_SECONDS).record(secs);
+}
+
+/// One group commit of `batches` batches that took `secs`.
+pub fn record_group_commit(batches: usize, secs: f64) {
+    histogram!(COMMIT_SECONDS).record(secs);
+    histogram!(COMMIT_BATCHES).record(batches as f64);
 }
 
 /// Bound addresses, for the startup log and for tests that parse it.
