@@ -1,0 +1,530 @@
+//! Reference-free guards: deterministic rules that flag a hypothesis as broken from its source
+//! alone (no reference needed), after the pathologies studied in the MT hallucination
+//! literature (Raunak et al. 2021; Guerreiro et al. 2023) and the off-target-language problem of
+//! multilingual MT (Zhang et al. 2020).
+//!
+//! | guard        | rule (thresholds in [`GuardConfig`], defaults the `DEFAULT_*` constants) |
+//! |--------------|------|
+//! | `empty`      | the hypothesis has no letter, mark or digit (`char::is_alphanumeric`): empty, white space or punctuation only |
+//! | `copy`       | the hypothesis equals the source after normalisation (lowercased, only letters and digits kept; the source has at least one), or chrF of the hypothesis against the source as its reference (Popović 2015: character orders 1..=`copy_order`, beta `DEFAULT_CHRF_BETA`, text lowercased, white space removed) is at least `copy_min_chrf` |
+//! | `length`     | hypothesis/source length ratio (non-space characters) divided by the expected ratio is below `length_low` or above `length_high`; undecided when the source has fewer than `length_min_chars` |
+//! | `repetition` | the most frequent word n-gram (order `repeat_order`) occurs at least `repeat_count` times, or one word runs `repeat_run` times in a row, and more than in the source (same rule on the source); words are the `cjk` tokenizer's lowercased tokens with a letter or digit |
+//! | `script`     | under `script_min_share` of the hypothesis' letters are in the target language's scripts; undecided without a declared target or without letters |
+//! | `language`   | with at least `language_min_letters` letters: the script guard flags (text mostly in another script is off-target whatever an identifier says), or the identified language (crate `whatlang` 0.18.0, trigram profiles of 70 languages) is reliable and not the declared target; otherwise undecided (no declared target, fewer letters, identification not reliable) |
+//!
+//! Each guard gives its own verdict; an item can trip several. Verdicts are a pair of bitsets
+//! ([`Verdict`]); their counts ([`GuardCounts`]) are integers that add across batches,
+//! replicas and order. Everything here is pure: no I/O, no global state; the check reuses the
+//! buffers of a [`GuardScratch`].
+//!
+//! Language identification caveats (whatlang 0.18.0): trigram statistics need text; short
+//! texts and texts full of names and numbers are often misidentified, and close languages
+//! (Danish/Norwegian Bokmål, Croatian/Serbian in Latin letters, Indonesian/Malay) are confused.
+//! The `language_min_letters` floor and the crate's own reliability flag (`Info::is_reliable`)
+//! turn those cases into "undecided" rather than flags.
+
+mod script;
+
+use std::fmt;
+use std::hash::Hasher;
+
+pub use script::{language, language_codes, script_of, Language, Script, LANGUAGES};
+
+use crate::metric::chrf::{ChrfStats, OrderCounts};
+use crate::metric::ngram::{clipped_matches, ngram_count, sort_positions};
+use crate::metric::{DEFAULT_CHRF_BETA, DEFAULT_CHRF_CHAR_ORDER, MAX_CHRF_CHAR_ORDER};
+use crate::text::{is_space, TokenBuf, Tokenizer};
+
+/// A guard.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Guard {
+    /// No letter or digit in the hypothesis.
+    Empty,
+    /// The source copied through.
+    Copy,
+    /// Far shorter or longer than the source.
+    Length,
+    /// Degenerate repetition.
+    Repetition,
+    /// Letters not in the target language's script.
+    Script,
+    /// Identified as another language than the target.
+    Language,
+}
+
+/// Number of guards.
+pub const GUARD_COUNT: usize = 6;
+
+impl Guard {
+    /// Every guard, in the order of their bits and of every listing.
+    pub const ALL: [Guard; GUARD_COUNT] =
+        [Guard::Empty, Guard::Copy, Guard::Length, Guard::Repetition, Guard::Script, Guard::Language];
+
+    /// The name used in output, labels and settings.
+    pub fn name(self) -> &'static str {
+        match self {
+            Guard::Empty => "empty",
+            Guard::Copy => "copy",
+            Guard::Length => "length",
+            Guard::Repetition => "repetition",
+            Guard::Script => "script",
+            Guard::Language => "language",
+        }
+    }
+
+    fn bit(self) -> u8 {
+        1 << self as u8
+    }
+}
+
+impl fmt::Display for Guard {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+/// One item's verdicts: which guards it tripped and which could not decide.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Hash)]
+pub struct Verdict {
+    /// Bit `g as u8` set when guard `g` flagged the item.
+    pub flagged: u8,
+    /// Bit `g as u8` set when guard `g` could not decide (and did not flag).
+    pub undecided: u8,
+}
+
+impl Verdict {
+    /// True when `g` flagged the item.
+    pub fn is_flagged(self, g: Guard) -> bool {
+        self.flagged & g.bit() != 0
+    }
+    /// True when `g` could not decide.
+    pub fn is_undecided(self, g: Guard) -> bool {
+        self.undecided & g.bit() != 0
+    }
+    /// True when any guard flagged the item.
+    pub fn any(self) -> bool {
+        self.flagged != 0
+    }
+    /// The guards that flagged the item, in [`Guard::ALL`] order.
+    pub fn flagged_guards(self) -> impl Iterator<Item = Guard> {
+        Guard::ALL.into_iter().filter(move |&g| self.is_flagged(g))
+    }
+    /// The guards that could not decide, in [`Guard::ALL`] order.
+    pub fn undecided_guards(self) -> impl Iterator<Item = Guard> {
+        Guard::ALL.into_iter().filter(move |&g| self.is_undecided(g))
+    }
+    fn set(&mut self, g: Guard, outcome: Outcome) {
+        match outcome {
+            Outcome::Pass => {}
+            Outcome::Flag => self.flagged |= g.bit(),
+            Outcome::Undecided => self.undecided |= g.bit(),
+        }
+    }
+}
+
+/// Counts of verdicts: additive over items, batches, replicas and order.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct GuardCounts {
+    /// Items checked.
+    pub checked: u64,
+    /// Per guard (in [`Guard::ALL`] order), items it flagged.
+    pub flagged: [u64; GUARD_COUNT],
+    /// Per guard, items it could not decide.
+    pub undecided: [u64; GUARD_COUNT],
+}
+
+impl GuardCounts {
+    /// Count one item's verdict.
+    pub fn add(&mut self, v: Verdict) {
+        self.checked += 1;
+        for g in Guard::ALL {
+            self.flagged[g as usize] += u64::from(v.is_flagged(g));
+            self.undecided[g as usize] += u64::from(v.is_undecided(g));
+        }
+    }
+    /// Items flagged by `g`.
+    pub fn flagged_by(&self, g: Guard) -> u64 {
+        self.flagged[g as usize]
+    }
+    /// Items `g` could not decide.
+    pub fn undecided_by(&self, g: Guard) -> u64 {
+        self.undecided[g as usize]
+    }
+    /// Share of the items `g` decided on that it flagged (`None` when it decided on none).
+    pub fn rate(&self, g: Guard) -> Option<f64> {
+        let decided = self.checked.saturating_sub(self.undecided_by(g));
+        (decided > 0).then(|| self.flagged_by(g) as f64 / decided as f64)
+    }
+}
+
+impl std::ops::AddAssign for GuardCounts {
+    fn add_assign(&mut self, o: Self) {
+        self.checked += o.checked;
+        for i in 0..GUARD_COUNT {
+            self.flagged[i] += o.flagged[i];
+            self.undecided[i] += o.undecided[i];
+        }
+    }
+}
+
+/// Default `copy_min_chrf`: chrF (0-100) of the hypothesis against the source at or above which
+/// it counts as copied. Our choice (no published value): a translation shares names, numbers and
+/// cognates with its source, but rarely 80 chrF points; measured on the demo corpus (tests).
+pub const DEFAULT_COPY_MIN_CHRF: f64 = 80.0;
+/// Default `copy_order`: character n-gram orders of the copy chrF (chrF's own default, Popović 2015/2016).
+pub const DEFAULT_COPY_ORDER: usize = DEFAULT_CHRF_CHAR_ORDER;
+/// Default expected hypothesis/source character ratio when none is configured or learned.
+pub const DEFAULT_LENGTH_RATIO: f64 = 1.0;
+/// Default lower bound of the length band, as a factor of the expected ratio (common practice:
+/// length-ratio filters of parallel-corpus cleaning use factors of 1.5 to 3).
+pub const DEFAULT_LENGTH_LOW: f64 = 0.5;
+/// Default upper bound of the length band, as a factor of the expected ratio (common practice, as above).
+pub const DEFAULT_LENGTH_HIGH: f64 = 2.0;
+/// Default minimum number of non-space source characters for the length guard to decide
+/// (common practice: ratios of very short texts are noise).
+pub const DEFAULT_LENGTH_MIN_CHARS: usize = 10;
+/// Default word n-gram order of the repetition guard. The count of the most repeated n-gram is a
+/// hallucination detector in Raunak et al. 2021 and Guerreiro et al. 2023; order 4 from memory.
+pub const DEFAULT_REPEAT_ORDER: usize = 4;
+/// Default minimum occurrences of the most frequent n-gram to flag (common practice).
+pub const DEFAULT_REPEAT_COUNT: usize = 3;
+/// Default minimum run of one repeated word to flag (common practice).
+pub const DEFAULT_REPEAT_RUN: usize = 4;
+/// Largest configurable repetition order.
+pub const MAX_REPEAT_ORDER: usize = 8;
+/// Default minimum share of letters in the target's scripts (common practice: majority).
+pub const DEFAULT_SCRIPT_MIN_SHARE: f64 = 0.5;
+/// Default minimum letters for the language guard to decide (common practice: trigram
+/// identifiers are unreliable on a few words).
+pub const DEFAULT_LANGUAGE_MIN_LETTERS: usize = 30;
+
+/// The guards' thresholds and the declared target language.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GuardConfig {
+    /// Declared target language (the script and language guards are undecided without it).
+    pub target: Option<&'static Language>,
+    /// chrF (0-100) against the source at or above which a hypothesis is a copy.
+    pub copy_min_chrf: f64,
+    /// Character orders of the copy chrF.
+    pub copy_order: usize,
+    /// Expected hypothesis/source character ratio.
+    pub length_ratio: f64,
+    /// Lower bound of the ratio / expected ratio band.
+    pub length_low: f64,
+    /// Upper bound of the band.
+    pub length_high: f64,
+    /// Minimum non-space source characters for the length guard to decide.
+    pub length_min_chars: usize,
+    /// Word n-gram order of the repetition guard.
+    pub repeat_order: usize,
+    /// Occurrences of the most frequent n-gram that flag.
+    pub repeat_count: usize,
+    /// Run of one word that flags.
+    pub repeat_run: usize,
+    /// Minimum share of letters in the target's scripts.
+    pub script_min_share: f64,
+    /// Minimum letters for the language guard to decide.
+    pub language_min_letters: usize,
+}
+
+impl Default for GuardConfig {
+    fn default() -> Self {
+        GuardConfig {
+            target: None,
+            copy_min_chrf: DEFAULT_COPY_MIN_CHRF,
+            copy_order: DEFAULT_COPY_ORDER,
+            length_ratio: DEFAULT_LENGTH_RATIO,
+            length_low: DEFAULT_LENGTH_LOW,
+            length_high: DEFAULT_LENGTH_HIGH,
+            length_min_chars: DEFAULT_LENGTH_MIN_CHARS,
+            repeat_order: DEFAULT_REPEAT_ORDER,
+            repeat_count: DEFAULT_REPEAT_COUNT,
+            repeat_run: DEFAULT_REPEAT_RUN,
+            script_min_share: DEFAULT_SCRIPT_MIN_SHARE,
+            language_min_letters: DEFAULT_LANGUAGE_MIN_LETTERS,
+        }
+    }
+}
+
+/// A guard setting that is unknown or out of range.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum GuardError {
+    /// No such setting.
+    #[error("unknown guard setting '{0}' (known: {keys})", keys = SETTING_KEYS.join(", "))]
+    UnknownSetting(String),
+    /// Not of the form KEY=VALUE.
+    #[error("guard setting '{0}' is not KEY=VALUE")]
+    Malformed(String),
+    /// A value that does not parse or is out of its range.
+    #[error("guard setting {key}={value}: {why}")]
+    BadValue {
+        /// The setting.
+        key: String,
+        /// Its value as given.
+        value: String,
+        /// What is wrong.
+        why: &'static str,
+    },
+    /// An unknown target language.
+    #[error("unknown target language '{0}' (known: {codes})", codes = language_codes())]
+    UnknownLanguage(String),
+}
+
+/// The settings [`GuardConfig::set`] knows.
+pub const SETTING_KEYS: [&str; 11] = [
+    "copy-chrf",
+    "copy-order",
+    "length-ratio",
+    "length-low",
+    "length-high",
+    "length-min-chars",
+    "repeat-order",
+    "repeat-count",
+    "repeat-run",
+    "script-share",
+    "language-min-letters",
+];
+
+/// `--help` text of the guard settings, with their defaults.
+pub fn settings_help() -> String {
+    format!(
+        "copy-chrf={DEFAULT_COPY_MIN_CHRF} copy-order={DEFAULT_COPY_ORDER} length-ratio={DEFAULT_LENGTH_RATIO} \
+         length-low={DEFAULT_LENGTH_LOW} length-high={DEFAULT_LENGTH_HIGH} length-min-chars={DEFAULT_LENGTH_MIN_CHARS} \
+         repeat-order={DEFAULT_REPEAT_ORDER} repeat-count={DEFAULT_REPEAT_COUNT} repeat-run={DEFAULT_REPEAT_RUN} \
+         script-share={DEFAULT_SCRIPT_MIN_SHARE} language-min-letters={DEFAULT_LANGUAGE_MIN_LETTERS}"
+    )
+}
+
+impl GuardConfig {
+    /// Declare the target language by ISO 639-1 or 639-3 code.
+    pub fn with_target(mut self, code: &str) -> Result<Self, GuardError> {
+        self.target = Some(language(code).ok_or_else(|| GuardError::UnknownLanguage(code.to_owned()))?);
+        Ok(self)
+    }
+
+    /// Apply one `KEY=VALUE` setting (keys in [`SETTING_KEYS`]).
+    pub fn set(&mut self, setting: &str) -> Result<(), GuardError> {
+        let (key, value) = setting.split_once('=').ok_or_else(|| GuardError::Malformed(setting.to_owned()))?;
+        let (key, value) = (key.trim(), value.trim());
+        let bad = |why| GuardError::BadValue { key: key.to_owned(), value: value.to_owned(), why };
+        let float = |lo: f64, hi: f64, why| value.parse::<f64>().ok().filter(|v| (lo..=hi).contains(v)).ok_or_else(|| bad(why));
+        let int = |lo: usize, hi: usize, why| value.parse::<usize>().ok().filter(|v| (lo..=hi).contains(v)).ok_or_else(|| bad(why));
+        match key {
+            "copy-chrf" => self.copy_min_chrf = float(0.0, 100.0, "a chrF between 0 and 100")?,
+            "copy-order" => self.copy_order = int(1, MAX_CHRF_CHAR_ORDER, "an order between 1 and 10")?,
+            "length-ratio" => self.length_ratio = float(0.01, 100.0, "a ratio between 0.01 and 100")?,
+            "length-low" => self.length_low = float(0.0, 1.0, "a factor between 0 and 1")?,
+            "length-high" => self.length_high = float(1.0, 1000.0, "a factor between 1 and 1000")?,
+            "length-min-chars" => self.length_min_chars = int(1, 1_000_000, "a count from 1")?,
+            "repeat-order" => self.repeat_order = int(1, MAX_REPEAT_ORDER, "an order between 1 and 8")?,
+            "repeat-count" => self.repeat_count = int(2, 1_000_000, "a count from 2")?,
+            "repeat-run" => self.repeat_run = int(2, 1_000_000, "a count from 2")?,
+            "script-share" => self.script_min_share = float(0.0, 1.0, "a share between 0 and 1")?,
+            "language-min-letters" => self.language_min_letters = int(1, 1_000_000, "a count from 1")?,
+            _ => return Err(GuardError::UnknownSetting(key.to_owned())),
+        }
+        Ok(())
+    }
+}
+
+/// Additive character counts of sources and their references, from which the expected length
+/// ratio of a language pair is learned ([`LengthTally::ratio`]).
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct LengthTally {
+    /// Non-space characters of the sources.
+    pub source_chars: u64,
+    /// Non-space characters of the references (each reference counted against its source once).
+    pub reference_chars: u64,
+}
+
+impl LengthTally {
+    /// Count a source and one of its references.
+    pub fn add(&mut self, source: &str, reference: &str) {
+        self.source_chars += char_len(source);
+        self.reference_chars += char_len(reference);
+    }
+    /// The learned ratio, when there is enough text (at least the length guard's minimum).
+    pub fn ratio(&self, min_chars: usize) -> Option<f64> {
+        (self.source_chars >= min_chars.max(1) as u64 && self.reference_chars > 0)
+            .then(|| self.reference_chars as f64 / self.source_chars as f64)
+    }
+}
+
+/// Non-space characters of `text`.
+pub fn char_len(text: &str) -> u64 {
+    text.chars().filter(|&c| !is_space(c)).count() as u64
+}
+
+/// Reusable buffers of [`check`].
+#[derive(Debug, Default, Clone)]
+pub struct GuardScratch {
+    hyp_chars: Vec<u32>,
+    src_chars: Vec<u32>,
+    hyp_pos: Vec<u32>,
+    src_pos: Vec<u32>,
+    tokens: TokenBuf,
+    ids: Vec<u64>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Outcome {
+    Pass,
+    Flag,
+    Undecided,
+}
+
+fn flag_if(b: bool) -> Outcome {
+    if b {
+        Outcome::Flag
+    } else {
+        Outcome::Pass
+    }
+}
+
+/// Run every guard on one (source, hypothesis) pair.
+pub fn check(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Verdict {
+    let mut v = Verdict::default();
+    v.set(Guard::Empty, flag_if(!hyp.chars().any(char::is_alphanumeric)));
+    v.set(Guard::Copy, copy(cfg, source, hyp, s));
+    v.set(Guard::Length, length(cfg, source, hyp));
+    v.set(Guard::Repetition, repetition(cfg, source, hyp, s));
+    let (script, letters) = script_share(cfg, hyp);
+    v.set(Guard::Script, script);
+    v.set(Guard::Language, language_id(cfg, hyp, letters, script == Outcome::Flag));
+    v
+}
+
+/// Lowercased letters and digits of `text` as code points (what "equal after normalisation" compares).
+fn alnum_lower(text: &str) -> impl Iterator<Item = char> + '_ {
+    text.chars().filter(|c| c.is_alphanumeric()).flat_map(char::to_lowercase)
+}
+
+fn copy(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Outcome {
+    if !source.chars().any(char::is_alphanumeric) {
+        return Outcome::Undecided;
+    }
+    if alnum_lower(source).eq(alnum_lower(hyp)) {
+        return Outcome::Flag;
+    }
+    let n = cfg.copy_order.clamp(1, MAX_CHRF_CHAR_ORDER);
+    // Characters shifted by one so that 0 is the padding (smaller than any character).
+    let fill = |text: &str, out: &mut Vec<u32>| {
+        out.clear();
+        out.extend(text.chars().filter(|&c| !is_space(c)).flat_map(char::to_lowercase).map(|c| c as u32 + 1));
+        let len = out.len();
+        out.extend(std::iter::repeat_n(0, n));
+        len
+    };
+    let hl = fill(hyp, &mut s.hyp_chars);
+    let sl = fill(source, &mut s.src_chars);
+    if hl == 0 {
+        return Outcome::Pass;
+    }
+    sort_positions(&s.hyp_chars, hl, n, &mut s.hyp_pos);
+    sort_positions(&s.src_chars, sl, n, &mut s.src_pos);
+    let mut c = OrderCounts::default();
+    for order in 1..=n {
+        c.matches[order - 1] = clipped_matches(order, &s.hyp_chars, &s.hyp_pos, &s.src_chars, &s.src_pos);
+        c.hyp[order - 1] = ngram_count(hl, order);
+        c.reference[order - 1] = ngram_count(sl, order);
+    }
+    let chrf = ChrfStats { char: c, word: OrderCounts::default() }.score(n, 0, DEFAULT_CHRF_BETA).score;
+    flag_if(chrf >= cfg.copy_min_chrf)
+}
+
+fn length(cfg: &GuardConfig, source: &str, hyp: &str) -> Outcome {
+    let src = char_len(source);
+    if src < cfg.length_min_chars as u64 {
+        return Outcome::Undecided;
+    }
+    let rel = char_len(hyp) as f64 / src as f64 / cfg.length_ratio;
+    flag_if(rel < cfg.length_low || rel > cfg.length_high)
+}
+
+/// (count of the most frequent word n-gram of order `n`, longest run of one word) of `text`.
+fn repeats(text: &str, n: usize, s: &mut GuardScratch) -> (usize, usize) {
+    Tokenizer::Cjk.tokenize_into(text, true, &mut s.tokens);
+    s.ids.clear();
+    for t in s.tokens.tokens() {
+        if t.chars().any(char::is_alphanumeric) {
+            let mut h = rustc_hash::FxHasher::default();
+            h.write(t.as_bytes());
+            // 0 is the padding; a 64-bit hash collision (about 2^-64 per pair) could only
+            // merge two words.
+            s.ids.push(h.finish().max(1));
+        }
+    }
+    let len = s.ids.len();
+    let mut run = 0usize;
+    let mut longest = 0usize;
+    for i in 0..len {
+        run = if i > 0 && s.ids[i] == s.ids[i - 1] { run + 1 } else { 1 };
+        longest = longest.max(run);
+    }
+    if len < n {
+        return (0, longest);
+    }
+    s.ids.extend(std::iter::repeat_n(0, n));
+    sort_positions(&s.ids, len, n, &mut s.hyp_pos);
+    let (mut top, mut count, mut prev) = (0usize, 0usize, None::<usize>);
+    for &p in &s.hyp_pos {
+        let p = p as usize;
+        if s.ids[p + n - 1] == 0 {
+            continue;
+        }
+        let gram = &s.ids[p..p + n];
+        count = match prev {
+            Some(q) if s.ids[q..q + n] == *gram => count + 1,
+            _ => 1,
+        };
+        prev = Some(p);
+        top = top.max(count);
+    }
+    (top, longest)
+}
+
+fn repetition(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Outcome {
+    let n = cfg.repeat_order.clamp(1, MAX_REPEAT_ORDER);
+    let (top, run) = repeats(hyp, n, s);
+    let by_gram = top >= cfg.repeat_count;
+    let by_run = run >= cfg.repeat_run;
+    if !by_gram && !by_run {
+        return Outcome::Pass;
+    }
+    // Only repetition the source does not have itself.
+    let (src_top, src_run) = repeats(source, n, s);
+    flag_if((by_gram && top > src_top) || (by_run && run > src_run))
+}
+
+/// The script verdict and the number of letters of `hyp`.
+fn script_share(cfg: &GuardConfig, hyp: &str) -> (Outcome, usize) {
+    let (mut letters, mut expected) = (0usize, 0usize);
+    let scripts = cfg.target.map(|t| t.scripts).unwrap_or(&[]);
+    for c in hyp.chars() {
+        if let Some(sc) = script_of(c) {
+            letters += 1;
+            expected += usize::from(scripts.contains(&sc));
+        }
+    }
+    if cfg.target.is_none() || letters == 0 {
+        return (Outcome::Undecided, letters);
+    }
+    (flag_if((expected as f64) < cfg.script_min_share * letters as f64), letters)
+}
+
+fn language_id(cfg: &GuardConfig, hyp: &str, letters: usize, wrong_script: bool) -> Outcome {
+    let Some(want) = cfg.target.and_then(|t| t.ident) else { return Outcome::Undecided };
+    if letters < cfg.language_min_letters {
+        return Outcome::Undecided;
+    }
+    if wrong_script {
+        return Outcome::Flag;
+    }
+    match whatlang::detect(hyp) {
+        Some(info) if info.is_reliable() => flag_if(info.lang() != want),
+        _ => Outcome::Undecided,
+    }
+}
+
+#[cfg(test)]
+mod tests;
