@@ -5,6 +5,7 @@
 
 use serde_json::{json, Map, Value};
 
+use crate::guard::{Guard, GuardCounts, Verdict};
 use crate::metric::compare::{self, CompareSettings, Comparison};
 use crate::metric::resample::{Replicates, METHOD};
 use crate::metric::scores::Report;
@@ -262,4 +263,42 @@ mod tests {
         assert_eq!(j["bleu"]["candidates"], json!([10, 8, 6, 4]));
         assert_eq!(j["bleu"]["tokens"], json!({"hypothesis": 10, "reference": 11, "ratio": 10.0 / 11.0}));
     }
+}
+
+/// Guard counts as JSON (`score --json`, `status --json`, key `guards`): items checked, the
+/// target language, per guard the items flagged, undecided, and the rate over decided items.
+pub fn guards_json(counts: &GuardCounts, target: Option<&str>) -> Value {
+    let mut guards = Map::new();
+    for g in Guard::ALL {
+        guards.insert(
+            g.name().into(),
+            json!({"flagged": counts.flagged_by(g), "undecided": counts.undecided_by(g), "rate": counts.rate(g)}),
+        );
+    }
+    json!({"checked": counts.checked, "target_language": target, "by_guard": guards})
+}
+
+/// Human lines of guard counts, each starting with `indent`.
+pub fn guard_lines(counts: &GuardCounts, target: Option<&str>, indent: &str) -> Vec<String> {
+    let mut out = vec![format!(
+        "{indent}guards  {} items checked against their sources, target language {}",
+        counts.checked,
+        target.unwrap_or("not declared (script and language undecided)")
+    )];
+    for g in Guard::ALL {
+        let rate = counts.rate(g).map_or_else(|| "     -".to_owned(), |r| format!("{:>5.1}%", 100.0 * r));
+        let undecided = match counts.undecided_by(g) {
+            0 => String::new(),
+            u => format!("  ({u} undecided)"),
+        };
+        out.push(format!("{indent}  {:<11}{:>8} flagged {rate}{undecided}", g.name(), counts.flagged_by(g)));
+    }
+    out
+}
+
+/// One item's verdict as JSON (per-segment output): the guards that flagged it and those that
+/// could not decide.
+pub fn verdict_json(v: Verdict) -> Value {
+    let names = |it: &mut dyn Iterator<Item = Guard>| it.map(Guard::name).collect::<Vec<_>>();
+    json!({"flagged": names(&mut v.flagged_guards()), "undecided": names(&mut v.undecided_guards())})
 }

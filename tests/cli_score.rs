@@ -718,3 +718,88 @@ fn one_shot_and_compiled_paths_print_the_same_bytes() {
         }
     }
 }
+
+// ---------------------------------------------------------------------------------------------
+// score --source: the reference-free guards
+// ---------------------------------------------------------------------------------------------
+
+// Invented ferry notices: English sources, German references, and hypotheses with one
+// pathology each (a clean one, empty, the source copied, a loop, Russian where German is due).
+const G_SRC: &[&str] = &[
+    "The ferry to North Harbour leaves at 10:15 from pier three.",
+    "Boarding at gate 4B closes ten minutes before departure.",
+    "The cafe on the upper deck is closed today.",
+    "Vehicles taller than two metres use lane five.",
+    "Please keep your ticket until you leave the ship.",
+];
+const G_REF: &[&str] = &[
+    "Die Fähre nach Nordhafen legt um 10:15 Uhr am Anleger drei ab.",
+    "Der Einstieg an Gate 4B endet zehn Minuten vor der Abfahrt.",
+    "Das Café auf dem Oberdeck ist heute geschlossen.",
+    "Fahrzeuge über zwei Meter nutzen Spur fünf.",
+    "Bitte behalten Sie Ihr Ticket, bis Sie das Schiff verlassen.",
+];
+const G_HYP: &[&str] = &[
+    "Die Fähre nach Nordhafen fährt um 10:15 Uhr vom Anleger drei.",
+    " . ",
+    "The cafe on the upper deck is closed today.",
+    "Fahrzeuge Fahrzeuge Fahrzeuge Fahrzeuge Fahrzeuge über zwei Meter.",
+    "Пожалуйста, сохраните билет до выхода с судна.",
+];
+
+#[test]
+fn score_with_source_reports_guards_and_per_segment_reasons() {
+    let dir = TempDir::new("guards");
+    let (src, r, hyp) = (dir.file("src.txt", lines(G_SRC)), dir.file("ref.txt", lines(G_REF)), dir.file("hyp.txt", lines(G_HYP)));
+    let seg = dir.path("seg.jsonl");
+    let v = json_ok(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src, "--target-language", "de", "--per-segment", &seg, "--json"], None);
+    let g = &v["guards"];
+    assert_eq!(g["checked"], 5);
+    assert_eq!(g["target_language"], "de");
+    assert_eq!(g["length_ratio_learned"], true);
+    let flagged = |name: &str| g["by_guard"][name]["flagged"].as_u64().expect("count");
+    assert_eq!(flagged("empty"), 1);
+    assert_eq!(flagged("copy"), 1);
+    assert_eq!(flagged("repetition"), 1);
+    assert_eq!(flagged("script"), 1);
+    // The rate is over the items a guard decided on: the script guard decides on the four
+    // items with letters (the empty one has none).
+    assert_eq!(g["by_guard"]["script"]["undecided"], 1);
+    assert!(close(f64_of(&g["by_guard"]["script"]["rate"]), 0.25));
+    // The learned ratio is the references' non-space characters over the sources'.
+    let chars = |ls: &[&str]| ls.iter().map(|l| l.chars().filter(|c| !c.is_whitespace()).count()).sum::<usize>() as f64;
+    assert!(close(f64_of(&g["length_ratio"]), chars(G_REF) / chars(G_SRC)));
+
+    // Per segment: why each item was flagged.
+    let per: Vec<Value> = std::fs::read_to_string(&seg).expect("per-segment file").lines().map(|l| serde_json::from_str(l).expect("JSON line")).collect();
+    let reasons: Vec<Vec<&str>> =
+        per.iter().map(|p| p["guards"]["flagged"].as_array().expect("list").iter().map(|x| x.as_str().unwrap_or("")).collect()).collect();
+    assert_eq!(reasons[0], Vec::<&str>::new());
+    assert!(reasons[1].contains(&"empty"));
+    assert!(reasons[2].contains(&"copy"));
+    assert!(reasons[3].contains(&"repetition"));
+    assert!(reasons[4].contains(&"script"));
+
+    // The human view has the block; a configured ratio is reported as not learned.
+    let out = run(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src, "--target-language", "deu"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let human = text(&out.stdout);
+    assert!(human.contains("guards  5 items checked against their sources, target language de"), "{human}");
+    assert!(human.lines().any(|l| l.trim_start().starts_with("copy") && l.contains(" 1 flagged")), "{human}");
+    let v = json_ok(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src, "--guard-setting", "length-ratio=1.5", "--json"], None);
+    assert_eq!(v["guards"]["length_ratio"], 1.5);
+    assert_eq!(v["guards"]["length_ratio_learned"], false);
+    assert_eq!(v["guards"]["target_language"], Value::Null);
+    // Without --source there is no `guards` key.
+    assert!(json_ok(&["score", "--ref", &r, "--hyp", &hyp, "--json"], None).get("guards").is_none());
+}
+
+#[test]
+fn score_guard_errors() {
+    let dir = TempDir::new("guard-errors");
+    let (src, r, hyp) = (dir.file("src.txt", lines(&G_SRC[..4])), dir.file("ref.txt", lines(G_REF)), dir.file("hyp.txt", lines(G_HYP)));
+    assert_fails(&run(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src]), &["src.txt"]);
+    let src = dir.file("src5.txt", lines(G_SRC));
+    assert_fails(&run(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src, "--target-language", "tlh"]), &["tlh"]);
+    assert_fails(&run(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src, "--guard-setting", "repeat-count=1"]), &["repeat-count"]);
+}

@@ -9,12 +9,16 @@ use serde_json::{json, Value};
 
 use super::input::{display_name, parse_refset, read_all, read_bytes, resolve_format, Progress, RefFormat, PROGRESS_MIN_SEGMENTS};
 use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
+use crate::guard::{self, GuardConfig, GuardCounts, GuardScratch, LengthTally, Verdict};
 use crate::metric::resample::{self, Replicates};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::Compiled;
 use crate::refs::oneshot;
 use crate::refs::{check_same_length, split_lines, InputError, RefSet};
-use crate::report::{config_json, interval_lines, intervals_json, refset_json, segment_json, stats_json, stats_lines, IntervalSettings, RefSetSummary, PROXY_NOTE};
+use crate::report::{
+    config_json, guard_lines, guards_json, interval_lines, intervals_json, refset_json, segment_json, stats_json, stats_lines, verdict_json, IntervalSettings,
+    RefSetSummary, PROXY_NOTE,
+};
 
 pub(super) const LONG_ABOUT: &str = "\
 Score a hypothesis file against reference files, offline.
@@ -62,6 +66,73 @@ pub struct ScoreArgs {
     pub threads: Option<usize>,
     #[command(flatten)]
     pub interval: IntervalArgs,
+    #[command(flatten)]
+    pub guards: GuardArgs,
+}
+
+/// Options of the reference-free guards (`--source`).
+#[derive(Debug, Args)]
+pub struct GuardArgs {
+    /// Source file, line-aligned with the hypotheses: also check every hypothesis against its
+    /// source with the reference-free guards (empty, copy, length, repetition, script, language)
+    /// and report how many each flagged (JSON key `guards`; with --per-segment, each segment's
+    /// verdict).
+    #[arg(long, value_name = "FILE")]
+    pub source: Option<String>,
+    /// Target language of the hypotheses (ISO 639-1 or 639-3 code), for the script and language
+    /// guards; without it they are undecided.
+    #[arg(long = "target-language", value_name = "CODE", requires = "source")]
+    pub target_language: Option<String>,
+    /// A guard threshold as KEY=VALUE (repeatable). Without length-ratio, the expected
+    /// hypothesis/source length ratio is learned from the references against the sources.
+    #[arg(long = "guard-setting", value_name = "KEY=VALUE", requires = "source", help = guard_setting_help())]
+    pub settings: Vec<String>,
+}
+
+fn guard_setting_help() -> String {
+    format!(
+        "A guard threshold as KEY=VALUE (repeatable); defaults: {}. Without length-ratio, the expected hypothesis/source length ratio is learned from the references against the sources",
+        guard::settings_help()
+    )
+}
+
+impl GuardArgs {
+    /// The guard configuration: target language and settings; `None` without --source.
+    fn config(&self) -> Result<Option<GuardConfig>, CliError> {
+        if self.source.is_none() {
+            return Ok(None);
+        }
+        let usage = |e: guard::GuardError| CliError::Usage(e.to_string());
+        let mut c = GuardConfig::default();
+        if let Some(code) = &self.target_language {
+            c = c.with_target(code).map_err(usage)?;
+        }
+        for s in &self.settings {
+            c.set(s).map_err(usage)?;
+        }
+        Ok(Some(c))
+    }
+
+    /// True when the expected length ratio was set (else it is learned).
+    fn ratio_given(&self) -> bool {
+        self.settings.iter().any(|s| s.split_once('=').is_some_and(|(k, _)| k.trim() == "length-ratio"))
+    }
+}
+
+/// Guard verdicts of the hypotheses against their sources, one per line.
+struct Guarded {
+    config: GuardConfig,
+    verdicts: Vec<Verdict>,
+}
+
+impl Guarded {
+    fn counts(&self) -> GuardCounts {
+        let mut n = GuardCounts::default();
+        for &v in &self.verdicts {
+            n.add(v);
+        }
+        n
+    }
 }
 
 /// Options of the bootstrap interval (`--interval`).
@@ -152,12 +223,16 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
     }
     let threads = a.threads.unwrap_or_else(default_threads);
     let interval = a.interval.settings()?;
-    // An interval needs each segment's statistics: the Compiled path.
-    let one_shot = a.per_segment.is_none() && interval.is_none() && resolve_format(&a.refs, a.ref_format) == crate::refs::RefFormat::Plain;
+    let guard_config = a.guards.config()?;
+    // An interval needs each segment's statistics, the guards each line: the Compiled path.
+    let one_shot = a.per_segment.is_none()
+        && interval.is_none()
+        && guard_config.is_none()
+        && resolve_format(&a.refs, a.ref_format) == crate::refs::RefFormat::Plain;
     let inputs = one_shot.then(|| (a.refs.iter().map(|p| Input::open(p)).collect::<Vec<_>>(), Input::open(&a.hyp)));
     let fast = inputs.as_ref().and_then(|(refs, hyp)| score_files(&config, refs, hyp, &a.hyp, threads));
-    let (corpus, refs, reps) = match fast {
-        Some(scored) => (scored.stats, RefSetSummary { digest: scored.digest, segments: scored.segments, references: scored.references }, None),
+    let (corpus, refs, reps, guarded) = match fast {
+        Some(scored) => (scored.stats, RefSetSummary { digest: scored.digest, segments: scored.segments, references: scored.references }, None, None),
         None => {
             let (ref_inputs, hyp_input) = inputs.unzip();
             let ref_bytes = match ref_inputs {
@@ -169,7 +244,7 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
                 // The references are parsed before the hypothesis is read: their errors come first.
                 Err(e) => return Err(parse_refset(&a.refs, a.ref_format, &ref_bytes, None).err().unwrap_or(e).into()),
             };
-            score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads, interval)?
+            score_parsed(&a, config, &ref_bytes, &hyp_bytes, threads, interval, guard_config)?
         }
     };
     let reps = interval.zip(reps);
@@ -179,12 +254,20 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         if let Some((set, reps)) = &reps {
             intervals_json(&mut m, &mut c, reps, set);
         }
+        if let Some(g) = &guarded {
+            let mut v = guards_json(&g.counts(), g.config.target.map(|t| t.code));
+            if let Value::Object(o) = &mut v {
+                o.insert("length_ratio".into(), json!(g.config.length_ratio));
+                o.insert("length_ratio_learned".into(), json!(!a.guards.ratio_given()));
+            }
+            m.insert("guards".into(), v);
+        }
         m.insert("refset".into(), refset_json(None, &refs));
         m.insert("config".into(), c);
         m.insert("note".into(), json!(PROXY_NOTE));
         serde_json::to_string_pretty(&Value::Object(m)).unwrap_or_default() + "\n"
     } else {
-        human(&corpus, &config, &refs, reps.as_ref())
+        human(&corpus, &config, &refs, reps.as_ref(), guarded.as_ref())
     };
     let mut stdout = std::io::stdout().lock();
     stdout
@@ -271,18 +354,23 @@ fn score_parsed(
     hyp_bytes: &[u8],
     threads: usize,
     interval: Option<IntervalSettings>,
-) -> Result<(CorpusStats, RefSetSummary, Option<Replicates>), CliError> {
+    guard_config: Option<GuardConfig>,
+) -> Result<(CorpusStats, RefSetSummary, Option<Replicates>, Option<Guarded>), CliError> {
     let refs = Arc::new(parse_refset(&a.refs, a.ref_format, ref_bytes, None)?);
     let hyp_name = display_name(&a.hyp);
     let hyps = split_lines(hyp_name, hyp_bytes)?;
     check_same_length(hyp_name, hyps.len(), display_name(&a.refs[0]), refs.len())?;
+    let guarded = match (guard_config, &a.guards.source) {
+        (Some(c), Some(path)) => Some(run_guards(c, !a.guards.ratio_given(), path, &refs, (hyp_name, &hyps), threads)?),
+        _ => None,
+    };
     let show = stderr_is_terminal() && hyps.len() >= PROGRESS_MIN_SEGMENTS;
     let (corpus, reps) = match (&a.per_segment, interval) {
         (None, None) => (score_corpus_lines(Arc::clone(&refs), config, &hyps, threads, show), None),
         (path, interval) => {
             let scored = score_lines(Arc::clone(&refs), config, &hyps, threads, show);
             if let Some(path) = path {
-                write_per_segment(path, &scored)?;
+                write_per_segment(path, &scored, guarded.as_ref())?;
             }
             let reps = interval.map(|i| {
                 let keys: Vec<u64> = scored.refs.segments().take(scored.segments.len()).map(|s| resample::segment_key(s.id().as_bytes())).collect();
@@ -291,21 +379,68 @@ fn score_parsed(
             (scored.corpus(), reps)
         }
     };
-    Ok((corpus, RefSetSummary::from(refs.as_ref()), reps))
+    Ok((corpus, RefSetSummary::from(refs.as_ref()), reps, guarded))
 }
 
-fn write_per_segment(path: &str, scored: &Scored) -> Result<(), CliError> {
+/// Read the source file and check every hypothesis against its source line (in `threads`
+/// chunks; verdicts never depend on the split). With `learn`, the expected length ratio is the
+/// references' non-space characters over their sources'.
+fn run_guards(mut config: GuardConfig, learn: bool, path: &str, refs: &RefSet, (hyp_name, hyps): (&str, &[&str]), threads: usize) -> Result<Guarded, CliError> {
+    let bytes = read_bytes(path)?;
+    let name = display_name(path);
+    let sources = split_lines(name, &bytes)?;
+    check_same_length(name, sources.len(), hyp_name, hyps.len())?;
+    if learn {
+        let mut tally = LengthTally::default();
+        for (seg, src) in refs.segments().zip(&sources) {
+            for r in seg.refs() {
+                tally.add(src, r);
+            }
+        }
+        if let Some(r) = tally.ratio(config.length_min_chars) {
+            config.length_ratio = r;
+        }
+    }
+    let chunk = hyps.len().div_ceil(threads.max(1)).max(1);
+    let verdicts = std::thread::scope(|scope| {
+        let config = &config;
+        let handles: Vec<_> = sources
+            .chunks(chunk)
+            .zip(hyps.chunks(chunk))
+            .map(|(src, hyp)| {
+                scope.spawn(move || {
+                    let mut scratch = GuardScratch::default();
+                    src.iter().zip(hyp).map(|(s, h)| guard::check(config, s, h, &mut scratch)).collect::<Vec<_>>()
+                })
+            })
+            .collect();
+        handles.into_iter().flat_map(|h| h.join().unwrap_or_default()).collect::<Vec<_>>()
+    });
+    Ok(Guarded { config, verdicts })
+}
+
+fn write_per_segment(path: &str, scored: &Scored, guarded: Option<&Guarded>) -> Result<(), CliError> {
     let err = |e| CliError::Output { what: path.to_owned(), source: e };
     let file = std::fs::File::create(path).map_err(err)?;
     let mut w = std::io::BufWriter::new(file);
-    for (seg, stats) in scored.refs.segments().zip(&scored.segments) {
-        let line = segment_json(seg.id(), stats, &scored.config).to_string();
+    for (i, (seg, stats)) in scored.refs.segments().zip(&scored.segments).enumerate() {
+        let mut line = segment_json(seg.id(), stats, &scored.config);
+        if let (Some(v), Value::Object(m)) = (guarded.and_then(|g| g.verdicts.get(i)), &mut line) {
+            m.insert("guards".into(), verdict_json(*v));
+        }
+        let line = line.to_string();
         writeln!(w, "{line}").map_err(err)?;
     }
     w.flush().map_err(err)
 }
 
-fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSetSummary, reps: Option<&(IntervalSettings, Replicates)>) -> String {
+fn human(
+    corpus: &CorpusStats,
+    config: &ScoreConfig,
+    refs: &RefSetSummary,
+    reps: Option<&(IntervalSettings, Replicates)>,
+    guarded: Option<&Guarded>,
+) -> String {
     let per = refs.references as f64 / refs.segments.max(1) as f64;
     let digest = crate::refs::hex(&refs.digest);
     let mut lines = vec![format!(
@@ -317,6 +452,10 @@ fn human(corpus: &CorpusStats, config: &ScoreConfig, refs: &RefSetSummary, reps:
     lines.extend(stats_lines(corpus, config, "  "));
     if let Some((set, reps)) = reps {
         lines.extend(interval_lines(reps, set, "  "));
+    }
+    if let Some(g) = guarded {
+        lines.extend(guard_lines(&g.counts(), g.config.target.map(|t| t.code), "  "));
+        lines.push(format!("    (expected length ratio {:.3})", g.config.length_ratio));
     }
     lines.push(format!("  config  {}", config.describe()));
     lines.push(PROXY_NOTE.to_owned());
