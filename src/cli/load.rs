@@ -143,7 +143,7 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         log(format!("uploading the reference set as '{name}'"));
         upload(&ch, &name, &corpus).await?;
         SessionsClient::new(ch.clone())
-            .create(pb::CreateSessionRequest { name: name.clone(), refset: name.clone(), config: Some(config_to_pb(&config)), labels: Default::default(), window: 0, if_not_exists: false, resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: None }) })
+            .create(pb::CreateSessionRequest { name: name.clone(), refset: name.clone(), config: Some(config_to_pb(&config)), labels: Default::default(), window: 0, if_not_exists: false, resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: None }), ..Default::default() })
             .await
             .map_err(|s| ClientError::call("create session", s))?;
         log(format!("phase 1: {} streams, batches of {}, as fast as acknowledged, {} s", a.streams, a.batch, a.seconds));

@@ -74,6 +74,10 @@ pub struct SendArgs {
     /// 1000).
     #[arg(long, default_value_t = crate::metric::resample::DAEMON_RESAMPLES, value_name = "N", requires = "create")]
     pub resamples: usize,
+    /// With --create: the target language of the hypotheses (ISO 639-1 or 639-3 code), for the
+    /// reference-free script and language guards (without it they are undecided).
+    #[arg(long = "target-language", value_name = "CODE", requires = "create")]
+    pub target_language: Option<String>,
     /// With --create: seed of the replicate weights (sessions whose intervals are compared or
     /// summed across replicas use the same).
     #[arg(long, default_value_t = crate::metric::resample::DEFAULT_RESAMPLE_SEED, value_name = "S", requires = "create")]
@@ -178,6 +182,7 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
                 window: 0,
                 if_not_exists: true,
                 resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: Some(a.seed) }),
+                target_language: a.target_language.clone().unwrap_or_default(),
             };
             with_retry("create session", || {
                 let mut c = SessionsClient::new(ch.clone());

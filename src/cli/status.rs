@@ -8,8 +8,8 @@ use super::CliError;
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
-use crate::report::{config_json, stats_json, stats_lines, IntervalSettings, PROXY_NOTE};
-use crate::pb::convert::{config_from_pb, interval_of, stats_from_pb};
+use crate::report::{config_json, guard_lines, guards_json, stats_json, stats_lines, IntervalSettings, PROXY_NOTE};
+use crate::pb::convert::{config_from_pb, guard_tally_from_pb, interval_of, stats_from_pb};
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
 use crate::metric::ScoreConfig;
 
@@ -61,8 +61,11 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
         let settings = IntervalSettings { resamples: n as usize, seed: resampling.seed.unwrap_or_default(), level };
         c.insert("interval".into(), settings.json());
     }
+    let guards = guard_tally_from_pb(&r.guards.clone().unwrap_or_default());
+    let target = (!r.target_language.is_empty()).then_some(r.target_language.as_str());
     let j = json!({
         "session": r.session,
+        "guards": guards_json(&guards, target),
         "labels": info.labels,
         "refset": { "name": info.refset, "digest": r.refset_digest },
         "config": config_j,
@@ -91,6 +94,12 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     for l in stats_lines(&recent, &config, "    ").into_iter().chain(recent_ranges) {
         text += &l;
         text.push('\n');
+    }
+    if guards.checked > 0 || target.is_some() {
+        for l in guard_lines(&guards, target, "  ") {
+            text += &l;
+            text.push('\n');
+        }
     }
     for al in &r.alerts {
         let measured = match (al.value, al.low, al.high) {

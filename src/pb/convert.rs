@@ -251,3 +251,28 @@ mod tests {
         assert_eq!(Some(t.bleu.unwrap().score), crate::metric::scores::corpus_score(&st, &c, Metric::Bleu));
     }
 }
+
+/// Guard counts as the API's tally.
+pub fn guard_tally_to_pb(c: &crate::guard::GuardCounts) -> pb::GuardTally {
+    let per = |f: fn(&crate::guard::GuardCounts, crate::guard::Guard) -> u64| crate::guard::Guard::ALL.iter().map(|&g| (g.name().to_owned(), f(c, g))).collect();
+    pb::GuardTally { checked: c.checked, flagged: per(crate::guard::GuardCounts::flagged_by), undecided: per(crate::guard::GuardCounts::undecided_by) }
+}
+
+/// The API's tally as guard counts (unknown guard names are ignored).
+pub fn guard_tally_from_pb(t: &pb::GuardTally) -> crate::guard::GuardCounts {
+    let mut c = crate::guard::GuardCounts { checked: t.checked, ..Default::default() };
+    for g in crate::guard::Guard::ALL {
+        c.flagged[g as usize] = t.flagged.get(g.name()).copied().unwrap_or(0);
+        c.undecided[g as usize] = t.undecided.get(g.name()).copied().unwrap_or(0);
+    }
+    c
+}
+
+/// One item's verdict in the API.
+pub fn guard_verdict_to_pb(index: u32, v: crate::guard::Verdict) -> pb::GuardVerdict {
+    pb::GuardVerdict {
+        index,
+        flagged: v.flagged_guards().map(|g| g.name().to_owned()).collect(),
+        undecided: v.undecided_guards().map(|g| g.name().to_owned()).collect(),
+    }
+}

@@ -22,7 +22,10 @@ use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
 use crate::metric::CorpusStats;
 use crate::pb;
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
-use crate::pb::convert::{config_from_pb, config_to_pb, interval_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals};
+use crate::guard::{GuardCounts, GuardScratch};
+use crate::pb::convert::{
+    config_from_pb, config_to_pb, guard_tally_to_pb, guard_verdict_to_pb, interval_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals,
+};
 use crate::refs::compiled::Scratch;
 use crate::report::PROXY_NOTE;
 use crate::session::{ItemKey, Outcome, Session};
@@ -41,6 +44,8 @@ pub const INLINE_BATCH_ITEMS: usize = 256;
 thread_local! {
     /// Scoring buffers of each blocking-pool thread, reused across batches.
     static SCRATCH: RefCell<Scratch> = RefCell::new(Scratch::default());
+    /// Buffers of the reference-free guards, likewise.
+    static GUARD_SCRATCH: RefCell<GuardScratch> = RefCell::new(GuardScratch::default());
 }
 
 /// All services over one state.
@@ -104,6 +109,7 @@ fn session_info(s: &Session) -> pb::SessionInfo {
         created_unix: s.created_unix(),
         memory_bytes: s.memory_bytes() as u64,
         resampling: Some(resampling_to_pb(&spec.resampling)),
+        target_language: spec.target_language.clone().unwrap_or_default(),
     }
 }
 
@@ -213,7 +219,8 @@ impl pb::sessions_server::Sessions for Services {
         let r = req.into_inner();
         let config = config_from_pb(r.config.as_ref()).map_err(|e| ServiceError::Invalid(e.0))?;
         let labels: BTreeMap<String, String> = r.labels.into_iter().collect();
-        let spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize, resampling_from_pb(r.resampling.as_ref()))?;
+        let mut spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize, resampling_from_pb(r.resampling.as_ref()))?;
+        spec.target_language = target_language_from_pb(&r.target_language)?;
         let state = self.state.clone();
         let (session, created) = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
         let spec = session.spec();
@@ -222,6 +229,7 @@ impl pb::sessions_server::Sessions for Services {
             // counters are moved by its batches alone).
             telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.resampling.describe(), &spec.labels, true);
             telemetry::init_session(&spec.name, &spec.config, [0; 3], &CorpusStats::default());
+            telemetry::record_guards(&spec.name, &GuardCounts::default(), true);
         }
         tracing::info!(session = %spec.name, refset = %spec.refset, config = %spec.config.describe(), "session ready");
         Ok(Response::new(session_info(&session)))
@@ -282,10 +290,11 @@ impl InFlight {
             Some(effect) => {
                 let b = effect.batch;
                 (ack.scored, ack.unknown, ack.rejected) = (b.scored as u32, b.unknown as u32, b.rejected as u32);
+                ack.guards = Some(guard_tally_to_pb(&b.guards));
             }
             None => {
                 ack.duplicate = true;
-                (ack.rejections, ack.segment_scores) = (Vec::new(), Vec::new());
+                (ack.rejections, ack.segment_scores, ack.guard_verdicts) = (Vec::new(), Vec::new(), Vec::new());
             }
         }
         telemetry::record_batch_seconds(started.elapsed().as_secs_f64());
@@ -320,9 +329,9 @@ async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     drop(slot);
 
     let rejected = scored.rejections.len() as u64;
-    let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected, replicates: scored.replicates };
+    let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected, replicates: scored.replicates, guards: scored.guards };
     let committing = state.submit_batch(pending)?;
-    (ack.rejections, ack.segment_scores) = (scored.rejections, scored.segment_scores);
+    (ack.rejections, ack.segment_scores, ack.guard_verdicts) = (scored.rejections, scored.segment_scores, scored.verdicts);
     Ok(InFlight { ack, committing: Some(committing), started })
 }
 
@@ -336,15 +345,27 @@ struct ScoredItems {
     segment_scores: Vec<pb::SegmentScore>,
     /// Replicate sums of the scored items (sessions with replicates).
     replicates: Option<crate::metric::resample::Replicates>,
+    /// Guard counts of the items that carried a source.
+    guards: GuardCounts,
+    /// Per checked item, its guard verdict, when the batch asked for segment scores.
+    verdicts: Vec<pb::GuardVerdict>,
 }
 
 /// Validate and score every item of a batch (CPU work, no lock taken); per-segment scores are
 /// derived here, once.
 fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits) -> ScoredItems {
-    let mut out = ScoredItems { outcomes: Vec::with_capacity(batch.items.len()), rejections: Vec::new(), segment_scores: Vec::new(), replicates: None };
+    let mut out = ScoredItems {
+        outcomes: Vec::with_capacity(batch.items.len()),
+        rejections: Vec::new(),
+        segment_scores: Vec::new(),
+        replicates: None,
+        guards: GuardCounts::default(),
+        verdicts: Vec::new(),
+    };
     let too_long = |what: &str, len: usize| format!("{what} of {len} bytes exceeds {} ({})", Limit::MaxTextBytes.key(), limits.max_text_bytes);
-    SCRATCH.with(|s| {
+    SCRATCH.with(|s| GUARD_SCRATCH.with(|g| {
         let scratch = &mut s.borrow_mut();
+        let guard_scratch = &mut g.borrow_mut();
         for (i, item) in batch.items.iter().enumerate() {
             let index = i as u32;
             let key = match &item.key {
@@ -368,8 +389,14 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
                 out.segment_scores.push(pb::SegmentScore { index, segment_id: session.segment_id(*by_source, *seg).to_owned(), scores: segment_scores_to_pb(stats, &session.spec().config) });
             }
             out.outcomes.push(outcome);
+            if let Some(v) = session.guard_item(key, &item.hypothesis, guard_scratch) {
+                out.guards.add(v);
+                if batch.want_segment_scores {
+                    out.verdicts.push(guard_verdict_to_pb(index, v));
+                }
+            }
         }
-    });
+    }));
     out.replicates = session.replicate_delta(&out.outcomes);
     out
 }
@@ -413,7 +440,18 @@ pub fn report(state: &State, session: &Session, level: f64) -> pb::ScoresReport 
         interval_note: notes.join("; "),
         resampling: Some(resampling_to_pb(&spec.resampling)),
         alerts: state.alerts().of(&spec.name),
+        guards: Some(guard_tally_to_pb(&counts.guards)),
+        target_language: spec.target_language.clone().unwrap_or_default(),
     }
+}
+
+/// The declared target language of a create request: empty is none; a code must name a
+/// language the guards know (its ISO 639-1 code is kept).
+fn target_language_from_pb(code: &str) -> Result<Option<String>> {
+    if code.trim().is_empty() {
+        return Ok(None);
+    }
+    crate::guard::language(code).map(|l| Some(l.code.to_owned())).ok_or_else(|| ServiceError::Invalid(crate::guard::GuardError::UnknownLanguage(code.to_owned()).to_string()))
 }
 
 /// Compare two sessions over the segments both `recent` windows hold (CPU work: call from a

@@ -73,6 +73,8 @@ pub struct Pending {
     /// The replicate sums of the scored items ([`Session::replicate_delta`], computed while
     /// scoring; None: computed when applied, or the session keeps none).
     pub replicates: Option<crate::metric::resample::Replicates>,
+    /// The guard counts of the batch's items.
+    pub guards: crate::guard::GuardCounts,
 }
 
 /// A batch handed to [`commit`]: its effect, or the answer to wait for.
@@ -215,6 +217,7 @@ impl State {
             };
             crate::telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.resampling.describe(), &spec.labels, true);
             crate::telemetry::init_session(&spec.name, &config, [s.counts.scored, s.counts.unknown, s.counts.rejected], &s.cumulative);
+            crate::telemetry::record_guards(&spec.name, &s.counts.guards, true);
             crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
@@ -368,7 +371,7 @@ impl State {
         if resampling.resamples > MAX_SESSION_RESAMPLES {
             return Err(ServiceError::Invalid(format!("{} resamples are more than a session may keep ({MAX_SESSION_RESAMPLES})", resampling.resamples)));
         }
-        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling })
+        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling, target_language: None })
     }
 
     /// Create a session (builds its tables: CPU work, call from a blocking thread). With
@@ -435,7 +438,7 @@ impl State {
 
 /// The parts of a session definition in which `a` and `b` differ (empty: the same).
 pub fn differences(a: &SessionSpec, b: &SessionSpec) -> Vec<&'static str> {
-    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling)];
+    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling), ("target language", a.target_language == b.target_language)];
     parts.into_iter().filter(|(_, same)| !same).map(|(what, _)| what).collect()
 }
 
@@ -461,7 +464,7 @@ fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std
     let mut effects = Vec::with_capacity(group.len());
     for p in group {
         let current = live.is_some_and(|l| l.sessions.get(&p.session.spec().name).is_some_and(|e| Arc::ptr_eq(e.value(), &p.session)));
-        let applied = p.session.apply(&p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref());
+        let applied = p.session.apply_guarded(&p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref(), &p.guards);
         effects.push((applied, current));
     }
     if let Some(store) = store {
@@ -506,6 +509,7 @@ fn publish(records: Vec<Published>) {
     for r in records {
         let spec = r.session.spec();
         crate::telemetry::record_batch(&spec.name, &spec.config, r.batch.scored, r.batch.unknown, r.batch.rejected, &r.added);
+        crate::telemetry::record_guards(&spec.name, &r.batch.guards, false);
         if let Some((cumulative, recent)) = &r.scores {
             crate::telemetry::record_scores(&spec.name, &spec.config, cumulative, recent);
         }

@@ -11,6 +11,7 @@ use std::sync::{Arc, Mutex, MutexGuard};
 
 use unicode_normalization::UnicodeNormalization;
 
+use crate::guard::{GuardConfig, GuardCounts, GuardScratch, LengthTally, Verdict};
 use crate::metric::resample::{segment_key, Replicates, Resampling};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::{Compiled, Scratch};
@@ -101,6 +102,26 @@ pub fn normalize_source(text: &str, caseless: bool) -> String {
     out
 }
 
+/// The guards' configuration of a session: defaults, the declared target, and the expected
+/// length ratio learned from the set's segments that have a source (each reference against
+/// its source) when there is enough text.
+fn guard_config(spec: &SessionSpec, refs: &RefSet) -> GuardConfig {
+    let mut c = GuardConfig::default();
+    c.target = spec.target_language.as_deref().and_then(crate::guard::language);
+    let mut tally = LengthTally::default();
+    for seg in refs.segments() {
+        if let Some(src) = seg.source() {
+            for r in seg.refs() {
+                tally.add(src, r);
+            }
+        }
+    }
+    if let Some(r) = tally.ratio(c.length_min_chars) {
+        c.length_ratio = r;
+    }
+    c
+}
+
 /// Lookup of live traffic by source text. Segments whose normalised sources are equal become
 /// one multi-reference entry (the union of their references), compiled like any reference set.
 pub struct SourceIndex {
@@ -160,6 +181,9 @@ pub struct SessionSpec {
     pub window: usize,
     /// Bootstrap replicates for intervals.
     pub resampling: Resampling,
+    /// Declared target language (ISO 639-1 code of [`crate::guard::LANGUAGES`]) for the
+    /// script and language guards; None: undeclared (those guards are undecided).
+    pub target_language: Option<String>,
 }
 
 /// How one item of a batch came out.
@@ -198,6 +222,10 @@ pub struct Counts {
     pub unknown: u64,
     /// Items rejected as invalid.
     pub rejected: u64,
+    /// Verdicts of the reference-free guards on the items that carried a source (absent in
+    /// stores written before the guards: zeros).
+    #[serde(default)]
+    pub guards: GuardCounts,
 }
 
 /// Mutable statistics of a session, behind one short lock.
@@ -224,6 +252,9 @@ pub struct Session {
     /// index's entries.
     keys: Vec<u64>,
     source_keys: Vec<u64>,
+    /// The guards' thresholds: the declared target, and the expected length ratio learned from
+    /// the set's sources and references when it has sources.
+    guards: GuardConfig,
     created_unix: i64,
     /// Held only to add a batch's statistics or to read a snapshot, never across an await or
     /// while scoring: a std mutex is right for such short sections.
@@ -234,13 +265,29 @@ impl Session {
     /// Create a session over `refs` (the reference-set version it keeps for its lifetime).
     pub fn new(spec: SessionSpec, refs: Arc<RefSet>, created_unix: i64) -> Session {
         let sources = SourceIndex::build(&refs, spec.config);
+        let guards = guard_config(&spec, &refs);
         let compiled = Compiled::build(refs, spec.config);
         let keys_of = |set: &RefSet| set.segments().map(|s| segment_key(s.id().as_bytes())).collect::<Vec<u64>>();
         let keys = keys_of(compiled.refs());
         let source_keys = sources.as_ref().map_or_else(Vec::new, |ix| keys_of(ix.compiled.refs()));
         let replicates = (spec.resampling.resamples > 0).then(|| SessionReplicates::new(&spec.config, spec.resampling, spec.window, 0));
         let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new(), replicates };
-        Session { spec, compiled, sources, keys, source_keys, created_unix, state: Mutex::new(state) }
+        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state) }
+    }
+
+    /// The guards' configuration of this session.
+    pub fn guard_config(&self) -> &GuardConfig {
+        &self.guards
+    }
+
+    /// The guards' verdict on one item (CPU work, no lock taken): items that carry a source
+    /// (live traffic, matched or not) or name a segment that has one; None for the others.
+    pub fn guard_item(&self, key: ItemKey<'_>, hyp: &str, scratch: &mut GuardScratch) -> Option<Verdict> {
+        let source = match key {
+            ItemKey::Source(src) => src,
+            ItemKey::Id(id) => self.compiled.refs().find(id).and_then(|i| self.compiled.refs().segment(i).source())?,
+        };
+        Some(crate::guard::check(&self.guards, source, hyp, scratch))
     }
 
     /// The replicate key of the segment a window record names by its [`segment_code`].
@@ -268,6 +315,11 @@ impl Session {
     /// Apply a batch (see [`SessionState::apply`]); `delta` is its [`Session::replicate_delta`],
     /// computed here when not given.
     pub fn apply(&self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>) -> Option<Applied> {
+        self.apply_guarded(producer, sequence, outcomes, rejected, delta, &GuardCounts::default())
+    }
+
+    /// [`Session::apply`] with the guard counts of the batch's items.
+    pub fn apply_guarded(&self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>, guards: &GuardCounts) -> Option<Applied> {
         let own;
         let delta = match delta {
             Some(d) => Some(d),
@@ -276,7 +328,7 @@ impl Session {
                 own.as_ref()
             }
         };
-        self.state().apply(producer, sequence, outcomes, rejected, delta)
+        self.state().apply(producer, sequence, outcomes, rejected, delta, guards)
     }
 
     /// The segments of the `recent` window, keyed by their replicate key, oldest first; a
@@ -422,7 +474,8 @@ impl SessionState {
     /// Apply the outcomes of one batch, with `delta` the replicate sums of its scored items
     /// (needed when the session keeps replicates). Returns None (and changes nothing) for a
     /// duplicate, else its whole effect: what it added, and the totals after it.
-    pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>) -> Option<Applied> {
+    /// `guards`: the guard counts of the batch's items.
+    pub fn apply(&mut self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>, guards: &GuardCounts) -> Option<Applied> {
         if self.is_duplicate(producer, sequence) {
             return None;
         }
@@ -433,7 +486,7 @@ impl SessionState {
         let first_row = self.window.next_id();
         let mut rows = Vec::new();
         let mut added = CorpusStats::default();
-        let mut batch = Counts { rejected, ..Counts::default() };
+        let mut batch = Counts { rejected, guards: *guards, ..Counts::default() };
         for o in outcomes {
             match o {
                 Outcome::Scored { stats, by_source, index } => {
@@ -464,6 +517,7 @@ impl Counts {
         self.scored += o.scored;
         self.unknown += o.unknown;
         self.rejected += o.rejected;
+        self.guards += o.guards;
     }
 }
 
@@ -514,7 +568,7 @@ mod tests {
 
     fn spec(caseless: bool) -> SessionSpec {
         let config = ScoreConfig { caseless, ..Default::default() };
-        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2, resampling: Resampling::default() }
+        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2, resampling: Resampling::default(), target_language: None }
     }
 
     #[test]
@@ -558,6 +612,34 @@ mod tests {
     }
 
     #[test]
+    fn counts_stored_before_the_guards_still_load() {
+        let old: Counts = serde_json::from_str(r#"{"scored":3,"unknown":1,"rejected":2}"#).unwrap();
+        assert_eq!(old, Counts { scored: 3, unknown: 1, rejected: 2, guards: GuardCounts::default() });
+    }
+
+    #[test]
+    fn guard_counts_apply_once_and_reset() {
+        let s = Session::new(SessionSpec { target_language: Some("de".into()), ..spec(false) }, set(), 0);
+        assert_eq!(s.guard_config().target.map(|t| t.code), Some("de"));
+        let mut g = GuardScratch::default();
+        // By id (the segment has a source), by an unknown source, and an unknown id (no source).
+        let verdicts: Vec<Option<Verdict>> = [(ItemKey::Id("1"), ""), (ItemKey::Source("Nothing like it."), "Nothing like it."), (ItemKey::Id("9"), "x")]
+            .into_iter()
+            .map(|(k, h)| s.guard_item(k, h, &mut g))
+            .collect();
+        assert!(verdicts[0].is_some_and(|v| v.is_flagged(crate::guard::Guard::Empty)));
+        assert!(verdicts[1].is_some_and(|v| v.is_flagged(crate::guard::Guard::Copy)));
+        assert_eq!(verdicts[2], None);
+        let mut batch = GuardCounts::default();
+        verdicts.iter().flatten().for_each(|&v| batch.add(v));
+        assert!(s.apply_guarded("p", 1, &[Outcome::Unknown], 0, None, &batch).is_some_and(|a| a.batch.guards == batch && a.counts.guards == batch));
+        assert!(s.apply_guarded("p", 1, &[Outcome::Unknown], 0, None, &batch).is_none(), "a duplicate adds nothing");
+        assert_eq!(s.state().counts.guards.checked, 2);
+        s.reset();
+        assert_eq!(s.state().counts.guards, GuardCounts::default());
+    }
+
+    #[test]
     fn apply_counts_once_per_producer_sequence() {
         let s = Session::new(spec(false), set(), 0);
         let mut scratch = Scratch::default();
@@ -567,7 +649,7 @@ mod tests {
         assert!(s.apply("p2", 1, &[o], 0, None).is_some(), "another producer has its own sequence");
         assert!(s.apply("", 0, &[o], 0, None).is_some() && s.apply("", 0, &[o], 0, None).is_some(), "anonymous batches are not deduplicated");
         let st = s.state();
-        assert_eq!(st.counts, Counts { scored: 4, unknown: 1, rejected: 1 });
+        assert_eq!(st.counts, Counts { scored: 4, unknown: 1, rejected: 1, guards: GuardCounts::default() });
         assert_eq!(st.cumulative.segments, 4);
         assert_eq!(st.window.stats().segments, 2, "window of 2");
     }

@@ -100,6 +100,9 @@ struct StoredSession {
     /// Absent in sessions stored before intervals: the daemon's defaults.
     #[serde(default)]
     resampling: Resampling,
+    /// Absent in sessions stored before the guards: undeclared.
+    #[serde(default)]
+    target_language: Option<String>,
 }
 
 #[derive(Debug, Default, Serialize, Deserialize)]
@@ -378,7 +381,7 @@ impl Store {
                 }
                 m.insert(producer.to_owned(), v.value());
             }
-            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling };
+            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling, target_language: s.target_language };
             snap.sessions.push(LoadedSession {
                 spec,
                 refset_digest: s.refset_digest,
@@ -427,7 +430,7 @@ impl Store {
 
     /// Record a new session (its statistics start empty).
     pub fn put_session(&self, spec: &SessionSpec, refset_digest: &str, created_unix: i64) -> Result<(), StoreError> {
-        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling };
+        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling, target_language: spec.target_language.clone() };
         let bytes = serde_json::to_vec(&s).map_err(|e| self.err(e))?;
         self.write(|txn| {
             txn.open_table(SESSIONS)?.insert(spec.name.as_str(), bytes.as_slice())?;
@@ -623,14 +626,14 @@ mod tests {
     #[test]
     fn round_trip_and_versions() {
         let d = dir("rt");
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3, resampling: Resampling::default() };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3, resampling: Resampling::default(), target_language: None };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &set("Tor C")).unwrap();
             st.put_session(&spec, &set("Tor C").digest_hex(), 42).unwrap();
             st.put_refset("r", &set("Gate C")).unwrap();
             let one = CorpusStats { segments: 1, ..Default::default() };
-            let applied = Applied { mark: Some(("p".into(), 7)), first_row: 0, rows: vec![1, 2, 3], batch: Counts { scored: 1, unknown: 2, rejected: 0 }, cumulative: one, recent: one, counts: Counts { scored: 1, unknown: 2, rejected: 0 }, next_row: 1, ..Default::default() };
+            let applied = Applied { mark: Some(("p".into(), 7)), first_row: 0, rows: vec![1, 2, 3], batch: Counts { scored: 1, unknown: 2, rejected: 0, ..Default::default() }, cumulative: one, recent: one, counts: Counts { scored: 1, unknown: 2, rejected: 0, ..Default::default() }, next_row: 1, ..Default::default() };
             st.commit_batches(&[BatchWrite { session: "s", applied: &applied }]).unwrap();
             assert!(matches!(Store::open(&d), Err(StoreError::InUse(_))), "a second open is refused");
         }
@@ -669,7 +672,7 @@ mod tests {
         let d = dir("blocks");
         let refs = std::sync::Arc::new(set("Tor C"));
         let config: ScoreConfig = "bleu chrf".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37, resampling: Resampling { resamples: 20, seed: 5 } };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37, resampling: Resampling { resamples: 20, seed: 5 }, target_language: None };
         let session = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
         // Copies of the replicate sums every 100 records here, so that some are written.
         session.state().replicates.as_mut().unwrap().set_save_every(100);
@@ -735,7 +738,7 @@ mod tests {
         let d = dir("upgrade");
         let refs = set("Tor C");
         let config: ScoreConfig = "bleu:order=2".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3, resampling: Resampling::default() };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3, resampling: Resampling::default(), target_language: None };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &refs).unwrap();

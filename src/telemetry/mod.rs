@@ -47,6 +47,8 @@ const REP_CHRF_HYP: &str = "mtgauge_replicate_chrf_hypothesis_ngrams_total";
 const REP_CHRF_REF: &str = "mtgauge_replicate_chrf_reference_ngrams_total";
 const ALERT_DELIVERIES: &str = "mtgauge_alert_deliveries_total";
 const ALERT_RETRIES: &str = "mtgauge_alert_delivery_retries_total";
+const GUARD_CHECKED: &str = "mtgauge_guard_checked_total";
+const GUARD_FLAGGED: &str = "mtgauge_guard_flagged_total";
 const COMMIT_SECONDS: &str = "mtgauge_store_commit_seconds";
 const COMMIT_BATCHES: &str = "mtgauge_store_commit_batches";
 
@@ -60,7 +62,7 @@ pub const COMMIT_BATCHES_BUCKETS: &[f64] = &[1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.
 pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 36] = [
+pub const METRIC_NAMES: [&str; 38] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -97,6 +99,8 @@ pub const METRIC_NAMES: [&str; 36] = [
     ALERT_RETRIES,
     COMMIT_SECONDS,
     COMMIT_BATCHES,
+    GUARD_CHECKED,
+    GUARD_FLAGGED,
 ];
 
 /// The replicate families: name, help, and the labels after `session` and `replicate`.
@@ -195,6 +199,8 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(WATCH_DROPPED, "Watch subscribers the server ended: `reason` stalled (left too many reports unread) or closed (went away).");
     describe_counter!(METRICS_REFUSED, "Scrape connections closed on arrival because too many were open.");
     describe_counter!(ALERT_DELIVERIES, "Alert events per delivery target by outcome: sent (accepted), failed (refused with a 4xx, or out of attempts), dropped (pushed out of a full queue).");
+    describe_counter!(GUARD_CHECKED, "Items checked by the reference-free guards per session (items that carried a source, matched or not).");
+    describe_counter!(GUARD_FLAGGED, "Items flagged per session and guard (empty, copy, length, repetition, script, language); an item can trip several.");
     describe_counter!(ALERT_RETRIES, "Alert delivery attempts after the first one of a batch, per target.");
     describe_gauge!(ALERT_FIRING, "1 while the daemon's alert rule fires for the session, else 0.");
     describe_gauge!(ALERT_STATE, "1 for the state (inactive, pending, firing) the daemon's alert rule is in for the session, 0 for the others.");
@@ -253,6 +259,16 @@ fn counters(session: &str, config: &ScoreConfig, counts: [u64; 3], sum: &CorpusS
                 put(counter!(CHRF_REF, &labels), counts.reference[n]);
             }
         }
+    }
+}
+
+/// Add a batch's guard counts to a session's counters (with `absolute`, set them: at creation
+/// and after a restart, from the durable totals).
+pub fn record_guards(session: &str, counts: &crate::guard::GuardCounts, absolute: bool) {
+    let put = |c: metrics::Counter, v: u64| if absolute { c.absolute(v) } else { c.increment(v) };
+    put(counter!(GUARD_CHECKED, "session" => session.to_owned()), counts.checked);
+    for g in crate::guard::Guard::ALL {
+        put(counter!(GUARD_FLAGGED, "session" => session.to_owned(), "guard" => g.name()), counts.flagged_by(g));
     }
 }
 
