@@ -8,7 +8,7 @@
 //! | `empty`      | the hypothesis has no letter, mark or digit (`char::is_alphanumeric`): empty, white space or punctuation only |
 //! | `copy`       | the hypothesis equals the source after normalisation (lowercased, only letters and digits kept; the source has at least one), or chrF of the hypothesis against the source as its reference (Popović 2015: character orders 1..=`copy_order`, beta `DEFAULT_CHRF_BETA`, text lowercased, white space removed) is at least `copy_min_chrf` |
 //! | `length`     | hypothesis/source length ratio (non-space characters) divided by the expected ratio is below `length_low` or above `length_high`; undecided when the source has fewer than `length_min_chars` |
-//! | `repetition` | the most frequent word n-gram (order `repeat_order`) occurs at least `repeat_count` times, or one word runs `repeat_run` times in a row, and more than in the source (same rule on the source); words are the `cjk` tokenizer's lowercased tokens with a letter or digit |
+//! | `repetition` | the most frequent word n-gram (order `repeat_order`) occurs at least `repeat_count` times, or one word runs `repeat_run` times in a row, and more than in the source (same rule on the source); words are lowercased runs of letters, marks and digits, each CJK ideograph or kana a word of its own |
 //! | `script`     | under `script_min_share` of the hypothesis' letters are in the target language's scripts; undecided without a declared target or without letters |
 //! | `language`   | with at least `language_min_letters` letters: the script guard flags (text mostly in another script is off-target whatever an identifier says), or the identified language (crate `whatlang` 0.18.0, trigram profiles of 70 languages) is reliable and not the declared target; otherwise undecided (no declared target, fewer letters, identification not reliable) |
 //!
@@ -26,14 +26,15 @@
 mod script;
 
 use std::fmt;
-use std::hash::Hasher;
 
 pub use script::{language, language_codes, script_of, Language, Script, LANGUAGES};
 
 use crate::metric::chrf::{ChrfStats, OrderCounts};
 use crate::metric::ngram::{clipped_matches, ngram_count, sort_positions};
 use crate::metric::{DEFAULT_CHRF_BETA, DEFAULT_CHRF_CHAR_ORDER, MAX_CHRF_CHAR_ORDER};
-use crate::text::{is_space, TokenBuf, Tokenizer};
+use unicode_general_category::{get_general_category, GeneralCategory};
+
+use crate::text::is_space;
 
 /// A guard.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -362,8 +363,55 @@ pub struct GuardScratch {
     src_chars: Vec<u32>,
     hyp_pos: Vec<u32>,
     src_pos: Vec<u32>,
-    tokens: TokenBuf,
     ids: Vec<u64>,
+    keys: Vec<u64>,
+    /// Counts of character and character-pair buckets, all zero between uses.
+    buckets: Vec<u32>,
+}
+
+/// Buckets of the copy guard's bound: unigram buckets, then bigram buckets (powers of two).
+const UNIGRAM_BUCKETS: usize = 1 << 10;
+const BIGRAM_BUCKETS: usize = 1 << 12;
+
+fn unigram_bucket(c: u32) -> usize {
+    (c.wrapping_mul(0x9E37_79B1) >> 22) as usize
+}
+
+fn bigram_bucket(a: u32, b: u32) -> usize {
+    UNIGRAM_BUCKETS + ((a.wrapping_mul(0x9E37_79B1) ^ b).wrapping_mul(0x85EB_CA6B) >> 20) as usize
+}
+
+/// Upper bounds of the clipped character unigram and bigram matches of `hyp` against `src`:
+/// counts summed per hash bucket (a collision can only add matches). Leaves the buckets zero.
+fn bucket_matches(hyp: &[u32], src: &[u32], buckets: &mut Vec<u32>) -> (u64, u64) {
+    if buckets.len() != UNIGRAM_BUCKETS + BIGRAM_BUCKETS {
+        *buckets = vec![0; UNIGRAM_BUCKETS + BIGRAM_BUCKETS];
+    }
+    for (i, &c) in src.iter().enumerate() {
+        buckets[unigram_bucket(c)] += 1;
+        if let Some(&d) = src.get(i + 1) {
+            buckets[bigram_bucket(c, d)] += 1;
+        }
+    }
+    let (mut m1, mut m2) = (0u64, 0u64);
+    let take = |b: &mut u32| {
+        let hit = *b > 0;
+        *b -= u32::from(hit);
+        u64::from(hit)
+    };
+    for (i, &c) in hyp.iter().enumerate() {
+        m1 += take(&mut buckets[unigram_bucket(c)]);
+        if let Some(&d) = hyp.get(i + 1) {
+            m2 += take(&mut buckets[bigram_bucket(c, d)]);
+        }
+    }
+    for (i, &c) in src.iter().enumerate() {
+        buckets[unigram_bucket(c)] = 0;
+        if let Some(&d) = src.get(i + 1) {
+            buckets[bigram_bucket(c, d)] = 0;
+        }
+    }
+    (m1, m2)
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -407,19 +455,46 @@ fn copy(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Out
         return Outcome::Flag;
     }
     let n = cfg.copy_order.clamp(1, MAX_CHRF_CHAR_ORDER);
-    // Characters shifted by one so that 0 is the padding (smaller than any character).
-    let fill = |text: &str, out: &mut Vec<u32>| {
-        out.clear();
-        out.extend(text.chars().filter(|&c| !is_space(c)).flat_map(char::to_lowercase).map(|c| c as u32 + 1));
-        let len = out.len();
-        out.extend(std::iter::repeat_n(0, n));
-        len
-    };
-    let hl = fill(hyp, &mut s.hyp_chars);
-    let sl = fill(source, &mut s.src_chars);
-    if hl == 0 {
+    let (hl, sl) = (fill_chars(hyp, n, &mut s.hyp_chars), fill_chars(source, n, &mut s.src_chars));
+    if hl == 0 || copy_bound(n, hl, sl, s) < cfg.copy_min_chrf {
         return Outcome::Pass;
     }
+    flag_if(copy_chrf(n, hl, sl, s) >= cfg.copy_min_chrf)
+}
+
+/// The lowercased non-space characters of `text` into `out` as code points shifted by one (0
+/// is the padding, smaller than any character), followed by `n` padding items; their number.
+fn fill_chars(text: &str, n: usize, out: &mut Vec<u32>) -> usize {
+    out.clear();
+    for c in text.chars().filter(|&c| !is_space(c)) {
+        if c.is_ascii() {
+            out.push(c.to_ascii_lowercase() as u32 + 1);
+        } else {
+            out.extend(c.to_lowercase().map(|l| l as u32 + 1));
+        }
+    }
+    let len = out.len();
+    out.extend(std::iter::repeat_n(0, n));
+    len
+}
+
+/// An upper bound of [`copy_chrf`], cheap: the matches of every order n >= 2 are at most the
+/// bigram matches (each matched n-gram starts with a matched bigram), those of order 1 the
+/// unigram matches, both bounded by bucket counts; chrF grows with the matches.
+fn copy_bound(n: usize, hl: usize, sl: usize, s: &mut GuardScratch) -> f64 {
+    let (m1, m2) = bucket_matches(&s.hyp_chars[..hl], &s.src_chars[..sl], &mut s.buckets);
+    let mut bound = OrderCounts::default();
+    for order in 1..=n {
+        let (h, r) = (ngram_count(hl, order), ngram_count(sl, order));
+        bound.matches[order - 1] = (if order == 1 { m1 } else { m2 }).min(h).min(r);
+        bound.hyp[order - 1] = h;
+        bound.reference[order - 1] = r;
+    }
+    ChrfStats { char: bound, word: OrderCounts::default() }.score(n, 0, DEFAULT_CHRF_BETA).score
+}
+
+/// chrF (orders 1..=n, [`DEFAULT_CHRF_BETA`]) of the filled hypothesis against the filled source.
+fn copy_chrf(n: usize, hl: usize, sl: usize, s: &mut GuardScratch) -> f64 {
     sort_positions(&s.hyp_chars, hl, n, &mut s.hyp_pos);
     sort_positions(&s.src_chars, sl, n, &mut s.src_pos);
     let mut c = OrderCounts::default();
@@ -428,8 +503,7 @@ fn copy(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Out
         c.hyp[order - 1] = ngram_count(hl, order);
         c.reference[order - 1] = ngram_count(sl, order);
     }
-    let chrf = ChrfStats { char: c, word: OrderCounts::default() }.score(n, 0, DEFAULT_CHRF_BETA).score;
-    flag_if(chrf >= cfg.copy_min_chrf)
+    ChrfStats { char: c, word: OrderCounts::default() }.score(n, 0, DEFAULT_CHRF_BETA).score
 }
 
 fn length(cfg: &GuardConfig, source: &str, hyp: &str) -> Outcome {
@@ -441,19 +515,54 @@ fn length(cfg: &GuardConfig, source: &str, hyp: &str) -> Outcome {
     flag_if(rel < cfg.length_low || rel > cfg.length_high)
 }
 
-/// (count of the most frequent word n-gram of order `n`, longest run of one word) of `text`.
-fn repeats(text: &str, n: usize, s: &mut GuardScratch) -> (usize, usize) {
-    Tokenizer::Cjk.tokenize_into(text, true, &mut s.tokens);
-    s.ids.clear();
-    for t in s.tokens.tokens() {
-        if t.chars().any(char::is_alphanumeric) {
-            let mut h = rustc_hash::FxHasher::default();
-            h.write(t.as_bytes());
-            // 0 is the padding; a 64-bit hash collision (about 2^-64 per pair) could only
-            // merge two words.
-            s.ids.push(h.finish().max(1));
+/// True for the characters of a word: letters, marks and digits (CJK ideographs and kana are
+/// words of their own, see [`word_ids`]).
+fn is_word_char(c: char) -> bool {
+    if c.is_ascii() {
+        return c.is_ascii_alphanumeric();
+    }
+    c.is_alphanumeric() || matches!(get_general_category(c), GeneralCategory::NonspacingMark | GeneralCategory::SpacingMark | GeneralCategory::EnclosingMark)
+}
+
+/// The words of `text` as 64-bit hashes of their lowercased characters, into `ids`: maximal
+/// runs of [`is_word_char`] characters, each CJK ideograph or kana ([`crate::text::is_cjk`]) a
+/// word of its own; white space, punctuation and symbols separate words and are not words.
+/// A hash collision (about 2^-64 per pair of distinct words) could only merge two words.
+fn word_ids(text: &str, ids: &mut Vec<u64>) {
+    const SEED: u64 = 0xCBF2_9CE4_8422_2325;
+    let mix = |h: u64, c: char| (h ^ u64::from(c)).wrapping_mul(0x0000_0100_0000_01B3);
+    let mut h = SEED;
+    let mut open = false;
+    ids.clear();
+    for c in text.chars() {
+        let cjk = !c.is_ascii() && crate::text::is_cjk(c);
+        if cjk || !is_word_char(c) {
+            if open {
+                ids.push(h.max(1));
+                (h, open) = (SEED, false);
+            }
+            if cjk && c.is_alphabetic() {
+                ids.push(mix(SEED, c).max(1));
+            }
+            continue;
+        }
+        open = true;
+        if c.is_ascii() {
+            h = mix(h, c.to_ascii_lowercase());
+        } else {
+            for l in c.to_lowercase() {
+                h = mix(h, l);
+            }
         }
     }
+    if open {
+        ids.push(h.max(1));
+    }
+}
+
+/// (count of the most frequent word n-gram of order `n`, longest run of one word) of `text`.
+fn repeats(text: &str, n: usize, s: &mut GuardScratch) -> (usize, usize) {
+    word_ids(text, &mut s.ids);
     let len = s.ids.len();
     let mut run = 0usize;
     let mut longest = 0usize;
@@ -464,20 +573,16 @@ fn repeats(text: &str, n: usize, s: &mut GuardScratch) -> (usize, usize) {
     if len < n {
         return (0, longest);
     }
-    s.ids.extend(std::iter::repeat_n(0, n));
-    sort_positions(&s.ids, len, n, &mut s.hyp_pos);
-    let (mut top, mut count, mut prev) = (0usize, 0usize, None::<usize>);
-    for &p in &s.hyp_pos {
-        let p = p as usize;
-        if s.ids[p + n - 1] == 0 {
-            continue;
-        }
-        let gram = &s.ids[p..p + n];
-        count = match prev {
-            Some(q) if s.ids[q..q + n] == *gram => count + 1,
-            _ => 1,
-        };
-        prev = Some(p);
+    // One 64-bit key per n-gram (a collision, about 2^-64 per pair, could only merge two
+    // n-grams), sorted: the longest run of equal keys is the top count.
+    s.keys.clear();
+    for w in s.ids.windows(n) {
+        s.keys.push(w.iter().fold(0u64, |k, &id| (k.rotate_left(17) ^ id).wrapping_mul(0x9E37_79B9_7F4A_7C15)));
+    }
+    s.keys.sort_unstable();
+    let (mut top, mut count) = (0usize, 0usize);
+    for (i, &k) in s.keys.iter().enumerate() {
+        count = if i > 0 && s.keys[i - 1] == k { count + 1 } else { 1 };
         top = top.max(count);
     }
     (top, longest)

@@ -229,6 +229,17 @@ proptest! {
     }
 
     #[test]
+    fn copy_bound_never_below_the_exact_chrf(src in any_text(), hyp in any_text(), n in 1usize..=10) {
+        let mut s = GuardScratch::default();
+        let (hl, sl) = (fill_chars(&hyp, n, &mut s.hyp_chars), fill_chars(&src, n, &mut s.src_chars));
+        let bound = copy_bound(n, hl, sl, &mut s);
+        let exact = copy_chrf(n, hl, sl, &mut s);
+        prop_assert!(bound + 1e-9 >= exact, "bound {} < chrF {}", bound, exact);
+        // The buckets are left zero for the next item.
+        prop_assert!(s.buckets.iter().all(|&b| b == 0));
+    }
+
+    #[test]
     fn verdicts_independent_of_order_split_and_scratch(
         items in proptest::collection::vec((any_text(), any_text()), 0..12),
         cut in 0usize..12,
@@ -253,5 +264,35 @@ proptest! {
         prop_assert_eq!(b2, whole);
         prop_assert_eq!(whole.checked, items.len() as u64);
     }
+
+    #[test]
+    fn copy_bound_on_similar_texts(words in proptest::collection::vec("(Fähre|ferry|паром|渡轮|[a-z]{1,5})", 1..12), keep in 0usize..12) {
+        // Near copies (a prefix of the words kept, the rest changed): the bound still holds.
+        let src = words.join(" ");
+        let hyp = words.iter().enumerate().map(|(i, w)| if i < keep { w.clone() } else { w.to_uppercase() + "x" }).collect::<Vec<_>>().join(" ");
+        let mut s = GuardScratch::default();
+        let (hl, sl) = (fill_chars(&hyp, 6, &mut s.hyp_chars), fill_chars(&src, 6, &mut s.src_chars));
+        prop_assert!(copy_bound(6, hl, sl, &mut s) + 1e-9 >= copy_chrf(6, hl, sl, &mut s));
+    }
 }
 
+
+#[test]
+fn words_of_the_repetition_guard() {
+    let ids = |t: &str| {
+        let mut v = Vec::new();
+        word_ids(t, &mut v);
+        v
+    };
+    // Case and punctuation do not make words differ; punctuation is no word.
+    let w = ids("Fähre, FÄHRE! ... fähre");
+    assert_eq!(w.len(), 3);
+    assert!(w.iter().all(|&x| x == w[0]));
+    // Each ideograph a word; kana too; CJK punctuation none.
+    assert_eq!(ids("渡轮。フェ").len(), 4);
+    // A Devanagari word with vowel signs and a virama (marks) stays one word; Arabic too.
+    assert_eq!(ids("नौका प्रस्थान").len(), 2);
+    assert_eq!(ids("الرصيف الثالث").len(), 2);
+    assert_eq!(ids("паром-паром").len(), 2);
+    assert!(ids(" \t.,;").is_empty());
+}
