@@ -67,6 +67,10 @@ that time over the fastest run (and over the slowest).
       the 1-thread BLEU+chrF scoring loop on up to 20,000 segments, alone and with every segment \
 also added to R replicate sums (R = 200, the daemon's, and 1000, `score --interval`'s default), as \
 segments/s and as the ratio of the time with replicates over the time alone.
+  guards
+      the 1-thread BLEU loop over the demo scenario's 900 (source, hypothesis) items, alone and \
+with every item also checked by the reference-free guards (German target; and without a target, \
+i.e. without language identification), as segments/s and the time the guards add.
   memory per segment
       bytes the reference set and the compiled tables keep per segment (1 and 2 references).";
 
@@ -333,6 +337,8 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
             "total": per_seg(two_set.memory_bytes() + two_bleu.memory_bytes(), two_set.len()),
         },
     });
+    log("timing the reference-free guards on the demo scenario".into());
+    figures["guards"] = super::bench_guards::guard_cost();
     let files = CorpusFiles::write(&corpus)?;
     log(format!("timing the whole `mtgauge score` command on {threads} threads"));
     let (e2e_bleu, e2e_bleu_worst, printed) = end_to_end(&files, "bleu", threads)?;
@@ -429,6 +435,7 @@ fn human(f: &Value) -> String {
         s += &format!("; with {} replicates {:.0} segments/s ({:.2}x the time)", w["resamples"], g(w, "segments_per_s"), g(w, "time_ratio"));
     }
     s += "\n";
+    s += &super::bench_guards::guard_cost_line(&f["guards"]);
     let m1 = &f["memory_bytes_per_segment_1_ref"];
     let m2 = &f["memory_bytes_per_segment_2_refs"];
     s += &format!(

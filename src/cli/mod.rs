@@ -4,6 +4,7 @@
 //! for a failed command.
 
 mod bench;
+mod bench_guards;
 mod compare;
 pub mod demo;
 mod input;
