@@ -153,6 +153,30 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
     let human = String::from_utf8_lossy(&human.stdout);
     assert!(human.contains(&format!("guards  {} items checked against their sources, target language de", want.checked)), "{human}");
 
+    // Guard settings are part of a session's definition: a bad one is refused; with
+    // language-id=off the language guard only flags text in another script.
+    let mut bad = req("bad", "de");
+    bad.guard_settings = vec!["repeat-count=1".into()];
+    let e = SessionsClient::new(ch.clone()).create(bad).await.unwrap_err();
+    assert_eq!(e.code(), Code::InvalidArgument);
+    assert!(e.message().contains("repeat-count"), "{}", e.message());
+    let mut fast = req("fast", "de");
+    fast.guard_settings = vec!["language-id=off".into(), "repeat-count=4".into()];
+    let info = SessionsClient::new(ch.clone()).create(fast).await.unwrap().into_inner();
+    assert_eq!(info.guard_settings, ["language-id=off", "repeat-count=4"]);
+    let mut c_fast = offline_config();
+    c_fast.set("language-id=off").unwrap();
+    c_fast.set("repeat-count=4").unwrap();
+    let mut want_fast = GuardCounts::default();
+    for (it, src) in items.iter().filter(|(_, src)| !src.is_empty()) {
+        want_fast.add(check(&c_fast, src, &it.hypothesis, &mut scratch));
+    }
+    let mut all = batch(1, &items, false);
+    all.session = "fast".into();
+    let ack = scoring.submit(all).await.unwrap().into_inner();
+    assert_eq!(tally(&ack.guards), want_fast);
+    assert_eq!(want_fast.flagged_by(Guard::Language), want.flagged_by(Guard::Script), "only the wrong-script items");
+
     // The counts are durable with the session's statistics.
     let mut server = server;
     assert!(server.terminate().success());
@@ -161,6 +185,8 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
     let after = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "g".into(), ..Default::default() }).await.unwrap().into_inner();
     assert_eq!(tally(&after.guards), want);
     assert_eq!(after.target_language, "de");
+    let fast = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "fast".into() }).await.unwrap().into_inner();
+    assert_eq!(fast.guard_settings, ["language-id=off", "repeat-count=4"]);
     let scrape = again.scrape();
     assert!(scrape.lines().any(|l| l == format!("mtgauge_guard_checked_total{{session=\"g\"}} {}", want.checked)), "{scrape}");
     // A reset zeroes them like every other count.

@@ -69,8 +69,8 @@ also added to R replicate sums (R = 200, the daemon's, and 1000, `score --interv
 segments/s and as the ratio of the time with replicates over the time alone.
   guards
       the 1-thread BLEU loop over the demo scenario's 900 (source, hypothesis) items, alone and \
-with every item also checked by the reference-free guards (German target; and without a target, \
-i.e. without language identification), as segments/s and the time the guards add.
+with every item also checked by the reference-free guards (German target; and with the guard \
+setting language-id=off, which keeps the script check), as segments/s and the time the guards add.
   memory per segment
       bytes the reference set and the compiled tables keep per segment (1 and 2 references).";
 

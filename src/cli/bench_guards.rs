@@ -49,9 +49,9 @@ fn passes(compiled: &Compiled, items: &[(usize, String)], sources: &[String], gu
     sink
 }
 
-/// The figures: segments/s of BLEU alone, guards alone (with and without a declared target
-/// language, i.e. with and without language identification), and BLEU with the guards, and the
-/// time the guards add to BLEU scoring per segment.
+/// The figures: segments/s of BLEU alone, guards alone (with and without the language
+/// identifier: `language-id=off`), and BLEU with the guards, and the time the guards add to
+/// BLEU scoring per segment.
 pub(super) fn guard_cost() -> Value {
     let segs = demo_segments();
     let config = ScoreConfig::new(DEFAULT_TOKENIZER, false, ["bleu".parse::<MetricSpec>().expect("fixed metric")]).expect("fixed configuration");
@@ -67,7 +67,7 @@ pub(super) fn guard_cost() -> Value {
     let items: Vec<(usize, String)> = demo_systems().into_iter().flat_map(|sys| sys.hypotheses.into_iter().enumerate()).collect();
     let mut with_target = GuardConfig::default().with_target("de").unwrap_or_default();
     with_target.length_ratio = tally.ratio(with_target.length_min_chars).unwrap_or(with_target.length_ratio);
-    let no_target = GuardConfig { target: None, ..with_target.clone() };
+    let no_target = GuardConfig { language_id: false, ..with_target.clone() };
 
     let run = |guards: Option<&GuardConfig>, score: bool| fastest(|| passes(&compiled, &items, &sources, guards, score));
     let n = (PASSES * items.len()) as f64;

@@ -78,6 +78,10 @@ pub struct SendArgs {
     /// reference-free script and language guards (without it they are undecided).
     #[arg(long = "target-language", value_name = "CODE", requires = "create")]
     pub target_language: Option<String>,
+    /// With --create: a guard threshold as KEY=VALUE (repeatable; keys and defaults as in
+    /// `mtgauge score --help`, e.g. language-id=off).
+    #[arg(long = "guard-setting", value_name = "KEY=VALUE", requires = "create")]
+    pub guard_settings: Vec<String>,
     /// With --create: seed of the replicate weights (sessions whose intervals are compared or
     /// summed across replicas use the same).
     #[arg(long, default_value_t = crate::metric::resample::DEFAULT_RESAMPLE_SEED, value_name = "S", requires = "create")]
@@ -183,6 +187,7 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
                 if_not_exists: true,
                 resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: Some(a.seed) }),
                 target_language: a.target_language.clone().unwrap_or_default(),
+                guard_settings: a.guard_settings.clone(),
             };
             with_retry("create session", || {
                 let mut c = SessionsClient::new(ch.clone());

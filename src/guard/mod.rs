@@ -10,7 +10,7 @@
 //! | `length`     | hypothesis/source length ratio (non-space characters) divided by the expected ratio is below `length_low` or above `length_high`; undecided when the source has fewer than `length_min_chars` |
 //! | `repetition` | the most frequent word n-gram (order `repeat_order`) occurs at least `repeat_count` times, or one word runs `repeat_run` times in a row, and more than in the source (same rule on the source); words are lowercased runs of letters, marks and digits, each CJK ideograph or kana a word of its own |
 //! | `script`     | under `script_min_share` of the hypothesis' letters are in the target language's scripts; undecided without a declared target or without letters |
-//! | `language`   | with at least `language_min_letters` letters: the script guard flags (text mostly in another script is off-target whatever an identifier says), or the identified language (crate `whatlang` 0.18.0, trigram profiles of 70 languages) is reliable and not the declared target; otherwise undecided (no declared target, fewer letters, identification not reliable) |
+//! | `language`   | with at least `language_min_letters` letters: the script guard flags (text mostly in another script is off-target whatever an identifier says), or the identified language (crate `whatlang` 0.18.0, trigram profiles of 70 languages) is reliable and not the declared target; otherwise undecided (no declared target, fewer letters, identification not reliable, or switched off with `language_id`) |
 //!
 //! Each guard gives its own verdict; an item can trip several. Verdicts are a pair of bitsets
 //! ([`Verdict`]); their counts ([`GuardCounts`]) are integers that add across batches,
@@ -199,6 +199,9 @@ pub const DEFAULT_SCRIPT_MIN_SHARE: f64 = 0.5;
 /// identifiers are unreliable on a few words).
 pub const DEFAULT_LANGUAGE_MIN_LETTERS: usize = 30;
 
+/// Whether the language identifier runs unless told (on: the guard as the issue describes it).
+pub const DEFAULT_LANGUAGE_ID: bool = true;
+
 /// The guards' thresholds and the declared target language.
 #[derive(Debug, Clone, PartialEq)]
 pub struct GuardConfig {
@@ -226,6 +229,9 @@ pub struct GuardConfig {
     pub script_min_share: f64,
     /// Minimum letters for the language guard to decide.
     pub language_min_letters: usize,
+    /// Run the language identifier (the costliest guard by far: see `mtgauge bench`); off, the
+    /// language guard only flags text mostly in another script and is undecided otherwise.
+    pub language_id: bool,
 }
 
 impl Default for GuardConfig {
@@ -243,6 +249,7 @@ impl Default for GuardConfig {
             repeat_run: DEFAULT_REPEAT_RUN,
             script_min_share: DEFAULT_SCRIPT_MIN_SHARE,
             language_min_letters: DEFAULT_LANGUAGE_MIN_LETTERS,
+            language_id: DEFAULT_LANGUAGE_ID,
         }
     }
 }
@@ -272,7 +279,7 @@ pub enum GuardError {
 }
 
 /// The settings [`GuardConfig::set`] knows.
-pub const SETTING_KEYS: [&str; 11] = [
+pub const SETTING_KEYS: [&str; 12] = [
     "copy-chrf",
     "copy-order",
     "length-ratio",
@@ -284,6 +291,7 @@ pub const SETTING_KEYS: [&str; 11] = [
     "repeat-run",
     "script-share",
     "language-min-letters",
+    "language-id",
 ];
 
 /// `--help` text of the guard settings, with their defaults.
@@ -292,7 +300,8 @@ pub fn settings_help() -> String {
         "copy-chrf={DEFAULT_COPY_MIN_CHRF} copy-order={DEFAULT_COPY_ORDER} length-ratio={DEFAULT_LENGTH_RATIO} \
          length-low={DEFAULT_LENGTH_LOW} length-high={DEFAULT_LENGTH_HIGH} length-min-chars={DEFAULT_LENGTH_MIN_CHARS} \
          repeat-order={DEFAULT_REPEAT_ORDER} repeat-count={DEFAULT_REPEAT_COUNT} repeat-run={DEFAULT_REPEAT_RUN} \
-         script-share={DEFAULT_SCRIPT_MIN_SHARE} language-min-letters={DEFAULT_LANGUAGE_MIN_LETTERS}"
+         script-share={DEFAULT_SCRIPT_MIN_SHARE} language-min-letters={DEFAULT_LANGUAGE_MIN_LETTERS} language-id={}",
+        if DEFAULT_LANGUAGE_ID { "on" } else { "off" }
     )
 }
 
@@ -322,6 +331,13 @@ impl GuardConfig {
             "repeat-run" => self.repeat_run = int(2, 1_000_000, "a count from 2")?,
             "script-share" => self.script_min_share = float(0.0, 1.0, "a share between 0 and 1")?,
             "language-min-letters" => self.language_min_letters = int(1, 1_000_000, "a count from 1")?,
+            "language-id" => {
+                self.language_id = match value {
+                    "on" => true,
+                    "off" => false,
+                    _ => return Err(bad("on or off")),
+                }
+            }
             _ => return Err(GuardError::UnknownSetting(key.to_owned())),
         }
         Ok(())
@@ -624,6 +640,9 @@ fn language_id(cfg: &GuardConfig, hyp: &str, letters: usize, wrong_script: bool)
     }
     if wrong_script {
         return Outcome::Flag;
+    }
+    if !cfg.language_id {
+        return Outcome::Undecided;
     }
     match whatlang::detect(hyp) {
         Some(info) if info.is_reliable() => flag_if(info.lang() != want),

@@ -152,6 +152,12 @@ fn language_identified_or_undecided() {
     assert!(v.is_undecided(Guard::Language) && !v.is_flagged(Guard::Language));
     // No declared target: undecided.
     assert!(verdict(&GuardConfig::default(), EN_LONG, EN_LONG).is_undecided(Guard::Language));
+    // Identification switched off: wrong-script text is still flagged, the rest undecided.
+    let mut off = cfg("de");
+    off.set("language-id=off").unwrap();
+    assert!(verdict(&off, EN_LONG, EN_LONG).is_undecided(Guard::Language));
+    assert!(verdict(&off, EN_LONG, RU_LONG).is_flagged(Guard::Language));
+    assert!(matches!(off.set("language-id=maybe"), Err(GuardError::BadValue { .. })));
 }
 
 #[test]

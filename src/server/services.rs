@@ -110,6 +110,7 @@ fn session_info(s: &Session) -> pb::SessionInfo {
         memory_bytes: s.memory_bytes() as u64,
         resampling: Some(resampling_to_pb(&spec.resampling)),
         target_language: spec.target_language.clone().unwrap_or_default(),
+        guard_settings: spec.guard_settings.clone(),
     }
 }
 
@@ -221,6 +222,8 @@ impl pb::sessions_server::Sessions for Services {
         let labels: BTreeMap<String, String> = r.labels.into_iter().collect();
         let mut spec = self.state.session_spec(&r.name, &r.refset, config, labels, r.window as usize, resampling_from_pb(r.resampling.as_ref()))?;
         spec.target_language = target_language_from_pb(&r.target_language)?;
+        spec.guard_settings = r.guard_settings.iter().map(|s| s.trim().to_owned()).collect();
+        crate::session::check_guard_settings(spec.target_language.as_deref(), &spec.guard_settings).map_err(|e| ServiceError::Invalid(e.to_string()))?;
         let state = self.state.clone();
         let (session, created) = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
         let spec = session.spec();

@@ -371,7 +371,7 @@ impl State {
         if resampling.resamples > MAX_SESSION_RESAMPLES {
             return Err(ServiceError::Invalid(format!("{} resamples are more than a session may keep ({MAX_SESSION_RESAMPLES})", resampling.resamples)));
         }
-        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling, target_language: None })
+        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling, target_language: None, guard_settings: Vec::new() })
     }
 
     /// Create a session (builds its tables: CPU work, call from a blocking thread). With
@@ -438,7 +438,7 @@ impl State {
 
 /// The parts of a session definition in which `a` and `b` differ (empty: the same).
 pub fn differences(a: &SessionSpec, b: &SessionSpec) -> Vec<&'static str> {
-    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling), ("target language", a.target_language == b.target_language)];
+    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling), ("target language", a.target_language == b.target_language), ("guard settings", a.guard_settings == b.guard_settings)];
     parts.into_iter().filter(|(_, same)| !same).map(|(what, _)| what).collect()
 }
 

@@ -119,7 +119,21 @@ fn guard_config(spec: &SessionSpec, refs: &RefSet) -> GuardConfig {
     if let Some(r) = tally.ratio(c.length_min_chars) {
         c.length_ratio = r;
     }
+    for s in &spec.guard_settings {
+        // Checked at creation ([`check_guard_settings`]); a stored one that no longer parses
+        // keeps its default.
+        let _ = c.set(s);
+    }
     c
+}
+
+/// Check guard settings (and the target language code) of a session definition.
+pub fn check_guard_settings(target_language: Option<&str>, settings: &[String]) -> Result<(), crate::guard::GuardError> {
+    let mut c = GuardConfig::default();
+    if let Some(code) = target_language {
+        c = c.with_target(code)?;
+    }
+    settings.iter().try_for_each(|s| c.set(s))
 }
 
 /// Lookup of live traffic by source text. Segments whose normalised sources are equal become
@@ -184,6 +198,9 @@ pub struct SessionSpec {
     /// Declared target language (ISO 639-1 code of [`crate::guard::LANGUAGES`]) for the
     /// script and language guards; None: undeclared (those guards are undecided).
     pub target_language: Option<String>,
+    /// Guard thresholds as `KEY=VALUE` ([`GuardConfig::set`]), applied after the learned length
+    /// ratio (so a `length-ratio` setting wins); validated when the session is created.
+    pub guard_settings: Vec<String>,
 }
 
 /// How one item of a batch came out.
@@ -568,7 +585,7 @@ mod tests {
 
     fn spec(caseless: bool) -> SessionSpec {
         let config = ScoreConfig { caseless, ..Default::default() };
-        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2, resampling: Resampling::default(), target_language: None }
+        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() }
     }
 
     #[test]

@@ -103,6 +103,9 @@ struct StoredSession {
     /// Absent in sessions stored before the guards: undeclared.
     #[serde(default)]
     target_language: Option<String>,
+    /// Absent in sessions stored before the guards: none.
+    #[serde(default)]
+    guard_settings: Vec<String>,
 }
 
 #[derive(Debug, Default, Serialize, Deserialize)]
@@ -381,7 +384,7 @@ impl Store {
                 }
                 m.insert(producer.to_owned(), v.value());
             }
-            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling, target_language: s.target_language };
+            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling, target_language: s.target_language, guard_settings: s.guard_settings };
             snap.sessions.push(LoadedSession {
                 spec,
                 refset_digest: s.refset_digest,
@@ -430,7 +433,7 @@ impl Store {
 
     /// Record a new session (its statistics start empty).
     pub fn put_session(&self, spec: &SessionSpec, refset_digest: &str, created_unix: i64) -> Result<(), StoreError> {
-        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling, target_language: spec.target_language.clone() };
+        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling, target_language: spec.target_language.clone(), guard_settings: spec.guard_settings.clone() };
         let bytes = serde_json::to_vec(&s).map_err(|e| self.err(e))?;
         self.write(|txn| {
             txn.open_table(SESSIONS)?.insert(spec.name.as_str(), bytes.as_slice())?;
@@ -626,7 +629,7 @@ mod tests {
     #[test]
     fn round_trip_and_versions() {
         let d = dir("rt");
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3, resampling: Resampling::default(), target_language: None };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &set("Tor C")).unwrap();
@@ -672,7 +675,7 @@ mod tests {
         let d = dir("blocks");
         let refs = std::sync::Arc::new(set("Tor C"));
         let config: ScoreConfig = "bleu chrf".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37, resampling: Resampling { resamples: 20, seed: 5 }, target_language: None };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37, resampling: Resampling { resamples: 20, seed: 5 }, target_language: None, guard_settings: Vec::new() };
         let session = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
         // Copies of the replicate sums every 100 records here, so that some are written.
         session.state().replicates.as_mut().unwrap().set_save_every(100);
@@ -738,7 +741,7 @@ mod tests {
         let d = dir("upgrade");
         let refs = set("Tor C");
         let config: ScoreConfig = "bleu:order=2".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3, resampling: Resampling::default(), target_language: None };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &refs).unwrap();

@@ -126,7 +126,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
         let config = config_to_pb(&ScoreConfig::default());
         let labels = [("model".to_string(), w.model.to_string()), ("lang".to_string(), "en-de".to_string())].into_iter().collect();
         SessionsClient::new(ch.clone())
-            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true, resampling: None, target_language: "de".into() })
+            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true, resampling: None, target_language: "de".into(), guard_settings: Vec::new() })
             .await
             .map_err(usage("create session"))?;
     }
