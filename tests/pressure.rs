@@ -196,6 +196,7 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
                 pb::ScoreItem { key: Some(key), hypothesis: "die fähre fährt um neun".into() }
             })
             .collect(),
+        ..Default::default()
     };
     let send = |from: usize, to: usize| {
         let batches: Vec<pb::ScoreBatch> = (from..to).map(batch).collect();
@@ -228,7 +229,7 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
     assert!(grown < 8 * 1024, "memory grew {grown} KiB over a flood of unknown ids and sources");
     // And the server still scores.
     let segs = demo_segments();
-    let ok = pb::ScoreBatch { session: "flood".into(), producer: "after".into(), sequence: 1, want_segment_scores: false, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[0].id.clone())), hypothesis: segs[0].refs[0].clone() }] };
+    let ok = pb::ScoreBatch { session: "flood".into(), producer: "after".into(), sequence: 1, want_segment_scores: false, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[0].id.clone())), hypothesis: segs[0].refs[0].clone() }], ..Default::default() };
     let ack = scoring.submit(ok).await.unwrap().into_inner();
     assert_eq!(ack.scored, 1);
 }
@@ -255,7 +256,7 @@ async fn a_subscriber_that_stops_reading_skips_reports_instead_of_queueing_them(
             let s = (b as usize * 10 + i) % segs.len();
             pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone() }
         });
-        scoring.submit(pb::ScoreBatch { session: "w".into(), producer: "p".into(), sequence: b + 1, want_segment_scores: false, items: items.collect() }).await.unwrap();
+        scoring.submit(pb::ScoreBatch { session: "w".into(), producer: "p".into(), sequence: b + 1, want_segment_scores: false, items: items.collect(), ..Default::default() }).await.unwrap();
         fast.message().await.unwrap().expect("the reading subscriber gets its reports");
     }
     let final_segments = report(&ch, "w").await.cumulative.unwrap().segments;

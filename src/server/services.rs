@@ -297,6 +297,7 @@ impl InFlight {
 async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     let started = Instant::now();
     let session = state.session(&batch.session)?;
+    state.fleet().check(&batch.producer, &batch.replicas)?;
     if batch.items.is_empty() {
         return Err(ServiceError::Invalid("empty batch: send at least one item".into()));
     }
@@ -598,6 +599,15 @@ impl pb::scoring_server::Scoring for Services {
         let report = blocking(move || compare_sessions(&a, &b, &r)).await?;
         drop(slot);
         Ok(Response::new(report))
+    }
+
+    async fn identify(&self, req: Request<pb::IdentifyRequest>) -> std::result::Result<Response<pb::ReplicaIdentity>, Status> {
+        // Any scope: producers (submit) and readers (read) both route by it.
+        if self.authorize(&req, Scope::Read).is_err() {
+            self.authorize(&req, Scope::Submit)?;
+        }
+        let f = self.state.fleet();
+        Ok(Response::new(pb::ReplicaIdentity { replica: f.name.clone().unwrap_or_default(), fleet: f.members.clone(), version: env!("CARGO_PKG_VERSION").into() }))
     }
 
     async fn watch_scores(&self, req: Request<pb::WatchScoresRequest>) -> std::result::Result<Response<Self::WatchScoresStream>, Status> {

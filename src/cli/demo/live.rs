@@ -252,7 +252,7 @@ async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, s
                 pb::ScoreItem { key: Some(key), hypothesis }
             })
             .collect();
-        let batch = pb::ScoreBatch { session: w.session.into(), producer: producer.clone(), sequence: seq, items, want_segment_scores: false };
+        let batch = pb::ScoreBatch { session: w.session.into(), producer: producer.clone(), sequence: seq, items, want_segment_scores: false, replicas: Vec::new() };
         if tx.send(batch).await.is_err() {
             break;
         }
