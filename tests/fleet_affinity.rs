@@ -190,6 +190,41 @@ async fn sixteen_producers_survive_a_killed_replica_and_count_everything_once() 
         assert_eq!((summary["scored"].as_u64(), summary["duplicate_batches"].as_u64()), (Some(0), Some(p.items.len() as u64)), "{}: {summary}", p.id);
     }
     assert_eq!(fleet.sum().await, expected, "the second run counted nothing");
+
+    // Fleet-wide status: the replicas' statistics and replicate sums added up equal one
+    // process's, intervals included (the replicate sums of every item, keyed by segment id).
+    let status = |extra: &[&str]| Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["status", "--server", &urls, "--session", SESSION, "--json"]).args(extra).output().unwrap();
+    let out = status(&[]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["fleet"]["answered"].as_array().map(Vec::len), Some(3), "{}", v["fleet"]);
+    assert_eq!(v["fleet"]["partial"], false);
+    let config = ScoreConfig::default();
+    let want = mtgauge::report::stats_json(&expected, &config);
+    let compiled = Compiled::build(demo_refset(), config.clone());
+    let index: std::collections::HashMap<String, usize> = demo_segments().into_iter().enumerate().map(|(i, s)| (s.id, i)).collect();
+    let mut scratch = Scratch::default();
+    let stats: Vec<_> = items.iter().map(|(id, h)| compiled.score_segment(index[id], h, &mut scratch)).collect();
+    let keys: Vec<u64> = items.iter().map(|(id, _)| mtgauge::metric::resample::segment_key(id.as_bytes())).collect();
+    let one = mtgauge::metric::resample::accumulate(&config, mtgauge::metric::resample::DAEMON_RESAMPLES, mtgauge::metric::resample::DEFAULT_RESAMPLE_SEED, &keys, &stats, 1);
+    for metric in config.metric_list() {
+        let mut got = v["cumulative"][metric.name()].clone();
+        let interval = got.as_object_mut().unwrap().remove("interval").expect("a fleet interval");
+        assert_eq!(got, want[metric.name()], "{} statistics of the fleet", metric.name());
+        let i = one.interval(metric, 0.95).unwrap();
+        assert_eq!((interval["low"].as_f64(), interval["high"].as_f64()), (Some(i.low), Some(i.high)), "{} interval of the fleet", metric.name());
+    }
+    // One replica down: no fleet figure, unless a partial one is asked for.
+    fleet.servers[2].kill();
+    let out = status(&[]);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success() && err.contains("2 of 3 replicas answered") && err.contains("--partial"), "{err}");
+    let out = status(&["--partial"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["fleet"]["partial"], true);
+    let r2: usize = ps.iter().zip(&owners).filter(|(_, o)| **o == "r2").map(|(p, _)| p.items.len()).sum();
+    assert_eq!(v["cumulative"]["segments"].as_u64().or(v["cumulative"]["bleu"]["segments"].as_u64()).map(|n| n as usize), Some(items.len() - r2), "{}", v["cumulative"]);
     let per_replica: BTreeMap<&str, usize> = owners.iter().fold(BTreeMap::new(), |mut m, o| {
         *m.entry(o.as_str()).or_default() += 1;
         m

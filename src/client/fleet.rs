@@ -50,9 +50,18 @@ pub struct Fleet {
 /// One address of the fleet: the URL to connect to, and the host name TLS checks the
 /// certificate against when the URL was made from a resolved address.
 #[derive(Debug, Clone, PartialEq, Eq)]
-struct Endpoint {
-    url: String,
-    tls_name: Option<String>,
+pub struct Endpoint {
+    /// The URL.
+    pub url: String,
+    /// The name TLS checks, when not the URL's host.
+    pub tls_name: Option<String>,
+}
+
+impl Endpoint {
+    /// A connection to it.
+    pub fn connect(&self) -> Result<Conn, ClientError> {
+        channel_to(&self.url, self.tls_name.as_deref())
+    }
 }
 
 impl Fleet {
@@ -156,7 +165,7 @@ impl Fleet {
 
     /// Every URL, with a host name that resolves to several addresses replaced by one URL per
     /// address (resolved again on every call).
-    async fn endpoints(&self) -> Result<Vec<Endpoint>, ClientError> {
+    pub async fn endpoints(&self) -> Result<Vec<Endpoint>, ClientError> {
         let mut out = Vec::new();
         for u in &self.urls {
             let uri: tonic::transport::Uri = u.parse().map_err(|_| ClientError::Setup(format!("--server {u}: not a URL")))?;
@@ -182,7 +191,7 @@ impl Fleet {
 }
 
 /// The Identify answer of one endpoint, or why there is none.
-async fn identify(e: Endpoint) -> Result<pb::ReplicaIdentity, String> {
+pub async fn identify(e: Endpoint) -> Result<pb::ReplicaIdentity, String> {
     let conn = channel_to(&e.url, e.tls_name.as_deref()).map_err(|x| x.to_string())?;
     let mut c = pb::scoring_client::ScoringClient::new(conn);
     match tokio::time::timeout(IDENTIFY_TIMEOUT, c.identify(pb::IdentifyRequest {})).await {

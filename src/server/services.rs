@@ -22,7 +22,7 @@ use super::{ACK_BUFFER, DEFAULT_WATCH_SECONDS};
 use crate::metric::CorpusStats;
 use crate::pb;
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
-use crate::pb::convert::{config_from_pb, config_to_pb, interval_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals};
+use crate::pb::convert::{config_from_pb, config_to_pb, interval_to_pb, replicate_sums_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals};
 use crate::refs::compiled::Scratch;
 use crate::report::PROXY_NOTE;
 use crate::session::{ItemKey, Outcome, Session};
@@ -57,7 +57,7 @@ impl Services {
     /// The services over `state`, and the one watch publisher they share (so: call inside a
     /// Tokio runtime).
     pub fn new(state: State, stop: watch::Receiver<bool>, tokens: Option<Arc<Tokens>>, max_message_bytes: usize) -> Services {
-        let watchers = Watchers::start(state.clone(), stop.clone(), report);
+        let watchers = Watchers::start(state.clone(), stop.clone(), |state, session, level| report(state, session, level, false));
         Services { state, stop, tokens, max_message_bytes, watchers }
     }
 
@@ -380,7 +380,7 @@ const CUMULATIVE_PREDATES: &str = "no cumulative interval: the statistics were k
 const RECENT_PREDATES: &str = "no recent interval yet: the window still holds segments kept before this session kept replicates";
 
 /// A session's scores now, intervals at `level` (0: the default).
-pub fn report(state: &State, session: &Session, level: f64) -> pb::ScoresReport {
+pub fn report(state: &State, session: &Session, level: f64, with_sums: bool) -> pb::ScoresReport {
     let spec = session.spec();
     let level = if level == 0.0 { DEFAULT_LEVEL } else { level };
     // Statistics and replicates are read under two short locks: a batch applied in between
@@ -414,6 +414,8 @@ pub fn report(state: &State, session: &Session, level: f64) -> pb::ScoresReport 
         interval_note: notes.join("; "),
         resampling: Some(resampling_to_pb(&spec.resampling)),
         alerts: state.alerts().of(&spec.name),
+        cumulative_sums: cum_reps.as_ref().filter(|_| with_sums).map(replicate_sums_to_pb),
+        recent_sums: recent_reps.as_ref().filter(|_| with_sums).map(replicate_sums_to_pb),
     }
 }
 
@@ -588,7 +590,7 @@ impl pb::scoring_server::Scoring for Services {
         let level = check_level(r.level)?;
         let s = self.state.session(&r.session)?;
         let state = self.state.clone();
-        Ok(Response::new(blocking(move || Ok(report(&state, &s, level))).await?))
+        Ok(Response::new(blocking(move || Ok(report(&state, &s, level, r.with_replicate_sums))).await?))
     }
 
     async fn compare(&self, req: Request<pb::CompareRequest>) -> std::result::Result<Response<pb::CompareReport>, Status> {
