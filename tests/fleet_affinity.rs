@@ -10,7 +10,7 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Output, Stdio};
 use std::time::{Duration, Instant};
 
-use common::{demo_files, demo_refset, temp_dir, Server};
+use common::{demo_files, demo_refset, offline_demo, temp_dir, Server};
 use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
 use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
@@ -20,18 +20,6 @@ use mtgauge::refs::compiled::{Compiled, Scratch};
 
 const WAIT: Duration = Duration::from_secs(120);
 const SESSION: &str = "fleet";
-
-/// The offline statistics of `items` (segment id, hypothesis) under the default configuration.
-fn offline(items: &[(String, String)]) -> CorpusStats {
-    let compiled = Compiled::build(demo_refset(), ScoreConfig::default());
-    let ids: std::collections::HashMap<String, usize> = demo_segments().into_iter().enumerate().map(|(i, s)| (s.id, i)).collect();
-    let mut scratch = Scratch::default();
-    let mut sum = CorpusStats::default();
-    for (id, h) in items {
-        sum.add_segment(&compiled.score_segment(ids[id], h, &mut scratch));
-    }
-    sum
-}
 
 /// `passes` passes over every demo system, keyed by segment id.
 fn demo_items(passes: usize) -> Vec<(String, String)> {
@@ -180,7 +168,7 @@ async fn sixteen_producers_survive_a_killed_replica_and_count_everything_once() 
         assert_eq!(scored + dup, p.items.len() as u64, "{}: {summary}", p.id);
         retried += stderr.contains("resuming in") as usize;
     }
-    let expected = offline(&items);
+    let expected = offline_demo(&items);
     assert_eq!(fleet.sum().await, expected, "the replicas' sums equal the offline statistics exactly");
 
     // Every producer runs its send again: every batch is acknowledged as already counted.
@@ -263,7 +251,7 @@ async fn with_failover_nothing_is_lost_and_the_doubled_count_is_reported() {
     let addr = fleet.servers[victim].grpc.trim_start_matches("http://").to_owned();
     fleet.servers[victim] = Server::start_on(&addr, &fleet.args(victim));
     fleet.servers[victim].wait_serving().await;
-    let expected = offline(&items);
+    let expected = offline_demo(&items);
     let sum = fleet.sum().await;
     assert!(sum.segments >= expected.segments, "nothing lost: {} of {} segments", sum.segments, expected.segments);
     let doubled = sum.segments - expected.segments;
@@ -348,5 +336,5 @@ async fn a_name_that_resolves_to_every_replica_routes_each_producer_to_its_own()
     for s in &servers {
         sum += stats_from_pb(&cumulative(s).await.unwrap_or_default());
     }
-    assert_eq!(sum, offline(&items), "each item counted once, on its producer's replica");
+    assert_eq!(sum, offline_demo(&items), "each item counted once, on its producer's replica");
 }

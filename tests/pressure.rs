@@ -12,13 +12,11 @@ use std::io::Read;
 use std::net::TcpStream;
 use std::time::{Duration, Instant};
 
-use common::{demo_files, demo_refset, temp_dir, Server};
+use common::{demo_files, offline_demo, temp_dir, Server};
 use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
-use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
 use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
-use mtgauge::refs::compiled::{Compiled, Scratch};
 use mtgauge::pb::convert::stats_from_pb;
 use tonic::transport::{Channel, Endpoint};
 
@@ -295,17 +293,6 @@ async fn a_subscriber_that_stops_reading_skips_reports_instead_of_queueing_them(
     assert!(matches!(slow.message().await, Ok(None) | Err(_)), "nothing follows the closing status");
 }
 
-fn offline(items: &[(String, String)]) -> CorpusStats {
-    let compiled = Compiled::build(demo_refset(), ScoreConfig::default());
-    let ids: std::collections::HashMap<String, usize> = demo_segments().into_iter().enumerate().map(|(i, s)| (s.id, i)).collect();
-    let mut scratch = Scratch::default();
-    let mut sum = CorpusStats::default();
-    for (id, h) in items {
-        sum.add_segment(&compiled.score_segment(ids[id], h, &mut scratch));
-    }
-    sum
-}
-
 /// `send` against a server that is down when it starts, and again in the middle of its stream:
 /// it retries on UNAVAILABLE, reconnects on its own, resumes after the last acknowledged batch,
 /// and the session ends with exactly the offline statistics (nothing lost, nothing doubled).
@@ -365,7 +352,7 @@ async fn send_rides_out_a_server_restart() {
     let summary: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(summary["unknown"].as_u64(), Some(0));
     let r = report(&ch, "retry").await;
-    assert_eq!(stats_from_pb(r.cumulative.as_ref().unwrap()), offline(&items), "exactly the offline statistics: nothing lost, nothing doubled");
+    assert_eq!(stats_from_pb(r.cumulative.as_ref().unwrap()), offline_demo(&items), "exactly the offline statistics: nothing lost, nothing doubled");
     eprintln!("killed after {counted} of {} items were counted; final {} segments; send said:\n{stderr}", items.len(), r.cumulative.unwrap().segments);
 }
 
