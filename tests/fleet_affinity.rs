@@ -337,4 +337,19 @@ async fn a_name_that_resolves_to_every_replica_routes_each_producer_to_its_own()
         sum += stats_from_pb(&cumulative(s).await.unwrap_or_default());
     }
     assert_eq!(sum, offline_demo(&items), "each item counted once, on its producer's replica");
+
+    // One unnamed server reached under a name with two addresses (as `localhost` can be ::1 and
+    // 127.0.0.1): a lone server, used as the URL says, not a fleet.
+    let lone = Server::start_on("0.0.0.0:0", &["--durability", "none", "--refset", &refs]);
+    lone.wait_serving().await;
+    let lone_port = lone.grpc.rsplit(':').next().unwrap().to_owned();
+    std::fs::write(&hosts, "127.0.0.1 localhost\n127.0.0.2 lone.mtgauge.test\n127.0.0.3 lone.mtgauge.test\n").unwrap();
+    let p = &ps[0];
+    let script = format!(
+        "mount --bind {} /etc/hosts && exec {} send --server http://lone.mtgauge.test:{lone_port} --session {SESSION} --create --refset ferry --json --producer {} --hyp {} --ids {}",
+        hosts.display(), env!("CARGO_BIN_EXE_mtgauge"), p.id, p.hyp.display(), p.ids.display()
+    );
+    let child = Command::new("unshare").args(["--mount", "sh", "-c", &script]).stdout(Stdio::piped()).stderr(Stdio::piped()).spawn().unwrap();
+    let (summary, stderr) = finished(child);
+    assert_eq!((summary["replica"].clone(), summary["scored"].as_u64()), (serde_json::Value::Null, Some(p.items.len() as u64)), "{stderr}");
 }

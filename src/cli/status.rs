@@ -135,15 +135,14 @@ pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
     let fleet = Fleet::parse(&a.server, std::time::Duration::ZERO, false)?;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
     let rendered = rt.block_on(async {
-        let endpoints = fleet.endpoints().await?;
-        if let [one] = endpoints.as_slice() {
+        if let Some(one) = fleet.lone().await? {
             let mut out = Vec::new();
-            for (info, r) in reports(one, a.session.as_deref(), a.level, false).await? {
+            for (info, r) in reports(&one, a.session.as_deref(), a.level, false).await? {
                 out.push(render(&r, &info, a.level)?);
             }
             return Ok::<_, CliError>(out);
         }
-        fleet_view(&endpoints, &a).await
+        fleet_view(&fleet.endpoints().await?, &a).await
     })?;
     let text = if a.json {
         let v: Vec<Value> = rendered.iter().map(|(j, _)| j.clone()).collect();

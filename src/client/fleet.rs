@@ -87,12 +87,11 @@ impl Fleet {
     /// [`Fleet::wait`] says.
     pub async fn route(&self, producer: &str) -> Result<Route, ClientError> {
         let started = Instant::now();
+        if let Some(e) = self.lone().await? {
+            return Ok(Route { conn: e.connect()?, url: e.url.clone(), replica: None, declared: Vec::new() });
+        }
         loop {
             let endpoints = self.endpoints().await?;
-            if endpoints.len() == 1 && self.urls.len() == 1 {
-                let e = &endpoints[0];
-                return Ok(Route { conn: channel_to(&e.url, e.tls_name.as_deref())?, url: e.url.clone(), replica: None, declared: Vec::new() });
-            }
             let why = match self.choose(producer, &endpoints, started.elapsed() >= self.wait).await? {
                 Ok(route) => return Ok(route),
                 Err(why) => why,
@@ -161,6 +160,22 @@ impl Fleet {
             }
         }
         Ok(Err(why))
+    }
+
+    /// The server, when `--server` names one server rather than a fleet: one URL whose host is
+    /// one address, or whose addresses do not name themselves as replicas (`localhost` may be
+    /// both ::1 and 127.0.0.1: one server, reached as the URL says).
+    pub async fn lone(&self) -> Result<Option<Endpoint>, ClientError> {
+        if self.urls.len() > 1 {
+            return Ok(None);
+        }
+        let given = Endpoint { url: self.urls[0].clone(), tls_name: None };
+        let endpoints = self.endpoints().await?;
+        if endpoints.len() <= 1 {
+            return Ok(Some(given));
+        }
+        let named = identify_all(&endpoints).await.into_iter().any(|a| a.is_ok_and(|id| !id.replica.is_empty()));
+        Ok((!named).then_some(given))
     }
 
     /// Every URL, with a host name that resolves to several addresses replaced by one URL per
