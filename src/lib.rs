@@ -10,6 +10,7 @@
 //!
 //! The scoring core (`text`, `metric`, `refs`, `session`) is synchronous and free of I/O: no
 //! async, no files, no network; `session` guards each session's state with a short std mutex.
+pub mod affinity;
 pub mod alerts;
 pub mod cli;
 pub mod client;

@@ -122,7 +122,7 @@ fn by_id(id: &str, hyp: &str) -> pb::ScoreItem {
 }
 
 fn batch(session: &str, producer: &str, sequence: u64, items: Vec<pb::ScoreItem>) -> pb::ScoreBatch {
-    pb::ScoreBatch { session: session.into(), producer: producer.into(), sequence, items, want_segment_scores: false }
+    pb::ScoreBatch { session: session.into(), producer: producer.into(), sequence, items, want_segment_scores: false, ..Default::default() }
 }
 
 fn create_req(name: &str, refset: &str, labels: &[(&str, &str)]) -> pb::CreateSessionRequest {

@@ -52,6 +52,7 @@ fn plan(seed: u64) -> Vec<Vec<pb::ScoreBatch>> {
                     sequence: b as u64 + 1,
                     items: chunk.iter().map(|(i, h)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[*i].id.clone())), hypothesis: h.clone() }).collect(),
                     want_segment_scores: false,
+                    ..Default::default()
                 })
                 .collect()
         })
@@ -248,7 +249,7 @@ async fn a_store_that_cannot_be_written_stops_the_server_and_keeps_what_was_ackn
             let s = (sequence as usize * 50 + i) % segs.len();
             pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone() }
         });
-        pb::ScoreBatch { session: "full".into(), producer: "p".into(), sequence, want_segment_scores: false, items: items.collect() }
+        pb::ScoreBatch { session: "full".into(), producer: "p".into(), sequence, want_segment_scores: false, items: items.collect(), ..Default::default() }
     };
     let mut acked = 0u64;
     let refused = loop {

@@ -93,6 +93,7 @@ async fn sixteen_streams(by_source: bool) {
                     sequence: seq,
                     items: rest[..n].iter().map(|(i, h)| item(by_source, *i, h)).collect(),
                     want_segment_scores: p == 0,
+                    ..Default::default()
                 });
                 rest = &rest[n..];
             }
@@ -202,6 +203,7 @@ async fn lifecycle_unknown_reset_close_replace_watch() {
         sequence: seq,
         items: ids.iter().enumerate().map(|(k, id)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((*id).into())), hypothesis: hyp[k].clone() }).collect(),
         want_segment_scores: false,
+        ..Default::default()
     };
     // Plain sets are keyed by line number.
     let ack = scoring.submit(batch(1, &["1", "2", "no-such-id", "301"])).await.unwrap().into_inner();
@@ -322,7 +324,7 @@ async fn bad_requests_get_precise_statuses() {
     let e = sessions.create(req("v7", "ferry")).await.unwrap_err();
     assert!(e.message().contains("(ask with if_not_exists to reuse it)"), "{}", e.message());
 
-    let batch = |session: &str, items: Vec<pb::ScoreItem>| pb::ScoreBatch { session: session.into(), producer: String::new(), sequence: 0, items, want_segment_scores: false };
+    let batch = |session: &str, items: Vec<pb::ScoreItem>| pb::ScoreBatch { session: session.into(), producer: String::new(), sequence: 0, items, want_segment_scores: false, ..Default::default() };
     let it = |id: &str, hyp: &str| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(id.into())), hypothesis: hyp.into() };
     assert_eq!(code(scoring.submit(batch("nope", vec![it("notice-0001", "x")])).await), Code::NotFound);
     assert_eq!(code(scoring.submit(batch("v7", vec![])).await), Code::InvalidArgument);
@@ -551,7 +553,7 @@ async fn run_in_process_serves_until_its_shutdown_future_resolves() {
     let ch = server.wait_serving().await;
     create(&ch, "inproc", "ferry", all_metrics()).await;
     let items: Vec<(usize, String)> = demo_items().into_iter().take(40).collect();
-    let batch = pb::ScoreBatch { session: "inproc".into(), producer: "p".into(), sequence: 1, want_segment_scores: false, items: items.iter().map(|(i, h)| item(false, *i, h)).collect() };
+    let batch = pb::ScoreBatch { session: "inproc".into(), producer: "p".into(), sequence: 1, want_segment_scores: false, items: items.iter().map(|(i, h)| item(false, *i, h)).collect(), ..Default::default() };
     let ack = ScoringClient::new(ch.clone()).submit(batch).await.unwrap().into_inner();
     assert_eq!((ack.scored, ack.duplicate), (40, false));
     let got = scores(&ch, "inproc").await;

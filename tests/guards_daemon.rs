@@ -116,6 +116,7 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
         sequence: seq,
         items: part.iter().map(|(it, _)| it.clone()).collect(),
         want_segment_scores,
+        ..Default::default()
     };
     let ack1 = scoring.submit(batch(1, a, true)).await.unwrap().into_inner();
     let ack2 = scoring.submit(batch(2, b, false)).await.unwrap().into_inner();

@@ -12,13 +12,11 @@ use std::io::Read;
 use std::net::TcpStream;
 use std::time::{Duration, Instant};
 
-use common::{demo_files, demo_refset, temp_dir, Server};
+use common::{demo_files, offline_demo, temp_dir, Server};
 use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
-use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
 use mtgauge::pb::scoring_client::ScoringClient;
 use mtgauge::pb::sessions_client::SessionsClient;
-use mtgauge::refs::compiled::{Compiled, Scratch};
 use mtgauge::pb::convert::stats_from_pb;
 use tonic::transport::{Channel, Endpoint};
 
@@ -196,6 +194,7 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
                 pb::ScoreItem { key: Some(key), hypothesis: "die fähre fährt um neun".into() }
             })
             .collect(),
+        ..Default::default()
     };
     let send = |from: usize, to: usize| {
         let batches: Vec<pb::ScoreBatch> = (from..to).map(batch).collect();
@@ -228,7 +227,7 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
     assert!(grown < 8 * 1024, "memory grew {grown} KiB over a flood of unknown ids and sources");
     // And the server still scores.
     let segs = demo_segments();
-    let ok = pb::ScoreBatch { session: "flood".into(), producer: "after".into(), sequence: 1, want_segment_scores: false, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[0].id.clone())), hypothesis: segs[0].refs[0].clone() }] };
+    let ok = pb::ScoreBatch { session: "flood".into(), producer: "after".into(), sequence: 1, want_segment_scores: false, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[0].id.clone())), hypothesis: segs[0].refs[0].clone() }], ..Default::default() };
     let ack = scoring.submit(ok).await.unwrap().into_inner();
     assert_eq!(ack.scored, 1);
 }
@@ -255,7 +254,7 @@ async fn a_subscriber_that_stops_reading_skips_reports_instead_of_queueing_them(
             let s = (b as usize * 10 + i) % segs.len();
             pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone() }
         });
-        scoring.submit(pb::ScoreBatch { session: "w".into(), producer: "p".into(), sequence: b + 1, want_segment_scores: false, items: items.collect() }).await.unwrap();
+        scoring.submit(pb::ScoreBatch { session: "w".into(), producer: "p".into(), sequence: b + 1, want_segment_scores: false, items: items.collect(), ..Default::default() }).await.unwrap();
         fast.message().await.unwrap().expect("the reading subscriber gets its reports");
     }
     let final_segments = report(&ch, "w").await.cumulative.unwrap().segments;
@@ -292,17 +291,6 @@ async fn a_subscriber_that_stops_reading_skips_reports_instead_of_queueing_them(
     assert_eq!(status.code(), tonic::Code::ResourceExhausted, "{status:?}");
     assert!(status.message().contains(&format!("{} reports in a row were left unread", mtgauge::server::watchers::MAX_UNREAD_REPORTS)), "{}", status.message());
     assert!(matches!(slow.message().await, Ok(None) | Err(_)), "nothing follows the closing status");
-}
-
-fn offline(items: &[(String, String)]) -> CorpusStats {
-    let compiled = Compiled::build(demo_refset(), ScoreConfig::default());
-    let ids: std::collections::HashMap<String, usize> = demo_segments().into_iter().enumerate().map(|(i, s)| (s.id, i)).collect();
-    let mut scratch = Scratch::default();
-    let mut sum = CorpusStats::default();
-    for (id, h) in items {
-        sum.add_segment(&compiled.score_segment(ids[id], h, &mut scratch));
-    }
-    sum
 }
 
 /// `send` against a server that is down when it starts, and again in the middle of its stream:
@@ -364,7 +352,7 @@ async fn send_rides_out_a_server_restart() {
     let summary: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(summary["unknown"].as_u64(), Some(0));
     let r = report(&ch, "retry").await;
-    assert_eq!(stats_from_pb(r.cumulative.as_ref().unwrap()), offline(&items), "exactly the offline statistics: nothing lost, nothing doubled");
+    assert_eq!(stats_from_pb(r.cumulative.as_ref().unwrap()), offline_demo(&items), "exactly the offline statistics: nothing lost, nothing doubled");
     eprintln!("killed after {counted} of {} items were counted; final {} segments; send said:\n{stderr}", items.len(), r.cumulative.unwrap().segments);
 }
 

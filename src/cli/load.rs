@@ -217,7 +217,7 @@ async fn drive(ch: &Conn, session: &str, corpus: &Arc<Corpus>, a: &LoadArgs, pac
                 items: (b * a.batch..((b + 1) * a.batch).min(n))
                     .map(|i| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((i + 1).to_string())), hypothesis: corpus.hyps[i].clone() })
                     .collect(),
-                want_segment_scores: false,
+                ..Default::default()
             })
             .collect(),
     );

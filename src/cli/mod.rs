@@ -72,6 +72,7 @@ pub enum Command {
     #[command(long_about = send::LONG_ABOUT)]
     Send(send::SendArgs),
     /// Show the scores of a running server's sessions.
+    #[command(long_about = status::LONG_ABOUT)]
     Status(status::StatusArgs),
     /// Make a bearer token and the line for the server's tokens file.
     #[command(long_about = token::LONG_ABOUT)]

@@ -7,7 +7,8 @@ use sha2::{Digest, Sha256};
 
 use super::input::{display_name, read_bytes};
 use super::{stderr_is_terminal, CliError, ScoringArgs};
-use crate::client::{channel, retryable, with_retry, Backoff, ClientError, Conn, MAX_ATTEMPTS};
+use crate::client::fleet::{Fleet, DEFAULT_REPLICA_WAIT};
+use crate::client::{retryable, Backoff, ClientError, MAX_ATTEMPTS};
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
@@ -29,6 +30,16 @@ Batches carry a stable producer id (default: derived from the session and the in
 and sequence numbers 1, 2, ...: re-running the identical command after a failure counts nothing \
 twice. Unavailable servers are retried with backoff.
 
+A fleet: --server takes several URLs (comma-separated), or a name that resolves to every \
+replica. Each replica has a name (serve --replica-name); the producer's batches all go to one \
+replica, the one its producer id picks by rendezvous hashing over the replicas' names (README, \
+\"Producer affinity\"), and declare that set so that a replica refuses a misrouted batch. That \
+replica holds the producer's sequence marks, so nothing counts twice across the fleet. When it \
+does not answer, send waits for it (re-resolving the names) for --replica-wait seconds, then \
+fails: re-run the same command once it is back. --failover instead goes on with the next \
+replica in the producer's order: a batch whose acknowledgement was lost then counts twice, once \
+on each replica.
+
 Connection settings come from the environment: MTGAUGE_TOKEN (bearer token), MTGAUGE_TLS_CA \
 (server CA, PEM; or use an https:// URL), MTGAUGE_TLS_CERT and MTGAUGE_TLS_KEY (client \
 certificate for mutual TLS).";
@@ -36,9 +47,19 @@ certificate for mutual TLS).";
 /// `send` options.
 #[derive(Debug, Args)]
 pub struct SendArgs {
-    /// Server URL, e.g. http://127.0.0.1:7410.
-    #[arg(long, value_name = "URL")]
+    /// Server URL, e.g. http://127.0.0.1:7410; for a fleet, several URLs separated by commas,
+    /// or one whose name resolves to every replica.
+    #[arg(long, value_name = "URL[,URL...]")]
     pub server: String,
+    /// Fleet: seconds to wait for the producer's replica when it does not answer, before
+    /// failing (or, with --failover, going to the next replica).
+    #[arg(long, default_value_t = DEFAULT_REPLICA_WAIT.as_secs(), value_name = "S")]
+    pub replica_wait: u64,
+    /// Fleet: once --replica-wait has passed, send to the next replica in the producer's order
+    /// instead of failing. RISK: a batch the first replica applied but whose acknowledgement
+    /// was lost is then counted again by the other replica (counted twice).
+    #[arg(long)]
+    pub failover: bool,
     /// Session to send into.
     #[arg(long, value_name = "NAME")]
     pub session: String,
@@ -144,8 +165,8 @@ fn batches(session: &str, producer: &str, size: usize, hyps: &[&str], sources: O
             session: session.to_owned(),
             producer: producer.to_owned(),
             sequence: b as u64 + 1,
-            want_segment_scores: false,
             items: chunk.iter().enumerate().map(|(i, h)| pb::ScoreItem { key: Some(item_key(b * size + i, sources, ids)), hypothesis: (*h).to_owned() }).collect(),
+            ..Default::default()
         })
         .collect()
 }
@@ -175,35 +196,25 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
     let labels = labels(&a.labels)?;
     let show = stderr_is_terminal() && !a.json;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
-    let totals = rt.block_on(async {
-        let ch = channel(&a.server)?;
-        if a.create {
-            let req = pb::CreateSessionRequest {
-                name: a.session.clone(),
-                refset: a.refset.clone().unwrap_or_default(),
-                config: Some(config_to_pb(&config)),
-                labels: labels.into_iter().collect(),
-                window: 0,
-                if_not_exists: true,
-                resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: Some(a.seed) }),
-                target_language: a.target_language.clone().unwrap_or_default(),
-                guard_settings: a.guard_settings.clone(),
-            };
-            with_retry("create session", || {
-                let mut c = SessionsClient::new(ch.clone());
-                let req = req.clone();
-                async move { c.create(req).await }
-            })
-            .await?;
-        }
-        stream_all(&ch, &batches, show).await
-    })?;
+    let fleet = Fleet::parse(&a.server, std::time::Duration::from_secs(a.replica_wait), a.failover)?;
+    let create = a.create.then(|| pb::CreateSessionRequest {
+        name: a.session.clone(),
+        refset: a.refset.clone().unwrap_or_default(),
+        config: Some(config_to_pb(&config)),
+        labels: labels.into_iter().collect(),
+        window: 0,
+        if_not_exists: true,
+        resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: Some(a.seed) }),
+        target_language: a.target_language.clone().unwrap_or_default(),
+        guard_settings: a.guard_settings.clone(),
+    });
+    let (totals, replica) = rt.block_on(stream_all(&fleet, &producer, create.as_ref(), &batches, show))?;
     if show {
         eprintln!();
     }
     let line = if a.json {
         serde_json::json!({
-            "session": a.session, "producer": producer, "batches": totals.batches, "scored": totals.scored,
+            "session": a.session, "producer": producer, "replica": replica, "batches": totals.batches, "scored": totals.scored,
             "unknown": totals.unknown, "rejected": totals.rejected, "duplicate_batches": totals.duplicate_batches,
         })
         .to_string()
@@ -217,20 +228,31 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
     Ok(())
 }
 
-/// Stream every batch, resuming after the last acknowledged one when the connection fails (the
-/// server's per-producer sequence marks make a resent batch count once).
-async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result<Totals, CliError> {
+/// Stream every batch to the producer's replica (creating the session there first when
+/// asked), resuming after the last acknowledged batch when a call fails (the replica's
+/// per-producer sequence marks make a resent batch count once). Returns the totals and the
+/// replica's name (None: a lone server).
+async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSessionRequest>, batches: &[pb::ScoreBatch], show: bool) -> Result<(Totals, Option<String>), CliError> {
     let mut totals = Totals::default();
     let mut next = 0usize;
     let mut backoff = Backoff::default();
     let mut failures = 0u32;
-    while next < batches.len() {
+    let mut route = fleet.route(producer).await?;
+    let mut created_on: Option<String> = None;
+    loop {
         let before = next;
-        let mut client = ScoringClient::new(ch.clone()).max_decoding_message_size(STREAM_MESSAGE_BYTES).max_encoding_message_size(STREAM_MESSAGE_BYTES);
-        let outbound = tokio_stream::iter(batches[next..].to_vec());
         let result = async {
-            let mut acks = client.stream(outbound).await?.into_inner();
-            while let Some(ack) = acks.message().await? {
+            if let Some(req) = create.filter(|_| created_on.as_deref() != Some(route.url.as_str())) {
+                SessionsClient::new(route.conn.clone()).create(req.clone()).await.map_err(|s| ("create session", s))?;
+                created_on = Some(route.url.clone());
+            }
+            if next >= batches.len() {
+                return Ok(());
+            }
+            let mut client = ScoringClient::new(route.conn.clone()).max_decoding_message_size(STREAM_MESSAGE_BYTES).max_encoding_message_size(STREAM_MESSAGE_BYTES);
+            let outbound: Vec<pb::ScoreBatch> = batches[next..].iter().map(|b| pb::ScoreBatch { replicas: route.declared.clone(), ..b.clone() }).collect();
+            let mut acks = client.stream(tokio_stream::iter(outbound)).await.map_err(|s| ("scoring stream", s))?.into_inner();
+            while let Some(ack) = acks.message().await.map_err(|s| ("scoring stream", s))? {
                 totals.batches += 1;
                 totals.scored += ack.scored as u64;
                 totals.unknown += ack.unknown as u64;
@@ -241,30 +263,38 @@ async fn stream_all(ch: &Conn, batches: &[pb::ScoreBatch], show: bool) -> Result
                     eprint!("\r{} / {} batches acknowledged", next, batches.len());
                 }
             }
-            Ok::<(), tonic::Status>(())
+            Ok::<(), (&str, tonic::Status)>(())
         }
         .await;
-        let last = match result {
+        let (what, last) = match result {
             Ok(()) if next >= batches.len() => break,
             // The server ended the stream early (shutting down): reconnect and resume.
-            Ok(()) => "the server ended the stream".to_owned(),
-            Err(s) if !retryable(&s) => return Err(ClientError::call("scoring stream", s).into()),
-            Err(s) => format!("{} ({:?})", s.message(), s.code()),
+            Ok(()) => ("scoring stream", "the server ended the stream".to_owned()),
+            Err((what, s)) if !retryable(&s) => return Err(ClientError::call(what, s).into()),
+            Err((what, s)) => (what, format!("{} ({:?})", s.message(), s.code())),
         };
         if next > before {
             (failures, backoff) = (0, Backoff::default());
         }
         failures += 1;
         if failures >= MAX_ATTEMPTS {
-            return Err(CliError::Usage(format!("gave up after {MAX_ATTEMPTS} attempts ({last}); {next} of {} batches acknowledged (re-run the same command to resume)", batches.len())));
+            return Err(CliError::Usage(format!("gave up after {MAX_ATTEMPTS} attempts ({what}: {last}); {next} of {} batches acknowledged (re-run the same command to resume)", batches.len())));
         }
         if show {
             eprintln!();
         }
-        eprintln!("mtgauge: scoring stream: {last}; {next} of {} batches acknowledged, resuming in {:.1} s (attempt {} of {MAX_ATTEMPTS})", batches.len(), backoff.delay().as_secs_f64(), failures + 1);
+        let (delay, attempt) = (backoff.delay().as_secs_f64(), failures + 1);
+        if what == "create session" {
+            eprintln!("mtgauge: {what}: {last}; retrying in {delay:.1} s (attempt {attempt} of {MAX_ATTEMPTS})");
+        } else {
+            eprintln!("mtgauge: {what}: {last}; {next} of {} batches acknowledged, resuming in {delay:.1} s (attempt {attempt} of {MAX_ATTEMPTS})", batches.len());
+        }
         backoff.wait().await;
+        // Find the producer's replica again (it may have come back at another address, or,
+        // with failover, be another one now).
+        route = fleet.route(producer).await?;
     }
-    Ok(totals)
+    Ok((totals, route.replica))
 }
 
 #[cfg(test)]

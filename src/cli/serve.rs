@@ -30,7 +30,8 @@ Settings come from --config FILE (TOML) and flags; a flag overrides the file. Ke
   log_format, max_message_bytes (default {max_message}), exported_resamples (default {exported}),
   alert_eval_seconds (default {eval}), [[alert]] (alert rules the daemon evaluates: see README),
   [[alert_target]] kind = alertmanager|webhook, url, bearer_token_file, ca_file (where alerts go),
-  [limits] (below), [[refset]] name, paths = [...], source (loaded at startup).
+  [limits] (below), [[refset]] name, paths = [...], source (loaded at startup),
+  replica_name, fleet = [...] (a replica's name and its fleet's: see --replica-name).
 
 [limits] keys, each at least 1, with their defaults; a request past one is refused with \
 RESOURCE_EXHAUSTED or INVALID_ARGUMENT naming its key:
@@ -104,6 +105,15 @@ pub struct ServeArgs {
     /// series per session [default: 100].
     #[arg(long, value_name = "N")]
     pub exported_resamples: Option<usize>,
+    /// This replica's name in a fleet (e.g. the pod name): producers pick their replica by
+    /// hashing over these names (README, "Producer affinity"), and a named replica refuses a
+    /// batch that belongs to another one.
+    #[arg(long, value_name = "NAME")]
+    pub replica_name: Option<String>,
+    /// Every replica name of the fleet, comma-separated (this one included): clients hash over
+    /// this set even while a replica is down, and a batch routed over another set is refused.
+    #[arg(long, value_name = "NAME,NAME...", value_delimiter = ',')]
+    pub fleet: Vec<String>,
     /// Print the resolved settings (file, flags and defaults), the accepted config keys and
     /// the exported metric names as JSON, then exit without serving.
     #[arg(long)]
@@ -121,10 +131,10 @@ pub enum Durability {
 }
 
 /// The config file's top-level keys (what `FileConfig` reads).
-const FILE_KEYS: [&str; 20] = [
+const FILE_KEYS: [&str; 22] = [
     "tls_cert", "tls_key", "tls_client_ca", "health_listen", "tokens", "data_dir", "durability", "group_commit_ms", "listen",
     "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "exported_resamples", "alert_eval_seconds", "limits", "refset",
-    "alert", "alert_target",
+    "alert", "alert_target", "replica_name", "fleet",
 ];
 /// The keys of one `[[alert_target]]` entry.
 const TARGET_KEYS: [&str; 4] = ["kind", "url", "bearer_token_file", "ca_file"];
@@ -151,6 +161,8 @@ pub struct FileConfig {
     max_message_bytes: Option<u64>,
     exported_resamples: Option<usize>,
     alert_eval_seconds: Option<u64>,
+    replica_name: Option<String>,
+    fleet: Option<Vec<String>>,
     #[serde(default)]
     alert: Vec<crate::alerts::rules::RuleEntry>,
     #[serde(default)]
@@ -270,6 +282,8 @@ pub fn resolve(a: &ServeArgs, file: FileConfig) -> Result<Resolved, CliError> {
         }
         config.alert_every = Duration::from_secs(s);
     }
+    let fleet = if a.fleet.is_empty() { file.fleet.unwrap_or_default() } else { a.fleet.clone() };
+    config.fleet = crate::server::fleet::Fleet::new(a.replica_name.clone().or(file.replica_name), fleet).map_err(CliError::Usage)?;
     if let Some(d) = a.drain_seconds.or(file.drain_seconds) {
         config.drain = Duration::from_secs(d);
     }
@@ -321,6 +335,8 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "tokens": path(&r.tokens),
             "limits": c.limits.section(),
             "refset": refsets,
+            "replica_name": c.fleet.name,
+            "fleet": c.fleet.members,
         },
         "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS, "alert": crate::alerts::rules::RULE_KEYS, "alert_target": TARGET_KEYS },
         "metrics": telemetry::METRIC_NAMES.as_slice(),

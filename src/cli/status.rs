@@ -3,22 +3,41 @@
 use clap::Args;
 use serde_json::{json, Value};
 
-use crate::client::{channel, ClientError};
+use crate::client::fleet::{identify, Endpoint, Fleet};
+use crate::client::ClientError;
 use super::CliError;
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
 use crate::report::{config_json, guard_lines, guards_json, stats_json, stats_lines, IntervalSettings, PROXY_NOTE};
-use crate::pb::convert::{config_from_pb, guard_tally_from_pb, interval_of, stats_from_pb};
+use crate::guard::GuardCounts;
+use crate::pb::convert::{config_from_pb, guard_tally_from_pb, guard_tally_to_pb, interval_of, replicate_sums_from_pb, stats_from_pb, totals_with_intervals};
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
-use crate::metric::ScoreConfig;
+use crate::metric::resample::Replicates;
+use crate::metric::{CorpusStats, ScoreConfig};
+
+pub(super) const LONG_ABOUT: &str = "\
+The scores of a running server's sessions: cumulative and recent statistics, scores with their \
+bootstrap intervals, alert states.
+
+A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
+replica, shows each session's fleet figures: the replicas' integer statistics and bootstrap \
+replicate sums added up (exact, never an average of scores), with how many replicas answered. \
+When one does not answer, status refuses to show a fleet figure (it would leave out what that \
+replica counted) unless --partial is given. `recent` is then the sum of each replica's own \
+recent window. Alert states are each daemon's own (see `status --server` of one replica); \
+fleet alerts come from the Prometheus rules `mtgauge rules` renders.";
 
 /// `status` options.
 #[derive(Debug, Args)]
 pub struct StatusArgs {
-    /// Server URL, e.g. http://127.0.0.1:7410.
-    #[arg(long, value_name = "URL")]
+    /// Server URL, e.g. http://127.0.0.1:7410; for a fleet, several URLs separated by commas,
+    /// or one whose name resolves to every replica.
+    #[arg(long, value_name = "URL[,URL...]")]
     pub server: String,
+    /// Fleet: show the sum of the replicas that answered when some do not (marked partial).
+    #[arg(long)]
+    pub partial: bool,
     /// One session (default: all).
     #[arg(long, value_name = "NAME")]
     pub session: Option<String>,
@@ -123,21 +142,17 @@ pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
     if !valid_level(a.level) {
         return Err(CliError::Usage(format!("--level {} is not strictly between 0 and 1", a.level)));
     }
+    let fleet = Fleet::parse(&a.server, std::time::Duration::ZERO, false)?;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
     let rendered = rt.block_on(async {
-        let ch = channel(&a.server)?;
-        let mut sessions = SessionsClient::new(ch.clone());
-        let mut scoring = ScoringClient::new(ch);
-        let infos = match &a.session {
-            Some(name) => vec![sessions.get(pb::GetSessionRequest { name: name.clone() }).await.map_err(|s| ClientError::call("get session", s))?.into_inner()],
-            None => sessions.list(pb::ListSessionsRequest {}).await.map_err(|s| ClientError::call("list sessions", s))?.into_inner().sessions,
-        };
-        let mut out = Vec::new();
-        for info in infos {
-            let r = scoring.get_scores(pb::GetScoresRequest { session: info.name.clone(), level: a.level }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
-            out.push(render(&r, &info, a.level)?);
+        if let Some(one) = fleet.lone().await? {
+            let mut out = Vec::new();
+            for (info, r) in reports(&one, a.session.as_deref(), a.level, false).await? {
+                out.push(render(&r, &info, a.level)?);
+            }
+            return Ok::<_, CliError>(out);
         }
-        Ok::<_, CliError>(out)
+        fleet_view(&fleet.endpoints().await?, &a).await
     })?;
     let text = if a.json {
         let v: Vec<Value> = rendered.iter().map(|(j, _)| j.clone()).collect();
@@ -150,4 +165,143 @@ pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
     };
     print!("{text}");
     Ok(())
+}
+
+/// Every session of one server (or the one asked for) with its report.
+async fn reports(e: &Endpoint, session: Option<&str>, level: f64, with_sums: bool) -> Result<Vec<(pb::SessionInfo, pb::ScoresReport)>, ClientError> {
+    let ch = e.connect()?;
+    let mut sessions = SessionsClient::new(ch.clone());
+    let mut scoring = ScoringClient::new(ch);
+    let infos = match session {
+        Some(name) => vec![sessions.get(pb::GetSessionRequest { name: name.to_owned() }).await.map_err(|s| ClientError::call("get session", s))?.into_inner()],
+        None => sessions.list(pb::ListSessionsRequest {}).await.map_err(|s| ClientError::call("list sessions", s))?.into_inner().sessions,
+    };
+    let mut out = Vec::new();
+    for info in infos {
+        let r = scoring.get_scores(pb::GetScoresRequest { session: info.name.clone(), level, with_replicate_sums: with_sums }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
+        out.push((info, r));
+    }
+    Ok(out)
+}
+
+/// One replica's answer: its name (or URL) and its sessions' reports.
+struct ReplicaReports {
+    name: String,
+    sessions: Vec<(pb::SessionInfo, pb::ScoresReport)>,
+}
+
+/// Every replica's reports summed per session: the fleet figures.
+async fn fleet_view(endpoints: &[Endpoint], a: &StatusArgs) -> Result<Vec<(Value, String)>, CliError> {
+    let mut answered = Vec::new();
+    let mut missing = Vec::new();
+    for e in endpoints {
+        let name = identify(e.clone()).await.ok().map(|id| id.replica).filter(|n| !n.is_empty()).unwrap_or_else(|| e.url.clone());
+        match reports(e, a.session.as_deref(), a.level, true).await {
+            Ok(sessions) => answered.push(ReplicaReports { name, sessions }),
+            // This replica has no such session: it counted nothing of it.
+            Err(ClientError::Call { status, .. }) if status.code() == tonic::Code::NotFound && a.session.is_some() => answered.push(ReplicaReports { name, sessions: Vec::new() }),
+            Err(err) => missing.push(format!("{} ({err})", e.url)),
+        }
+    }
+    if !missing.is_empty() && !a.partial {
+        return Err(CliError::Usage(format!(
+            "{} of {} replicas answered; no answer from {}: a fleet figure would leave out what it counted (--partial shows the sum of those that answered)",
+            answered.len(), endpoints.len(), missing.join(", ")
+        )));
+    }
+    let mut names: Vec<String> = Vec::new();
+    for r in &answered {
+        for (info, _) in &r.sessions {
+            if !names.contains(&info.name) {
+                names.push(info.name.clone());
+            }
+        }
+    }
+    if names.is_empty() {
+        if let Some(s) = &a.session {
+            return Err(CliError::Usage(format!("no replica has a session named '{s}'")));
+        }
+    }
+    let mut out = Vec::new();
+    for name in names {
+        let parts: Vec<(&str, &pb::SessionInfo, &pb::ScoresReport)> = answered.iter().flat_map(|r| r.sessions.iter().filter(|(i, _)| i.name == name).map(move |(i, rep)| (r.name.as_str(), i, rep))).collect();
+        let (info, merged) = merge(&parts, a.level)?;
+        let (mut j, text) = render(&merged, &info, a.level)?;
+        let holders: Vec<&str> = parts.iter().map(|(n, _, _)| *n).collect();
+        let fleet = json!({
+            "replicas": endpoints.len(), "answered": answered.iter().map(|r| r.name.as_str()).collect::<Vec<_>>(),
+            "missing": missing, "partial": !missing.is_empty(), "with_session": holders,
+            "recent": "the sum of each replica's own recent window",
+        });
+        if let Value::Object(o) = &mut j {
+            o.insert("fleet".into(), fleet);
+            o.insert("alerts".into(), Value::Array(Vec::new()));
+        }
+        let head = format!(
+            "fleet: {} of {} replicas answered{}; session on {} ({}); recent = each replica's window summed\n",
+            answered.len(), endpoints.len(), if missing.is_empty() { String::new() } else { format!(" (PARTIAL: no answer from {})", missing.join(", ")) },
+            holders.len(), holders.join(", ")
+        );
+        out.push((j, head + &text));
+    }
+    Ok(out)
+}
+
+/// One session's reports from several replicas, added up: statistics, counts and replicate
+/// sums (exact), with the intervals derived from the summed replicates. Refused when the
+/// replicas score the session differently (reference-set version, configuration, resampling).
+fn merge(parts: &[(&str, &pb::SessionInfo, &pb::ScoresReport)], level: f64) -> Result<(pb::SessionInfo, pb::ScoresReport), CliError> {
+    let (first_name, first_info, first) = parts[0];
+    let config = config_from_pb(first.config.as_ref()).map_err(|e| CliError::Usage(format!("{first_name} sent a bad configuration: {e}")))?;
+    let mut info = first_info.clone();
+    let mut merged = pb::ScoresReport { session: first.session.clone(), refset_digest: first.refset_digest.clone(), config: first.config.clone(), window: first.window, note: first.note.clone(), resampling: first.resampling, unix_time: first.unix_time, ..Default::default() };
+    let (mut cum, mut recent) = (CorpusStats::default(), CorpusStats::default());
+    let mut reps: [Option<Replicates>; 2] = [None, None];
+    let mut complete = [true, true];
+    let mut notes: Vec<String> = Vec::new();
+    let mut guards = GuardCounts::default();
+    for (i, (name, inf, r)) in parts.iter().enumerate() {
+        if r.refset_digest != first.refset_digest || r.config != first.config || r.resampling != first.resampling || r.target_language != first.target_language {
+            return Err(CliError::Usage(format!(
+                "replicas {first_name} and {name} score session '{}' differently (reference-set digest, configuration, resampling or target language): its statistics do not add up to a fleet figure",
+                first.session
+            )));
+        }
+        cum += stats_from_pb(r.cumulative.as_ref().unwrap_or(&Default::default()));
+        recent += stats_from_pb(r.recent.as_ref().unwrap_or(&Default::default()));
+        merged.unknown += r.unknown;
+        merged.rejected += r.rejected;
+        guards += guard_tally_from_pb(&r.guards.clone().unwrap_or_default());
+        merged.unix_time = merged.unix_time.max(r.unix_time);
+        if i > 0 {
+            info.scored += inf.scored;
+            info.memory_bytes += inf.memory_bytes;
+        }
+        for (k, sums) in [&r.cumulative_sums, &r.recent_sums].into_iter().enumerate() {
+            match sums.as_ref().and_then(|p| replicate_sums_from_pb(p, &config)) {
+                Some(x) if complete[k] => match &mut reps[k] {
+                    Some(acc) => {
+                        if acc.merge(&x).is_err() {
+                            complete[k] = false;
+                        }
+                    }
+                    None => reps[k] = Some(x),
+                },
+                _ => complete[k] = false,
+            }
+        }
+        if !r.interval_note.is_empty() && !notes.contains(&r.interval_note) {
+            notes.push(r.interval_note.clone());
+        }
+    }
+    let [cum_reps, recent_reps] = reps;
+    merged.cumulative = Some(totals_with_intervals(&cum, &config, cum_reps.as_ref().filter(|_| complete[0]), level));
+    merged.recent = Some(totals_with_intervals(&recent, &config, recent_reps.as_ref().filter(|_| complete[1]), level));
+    if first.resampling.and_then(|r| r.resamples).unwrap_or(0) > 0 && !(complete[0] && complete[1]) {
+        notes.push("some replica sent no replicate sums for a window: no fleet interval for it".into());
+    }
+    merged.interval_note = notes.join("; ");
+    merged.guards = Some(guard_tally_to_pb(&guards));
+    merged.target_language = first.target_language.clone();
+    Ok((info, merged))
 }

@@ -7,6 +7,8 @@ use std::time::Duration;
 use tonic::transport::{Channel, Endpoint};
 use tonic::Code;
 
+pub mod fleet;
+
 /// Environment variable holding the bearer token of client commands (kept out of argv).
 pub const TOKEN_ENV: &str = "MTGAUGE_TOKEN";
 /// Environment variable naming the server's CA certificate (PEM) for TLS.
@@ -66,6 +68,12 @@ pub type Conn = tonic::service::interceptor::InterceptedService<Channel, TokenIn
 /// Connect (lazily) to a server URL; TLS and token settings come from the environment
 /// ([`TLS_CA_ENV`], [`TLS_CERT_ENV`], [`TLS_KEY_ENV`], [`TOKEN_ENV`]).
 pub fn channel(url: &str) -> Result<Conn, ClientError> {
+    channel_to(url, None)
+}
+
+/// [`channel`], with TLS checking the server's certificate against `tls_name` instead of the
+/// URL's host (a URL made from one of the addresses a name resolved to).
+pub fn channel_to(url: &str, tls_name: Option<&str>) -> Result<Conn, ClientError> {
     let mut ep = Endpoint::from_shared(url.to_owned()).map_err(|e| ClientError::Setup(format!("--server {url}: {e}")))?;
     let env_file = |k: &str| -> Result<Option<Vec<u8>>, ClientError> {
         match std::env::var_os(k) {
@@ -78,6 +86,9 @@ pub fn channel(url: &str) -> Result<Conn, ClientError> {
     if ca.is_some() || url.starts_with("https://") {
         let _ = rustls::crypto::ring::default_provider().install_default();
         let mut tls = tonic::transport::ClientTlsConfig::new();
+        if let Some(name) = tls_name {
+            tls = tls.domain_name(name);
+        }
         if let Some(ca) = ca {
             tls = tls.ca_certificate(tonic::transport::Certificate::from_pem(ca));
         }

@@ -135,6 +135,16 @@ pub fn totals_with_intervals(st: &CorpusStats, c: &ScoreConfig, reps: Option<&Re
     t
 }
 
+/// Replicate sums in an API message.
+pub fn replicate_sums_to_pb(r: &Replicates) -> pb::ReplicateSums {
+    pb::ReplicateSums { resamples: r.resamples() as u32, seed: r.seed(), sums: r.sums().to_vec() }
+}
+
+/// Replicate sums from an API message, for a configuration (None: they do not fit its layout).
+pub fn replicate_sums_from_pb(p: &pb::ReplicateSums, config: &ScoreConfig) -> Option<Replicates> {
+    Replicates::from_sums(config, p.resamples as usize, p.seed, p.sums.clone())
+}
+
 /// An interval in an API message.
 pub fn interval_to_pb(i: Interval) -> pb::Interval {
     pb::Interval { level: i.level, low: i.low, high: i.high, resamples: i.resamples as u32, method: i.method.to_owned(), seed: i.seed }

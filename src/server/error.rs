@@ -57,6 +57,9 @@ pub enum ServiceError {
     /// Two sessions that cannot be compared (another reference-set version or configuration).
     #[error("{0}")]
     NotComparable(String),
+    /// A batch sent to a replica its producer does not belong to (the producer affinity rule).
+    #[error("{0}")]
+    WrongReplica(String),
     /// No valid credentials on a call that needs them.
     #[error("{0}")]
     Unauthenticated(String),
@@ -95,7 +98,7 @@ impl From<ServiceError> for tonic::Status {
             ServiceError::PathDenied(_) | ServiceError::Forbidden(_) => Code::PermissionDenied,
             ServiceError::Unauthenticated(_) => Code::Unauthenticated,
             ServiceError::Limit { .. } | ServiceError::Busy(_) => Code::ResourceExhausted,
-            ServiceError::ProducerBusy { .. } | ServiceError::NotComparable(_) => Code::FailedPrecondition,
+            ServiceError::ProducerBusy { .. } | ServiceError::NotComparable(_) | ServiceError::WrongReplica(_) => Code::FailedPrecondition,
             ServiceError::ShuttingDown | ServiceError::StoreFailed(_) => Code::Unavailable,
             ServiceError::Internal(_) => Code::Internal,
         };

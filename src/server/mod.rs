@@ -7,6 +7,7 @@ pub mod auth;
 pub mod compare;
 pub mod conn;
 pub mod error;
+pub mod fleet;
 pub mod limits;
 mod services;
 pub mod state;
@@ -88,6 +89,8 @@ pub struct ServerConfig {
     pub alert_every: Duration,
     /// Where firing and resolved alerts are posted (Alertmanager, webhooks).
     pub alert_targets: Vec<crate::alerts::deliver::Target>,
+    /// This replica's name and fleet, for the producer affinity check.
+    pub fleet: fleet::Fleet,
 }
 
 /// PEM files of the server's TLS identity.
@@ -103,7 +106,7 @@ pub struct TlsFiles {
 
 impl Default for ServerConfig {
     fn default() -> Self {
-        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES, alert_rules: Vec::new(), alert_every: Duration::from_secs(crate::alerts::rules::DEFAULT_EVAL_SECONDS), alert_targets: Vec::new() }
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES, alert_rules: Vec::new(), alert_every: Duration::from_secs(crate::alerts::rules::DEFAULT_EVAL_SECONDS), alert_targets: Vec::new(), fleet: fleet::Fleet::default() }
     }
 }
 
@@ -236,6 +239,7 @@ async fn open_state(config: &ServerConfig) -> Result<State, RunError> {
         None => None,
     };
     let state = State::with_store(config.refset_dir.clone(), config.limits, store, config.group_commit).map_err(setup)?;
+    state.set_fleet(config.fleet.clone());
     if let Some(store) = state.store() {
         let st = state.clone();
         let n = tokio::task::spawn_blocking(move || st.restore()).await.map_err(setup)?.map_err(setup)?;

@@ -24,7 +24,8 @@ use crate::pb;
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
 use crate::guard::{GuardCounts, GuardScratch};
 use crate::pb::convert::{
-    config_from_pb, config_to_pb, guard_tally_to_pb, guard_verdict_to_pb, interval_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb, totals_with_intervals,
+    config_from_pb, config_to_pb, guard_tally_to_pb, guard_verdict_to_pb, interval_to_pb, replicate_sums_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb,
+    totals_with_intervals,
 };
 use crate::refs::compiled::Scratch;
 use crate::report::PROXY_NOTE;
@@ -62,7 +63,7 @@ impl Services {
     /// The services over `state`, and the one watch publisher they share (so: call inside a
     /// Tokio runtime).
     pub fn new(state: State, stop: watch::Receiver<bool>, tokens: Option<Arc<Tokens>>, max_message_bytes: usize) -> Services {
-        let watchers = Watchers::start(state.clone(), stop.clone(), report);
+        let watchers = Watchers::start(state.clone(), stop.clone(), |state, session, level| report(state, session, level, false));
         Services { state, stop, tokens, max_message_bytes, watchers }
     }
 
@@ -309,6 +310,7 @@ impl InFlight {
 async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     let started = Instant::now();
     let session = state.session(&batch.session)?;
+    state.fleet().check(&batch.producer, &batch.replicas)?;
     if batch.items.is_empty() {
         return Err(ServiceError::Invalid("empty batch: send at least one item".into()));
     }
@@ -409,7 +411,7 @@ const CUMULATIVE_PREDATES: &str = "no cumulative interval: the statistics were k
 const RECENT_PREDATES: &str = "no recent interval yet: the window still holds segments kept before this session kept replicates";
 
 /// A session's scores now, intervals at `level` (0: the default).
-pub fn report(state: &State, session: &Session, level: f64) -> pb::ScoresReport {
+pub fn report(state: &State, session: &Session, level: f64, with_sums: bool) -> pb::ScoresReport {
     let spec = session.spec();
     let level = if level == 0.0 { DEFAULT_LEVEL } else { level };
     // Statistics and replicates are read under two short locks: a batch applied in between
@@ -445,6 +447,8 @@ pub fn report(state: &State, session: &Session, level: f64) -> pb::ScoresReport 
         alerts: state.alerts().of(&spec.name),
         guards: Some(guard_tally_to_pb(&counts.guards)),
         target_language: spec.target_language.clone().unwrap_or_default(),
+        cumulative_sums: cum_reps.as_ref().filter(|_| with_sums).map(replicate_sums_to_pb),
+        recent_sums: recent_reps.as_ref().filter(|_| with_sums).map(replicate_sums_to_pb),
     }
 }
 
@@ -628,7 +632,7 @@ impl pb::scoring_server::Scoring for Services {
         let level = check_level(r.level)?;
         let s = self.state.session(&r.session)?;
         let state = self.state.clone();
-        Ok(Response::new(blocking(move || Ok(report(&state, &s, level))).await?))
+        Ok(Response::new(blocking(move || Ok(report(&state, &s, level, r.with_replicate_sums))).await?))
     }
 
     async fn compare(&self, req: Request<pb::CompareRequest>) -> std::result::Result<Response<pb::CompareReport>, Status> {
@@ -639,6 +643,15 @@ impl pb::scoring_server::Scoring for Services {
         let report = blocking(move || compare_sessions(&a, &b, &r)).await?;
         drop(slot);
         Ok(Response::new(report))
+    }
+
+    async fn identify(&self, req: Request<pb::IdentifyRequest>) -> std::result::Result<Response<pb::ReplicaIdentity>, Status> {
+        // Any scope: producers (submit) and readers (read) both route by it.
+        if self.authorize(&req, Scope::Read).is_err() {
+            self.authorize(&req, Scope::Submit)?;
+        }
+        let f = self.state.fleet();
+        Ok(Response::new(pb::ReplicaIdentity { replica: f.name.clone().unwrap_or_default(), fleet: f.members.clone(), version: env!("CARGO_PKG_VERSION").into() }))
     }
 
     async fn watch_scores(&self, req: Request<pb::WatchScoresRequest>) -> std::result::Result<Response<Self::WatchScoresStream>, Status> {

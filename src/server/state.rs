@@ -47,6 +47,8 @@ struct Inner {
     /// crowds out the threads that run the network and the health checks.
     scoring_slots: tokio::sync::Semaphore,
     streams: Arc<std::sync::atomic::AtomicUsize>,
+    /// This replica's name and fleet (set once at startup; unset: none).
+    fleet: std::sync::OnceLock<super::fleet::Fleet>,
     watchers: Arc<std::sync::atomic::AtomicUsize>,
     /// Durable state (None: in memory only).
     store: Option<Arc<Store>>,
@@ -123,7 +125,7 @@ impl State {
         let (tx, rx) = std::sync::mpsc::channel::<CommitRequest>();
         let committer = store.as_ref().map(|_| std::sync::Mutex::new(tx));
         let (failure, _) = tokio::sync::watch::channel(None);
-        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer, failure, alerts: Default::default() }) };
+        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer, failure, alerts: Default::default(), fleet: Default::default() }) };
         if let Some(store) = store {
             // The thread holds only a weak handle, so it ends when the state is dropped.
             let weak = Arc::downgrade(&state.inner);
@@ -133,6 +135,17 @@ impl State {
                 .map_err(|e| ServiceError::Internal(format!("cannot start the commit thread: {e}")))?;
         }
         Ok(state)
+    }
+
+    /// Set this replica's name and fleet (once, at startup; a second call changes nothing).
+    pub fn set_fleet(&self, fleet: super::fleet::Fleet) {
+        let _ = self.inner.fleet.set(fleet);
+    }
+
+    /// This replica's name and fleet.
+    pub fn fleet(&self) -> &super::fleet::Fleet {
+        static NONE: super::fleet::Fleet = super::fleet::Fleet { name: None, members: Vec::new() };
+        self.inner.fleet.get().unwrap_or(&NONE)
     }
 
     /// The alert states as last evaluated.

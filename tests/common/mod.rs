@@ -175,6 +175,20 @@ pub fn demo_refset() -> Arc<mtgauge::refs::RefSet> {
     Arc::new(mtgauge::refs::RefSet::new(segs).unwrap())
 }
 
+/// The offline statistics of `items` (demo segment id, hypothesis) under the default
+/// configuration: what a daemon that counted each item once must hold.
+pub fn offline_demo(items: &[(String, String)]) -> mtgauge::metric::CorpusStats {
+    use mtgauge::refs::compiled::{Compiled, Scratch};
+    let compiled = Compiled::build(demo_refset(), mtgauge::metric::ScoreConfig::default());
+    let ids: std::collections::HashMap<String, usize> = mtgauge::cli::demo::scenario::demo_segments().into_iter().enumerate().map(|(i, s)| (s.id, i)).collect();
+    let mut scratch = Scratch::default();
+    let mut sum = mtgauge::metric::CorpusStats::default();
+    for (id, h) in items {
+        sum.add_segment(&compiled.score_segment(ids[id], h, &mut scratch));
+    }
+    sum
+}
+
 /// Write the demo files into `dir`.
 pub fn demo_files(dir: &Path) {
     mtgauge::cli::demo::scenario::write_demo_files(dir).unwrap();

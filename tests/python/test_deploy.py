@@ -162,11 +162,11 @@ def config_toml():
 
 
 @functools.lru_cache(maxsize=None)
-def shown_config(config_path=None):
+def shown_config(config_path=None, extra=()):
     """`mtgauge serve [--config FILE] --show-config`: the settings the daemon resolves (every
     default filled in), the config keys it accepts and the metric names it exports, asked of
     the binary under test rather than read from its source."""
-    argv = [str(require_binary()), "serve", "--show-config"] + (["--config", str(config_path)] if config_path else [])
+    argv = [str(require_binary()), "serve", "--show-config"] + (["--config", str(config_path)] if config_path else []) + list(extra)
     p = subprocess.run(argv, capture_output=True, text=True, timeout=30)
     assert p.returncode == 0, f"{argv}: exit {p.returncode}: {p.stderr}"
     return json.loads(p.stdout)
@@ -380,7 +380,24 @@ def host_of(addr):
 LISTEN_HUMAN = re.compile(r"listening grpc=(\S+) metrics=(\S+)")
 
 
-def run_daemon_with_config(tmp_path, toml_text, drain):
+def replica_args(ordinal=0):
+    """The container's `serve` arguments after `--config FILE`, with each $(VAR) of an env
+    variable set from the pod's metadata.name replaced by the name of pod `ordinal` (a
+    StatefulSet's pods are NAME-ORDINAL)."""
+    args = container()["args"]
+    assert args[:2] == ["serve", "--config"], args
+    names = {e["name"]: f"{statefulset()['metadata']['name']}-{ordinal}" for e in container().get("env", [])
+             if e.get("valueFrom", {}).get("fieldRef", {}).get("fieldPath") == "metadata.name"}
+    out = []
+    for a in args[3:]:
+        for var, value in names.items():
+            a = a.replace(f"$({var})", value)
+        assert "$(" not in a, f"unresolved variable in {a!r}"
+        out.append(a)
+    return out
+
+
+def run_daemon_with_config(tmp_path, toml_text, drain, extra=()):
     """Start `mtgauge serve --config` (listeners moved to 127.0.0.1:0 by flags), wait for
     SERVING on gRPC health, GET /metrics, then SIGTERM: exit 0 within the drain time + margin."""
     binary = require_binary()
@@ -392,7 +409,7 @@ def run_daemon_with_config(tmp_path, toml_text, drain):
     store = data_dir(tomllib.loads(toml_text))
     # Never the machine's real /var/lib/mtgauge: the caller rewrote data_dir into tmp_path.
     assert store is None or Path(store).is_relative_to(tmp_path), f"data_dir {store} is outside the test's directory"
-    argv = [str(binary), "serve", "--config", str(cfg_file), "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0"]
+    argv = [str(binary), "serve", "--config", str(cfg_file), "--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0", *extra]
     if "health_listen" in tomllib.loads(toml_text):
         argv += ["--health-listen", "127.0.0.1:0"]
     proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
@@ -699,12 +716,33 @@ def test_configmap_toml_resolves_in_the_daemon(tmp_path):
     then runs with (`serve --config FILE --show-config`)."""
     f = tmp_path / "configmap.toml"
     f.write_text(config_toml_text())
-    cfg, shown = config_toml(), shown_config(f)["settings"]
+    cfg, shown = config_toml(), shown_config(f, tuple(replica_args()))["settings"]
     for key in ("listen", "metrics_listen", "data_dir", "durability", "drain_seconds", "group_commit_ms", "log_format"):
         if key in cfg:
             assert shown[key] == cfg[key], f"{key}: the file says {cfg[key]!r}, the daemon resolves {shown[key]!r}"
     for k, v in cfg.get("limits", {}).items():
         assert shown["limits"][k] == v, f"limits.{k}: the file says {v}, the daemon resolves {shown['limits'][k]}"
+
+
+def test_replicas_know_their_names_and_their_fleet(tmp_path):
+    """Producer affinity in the manifests: each pod runs with --replica-name set from its own
+    name (the downward API's metadata.name), and the ConfigMap's fleet names exactly the
+    StatefulSet's pods, NAME-0 .. NAME-(replicas - 1); the daemon resolves both."""
+    args = container()["args"]
+    assert "--replica-name" in args, args
+    var = args[args.index("--replica-name") + 1]
+    m = re.fullmatch(r"\$\((\w+)\)", var)
+    assert m, f"--replica-name {var!r} is not an env variable reference"
+    env = {e["name"]: e for e in container().get("env", [])}
+    assert env[m.group(1)]["valueFrom"]["fieldRef"]["fieldPath"] == "metadata.name", env[m.group(1)]
+    sts = statefulset()
+    pods = [f"{sts['metadata']['name']}-{i}" for i in range(sts["spec"]["replicas"])]
+    assert config_toml()["fleet"] == pods, (config_toml().get("fleet"), pods)
+    f = tmp_path / "configmap.toml"
+    f.write_text(config_toml_text())
+    for i, pod in enumerate(pods):
+        shown = shown_config(f, tuple(replica_args(i)))["settings"]
+        assert (shown["replica_name"], shown["fleet"]) == (pod, pods), shown
 
 
 def mounted_under(path):
@@ -782,7 +820,7 @@ def test_configmap_config_runs_in_the_daemon(tmp_path):
         # The data claim's mount, at a temporary path (the TOML must name data_dir itself, or
         # the daemon's default would be used: checked by test_data_volume_per_replica).
         text = text.replace(mounted_under(store)["mountPath"].rstrip("/"), str(tmp_path / "data"))
-    body, log = run_daemon_with_config(tmp_path, text, drain_seconds(cfg))
+    body, log = run_daemon_with_config(tmp_path, text, drain_seconds(cfg), replica_args())
     for r in cfg.get("refset", []):
         assert f'refset="{r["name"]}"' in body, f"startup set {r['name']} not in /metrics"
 

@@ -496,6 +496,16 @@ def one_value(prom, expr):
     return wait_until(f"a value for {expr}", lambda: prom.scalar(expr), PROM_TIMEOUT)
 
 
+def wait_recorded_after(prom, names, selector):
+    """Wait until every series `names{selector}` comes from a rule evaluation after this instant.
+    Call it once every scrape Prometheus holds is complete: on a loaded machine a rule
+    evaluation can lag the scrapes by seconds, so a fixed sleep is not enough."""
+    now = prom.scalar("vector(time())")
+    wait_until(f"{', '.join(names)} evaluated over the complete scrapes",
+               lambda: all((prom.scalar(f"min(timestamp({name}{{{selector}}}))") or 0) > now for name in names),
+               PROM_TIMEOUT)
+
+
 # ---------------------------------------------------------------------------
 # tests
 
@@ -546,7 +556,9 @@ def test_fleet_scores_equal_offline_score(replicas, prometheus, corpus, offline,
         "chrf:chars=6,words=0,beta=2"}, info
 
     # Let the rule groups evaluate again on the complete counts, then compare the scores.
-    time.sleep(3 * INTERVAL_S)
+    wait_recorded_after(prometheus, ["session:mtgauge_bleu:sum", "session_metric:mtgauge_chrf:sum",
+                                     "session:mtgauge_bleu_brevity_penalty:sum", "session_metric:mtgauge_chrf_precision:sum",
+                                     "session_metric:mtgauge_chrf_recall:sum"], sel)
     fleet_bleu = one_value(prometheus, f"session:mtgauge_bleu:sum{{{sel}}}")
     fleet_chrf = one_value(prometheus, f'session_metric:mtgauge_chrf:sum{{{sel}, metric="chrf"}}')
     print(f"\nfleet BLEU {fleet_bleu!r} vs offline {bleu['score']!r}; "
@@ -724,7 +736,10 @@ def test_fleet_interval_equals_one_process(replicas, prometheus, corpus, tmp_pat
                                              f'sum(session_outcome:mtgauge_segments_total:sum{{session="{session}", '
                                              f'outcome="scored"}}) == {n}') is not None,
                    PROM_TIMEOUT)
-    time.sleep(3 * INTERVAL_S)
+    wait_recorded_after(prometheus, ["session:mtgauge_bleu_interval_low:sum", "session:mtgauge_bleu_interval_high:sum",
+                                     "session_metric:mtgauge_chrf_interval_low:sum", "session_metric:mtgauge_chrf_interval_high:sum",
+                                     "session_replicate:mtgauge_bleu:sum", "session_metric_replicate:mtgauge_chrf:sum"],
+                        f'session=~"{SESSION_IV}|{SESSION_IV_ONE}"')
 
     # Replicate sums: the fleet's equal the one process's, series by series.
     for family, labels in REPLICATE_FAMILIES.items():

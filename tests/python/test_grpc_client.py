@@ -56,6 +56,9 @@ STARTUP_TIMEOUT = 30.0
 SHUTDOWN_TIMEOUT = 30.0  # the server's default --drain-seconds is 10
 HEALTH_DEADLINE = 20.0
 
+# Producer affinity (README, "Producer affinity"): the fleet this test's server says it is in.
+AFFINITY_FLEET = ["py-0", "py-1"]
+
 BATCH_SIZE = 37
 V7_SESSION = "py-v7"
 V7_PRODUCER = "py-1"
@@ -160,6 +163,8 @@ def server(demo_dir):
         "--refset", f"ferry={demo_dir / 'refs.jsonl'}",
         "--refset-dir", str(demo_dir),
         "--data-dir", str(demo_dir / "data"),
+        # A named replica of a two-replica fleet (producer affinity, README).
+        "--replica-name", AFFINITY_FLEET[0], "--fleet", ",".join(AFFINITY_FLEET),
     ]
     proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                             stderr=subprocess.PIPE)
@@ -832,3 +837,57 @@ def test_compare_call(stubs, api, demo_dir, demo_refs, v7_stream):
     assert (worse.resamples, worse.trials, worse.seed, worse.level) == (200, 10000, 1, 0.95)
     _expect_error(grpc.StatusCode.NOT_FOUND, api.scoring.Compare,
                   stubs.scoring.CompareRequest(session_a=V7_SESSION, session_b="py-no-such-session"))
+
+
+# ---------------------------------------------------------------------------------------------
+# Producer affinity, implemented here from README.md's description of the rule alone: weight(r,
+# p) = the first 8 bytes, big-endian, of SHA-256("mtgauge-affinity-v1" 0x00 r 0x00 p); the
+# owner is the replica of largest weight (ties: the name that sorts first). SHA-256: Python's
+# hashlib (FIPS 180-4).
+
+def affinity_weight(replica, producer):
+    import hashlib
+    digest = hashlib.sha256(b"mtgauge-affinity-v1\0" + replica.encode() + b"\0" + producer.encode()).digest()
+    return int.from_bytes(digest[:8], "big")
+
+
+def affinity_owner(producer, replicas):
+    return min(replicas, key=lambda r: (-affinity_weight(r, producer), r.encode()))
+
+
+def test_affinity_rule_matches_the_readme_vectors():
+    readme = (REPO / "README.md").read_text(encoding="utf-8")
+    section = readme.split("### Producer affinity", 1)[1].split("\n### ", 1)[0]
+    rows = re.findall(r"^\| `([^`]*)` \| (?:`([^`]*)`|\(empty\)) \| (\d+) \|$", section, re.M)
+    assert len(rows) >= 5, rows
+    for replica, producer, weight in rows:
+        assert affinity_weight(replica, producer) == int(weight), (replica, producer)
+    fleet = ["mtgauge-0", "mtgauge-1", "mtgauge-2"]
+    for producer, owner in [("probe-worker-1", "mtgauge-0"), ("probe-worker-2", "mtgauge-1"), ("probe-worker-10", "mtgauge-2")]:
+        assert f"`{producer}` belongs to `{owner}`" in " ".join(section.split()) or f"`{producer}` to `{owner}`" in " ".join(section.split())
+        assert affinity_owner(producer, fleet) == owner
+
+
+def test_affinity_identify_and_misrouted_batch(stubs, api, demo_refs):
+    """The server says its name and fleet; a batch routed by this client's own implementation
+    of the rule is accepted by its replica, and one whose producer belongs to the other
+    replica is refused with FAILED_PRECONDITION naming the rule."""
+    ident = api.scoring.Identify(stubs.scoring.IdentifyRequest(), timeout=RPC_TIMEOUT)
+    assert (ident.replica, list(ident.fleet)) == (AFFINITY_FLEET[0], AFFINITY_FLEET)
+    create_session(stubs, api, "py-affinity")
+    mine = next(p for p in (f"py-producer-{k}" for k in range(1000)) if affinity_owner(p, AFFINITY_FLEET) == "py-0")
+    other = next(p for p in (f"py-producer-{k}" for k in range(1000)) if affinity_owner(p, AFFINITY_FLEET) == "py-1")
+    seg = demo_refs[0]
+    item = stubs.scoring.ScoreItem(segment_id=seg["id"], hypothesis=seg["refs"][0])
+
+    def batch(producer):
+        return stubs.scoring.ScoreBatch(session="py-affinity", producer=producer, sequence=1, items=[item],
+                                        replicas=AFFINITY_FLEET)
+
+    ack = api.scoring.Submit(batch(mine), timeout=RPC_TIMEOUT)
+    assert ack.scored == 1 and not ack.duplicate
+    with pytest.raises(grpc.RpcError) as e:
+        api.scoring.Submit(batch(other), timeout=RPC_TIMEOUT)
+    assert e.value.code() == grpc.StatusCode.FAILED_PRECONDITION
+    assert f"producer '{other}' belongs to replica py-1, not to this replica (py-0)" in e.value.details()
+    assert "Producer affinity" in e.value.details()

@@ -153,7 +153,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
             println!("  -- {:>3}s: model-v8-rc is redeployed with a broken tokenizer setting; watch its recent BLEU --", t);
         }
         for w in SESSIONS {
-            let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0 }).await.map_err(usage("get scores"))?.into_inner();
+            let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0, ..Default::default() }).await.map_err(usage("get scores"))?.into_inner();
             let (c, rec) = (r.cumulative.unwrap_or_default(), r.recent.unwrap_or_default());
             let range = interval_of(&rec, Metric::Bleu).map_or_else(|| "-".to_owned(), |i| format!("{:.1}..{:.1}", i.low, i.high));
             println!(
@@ -183,7 +183,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     }
     let elapsed = start.elapsed().as_secs_f64();
     for w in SESSIONS {
-        let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0 }).await.map_err(usage("get scores"))?.into_inner();
+        let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: w.session.into(), level: 0.0, ..Default::default() }).await.map_err(usage("get scores"))?.into_inner();
         let config = config_from_pb(r.config.as_ref()).map_err(|e| CliError::Usage(format!("demo: {e}")))?;
         println!("\n{} at the end, cumulative:", w.session);
         let c = r.cumulative.unwrap_or_default();
@@ -252,7 +252,7 @@ async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, s
                 pb::ScoreItem { key: Some(key), hypothesis }
             })
             .collect();
-        let batch = pb::ScoreBatch { session: w.session.into(), producer: producer.clone(), sequence: seq, items, want_segment_scores: false };
+        let batch = pb::ScoreBatch { session: w.session.into(), producer: producer.clone(), sequence: seq, items, want_segment_scores: false, replicas: Vec::new() };
         if tx.send(batch).await.is_err() {
             break;
         }
