@@ -92,3 +92,17 @@ fn help_teaches_what_is_measured_and_bad_options_fail_with_one_line() {
         assert!(err.starts_with(ERROR_PREFIX) && err.lines().count() == 1, "{args:?}: {err}");
     }
 }
+
+#[test]
+fn the_human_table_names_every_rule_and_the_cadence() {
+    let out = Command::new(BIN)
+        .args(["alert-bench", "--segments", "3000", "--trials", "1", "--drops", "5", "--points", "2", "--ref-items", "1000", "--calibration-segments", "1000", "--cap", "1000"])
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let text = String::from_utf8_lossy(&out.stdout);
+    for want in ["every 50 segments", "12 evaluations = 600 segments", "degraded by 5.0 points", "measured drop", "below-2", "drop-2", "decline-2", "false/10^6", "median / p90"] {
+        assert!(text.contains(want), "the table lacks {want:?}:\n{text}");
+    }
+    assert!(String::from_utf8_lossy(&out.stderr).contains("stable run"), "progress goes to stderr");
+}

@@ -93,8 +93,11 @@ is set on the same stable run to let exactly as many windows alarm as the rule f
 the rule never fired: then it is the lowest stable window's score); printed beside each rule: the \
 window size with the smallest median delay, its delays, and its false alarms.
 
-Runtime: about two to three minutes in a release build on 2 cores at the defaults; the stable run \
-takes most of it (it scales with --segments, and the evaluations with --segments / (5 x --rate)).";
+Runtime: the default run took 6 min 19 s in a release build on 2 cores shared with other builds \
+(load average about 4): calibration 30 s, stable run 253 s, trials 95 s. The stable run scales with \
+--segments (about 20 us of CPU per segment: both sessions' scoring and replicate sums, and the \
+evaluations, 1 per 50 segments at the default rate); the trials with --trials and --cap. \
+`--segments 1000000 --trials 20` takes about 2 minutes.";
 
 /// Arguments of `mtgauge alert-bench`.
 #[derive(Debug, Args)]
@@ -461,6 +464,11 @@ pub(super) fn run(a: AlertBenchArgs) -> Result<(), CliError> {
             "calibration_segments": a.calibration_segments,
             "degraded": degraded,
         },
+        "stable_windows": FIXED_WINDOWS.iter().zip(&stable.windows).map(|(n, w)| {
+            let mean = w.iter().sum::<f64>() / w.len().max(1) as f64;
+            let sd = (w.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / w.len().saturating_sub(1).max(1) as f64).sqrt();
+            json!({ "window": n, "count": w.len(), "mean_bleu": mean, "sd_bleu": sd })
+        }).collect::<Vec<_>>(),
         "rules": rule_figures,
         "seconds": { "calibration": calibration_seconds, "stable_run": stable_seconds, "trials": trial_seconds, "total": started.elapsed().as_secs_f64() },
     });
@@ -488,6 +496,13 @@ fn human(f: &serde_json::Value) -> String {
     for d in sy["degraded"].as_array().into_iter().flatten() {
         o += &format!("  degraded by {} points: extra word-replacement chance {:.4}; measured drop {:.2} points\n", d["target"], num(&d["extra_replace"]), num(&d["measured_drop"]));
     }
+    o += "  spread of the stable system's corpus BLEU over n segments (standard deviation over the stable run's windows):";
+    for w in f["stable_windows"].as_array().into_iter().flatten() {
+        if w["count"].as_u64().unwrap_or(0) > 1 {
+            o += &format!(" n {} {:.2};", w["window"], num(&w["sd_bleu"]));
+        }
+    }
+    o += "\n";
     o += "\n  delays in segments from the switch to the first firing: median / 90th percentile (detected of trials; left out: fired before the switch)\n";
     o += "  beside each: the fixed-window test with the same false alarms on the stable run, at its best window size n\n\n";
     o += &format!("  {:<12} {:>10} {:>9}  {:<6} {:>15} {:>12}   {:>6} {:>15} {:>10}\n", "rule", "false/10^6", "stable", "drop", "median / p90", "detected", "n", "median / p90", "window FA");
