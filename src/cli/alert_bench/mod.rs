@@ -93,10 +93,12 @@ is set on the same stable run to let exactly as many windows alarm as the rule f
 the rule never fired: then it is the lowest stable window's score); printed beside each rule: the \
 window size with the smallest median delay, its delays, and its false alarms.
 
-Runtime: the default run took 6 min 19 s in a release build on 2 cores shared with other builds \
-(load average about 4): calibration 30 s, stable run 253 s, trials 95 s. The stable run scales with \
---segments (about 20 us of CPU per segment: both sessions' scoring and replicate sums, and the \
-evaluations, 1 per 50 segments at the default rate); the trials with --trials and --cap. \
+Runtime: the default run takes about 5.7 minutes of CPU in a release build (calibration, stable \
+run and trials); on 2 cores shared with other builds it took 6 min 19 s and 9 min 12 s of wall \
+time, the stable run two thirds of it. The stable run scales with --segments (about 20 us of CPU \
+per segment: both sessions' scoring and replicate sums, and the evaluations, 1 per 50 segments at \
+the default rate); the trials with --trials and --cap. The figures depend only on the options, \
+the seed and the number of threads (the stable run is one stream per thread). \
 `--segments 1000000 --trials 20` takes about 2 minutes.";
 
 /// Arguments of `mtgauge alert-bench`.
