@@ -19,8 +19,8 @@
 //! run length; from memory). The unit test below measures this code on simulated stable chunks
 //! (922 chunks between false alarms, the baseline learned as it goes) and a 3-standard-error
 //! drop (found after a median of 3 chunks). Real chunk scores are not exactly normal nor
-//! independent (a probe set replayed in order, say); a detection benchmark on the real scoring
-//! path is still to come.
+//! independent (a probe set replayed in order, say); `mtgauge alert-bench` measures the rule on
+//! the real scoring and evaluation path (figures in README, "How fast the rules find a drop").
 
 use std::collections::VecDeque;
 

@@ -3,6 +3,7 @@
 //! Errors end the process with exit code 2 and one line on stderr; nothing is printed on stdout
 //! for a failed command.
 
+mod alert_bench;
 mod bench;
 mod bench_guards;
 mod compare;
@@ -85,6 +86,10 @@ pub enum Command {
     /// Measure scoring speed on a generated corpus and print ratios against a baseline measured in the same run.
     #[command(long_about = bench::LONG_ABOUT)]
     Bench(bench::BenchArgs),
+    /// Measure the alert rules' false alarms and detection delays on generated data, through the
+    /// daemon's own scoring and alert evaluation, beside a fixed-window test.
+    #[command(long_about = alert_bench::LONG_ABOUT)]
+    AlertBench(alert_bench::AlertBenchArgs),
 }
 
 /// `--metric` in `--help`: the syntax, every key with its default (from the constants).
@@ -179,6 +184,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Tokenize(a) => tokenize::run(a),
         Command::Demo(a) => demo::run(a),
         Command::Bench(a) => bench::run(a),
+        Command::AlertBench(a) => alert_bench::run(a),
         Command::Serve(a) => serve::run(a),
         Command::Load(a) => load::run(a),
         Command::Rules(a) => rules::run(a),

@@ -232,6 +232,12 @@ fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64
         }
         (Condition::Drop { baseline, .. }, Window::Recent) => {
             let base = state.session(baseline).ok()?;
+            if let Some(((sa, ra), (sb, rb))) = super::compare::same_segments(session, &base) {
+                // What `paired` would sum, read from the windows' own sums (exactly equal).
+                let i = difference_interval(&ra, &rb, rule.metric, DEFAULT_LEVEL)?;
+                let value = corpus_score(&sa, config, rule.metric).unwrap_or(0.0) - corpus_score(&sb, config, rule.metric).unwrap_or(0.0);
+                return Some(Measured { value, low: i.low, high: i.high, segments: sa.segments, statistic: None });
+            }
             let r = session.spec().resampling;
             let settings = CompareSettings { resamples: r.resamples, seed: r.seed, level: DEFAULT_LEVEL, trials: 0 };
             let p = super::compare::paired(session, &base, &settings, 1).ok()?;

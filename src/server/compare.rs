@@ -5,7 +5,8 @@ use std::collections::HashMap;
 
 use super::error::{Result, ServiceError};
 use crate::metric::compare::{compare, CompareSettings, Comparison};
-use crate::metric::SegmentStats;
+use crate::metric::resample::Replicates;
+use crate::metric::{CorpusStats, SegmentStats};
 use crate::session::Session;
 
 /// A comparison of two sessions' windows.
@@ -52,4 +53,96 @@ pub fn paired(a: &Session, b: &Session, settings: &CompareSettings, threads: usi
     }
     let comparison = compare(&a.spec().config, &keys, &sa, &sb, settings, threads);
     Ok(Paired { comparison, recent_a: in_a.len() as u64, recent_b: in_b.len() as u64 })
+}
+
+/// The statistics and replicate sums of both `recent` windows, when they hold the same
+/// segments, each once (a probe set replayed to both sessions, say): then the comparison
+/// [`paired`] makes sums exactly these (the same segments with the same weights, integers),
+/// and the sessions keep them up to date, so a `drop` rule reads them without summing the
+/// windows again (R x window x fields multiply-adds per evaluation). None otherwise, or when
+/// the two are not comparable or resample differently: [`paired`] then decides.
+pub fn same_segments(a: &Session, b: &Session) -> Option<((CorpusStats, Replicates), (CorpusStats, Replicates))> {
+    if a.refs().digest() != b.refs().digest() || a.spec().config != b.spec().config || a.spec().resampling != b.spec().resampling {
+        return None;
+    }
+    let (sa, ra, ka) = a.recent_with_keys()?;
+    let (sb, rb, kb) = b.recent_with_keys()?;
+    let once = |k: &[u64]| k.windows(2).all(|w| w[0] != w[1]);
+    (ka == kb && once(&ka)).then_some(((sa, ra), (sb, rb)))
+}
+
+#[cfg(test)]
+mod tests {
+    use std::sync::Arc;
+
+    use super::*;
+    use crate::metric::compare::difference_interval;
+    use crate::metric::resample::DEFAULT_LEVEL;
+    use crate::metric::scores::corpus_score;
+    use crate::metric::Metric;
+    use crate::refs::compiled::Scratch;
+    use crate::refs::{RefSet, SegmentInput};
+    use crate::rng::SplitMix64;
+    use crate::session::{ItemKey, SessionSpec};
+
+    const WORDS: &[&str] = &["die", "Fähre", "nach", "Kiel", "fährt", "heute", "um", "neun", "Uhr", "ab", "Deck", "sieben", "bleibt", "geschlossen"];
+
+    fn sessions(window: usize) -> (Session, Session, Vec<SegmentInput>) {
+        let mut rng = SplitMix64::new(21);
+        let segments: Vec<SegmentInput> = (0..400).map(|i| SegmentInput { id: format!("n{i}"), source: None, refs: vec![(0..10).map(|_| WORDS[rng.index(WORDS.len())]).collect::<Vec<_>>().join(" ")] }).collect();
+        let set = Arc::new(RefSet::new(segments.clone()).unwrap());
+        let spec = |name: &str| SessionSpec { name: name.into(), refset: "ferry".into(), config: Default::default(), labels: Default::default(), window, resampling: Default::default() };
+        (Session::new(spec("a"), Arc::clone(&set), 0), Session::new(spec("b"), set, 0), segments)
+    }
+
+    /// Feed `items` to `s`, each keeping its reference words with chance `1 - drop`, in
+    /// batches of `batch`.
+    fn feed(s: &Session, segments: &[SegmentInput], items: &[usize], drop: f64, batch: usize, rng: &mut SplitMix64) {
+        let mut scratch = Scratch::default();
+        for chunk in items.chunks(batch) {
+            let outcomes: Vec<_> = chunk
+                .iter()
+                .map(|&i| {
+                    let hyp: Vec<&str> = segments[i].refs[0].split(' ').filter(|_| !rng.chance(drop)).collect();
+                    s.score_item(ItemKey::Id(&segments[i].id), &hyp.join(" "), &mut scratch)
+                })
+                .collect();
+            s.apply("", 0, &outcomes, 0, None).unwrap();
+        }
+    }
+
+    /// The windows' own sums give exactly what the paired comparison gives when both windows
+    /// hold the same segments once; a repeated segment or another segment set falls back.
+    #[test]
+    fn same_segments_equals_the_paired_comparison() {
+        let (a, b, segments) = sessions(150);
+        let mut rng = SplitMix64::new(4);
+        // A probe set replayed in a shuffled order to both, more than a window's worth.
+        let mut order: Vec<usize> = (0..segments.len()).collect();
+        for i in (1..order.len()).rev() {
+            order.swap(i, rng.index(i + 1));
+        }
+        feed(&a, &segments, &order[..370], 0.3, 17, &mut rng);
+        feed(&b, &segments, &order[..370], 0.1, 23, &mut rng);
+        let ((sa, ra), (sb, rb)) = same_segments(&a, &b).expect("the same 150 segments, each once");
+        let settings = CompareSettings { resamples: a.spec().resampling.resamples, seed: a.spec().resampling.seed, level: DEFAULT_LEVEL, trials: 0 };
+        let slow = paired(&a, &b, &settings, 1).unwrap();
+        let config = a.spec().config;
+        for m in [Metric::Bleu, Metric::Chrf] {
+            let want = slow.comparison.get(m).unwrap();
+            let got = difference_interval(&ra, &rb, m, DEFAULT_LEVEL).unwrap();
+            assert_eq!((got.low, got.high), (want.interval.unwrap().low, want.interval.unwrap().high), "{m}");
+            assert_eq!(corpus_score(&sa, &config, m).unwrap() - corpus_score(&sb, &config, m).unwrap(), want.difference, "{m}");
+            assert!(want.difference < 0.0, "a drops more words than b: {}", want.difference);
+        }
+        assert_eq!((sa.segments, sb.segments, slow.comparison.segments), (150, 150, 150));
+        // One segment twice in a's window: the comparison counts it once, the window twice.
+        feed(&a, &segments, &[order[369]], 0.3, 1, &mut rng);
+        feed(&b, &segments, &[order[370]], 0.1, 1, &mut rng);
+        assert!(same_segments(&a, &b).is_none(), "repeated segment");
+        // Different segments in the two windows.
+        feed(&a, &segments, &order[..150], 0.3, 50, &mut rng);
+        feed(&b, &segments, &order[200..350], 0.1, 50, &mut rng);
+        assert!(same_segments(&a, &b).is_none(), "different segments");
+    }
 }

@@ -374,6 +374,23 @@ impl Session {
         out
     }
 
+    /// The `recent` window read at one moment: its statistics, its replicate sums, and the
+    /// replicate keys of its records, sorted; None when the session keeps no replicates or a
+    /// record names no segment (restored from a store written before records did).
+    pub fn recent_with_keys(&self) -> Option<(CorpusStats, Replicates, Vec<u64>)> {
+        let fields = crate::metric::layout::Layout::new(&self.spec.config).width();
+        let (stats, copy, codes) = {
+            let st = self.state();
+            let copy = st.replicates.as_ref()?.copy(&st.window);
+            let codes: Vec<u64> = st.window.records(0, u64::MAX).map(|r| r.get(fields).copied().unwrap_or(NO_SEGMENT)).collect();
+            (st.window.stats(), copy, codes)
+        };
+        let mut keys = codes.into_iter().map(|c| if c == NO_SEGMENT { None } else { self.key_of(c) }).collect::<Option<Vec<u64>>>()?;
+        keys.sort_unstable();
+        let recent = copy.recent(|c| self.key_of(c))?;
+        Some((stats, recent, keys))
+    }
+
     /// The cumulative statistics and (when complete) replicate sums, read together.
     pub fn cumulative_with_replicates(&self) -> (CorpusStats, Option<Replicates>) {
         let st = self.state();

@@ -36,51 +36,115 @@ fn word(mut k: usize) -> String {
     }
 }
 
-pub(crate) fn generate(n: usize, mean: usize, vocab: usize, refs_per_seg: usize, seed: u64) -> Corpus {
-    let words: Vec<String> = (0..vocab.max(1)).map(word).collect();
-    let mut cdf = Vec::with_capacity(words.len());
-    let mut acc = 0.0;
-    for k in 0..words.len() {
-        acc += 1.0 / ((k + 1) as f64).powf(ZIPF_EXPONENT);
-        cdf.push(acc);
-    }
-    let mut rng = SplitMix64::new(seed);
-    let mut draw = |rng: &mut SplitMix64| {
-        let x = rng.next_f64() * acc;
-        &words[cdf.partition_point(|&c| c < x).min(words.len() - 1)]
-    };
-    let (lo, hi) = ((mean / 2).max(1) as u32, (mean + mean / 2).max(1) as u32);
-    let mut corpus = Corpus { refs: Vec::with_capacity(n), hyps: Vec::with_capacity(n) };
-    for _ in 0..n {
-        let len = rng.in_range((lo, hi)) as usize;
-        let base: Vec<&String> = (0..len).map(|_| draw(&mut rng)).collect();
-        let mut refs = vec![join(&base)];
-        for _ in 1..refs_per_seg {
-            refs.push(join(&perturb(&base, &mut rng, &mut draw)));
+/// Invented words drawn from a Zipf distribution: word k (0-based) with weight 1 / (k + 1)^s.
+pub(crate) struct Vocabulary {
+    words: Vec<String>,
+    cdf: Vec<f64>,
+    total: f64,
+}
+
+impl Vocabulary {
+    /// `size` words (at least 1).
+    pub(crate) fn zipf(size: usize) -> Vocabulary {
+        let words: Vec<String> = (0..size.max(1)).map(word).collect();
+        let mut cdf = Vec::with_capacity(words.len());
+        let mut total = 0.0;
+        for k in 0..words.len() {
+            total += 1.0 / ((k + 1) as f64).powf(ZIPF_EXPONENT);
+            cdf.push(total);
         }
-        corpus.hyps.push(join(&perturb(&base, &mut rng, &mut draw)));
+        Vocabulary { words, cdf, total }
+    }
+
+    /// The index of a word drawn at random.
+    pub(crate) fn draw(&self, rng: &mut SplitMix64) -> usize {
+        let x = rng.next_f64() * self.total;
+        self.cdf.partition_point(|&c| c < x).min(self.words.len() - 1)
+    }
+
+    /// A reference of `lo..=hi` words (uniform length), as word indices.
+    pub(crate) fn reference(&self, (lo, hi): (u32, u32), rng: &mut SplitMix64) -> Vec<usize> {
+        let len = rng.in_range((lo, hi)) as usize;
+        (0..len).map(|_| self.draw(rng)).collect()
+    }
+
+    /// `words` joined by single spaces into `out` (cleared first).
+    pub(crate) fn join_into(&self, words: &[usize], out: &mut String) {
+        out.clear();
+        for (i, &w) in words.iter().enumerate() {
+            if i > 0 {
+                out.push(' ');
+            }
+            out.push_str(&self.words[w]);
+        }
+    }
+}
+
+/// How a hypothesis departs from its reference, per reference word: dropped with chance `drop`,
+/// else replaced by a random word with chance `replace`, else kept; then followed by an extra
+/// random word with chance `insert`.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct Noise {
+    /// Chance a word is replaced.
+    pub(crate) replace: f64,
+    /// Chance a word is dropped.
+    pub(crate) drop: f64,
+    /// Chance an extra word follows.
+    pub(crate) insert: f64,
+}
+
+/// The noise of the generated corpora's hypotheses.
+pub(crate) const CORPUS_NOISE: Noise = Noise { replace: HYP_REPLACE, drop: HYP_DROP, insert: HYP_INSERT };
+
+impl Noise {
+    /// This noise with `extra` more chance of replacing a word (taken from the kept words;
+    /// at most all of them).
+    pub(crate) fn with_extra_replace(self, extra: f64) -> Noise {
+        Noise { replace: (self.replace + extra.max(0.0)).min(1.0 - self.drop), ..self }
+    }
+
+    /// A noisy copy of `base` into `out` (cleared first).
+    pub(crate) fn copy_into(&self, base: &[usize], vocab: &Vocabulary, rng: &mut SplitMix64, out: &mut Vec<usize>) {
+        out.clear();
+        for &w in base {
+            let x = rng.next_f64();
+            if x < self.drop {
+                continue;
+            }
+            out.push(if x < self.drop + self.replace { vocab.draw(rng) } else { w });
+            if rng.chance(self.insert) {
+                out.push(vocab.draw(rng));
+            }
+        }
+    }
+}
+
+/// Length range of generated references for a mean length: half to one and a half times it.
+pub(crate) fn length_range(mean: usize) -> (u32, u32) {
+    ((mean / 2).max(1) as u32, (mean + mean / 2).max(1) as u32)
+}
+
+pub(crate) fn generate(n: usize, mean: usize, vocab: usize, refs_per_seg: usize, seed: u64) -> Corpus {
+    let vocab = Vocabulary::zipf(vocab);
+    let mut rng = SplitMix64::new(seed);
+    let lengths = length_range(mean);
+    let mut corpus = Corpus { refs: Vec::with_capacity(n), hyps: Vec::with_capacity(n) };
+    let (mut noisy, mut text) = (Vec::new(), String::new());
+    for _ in 0..n {
+        let base = vocab.reference(lengths, &mut rng);
+        vocab.join_into(&base, &mut text);
+        let mut refs = vec![text.clone()];
+        for _ in 1..refs_per_seg {
+            CORPUS_NOISE.copy_into(&base, &vocab, &mut rng, &mut noisy);
+            vocab.join_into(&noisy, &mut text);
+            refs.push(text.clone());
+        }
+        CORPUS_NOISE.copy_into(&base, &vocab, &mut rng, &mut noisy);
+        vocab.join_into(&noisy, &mut text);
+        corpus.hyps.push(text.clone());
         corpus.refs.push(refs);
     }
     corpus
-}
-
-fn perturb<'a>(base: &[&'a String], rng: &mut SplitMix64, draw: &mut impl FnMut(&mut SplitMix64) -> &'a String) -> Vec<&'a String> {
-    let mut out = Vec::with_capacity(base.len() + 2);
-    for &w in base {
-        let x = rng.next_f64();
-        if x < HYP_DROP {
-            continue;
-        }
-        out.push(if x < HYP_DROP + HYP_REPLACE { draw(rng) } else { w });
-        if rng.chance(HYP_INSERT) {
-            out.push(draw(rng));
-        }
-    }
-    out
-}
-
-fn join(ws: &[&String]) -> String {
-    ws.iter().map(|s| s.as_str()).collect::<Vec<_>>().join(" ")
 }
 
 pub(crate) fn refset(c: &Corpus) -> RefSet {
