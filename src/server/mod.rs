@@ -9,6 +9,7 @@ pub mod conn;
 pub mod error;
 pub mod fleet;
 pub mod history;
+pub mod page;
 pub mod limits;
 mod services;
 pub mod state;
@@ -180,7 +181,8 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     let state = open_state(&config).await?;
     let (health, health_service) = tonic_health::server::health_reporter();
     health.set_service_status("", tonic_health::ServingStatus::NotServing).await;
-    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h, replicate_series(&state, config.exported_resamples))).transpose().map_err(RunError::Setup)?;
+    let page = admin::PageSource { state: state.clone(), tokens: config.tokens.clone() };
+    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h, replicate_series(&state, config.exported_resamples), Some(page))).transpose().map_err(RunError::Setup)?;
     let (stop_tx, stop_rx) = watch::channel(false);
     let tls = tls_config(config.tls.as_ref())?;
     let idle = config.limits.connection_idle;
