@@ -6,7 +6,7 @@ use std::path::PathBuf;
 use prost::Message;
 
 const PROTO_ROOT: &str = "proto";
-const PROTOS: &[&str] = &["mtgauge/v1/common.proto", "mtgauge/v1/refsets.proto", "mtgauge/v1/sessions.proto", "mtgauge/v1/scoring.proto"];
+const PROTOS: &[&str] = &["mtgauge/v1/common.proto", "mtgauge/v1/refsets.proto", "mtgauge/v1/sessions.proto", "mtgauge/v1/scoring.proto", "mtgauge/v1/history.proto"];
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     for p in PROTOS {

@@ -31,7 +31,10 @@ Settings come from --config FILE (TOML) and flags; a flag overrides the file. Ke
   alert_eval_seconds (default {eval}), [[alert]] (alert rules the daemon evaluates: see README),
   [[alert_target]] kind = alertmanager|webhook, url, bearer_token_file, ca_file (where alerts go),
   [limits] (below), [[refset]] name, paths = [...], source (loaded at startup),
-  replica_name, fleet = [...] (a replica's name and its fleet's: see --replica-name).
+  replica_name, fleet = [...] (a replica's name and its fleet's: see --replica-name),
+  [history] minute_days (default {h_min}), hour_days (default {h_hour}), minute_interval_minutes
+  (default {h_min_iv}), hour_interval_hours (default {h_hour_iv}): how long each session keeps
+  one-minute and hourly buckets of its statistics, and their replicate sums (intervals).
 
 [limits] keys, each at least 1, with their defaults; a request past one is refused with \
 RESOURCE_EXHAUSTED or INVALID_ARGUMENT naming its key:
@@ -45,6 +48,10 @@ filled in), the keys the file accepts and the metrics the server exports, as JSO
         max_message = crate::server::DEFAULT_MAX_MESSAGE_BYTES,
         exported = telemetry::DEFAULT_EXPORTED_RESAMPLES,
         eval = crate::alerts::rules::DEFAULT_EVAL_SECONDS,
+        h_min = crate::session::history::DEFAULT_MINUTE_RETENTION_SECS / 86_400,
+        h_hour = crate::session::history::DEFAULT_HOUR_RETENTION_SECS / 86_400,
+        h_min_iv = crate::session::history::DEFAULT_MINUTE_INTERVAL_SECS / 60,
+        h_hour_iv = crate::session::history::DEFAULT_HOUR_INTERVAL_SECS / 3600,
     )
 }
 
@@ -131,10 +138,10 @@ pub enum Durability {
 }
 
 /// The config file's top-level keys (what `FileConfig` reads).
-const FILE_KEYS: [&str; 22] = [
+const FILE_KEYS: [&str; 23] = [
     "tls_cert", "tls_key", "tls_client_ca", "health_listen", "tokens", "data_dir", "durability", "group_commit_ms", "listen",
     "metrics_listen", "refset_dir", "drain_seconds", "log_format", "max_message_bytes", "exported_resamples", "alert_eval_seconds", "limits", "refset",
-    "alert", "alert_target", "replica_name", "fleet",
+    "alert", "alert_target", "replica_name", "fleet", "history",
 ];
 /// The keys of one `[[alert_target]]` entry.
 const TARGET_KEYS: [&str; 4] = ["kind", "url", "bearer_token_file", "ca_file"];
@@ -171,6 +178,8 @@ pub struct FileConfig {
     limits: LimitsSection,
     #[serde(default)]
     refset: Vec<FileRefSet>,
+    #[serde(default)]
+    history: crate::session::history::HistorySection,
 }
 
 #[derive(Debug, Clone, Deserialize)]
@@ -287,6 +296,7 @@ pub fn resolve(a: &ServeArgs, file: FileConfig) -> Result<Resolved, CliError> {
     if let Some(d) = a.drain_seconds.or(file.drain_seconds) {
         config.drain = Duration::from_secs(d);
     }
+    config.history = file.history.resolve().map_err(|e| CliError::Usage(format!("config section [history]: {e}")))?;
     let default_addr = |s: &str| s.parse::<SocketAddr>().map_err(|e| CliError::Usage(format!("default address {s}: {e}")));
     let listen = match a.listen.or(file.listen) {
         Some(l) => l,
@@ -326,6 +336,7 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "max_message_bytes": c.max_message_bytes,
             "exported_resamples": c.exported_resamples,
             "alert_eval_seconds": c.alert_every.as_secs(),
+            "history": {"minute_days": c.history.minute_retention / 86_400, "hour_days": c.history.hour_retention / 86_400, "minute_interval_minutes": c.history.minute_intervals / 60, "hour_interval_hours": c.history.hour_intervals / 3600},
             "alert": c.alert_rules,
             "alert_target": c.alert_targets.iter().map(|t| serde_json::json!({"kind": format!("{:?}", t.kind).to_lowercase(), "url": t.url, "ca_file": path(&t.ca_file)})).collect::<Vec<_>>(),
             "log_format": match r.log_format { LogFormat::Human => "human", LogFormat::Json => "json" },
@@ -338,7 +349,7 @@ pub fn show_config(r: &Resolved) -> serde_json::Value {
             "replica_name": c.fleet.name,
             "fleet": c.fleet.members,
         },
-        "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS, "alert": crate::alerts::rules::RULE_KEYS, "alert_target": TARGET_KEYS },
+        "keys": { "top": FILE_KEYS, "limits": crate::server::limits::LIMIT_NAMES, "refset": REFSET_KEYS, "alert": crate::alerts::rules::RULE_KEYS, "alert_target": TARGET_KEYS, "history": crate::session::history::HISTORY_KEYS },
         "metrics": telemetry::METRIC_NAMES.as_slice(),
     })
 }

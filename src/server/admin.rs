@@ -26,23 +26,34 @@ pub const HEALTH_MAX_CONNECTIONS: usize = 64;
 /// Series rendered at scrape time and appended to the recorder's (the per-replicate counters).
 pub type ExtraSeries = std::sync::Arc<dyn Fn() -> String + Send + Sync>;
 
-/// Serve `GET /metrics` (Prometheus text format) on `listener` until the returned task is
+/// What the status page reads: the state, and the tokens a reader must present (None: no
+/// authentication, like the scrape).
+#[derive(Clone)]
+pub struct PageSource {
+    /// The server's state.
+    pub state: super::State,
+    /// Bearer tokens (scope `read`).
+    pub tokens: Option<std::sync::Arc<super::auth::Tokens>>,
+}
+
+/// Serve `GET /metrics` (Prometheus text format) and, with `page`, the status page (`GET /`
+/// and `GET /api/v1/overview`, see [`super::page`]) on `listener` until the returned task is
 /// aborted.
-pub fn serve_metrics(listener: TcpListener, handle: PrometheusHandle, extra: ExtraSeries) -> Result<tokio::task::JoinHandle<()>, String> {
+pub fn serve_metrics(listener: TcpListener, handle: PrometheusHandle, extra: ExtraSeries, page: Option<PageSource>) -> Result<tokio::task::JoinHandle<()>, String> {
     let mut admitted = conn::incoming(listener, Listener::Metrics, METRICS_MAX_CONNECTIONS, METRICS_REQUEST_TIMEOUT, None)?;
     Ok(tokio::spawn(async move {
         while let Some(sock) = admitted.next().await {
             let Ok(mut sock) = sock else { continue };
-            let (handle, extra) = (handle.clone(), extra.clone());
+            let (handle, extra, page) = (handle.clone(), extra.clone(), page.clone());
             tokio::spawn(async move {
-                let _ = tokio::time::timeout(METRICS_REQUEST_TIMEOUT, answer_scrape(&mut sock, &handle, &extra)).await;
+                let _ = tokio::time::timeout(METRICS_REQUEST_TIMEOUT, answer_scrape(&mut sock, &handle, &extra, page.as_ref())).await;
             });
         }
     }))
 }
 
 /// Read one request head and answer it: the metrics for `GET /metrics`, 404 for anything else.
-async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: &PrometheusHandle, extra: &ExtraSeries) {
+async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: &PrometheusHandle, extra: &ExtraSeries, page: Option<&PageSource>) {
     let mut buf = vec![0u8; SCRAPE_HEAD_BYTES];
     let mut n = 0;
     // Read the request head (bounded); the body, if any, is ignored.
@@ -61,12 +72,41 @@ async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: 
         let extra = std::sync::Arc::clone(extra);
         let more = tokio::task::spawn_blocking(move || extra()).await.unwrap_or_default();
         ("200 OK", "text/plain; version=0.0.4; charset=utf-8", handle.render() + &more)
+    } else if let (true, Some(page), Some(which)) = (head.starts_with("GET "), page, page_path(path)) {
+        match page_allowed(&head, page) {
+            Err(message) => ("401 Unauthorized", "text/plain; charset=utf-8", message + "\n"),
+            Ok(()) => {
+                let state = page.state.clone();
+                let body = tokio::task::spawn_blocking(move || if which { super::page::page_html(&state) } else { super::page::overview_json(&state) }).await.unwrap_or_default();
+                ("200 OK", if which { "text/html; charset=utf-8" } else { "application/json" }, body)
+            }
+        }
     } else {
         ("404 Not Found", "text/plain; charset=utf-8", "not found: try /metrics\n".to_string())
     };
     let resp = format!("HTTP/1.1 {status}\r\nContent-Type: {ctype}\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}", body.len());
     let _ = sock.write_all(resp.as_bytes()).await;
     let _ = sock.shutdown().await;
+}
+
+/// Some(true) for the page, Some(false) for its JSON, None for anything else.
+fn page_path(path: &str) -> Option<bool> {
+    match path.split('?').next().unwrap_or("") {
+        "/" | "/index.html" => Some(true),
+        "/api/v1/overview" => Some(false),
+        _ => None,
+    }
+}
+
+/// With tokens on, the page needs a bearer token with the `read` scope (as GetScores does).
+fn page_allowed(head: &str, page: &PageSource) -> Result<(), String> {
+    let Some(tokens) = &page.tokens else { return Ok(()) };
+    let mut req = tonic::Request::new(());
+    let bearer = head.lines().find_map(|l| l.split_once(':').filter(|(k, _)| k.trim().eq_ignore_ascii_case("authorization")).map(|(_, v)| v.trim().to_owned()));
+    if let Some(v) = bearer.and_then(|v| v.parse().ok()) {
+        req.metadata_mut().insert("authorization", v);
+    }
+    tokens.check(&req, super::auth::Scope::Read).map_err(|e| e.to_string())
 }
 
 /// Serve gRPC health alone, in plaintext, on `listener` (the same status as the main port's)

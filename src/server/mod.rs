@@ -8,6 +8,8 @@ pub mod compare;
 pub mod conn;
 pub mod error;
 pub mod fleet;
+pub mod history;
+pub mod page;
 pub mod limits;
 mod services;
 pub mod state;
@@ -91,6 +93,8 @@ pub struct ServerConfig {
     pub alert_targets: Vec<crate::alerts::deliver::Target>,
     /// This replica's name and fleet, for the producer affinity check.
     pub fleet: fleet::Fleet,
+    /// How long sessions keep their history.
+    pub history: crate::session::history::HistoryConfig,
 }
 
 /// PEM files of the server's TLS identity.
@@ -106,7 +110,7 @@ pub struct TlsFiles {
 
 impl Default for ServerConfig {
     fn default() -> Self {
-        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES, alert_rules: Vec::new(), alert_every: Duration::from_secs(crate::alerts::rules::DEFAULT_EVAL_SECONDS), alert_targets: Vec::new(), fleet: fleet::Fleet::default() }
+        ServerConfig { refset_dir: None, startup_refsets: Vec::new(), limits: Limits::default(), max_message_bytes: DEFAULT_MAX_MESSAGE_BYTES, drain: DEFAULT_DRAIN, data_dir: None, group_commit: DEFAULT_GROUP_COMMIT, tls: None, health_listener: None, tokens: None, exported_resamples: crate::telemetry::DEFAULT_EXPORTED_RESAMPLES, alert_rules: Vec::new(), alert_every: Duration::from_secs(crate::alerts::rules::DEFAULT_EVAL_SECONDS), alert_targets: Vec::new(), fleet: fleet::Fleet::default(), history: Default::default() }
     }
 }
 
@@ -177,7 +181,8 @@ pub async fn run(mut config: ServerConfig, grpc: TcpListener, metrics: Option<(T
     let state = open_state(&config).await?;
     let (health, health_service) = tonic_health::server::health_reporter();
     health.set_service_status("", tonic_health::ServingStatus::NotServing).await;
-    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h, replicate_series(&state, config.exported_resamples))).transpose().map_err(RunError::Setup)?;
+    let page = admin::PageSource { state: state.clone(), tokens: config.tokens.clone() };
+    let metrics_task = metrics.map(|(l, h)| admin::serve_metrics(l, h, replicate_series(&state, config.exported_resamples), Some(page))).transpose().map_err(RunError::Setup)?;
     let (stop_tx, stop_rx) = watch::channel(false);
     let tls = tls_config(config.tls.as_ref())?;
     let idle = config.limits.connection_idle;
@@ -240,6 +245,7 @@ async fn open_state(config: &ServerConfig) -> Result<State, RunError> {
     };
     let state = State::with_store(config.refset_dir.clone(), config.limits, store, config.group_commit).map_err(setup)?;
     state.set_fleet(config.fleet.clone());
+    state.set_history_config(config.history);
     if let Some(store) = state.store() {
         let st = state.clone();
         let n = tokio::task::spawn_blocking(move || st.restore()).await.map_err(setup)?.map_err(setup)?;
@@ -276,6 +282,7 @@ fn router(config: &ServerConfig, state: &State, stop: watch::Receiver<bool>, tls
         .map_err(setup)?;
     let max = config.max_message_bytes;
     let svc = services::Services::new(state.clone(), stop, config.tokens.clone(), max);
+    let history = pb::history_server::HistoryServer::new(history::HistoryService::new(state.clone(), config.tokens.clone()));
     let mut builder = tonic::transport::Server::builder();
     if let Some(tls) = tls {
         builder = builder.tls_config(tls).map_err(|e| RunError::Setup(format!("TLS configuration: {e}")))?;
@@ -291,6 +298,7 @@ fn router(config: &ServerConfig, state: &State, stop: watch::Receiver<bool>, tls
         .add_service(reflection_v1alpha)
         .add_service(NameMessageLimit::new(pb::ref_sets_server::RefSetsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
         .add_service(NameMessageLimit::new(pb::sessions_server::SessionsServer::new(svc.clone()).max_decoding_message_size(max).max_encoding_message_size(max), max))
+        .add_service(NameMessageLimit::new(history.max_decoding_message_size(max).max_encoding_message_size(max), max))
         .add_service(NameMessageLimit::new(pb::scoring_server::ScoringServer::new(svc).max_decoding_message_size(max).max_encoding_message_size(max), max)))
 }
 

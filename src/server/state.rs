@@ -58,6 +58,8 @@ struct Inner {
     failure: tokio::sync::watch::Sender<Option<String>>,
     /// The alert states the evaluator last published.
     alerts: super::alerting::AlertBoard,
+    /// How long sessions keep their history (set once at startup; unset: the defaults).
+    history: std::sync::OnceLock<crate::session::history::HistoryConfig>,
 }
 
 /// A scored batch on its way into its session.
@@ -125,7 +127,7 @@ impl State {
         let (tx, rx) = std::sync::mpsc::channel::<CommitRequest>();
         let committer = store.as_ref().map(|_| std::sync::Mutex::new(tx));
         let (failure, _) = tokio::sync::watch::channel(None);
-        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer, failure, alerts: Default::default(), fleet: Default::default() }) };
+        let state = State { inner: Arc::new(Inner { refsets: DashMap::new(), sessions: DashMap::new(), streaming: DashMap::new(), refset_dir, limits, scoring_slots: tokio::sync::Semaphore::new(slots), streams: Default::default(), watchers: Default::default(), store: store.clone(), committer, failure, alerts: Default::default(), fleet: Default::default(), history: Default::default() }) };
         if let Some(store) = store {
             // The thread holds only a weak handle, so it ends when the state is dropped.
             let weak = Arc::downgrade(&state.inner);
@@ -146,6 +148,16 @@ impl State {
     pub fn fleet(&self) -> &super::fleet::Fleet {
         static NONE: super::fleet::Fleet = super::fleet::Fleet { name: None, members: Vec::new() };
         self.inner.fleet.get().unwrap_or(&NONE)
+    }
+
+    /// Set how long sessions keep their history (once, at startup, before sessions exist).
+    pub fn set_history_config(&self, config: crate::session::history::HistoryConfig) {
+        let _ = self.inner.history.set(config);
+    }
+
+    /// How long sessions keep their history.
+    pub fn history_config(&self) -> crate::session::history::HistoryConfig {
+        self.inner.history.get().copied().unwrap_or_default()
     }
 
     /// The alert states as last evaluated.
@@ -233,6 +245,7 @@ impl State {
             crate::telemetry::record_guards(&spec.name, &s.counts.guards, true);
             crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });
+            session.restore_history(self.history_config(), s.history).map_err(bad)?;
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
         }
         Ok(n)
@@ -404,6 +417,7 @@ impl State {
             return Err(ServiceError::Limit { what: format!("{} sessions", self.inner.sessions.len() + 1), limit: self.inner.limits.max_sessions as u64, key: Limit::MaxSessions.key() });
         }
         let session = Arc::new(Session::new(spec.clone(), Arc::clone(&set.set), unix_now()));
+        session.history().set_config(self.history_config());
         match self.inner.sessions.entry(spec.name.clone()) {
             // Created concurrently by another request: the same rule.
             Entry::Occupied(e) => existing(e.get()),
@@ -475,9 +489,10 @@ impl Drop for ProducerClaim {
 /// published.
 fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std::result::Result<Vec<(Option<Applied>, bool)>, StoreError> {
     let mut effects = Vec::with_capacity(group.len());
+    let now = unix_now();
     for p in group {
         let current = live.is_some_and(|l| l.sessions.get(&p.session.spec().name).is_some_and(|e| Arc::ptr_eq(e.value(), &p.session)));
-        let applied = p.session.apply_guarded(&p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref(), &p.guards);
+        let applied = p.session.apply_at(now, &p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref(), &p.guards);
         effects.push((applied, current));
     }
     if let Some(store) = store {

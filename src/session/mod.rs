@@ -3,6 +3,7 @@
 //!
 //! Pure and synchronous like the scoring core: the server owns sessions and calls in here.
 
+pub mod history;
 mod replicates;
 mod window;
 
@@ -276,6 +277,8 @@ pub struct Session {
     /// Held only to add a batch's statistics or to read a snapshot, never across an await or
     /// while scoring: a std mutex is right for such short sections.
     state: Mutex<SessionState>,
+    /// Time buckets of the statistics; its own short lock, taken after `state` is released.
+    history: Mutex<history::History>,
 }
 
 impl Session {
@@ -289,7 +292,8 @@ impl Session {
         let source_keys = sources.as_ref().map_or_else(Vec::new, |ix| keys_of(ix.compiled.refs()));
         let replicates = (spec.resampling.resamples > 0).then(|| SessionReplicates::new(&spec.config, spec.resampling, spec.window, 0));
         let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new(), replicates };
-        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state) }
+        let history = history::History::new(history::HistoryConfig::default(), &spec.config, (spec.resampling.resamples > 0).then(|| Replicates::new(&spec.config, spec.resampling.resamples, spec.resampling.seed)));
+        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state), history: Mutex::new(history) }
     }
 
     /// The guards' configuration of this session.
@@ -346,6 +350,36 @@ impl Session {
             }
         };
         self.state().apply(producer, sequence, outcomes, rejected, delta, guards)
+    }
+
+    /// [`Session::apply`] at time `now` (seconds since the Unix epoch): the batch is also
+    /// counted in the history's buckets of that time, and the effect says what of the history
+    /// the store is to write.
+    pub fn apply_at(&self, now: i64, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>, guards: &GuardCounts) -> Option<Applied> {
+        let own;
+        let delta = match delta {
+            Some(d) => Some(d),
+            None => {
+                own = self.replicate_delta(outcomes);
+                own.as_ref()
+            }
+        };
+        let mut applied = self.apply_guarded(producer, sequence, outcomes, rejected, delta, guards)?;
+        applied.history = Some(self.history().record(now, &applied.added, &applied.batch, delta));
+        Some(applied)
+    }
+
+    /// Lock the history (short sections only: copy what a query needs).
+    pub fn history(&self) -> MutexGuard<'_, history::History> {
+        // As for `state`: the buckets are integers, whole after any panic that matters.
+        self.history.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    /// Replace the history with one rebuilt from a store, under `config`.
+    pub fn restore_history(&self, config: history::HistoryConfig, stored: Vec<history::StoredBucket>) -> Result<(), String> {
+        let template = (self.spec.resampling.resamples > 0).then(|| Replicates::new(&self.spec.config, self.spec.resampling.resamples, self.spec.resampling.seed));
+        *self.history() = history::History::restore(config, &self.spec.config, template, stored)?;
+        Ok(())
     }
 
     /// The segments of the `recent` window, keyed by their replicate key, oldest first; a
@@ -443,7 +477,10 @@ impl Session {
         let sources = self.sources.as_ref().map_or(0, |s| s.compiled.memory_bytes() + s.compiled.refs().memory_bytes() + s.map.capacity() * 48 + s.map.keys().map(String::len).sum::<usize>());
         let st = self.state();
         let replicates = st.replicates.as_ref().map_or(0, SessionReplicates::memory_bytes);
-        self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + st.window.memory_bytes() + replicates
+        let window = st.window.memory_bytes();
+        drop(st);
+        let history = self.history().memory_bytes();
+        self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + window + replicates + history
     }
 
     /// Score one item (CPU work, no lock taken).
@@ -541,7 +578,7 @@ impl SessionState {
             }
             keep_from = keep_from.min(r.saved_to());
         }
-        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from })
+        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from, history: None })
     }
 }
 
@@ -582,6 +619,9 @@ pub struct Applied {
     /// Oldest window record a durable copy must keep: the window's first, or an older one
     /// that the last saved replicate sums do not cover yet.
     pub keep_from: u64,
+    /// What the batch changed in the history ([`Session::apply_at`]; None from
+    /// [`Session::apply`]).
+    pub history: Option<history::HistoryWrite>,
 }
 
 #[cfg(test)]

@@ -6,6 +6,8 @@
 //!
 //! Synchronous: the server calls it from blocking threads. One process opens a store at a time.
 
+mod history;
+
 use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
 
@@ -141,6 +143,8 @@ pub struct LoadedSession {
     pub next_row: u64,
     /// Sequence marks.
     pub marks: HashMap<String, u64>,
+    /// History buckets (none in a store written before histories).
+    pub history: Vec<crate::session::history::StoredBucket>,
 }
 
 /// Everything needed to rebuild the server state.
@@ -289,6 +293,8 @@ impl Store {
             txn.open_table(WINDOW)?;
             txn.open_table(MARKS)?;
             txn.open_table(REPLICATES)?;
+            txn.open_table(history::HISTORY)?;
+            txn.open_table(history::HISTORY_SUMS)?;
             Ok(())
         })()
         .map_err(|e| self.err(e))?;
@@ -341,6 +347,7 @@ impl Store {
         let window = txn.open_table(WINDOW).map_err(|e| self.err(e))?;
         let marks = txn.open_table(MARKS).map_err(|e| self.err(e))?;
         let replicates = txn.open_table(REPLICATES).map_err(|e| self.err(e))?;
+        let (h_stats, h_sums) = (txn.open_table(history::HISTORY).map_err(|e| self.err(e))?, txn.open_table(history::HISTORY_SUMS).map_err(|e| self.err(e))?);
         for entry in txn.open_table(SESSIONS).map_err(|e| self.err(e))?.iter().map_err(|e| self.err(e))? {
             let (k, v) = entry.map_err(|e| self.err(e))?;
             let name = k.value();
@@ -384,6 +391,7 @@ impl Store {
                 }
                 m.insert(producer.to_owned(), v.value());
             }
+            let hist = history::load(&h_stats, &h_sums, name).map_err(|e| self.err(format!("history of {name}: {e}")))?;
             let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling, target_language: s.target_language, guard_settings: s.guard_settings };
             snap.sessions.push(LoadedSession {
                 spec,
@@ -397,6 +405,7 @@ impl Store {
                 replicates: saved,
                 next_row: st.next_row,
                 marks: m,
+                history: hist,
             });
         }
         Ok(snap)
@@ -438,6 +447,7 @@ impl Store {
         self.write(|txn| {
             txn.open_table(SESSIONS)?.insert(spec.name.as_str(), bytes.as_slice())?;
             clear_session_data(txn, &spec.name, true)?;
+            history::clear(txn, &spec.name)?;
             txn.open_table(REPLICATES)?.insert(spec.name.as_str(), encode_replicates(&SavedReplicates { covered_to: 0, complete: true, sums: Vec::new() }).as_slice())?;
             Ok(())
         })
@@ -448,6 +458,7 @@ impl Store {
         self.write(|txn| {
             txn.open_table(SESSIONS)?.remove(name)?;
             clear_session_data(txn, name, true)?;
+            history::clear(txn, name)?;
             gc_versions(txn)
         })
     }
@@ -505,7 +516,9 @@ impl Store {
             let reps = e.replicates.map(encode_replicates);
             encoded.push((*name, stats, blocks, last.keep_from, reps));
         }
+        let history_ops = history::encode(writes).map_err(|e| self.err(e))?;
         self.write(|txn| {
+            history::apply(txn, &history_ops)?;
             let mut stats = txn.open_table(STATS)?;
             let mut window = txn.open_table(WINDOW)?;
             let mut marks = txn.open_table(MARKS)?;

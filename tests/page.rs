@@ -1,0 +1,125 @@
+//! The status page in a real browser: a store seeded with two sessions' batches at injected
+//! times over the last 40 minutes (one drops from the good demo system to the dictionary
+//! fallback for its last 10 minutes), a real `mtgauge serve` on it, headless Chromium (Debian
+//! `chromium`) loads `GET /`: the DOM lists both sessions with one chart point per minute that
+//! had segments, and a screenshot is written to the test output directory.
+
+mod common;
+
+use std::process::Command;
+use std::sync::Arc;
+
+use common::{temp_dir, Server};
+use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
+use mtgauge::metric::resample::Resampling;
+use mtgauge::metric::ScoreConfig;
+use mtgauge::refs::compiled::Scratch;
+use mtgauge::refs::RefSet;
+use mtgauge::session::{ItemKey, Session, SessionSpec};
+use mtgauge::store::{BatchWrite, Store};
+
+fn chromium() -> Option<&'static str> {
+    let found = ["chromium", "/usr/bin/chromium"].into_iter().find(|c| Command::new(c).arg("--version").output().is_ok_and(|o| o.status.success()));
+    if found.is_none() {
+        // CI exports MTGAUGE_REQUIRE_CHROMIUM=1 (.ci/run installs Debian's chromium).
+        assert!(std::env::var("MTGAUGE_REQUIRE_CHROMIUM").as_deref() != Ok("1"), "chromium is required (MTGAUGE_REQUIRE_CHROMIUM=1) but not found");
+        eprintln!("chromium not found: page test skipped");
+    }
+    found
+}
+
+fn browse(bin: &str, profile: &std::path::Path, extra: &[&str], url: &str) -> std::process::Output {
+    let mut c = Command::new(bin);
+    c.args(["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking", "--disable-component-update", "--disable-sync"]);
+    c.arg(format!("--user-data-dir={}", profile.display())).args(extra).arg(url);
+    c.output().expect("run chromium")
+}
+
+/// Seed `dir` with the demo reference set and two sessions; returns, per session, the number of
+/// minutes with segments in the last hour.
+fn seed(dir: &std::path::Path, now: i64) -> Vec<(String, usize)> {
+    let set = Arc::new(RefSet::new(demo_segments()).unwrap());
+    let store = Store::open(dir).unwrap();
+    store.put_refset("ferry", &set).unwrap();
+    let systems = demo_systems();
+    let (good, poor) = (&systems[0], &systems[2]);
+    let mut out = Vec::new();
+    for (name, drop_at) in [("ferry-v8", None), ("ferry-v8-canary", Some(30))] {
+        let labels = [("route".to_string(), "tarnholm".to_string())].into();
+        let spec = SessionSpec { name: name.into(), refset: "ferry".into(), config: ScoreConfig::default(), labels, window: 200, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() };
+        store.put_session(&spec, &set.digest_hex(), now - 3000).unwrap();
+        let session = Session::new(spec, Arc::clone(&set), now - 3000);
+        let mut scratch = Scratch::default();
+        let start = (now / 60) * 60 - 40 * 60;
+        let mut minutes = 0;
+        for m in 0..40i64 {
+            if m % 7 == 3 {
+                continue; // a quiet minute: no point
+            }
+            minutes += 1;
+            let system = if drop_at.is_some_and(|d| m >= d) { poor } else { good };
+            let outcomes: Vec<_> = (0..25).map(|k| ((m * 25 + k) as usize) % set.len()).map(|i| session.score_item(ItemKey::Id(set.segment(i).id()), &system.hypotheses[i], &mut scratch)).collect();
+            let applied = session.apply_at(start + m * 60 + 5, "seed", m as u64 + 1, &outcomes, 0, None, &Default::default()).unwrap();
+            store.commit_batches(&[BatchWrite { session: name, applied: &applied }]).unwrap();
+        }
+        out.push((name.to_string(), minutes));
+    }
+    out
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn status_page_in_headless_chromium() {
+    let Some(bin) = chromium() else { return };
+    let dir = temp_dir("page");
+    let data = dir.join("data");
+    let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_secs() as i64;
+    let seeded = seed(&data, now);
+    let server = Server::start(&["--data-dir", data.to_str().unwrap()]);
+    server.wait_serving().await;
+    let url = format!("http://{}/", server.metrics);
+
+    let out_dir = std::path::PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("page");
+    std::fs::create_dir_all(&out_dir).unwrap();
+    let dom = browse(bin, &dir.join("profile-dom"), &["--dump-dom"], &url);
+    assert!(dom.status.success(), "{}", String::from_utf8_lossy(&dom.stderr));
+    let dom = String::from_utf8_lossy(&dom.stdout).to_string();
+    std::fs::write(out_dir.join("page.html"), &dom).unwrap();
+    for (name, minutes) in &seeded {
+        let at = dom.find(&format!("data-session=\"{name}\"")).unwrap_or_else(|| panic!("session {name} listed"));
+        let card = &dom[at..dom[at..].find("</section>").map_or(dom.len(), |e| at + e)];
+        assert!(card.contains("<svg"), "{name}: chart present");
+        assert_eq!(card.matches("class=\"pt\"").count(), *minutes, "{name}: one point per minute with segments");
+        assert!(card.contains("class=\"band\""), "{name}: confidence band");
+        assert!(card.contains("route=tarnholm"), "{name}: labels");
+    }
+    // The drop shows: the canary's last points lie lower on the chart (larger y) than its
+    // first ones.
+    let at = dom.find("data-session=\"ferry-v8-canary\"").unwrap();
+    let ys: Vec<f64> = dom[at..].split("class=\"pt\"").skip(1).take(seeded[1].1).map(|p| p.split("cy=\"").nth(1).unwrap().split('"').next().unwrap().parse().unwrap()).collect();
+    let (first, last) = (ys[..5].iter().sum::<f64>() / 5.0, ys[ys.len() - 5..].iter().sum::<f64>() / 5.0);
+    assert!(last > first + 20.0, "drop visible: first {first}, last {last}");
+
+    let shot = out_dir.join("status-page.png");
+    let _ = std::fs::remove_file(&shot);
+    let s = browse(bin, &dir.join("profile-shot"), &[&format!("--screenshot={}", shot.display()), "--window-size=1400,700"], &url);
+    assert!(s.status.success(), "{}", String::from_utf8_lossy(&s.stderr));
+    let png = std::fs::read(&shot).expect("screenshot written");
+    assert_eq!(&png[..8], b"\x89PNG\r\n\x1a\n", "PNG signature (PNG specification, ISO/IEC 15948)");
+    eprintln!("screenshot: {}", shot.display());
+
+    // The JSON the page refreshes from lists the same sessions.
+    let body = reqwest_free_get(&server.metrics, "/api/v1/overview");
+    let v: serde_json::Value = serde_json::from_str(body.split("\r\n\r\n").nth(1).unwrap()).unwrap();
+    let names: Vec<&str> = v["sessions"].as_array().unwrap().iter().map(|s| s["name"].as_str().unwrap()).collect();
+    assert_eq!(names, ["ferry-v8", "ferry-v8-canary"]);
+}
+
+/// A plain HTTP/1.1 GET over a TCP socket.
+fn reqwest_free_get(addr: &str, path: &str) -> String {
+    use std::io::{Read, Write};
+    let mut s = std::net::TcpStream::connect(addr).unwrap();
+    write!(s, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n").unwrap();
+    let mut out = String::new();
+    s.read_to_string(&mut out).unwrap();
+    out
+}
