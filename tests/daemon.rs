@@ -400,6 +400,41 @@ fn live_demo_shows_the_degrading_model() {
     assert!(ranges.iter().all(|(lo, hi)| lo < hi), "a recent interval on every row: {ranges:?}");
 }
 
+/// `demo --linger`: the status page's URL is printed at the start, and after the run the
+/// daemon keeps serving it (with both demo sessions and their charts) until SIGTERM.
+#[test]
+fn demo_lingers_with_its_status_page_until_told_to_stop() {
+    use std::io::{BufRead, Read, Write};
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["demo", "--seconds", "2", "--linger"]).stdout(std::process::Stdio::piped()).stderr(std::process::Stdio::null()).spawn().unwrap();
+    let mut lines = std::io::BufReader::new(child.stdout.take().unwrap()).lines();
+    let mut page = None;
+    for line in lines.by_ref() {
+        let line = line.unwrap();
+        if let Some(rest) = line.strip_prefix("status page: http://") {
+            page = rest.split('/').next().map(str::to_owned);
+        }
+        if line.starts_with("still serving: status page http://") {
+            break;
+        }
+    }
+    let addr = page.expect("the status page's address is printed at the start");
+    let mut conn = std::net::TcpStream::connect(&addr).unwrap();
+    conn.write_all(b"GET / HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n").unwrap();
+    let mut body = String::new();
+    conn.read_to_string(&mut body).unwrap();
+    assert!(body.starts_with("HTTP/1.1 200"), "{}", &body[..body.len().min(200)]);
+    for session in ["ferry-en-de.model-v8-rc", "ferry-en-de.model-v7"] {
+        assert!(body.contains(session), "{session} on the page");
+    }
+    assert!(body.contains("<svg"), "a chart on the page");
+    assert!(child.try_wait().unwrap().is_none(), "still serving after the run");
+    let _ = std::process::Command::new("kill").args(["-TERM", &child.id().to_string()]).status();
+    let status = child.wait().unwrap();
+    assert!(status.success(), "clean exit on SIGTERM: {status:?}");
+    let rest: Vec<String> = lines.map_while(Result::ok).collect();
+    assert!(rest.iter().any(|l| l.contains("mtgauge status --server")), "ends as a normal run does: {rest:?}");
+}
+
 fn mtgauge(args: &[&str]) -> std::process::Output {
     std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(args).output().unwrap()
 }

@@ -397,7 +397,7 @@ pub(super) fn run(a: ServeArgs) -> Result<(), CliError> {
 }
 
 /// Resolves on SIGTERM or SIGINT.
-async fn shutdown_signal() {
+pub(super) async fn shutdown_signal() {
     #[cfg(unix)]
     {
         use tokio::signal::unix::{signal, SignalKind};

@@ -86,16 +86,16 @@ fn demo_rules() -> Result<(Vec<crate::alerts::rules::Rule>, Duration), CliError>
     Ok((resolved.server.alert_rules, resolved.server.alert_every))
 }
 
-pub(super) fn run(seconds: u64) -> Result<(), CliError> {
+pub(super) fn run(seconds: u64, linger: bool) -> Result<(), CliError> {
     let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
-    rt.block_on(live(seconds.max(1)))
+    rt.block_on(live(seconds.max(1), linger))
 }
 
 fn usage<E: std::fmt::Display>(what: &str) -> impl FnOnce(E) -> CliError + '_ {
     move |e| CliError::Usage(format!("demo: {what}: {e}"))
 }
 
-async fn live(seconds: u64) -> Result<(), CliError> {
+async fn live(seconds: u64, linger: bool) -> Result<(), CliError> {
     let grpc = tokio::net::TcpListener::bind("127.0.0.1:0").await.map_err(usage("bind"))?;
     let metrics = tokio::net::TcpListener::bind("127.0.0.1:0").await.map_err(usage("bind"))?;
     let (g, m) = (grpc.local_addr().map_err(usage("address"))?, metrics.local_addr().map_err(usage("address"))?);
@@ -110,6 +110,7 @@ async fn live(seconds: u64) -> Result<(), CliError> {
     wait_serving(&ch).await?;
 
     println!("mtgauge demo: the daemon runs in this process on {url} (Prometheus: http://{m}/metrics)");
+    println!("status page: http://{m}/ (history charts per session; {})", if linger { "kept serving after the run with --linger" } else { "add --linger to keep it up after the run" });
     println!("scenario: Nordhavn Ferries passenger notices, English -> German; two model versions watched live;");
     println!("model-v8-rc starts to degrade half-way (a simulated bad deploy). Running {seconds} s.\n");
 
@@ -195,6 +196,12 @@ async fn live(seconds: u64) -> Result<(), CliError> {
                 println!("  {:<8}{:>6.2} .. {:.2}   95% bootstrap interval ({} resamples over segments)", m.title(), i.low, i.high, i.resamples);
             }
         }
+    }
+    if linger {
+        println!("\nstill serving: status page http://{m}/, gRPC {url}; Ctrl-C (or SIGTERM) stops it");
+        use std::io::Write;
+        let _ = std::io::stdout().flush();
+        crate::cli::serve::shutdown_signal().await;
     }
     let _ = stop_tx.send(());
     let _ = server.await;

@@ -29,6 +29,10 @@ pub struct DemoArgs {
     /// Seconds the live demo runs.
     #[arg(long, default_value_t = DEFAULT_DEMO_SECONDS, value_name = "S")]
     pub seconds: u64,
+    /// After the live run, keep the daemon and its status page serving (until Ctrl-C or
+    /// SIGTERM), to look around: the page's URL is printed at the start.
+    #[arg(long, conflicts_with = "offline")]
+    pub linger: bool,
     /// Score the three simulated systems offline instead of the live run.
     #[arg(long)]
     pub offline: bool,
@@ -43,7 +47,7 @@ pub(super) fn run(a: DemoArgs) -> Result<(), CliError> {
         if a.write_files.is_some() {
             return Err(CliError::Usage("--write-files goes with --offline".into()));
         }
-        return live::run(a.seconds);
+        return live::run(a.seconds, a.linger);
     }
     let segments = demo_segments();
     let set = Arc::new(
