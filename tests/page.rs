@@ -123,3 +123,45 @@ fn reqwest_free_get(addr: &str, path: &str) -> String {
     s.read_to_string(&mut out).unwrap();
     out
 }
+
+/// `mtgauge report`: the same chart as a standalone SVG file, read back with a real XML parser
+/// (Python 3's xml.etree.ElementTree, on expat): well-formed, titled, with axis captions, the
+/// footer's proxy note and configuration, and one point per minute with segments.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn report_writes_the_chart_as_an_svg_file() {
+    let dir = temp_dir("report");
+    let data = dir.join("data");
+    let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_secs() as i64;
+    let seeded = seed(&data, now);
+    let server = Server::start(&["--data-dir", data.to_str().unwrap()]);
+    server.wait_serving().await;
+    let out = dir.join("canary.svg");
+    let run = |args: &[&str]| Command::new(env!("CARGO_BIN_EXE_mtgauge")).arg("report").args(["--server", &server.grpc]).args(args).output().unwrap();
+    let r = run(&["--session", "ferry-v8-canary", "--since", "1h", "--step", "1m", "--out", out.to_str().unwrap()]);
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    let script = "import json, sys, xml.etree.ElementTree as ET\n\
+root = ET.parse(sys.argv[1]).getroot()\n\
+ns = '{http://www.w3.org/2000/svg}'\n\
+texts = [t.text or '' for t in root.iter(ns + 'text')]\n\
+pts = [c for c in root.iter(ns + 'circle') if c.get('class') == 'pt']\n\
+print(json.dumps({'root': root.tag, 'title': root.find(ns + 'title').text, 'texts': texts, 'points': len(pts), 'bands': sum(1 for p in root.iter(ns + 'polygon') if p.get('class') == 'band')}))";
+    let py = Command::new("python3").args(["-c", script, out.to_str().unwrap()]).output().unwrap();
+    assert!(py.status.success(), "not well-formed XML: {}", String::from_utf8_lossy(&py.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&py.stdout).unwrap();
+    assert_eq!(v["root"], "{http://www.w3.org/2000/svg}svg");
+    assert!(v["title"].as_str().unwrap().starts_with("BLEU of ferry-v8-canary"), "{}", v["title"]);
+    let texts: Vec<&str> = v["texts"].as_array().unwrap().iter().map(|t| t.as_str().unwrap()).collect();
+    let all = texts.join(" "); // footer lines are wrapped: read them as one text
+    for want in ["BLEU of session ferry-v8-canary", "BLEU (0\u{2013}100)", "time (UTC)", "UTC", "comparable only under the same tokenizer", "tokenizer=nist"] {
+        assert!(all.contains(want), "{want:?} in {texts:?}");
+    }
+    assert_eq!(v["points"].as_u64(), Some(seeded[1].1 as u64), "one point per minute with segments");
+    assert!(v["bands"].as_u64().unwrap() >= 1, "a confidence band");
+    // Errors: one line, exit 2.
+    let bad = run(&["--session", "ferry-v8-canary", "--out", dir.join("x.png").to_str().unwrap()]);
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("only .svg files are written"));
+    let missing = run(&["--session", "no-such", "--out", out.to_str().unwrap()]);
+    assert_eq!(missing.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&missing.stderr).contains("NotFound"), "{}", String::from_utf8_lossy(&missing.stderr));
+}

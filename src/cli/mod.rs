@@ -10,6 +10,7 @@ mod compare;
 pub mod demo;
 mod input;
 mod load;
+mod report;
 mod rules;
 mod score;
 mod send;
@@ -81,6 +82,9 @@ pub enum Command {
     /// Render the alert rules of a serve config file as Prometheus recording and alerting rules.
     #[command(long_about = rules::LONG_ABOUT)]
     Rules(rules::RulesArgs),
+    /// Write a session's score over time (from the daemon's history) as an SVG chart.
+    #[command(long_about = report::LONG_ABOUT)]
+    Report(report::ReportArgs),
     /// Drive a running server with synthetic load and print throughput and latency.
     Load(load::LoadArgs),
     /// Measure scoring speed on a generated corpus and print ratios against a baseline measured in the same run.
@@ -188,6 +192,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Serve(a) => serve::run(a),
         Command::Load(a) => load::run(a),
         Command::Rules(a) => rules::run(a),
+        Command::Report(a) => report::run(a),
         Command::Token(a) => token::run(a),
         Command::Send(a) => send::run(a),
         Command::Status(a) => status::run(a),

@@ -116,14 +116,82 @@ fn card_html(c: &Card, from: i64, until: i64) -> String {
         segs = c.segments,
         unk = 100.0 * c.unknown_share,
         rej = 100.0 * c.rejected_share,
-        chart = chart_svg(&c.name, c.metric, &c.points, &c.alerts, from, until),
+        chart = chart_svg(&c.name, c.metric, &c.points, &c.alerts, &Frame { from, until, step: CHART_STEP_SECS, left: "\u{2212}60 min".into(), right: "now (UTC minute steps)".into(), what: "per minute, last hour".into(), placement: "" }),
     );
     h
 }
 
+/// Where and over what time a chart is drawn.
+pub struct Frame {
+    /// The first step's start and the end of the last (seconds since the Unix epoch).
+    pub from: i64,
+    /// See `from`.
+    pub until: i64,
+    /// Seconds per step.
+    pub step: i64,
+    /// The time axis' left and right labels.
+    pub left: String,
+    /// See `left`.
+    pub right: String,
+    /// The time span in words, for the chart's accessible label.
+    pub what: String,
+    /// Attributes placing the chart inside another SVG (x, y, width, height), or "".
+    pub placement: &'static str,
+}
+
+/// A chart on its own, for a file: title, axis captions with units, the chart, and a footer
+/// (`footer` lines: configuration, reference set, the proxy note).
+pub fn report_svg(session: &str, metric: &str, pts: &[Point], frame: &Frame, footer: &[String]) -> String {
+    // Footer lines wrapped to the width (10px sans-serif: about 6 units a character).
+    let lines: Vec<String> = footer.iter().flat_map(|l| wrap(l, 105)).collect();
+    let (w, h) = (CHART_W + 40.0, CHART_H + 76.0 + 14.0 * lines.len() as f64);
+    let mut s = String::new();
+    let _ = write!(s, "<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{w}\" height=\"{h}\" viewBox=\"0 0 {w} {h}\">");
+    let _ = write!(s, "<title>{} of {}, {}</title><style>{CHART_CSS}.title{{font:600 14px sans-serif;fill:#23201c}}.caption,.foot{{font:10px sans-serif;fill:#6b6457}}</style>", esc(metric), esc(session), esc(&frame.what));
+    let _ = write!(s, "<rect width=\"{w}\" height=\"{h}\" fill=\"#fffdf8\"/><text class=\"title\" x=\"20\" y=\"22\">{} of session {}</text><text class=\"caption\" x=\"20\" y=\"38\">{}</text>", esc(metric), esc(session), esc(&frame.what));
+    let _ = write!(s, "<text class=\"caption\" transform=\"translate(14,{:.1}) rotate(-90)\" text-anchor=\"middle\">{} (0\u{2013}100)</text>", TOP + CHART_H / 2.0, esc(metric));
+    let _ = write!(s, "<text class=\"caption\" x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\">time (UTC), one point per {} with segments; band: 95% bootstrap interval</text>", 20.0 + CHART_W / 2.0, TOP + CHART_H + 14.0, step_words(frame.step));
+    let inner = Frame { placement: "x=\"20\" y=\"50\" width=\"640\" height=\"180\" ", from: frame.from, until: frame.until, step: frame.step, left: frame.left.clone(), right: frame.right.clone(), what: frame.what.clone() };
+    s.push_str(&chart_svg(session, metric, pts, &[], &inner));
+    for (i, line) in lines.iter().enumerate() {
+        let _ = write!(s, "<text class=\"foot\" x=\"20\" y=\"{:.1}\">{}</text>", TOP + CHART_H + 32.0 + 14.0 * i as f64, esc(line));
+    }
+    s.push_str("</svg>\n");
+    s
+}
+
+/// Where a report's chart starts (below the title and its caption).
+const TOP: f64 = 50.0;
+
+/// `text` in lines of at most `width` characters, broken at spaces (a longer word stays whole).
+fn wrap(text: &str, width: usize) -> Vec<String> {
+    let mut out: Vec<String> = Vec::new();
+    for word in text.split(' ') {
+        match out.last_mut() {
+            Some(l) if l.chars().count() + 1 + word.chars().count() <= width => {
+                l.push(' ');
+                l.push_str(word);
+            }
+            _ => out.push(word.to_owned()),
+        }
+    }
+    out
+}
+
+/// "minute", "5 minutes", "hour", "6 hours", ...
+pub fn step_words(step: i64) -> String {
+    match step {
+        60 => "minute".into(),
+        3600 => "hour".into(),
+        s if s % 3600 == 0 => format!("{} hours", s / 3600),
+        s => format!("{} minutes", s / 60),
+    }
+}
+
 /// The chart of one session: the score of each step with segments (a point and a line), its
 /// interval as a band, and a shaded span for each alert that is firing (from when it fired).
-pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, String, i64)], from: i64, until: i64) -> String {
+pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, String, i64)], frame: &Frame) -> String {
+    let Frame { from, until, step, .. } = *frame;
     let with: Vec<&Point> = pts.iter().filter(|p| p.score.is_some()).collect();
     let (mut lo, mut hi) = (f64::MAX, f64::MIN);
     for p in &with {
@@ -139,9 +207,9 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, 
     let (lo, hi) = ((lo - pad).max(0.0), (hi + pad).min(100.0));
     let x = |t: i64| PAD_L + (t - from) as f64 / (until - from).max(1) as f64 * (CHART_W - PAD_L - 8.0);
     let y = |v: f64| PAD_T + (hi - v) / (hi - lo).max(1e-9) * (CHART_H - PAD_T - PAD_B);
-    let mid = |p: &Point| p.start + CHART_STEP_SECS / 2;
+    let mid = |p: &Point| p.start + step / 2;
     let mut s = String::new();
-    let _ = write!(s, "<svg class=\"chart\" viewBox=\"0 0 {CHART_W} {CHART_H}\" role=\"img\" aria-label=\"{} of {} per minute, last hour\" xmlns=\"http://www.w3.org/2000/svg\">", esc(metric), esc(session));
+    let _ = write!(s, "<svg class=\"chart\" {}viewBox=\"0 0 {CHART_W} {CHART_H}\" role=\"img\" aria-label=\"{} of {}, {}\" xmlns=\"http://www.w3.org/2000/svg\">", frame.placement, esc(metric), esc(session), esc(&frame.what));
     let _ = write!(s, "<rect class=\"plot\" x=\"{PAD_L}\" y=\"{PAD_T}\" width=\"{}\" height=\"{}\"/>", CHART_W - PAD_L - 8.0, CHART_H - PAD_T - PAD_B);
     for (_, st, since) in alerts.iter().filter(|(_, st, _)| st == "firing") {
         let x0 = x((*since).max(from));
@@ -151,7 +219,7 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, 
     let mut runs: Vec<Vec<&Point>> = Vec::new();
     for p in &with {
         match (p.interval, runs.last_mut()) {
-            (Some(_), Some(run)) if run.last().is_some_and(|q| q.start + CHART_STEP_SECS == p.start) => run.push(p),
+            (Some(_), Some(run)) if run.last().is_some_and(|q| q.start + step == p.start) => run.push(p),
             (Some(_), _) => runs.push(vec![p]),
             (None, _) => runs.push(Vec::new()),
         }
@@ -169,7 +237,7 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, 
     for v in [lo, (lo + hi) / 2.0, hi] {
         let _ = write!(s, "<text class=\"tick\" x=\"{:.1}\" y=\"{:.1}\">{v:.1}</text>", PAD_L - 4.0, y(v) + 3.0);
     }
-    let _ = write!(s, "<text class=\"axis\" x=\"{PAD_L}\" y=\"{}\">&minus;60 min</text><text class=\"axis end\" x=\"{}\" y=\"{}\">now (UTC minute steps)</text>", CHART_H - 6.0, CHART_W - 8.0, CHART_H - 6.0);
+    let _ = write!(s, "<text class=\"axis\" x=\"{PAD_L}\" y=\"{}\">{}</text><text class=\"axis end\" x=\"{}\" y=\"{}\">{}</text>", CHART_H - 6.0, esc(&frame.left), CHART_W - 8.0, CHART_H - 6.0, esc(&frame.right));
     s.push_str("</svg>");
     s
 }
@@ -189,7 +257,7 @@ pub fn overview_json(state: &State) -> String {
 pub fn page_html(state: &State) -> String {
     let cards: String = overview(state, unix_now()).iter().map(|c| c.html.as_str()).collect();
     format!(
-        "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>mtgauge</title><style>{CSS}</style></head>\
+        "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>mtgauge</title><style>{CSS}{CHART_CSS}</style></head>\
 <body><div class=\"top\"><h1>mtgauge</h1><span id=\"stamp\">sessions as served</span></div>\
 <main id=\"cards\">{cards}</main><script>const EVERY={every};{SCRIPT}</script></body></html>",
         every = REFRESH_SECS * 1000
@@ -204,8 +272,10 @@ const CSS: &str = "body{margin:0;font:14px/1.4 system-ui,sans-serif;background:#
 dl{display:grid;grid-template-columns:repeat(5,auto);gap:0 1em;margin:.5em 0}dt{font-size:11px;color:#6b6457;grid-row:1}dd{margin:0;font-weight:600;grid-row:2}\
 .iv{font-weight:400;color:#6b6457}.alerts{margin:.3em 0}.alert{font-size:12px;border-radius:3px;padding:0 .4em;margin-right:.4em;background:#e8e1d0}\
 .alert.firing{background:#b8412c;color:#fff}.alert.pending{background:#d9a441}.quiet{font-size:12px;color:#8a8273}\
-.chart{width:100%;height:auto}.plot{fill:#fbf8f1;stroke:#d9d2c3}.band{fill:#7fa391;fill-opacity:.35}.line{fill:none;stroke:#2e4a3f;stroke-width:1.6}\
-.pt{fill:#2e4a3f}.alert-span{fill:#b8412c;fill-opacity:.15}.tick,.axis{font-size:10px;fill:#6b6457}.tick{text-anchor:end}.axis.end{text-anchor:end}";
+.chart{width:100%;height:auto}";
+/// The styles of a chart (the page's, and a report file's own copy).
+pub const CHART_CSS: &str = ".plot{fill:#fbf8f1;stroke:#d9d2c3}.band{fill:#7fa391;fill-opacity:.35}.line{fill:none;stroke:#2e4a3f;stroke-width:1.6}\
+.pt{fill:#2e4a3f}.alert-span{fill:#b8412c;fill-opacity:.15}.tick,.axis{font-size:10px;fill:#6b6457;font-family:sans-serif}.tick{text-anchor:end}.axis.end{text-anchor:end}";
 
 const SCRIPT: &str = "async function refresh(){try{const r=await fetch('api/v1/overview',{cache:'no-store'});if(!r.ok)return;const d=await r.json();\
 document.getElementById('cards').innerHTML=d.sessions.map(s=>s.html).join('');\
