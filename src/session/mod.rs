@@ -339,16 +339,19 @@ impl Session {
         self.apply_guarded(producer, sequence, outcomes, rejected, delta, &GuardCounts::default())
     }
 
+    /// `delta`, or the batch's replicate sums computed here into `own` when the caller has none.
+    fn delta_for<'a>(&self, delta: Option<&'a Replicates>, outcomes: &[Outcome], own: &'a mut Option<Replicates>) -> Option<&'a Replicates> {
+        if delta.is_some() {
+            return delta;
+        }
+        *own = self.replicate_delta(outcomes);
+        own.as_ref()
+    }
+
     /// [`Session::apply`] with the guard counts of the batch's items.
     pub fn apply_guarded(&self, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>, guards: &GuardCounts) -> Option<Applied> {
-        let own;
-        let delta = match delta {
-            Some(d) => Some(d),
-            None => {
-                own = self.replicate_delta(outcomes);
-                own.as_ref()
-            }
-        };
+        let mut own = None;
+        let delta = self.delta_for(delta, outcomes, &mut own);
         self.state().apply(producer, sequence, outcomes, rejected, delta, guards)
     }
 
@@ -356,14 +359,8 @@ impl Session {
     /// counted in the history's buckets of that time, and the effect says what of the history
     /// the store is to write.
     pub fn apply_at(&self, now: i64, producer: &str, sequence: u64, outcomes: &[Outcome], rejected: u64, delta: Option<&Replicates>, guards: &GuardCounts) -> Option<Applied> {
-        let own;
-        let delta = match delta {
-            Some(d) => Some(d),
-            None => {
-                own = self.replicate_delta(outcomes);
-                own.as_ref()
-            }
-        };
+        let mut own = None;
+        let delta = self.delta_for(delta, outcomes, &mut own);
         let mut applied = self.apply_guarded(producer, sequence, outcomes, rejected, delta, guards)?;
         applied.history = Some(self.history().record(now, &applied.added, &applied.batch, delta));
         Some(applied)
