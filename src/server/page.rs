@@ -225,8 +225,10 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, 
         }
     }
     for run in runs.iter().filter(|r| !r.is_empty()) {
-        let upper: Vec<String> = run.iter().map(|p| format!("{:.1},{:.1}", x(mid(p)), y(p.interval.map_or(0.0, |i| i.high)))).collect();
-        let lower: Vec<String> = run.iter().rev().map(|p| format!("{:.1},{:.1}", x(mid(p)), y(p.interval.map_or(0.0, |i| i.low)))).collect();
+        // A run of one step would be a band of no width: it spans the middle half of its step.
+        let edges = |p: &Point| if run.len() == 1 { vec![p.start + step / 4, p.start + step - step / 4] } else { vec![mid(p)] };
+        let upper: Vec<String> = run.iter().flat_map(|p| edges(p).into_iter().map(|t| format!("{:.1},{:.1}", x(t), y(p.interval.map_or(0.0, |i| i.high))))).collect();
+        let lower: Vec<String> = run.iter().rev().flat_map(|p| edges(p).into_iter().rev().map(|t| format!("{:.1},{:.1}", x(t), y(p.interval.map_or(0.0, |i| i.low))))).collect();
         let _ = write!(s, "<polygon class=\"band\" points=\"{} {}\"/>", upper.join(" "), lower.join(" "));
     }
     let line: Vec<String> = with.iter().map(|p| format!("{:.1},{:.1}", x(mid(p)), y(p.score.unwrap_or(0.0)))).collect();
@@ -281,3 +283,31 @@ const SCRIPT: &str = "async function refresh(){try{const r=await fetch('api/v1/o
 document.getElementById('cards').innerHTML=d.sessions.map(s=>s.html).join('');\
 document.getElementById('stamp').textContent='updated '+new Date(d.unix_time*1000).toISOString().slice(11,19)+' UTC';}catch(e){}}\
 setInterval(refresh,EVERY);";
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::metric::resample::{Interval, METHOD};
+
+    fn point(start: i64, interval: bool) -> Point {
+        Point { start, segments: 10, score: Some(40.0), interval: interval.then_some(Interval { level: 0.95, low: 35.0, high: 45.0, resamples: 200, method: METHOD, seed: 1 }), unknown: 0, rejected: 0 }
+    }
+
+    /// The x coordinates of each band polygon in `svg`.
+    fn band_xs(svg: &str) -> Vec<Vec<f64>> {
+        svg.split("<polygon class=\"band\" points=\"").skip(1).map(|rest| rest.split('"').next().unwrap_or("").split(' ').filter_map(|xy| xy.split(',').next()?.parse().ok()).collect()).collect()
+    }
+
+    #[test]
+    fn a_lone_step_with_an_interval_gets_a_band_of_some_width() {
+        let frame = Frame { from: 0, until: 600, step: 60, left: String::new(), right: String::new(), what: String::new(), placement: "" };
+        // Steps 0-1 with intervals (one run), step 2 without, step 4 alone with one.
+        let pts = [point(0, true), point(60, true), point(120, false), point(240, true)];
+        let bands = band_xs(&chart_svg("s", "BLEU", &pts, &[], &frame));
+        assert_eq!(bands.len(), 2, "{bands:?}");
+        let width = |xs: &[f64]| xs.iter().copied().fold(f64::MIN, f64::max) - xs.iter().copied().fold(f64::MAX, f64::min);
+        assert!(width(&bands[0]) > 0.0 && width(&bands[1]) > 0.0, "{bands:?}");
+        // The lone step's band spans the middle half of its step: half the run's width (one step).
+        assert!((width(&bands[1]) - width(&bands[0]) / 2.0).abs() < 0.2, "{bands:?}");
+    }
+}
