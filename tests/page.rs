@@ -125,7 +125,7 @@ fn reqwest_free_get(addr: &str, path: &str) -> String {
 }
 
 /// `mtgauge report`: the same chart as a standalone SVG file, read back with a real XML parser
-/// (Python 3's xml.etree.ElementTree, on expat): well-formed, titled, with axis captions, the
+/// (xml.etree.ElementTree of Python's standard library, on expat; Python 3.11.7 here): well-formed, titled, with axis captions, the
 /// footer's proxy note and configuration, and one point per minute with segments.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn report_writes_the_chart_as_an_svg_file() {
@@ -157,11 +157,18 @@ print(json.dumps({'root': root.tag, 'title': root.find(ns + 'title').text, 'text
     }
     assert_eq!(v["points"].as_u64(), Some(seeded[1].1 as u64), "one point per minute with segments");
     assert!(v["bands"].as_u64().unwrap() >= 1, "a confidence band");
-    // Errors: one line, exit 2.
-    let bad = run(&["--session", "ferry-v8-canary", "--out", dir.join("x.png").to_str().unwrap()]);
-    assert_eq!(bad.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&bad.stderr).contains("only .svg files are written"));
-    let missing = run(&["--session", "no-such", "--out", out.to_str().unwrap()]);
-    assert_eq!(missing.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&missing.stderr).contains("NotFound"), "{}", String::from_utf8_lossy(&missing.stderr));
+    // Errors: one line on stderr, exit 2, and no file written.
+    let png = dir.join("x.png");
+    for (args, want) in [
+        (vec!["--session", "ferry-v8-canary", "--out", png.to_str().unwrap()], "only .svg files are written"),
+        (vec!["--session", "no-such", "--out", png.with_extension("svg").to_str().unwrap()], "NotFound"),
+        (vec!["--session", "ferry-v8-canary", "--metric", "meteor", "--out", png.with_extension("svg").to_str().unwrap()], "meteor"),
+    ] {
+        let r = run(&args);
+        let err = String::from_utf8_lossy(&r.stderr);
+        assert_eq!(r.status.code(), Some(2), "{args:?}: {err}");
+        assert_eq!(err.lines().count(), 1, "{args:?}: one line: {err}");
+        assert!(err.contains(want), "{args:?}: {want:?} in {err}");
+    }
+    assert!(!png.exists() && !png.with_extension("svg").exists(), "no file on error");
 }

@@ -23,7 +23,12 @@ units, and a footer with the configuration and the reference set's digest: score
 only under the same tokenizer, references and configuration.
 
 --since is how far back (an integer and m, h or d; default 24h); --step the width of one point \
-(default: the whole minutes or hours that give at most 120 points). Only .svg is written.";
+(default: the whole minutes or hours that give at most 120 points). Only .svg is written: \
+this build carries no rasterizer for PNG.
+
+Example, the last six hours of a canary session, one point per 5 minutes:
+  mtgauge report --server http://127.0.0.1:7410 --session ferry-v8-canary --since 6h --step 5m \\
+      --out canary.svg";
 
 /// Most points a default step gives.
 pub const DEFAULT_POINTS: i64 = 120;
@@ -43,8 +48,8 @@ pub struct ReportArgs {
     #[arg(long, value_name = "FILE")]
     pub out: PathBuf,
     /// bleu, chrf or chrf++ (default: the session's first metric).
-    #[arg(long, value_name = "METRIC", default_value = "")]
-    pub metric: String,
+    #[arg(long, value_name = "METRIC")]
+    pub metric: Option<String>,
     /// How far back the chart reaches: 90m, 24h, 7d.
     #[arg(long, value_name = "DURATION", default_value = DEFAULT_SINCE)]
     pub since: String,
@@ -83,7 +88,7 @@ fn utc(t: i64) -> String {
 
 pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
     if a.out.extension().and_then(|e| e.to_str()) != Some("svg") {
-        return Err(CliError::Usage(format!("--out {}: only .svg files are written", a.out.display())));
+        return Err(CliError::Usage(format!("--out {}: only .svg files are written (SVG is the one supported format)", a.out.display())));
     }
     let span = seconds("--since", &a.since)?;
     let step = match &a.step {
@@ -95,7 +100,7 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
         let ch = channel(&a.server)?;
         let now = std::time::SystemTime::now().duration_since(UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64);
         let until = (now / step + 1) * step;
-        let req = pb::GetHistoryRequest { session: a.session.clone(), metric: a.metric.clone(), from_unix: until - (span + step - 1) / step * step, until_unix: until, step_seconds: step as u32, level: 0.0 };
+        let req = pb::GetHistoryRequest { session: a.session.clone(), metric: a.metric.clone().unwrap_or_default(), from_unix: until - (span + step - 1) / step * step, until_unix: until, step_seconds: step as u32, level: 0.0 };
         let history = pb::history_client::HistoryClient::new(ch.clone()).get_history(req).await.map_err(|s| ClientError::call("get history", s))?.into_inner();
         let scores = pb::scoring_client::ScoringClient::new(ch).get_scores(pb::GetScoresRequest { session: a.session.clone(), ..Default::default() }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
         Ok::<_, CliError>((history, scores))
