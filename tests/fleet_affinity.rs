@@ -353,3 +353,101 @@ async fn a_name_that_resolves_to_every_replica_routes_each_producer_to_its_own()
     let (summary, stderr) = finished(child);
     assert_eq!((summary["replica"].clone(), summary["scored"].as_u64()), (serde_json::Value::Null, Some(p.items.len() as u64)), "{stderr}");
 }
+
+/// `send` of one producer's items to `session`.
+fn send_to(server: &str, session: &str, p: &Producer) -> Child {
+    Command::new(env!("CARGO_BIN_EXE_mtgauge"))
+        .args(["send", "--server", server, "--session", session, "--create", "--refset", "ferry", "--batch", "7", "--json", "--producer", &p.id])
+        .args(["--hyp", p.hyp.to_str().unwrap(), "--ids", p.ids.to_str().unwrap()])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap()
+}
+
+fn cli(args: &[&str]) -> (bool, String, String) {
+    let out = Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(args).output().unwrap();
+    (out.status.success(), String::from_utf8_lossy(&out.stdout).into_owned(), String::from_utf8_lossy(&out.stderr).into_owned())
+}
+
+/// The chart of a report file: the nested chart, without the title and footer (which name the
+/// replicas).
+fn chart_of(svg: &str) -> &str {
+    let (a, b) = (svg.find("x=\"20\" y=\"50\" width=\"640\"").expect("a chart"), svg.find("<text class=\"foot\"").expect("a footer"));
+    &svg[a..b]
+}
+
+/// Fleet-wide `compare` and `report`: two sessions (two demo systems) streamed by 8 producers
+/// each over two replicas, and the same items sent to one process. The fleet comparison (the
+/// replicas' recent windows joined by segment) equals the one process's Compare exactly, and
+/// the fleet report's chart (each step's statistics and replicate sums added over the
+/// replicas) is the one process's chart, point for point and band for band. With a replica
+/// down, both refuse unless --partial.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn fleet_compare_and_report_equal_one_process() {
+    let dir = temp_dir("fleet-compare");
+    demo_files(&dir);
+    let segs = demo_segments();
+    let systems = demo_systems();
+    let items = |k: usize| -> Vec<(String, String)> { systems[k].hypotheses.iter().enumerate().map(|(i, h)| (segs[i].id.clone(), h.clone())).collect() };
+    let (a_items, b_items) = (items(0), items(systems.len() - 1));
+    let (da, db) = (dir.join("a"), dir.join("b"));
+    std::fs::create_dir_all(&da).unwrap();
+    std::fs::create_dir_all(&db).unwrap();
+    let (pa, pb_) = (producers(&da, 8, &a_items), producers(&db, 8, &b_items));
+    let mut fleet = Fleet::start(&dir, 2).await;
+    let urls = fleet.urls();
+    let one = Server::start(&["--refset", &fleet.refs]);
+    one.wait_serving().await;
+    for (session, ps) in [("fleet-a", &pa), ("fleet-b", &pb_)] {
+        let children: Vec<Child> = ps.iter().map(|p| send_to(&urls, session, p)).chain(ps.iter().map(|p| send_to(&one.grpc, session, p))).collect();
+        for c in children {
+            finished(c);
+        }
+    }
+    // Both replicas hold part of each session (else the test would prove nothing).
+    let owners: std::collections::BTreeSet<&str> = pa.iter().map(|p| mtgauge::affinity::owner(&p.id, &fleet.names).unwrap()).collect();
+    assert_eq!(owners.len(), 2, "the producers of a session are spread over both replicas");
+
+    let compare = |server: &str, extra: &[&str]| cli(&[&["compare", "--server", server, "--session", "fleet-a", "--session", "fleet-b", "--json", "--trials", "2000"], extra].concat());
+    let (ok, fleet_out, err) = compare(&urls, &[]);
+    assert!(ok, "{err}");
+    let (ok, one_out, err) = compare(&one.grpc, &[]);
+    assert!(ok, "{err}");
+    let (f, o): (serde_json::Value, serde_json::Value) = (serde_json::from_str(&fleet_out).unwrap(), serde_json::from_str(&one_out).unwrap());
+    assert_eq!(f["fleet"]["answered"].as_array().map(Vec::len), Some(2), "{}", f["fleet"]);
+    assert_eq!(f["fleet"]["on_several_replicas"], serde_json::json!({"a": 0, "b": 0}));
+    assert!(f["segments"].as_u64().unwrap() > 0);
+    for key in ["segments", "metrics", "recent", "refset", "config"] {
+        assert_eq!(f[key], o[key], "fleet and one process: {key}");
+    }
+
+    // Reports end at the same moment, so both have the same steps.
+    let until = (std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_secs() + 60).to_string();
+    let report = |server: &str, out: &Path, extra: &[&str]| cli(&[&["report", "--server", server, "--session", "fleet-a", "--since", "2h", "--step", "1m", "--until", &until, "--out", out.to_str().unwrap()], extra].concat());
+    let (fr, or) = (dir.join("fleet.svg"), dir.join("one.svg"));
+    let (ok, _, err) = report(&urls, &fr, &[]);
+    assert!(ok, "{err}");
+    let (ok, _, err) = report(&one.grpc, &or, &[]);
+    assert!(ok, "{err}");
+    let (fs, os) = (std::fs::read_to_string(&fr).unwrap(), std::fs::read_to_string(&or).unwrap());
+    assert!(fs.contains("fleet: 2 of 2 replicas answered"), "the footer names the replicas summed");
+    assert!(chart_of(&fs).contains("class=\"pt\"") && chart_of(&fs).contains("class=\"band\""), "points and a band: {}", chart_of(&fs));
+    assert_eq!(chart_of(&fs), chart_of(&os), "the fleet chart is the one process's");
+
+    // One replica down: both refuse, and --partial shows what the other holds.
+    fleet.servers[1].kill();
+    let (ok, _, err) = compare(&urls, &[]);
+    assert!(!ok && err.contains("1 of 2 replicas answered") && err.contains("--partial"), "{err}");
+    let (ok, out, err) = compare(&urls, &["--partial"]);
+    assert!(ok, "{err}");
+    let p: serde_json::Value = serde_json::from_str(&out).unwrap();
+    assert_eq!(p["fleet"]["partial"], true);
+    assert!(p["segments"].as_u64() < f["segments"].as_u64(), "partial holds fewer segments: {}", p["segments"]);
+    let (ok, _, err) = report(&urls, &fr, &[]);
+    assert!(!ok && err.contains("1 of 2 replicas answered") && err.contains("--partial"), "{err}");
+    let (ok, _, err) = report(&urls, &fr, &["--partial"]);
+    assert!(ok, "{err}");
+    assert!(std::fs::read_to_string(&fr).unwrap().contains("PARTIAL"), "the partial report says so");
+    eprintln!("fleet compare over {} segments equals one process; fleet report chart equals one process's", f["segments"]);
+}

@@ -11,6 +11,9 @@ use serde_json::{json, Value};
 use super::input::{display_name, parse_refset, read_all, read_bytes, RefFormat, PROGRESS_MIN_SEGMENTS};
 use super::score::score_systems;
 use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
+use crate::client::fleet::{identify, Endpoint, Fleet};
+use crate::client::ClientError;
+use crate::metric::SegmentStats;
 use crate::metric::compare::{self, CompareSettings, Comparison, DEFAULT_TRIALS, MAX_TRIALS};
 use crate::metric::resample::{self, DEFAULT_LEVEL, DEFAULT_RESAMPLE_SEED, OFFLINE_RESAMPLES};
 use crate::metric::ScoreConfig;
@@ -44,6 +47,14 @@ and differences are comparable only under the same tokenizer, references and con
 
 Live: with --server URL --session A --session B, a running server compares two of its sessions over the segments both `recent` windows hold (matched by segment id; a segment scored more than once counts with its latest score). Both sessions must score against the same reference-set version with the same configuration, else the server refuses with FAILED_PRECONDITION. The default replicates there are 200 (the daemon's).
 
+A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
+replica. Each replica sends both sessions' recent windows (segment keys and integer \
+statistics); they are joined by segment and compared here with the same engine, pairing and \
+weights, so the result equals what one process holding all those segments reports. A segment \
+in the windows of several replicas counts once, from the first replica in --server order that \
+holds it; the report says how many were so. When a replica does not answer, compare refuses \
+unless --partial is given.
+
 Examples:
   mtgauge compare --server http://127.0.0.1:7410 --session model-v7 --session model-v8-rc
   mtgauge compare --ref ref.de.txt --hyp system-a.de.txt --hyp system-b.de.txt
@@ -64,12 +75,16 @@ pub struct CompareArgs {
     /// segment; `-` reads standard input (for one of the two).
     #[arg(long = "hyp", value_name = "FILE", required_unless_present = "server")]
     pub hyps: Vec<String>,
-    /// Compare two sessions of a running server instead of files, e.g. http://127.0.0.1:7410.
-    #[arg(long, value_name = "URL", conflicts_with_all = ["refs", "hyps"], requires = "sessions")]
+    /// Compare two sessions of a running server instead of files, e.g. http://127.0.0.1:7410;
+    /// for a fleet, several URLs separated by commas, or one whose name resolves to every replica.
+    #[arg(long, value_name = "URL[,URL...]", conflicts_with_all = ["refs", "hyps"], requires = "sessions")]
     pub server: Option<String>,
     /// With --server: session A, then (given again) session B.
     #[arg(long = "session", value_name = "NAME", requires = "server")]
     pub sessions: Vec<String>,
+    /// Fleet: compare what the replicas that answered hold when some do not (marked partial).
+    #[arg(long, requires = "server")]
+    pub partial: bool,
     /// How to read --ref files.
     #[arg(long, value_enum, default_value_t = RefFormat::Auto, value_name = "FORMAT")]
     pub ref_format: RefFormat,
@@ -160,9 +175,15 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
         return Err(CliError::Usage(format!("give --session exactly twice (session A, then session B); got {}", a.sessions.len())));
     }
     let settings = a.settings()?;
+    let fleet = Fleet::parse(server, std::time::Duration::ZERO, false)?;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
-    let report = rt.block_on(async {
-        let ch = crate::client::channel(server)?;
+    let (report, fleet_view) = rt.block_on(async {
+        let Some(one) = fleet.lone().await? else {
+            let endpoints = fleet.endpoints().await?;
+            let (report, view) = fleet_compare(&endpoints, &a.sessions, &settings, a.threads.unwrap_or_else(default_threads), a.partial).await?;
+            return Ok::<_, CliError>((report, Some(view)));
+        };
+        let ch = one.connect()?;
         let req = crate::pb::CompareRequest {
             session_a: a.sessions[0].clone(),
             session_b: a.sessions[1].clone(),
@@ -172,7 +193,7 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
             seed: Some(settings.seed),
         };
         let r = crate::pb::scoring_client::ScoringClient::new(ch).compare(req).await.map_err(|s| crate::client::ClientError::call("compare", s))?;
-        Ok::<_, CliError>(r.into_inner())
+        Ok((r.into_inner(), None))
     })?;
     let config = crate::pb::convert::config_from_pb(report.config.as_ref()).map_err(|e| CliError::Usage(format!("server sent a bad configuration: {e}")))?;
     let result = comparison_from_pb(&report);
@@ -187,6 +208,9 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
         }
         m.insert("config".into(), c);
         m.insert("unix_time".into(), json!(report.unix_time));
+        if let Some(f) = &fleet_view {
+            m.insert("fleet".into(), f.json.clone());
+        }
         m.insert("note".into(), json!(PROXY_NOTE));
         serde_json::to_string_pretty(&Value::Object(m)).unwrap_or_default() + "\n"
     } else {
@@ -201,6 +225,9 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
             format!("  A = session {}", report.session_a),
             format!("  B = session {}", report.session_b),
         ];
+        if let Some(f) = &fleet_view {
+            lines.insert(1, format!("  {}", f.line));
+        }
         lines.extend(comparison_lines(&result, "  "));
         lines.push(format!("  config  {}", config.describe()));
         lines.push(PROXY_NOTE.to_owned());
@@ -208,6 +235,155 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
     };
     let mut stdout = std::io::stdout().lock();
     stdout.write_all(out.as_bytes()).and_then(|_| stdout.flush()).map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+/// What a fleet comparison adds to the report: which replicas answered, in words and JSON.
+struct FleetView {
+    line: String,
+    json: Value,
+}
+
+/// Whole-message limit for window chunks (each about 280 kB at most).
+const MAX_CHUNK_BYTES: usize = 16 << 20;
+
+/// Compare two sessions over a fleet: every replica streams both sessions' `recent` windows
+/// (RecentSegments), the windows are joined by segment key and compared here with the same
+/// engine, pairing and weights the daemon's Compare uses, so a fleet whose replicas hold
+/// different segments gives what one process holding all of them gives. A segment in more
+/// than one replica's window of a session counts once, with the statistics of the first
+/// replica in `--server` order that holds it (replicas share no clock to say which score is
+/// the latest); the report says how many were so.
+async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &CompareSettings, threads: usize, partial: bool) -> Result<(crate::pb::CompareReport, FleetView), CliError> {
+    use crate::pb::scoring_client::ScoringClient;
+    let mut windows: [std::collections::HashMap<u64, SegmentStats>; 2] = Default::default();
+    let mut order: [Vec<u64>; 2] = Default::default();
+    let (mut held, mut on_several) = ([0usize; 2], [0usize; 2]);
+    let mut head: Option<(String, crate::pb::SegmentChunk)> = None;
+    let mut present = [false; 2];
+    let (mut answered, mut missing) = (Vec::new(), Vec::new());
+    'replicas: for e in endpoints {
+        let name = identify(e.clone()).await.ok().map(|id| id.replica).filter(|n| !n.is_empty()).unwrap_or_else(|| e.url.clone());
+        let mut got: [Vec<crate::pb::SegmentChunk>; 2] = Default::default();
+        for (i, session) in sessions.iter().enumerate() {
+            let mut client = match e.connect() {
+                Ok(c) => ScoringClient::new(c).max_decoding_message_size(MAX_CHUNK_BYTES),
+                Err(err) => {
+                    missing.push(format!("{} ({err})", e.url));
+                    continue 'replicas;
+                }
+            };
+            let call = client.recent_segments(crate::pb::RecentSegmentsRequest { session: session.clone() }).await;
+            let mut stream = match call {
+                Ok(s) => s.into_inner(),
+                // This replica has no such session: it holds none of its segments.
+                Err(s) if s.code() == tonic::Code::NotFound => continue,
+                Err(s) => {
+                    missing.push(format!("{} ({})", e.url, ClientError::call("recent segments", s)));
+                    continue 'replicas;
+                }
+            };
+            present[i] = true;
+            loop {
+                match stream.message().await {
+                    Ok(Some(c)) => got[i].push(c),
+                    Ok(None) => break,
+                    Err(s) => {
+                        missing.push(format!("{} ({})", e.url, ClientError::call("recent segments", s)));
+                        continue 'replicas;
+                    }
+                }
+            }
+        }
+        for (i, chunks) in got.iter().enumerate() {
+            for c in chunks {
+                match &head {
+                    None => head = Some((format!("{name}'s session '{}'", c.session), c.clone())),
+                    Some((first, h)) => {
+                        if c.refset_digest != h.refset_digest || c.config != h.config || c.width != h.width {
+                            return Err(CliError::Usage(format!(
+                                "{first} and {name}'s session '{}' score against different reference-set versions or configurations: their segments cannot be paired",
+                                c.session
+                            )));
+                        }
+                    }
+                }
+                let config = crate::pb::convert::config_from_pb(c.config.as_ref()).map_err(|err| CliError::Usage(format!("{name} sent a bad configuration: {err}")))?;
+                let layout = crate::metric::layout::Layout::new(&config);
+                let width = layout.width();
+                if width != c.width as usize || c.fields.len() != c.keys.len() * width {
+                    return Err(CliError::Usage(format!("{name} sent a window chunk of {} values for {} segments of width {}", c.fields.len(), c.keys.len(), c.width)));
+                }
+                for (k, row) in c.keys.iter().zip(c.fields.chunks(width.max(1))) {
+                    held[i] += 1;
+                    if windows[i].contains_key(k) {
+                        on_several[i] += 1;
+                    } else {
+                        windows[i].insert(*k, layout.decode(row));
+                        order[i].push(*k);
+                    }
+                }
+            }
+        }
+        answered.push(name);
+    }
+    if !missing.is_empty() && !partial {
+        return Err(CliError::Usage(format!(
+            "{} of {} replicas answered; no answer from {}: a fleet comparison would leave out the segments it holds (--partial compares what those that answered hold)",
+            answered.len(),
+            endpoints.len(),
+            missing.join(", ")
+        )));
+    }
+    let Some((_, h)) = head else {
+        return Err(CliError::Usage(format!("no replica holds a session named '{}' or '{}'", sessions[0], sessions[1])));
+    };
+    if let Some(i) = (0..2).find(|&i| !present[i]) {
+        return Err(CliError::Usage(format!("no replica has a session named '{}'", sessions[i])));
+    }
+    let config = crate::pb::convert::config_from_pb(h.config.as_ref()).map_err(|err| CliError::Usage(format!("bad configuration: {err}")))?;
+    let (mut keys, mut sa, mut sb) = (Vec::new(), Vec::new(), Vec::new());
+    for k in &order[0] {
+        if let Some(t) = windows[1].get(k) {
+            keys.push(*k);
+            sa.push(windows[0][k]);
+            sb.push(*t);
+        }
+    }
+    let threads = threads.max(1);
+    let (settings, config2) = (*settings, config);
+    let c = tokio::task::spawn_blocking(move || compare::compare(&config2, &keys, &sa, &sb, &settings, threads)).await.map_err(|e| CliError::Usage(format!("comparison failed: {e}")))?;
+    let unix_time = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64);
+    let report = crate::pb::CompareReport {
+        session_a: sessions[0].clone(),
+        session_b: sessions[1].clone(),
+        refset_digest: h.refset_digest.clone(),
+        config: h.config.clone(),
+        segments: c.segments,
+        recent_a: windows[0].len() as u64,
+        recent_b: windows[1].len() as u64,
+        metrics: crate::pb::convert::metric_comparisons_to_pb(&c),
+        level: settings.level,
+        resamples: settings.resamples as u32,
+        trials: settings.trials as u32,
+        seed: settings.seed,
+        unix_time,
+        note: PROXY_NOTE.to_owned(),
+    };
+    let partial_words = if missing.is_empty() { String::new() } else { format!(" (PARTIAL: no answer from {})", missing.join(", ")) };
+    let line = format!(
+        "fleet: {} of {} replicas answered{partial_words}; windows joined by segment ({} of A's and {} of B's segments were in more than one replica's window, counted once each)",
+        answered.len(),
+        endpoints.len(),
+        on_several[0],
+        on_several[1]
+    );
+    let json = json!({
+        "replicas": endpoints.len(), "answered": answered, "missing": missing, "partial": !missing.is_empty(),
+        "on_several_replicas": {"a": on_several[0], "b": on_several[1]},
+        "held": {"a": held[0], "b": held[1]},
+        "recent": "the union of the replicas' recent windows, each segment once (the first replica in --server order that holds it)",
+    });
+    Ok((report, FleetView { line, json }))
 }
 
 /// A server's comparison as the engine's (for the shared renderings).

@@ -7,9 +7,13 @@ use std::time::{Duration, UNIX_EPOCH};
 use clap::Args;
 
 use super::CliError;
-use crate::client::{channel, ClientError};
+use crate::client::fleet::{identify, Endpoint, Fleet};
+use crate::client::ClientError;
+use crate::metric::scores::corpus_score;
+use crate::metric::resample::Replicates;
+use crate::metric::{CorpusStats, ScoreConfig};
 use crate::pb;
-use crate::pb::convert::{config_from_pb, interval_from_pb};
+use crate::pb::convert::{config_from_pb, interval_from_pb, interval_to_pb, replicate_sums_from_pb, stats_from_pb};
 use crate::report::PROXY_NOTE;
 use crate::server::history::Point;
 use crate::server::page::{report_svg, step_words, Frame};
@@ -21,6 +25,12 @@ interval as a band where the buckets still keep replicate sums (minute buckets f
 hour, hourly ones for their first day, at the daemon's defaults), a title, axis captions with \
 units, and a footer with the configuration and the reference set's digest: scores are comparable \
 only under the same tokenizer, references and configuration.
+
+A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
+replica. History is kept per replica; the report adds up each step's integer statistics and \
+bootstrap replicate sums over the replicas (exact, never an average of scores) and derives the \
+score and band from the sums. When a replica does not answer, it refuses (the chart would leave \
+out what that replica counted) unless --partial is given; the footer names the replicas summed.
 
 --since is how far back (an integer and m, h or d; default 24h); --step the width of one point \
 (default: the whole minutes or hours that give at most 120 points). Only .svg is written: \
@@ -38,9 +48,13 @@ pub const DEFAULT_SINCE: &str = "24h";
 /// `report` options.
 #[derive(Debug, Args)]
 pub struct ReportArgs {
-    /// Server URL, e.g. http://127.0.0.1:7410 (one replica: history is kept per replica).
-    #[arg(long, value_name = "URL")]
+    /// Server URL, e.g. http://127.0.0.1:7410; for a fleet, several URLs separated by commas, or
+    /// one whose name resolves to every replica (each step summed over the replicas).
+    #[arg(long, value_name = "URL[,URL...]")]
     pub server: String,
+    /// Fleet: draw the sum of the replicas that answered when some do not (the footer says so).
+    #[arg(long)]
+    pub partial: bool,
     /// The session.
     #[arg(long, value_name = "NAME")]
     pub session: String,
@@ -56,6 +70,10 @@ pub struct ReportArgs {
     /// One point per this long (whole minutes, or whole hours for hourly buckets).
     #[arg(long, value_name = "DURATION")]
     pub step: Option<String>,
+    /// Where the chart ends, in seconds since the Unix epoch (an incident's end, say; the
+    /// chart reaches --since before it) [default: now].
+    #[arg(long, value_name = "UNIX_SECONDS")]
+    pub until: Option<i64>,
 }
 
 /// Seconds of "90m", "24h", "7d".
@@ -95,17 +113,24 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
         Some(s) => seconds("--step", s)?,
         None => default_step(span),
     };
+    if let Some(u) = a.until.filter(|u| *u <= 0) {
+        return Err(CliError::Usage(format!("--until {u}: expected seconds since the Unix epoch")));
+    }
+    let fleet = Fleet::parse(&a.server, Duration::ZERO, false)?;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
-    let (history, scores) = rt.block_on(async {
-        let ch = channel(&a.server)?;
-        let now = std::time::SystemTime::now().duration_since(UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64);
+    let (history, config, holders) = rt.block_on(async {
+        let now = a.until.unwrap_or_else(|| std::time::SystemTime::now().duration_since(UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64));
         let until = (now / step + 1) * step;
-        let req = pb::GetHistoryRequest { session: a.session.clone(), metric: a.metric.clone().unwrap_or_default(), from_unix: until - (span + step - 1) / step * step, until_unix: until, step_seconds: step as u32, level: 0.0 };
-        let history = pb::history_client::HistoryClient::new(ch.clone()).get_history(req).await.map_err(|s| ClientError::call("get history", s))?.into_inner();
-        let scores = pb::scoring_client::ScoringClient::new(ch).get_scores(pb::GetScoresRequest { session: a.session.clone(), ..Default::default() }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
-        Ok::<_, CliError>((history, scores))
+        let req = pb::GetHistoryRequest { session: a.session.clone(), metric: a.metric.clone().unwrap_or_default(), from_unix: until - (span + step - 1) / step * step, until_unix: until, step_seconds: step as u32, level: 0.0, with_sums: false };
+        if let Some(one) = fleet.lone().await? {
+            let history = get_history(&one, req).await?;
+            let config = config_from_pb(history.config.as_ref()).map_err(|e| CliError::Usage(format!("server sent a bad configuration: {e}")))?;
+            return Ok::<_, CliError>((history, config, None));
+        }
+        let endpoints = fleet.endpoints().await?;
+        let (history, config, holders) = fleet_history(&endpoints, pb::GetHistoryRequest { with_sums: true, ..req }, a.partial).await?;
+        Ok((history, config, Some(holders)))
     })?;
-    let config = config_from_pb(scores.config.as_ref()).map_err(|e| CliError::Usage(format!("server sent a bad configuration: {e}")))?;
     let points: Vec<Point> = history.points.iter().map(|p| Point { start: p.start_unix, segments: p.segments, score: p.score, interval: p.interval.as_ref().map(interval_from_pb), unknown: p.unknown, rejected: p.rejected }).collect();
     let metric = crate::metric::Metric::ALL.into_iter().find(|m| m.name() == history.metric).map_or(history.metric.clone(), |m| m.title().to_owned());
     let step = i64::from(history.step_seconds);
@@ -121,13 +146,116 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
     let segments: u64 = points.iter().map(|p| p.segments).sum();
     let footer = vec![
         format!("{} segments in these {} steps; configuration: {}", segments, points.len(), config.describe()),
-        format!("reference set digest {}; written by mtgauge {}", scores.refset_digest, env!("CARGO_PKG_VERSION")),
+        format!("reference set digest {}; written by mtgauge {}", history.refset_digest, env!("CARGO_PKG_VERSION")),
         PROXY_NOTE.to_owned(),
     ];
+    let mut footer = footer;
+    if let Some(h) = &holders {
+        footer.insert(1, h.clone());
+    }
     let svg = report_svg(&a.session, &metric, &points, &frame, &footer);
     std::fs::write(&a.out, svg).map_err(|e| CliError::Usage(format!("{}: {e}", a.out.display())))?;
     eprintln!("mtgauge report: {} points ({} with segments) written to {}", points.len(), points.iter().filter(|p| p.segments > 0).count(), a.out.display());
     Ok(())
+}
+
+/// Whole-message limit for history answers with replicate sums (about 46 kB a step at 200
+/// replicates and the default configuration; 120 steps at 1,000 replicates stay well under it).
+pub const MAX_HISTORY_MESSAGE_BYTES: usize = 256 << 20;
+
+/// One server's history of the session.
+async fn get_history(e: &Endpoint, req: pb::GetHistoryRequest) -> Result<pb::HistoryReport, ClientError> {
+    let mut client = pb::history_client::HistoryClient::new(e.connect()?).max_decoding_message_size(MAX_HISTORY_MESSAGE_BYTES);
+    Ok(client.get_history(req).await.map_err(|s| ClientError::call("get history", s))?.into_inner())
+}
+
+/// The session's history over every replica: each step's integer statistics and replicate sums
+/// added up (exact; never an average of scores), the score and interval derived from the sums.
+/// Refused when a replica does not answer (unless `partial`) or when the replicas score the
+/// session differently. Also returns a footer line naming the replicas.
+async fn fleet_history(endpoints: &[Endpoint], req: pb::GetHistoryRequest, partial: bool) -> Result<(pb::HistoryReport, ScoreConfig, String), CliError> {
+    let mut answers: Vec<(String, pb::HistoryReport)> = Vec::new();
+    let (mut missing, mut without) = (Vec::new(), Vec::new());
+    for e in endpoints {
+        let name = identify(e.clone()).await.ok().map(|id| id.replica).filter(|n| !n.is_empty()).unwrap_or_else(|| e.url.clone());
+        match get_history(e, req.clone()).await {
+            Ok(h) => answers.push((name, h)),
+            // This replica has no such session: it counted nothing of it.
+            Err(ClientError::Call { status, .. }) if status.code() == tonic::Code::NotFound => without.push(name),
+            Err(err) => missing.push(format!("{} ({err})", e.url)),
+        }
+    }
+    if !missing.is_empty() && !partial {
+        return Err(CliError::Usage(format!(
+            "{} of {} replicas answered; no answer from {}: a fleet history would leave out what it counted (--partial draws the sum of those that answered)",
+            answers.len() + without.len(),
+            endpoints.len(),
+            missing.join(", ")
+        )));
+    }
+    let Some((first_name, first)) = answers.first() else {
+        return Err(CliError::Usage(format!("no replica has a session named '{}'", req.session)));
+    };
+    let config = config_from_pb(first.config.as_ref()).map_err(|e| CliError::Usage(format!("{first_name} sent a bad configuration: {e}")))?;
+    let metric = crate::metric::Metric::ALL.into_iter().find(|m| m.name() == first.metric).ok_or_else(|| CliError::Usage(format!("{first_name} sent an unknown metric '{}'", first.metric)))?;
+    let level = crate::metric::resample::DEFAULT_LEVEL;
+    // Per step start: statistics, counters, replicate sums (None once a step with segments
+    // came without them).
+    struct Sum {
+        stats: CorpusStats,
+        unknown: u64,
+        rejected: u64,
+        sums: Option<Replicates>,
+        complete: bool,
+    }
+    let mut steps: std::collections::BTreeMap<i64, Sum> = std::collections::BTreeMap::new();
+    for (name, h) in &answers {
+        if h.config != first.config || h.refset_digest != first.refset_digest || h.metric != first.metric || h.step_seconds != first.step_seconds {
+            return Err(CliError::Usage(format!(
+                "replicas {first_name} and {name} score session '{}' differently (reference-set digest or configuration) or answered other steps: their histories do not add up",
+                req.session
+            )));
+        }
+        for p in &h.points {
+            let e = steps.entry(p.start_unix).or_insert_with(|| Sum { stats: CorpusStats::default(), unknown: 0, rejected: 0, sums: None, complete: true });
+            e.stats += stats_from_pb(p.totals.as_ref().unwrap_or(&Default::default()));
+            e.unknown += p.unknown;
+            e.rejected += p.rejected;
+            if p.segments == 0 {
+                continue;
+            }
+            match p.sums.as_ref().and_then(|x| replicate_sums_from_pb(x, &config)) {
+                Some(x) if e.complete => match &mut e.sums {
+                    Some(acc) => e.complete = acc.merge(&x).is_ok(),
+                    None => e.sums = Some(x),
+                },
+                _ => e.complete = false,
+            }
+        }
+    }
+    let points = steps
+        .into_iter()
+        .map(|(start, s)| pb::HistoryPoint {
+            start_unix: start,
+            segments: s.stats.segments,
+            score: (s.stats.segments > 0).then(|| corpus_score(&s.stats, &config, metric)).flatten(),
+            interval: s.sums.filter(|_| s.complete).and_then(|r| r.interval(metric, level)).map(interval_to_pb),
+            unknown: s.unknown,
+            rejected: s.rejected,
+            ..Default::default()
+        })
+        .collect();
+    let merged = pb::HistoryReport {
+        from_unix: answers.iter().map(|(_, h)| h.from_unix).min().unwrap_or(first.from_unix),
+        points,
+        ..first.clone()
+    };
+    let names: Vec<&str> = answers.iter().map(|(n, _)| n.as_str()).collect();
+    let mut line = format!("fleet: {} of {} replicas answered; the session's steps summed over {}", answers.len() + without.len(), endpoints.len(), names.join(", "));
+    if !missing.is_empty() {
+        line += &format!(" (PARTIAL: no answer from {})", missing.join(", "));
+    }
+    Ok((merged, config, line))
 }
 
 #[cfg(test)]

@@ -286,3 +286,22 @@ pub fn guard_verdict_to_pb(index: u32, v: crate::guard::Verdict) -> pb::GuardVer
         undecided: v.undecided_guards().map(|g| g.name().to_owned()).collect(),
     }
 }
+
+/// Each metric's comparison in an API message.
+pub fn metric_comparisons_to_pb(c: &crate::metric::compare::Comparison) -> Vec<pb::MetricComparison> {
+    c.metrics
+        .iter()
+        .map(|m| pb::MetricComparison {
+            metric: m.metric.name().to_owned(),
+            a: m.a.score,
+            b: m.b.score,
+            a_interval: m.a.interval.map(interval_to_pb),
+            b_interval: m.b.interval.map(interval_to_pb),
+            difference: m.difference,
+            interval: m.interval.map(interval_to_pb),
+            p_value: m.p_value,
+            trials: m.trials as u64,
+            extreme_trials: m.extreme_trials as u64,
+        })
+        .collect()
+}

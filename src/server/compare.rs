@@ -71,6 +71,38 @@ pub fn same_segments(a: &Session, b: &Session) -> Option<((CorpusStats, Replicat
     (ka == kb && once(&ka)).then_some(((sa, ra), (sb, rb)))
 }
 
+/// Segments per [`crate::pb::SegmentChunk`] (about 280 kB at the widest configuration).
+pub const SEGMENT_CHUNK: usize = 1024;
+
+/// A session's `recent` window as chunks of `per_chunk` segments (at least one chunk, empty
+/// when the window is). CPU work: call from a blocking thread.
+pub fn segment_chunks(s: &Session, per_chunk: usize) -> Vec<crate::pb::SegmentChunk> {
+    let layout = crate::metric::layout::Layout::new(&s.spec().config);
+    let segments = s.recent_segments();
+    let head = crate::pb::SegmentChunk {
+        session: s.spec().name.clone(),
+        refset_digest: s.refs().digest_hex(),
+        config: Some(crate::pb::convert::config_to_pb(&s.spec().config)),
+        width: layout.width() as u32,
+        window_segments: segments.len() as u64,
+        ..Default::default()
+    };
+    let mut out: Vec<crate::pb::SegmentChunk> = segments
+        .chunks(per_chunk.max(1))
+        .map(|part| {
+            let mut c = crate::pb::SegmentChunk { keys: part.iter().map(|(k, _)| *k).collect(), ..head.clone() };
+            for (_, st) in part {
+                layout.encode(st, &mut c.fields);
+            }
+            c
+        })
+        .collect();
+    if out.is_empty() {
+        out.push(head);
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use std::sync::Arc;

@@ -12,7 +12,8 @@ use crate::metric::resample::{valid_level, Interval, DEFAULT_LEVEL};
 use crate::metric::scores::corpus_score;
 use crate::metric::Metric;
 use crate::pb;
-use crate::session::history::Resolution;
+use crate::metric::ScoreConfig;
+use crate::session::history::{Resolution, Step};
 use crate::session::Session;
 
 /// Steps of a query that gives no start.
@@ -65,20 +66,40 @@ pub fn metric_of(session: &Session, name: &str) -> Result<Metric> {
 /// Read the steps: the buckets' sums are copied under the history's lock, the scores and
 /// intervals derived after it (CPU work: call from a blocking thread).
 pub fn points(session: &Session, q: &HistoryQuery) -> Result<(Resolution, Vec<Point>)> {
-    let (resolution, steps) = session.history().query(q.from, q.until, q.step).map_err(|e| ServiceError::Invalid(e.to_string()))?;
-    let config = &session.spec().config;
-    let points = steps
-        .into_iter()
-        .map(|s| Point {
-            start: s.start,
-            segments: s.stats.segments,
-            score: (s.stats.segments > 0).then(|| corpus_score(&s.stats, config, q.metric)).flatten(),
-            interval: s.sums.as_ref().and_then(|r| r.interval(q.metric, q.level)),
-            unknown: s.counts.unknown,
-            rejected: s.counts.rejected,
-        })
-        .collect();
-    Ok((resolution, points))
+    let (resolution, steps) = steps(session, q)?;
+    Ok((resolution, steps.iter().map(|s| point_of(s, &session.spec().config, q)).collect()))
+}
+
+/// The summed buckets of each step.
+fn steps(session: &Session, q: &HistoryQuery) -> Result<(Resolution, Vec<Step>)> {
+    session.history().query(q.from, q.until, q.step).map_err(|e| ServiceError::Invalid(e.to_string()))
+}
+
+/// A step's score, interval and counts.
+pub fn point_of(s: &Step, config: &ScoreConfig, q: &HistoryQuery) -> Point {
+    Point {
+        start: s.start,
+        segments: s.stats.segments,
+        score: (s.stats.segments > 0).then(|| corpus_score(&s.stats, config, q.metric)).flatten(),
+        interval: s.sums.as_ref().and_then(|r| r.interval(q.metric, q.level)),
+        unknown: s.counts.unknown,
+        rejected: s.counts.rejected,
+    }
+}
+
+/// A step in an API message; with `with_sums`, its statistics and replicate sums too.
+fn point_to_pb(s: &Step, config: &ScoreConfig, q: &HistoryQuery, with_sums: bool) -> pb::HistoryPoint {
+    let p = point_of(s, config, q);
+    pb::HistoryPoint {
+        start_unix: p.start,
+        segments: p.segments,
+        score: p.score,
+        interval: p.interval.map(pb::convert::interval_to_pb),
+        unknown: p.unknown,
+        rejected: p.rejected,
+        totals: with_sums.then(|| pb::convert::totals_to_pb(&s.stats, config)),
+        sums: s.sums.as_ref().filter(|_| with_sums).map(pb::convert::replicate_sums_to_pb),
+    }
 }
 
 /// The gRPC `History` service.
@@ -119,18 +140,18 @@ impl pb::history_server::History for HistoryService {
         let session = self.state.session(&r.session)?;
         let q = query_of(&session, &r, unix_now())?;
         let report = tokio::task::spawn_blocking(move || -> Result<pb::HistoryReport> {
-            let (resolution, points) = points(&session, &q)?;
+            let (resolution, steps) = steps(&session, &q)?;
+            let config = &session.spec().config;
             Ok(pb::HistoryReport {
                 session: session.spec().name.clone(),
                 metric: q.metric.name().into(),
-                from_unix: points.first().map_or(q.from, |p| p.start),
+                from_unix: steps.first().map_or(q.from, |p| p.start),
                 until_unix: q.until,
                 step_seconds: q.step as u32,
                 resolution: resolution.name().into(),
-                points: points
-                    .into_iter()
-                    .map(|p| pb::HistoryPoint { start_unix: p.start, segments: p.segments, score: p.score, interval: p.interval.map(pb::convert::interval_to_pb), unknown: p.unknown, rejected: p.rejected })
-                    .collect(),
+                points: steps.iter().map(|s| point_to_pb(s, config, &q, r.with_sums)).collect(),
+                config: Some(pb::convert::config_to_pb(config)),
+                refset_digest: session.refs().digest_hex(),
                 memory_bytes: session.history().memory_bytes() as u64,
             })
         })

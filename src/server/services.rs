@@ -24,7 +24,7 @@ use crate::pb;
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
 use crate::guard::{GuardCounts, GuardScratch};
 use crate::pb::convert::{
-    config_from_pb, config_to_pb, guard_tally_to_pb, guard_verdict_to_pb, interval_to_pb, replicate_sums_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb,
+    config_from_pb, config_to_pb, guard_tally_to_pb, guard_verdict_to_pb, replicate_sums_to_pb, resampling_from_pb, resampling_to_pb, segment_scores_to_pb,
     totals_with_intervals,
 };
 use crate::refs::compiled::Scratch;
@@ -478,22 +478,7 @@ fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<
     let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
     let p = super::compare::paired(a, b, &settings, threads)?;
     let c = p.comparison;
-    let metrics = c
-        .metrics
-        .iter()
-        .map(|m| pb::MetricComparison {
-            metric: m.metric.name().to_owned(),
-            a: m.a.score,
-            b: m.b.score,
-            a_interval: m.a.interval.map(interval_to_pb),
-            b_interval: m.b.interval.map(interval_to_pb),
-            difference: m.difference,
-            interval: m.interval.map(interval_to_pb),
-            p_value: m.p_value,
-            trials: m.trials as u64,
-            extreme_trials: m.extreme_trials as u64,
-        })
-        .collect();
+    let metrics = pb::convert::metric_comparisons_to_pb(&c);
     Ok(pb::CompareReport {
         session_a: a.spec().name.clone(),
         session_b: b.spec().name.clone(),
@@ -543,6 +528,7 @@ type BoxStream<T> = Pin<Box<dyn Stream<Item = std::result::Result<T, Status>> + 
 impl pb::scoring_server::Scoring for Services {
     type StreamStream = BoxStream<pb::BatchAck>;
     type WatchScoresStream = BoxStream<pb::ScoresReport>;
+    type RecentSegmentsStream = BoxStream<pb::SegmentChunk>;
 
     async fn stream(&self, req: Request<Streaming<pb::ScoreBatch>>) -> std::result::Result<Response<Self::StreamStream>, Status> {
         self.authorize(&req, Scope::Submit)?;
@@ -643,6 +629,13 @@ impl pb::scoring_server::Scoring for Services {
         let report = blocking(move || compare_sessions(&a, &b, &r)).await?;
         drop(slot);
         Ok(Response::new(report))
+    }
+
+    async fn recent_segments(&self, req: Request<pb::RecentSegmentsRequest>) -> std::result::Result<Response<Self::RecentSegmentsStream>, Status> {
+        self.authorize(&req, Scope::Read)?;
+        let session = self.state.session(&req.into_inner().session)?;
+        let chunks = blocking(move || Ok(super::compare::segment_chunks(&session, super::compare::SEGMENT_CHUNK))).await?;
+        Ok(Response::new(Box::pin(tokio_stream::iter(chunks.into_iter().map(Ok)))))
     }
 
     async fn identify(&self, req: Request<pb::IdentifyRequest>) -> std::result::Result<Response<pb::ReplicaIdentity>, Status> {
