@@ -8,7 +8,7 @@ mod common;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
-use common::{demo_files, temp_dir, Server};
+use common::{demo_files, durable_with_ferry, temp_dir, Server};
 use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
 use mtgauge::metric::{CorpusStats, ScoreConfig};
 use mtgauge::pb;
@@ -177,12 +177,7 @@ async fn kill_nine_loses_nothing_and_counts_nothing_twice() {
 async fn restart_restores_sessions_refsets_and_windows() {
     let dir = temp_dir("restart");
     demo_files(&dir);
-    let data = dir.join("data");
-    let data_s = data.to_str().unwrap().to_owned();
-    let server = Server::start(&["--data-dir", &data_s, "--refset-dir", dir.to_str().unwrap()]);
-    let ch = server.wait_serving().await;
-    let load = pb::LoadRefSetRequest { name: "ferry".into(), format: pb::RefFormat::Jsonl as i32, paths: vec!["refs.jsonl".into()], source_path: String::new(), replace: false };
-    pb::ref_sets_client::RefSetsClient::new(ch.clone()).load(load).await.unwrap();
+    let (server, ch, data_s) = durable_with_ferry(&dir).await;
     let labels = [("model".to_string(), "v7".to_string())].into_iter().collect();
     SessionsClient::new(ch.clone()).create(pb::CreateSessionRequest { name: "keep".into(), refset: "ferry".into(), config: Some(config_to_pb(&config())), labels, window: 7, if_not_exists: false, ..Default::default() }).await.unwrap();
     let plan = plan(9);

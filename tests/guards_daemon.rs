@@ -4,7 +4,7 @@
 
 mod common;
 
-use common::{demo_files, temp_dir, Server};
+use common::{demo_files, durable_with_ferry, temp_dir, Server};
 use mtgauge::cli::demo::scenario::demo_segments;
 use mtgauge::guard::{check, Guard, GuardConfig, GuardCounts, GuardScratch, LengthTally};
 use mtgauge::pb;
@@ -62,12 +62,7 @@ fn tally(counts: &Option<pb::GuardTally>) -> GuardCounts {
 async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
     let dir = temp_dir("guards");
     demo_files(&dir);
-    let data = dir.join("data");
-    let data_s = data.to_str().unwrap().to_owned();
-    let server = Server::start(&["--data-dir", &data_s, "--refset-dir", dir.to_str().unwrap()]);
-    let ch = server.wait_serving().await;
-    let load = pb::LoadRefSetRequest { name: "ferry".into(), format: pb::RefFormat::Jsonl as i32, paths: vec!["refs.jsonl".into()], source_path: String::new(), replace: false };
-    pb::ref_sets_client::RefSetsClient::new(ch.clone()).load(load).await.unwrap();
+    let (server, ch, data_s) = durable_with_ferry(&dir).await;
 
     // The target language is a session setting; an unknown one is refused.
     let mut sessions = SessionsClient::new(ch.clone());

@@ -194,6 +194,18 @@ pub fn demo_files(dir: &Path) {
     mtgauge::cli::demo::scenario::write_demo_files(dir).unwrap();
 }
 
+/// A durable server on `dir/data` reading reference files from `dir` (written by
+/// [`demo_files`]), serving, with the demo set loaded as `ferry`: the server, its channel and
+/// its data directory (to start it again on).
+pub async fn durable_with_ferry(dir: &Path) -> (Server, Channel, String) {
+    let data = dir.join("data").to_str().unwrap().to_owned();
+    let server = Server::start(&["--data-dir", &data, "--refset-dir", dir.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let load = mtgauge::pb::LoadRefSetRequest { name: "ferry".into(), format: mtgauge::pb::RefFormat::Jsonl as i32, paths: vec!["refs.jsonl".into()], source_path: String::new(), replace: false };
+    mtgauge::pb::ref_sets_client::RefSetsClient::new(ch.clone()).load(load).await.unwrap();
+    (server, ch, data)
+}
+
 /// A server running inside the test process on `mtgauge::server::run` (no scrape listener: the
 /// Prometheus recorder is process-wide), stopped by [`InProcess::stop`].
 pub struct InProcess {
