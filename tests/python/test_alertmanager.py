@@ -87,47 +87,7 @@ def test_firing_then_resolved_reach_alertmanager_and_its_receiver(tmp_path):
     print((version.stdout or version.stderr).splitlines()[0])
 
     notes = Notifications()
-    hook = ThreadingHTTPServer(("127.0.0.1", 0), notes.handler())
-    threading.Thread(target=hook.serve_forever, daemon=True).start()
-    web_port = free_port()
-    config = tmp_path / "alertmanager.yml"
-    config.write_text(
-        "global:\n"
-        "  resolve_timeout: 5m\n"
-        "route:\n"
-        "  receiver: ferry-hook\n"
-        "  group_by: ['alertname', 'run']\n"
-        "  group_wait: 1s\n"
-        "  group_interval: 1s\n"
-        "  repeat_interval: 1h\n"
-        "receivers:\n"
-        "  - name: ferry-hook\n"
-        "    webhook_configs:\n"
-        f"      - url: http://127.0.0.1:{hook.server_address[1]}/ferry-alerts\n"
-        "        send_resolved: true\n"
-    )
-    (tmp_path / "data").mkdir()
-    log = open(tmp_path / "alertmanager.log", "w+b")
-    am = subprocess.Popen(
-        [binary, f"--config.file={config}", f"--storage.path={tmp_path / 'data'}",
-         f"--web.listen-address=127.0.0.1:{web_port}", "--cluster.listen-address="],
-        stdout=log, stderr=subprocess.STDOUT,
-    )
-    base = f"http://127.0.0.1:{web_port}"
-    try:
-        deadline = time.monotonic() + 30
-        while True:
-            try:
-                with urllib.request.urlopen(f"{base}/-/ready", timeout=2) as r:
-                    if r.status == 200:
-                        break
-            except OSError:
-                pass
-            if am.poll() is not None or time.monotonic() > deadline:
-                log.seek(0)
-                pytest.fail(f"Alertmanager did not become ready:\n{log.read().decode(errors='replace')}")
-            time.sleep(0.1)
-
+    with running_alertmanager(tmp_path, notes, ["alertname", "run"]) as base:
         run = f"py{os.getpid()}x{int(time.time())}"
         env = dict(os.environ, MTGAUGE_ALERTMANAGER_URL=base, MTGAUGE_ALERT_RUN=run, MTGAUGE_ALERT_FIRING_SECONDS="3")
         cargo = subprocess.run(
@@ -162,14 +122,6 @@ def test_firing_then_resolved_reach_alertmanager_and_its_receiver(tmp_path):
         assert ra["labels"] == fa["labels"]
         assert ra["startsAt"] == fa["startsAt"]
         assert ra["endsAt"] > ra["startsAt"]
-    finally:
-        am.terminate()
-        try:
-            am.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            am.kill()
-        hook.shutdown()
-        log.close()
 
 
 @contextlib.contextmanager
