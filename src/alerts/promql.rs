@@ -26,7 +26,8 @@
 //! An alert's condition is the daemon's: the bound below the limit (threshold, or -points),
 //! or, once firing (the `ALERTS` series Prometheus keeps for its own alerts), below the limit
 //! plus `clear_margin`; with at least `min_segments` scored segments in the window (for `drop`,
-//! in both sessions' windows); for `for_seconds`. Its labels are the daemon's (alertname,
+//! in both sessions' windows); for `for_seconds` (a rule's `for_segments` is the daemon's only:
+//! Prometheus sees no segment clock, and the rendered rule says so in a comment). Its labels are the daemon's (alertname,
 //! session, severity, metric and the rule's extra labels), so that the same alert from the
 //! daemon and from Prometheus is one alert at Alertmanager.
 //!
@@ -311,6 +312,9 @@ fn alert(out: &mut String, rule: &Rule) {
     for line in expr.lines() {
         let _ = writeln!(out, "            {line}");
     }
+    if rule.for_segments > 0 {
+        let _ = writeln!(out, "        # for_segments = {}: the daemon also waits for that many newly scored segments; Prometheus counts time only", rule.for_segments);
+    }
     let _ = writeln!(out, "        for: {}s", rule.for_seconds);
     let _ = writeln!(out, "        labels:");
     let mut labels = rule.extra_labels.clone();
@@ -417,7 +421,8 @@ points = 2
         assert!(y.contains("ALERTS{alertname=\"floor\", alertstate=\"firing\"}"));
         assert!(y.contains("session:mtgauge_alert_segments:increase15m >= 300\n"));
         assert!(y.contains("session:mtgauge_alert_segments:sum{session=\"ferry.v7\"} >= 200\n"), "drop: the baseline's guard too");
-        assert!(y.contains("        for: 120s\n") && y.contains("        for: 60s\n"));
+        assert!(y.contains("        for: 120s\n") && y.contains("        for: 0s\n"));
+        assert!(y.contains("        # for_segments = 200: the daemon also waits"), "a rule with the default for-duration says what Prometheus cannot count: {y}");
         // Labels and annotations quoted; template braces of user text kept literal.
         assert!(y.contains("          team: \"ferry \\\"mt\\\"\"\n"), "{y}");
         assert!(y.contains("          metric: \"chrf\"\n") && y.contains("          severity: \"warning\"\n"));

@@ -26,7 +26,9 @@
 //!
 //! # States (the Prometheus vocabulary)
 //! inactive -> pending when the condition holds (with at least `min_segments` behind it);
-//! pending -> firing once it has held for `for_seconds`; pending -> inactive as soon as it does
+//! pending -> firing once it has held for `for_seconds` and through `for_segments` newly scored
+//! segments (default: 200 segments for `below` and `drop`, nothing more for `decline`; a rule
+//! that sets only `for_seconds` waits for time alone); pending -> inactive as soon as it does
 //! not. A firing alert resolves (-> inactive) only once its bound has come back past the
 //! threshold by `clear_margin` points (hysteresis), or when there are fewer than
 //! `min_segments` segments to judge by.
@@ -40,8 +42,15 @@ use crate::metric::Metric;
 /// Segments a rule needs behind its interval unless it sets `min_segments` (common practice:
 /// a corpus score over fewer segments moves by points by chance alone).
 pub const DEFAULT_MIN_SEGMENTS: u64 = 200;
-/// Seconds a condition must hold before its alert fires, unless the rule sets `for_seconds`.
-pub const DEFAULT_FOR_SECONDS: u64 = 60;
+/// Seconds a condition must hold before its alert fires, unless the rule sets `for_seconds`
+/// (see [`DEFAULT_FOR_SEGMENTS`]).
+pub const DEFAULT_FOR_SECONDS: u64 = 0;
+/// Segments scored while a `below` or `drop` condition holds before its alert fires, unless the
+/// rule sets `for_segments` or `for_seconds` (a rule that sets only `for_seconds` waits for
+/// time alone). Counted in segments, the delay a rule adds does not grow with traffic, and it
+/// is what the detection benchmark measures (`mtgauge alert-bench`). `decline` rules wait for
+/// nothing more by default: their sequential test is itself the accumulation of evidence.
+pub const DEFAULT_FOR_SEGMENTS: u64 = 200;
 /// Points past the threshold a firing alert's bound must come back by to resolve, unless the
 /// rule sets `clear_margin`.
 pub const DEFAULT_CLEAR_MARGIN: f64 = 0.5;
@@ -58,9 +67,9 @@ pub const MAX_RULES: usize = 256;
 /// Labels every alert carries, set by mtgauge (not by `extra_labels`).
 pub const ALERT_LABELS: [&str; 4] = ["alertname", "session", "severity", "metric"];
 /// Keys of one `[[alert]]` entry.
-pub const RULE_KEYS: [&str; 15] = [
-    "name", "session", "labels", "metric", "window", "when", "threshold", "baseline", "points", "min_segments", "for_seconds", "clear_margin", "severity", "extra_labels",
-    "annotations",
+pub const RULE_KEYS: [&str; 16] = [
+    "name", "session", "labels", "metric", "window", "when", "threshold", "baseline", "points", "min_segments", "for_seconds", "for_segments", "clear_margin", "severity",
+    "extra_labels", "annotations",
 ];
 
 /// One `[[alert]]` entry as written.
@@ -79,6 +88,7 @@ pub struct RuleEntry {
     points: Option<f64>,
     min_segments: Option<u64>,
     for_seconds: Option<u64>,
+    for_segments: Option<u64>,
     clear_margin: Option<f64>,
     severity: Option<String>,
     #[serde(default)]
@@ -197,6 +207,8 @@ pub struct Rule {
     pub min_segments: u64,
     /// Seconds the condition must hold.
     pub for_seconds: u64,
+    /// Segments scored while the condition holds, before it fires.
+    pub for_segments: u64,
     /// Hysteresis, in score points.
     pub clear_margin: f64,
     /// Severity label.
@@ -284,6 +296,11 @@ impl RuleEntry {
         if clear_margin.is_nan() || clear_margin < 0.0 {
             return Err(err(format!("clear_margin {clear_margin} is negative")));
         }
+        let for_segments = match (self.for_segments, self.for_seconds, &condition) {
+            (Some(n), _, _) => n,
+            (None, Some(_), _) | (None, None, Condition::Decline { .. }) => 0,
+            (None, None, _) => DEFAULT_FOR_SEGMENTS,
+        };
         Ok(Rule {
             name: self.name.clone(),
             session: self.session.clone(),
@@ -293,6 +310,7 @@ impl RuleEntry {
             condition,
             min_segments: self.min_segments.unwrap_or(DEFAULT_MIN_SEGMENTS),
             for_seconds: self.for_seconds.unwrap_or(DEFAULT_FOR_SECONDS),
+            for_segments,
             clear_margin,
             severity: self.severity.clone().unwrap_or_else(|| DEFAULT_SEVERITY.to_owned()),
             extra_labels: self.extra_labels.clone(),
@@ -325,10 +343,9 @@ impl Rule {
                 format!("{} {} at least {points} points below session {baseline} (paired 95% interval of the difference below -{points})", self.window.describe(), self.metric.name())
             }
             Condition::Decline { points } => format!(
-                "{} of chunks of {} segments {points} points below the session's own past (CUSUM past {} standard errors)",
+                "{} of chunks of {} segments {points} points below the session's own past (CUSUM past its decision limit)",
                 self.metric.name(),
-                self.min_segments,
-                super::shift::DECISION_LIMIT
+                self.min_segments
             ),
         }
     }
@@ -347,7 +364,7 @@ impl Rule {
             Condition::Drop { points, .. } => -points,
             Condition::Decline { .. } => {
                 let s = m.statistic.unwrap_or(0.0);
-                return (s > super::shift::DECISION_LIMIT, s == 0.0);
+                return (s > 1.0, s == 0.0);
             }
         };
         (m.high < limit, m.high >= limit + self.clear_margin)
@@ -391,7 +408,7 @@ pub struct Measured {
     pub high: f64,
     /// Segments behind it.
     pub segments: u64,
-    /// `decline` rules: the test statistic, in standard errors.
+    /// `decline` rules: the test statistic as a share of its decision limit (past 1: fires).
     pub statistic: Option<f64>,
 }
 
@@ -404,6 +421,8 @@ pub struct Tracker {
     pub since: i64,
     /// The last measurement (None: nothing to judge by, e.g. no interval yet).
     pub last: Option<Measured>,
+    /// The session's scored segments when the current state began.
+    pub since_scored: u64,
 }
 
 /// A change of state worth telling (firing or resolved).
@@ -418,25 +437,29 @@ pub enum Transition {
 impl Tracker {
     /// A new pair, inactive since `now`.
     pub fn new(now: i64) -> Tracker {
-        Tracker { state: State::Inactive, since: now, last: None }
+        Tracker { state: State::Inactive, since: now, last: None, since_scored: 0 }
     }
 
-    /// Advance with one evaluation at `now` (`m`: None when there is no interval to judge by).
-    pub fn step(&mut self, rule: &Rule, m: Option<Measured>, now: i64) -> Option<Transition> {
+    /// Advance with one evaluation at `now`, when the session has scored `scored` segments
+    /// (`m`: None when there is no interval to judge by). Pending becomes firing once the
+    /// condition has held for `for_seconds` and through `for_segments` newly scored segments.
+    pub fn step(&mut self, rule: &Rule, m: Option<Measured>, now: i64, scored: u64) -> Option<Transition> {
         self.last = m;
         let judged = m.filter(|m| m.segments >= rule.min_segments).map(|m| rule.judge(&m));
+        let held = |since: i64, since_scored: u64| now - since >= rule.for_seconds as i64 && scored.saturating_sub(since_scored) >= rule.for_segments;
         let (next, t) = match (self.state, judged) {
             (State::Firing, Some((_, false))) => (State::Firing, None),
             (State::Firing, _) => (State::Inactive, Some(Transition::Resolved)),
-            (State::Pending, Some((true, _))) if now - self.since >= rule.for_seconds as i64 => (State::Firing, Some(Transition::Fired)),
+            (State::Pending, Some((true, _))) if held(self.since, self.since_scored) => (State::Firing, Some(Transition::Fired)),
             (State::Pending, Some((true, _))) => (State::Pending, None),
-            (State::Inactive, Some((true, _))) if rule.for_seconds == 0 => (State::Firing, Some(Transition::Fired)),
+            (State::Inactive, Some((true, _))) if rule.for_seconds == 0 && rule.for_segments == 0 => (State::Firing, Some(Transition::Fired)),
             (State::Inactive, Some((true, _))) => (State::Pending, None),
             (_, _) => (State::Inactive, None),
         };
         if next != self.state {
             self.state = next;
             self.since = now;
+            self.since_scored = scored;
         }
         t
     }
@@ -495,43 +518,73 @@ mod tests {
     }
 
     #[test]
+    fn for_segments_counts_newly_scored_segments_and_is_the_default() {
+        let m = |high: f64| Some(Measured { value: high - 1.0, low: high - 2.0, high, segments: 500, statistic: None });
+        let plain = entry("name = \"f\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 45").check(0).unwrap();
+        assert_eq!((plain.for_seconds, plain.for_segments), (DEFAULT_FOR_SECONDS, DEFAULT_FOR_SEGMENTS), "the default waits for segments");
+        let timed = entry("name = \"f\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 45\nfor_seconds = 30").check(0).unwrap();
+        assert_eq!((timed.for_seconds, timed.for_segments), (30, 0), "only for_seconds: time alone");
+        let decline = entry("name = \"f\"\nsession = \"s\"\nwhen = \"decline\"\npoints = 2").check(0).unwrap();
+        assert_eq!((decline.for_seconds, decline.for_segments), (0, 0), "decline: its test is the wait");
+        let both = entry("name = \"f\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 45\nfor_seconds = 10\nfor_segments = 100").check(0).unwrap();
+        let mut t = Tracker::new(0);
+        assert_eq!(t.step(&plain, m(44.0), 0, 1_000), None);
+        assert_eq!(t.state, State::Pending);
+        assert_eq!(t.step(&plain, m(44.0), 3600, 1_199), None, "199 segments are not 200, however long it held");
+        assert_eq!(t.step(&plain, m(44.0), 3601, 1_200), Some(Transition::Fired));
+        let mut t = Tracker::new(0);
+        t.step(&both, m(44.0), 0, 0);
+        assert_eq!(t.step(&both, m(44.0), 5, 500), None, "segments enough, 5 s are not 10");
+        assert_eq!(t.step(&both, m(44.0), 10, 99), None, "10 s, but 99 segments");
+        assert_eq!(t.step(&both, m(44.0), 10, 100), Some(Transition::Fired));
+        // A pending alert whose condition lapses starts counting again.
+        let mut t = Tracker::new(0);
+        t.step(&plain, m(44.0), 0, 0);
+        t.step(&plain, m(46.0), 1, 150);
+        assert_eq!(t.state, State::Inactive);
+        t.step(&plain, m(44.0), 2, 160);
+        assert_eq!(t.step(&plain, m(44.0), 3, 300), None, "140 segments since it held again");
+        assert_eq!(t.step(&plain, m(44.0), 4, 360), Some(Transition::Fired));
+    }
+
+    #[test]
     fn states_follow_for_duration_and_hysteresis() {
         let r = below(45.0, 30);
         let mut t = Tracker::new(0);
         // A score whose interval still reaches above the threshold does not count.
-        assert_eq!(t.step(&r, m(46.0, 500), 0), None);
+        assert_eq!(t.step(&r, m(46.0, 500), 0, 0), None);
         assert_eq!(t.state, State::Inactive);
         // Below, but too few segments: nothing.
-        assert_eq!(t.step(&r, m(40.0, 99), 5), None);
+        assert_eq!(t.step(&r, m(40.0, 99), 5, 0), None);
         assert_eq!(t.state, State::Inactive);
-        assert_eq!(t.step(&r, m(44.0, 500), 10), None);
+        assert_eq!(t.step(&r, m(44.0, 500), 10, 0), None);
         assert_eq!((t.state, t.since), (State::Pending, 10));
         // Back above for one evaluation: pending ends.
-        assert_eq!(t.step(&r, m(45.2, 500), 15), None);
+        assert_eq!(t.step(&r, m(45.2, 500), 15, 0), None);
         assert_eq!(t.state, State::Inactive);
-        assert_eq!(t.step(&r, m(44.0, 500), 20), None);
-        assert_eq!(t.step(&r, m(43.0, 500), 49), None, "29 s are not 30");
-        assert_eq!(t.step(&r, m(43.0, 500), 50), Some(Transition::Fired));
+        assert_eq!(t.step(&r, m(44.0, 500), 20, 0), None);
+        assert_eq!(t.step(&r, m(43.0, 500), 49, 0), None, "29 s are not 30");
+        assert_eq!(t.step(&r, m(43.0, 500), 50, 0), Some(Transition::Fired));
         assert_eq!(t.state, State::Firing);
         // Hysteresis: back at 45.5 (< 45 + 1) keeps firing; 46 resolves.
-        assert_eq!(t.step(&r, m(45.5, 500), 55), None);
+        assert_eq!(t.step(&r, m(45.5, 500), 55, 0), None);
         assert_eq!(t.state, State::Firing);
-        assert_eq!(t.step(&r, m(46.0, 500), 60), Some(Transition::Resolved));
+        assert_eq!(t.step(&r, m(46.0, 500), 60, 0), Some(Transition::Resolved));
         assert_eq!((t.state, t.since), (State::Inactive, 60));
         // No interval (or too few segments) resolves a firing alert: nothing to judge by.
         let zero = below(45.0, 0);
         let mut t = Tracker::new(0);
-        assert_eq!(t.step(&zero, m(40.0, 500), 1), Some(Transition::Fired), "for_seconds = 0 fires at once");
-        assert_eq!(t.step(&zero, None, 2), Some(Transition::Resolved));
+        assert_eq!(t.step(&zero, m(40.0, 500), 1, 0), Some(Transition::Fired), "for_seconds = 0 fires at once");
+        assert_eq!(t.step(&zero, None, 2, 0), Some(Transition::Resolved));
     }
 
     #[test]
     fn a_drop_is_judged_on_the_difference_interval() {
         let r = entry("name = \"vs-prod\"\nsession = \"c\"\nwhen = \"drop\"\nbaseline = \"p\"\npoints = 2\nfor_seconds = 0\nmin_segments = 1\nclear_margin = 0.5").check(0).unwrap();
         let mut t = Tracker::new(0);
-        assert_eq!(t.step(&r, m(-1.9, 300), 1), None, "upper bound -1.9 is not below -2");
-        assert_eq!(t.step(&r, m(-2.1, 300), 2), Some(Transition::Fired));
-        assert_eq!(t.step(&r, m(-1.6, 300), 3), None, "-1.6 < -2 + 0.5: still firing");
-        assert_eq!(t.step(&r, m(-1.5, 300), 4), Some(Transition::Resolved));
+        assert_eq!(t.step(&r, m(-1.9, 300), 1, 0), None, "upper bound -1.9 is not below -2");
+        assert_eq!(t.step(&r, m(-2.1, 300), 2, 0), Some(Transition::Fired));
+        assert_eq!(t.step(&r, m(-1.6, 300), 3, 0), None, "-1.6 < -2 + 0.5: still firing");
+        assert_eq!(t.step(&r, m(-1.5, 300), 4, 0), Some(Transition::Resolved));
     }
 }

@@ -123,7 +123,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     for al in &r.alerts {
         let measured = match (al.value, al.low, al.high) {
             (Some(v), Some(lo), Some(hi)) => {
-                let test = al.statistic.map_or_else(String::new, |s| format!(", test statistic {s:.2}"));
+                let test = al.statistic.map_or_else(String::new, |s| format!(", test statistic {s:.2} of its limit"));
                 format!("{v:.2} ({lo:.2} .. {hi:.2}, {} segments{test})", al.segments)
             }
             _ => "nothing to judge by yet".to_owned(),

@@ -155,7 +155,8 @@ pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, St
             let key = (rule.name.clone(), spec.name.clone());
             let mut p = trackers.remove(&key).unwrap_or_else(|| Pair::new(now));
             let m = measure(state, rule, &session, &mut p, now);
-            let change = p.tracker.step(rule, m, now);
+            let scored = session.state().cumulative.segments;
+            let change = p.tracker.step(rule, m, now, scored);
             if let Some(change) = change {
                 log_transition(rule, &spec.name, change, m);
             }

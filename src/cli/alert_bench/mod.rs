@@ -20,7 +20,7 @@ use self::sim::{Deployment, Systems, CANDIDATE, PRODUCTION};
 use super::bench::{DEFAULT_BENCH_TOKENS, DEFAULT_BENCH_VOCAB};
 use super::demo::corpus::{Noise, CORPUS_NOISE};
 use super::{default_threads, CliError};
-use crate::alerts::rules::{check_rules, Rule, RuleEntry, DEFAULT_EVAL_SECONDS, DEFAULT_FOR_SECONDS, DEFAULT_MIN_SEGMENTS};
+use crate::alerts::rules::{check_rules, Rule, RuleEntry, DEFAULT_EVAL_SECONDS, DEFAULT_FOR_SECONDS, DEFAULT_FOR_SEGMENTS, DEFAULT_MIN_SEGMENTS};
 use crate::alerts::shift::BASELINE_CHUNKS;
 use crate::metric::resample::DAEMON_RESAMPLES;
 use crate::rng::SplitMix64;
@@ -46,7 +46,7 @@ pub const DEFAULT_REF_ITEMS: usize = 50_000;
 pub const DEFAULT_CALIBRATION_SEGMENTS: usize = 100_000;
 /// Stable segments every trial starts with at least: the `recent` window full, and the
 /// `decline` test's baseline learned (its chunks of `min_segments`) with chunks to spare.
-pub const WARMUP_SEGMENTS: u64 = 6_000;
+pub const WARMUP_SEGMENTS: u64 = 14_000;
 /// The switch falls uniformly within this many segments after the warm-up, so that it meets
 /// the rules in every phase of their windows and chunks.
 pub const SWITCH_SPREAD: u64 = 4_000;
@@ -71,7 +71,8 @@ and, in the trials, a degraded one after a switch. Both score the same randomly 
 each position. Every evaluation period the segments that arrived (--rate segments/s times the \
 default 5 s period: 50 segments at the default 10/s) are scored by the sessions and applied as \
 one batch with their replicate sums, and the daemon's own evaluator judges every rule; a rule's \
-for-duration (default 60 s) is thus 12 evaluations, 600 segments at the default rate.
+for-duration (default: 200 segments scored while the condition holds, for below and drop; \
+decline rules wait for nothing more than their test) is thus 4 evaluations at the default rate.
   The rules, all with default keys, each set for a drop of P points (--points, default 1,2): \
 below (threshold = the stable system's BLEU minus P), drop (points = P, baseline session \
 production), decline (points = P).
@@ -82,7 +83,7 @@ actually achieved is measured on an independent sample and printed.
 What is measured:
   stable run: --segments segments (default 10,000,000) of the stable system, split over the \
 threads as independent streams; false alerts = times a rule started firing, per million segments.
-  trials: --trials per drop size (default 50); the switch falls after 6,000 to 10,000 stable \
+  trials: --trials per drop size (default 50); the switch falls after 14,000 to 18,000 stable \
 segments; delay = segments from the switch to the first firing (a trial where the rule fired \
 before the switch is left out and counted); trials watch at most --cap segments (default \
 20,000) after the switch. Median and 90th percentile, a trial that never fired counting as longer \
@@ -447,8 +448,10 @@ pub(super) fn run(a: AlertBenchArgs) -> Result<(), CliError> {
             "evaluation_seconds": DEFAULT_EVAL_SECONDS,
             "segments_per_evaluation": per_evaluation,
             "for_seconds": DEFAULT_FOR_SECONDS,
-            "for_evaluations": DEFAULT_FOR_SECONDS.div_ceil(DEFAULT_EVAL_SECONDS),
-            "for_segments": DEFAULT_FOR_SECONDS.div_ceil(DEFAULT_EVAL_SECONDS) * per_evaluation,
+            "for_segments": DEFAULT_FOR_SEGMENTS,
+            "decline_target_run_chunks": crate::alerts::shift::TARGET_RUN_CHUNKS,
+            "decline_baseline_chunks": BASELINE_CHUNKS,
+            "decline_lag_chunks": crate::alerts::shift::LAG_CHUNKS,
             "min_segments": DEFAULT_MIN_SEGMENTS,
             "recent_window": DEFAULT_WINDOW,
             "resamples": DAEMON_RESAMPLES,
@@ -487,8 +490,8 @@ fn human(f: &serde_json::Value) -> String {
     let sy = &f["systems"];
     let num = |v: &serde_json::Value| v.as_f64().unwrap_or(f64::NAN);
     let mut o = format!(
-        "mtgauge alert-bench: {} stable segments; {} trials per drop; {} segments/s, one evaluation every {} s = every {} segments; for-duration {} s = {} evaluations = {} segments\n",
-        s["stable_segments"], s["trials_per_drop"], s["rate_segments_per_second"], s["evaluation_seconds"], s["segments_per_evaluation"], s["for_seconds"], s["for_evaluations"], s["for_segments"]
+        "mtgauge alert-bench: {} stable segments; {} trials per drop; {} segments/s, one evaluation every {} s = every {} segments; for-duration {} segments (below, drop), {} s; decline: limit for an in-control run of {:e} chunks, baseline {} chunks, {} chunks old\n",
+        s["stable_segments"], s["trials_per_drop"], s["rate_segments_per_second"], s["evaluation_seconds"], s["segments_per_evaluation"], s["for_segments"], s["for_seconds"], s["decline_target_run_chunks"].as_f64().unwrap_or(f64::NAN), s["decline_baseline_chunks"], s["decline_lag_chunks"]
     );
     o += &format!(
         "  sessions: recent window {}, {} replicates, BLEU; rules at their defaults (min_segments {}); reference set of {} generated items\n",
