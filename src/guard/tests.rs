@@ -235,6 +235,26 @@ proptest! {
     }
 
     #[test]
+    fn one_pass_check_equals_the_guards_one_by_one(
+        src in any_text(),
+        hyp in prop_oneof![any_text(), any::<String>(), "((Fähre|паром|渡轮|abc) ){0,12}"],
+        target in prop_oneof![Just("de"), Just("ru"), Just("zh"), Just("ar"), Just("ja")],
+        order in 1usize..=8,
+    ) {
+        // check() reads each text once; check_by_guard() runs each documented rule on its own.
+        let mut c = cfg(target);
+        c.repeat_order = order;
+        c.copy_order = order;
+        c.repeat_count = 2;
+        c.repeat_run = 2;
+        let mut s = GuardScratch::default();
+        prop_assert_eq!(check(&c, &src, &hyp, &mut s), check_by_guard(&c, &src, &hyp, &mut GuardScratch::default()));
+        // And with the source copied, which takes the copy chrF path.
+        let near = format!("{hyp} {src}");
+        prop_assert_eq!(check(&c, &src, &near, &mut s), check_by_guard(&c, &src, &near, &mut GuardScratch::default()));
+    }
+
+    #[test]
     fn copy_bound_never_below_the_exact_chrf(src in any_text(), hyp in any_text(), n in 1usize..=10) {
         let mut s = GuardScratch::default();
         let (hl, sl) = (fill_chars(&hyp, n, &mut s.hyp_chars), fill_chars(&src, n, &mut s.src_chars));
