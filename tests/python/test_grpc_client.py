@@ -754,6 +754,27 @@ def test_load_reports_its_config_line(mtgauge, server, serving):
                                  "chrf++:chars=6,words=1,beta=2"), figures["config"]
 
 
+def test_load_with_guards_checks_every_item(mtgauge, server, serving):
+    """`mtgauge load --guards` uploads sources, so the daemon's guards check the items it
+    sends (all acknowledged, none flagged as empty or copied: the sources are other generated
+    sentences); without --guards nothing is checked."""
+    def run(extra):
+        proc = mtgauge.run(["load", "--server", f"http://{server.grpc_addr}", "--streams", "2",
+                            "--batch", "50", "--seconds", "1", "--segments", "500", "--json"] + extra,
+                           timeout=120)
+        assert proc.returncode == 0, proc.stderr.decode("utf-8", "replace")[-2000:]
+        return json.loads(proc.stdout.decode("utf-8"))
+    off = run([])
+    assert off["guards_on"] is False and off["guards"]["checked"] == 0, off["guards"]
+    on = run(["--guards", "--target-language", "de", "--guard-setting", "language-id=off"])
+    g = on["guards"]
+    assert on["guards_on"] is True and on["guard_settings"] == ["language-id=off"]
+    assert g["checked"] > 0 and g["target_language"] == "de", g
+    assert g["by_guard"]["empty"]["flagged"] == 0 and g["by_guard"]["copy"]["flagged"] == 0, g
+    # Generated words are Latin letters: the script guard passes them all.
+    assert g["by_guard"]["script"]["flagged"] == 0 and g["by_guard"]["script"]["undecided"] == 0, g
+
+
 # ---------------------------------------------------------------------------
 # intervals and comparisons through the API (the expected numbers come from the binary's own
 # offline `score --interval`: the same Poisson weights keyed by segment id)
