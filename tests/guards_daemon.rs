@@ -277,3 +277,55 @@ async fn reference_free_session_checks_items_with_a_source() {
         assert_eq!(after.target_language, "de");
     }
 }
+
+/// A `flag-rate` alert rule on a real server: it fires on the session whose copy rate's Wilson
+/// lower bound is above the threshold, and stays inactive on the clean one; the measurement is
+/// the rate and its Wilson interval in percent.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn flag_rate_rule_fires_on_the_session_copying_its_sources() {
+    let dir = temp_dir("guards-alert");
+    let config = dir.join("mtgauge.toml");
+    std::fs::write(
+        &config,
+        "alert_eval_seconds = 1\n\n[[alert]]\nname = \"copies\"\nlabels = { lang = \"en-de\" }\nwhen = \"flag-rate\"\nguard = \"copy\"\nthreshold = 5\nmin_segments = 30\nfor_seconds = 0\n",
+    )
+    .unwrap();
+    let server = Server::start(&["--config", config.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let segs = demo_segments();
+    for (name, copy_every) in [("copying", 2usize), ("clean", 0)] {
+        let create = pb::CreateSessionRequest { name: name.into(), config: Some(config_to_pb(&Default::default())), target_language: "de".into(), labels: [("lang".to_owned(), "en-de".to_owned())].into(), ..Default::default() };
+        SessionsClient::new(ch.clone()).create(create).await.unwrap();
+        // 40 items: in "copying" every second one is its source (20 of 40: 50%).
+        let items = segs
+            .iter()
+            .take(40)
+            .enumerate()
+            .map(|(k, s)| {
+                let hyp = if copy_every > 0 && k % copy_every == 0 { s.source_text().to_owned() } else { s.refs[0].clone() };
+                pb::ScoreItem { key: Some(pb::score_item::Key::Source(s.source_text().to_owned())), hypothesis: hyp }
+            })
+            .collect();
+        let ack = ScoringClient::new(ch.clone()).submit(pb::ScoreBatch { session: name.into(), producer: "p".into(), sequence: 1, items, ..Default::default() }).await.unwrap().into_inner();
+        assert_eq!(tally(&ack.guards).flagged_by(Guard::Copy), if copy_every > 0 { 20 } else { 0 }, "{name}");
+    }
+    let alert_of = |r: pb::ScoresReport| r.alerts.into_iter().find(|a| a.rule == "copies");
+    // Bounded poll: the evaluator runs every second.
+    let mut firing = None;
+    for _ in 0..100 {
+        let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "copying".into(), ..Default::default() }).await.unwrap().into_inner();
+        if let Some(a) = alert_of(r).filter(|a| a.state == "firing") {
+            firing = Some(a);
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    let a = firing.expect("the copy-rate alert fires on the copying session");
+    let (lo, hi) = mtgauge::alerts::rules::wilson(20, 40, mtgauge::alerts::rules::WILSON_Z95).unwrap();
+    assert_eq!(a.value, Some(50.0));
+    assert!((a.low.unwrap() - 100.0 * lo).abs() < 1e-9 && (a.high.unwrap() - 100.0 * hi).abs() < 1e-9, "{a:?}");
+    assert!(a.condition.contains("copy guard"), "{}", a.condition);
+    let clean = alert_of(ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "clean".into(), ..Default::default() }).await.unwrap().into_inner()).expect("the rule watches the clean session too");
+    assert_eq!(clean.state, "inactive");
+    assert_eq!(clean.value, Some(0.0), "judged (40 decided items), rate 0");
+}
