@@ -398,6 +398,19 @@ fn live_demo_shows_the_degrading_model() {
         })
         .collect();
     assert!(ranges.iter().all(|(lo, hi)| lo < hi), "a recent interval on every row: {ranges:?}");
+    // Some outputs come back broken: each session's summary shows the guards' counts, and each
+    // kind of broken output was flagged (at 1-8% of some 900 items per session, a kind left
+    // out of both sessions has a chance of about e^-13).
+    assert_eq!(text.matches("items checked against their sources, target language de").count(), 2, "{text}");
+    for guard in ["empty", "copy", "repetition", "language"] {
+        let flagged: u64 = text
+            .lines()
+            .map(|l| l.split_whitespace().collect::<Vec<_>>())
+            .filter(|w| w.len() >= 3 && w[0] == guard && w[2] == "flagged")
+            .map(|w| w[1].parse::<u64>().unwrap())
+            .sum();
+        assert!(flagged > 0, "no {guard} flags in the demo: {text}");
+    }
 }
 
 /// `demo --linger`: the status page's URL is printed at the start, and after the run the

@@ -190,3 +190,137 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
     let reset = ScoringClient::new(ch).get_scores(pb::GetScoresRequest { session: "g".into(), ..Default::default() }).await.unwrap().into_inner();
     assert_eq!(tally(&reset.guards), GuardCounts::default());
 }
+
+/// A reference-free session: declared with its target language and no reference set; every
+/// item is unknown (nothing to score against) and those with a source are checked, through the
+/// API, `send`, `status` and a restart.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn reference_free_session_checks_items_with_a_source() {
+    let dir = temp_dir("guards-free");
+    let data = dir.join("data");
+    let data_s = data.to_str().unwrap().to_owned();
+    let server = Server::start(&["--data-dir", &data_s]);
+    let ch = server.wait_serving().await;
+    let mut sessions = SessionsClient::new(ch.clone());
+    let req = |name: &str, lang: &str| pb::CreateSessionRequest { name: name.into(), config: Some(config_to_pb(&Default::default())), target_language: lang.into(), ..Default::default() };
+    // Without references the target language is required (the guards are all it has).
+    let e = sessions.create(req("free", "")).await.unwrap_err();
+    assert_eq!(e.code(), Code::InvalidArgument);
+    assert!(e.message().contains("target language"), "{}", e.message());
+    let info = sessions.create(req("free", "de")).await.unwrap().into_inner();
+    assert_eq!((info.refset.as_str(), info.target_language.as_str()), ("", "de"));
+
+    // The same pathologies as above, every item keyed by its source; no learned length ratio
+    // (no references): the guards' defaults.
+    let items: Vec<(pb::ScoreItem, String)> = items()
+        .into_iter()
+        .filter(|(_, src)| !src.is_empty())
+        .map(|(it, src)| (pb::ScoreItem { key: Some(pb::score_item::Key::Source(src.clone())), hypothesis: it.hypothesis }, src))
+        .collect();
+    let c = GuardConfig::default().with_target("de").unwrap();
+    let mut want = GuardCounts::default();
+    let mut scratch = GuardScratch::default();
+    for (it, src) in &items {
+        want.add(check(&c, src, &it.hypothesis, &mut scratch));
+    }
+    assert_eq!(want.checked, 41);
+    assert_eq!((want.flagged_by(Guard::Empty), want.flagged_by(Guard::Copy), want.flagged_by(Guard::Script)), (8, 8, 9));
+    let batch = pb::ScoreBatch { session: "free".into(), producer: "p".into(), sequence: 1, items: items.iter().map(|(it, _)| it.clone()).collect(), want_segment_scores: true, ..Default::default() };
+    let ack = ScoringClient::new(ch.clone()).submit(batch).await.unwrap().into_inner();
+    assert_eq!((ack.scored, ack.unknown), (0, 41));
+    assert_eq!(tally(&ack.guards), want);
+    assert_eq!(ack.guard_verdicts.len(), 41);
+
+    // `send` creates one from files (no --refset) and reports the guards' counts.
+    let (src_path, hyp_path) = (dir.join("src.txt"), dir.join("hyp.txt"));
+    std::fs::write(&src_path, items.iter().map(|(_, s)| format!("{s}\n")).collect::<String>()).unwrap();
+    // Empty hypotheses are lines too; the file keeps one line per item.
+    std::fs::write(&hyp_path, items.iter().map(|(it, _)| format!("{}\n", it.hypothesis)).collect::<String>()).unwrap();
+    let bin = env!("CARGO_BIN_EXE_mtgauge");
+    let p = |x: &std::path::Path| x.to_str().unwrap().to_owned();
+    let send = |extra: &[&str]| {
+        let mut args = vec!["send".to_owned(), "--server".into(), server.grpc.clone(), "--session".into(), "free2".into(), "--hyp".into(), p(&hyp_path), "--source".into(), p(&src_path), "--json".into()];
+        args.extend(extra.iter().map(|s| s.to_string()));
+        std::process::Command::new(bin).args(&args).output().unwrap()
+    };
+    let refused = send(&["--create"]);
+    assert_eq!(refused.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&refused.stderr).contains("--target-language"), "{}", String::from_utf8_lossy(&refused.stderr));
+    let out = send(&["--create", "--target-language", "de"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let sent: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!((sent["scored"].as_u64(), sent["unknown"].as_u64()), (Some(0), Some(41)));
+    assert_eq!(sent["guards"]["checked"], 41);
+    for g in Guard::ALL {
+        assert_eq!(sent["guards"]["by_guard"][g.name()]["flagged"], want.flagged_by(g), "{g}");
+    }
+    let status = std::process::Command::new(bin).args(["status", "--server", &server.grpc, "--session", "free2", "--json"]).output().unwrap();
+    assert!(status.status.success(), "{}", String::from_utf8_lossy(&status.stderr));
+    let st: serde_json::Value = serde_json::from_slice(&status.stdout).unwrap();
+    assert_eq!(st["guards"]["checked"], 41);
+    assert_eq!(st["guards"]["target_language"], "de");
+    assert_eq!(st["guards"]["by_guard"]["repetition"]["flagged"], want.flagged_by(Guard::Repetition));
+
+    // Durable like any session: after a restart (the empty set is kept for it).
+    let mut server = server;
+    assert!(server.terminate().success());
+    let again = Server::start(&["--data-dir", &data_s]);
+    let ch = again.wait_serving().await;
+    for name in ["free", "free2"] {
+        let after = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: name.into(), ..Default::default() }).await.unwrap().into_inner();
+        assert_eq!(tally(&after.guards), want, "{name}");
+        assert_eq!(after.target_language, "de");
+    }
+}
+
+/// A `flag-rate` alert rule on a real server: it fires on the session whose copy rate's Wilson
+/// lower bound is above the threshold, and stays inactive on the clean one; the measurement is
+/// the rate and its Wilson interval in percent.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn flag_rate_rule_fires_on_the_session_copying_its_sources() {
+    let dir = temp_dir("guards-alert");
+    let config = dir.join("mtgauge.toml");
+    std::fs::write(
+        &config,
+        "alert_eval_seconds = 1\n\n[[alert]]\nname = \"copies\"\nlabels = { lang = \"en-de\" }\nwhen = \"flag-rate\"\nguard = \"copy\"\nthreshold = 5\nmin_segments = 30\nfor_seconds = 0\n",
+    )
+    .unwrap();
+    let server = Server::start(&["--config", config.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let segs = demo_segments();
+    for (name, copy_every) in [("copying", 2usize), ("clean", 0)] {
+        let create = pb::CreateSessionRequest { name: name.into(), config: Some(config_to_pb(&Default::default())), target_language: "de".into(), labels: [("lang".to_owned(), "en-de".to_owned())].into(), ..Default::default() };
+        SessionsClient::new(ch.clone()).create(create).await.unwrap();
+        // 40 items: in "copying" every second one is its source (20 of 40: 50%).
+        let items = segs
+            .iter()
+            .take(40)
+            .enumerate()
+            .map(|(k, s)| {
+                let hyp = if copy_every > 0 && k % copy_every == 0 { s.source_text().to_owned() } else { s.refs[0].clone() };
+                pb::ScoreItem { key: Some(pb::score_item::Key::Source(s.source_text().to_owned())), hypothesis: hyp }
+            })
+            .collect();
+        let ack = ScoringClient::new(ch.clone()).submit(pb::ScoreBatch { session: name.into(), producer: "p".into(), sequence: 1, items, ..Default::default() }).await.unwrap().into_inner();
+        assert_eq!(tally(&ack.guards).flagged_by(Guard::Copy), if copy_every > 0 { 20 } else { 0 }, "{name}");
+    }
+    let alert_of = |r: pb::ScoresReport| r.alerts.into_iter().find(|a| a.rule == "copies");
+    // Bounded poll: the evaluator runs every second.
+    let mut firing = None;
+    for _ in 0..100 {
+        let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "copying".into(), ..Default::default() }).await.unwrap().into_inner();
+        if let Some(a) = alert_of(r).filter(|a| a.state == "firing") {
+            firing = Some(a);
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    let a = firing.expect("the copy-rate alert fires on the copying session");
+    let (lo, hi) = mtgauge::alerts::rules::wilson(20, 40, mtgauge::alerts::rules::WILSON_Z95).unwrap();
+    assert_eq!(a.value, Some(50.0));
+    assert!((a.low.unwrap() - 100.0 * lo).abs() < 1e-9 && (a.high.unwrap() - 100.0 * hi).abs() < 1e-9, "{a:?}");
+    assert!(a.condition.contains("copy guard"), "{}", a.condition);
+    let clean = alert_of(ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: "clean".into(), ..Default::default() }).await.unwrap().into_inner()).expect("the rule watches the clean session too");
+    assert_eq!(clean.state, "inactive");
+    assert_eq!(clean.value, Some(0.0), "judged (40 decided items), rate 0");
+}

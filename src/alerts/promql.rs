@@ -64,6 +64,7 @@ pub struct Rendered {
 pub fn daemon_only(rule: &Rule) -> Option<&'static str> {
     match (&rule.condition, rule.window) {
         (Condition::Decline { .. }, _) => Some("a `decline` rule is a sequential test over the stream of chunks: the daemon evaluates it, Prometheus cannot"),
+        (Condition::FlagRate { .. }, _) => Some("a `flag-rate` rule's Wilson bound comes from the guard counts the daemon keeps: the daemon evaluates it"),
         (_, Window::Recent) => Some("the `recent` window is the session's last segments by count, which Prometheus cannot select: use `all` or a time window such as 15m"),
         _ => None,
     }
@@ -273,7 +274,7 @@ fn bound(out: &mut String, rule: &Rule, q: f64) {
             let base = selector(&[format!("session={}", promql_string(baseline)), metric_part]);
             format!("quantile by ({by}) ({q},\n    {rec}{}\n  - ignoring (session) group_left\n    {rec}{base}\n)", selector(&own))
         }
-        Condition::Decline { .. } => unreachable!("decline rules are not rendered"),
+        Condition::Decline { .. } | Condition::FlagRate { .. } => unreachable!("decline and flag-rate rules are not rendered"),
     };
     let expr = format!("{expr}{}", label_filter(rule));
     record(out, BOUND_RECORD, &expr, &[("rule", &rule.name)]);
@@ -293,7 +294,7 @@ fn alert(out: &mut String, rule: &Rule) {
     let limit = match &rule.condition {
         Condition::Below { threshold } => *threshold,
         Condition::Drop { points, .. } => -points,
-        Condition::Decline { .. } => unreachable!("decline rules are not rendered"),
+        Condition::Decline { .. } | Condition::FlagRate { .. } => unreachable!("decline and flag-rate rules are not rendered"),
     };
     let b = format!("max by (session) ({BOUND_RECORD}{{rule={}}})", promql_string(&rule.name));
     let firing = format!("ALERTS{{alertname={}, alertstate=\"firing\"}}", promql_string(&rule.name));

@@ -15,6 +15,11 @@
 //!   paired-bootstrap interval of (session - baseline), over the segments both `recent` windows
 //!   hold, lies below `-points`: the session is worse by at least `points` beyond resampling
 //!   noise.
+//! - `flag-rate`: the share of the items a reference-free `guard` decided on that it flagged,
+//!   since the session was created or reset: the lower bound of its 95% Wilson score interval
+//!   (Wilson 1927) lies above `threshold` (a percentage). A rate above the threshold by chance,
+//!   on a handful of items, does not fire; `min_segments` counts the guard's decided items.
+//!   Daemon only (`window` is `all`, the counts the daemon keeps).
 //!
 //! # Windows
 //! What `below` and `drop` judge: `recent` (default), the session's recent window of the last
@@ -49,7 +54,8 @@ pub const DEFAULT_FOR_SECONDS: u64 = 0;
 /// rule sets `for_segments` or `for_seconds` (a rule that sets only `for_seconds` waits for
 /// time alone). Counted in segments, the delay a rule adds does not grow with traffic, and it
 /// is what the detection benchmark measures (`mtgauge alert-bench`). `decline` rules wait for
-/// nothing more by default: their sequential test is itself the accumulation of evidence.
+/// nothing more by default: their sequential test is itself the accumulation of evidence; nor do
+/// `flag-rate` rules, whose Wilson bound already weighs how many items were checked.
 pub const DEFAULT_FOR_SEGMENTS: u64 = 200;
 /// Points past the threshold a firing alert's bound must come back by to resolve, unless the
 /// rule sets `clear_margin`.
@@ -67,10 +73,26 @@ pub const MAX_RULES: usize = 256;
 /// Labels every alert carries, set by mtgauge (not by `extra_labels`).
 pub const ALERT_LABELS: [&str; 4] = ["alertname", "session", "severity", "metric"];
 /// Keys of one `[[alert]]` entry.
-pub const RULE_KEYS: [&str; 16] = [
+pub const RULE_KEYS: [&str; 17] = [
     "name", "session", "labels", "metric", "window", "when", "threshold", "baseline", "points", "min_segments", "for_seconds", "for_segments", "clear_margin", "severity",
-    "extra_labels", "annotations",
+    "extra_labels", "annotations", "guard",
 ];
+/// Standard normal quantile of the two-sided 95% intervals of `flag-rate` rules.
+pub const WILSON_Z95: f64 = 1.959_963_984_540_054;
+
+/// The Wilson (1927) score interval of a binomial proportion with `successes` of `n` trials
+/// and normal quantile `z`: (low, high), both in 0..=1; None when `n` is 0.
+pub fn wilson(successes: u64, n: u64, z: f64) -> Option<(f64, f64)> {
+    if n == 0 {
+        return None;
+    }
+    let (nf, p) = (n as f64, successes.min(n) as f64 / n as f64);
+    let z2 = z * z;
+    let denom = 1.0 + z2 / nf;
+    let center = (p + z2 / (2.0 * nf)) / denom;
+    let half = z / denom * (p * (1.0 - p) / nf + z2 / (4.0 * nf * nf)).sqrt();
+    Some(((center - half).max(0.0), (center + half).min(1.0)))
+}
 
 /// One `[[alert]]` entry as written.
 #[derive(Debug, Clone, Default, Deserialize)]
@@ -96,6 +118,8 @@ pub struct RuleEntry {
     /// Extra labels of the alert (`[alert.extra_labels]`).
     #[serde(default)]
     extra_labels: BTreeMap<String, String>,
+    /// `flag-rate` rules: the guard whose rate is judged.
+    guard: Option<String>,
 }
 
 /// The segments a `below` or `drop` rule judges.
@@ -185,6 +209,14 @@ pub enum Condition {
         /// Points of drop, at least.
         points: f64,
     },
+    /// The Wilson interval of a guard's flag rate entirely above `threshold` percent.
+    #[serde(rename = "flag-rate")]
+    FlagRate {
+        /// The guard's name (one of [`crate::guard::Guard::ALL`]).
+        guard: String,
+        /// Rate, in percent.
+        threshold: f64,
+    },
 }
 
 /// A checked rule.
@@ -244,8 +276,28 @@ impl RuleEntry {
         }
         let m = self.metric.as_deref().unwrap_or("bleu");
         let metric = Metric::ALL.into_iter().find(|x| x.name() == m).ok_or_else(|| err(format!("metric '{m}' is not one of bleu, chrf, chrf++")))?;
-        let window = Window::parse(self.window.as_deref().unwrap_or("recent")).map_err(err)?;
+        let window = Window::parse(self.window.as_deref().unwrap_or(if self.when.as_deref() == Some("flag-rate") { "all" } else { "recent" })).map_err(err)?;
+        if self.guard.is_some() && self.when.as_deref() != Some("flag-rate") {
+            return Err(err("`guard` belongs to `when = \"flag-rate\"`".into()));
+        }
         let condition = match self.when.as_deref() {
+            Some("flag-rate") => {
+                let guard = self.guard.clone().ok_or_else(|| err("`when = \"flag-rate\"` needs `guard` (empty, copy, length, repetition, script or language)".into()))?;
+                if !crate::guard::Guard::ALL.iter().any(|g| g.name() == guard) {
+                    return Err(err(format!("guard '{guard}' is not one of empty, copy, length, repetition, script, language")));
+                }
+                let threshold = self.threshold.ok_or_else(|| err("`when = \"flag-rate\"` needs `threshold` (a rate in percent)".into()))?;
+                if !(0.0..100.0).contains(&threshold) {
+                    return Err(err(format!("threshold {threshold} is not a rate in percent from 0 to under 100")));
+                }
+                if self.baseline.is_some() || self.points.is_some() || self.metric.is_some() {
+                    return Err(err("`baseline`, `points` and `metric` do not belong to `when = \"flag-rate\"`".into()));
+                }
+                if window != Window::All {
+                    return Err(err("a `flag-rate` rule judges the guard's counts since start: `window` can only be `all`".into()));
+                }
+                Condition::FlagRate { guard, threshold }
+            }
             Some("below") => {
                 let threshold = self.threshold.ok_or_else(|| err("`when = \"below\"` needs `threshold`".into()))?;
                 if !(0.0..=100.0).contains(&threshold) {
@@ -280,8 +332,8 @@ impl RuleEntry {
                 }
                 Condition::Decline { points }
             }
-            Some(w) => return Err(err(format!("when '{w}' is not one of below, drop, decline"))),
-            None => return Err(err("`when` is missing: below, drop or decline".into())),
+            Some(w) => return Err(err(format!("when '{w}' is not one of below, drop, decline, flag-rate"))),
+            None => return Err(err("`when` is missing: below, drop, decline or flag-rate".into())),
         };
         crate::session::check_labels(&self.labels).map_err(|e| err(format!("labels: {e}")))?;
         for (what, map) in [("extra_labels", &self.extra_labels), ("annotations", &self.annotations)] {
@@ -298,7 +350,7 @@ impl RuleEntry {
         }
         let for_segments = match (self.for_segments, self.for_seconds, &condition) {
             (Some(n), _, _) => n,
-            (None, Some(_), _) | (None, None, Condition::Decline { .. }) => 0,
+            (None, Some(_), _) | (None, None, Condition::Decline { .. } | Condition::FlagRate { .. }) => 0,
             (None, None, _) => DEFAULT_FOR_SEGMENTS,
         };
         Ok(Rule {
@@ -347,6 +399,7 @@ impl Rule {
                 self.metric.name(),
                 self.min_segments
             ),
+            Condition::FlagRate { guard, threshold } => format!("share of items the {guard} guard flags since start: 95% Wilson interval entirely above {threshold}%"),
         }
     }
 
@@ -366,6 +419,8 @@ impl Rule {
                 let s = m.statistic.unwrap_or(0.0);
                 return (s > 1.0, s == 0.0);
             }
+            // Above, not below: the lower bound against the threshold.
+            Condition::FlagRate { threshold, .. } => return (m.low > *threshold, m.low <= threshold - self.clear_margin),
         };
         (m.high < limit, m.high >= limit + self.clear_margin)
     }
@@ -545,6 +600,62 @@ mod tests {
         t.step(&plain, m(44.0), 2, 160);
         assert_eq!(t.step(&plain, m(44.0), 3, 300), None, "140 segments since it held again");
         assert_eq!(t.step(&plain, m(44.0), 4, 360), Some(Transition::Fired));
+    }
+
+    #[test]
+    fn wilson_interval_by_hand() {
+        // 5 of 10: (0.2366, 0.7634) (Wilson 1927; Newcombe 1998, table I, from memory).
+        let (lo, hi) = wilson(5, 10, WILSON_Z95).unwrap();
+        assert!((lo - 0.2366).abs() < 5e-5 && (hi - 0.7634).abs() < 5e-5, "{lo} {hi}");
+        // 0 of n: the lower bound is 0 and the upper z^2 / (n + z^2) (the formula at p = 0).
+        let (lo, hi) = wilson(0, 20, WILSON_Z95).unwrap();
+        assert_eq!(lo, 0.0);
+        assert!((hi - WILSON_Z95 * WILSON_Z95 / (20.0 + WILSON_Z95 * WILSON_Z95)).abs() < 1e-12);
+        // Symmetric in successes and failures; narrower with more trials; none without trials.
+        let (a, b) = wilson(3, 40, WILSON_Z95).unwrap();
+        let (c, d) = wilson(37, 40, WILSON_Z95).unwrap();
+        assert!((a - (1.0 - d)).abs() < 1e-12 && (b - (1.0 - c)).abs() < 1e-12);
+        let (e, f) = wilson(30, 400, WILSON_Z95).unwrap();
+        assert!(e > a && f < b);
+        assert_eq!(wilson(0, 0, WILSON_Z95), None);
+    }
+
+    #[test]
+    fn flag_rate_rules_check_and_judge_the_lower_bound() {
+        let r = entry("name = \"copies\"\nlabels = { lang = \"en-de\" }\nwhen = \"flag-rate\"\nguard = \"copy\"\nthreshold = 2\nmin_segments = 50\nfor_seconds = 0\nclear_margin = 0.5").check(0).unwrap();
+        assert_eq!((r.condition.clone(), r.window), (Condition::FlagRate { guard: "copy".into(), threshold: 2.0 }, Window::All));
+        assert!(r.describe().contains("copy guard") && r.describe().contains("above 2%"), "{}", r.describe());
+        for (text, want) in [
+            ("when = \"flag-rate\"\nthreshold = 2", "needs `guard`"),
+            ("when = \"flag-rate\"\nguard = \"colour\"\nthreshold = 2", "guard 'colour'"),
+            ("when = \"flag-rate\"\nguard = \"copy\"", "needs `threshold`"),
+            ("when = \"flag-rate\"\nguard = \"copy\"\nthreshold = 100", "percent"),
+            ("when = \"flag-rate\"\nguard = \"copy\"\nthreshold = 2\nwindow = \"15m\"", "can only be `all`"),
+            ("when = \"flag-rate\"\nguard = \"copy\"\nthreshold = 2\nmetric = \"bleu\"", "do not belong"),
+            ("when = \"below\"\nguard = \"copy\"\nthreshold = 2", "`guard` belongs"),
+        ] {
+            let e = entry(&format!("name = \"a\"\nsession = \"s\"\n{text}")).check(0).unwrap_err();
+            assert!(e.to_string().contains(want), "{text}: {e}");
+        }
+        // The measurement as the daemon makes it: rate and Wilson bounds in percent.
+        let measured = |flagged: u64, decided: u64| {
+            let (lo, hi) = wilson(flagged, decided, WILSON_Z95).unwrap();
+            Some(Measured { value: 100.0 * flagged as f64 / decided as f64, low: 100.0 * lo, high: 100.0 * hi, segments: decided, statistic: None })
+        };
+        let mut t = Tracker::new(0);
+        // 2 of 20 (10%, lower bound 2.8%): above the threshold, but fewer items than
+        // min_segments: not judged.
+        assert_eq!(t.step(&r, measured(2, 20), 1, 0), None);
+        // 4 of 100 (4%): the lower bound (1.6%) is under 2%: no alert.
+        assert_eq!(t.step(&r, measured(4, 100), 2, 0), None);
+        assert_eq!(t.state, State::Inactive);
+        // 12 of 200 (6%): lower bound 3.5%, above 2%: fires (for_seconds 0).
+        assert_eq!(t.step(&r, measured(12, 200), 3, 0), Some(Transition::Fired));
+        // 8 of 300 (2.7%, lower bound 1.36%): back under the threshold by more than the
+        // clearing margin (0.5 points): resolves.
+        let lo = wilson(8, 300, WILSON_Z95).unwrap().0 * 100.0;
+        assert!(lo <= 1.5, "{lo}");
+        assert_eq!(t.step(&r, measured(8, 300), 4, 0), Some(Transition::Resolved));
     }
 
     #[test]

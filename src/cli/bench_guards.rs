@@ -90,6 +90,61 @@ pub(super) fn guard_cost() -> Value {
     })
 }
 
+/// Both language identifiers on the demo scenario's texts (German hypotheses, English sources):
+/// microseconds per text and the share of texts each names correctly (whatlang's also the
+/// share it calls reliable, and the share both reliable and correct).
+pub(super) fn identifier_figures() -> Value {
+    let segs = demo_segments();
+    let german: Vec<String> = demo_systems().into_iter().flat_map(|sys| sys.hypotheses).collect();
+    let english: Vec<String> = segs.iter().map(|s| s.source_text().to_owned()).collect();
+    let mut out = serde_json::Map::new();
+    for (name, texts, thorough, quick) in [("german_hypotheses", &german, whatlang::Lang::Deu, whichlang::Lang::Deu), ("english_sources", &english, whatlang::Lang::Eng, whichlang::Lang::Eng)] {
+        let n = texts.len() as f64;
+        let (mut right, mut reliable, mut reliable_right, mut quick_right) = (0usize, 0usize, 0usize, 0usize);
+        for t in texts.iter() {
+            let info = whatlang::detect(t);
+            let ok = info.as_ref().is_some_and(|i| i.lang() == thorough);
+            let sure = info.as_ref().is_some_and(|i| i.is_reliable());
+            right += usize::from(ok);
+            reliable += usize::from(sure);
+            reliable_right += usize::from(ok && sure);
+            quick_right += usize::from(whichlang::detect_language(t) == quick);
+        }
+        let thorough_time = fastest(|| texts.iter().map(|t| whatlang::detect(t).map_or(0, |i| i.lang() as u64)).sum());
+        let quick_time = fastest(|| texts.iter().map(|t| whichlang::detect_language(t) as u64).sum());
+        out.insert(
+            name.to_owned(),
+            json!({
+                "texts": texts.len(),
+                "mean_chars": texts.iter().map(|t| t.chars().count()).sum::<usize>() as f64 / n,
+                "whatlang_0_18_0": { "us_per_text": 1e6 * thorough_time / n, "correct": right as f64 / n, "reliable": reliable as f64 / n, "reliable_and_correct": reliable_right as f64 / n },
+                "whichlang_0_1_1": { "us_per_text": 1e6 * quick_time / n, "correct": quick_right as f64 / n },
+            }),
+        );
+    }
+    Value::Object(out)
+}
+
+/// The human lines of [`identifier_figures`].
+pub(super) fn identifier_lines(f: &Value) -> String {
+    let mut s = String::new();
+    for (name, what) in [("german_hypotheses", "German hypotheses"), ("english_sources", "English sources")] {
+        let g = &f[name];
+        let n = |a: &str, b: &str| g[a][b].as_f64().unwrap_or(f64::NAN);
+        s += &format!(
+            "  language identifiers on the demo's {} {what} ({:.0} characters on average): whatlang 0.18.0 {:.2} us/text, {:.1}% correct ({:.1}% reliable and correct); whichlang 0.1.1 {:.2} us/text, {:.1}% correct\n",
+            g["texts"],
+            g["mean_chars"].as_f64().unwrap_or(f64::NAN),
+            n("whatlang_0_18_0", "us_per_text"),
+            100.0 * n("whatlang_0_18_0", "correct"),
+            100.0 * n("whatlang_0_18_0", "reliable_and_correct"),
+            n("whichlang_0_1_1", "us_per_text"),
+            100.0 * n("whichlang_0_1_1", "correct"),
+        );
+    }
+    s
+}
+
 /// The human line of [`guard_cost`]'s figures.
 pub(super) fn guard_cost_line(g: &Value) -> String {
     let n = |k: &str| g[k].as_f64().unwrap_or(f64::NAN);

@@ -65,6 +65,20 @@ pub struct LoadArgs {
     /// and once without to see their cost).
     #[arg(long, default_value_t = crate::metric::resample::DAEMON_RESAMPLES, value_name = "N")]
     pub resamples: usize,
+    /// Upload the set with a source per segment (the generated reference of the next segment)
+    /// so that the daemon's reference-free guards check every item; run once with and once
+    /// without to see their cost.
+    #[arg(long)]
+    pub guards: bool,
+    /// With --guards: the session's target language, for the script and language guards
+    /// (without it they are undecided). The generated words are in no language: the verdicts
+    /// mean nothing here, only the cost does.
+    #[arg(long = "target-language", value_name = "CODE", requires = "guards")]
+    pub target_language: Option<String>,
+    /// With --guards: a guard setting KEY=VALUE (repeatable; as `send --guard-setting`, e.g.
+    /// language-id=off).
+    #[arg(long = "guard-setting", value_name = "KEY=VALUE", requires = "guards")]
+    pub guard_settings: Vec<String>,
     /// Print the figures as one JSON object.
     #[arg(long)]
     pub json: bool,
@@ -137,15 +151,21 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
     drop(compiled);
 
     let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
-    let (session, full, half) = rt.block_on(async {
+    let (session, full, half, guards) = rt.block_on(async {
         let ch = channel(&a.server)?;
         let name = format!("load-{}", std::process::id());
-        log(format!("uploading the reference set as '{name}'"));
-        upload(&ch, &name, &corpus).await?;
-        SessionsClient::new(ch.clone())
-            .create(pb::CreateSessionRequest { name: name.clone(), refset: name.clone(), config: Some(config_to_pb(&config)), labels: Default::default(), window: 0, if_not_exists: false, resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: None }), ..Default::default() })
-            .await
-            .map_err(|s| ClientError::call("create session", s))?;
+        log(format!("uploading the reference set as '{name}'{}", if a.guards { " with sources" } else { "" }));
+        upload(&ch, &name, &corpus, a.guards).await?;
+        let create = pb::CreateSessionRequest {
+            name: name.clone(),
+            refset: name.clone(),
+            config: Some(config_to_pb(&config)),
+            resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: None }),
+            target_language: a.target_language.clone().unwrap_or_default(),
+            guard_settings: a.guard_settings.clone(),
+            ..Default::default()
+        };
+        SessionsClient::new(ch.clone()).create(create).await.map_err(|s| ClientError::call("create session", s))?;
         log(format!("phase 1: {} streams, batches of {}, as fast as acknowledged, {} s", a.streams, a.batch, a.seconds));
         // Meanwhile, a health check every PROBE_EVERY on a connection of its own shows whether
         // the server's async runtime stays responsive while it scores at full speed.
@@ -157,8 +177,11 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         let per_stream = full.rate() / 2.0 / a.streams as f64 / a.batch as f64;
         log(format!("phase 2: the same at half that rate ({:.0} segments/s), {} s", full.rate() / 2.0, a.seconds));
         let half = drive(&ch, &name, &corpus, &a, Some(Duration::from_secs_f64(1.0 / per_stream.max(1e-3)))).await?;
-        Ok::<_, CliError>((name, full, half))
+        let report = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: name.clone(), ..Default::default() }).await.map_err(|s| ClientError::call("get scores", s))?.into_inner();
+        let guards = crate::pb::convert::guard_tally_from_pb(&report.guards.unwrap_or_default());
+        Ok::<_, CliError>((name, full, half, guards))
     })?;
+    let target = a.target_language.as_deref();
     let figures = json!({
         "session": session,
         "streams": a.streams,
@@ -174,6 +197,9 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         "half_rate_segments_per_s": half.rate(),
         "half_rate_ack_ms": {"p50": 1e3 * half.quantile(0.5), "p99": 1e3 * half.quantile(0.99)},
         "refset_bytes_per_segment": set.memory_bytes() as f64 / set.len() as f64,
+        "guards_on": a.guards,
+        "guard_settings": a.guard_settings,
+        "guards": crate::report::guards_json(&guards, target),
     });
     if a.json {
         println!("{}", serde_json::to_string_pretty(&figures).unwrap_or_default());
@@ -186,16 +212,30 @@ pub(super) fn run(a: LoadArgs) -> Result<(), CliError> {
         println!("    health check meanwhile      p50 {:.2} ms, p99 {:.2} ms (runtime responsiveness)", 1e3 * quantile(&full.health, 0.5), 1e3 * quantile(&full.health, 0.99));
         println!("  daemon, half rate             {:>10.0} segments/s", half.rate());
         println!("    acknowledgement latency     p50 {:.2} ms, p99 {:.2} ms", 1e3 * half.quantile(0.5), 1e3 * half.quantile(0.99));
+        match a.guards {
+            true => println!("  guards on ({}): {} items checked, target language {}", if a.guard_settings.is_empty() { "default settings".to_owned() } else { a.guard_settings.join(" ") }, guards.checked, target.unwrap_or("not declared")),
+            false => println!("  guards off (no sources sent; --guards to compare)"),
+        }
     }
     Ok(())
 }
 
-async fn upload(ch: &Conn, name: &str, corpus: &Corpus) -> Result<(), CliError> {
+/// Upload the corpus' references as `name`; `with_sources`: each segment's source is the
+/// reference of the next one (same invented words, another sentence).
+async fn upload(ch: &Conn, name: &str, corpus: &Corpus, with_sources: bool) -> Result<(), CliError> {
     let text: String = corpus.refs.iter().map(|r| r[0].clone() + "\n").collect();
-    let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::RefFormat::Plain as i32, files: 1, has_source: false, replace: true })) };
-    let chunks: Vec<pb::UploadRefSetChunk> = std::iter::once(header)
-        .chain(text.as_bytes().chunks(UPLOAD_CHUNK_BYTES).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file: 0, data: c.to_vec() })) }))
-        .collect();
+    let n = corpus.refs.len();
+    let sources: String = if with_sources { (0..n).map(|i| corpus.refs[(i + 1) % n][0].clone() + "\n").collect() } else { String::new() };
+    // One reference stream (file 0); the source file, when sent, comes after the references.
+    let header = pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Header(pb::UploadHeader { name: name.into(), format: pb::RefFormat::Plain as i32, files: 1, has_source: with_sources, replace: true })) };
+    let data = |file: u32, text: &str| -> Vec<pb::UploadRefSetChunk> {
+        text.as_bytes().chunks(UPLOAD_CHUNK_BYTES).map(|c| pb::UploadRefSetChunk { part: Some(pb::upload_ref_set_chunk::Part::Data(pb::UploadData { file, data: c.to_vec() })) }).collect()
+    };
+    let mut chunks = vec![header];
+    chunks.extend(data(0, &text));
+    if with_sources {
+        chunks.extend(data(1, &sources));
+    }
     RefSetsClient::new(ch.clone()).upload(tokio_stream::iter(chunks)).await.map_err(|s| ClientError::call("upload", s))?;
     Ok(())
 }

@@ -73,8 +73,10 @@ pub struct SendArgs {
     /// such as JSONL sets with named ids).
     #[arg(long, value_name = "FILE", conflicts_with = "source")]
     pub ids: Option<String>,
-    /// Create the session first (no error when an identical one exists); needs --refset.
-    #[arg(long, requires = "refset")]
+    /// Create the session first (no error when an identical one exists); needs --refset, or
+    /// --target-language alone for a reference-free session (the guards check items that carry
+    /// a source: give --source).
+    #[arg(long)]
     pub create: bool,
     /// Reference set of the session to create.
     #[arg(long, value_name = "NAME")]
@@ -119,6 +121,8 @@ struct Totals {
     unknown: u64,
     rejected: u64,
     duplicate_batches: u64,
+    /// The reference-free guards' counts of the acknowledged batches.
+    guards: crate::guard::GuardCounts,
 }
 
 /// A file of lines aligned with the hypotheses: its bytes (part of the default producer id)
@@ -183,6 +187,9 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
     if a.batch == 0 {
         return Err(CliError::Usage("--batch must be at least 1".into()));
     }
+    if a.create && a.refset.is_none() && a.target_language.is_none() {
+        return Err(CliError::Usage("--create needs --refset, or --target-language for a session without references".into()));
+    }
     let hyp_bytes = read_bytes(&a.hyp)?;
     let hyp_name = display_name(&a.hyp);
     let hyps = split_lines(hyp_name, &hyp_bytes)?;
@@ -216,13 +223,19 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
         serde_json::json!({
             "session": a.session, "producer": producer, "replica": replica, "batches": totals.batches, "scored": totals.scored,
             "unknown": totals.unknown, "rejected": totals.rejected, "duplicate_batches": totals.duplicate_batches,
+            "guards": crate::report::guards_json(&totals.guards, None),
         })
         .to_string()
     } else {
-        format!(
+        let mut line = format!(
             "sent {} segments in {} batches to session {} as producer {}: {} scored, {} unknown, {} rejected, {} batches already counted",
             hyps.len(), totals.batches, a.session, producer, totals.scored, totals.unknown, totals.rejected, totals.duplicate_batches
-        )
+        );
+        if totals.guards.checked > 0 {
+            let flagged: Vec<String> = crate::guard::Guard::ALL.iter().filter(|&&g| totals.guards.flagged_by(g) > 0).map(|&g| format!("{} {g}", totals.guards.flagged_by(g))).collect();
+            line += &format!("; guards checked {}, flagged: {}", totals.guards.checked, if flagged.is_empty() { "none".to_owned() } else { flagged.join(", ") });
+        }
+        line
     };
     println!("{line}");
     Ok(())
@@ -258,6 +271,9 @@ async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSes
                 totals.unknown += ack.unknown as u64;
                 totals.rejected += ack.rejected as u64;
                 totals.duplicate_batches += ack.duplicate as u64;
+                if let Some(g) = &ack.guards {
+                    totals.guards += crate::pb::convert::guard_tally_from_pb(g);
+                }
                 next += 1;
                 if show {
                     eprint!("\r{} / {} batches acknowledged", next, batches.len());

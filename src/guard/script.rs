@@ -75,7 +75,7 @@ pub fn script_of(c: char) -> Option<Script> {
 }
 
 /// A target language a session can declare: its ISO 639-1 and 639-3 codes, the scripts its
-/// text is written in, and the language-identification library's name for it.
+/// text is written in, and the language-identification libraries' names for it.
 #[derive(Debug, PartialEq, Eq)]
 pub struct Language {
     /// ISO 639-1 code (the name used in settings and output).
@@ -84,62 +84,73 @@ pub struct Language {
     pub code3: &'static str,
     /// Scripts its letters are expected in.
     pub scripts: &'static [Script],
-    /// The identification library's language, `None` when it does not know the language (then
-    /// only the script guard runs).
+    /// The identification library's language (crate `whatlang`), `None` when it does not know
+    /// the language (then only the script guard runs).
     pub ident: Option<whatlang::Lang>,
+    /// The fast screening identifier's language (crate `whichlang`, 16 languages), `None` when
+    /// it does not know the language (then `whatlang` decides alone).
+    pub screen: Option<whichlang::Lang>,
+    /// True when no other language `whatlang` knows is written in this language's scripts:
+    /// text that passes the script check is then taken as in the language, unidentified.
+    pub own_script: bool,
 }
 
 const LATIN: &[Script] = &[Script::Latin];
 const CYRILLIC: &[Script] = &[Script::Cyrillic];
 
 macro_rules! languages {
-    ($(($c:literal, $c3:literal, $s:expr, $l:ident)),* $(,)?) => {
+    ($(($c:literal, $c3:literal, $s:expr, $l:ident, $w:expr, $own:literal)),* $(,)?) => {
         /// Every language a session can declare as its target.
-        pub static LANGUAGES: &[Language] = &[$(Language { code: $c, code3: $c3, scripts: $s, ident: Some(whatlang::Lang::$l) }),*];
+        pub static LANGUAGES: &[Language] = &[$(Language { code: $c, code3: $c3, scripts: $s, ident: Some(whatlang::Lang::$l), screen: $w, own_script: $own }),*];
     };
 }
 
+use whichlang::Lang as W;
+
+// own_script: whatlang 0.18.0 writes Greek and Thai letters for one language each (its
+// script-to-languages table); Hebrew letters also for Yiddish, Hangul and kana texts may be
+// all ideographs (Chinese passes the script check of Korean and Japanese).
 languages![
-    ("en", "eng", LATIN, Eng),
-    ("de", "deu", LATIN, Deu),
-    ("fr", "fra", LATIN, Fra),
-    ("es", "spa", LATIN, Spa),
-    ("it", "ita", LATIN, Ita),
-    ("pt", "por", LATIN, Por),
-    ("nl", "nld", LATIN, Nld),
-    ("sv", "swe", LATIN, Swe),
-    ("da", "dan", LATIN, Dan),
-    ("nb", "nob", LATIN, Nob),
-    ("fi", "fin", LATIN, Fin),
-    ("et", "est", LATIN, Est),
-    ("pl", "pol", LATIN, Pol),
-    ("cs", "ces", LATIN, Ces),
-    ("sk", "slk", LATIN, Slk),
-    ("sl", "slv", LATIN, Slv),
-    ("hr", "hrv", LATIN, Hrv),
-    ("hu", "hun", LATIN, Hun),
-    ("ro", "ron", LATIN, Ron),
-    ("lt", "lit", LATIN, Lit),
-    ("lv", "lav", LATIN, Lav),
-    ("tr", "tur", LATIN, Tur),
-    ("id", "ind", LATIN, Ind),
-    ("vi", "vie", LATIN, Vie),
-    ("ru", "rus", CYRILLIC, Rus),
-    ("uk", "ukr", CYRILLIC, Ukr),
-    ("bg", "bul", CYRILLIC, Bul),
-    ("mk", "mkd", CYRILLIC, Mkd),
-    ("be", "bel", CYRILLIC, Bel),
-    ("sr", "srp", &[Script::Cyrillic, Script::Latin], Srp),
-    ("el", "ell", &[Script::Greek], Ell),
-    ("he", "heb", &[Script::Hebrew], Heb),
-    ("ar", "ara", &[Script::Arabic], Ara),
-    ("fa", "pes", &[Script::Arabic], Pes),
-    ("ur", "urd", &[Script::Arabic], Urd),
-    ("hi", "hin", &[Script::Devanagari], Hin),
-    ("th", "tha", &[Script::Thai], Tha),
-    ("zh", "cmn", &[Script::Han], Cmn),
-    ("ja", "jpn", &[Script::Kana, Script::Han], Jpn),
-    ("ko", "kor", &[Script::Hangul, Script::Han], Kor),
+    ("en", "eng", LATIN, Eng, Some(W::Eng), false),
+    ("de", "deu", LATIN, Deu, Some(W::Deu), false),
+    ("fr", "fra", LATIN, Fra, Some(W::Fra), false),
+    ("es", "spa", LATIN, Spa, Some(W::Spa), false),
+    ("it", "ita", LATIN, Ita, Some(W::Ita), false),
+    ("pt", "por", LATIN, Por, Some(W::Por), false),
+    ("nl", "nld", LATIN, Nld, Some(W::Nld), false),
+    ("sv", "swe", LATIN, Swe, Some(W::Swe), false),
+    ("da", "dan", LATIN, Dan, None, false),
+    ("nb", "nob", LATIN, Nob, None, false),
+    ("fi", "fin", LATIN, Fin, None, false),
+    ("et", "est", LATIN, Est, None, false),
+    ("pl", "pol", LATIN, Pol, None, false),
+    ("cs", "ces", LATIN, Ces, None, false),
+    ("sk", "slk", LATIN, Slk, None, false),
+    ("sl", "slv", LATIN, Slv, None, false),
+    ("hr", "hrv", LATIN, Hrv, None, false),
+    ("hu", "hun", LATIN, Hun, None, false),
+    ("ro", "ron", LATIN, Ron, None, false),
+    ("lt", "lit", LATIN, Lit, None, false),
+    ("lv", "lav", LATIN, Lav, None, false),
+    ("tr", "tur", LATIN, Tur, Some(W::Tur), false),
+    ("id", "ind", LATIN, Ind, None, false),
+    ("vi", "vie", LATIN, Vie, Some(W::Vie), false),
+    ("ru", "rus", CYRILLIC, Rus, Some(W::Rus), false),
+    ("uk", "ukr", CYRILLIC, Ukr, None, false),
+    ("bg", "bul", CYRILLIC, Bul, None, false),
+    ("mk", "mkd", CYRILLIC, Mkd, None, false),
+    ("be", "bel", CYRILLIC, Bel, None, false),
+    ("sr", "srp", &[Script::Cyrillic, Script::Latin], Srp, None, false),
+    ("el", "ell", &[Script::Greek], Ell, None, true),
+    ("he", "heb", &[Script::Hebrew], Heb, None, false),
+    ("ar", "ara", &[Script::Arabic], Ara, Some(W::Ara), false),
+    ("fa", "pes", &[Script::Arabic], Pes, None, false),
+    ("ur", "urd", &[Script::Arabic], Urd, None, false),
+    ("hi", "hin", &[Script::Devanagari], Hin, Some(W::Hin), false),
+    ("th", "tha", &[Script::Thai], Tha, None, true),
+    ("zh", "cmn", &[Script::Han], Cmn, Some(W::Cmn), false),
+    ("ja", "jpn", &[Script::Kana, Script::Han], Jpn, Some(W::Jpn), false),
+    ("ko", "kor", &[Script::Hangul, Script::Han], Kor, Some(W::Kor), false),
 ];
 
 /// The language with ISO 639-1 or 639-3 code `code` (case-insensitive).
@@ -188,12 +199,35 @@ mod tests {
     }
 
     #[test]
+    fn screen_languages_complete_and_own_scripts_unshared() {
+        // Every language of the screening identifier that a session can declare has it set.
+        for w in whichlang::LANGUAGES {
+            let l = LANGUAGES.iter().find(|l| l.code3 == w.three_letter_code());
+            assert_eq!(l.and_then(|l| l.screen), Some(w), "{}", w.three_letter_code());
+        }
+        // own_script: whatlang names its language for a text in that script whatever the text.
+        for l in LANGUAGES.iter().filter(|l| l.own_script) {
+            let sample = match l.code {
+                "el" => "καλημέρα σας φίλοι μου",
+                "th" => "สวัสดีครับ เพื่อนของผม",
+                other => panic!("no sample for {other}"),
+            };
+            assert_eq!(whatlang::detect_lang(sample), l.ident, "{}", l.code);
+            assert_eq!(whatlang::detect_script(sample).map(|s| s.langs().len()), Some(1), "{}", l.code);
+        }
+    }
+
+    #[test]
     fn codes_resolve() {
         assert_eq!(language("de").map(|l| l.code3), Some("deu"));
         assert_eq!(language("RUS").map(|l| l.code), Some("ru"));
         assert!(language("xx").is_none());
         for l in LANGUAGES {
             assert_eq!(l.ident.map(|i| i.code()), Some(l.code3), "{}", l.code);
+            // The screening identifier's language is the same (ISO 639-3 codes).
+            if let Some(w) = l.screen {
+                assert_eq!(w.three_letter_code(), l.code3);
+            }
             assert_eq!(language(l.code), Some(l));
         }
     }

@@ -147,6 +147,23 @@ fn language_identified_or_undecided() {
     let v = verdict(&cfg("de"), EN_LONG, RU_LONG);
     assert!(v.is_flagged(Guard::Language) && v.is_flagged(Guard::Script));
     assert!(!verdict(&cfg("de"), EN_LONG, DE_LONG).any());
+    // German text in a German session passes the screen (decided, not flagged).
+    assert!(!verdict(&cfg("de"), EN_LONG, DE_LONG).is_undecided(Guard::Language));
+    // The screen never flags: English in an English session passes, in a German one the
+    // thorough identifier flags it; a target the screen does not know (Danish) goes to the
+    // thorough identifier alone, which flags the German text.
+    assert!(!verdict(&cfg("en"), DE_LONG, EN_LONG).is_flagged(Guard::Language));
+    assert!(verdict(&cfg("da"), EN_LONG, DE_LONG).is_flagged(Guard::Language));
+    // Greek letters are written for Greek alone: a Greek session passes Greek text without an
+    // identifier, even with identification off; Russian text there is flagged by its script.
+    let el_text = "Το τελευταίο πλοίο για το Βόρειο Λιμάνι αναχωρεί απόψε μία ώρα νωρίτερα.";
+    let mut el_off = cfg("el");
+    el_off.set("language-id=off").unwrap();
+    for c in [cfg("el"), el_off.clone()] {
+        let v = verdict(&c, EN_LONG, el_text);
+        assert!(!v.is_flagged(Guard::Language) && !v.is_undecided(Guard::Language));
+    }
+    assert!(verdict(&el_off, EN_LONG, RU_LONG).is_flagged(Guard::Language));
     // Short texts are undecided, never flagged, even in the wrong language.
     let v = verdict(&cfg("de"), EN, "The ferry leaves now.");
     assert!(v.is_undecided(Guard::Language) && !v.is_flagged(Guard::Language));
@@ -235,12 +252,34 @@ proptest! {
     }
 
     #[test]
+    fn one_pass_check_equals_the_guards_one_by_one(
+        src in any_text(),
+        hyp in prop_oneof![any_text(), any::<String>(), "((Fähre|паром|渡轮|abc) ){0,12}"],
+        target in prop_oneof![Just("de"), Just("ru"), Just("zh"), Just("ar"), Just("ja")],
+        order in 1usize..=8,
+    ) {
+        // check() reads each text once; check_by_guard() runs each documented rule on its own.
+        let mut c = cfg(target);
+        c.repeat_order = order;
+        c.copy_order = order;
+        c.repeat_count = 2;
+        c.repeat_run = 2;
+        let mut s = GuardScratch::default();
+        prop_assert_eq!(check(&c, &src, &hyp, &mut s), check_by_guard(&c, &src, &hyp, &mut GuardScratch::default()));
+        // And with the source copied, which takes the copy chrF path.
+        let near = format!("{hyp} {src}");
+        prop_assert_eq!(check(&c, &src, &near, &mut s), check_by_guard(&c, &src, &near, &mut GuardScratch::default()));
+    }
+
+    #[test]
     fn copy_bound_never_below_the_exact_chrf(src in any_text(), hyp in any_text(), n in 1usize..=10) {
         let mut s = GuardScratch::default();
         let (hl, sl) = (fill_chars(&hyp, n, &mut s.hyp_chars), fill_chars(&src, n, &mut s.src_chars));
         let bound = copy_bound(n, hl, sl, &mut s);
         let exact = copy_chrf(n, hl, sl, &mut s);
         prop_assert!(bound + 1e-9 >= exact, "bound {} < chrF {}", bound, exact);
+        let presence = presence_bound(n, &s.hyp_chars[..hl], &s.src_chars[..sl]);
+        prop_assert!(presence + 1e-9 >= exact, "presence bound {} < chrF {}", presence, exact);
         // The buckets are left zero for the next item.
         prop_assert!(s.buckets.iter().all(|&b| b == 0));
     }
@@ -278,6 +317,7 @@ proptest! {
         let hyp = words.iter().enumerate().map(|(i, w)| if i < keep { w.clone() } else { w.to_uppercase() + "x" }).collect::<Vec<_>>().join(" ");
         let mut s = GuardScratch::default();
         let (hl, sl) = (fill_chars(&hyp, 6, &mut s.hyp_chars), fill_chars(&src, 6, &mut s.src_chars));
+        prop_assert!(presence_bound(6, &s.hyp_chars[..hl], &s.src_chars[..sl]) + 1e-9 >= copy_chrf(6, hl, sl, &mut s));
         prop_assert!(copy_bound(6, hl, sl, &mut s) + 1e-9 >= copy_chrf(6, hl, sl, &mut s));
     }
 }

@@ -219,12 +219,16 @@ fn closed_event(rule: &Rule, session: &str, p: &Pair, now: i64) -> AlertEvent {
 
 /// What the rule judges by, now (None: nothing to judge by).
 fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64) -> Option<Measured> {
+    if let Condition::FlagRate { guard, .. } = &rule.condition {
+        return flag_rate(session, guard);
+    }
     let config = &session.spec().config;
     if !config.has(rule.metric) {
         return None;
     }
     match (&rule.condition, rule.window) {
         (Condition::Decline { points }, _) => decline(rule, session, p, *points),
+        (Condition::FlagRate { guard, .. }, _) => flag_rate(session, guard),
         (Condition::Below { .. }, Window::Recent) => {
             let stats = session.state().window.stats();
             let (_, recent) = session.replicates();
@@ -266,6 +270,17 @@ fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64
             Some(Measured { value, low: i.low, high: i.high, segments: sa.segments.min(sb.segments), statistic: None })
         }
     }
+}
+
+/// A `flag-rate` rule: the guard's flagged share of the items it decided on since start, with
+/// its Wilson interval, in percent (`segments`: the decided items).
+fn flag_rate(session: &Session, guard: &str) -> Option<Measured> {
+    let g = crate::guard::Guard::ALL.into_iter().find(|g| g.name() == guard)?;
+    let counts = session.state().counts.guards;
+    let decided = counts.checked.saturating_sub(counts.undecided_by(g));
+    let flagged = counts.flagged_by(g);
+    let (low, high) = crate::alerts::rules::wilson(flagged, decided, crate::alerts::rules::WILSON_Z95)?;
+    Some(Measured { value: 100.0 * flagged as f64 / decided as f64, low: 100.0 * low, high: 100.0 * high, segments: decided, statistic: None })
 }
 
 /// A session's statistics and replicate sums over `window` (`all` or a time window).

@@ -404,8 +404,20 @@ impl State {
     /// `if_not_exists`, an existing session with the same whole definition (reference set name,
     /// configuration, labels and window) is returned as is; any difference is refused, naming
     /// what differs, so that a re-create never silently keeps other labels or another window.
+    ///
+    /// A session without a reference set (`spec.refset` empty) is reference-free: it scores
+    /// nothing and counts its items as unknown, while the guards check those with a source.
+    /// It needs its target language, and is kept over the empty set, stored as a version no
+    /// name refers to.
     pub fn create_session(&self, spec: SessionSpec, if_not_exists: bool) -> Result<(Arc<Session>, bool)> {
-        let set = self.refset(&spec.refset)?;
+        let reference_free = spec.refset.is_empty();
+        if reference_free && spec.target_language.is_none() {
+            return Err(ServiceError::Invalid("a session without a reference set needs its target language (the guards are all it has)".into()));
+        }
+        let set = match reference_free {
+            true => Arc::new(RefSet::new(Vec::new()).map_err(|e| ServiceError::Internal(e.to_string()))?),
+            false => Arc::clone(&self.refset(&spec.refset)?.set),
+        };
         let existing = |other: &Arc<Session>| match (if_not_exists, differences(other.spec(), &spec)) {
             (true, d) if d.is_empty() => Ok((Arc::clone(other), false)),
             (_, differs) => Err(ServiceError::SessionExists { name: spec.name.clone(), differs }),
@@ -416,13 +428,16 @@ impl State {
         if self.inner.sessions.len() >= self.inner.limits.max_sessions {
             return Err(ServiceError::Limit { what: format!("{} sessions", self.inner.sessions.len() + 1), limit: self.inner.limits.max_sessions as u64, key: Limit::MaxSessions.key() });
         }
-        let session = Arc::new(Session::new(spec.clone(), Arc::clone(&set.set), unix_now()));
+        let session = Arc::new(Session::new(spec.clone(), Arc::clone(&set), unix_now()));
         session.history().set_config(self.history_config());
         match self.inner.sessions.entry(spec.name.clone()) {
             // Created concurrently by another request: the same rule.
             Entry::Occupied(e) => existing(e.get()),
             Entry::Vacant(e) => {
-                self.persist(|s| s.put_session(session.spec(), &session.refs().digest_hex(), session.created_unix()))?;
+                self.persist(|s| match reference_free {
+                    true => s.put_session_over(session.spec(), &set, session.created_unix()),
+                    false => s.put_session(session.spec(), &session.refs().digest_hex(), session.created_unix()),
+                })?;
                 e.insert(Arc::clone(&session));
                 Ok((session, true))
             }

@@ -440,6 +440,21 @@ impl Store {
         })
     }
 
+    /// Record a new session over `set`, a version no name refers to (a reference-free
+    /// session's empty set): the version first (kept while the session uses it), then the
+    /// session as [`Store::put_session`] records it.
+    pub fn put_session_over(&self, spec: &SessionSpec, set: &RefSet, created_unix: i64) -> Result<(), StoreError> {
+        let digest = set.digest_hex();
+        self.write(|txn| {
+            let mut versions = txn.open_table(VERSIONS)?;
+            if versions.get(digest.as_str())?.is_none() {
+                versions.insert(digest.as_str(), set.encode().as_slice())?;
+            }
+            Ok(())
+        })?;
+        self.put_session(spec, &digest, created_unix)
+    }
+
     /// Record a new session (its statistics start empty).
     pub fn put_session(&self, spec: &SessionSpec, refset_digest: &str, created_unix: i64) -> Result<(), StoreError> {
         let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling, target_language: spec.target_language.clone(), guard_settings: spec.guard_settings.clone() };

@@ -539,6 +539,94 @@ def test_live_traffic_source_lookup(stubs, api, demo_dir, demo_refs, offline):
     assert abs(report.cumulative.bleu.score - off["bleu"]["score"]) <= 1e-9
 
 
+GUARD_NAMES = ["empty", "copy", "length", "repetition", "script", "language"]
+# Invented: a Russian notice (wrong script for a German target).
+RUSSIAN_NOTICE = "Паром в Северную гавань отправляется через десять минут от третьего причала."
+
+
+def guard_items(stubs, demo_refs):
+    """(item, what the guards must flag by their documented rules, what they must not) for a
+    German session: clean translations, and one of each pathology (README, src/guard)."""
+    out = []
+    for k, row in enumerate(demo_refs[:12]):
+        src, ref = row["source"], row["refs"][0]
+        kind = k % 6
+        if kind == 0:
+            hyp, must, must_not = ref, set(), {"empty", "copy", "repetition", "script"}
+        elif kind == 1:
+            hyp, must, must_not = "", {"empty"}, {"copy", "script"}
+        elif kind == 2:
+            # The English source passed through: a copy, and English where German is due
+            # (the notices are over 30 letters long: the language guard decides).
+            hyp, must, must_not = src, {"copy"}, {"empty", "repetition"}
+        elif kind == 3:
+            words = ref.split()[:4]
+            hyp, must, must_not = " ".join(words * 5), {"repetition"}, {"empty", "copy"}
+        elif kind == 4:
+            hyp, must, must_not = RUSSIAN_NOTICE, {"script", "language"}, {"empty", "copy"}
+        else:
+            hyp, must, must_not = ref + " " + ref, set(), {"empty", "copy", "script"}
+        key = {"source": src} if k % 2 == 0 else {"segment_id": row["id"]}
+        out.append((stubs.scoring.ScoreItem(hypothesis=hyp, **key), must, must_not))
+    return out
+
+
+def check_guard_ack(ack, expected, where):
+    """Per-item verdicts against the rules, and the ack's tally equal to the verdicts' sum."""
+    assert ack.guards.checked == len(expected), (where, ack.guards)
+    verdicts = {v.index: v for v in ack.guard_verdicts}
+    assert sorted(verdicts) == list(range(len(expected))), (where, sorted(verdicts))
+    for i, (_, must, must_not) in enumerate(expected):
+        flagged = set(verdicts[i].flagged)
+        undecided = set(verdicts[i].undecided)
+        assert flagged <= set(GUARD_NAMES) and undecided <= set(GUARD_NAMES), (where, i)
+        assert not flagged & undecided, (where, i, flagged, undecided)
+        assert must <= flagged, (where, i, must, flagged)
+        assert not must_not & flagged, (where, i, must_not, flagged)
+    for g in GUARD_NAMES:
+        assert ack.guards.flagged.get(g, 0) == sum(g in v.flagged for v in verdicts.values()), (where, g)
+        assert ack.guards.undecided.get(g, 0) == sum(g in v.undecided for v in verdicts.values()), (where, g)
+
+
+def test_guard_fields_of_acks_and_verdicts(stubs, api, demo_refs):
+    """The guard fields of an acknowledgement (tally and per-item verdicts with
+    want_segment_scores) in a German session over the demo set, and in a reference-free
+    session (no reference set, target language only; items are unknown and still checked)."""
+    expected = guard_items(stubs, demo_refs)
+    items = [it for it, _, _ in expected]
+    create_session(stubs, api, "py-guards", target_language="de")
+    ack = api.scoring.Submit(stubs.scoring.ScoreBatch(
+        session="py-guards", producer="py-guards-1", sequence=1, items=items,
+        want_segment_scores=True), timeout=RPC_TIMEOUT)
+    assert ack.scored == len(items) and ack.unknown == 0
+    check_guard_ack(ack, expected, "py-guards")
+    # Without want_segment_scores: the tally, no verdicts.
+    again = api.scoring.Submit(stubs.scoring.ScoreBatch(
+        session="py-guards", producer="py-guards-1", sequence=2, items=items), timeout=RPC_TIMEOUT)
+    assert list(again.guard_verdicts) == [] and again.guards == ack.guards
+    report = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session="py-guards"),
+                                   timeout=RPC_TIMEOUT)
+    assert report.guards.checked == 2 * len(items) and report.target_language == "de"
+
+    # Reference-free: only items keyed by their source are checked (an id names nothing).
+    info = api.sessions.Create(stubs.sessions.CreateSessionRequest(
+        name="py-guards-free", config=stubs.common.ScoreConfig(metrics=metric_configs(stubs)),
+        target_language="deu"), timeout=RPC_TIMEOUT)
+    assert info.refset == "" and info.target_language == "de"
+    by_source = [(stubs.scoring.ScoreItem(source=row["source"], hypothesis=it.hypothesis), m, n)
+                 for (it, m, n), row in zip(expected, demo_refs)]
+    ack = api.scoring.Submit(stubs.scoring.ScoreBatch(
+        session="py-guards-free", producer="py-guards-1", sequence=1,
+        items=[it for it, _, _ in by_source], want_segment_scores=True), timeout=RPC_TIMEOUT)
+    assert ack.scored == 0 and ack.unknown == len(by_source)
+    check_guard_ack(ack, by_source, "py-guards-free")
+    with pytest.raises(grpc.RpcError) as e:
+        api.sessions.Create(stubs.sessions.CreateSessionRequest(
+            name="py-guards-none", config=stubs.common.ScoreConfig(metrics=metric_configs(stubs))),
+            timeout=RPC_TIMEOUT)
+    assert e.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+
+
 def test_duplicate_batch_not_counted_again(stubs, api, v7_stream):
     before = api.scoring.GetScores(stubs.scoring.GetScoresRequest(session=V7_SESSION),
                                    timeout=RPC_TIMEOUT)
@@ -752,6 +840,27 @@ def test_load_reports_its_config_line(mtgauge, server, serving):
     assert figures["config"] == ("tokenizer=nist caseless=no "
                                  "bleu:order=2,ref-length=closest,smoothing=epsilon,epsilon=0.1 "
                                  "chrf++:chars=6,words=1,beta=2"), figures["config"]
+
+
+def test_load_with_guards_checks_every_item(mtgauge, server, serving):
+    """`mtgauge load --guards` uploads sources, so the daemon's guards check the items it
+    sends (all acknowledged, none flagged as empty or copied: the sources are other generated
+    sentences); without --guards nothing is checked."""
+    def run(extra):
+        proc = mtgauge.run(["load", "--server", f"http://{server.grpc_addr}", "--streams", "2",
+                            "--batch", "50", "--seconds", "1", "--segments", "500", "--json"] + extra,
+                           timeout=120)
+        assert proc.returncode == 0, proc.stderr.decode("utf-8", "replace")[-2000:]
+        return json.loads(proc.stdout.decode("utf-8"))
+    off = run([])
+    assert off["guards_on"] is False and off["guards"]["checked"] == 0, off["guards"]
+    on = run(["--guards", "--target-language", "de", "--guard-setting", "language-id=off"])
+    g = on["guards"]
+    assert on["guards_on"] is True and on["guard_settings"] == ["language-id=off"]
+    assert g["checked"] > 0 and g["target_language"] == "de", g
+    assert g["by_guard"]["empty"]["flagged"] == 0 and g["by_guard"]["copy"]["flagged"] == 0, g
+    # Generated words are Latin letters: the script guard passes them all.
+    assert g["by_guard"]["script"]["flagged"] == 0 and g["by_guard"]["script"]["undecided"] == 0, g
 
 
 # ---------------------------------------------------------------------------

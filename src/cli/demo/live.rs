@@ -51,12 +51,46 @@ struct Watched {
     model: &'static str,
     /// Quality before and after the half-way point (see `degraded_hypothesis`).
     quality: (f64, f64),
+    /// Share of outputs broken in a way the reference-free guards see (see [`Broken`]), before
+    /// and after the half-way point.
+    broken: (f64, f64),
 }
 
 const SESSIONS: &[Watched] = &[
-    Watched { session: "ferry-en-de.model-v7", model: "model-v7", quality: (0.6, 0.6) },
-    Watched { session: "ferry-en-de.model-v8-rc", model: "model-v8-rc", quality: (0.92, 0.35) },
+    Watched { session: "ferry-en-de.model-v7", model: "model-v7", quality: (0.6, 0.6), broken: (0.02, 0.02) },
+    Watched { session: "ferry-en-de.model-v8-rc", model: "model-v8-rc", quality: (0.92, 0.35), broken: (0.01, 0.08) },
 ];
+
+/// The broken outputs of the simulated systems, one kind drawn at random per broken item.
+#[derive(Debug, Clone, Copy)]
+enum Broken {
+    /// Nothing came back.
+    Empty,
+    /// The English source passed through untranslated.
+    CopiedSource,
+    /// The first words of the translation looping.
+    Loop,
+    /// English, but another notice's (a wrong-language output that is no copy).
+    WrongLanguage,
+}
+
+const BROKEN_KINDS: [Broken; 4] = [Broken::Empty, Broken::CopiedSource, Broken::Loop, Broken::WrongLanguage];
+/// Repeats of the looping phrase: above the repetition guard's defaults (4-gram 3 times).
+const LOOP_REPEATS: usize = 5;
+
+/// A broken output of `kind` for `seg`, whose good translation would be `good`; `other` is
+/// another segment (for the wrong-language output).
+fn broken_hypothesis(kind: Broken, seg: &SegmentInput, good: &str, other: &SegmentInput) -> String {
+    match kind {
+        Broken::Empty => String::new(),
+        Broken::CopiedSource => seg.source_text().to_owned(),
+        Broken::Loop => {
+            let phrase: Vec<&str> = good.split_whitespace().take(4).collect();
+            vec![phrase.join(" "); LOOP_REPEATS].join(" ")
+        }
+        Broken::WrongLanguage => other.source_text().to_owned(),
+    }
+}
 
 /// The alert rules of the demo, as a config file would declare them (printed at the end).
 const DEMO_RULES: &str = r#"alert_eval_seconds = 1
@@ -112,7 +146,9 @@ async fn live(seconds: u64, linger: bool) -> Result<(), CliError> {
     println!("mtgauge demo: the daemon runs in this process on {url} (Prometheus: http://{m}/metrics)");
     println!("status page: http://{m}/ (history charts per session; {})", if linger { "kept serving after the run with --linger" } else { "add --linger to keep it up after the run" });
     println!("scenario: Nordhavn Ferries passenger notices, English -> German; two model versions watched live;");
-    println!("model-v8-rc starts to degrade half-way (a simulated bad deploy). Running {seconds} s.\n");
+    println!("model-v8-rc starts to degrade half-way (a simulated bad deploy). Running {seconds} s.");
+    println!("a few outputs come back broken (empty, the source copied, a loop, English): the reference-free");
+    println!("guards count them per session (`status`, mtgauge_guard_flagged_total), with or without a reference.\n");
 
     // Upload the embedded reference set over the API, as a client would.
     let segments = Arc::new(demo_segments());
@@ -196,6 +232,10 @@ async fn live(seconds: u64, linger: bool) -> Result<(), CliError> {
                 println!("  {:<8}{:>6.2} .. {:.2}   95% bootstrap interval ({} resamples over segments)", m.title(), i.low, i.high, i.resamples);
             }
         }
+        let guards = crate::pb::convert::guard_tally_from_pb(&r.guards.clone().unwrap_or_default());
+        for line in crate::report::guard_lines(&guards, Some(&r.target_language).filter(|t| !t.is_empty()).map(String::as_str), "  ") {
+            println!("{line}");
+        }
     }
     if linger {
         println!("\nstill serving: status page http://{m}/, gRPC {url}; Ctrl-C (or SIGTERM) stops it");
@@ -244,11 +284,16 @@ async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, s
     let mut seq = 0;
     while !stop.load(Ordering::Relaxed) {
         seq += 1;
-        let q = if degraded.load(Ordering::Relaxed) { w.quality.1 } else { w.quality.0 };
+        let late = degraded.load(Ordering::Relaxed);
+        let (q, broken) = if late { (w.quality.1, w.broken.1) } else { (w.quality.0, w.broken.0) };
         let items = (0..DEMO_BATCH)
             .map(|_| {
                 let seg = &segments[rng.index(segments.len())];
-                let hypothesis = degraded_hypothesis(seg, q, rng.next_u64());
+                let mut hypothesis = degraded_hypothesis(seg, q, rng.next_u64());
+                if rng.chance(broken) {
+                    let kind = BROKEN_KINDS[rng.index(BROKEN_KINDS.len())];
+                    hypothesis = broken_hypothesis(kind, seg, &hypothesis, &segments[rng.index(segments.len())]);
+                }
                 let key = if !by_source {
                     pb::score_item::Key::SegmentId(seg.id.clone())
                 } else if rng.chance(UNKNOWN_SHARE) {
