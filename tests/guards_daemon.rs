@@ -285,7 +285,9 @@ async fn flag_rate_rule_fires_on_the_session_copying_its_sources() {
         "alert_eval_seconds = 1\n\n[[alert]]\nname = \"copies\"\nlabels = { lang = \"en-de\" }\nwhen = \"flag-rate\"\nguard = \"copy\"\nthreshold = 5\nmin_segments = 30\nfor_seconds = 0\n",
     )
     .unwrap();
-    let server = Server::start(&["--config", config.to_str().unwrap()]);
+    // A data directory of its own (with --config, Server::start adds none).
+    let data = dir.join("data");
+    let server = Server::start(&["--config", config.to_str().unwrap(), "--data-dir", data.to_str().unwrap()]);
     let ch = server.wait_serving().await;
     let segs = demo_segments();
     for (name, copy_every) in [("copying", 2usize), ("clean", 0)] {

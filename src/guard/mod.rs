@@ -458,11 +458,14 @@ fn flag_if(b: bool) -> Outcome {
 /// words); the copy chrF and the source's repetition run only when a cheap bound cannot decide.
 pub fn check(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Verdict {
     let scripts = cfg.target.map(|t| t.scripts).unwrap_or(&[]);
-    let h = scan(hyp, scripts, &mut s.hyp_chars, Some(&mut s.ids));
-    let src = scan(source, &[], &mut s.src_chars, None);
+    // The source's character bigrams into the presence set, then the hypothesis' probed.
+    let mut presence = Presence::default();
+    let src = scan::<false>(source, &[], &mut presence, &mut s.ids);
+    presence.prev = 0;
+    let h = scan::<true>(hyp, scripts, &mut presence, &mut s.ids);
     let mut v = Verdict::default();
     v.set(Guard::Empty, flag_if(!h.alnum));
-    v.set(Guard::Copy, copy_scanned(cfg, source, hyp, &h, &src, s));
+    v.set(Guard::Copy, copy_scanned(cfg, source, hyp, &h, &src, presence.hits, s));
     v.set(Guard::Length, length_of(cfg, src.chars, h.chars));
     v.set(Guard::Repetition, repetition_scanned(cfg, source, s));
     let script = script_of_counts(cfg, h.letters, h.expected);
@@ -476,7 +479,7 @@ pub fn check(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -
 struct Scan {
     /// Non-space characters ([`char_len`]).
     chars: u64,
-    /// Lowercased non-space characters written (the length [`fill_chars`] returns).
+    /// Lowercased non-space characters (the length [`fill_chars`] returns).
     lower: usize,
     /// Whether it has a letter, mark or digit (`char::is_alphanumeric`).
     alnum: bool,
@@ -486,21 +489,46 @@ struct Scan {
     expected: usize,
 }
 
-/// One pass over `text`: the [`Scan`] counts, its lowercased non-space characters into `lower`
-/// exactly as [`fill_chars`] writes them (without the padding), and, when `words` is given, its
-/// words exactly as [`word_ids`] gives them. ASCII characters take a short path; counts stay in
-/// locals and the buffers are reserved once, so the loop only reads the text and appends.
-fn scan(text: &str, scripts: &[Script], lower: &mut Vec<u32>, words: Option<&mut Vec<u64>>) -> Scan {
+/// The character-bigram presence set of [`presence_bound_of`]: built from the source's
+/// lowercased non-space characters (as [`fill_chars`] writes them) and probed with the
+/// hypothesis', while [`scan`] reads them.
+#[derive(Debug, Clone, Default)]
+struct Presence {
+    set: [u64; PRESENCE_BITS / 64],
+    /// The previous character (0: none yet).
+    prev: u32,
+    /// Probed bigrams whose bit was set.
+    hits: u64,
+}
+
+/// One pass over `text`: the [`Scan`] counts, its lowercased non-space characters (as
+/// [`fill_chars`] writes them, without the padding) fed to `presence`, and, when `words` is
+/// given, its words exactly as [`word_ids`] gives them. ASCII characters take a short path;
+/// counts stay in locals, nothing is written per character but the words.
+fn scan<const WORDS: bool>(text: &str, scripts: &[Script], presence: &mut Presence, words: &mut Vec<u64>) -> Scan {
     let latin = usize::from(scripts.contains(&Script::Latin));
     let (mut chars, mut alnum, mut letters, mut expected) = (0u64, false, 0usize, 0usize);
     let (mut h, mut open) = (WORD_SEED, false);
-    let want_words = words.is_some();
-    let mut none = Vec::new();
-    let ids = words.unwrap_or(&mut none);
-    lower.clear();
-    ids.clear();
-    // At most three lowercase characters per character, one character per byte at most.
-    lower.reserve(if text.is_ascii() { text.len() } else { 3 * text.len() });
+    let want_words = WORDS;
+    let ids = words;
+    let mut lower = 0usize;
+    // The presence state in locals (kept in registers), the set probed when reading words (the
+    // hypothesis) and built otherwise (the source).
+    let (set, mut prev, mut hits) = (&mut presence.set, presence.prev, presence.hits);
+    let mut feed = |l: u32| {
+        if prev != 0 {
+            let k = presence_bit(prev, l);
+            if WORDS {
+                hits += (set[k / 64] >> (k % 64)) & 1;
+            } else {
+                set[k / 64] |= 1 << (k % 64);
+            }
+        }
+        prev = l;
+    };
+    if WORDS {
+        ids.clear();
+    }
     for c in text.chars() {
         if c.is_ascii() {
             if is_space(c) {
@@ -512,14 +540,17 @@ fn scan(text: &str, scripts: &[Script], lower: &mut Vec<u32>, words: Option<&mut
             }
             let l = c.to_ascii_lowercase();
             chars += 1;
-            lower.push(l as u32 + 1);
+            lower += 1;
+            feed(l as u32 + 1);
             if c.is_ascii_alphanumeric() {
                 alnum = true;
                 let letter = usize::from(c.is_ascii_alphabetic());
                 letters += letter;
                 expected += letter & latin;
-                h = word_mix(h, l);
-                open = want_words;
+                if WORDS {
+                    h = word_mix(h, l);
+                    open = true;
+                }
             } else if open {
                 ids.push(h.max(1));
                 (h, open) = (WORD_SEED, false);
@@ -529,7 +560,10 @@ fn scan(text: &str, scripts: &[Script], lower: &mut Vec<u32>, words: Option<&mut
         let space = is_space(c);
         if !space {
             chars += 1;
-            lower.extend(c.to_lowercase().map(|l| l as u32 + 1));
+            for l in c.to_lowercase() {
+                lower += 1;
+                feed(l as u32 + 1);
+            }
         }
         alnum |= c.is_alphanumeric();
         if let Some(sc) = script_of(c) {
@@ -557,12 +591,15 @@ fn scan(text: &str, scripts: &[Script], lower: &mut Vec<u32>, words: Option<&mut
     if open {
         ids.push(h.max(1));
     }
-    Scan { chars, lower: lower.len(), alnum, letters, expected }
+    drop(feed);
+    (presence.prev, presence.hits) = (prev, hits);
+    Scan { chars, lower, alnum, letters, expected }
 }
 
-/// The copy guard on scanned texts (`s.hyp_chars` and `s.src_chars` hold their lowercased
-/// characters); the same verdict as [`copy`].
-fn copy_scanned(cfg: &GuardConfig, source: &str, hyp: &str, h: &Scan, src: &Scan, s: &mut GuardScratch) -> Outcome {
+/// The copy guard on scanned texts (`hits`: the hypothesis bigrams found in the source's
+/// presence set); the same verdict as [`copy`]. The characters are written out only when the
+/// presence bound cannot decide.
+fn copy_scanned(cfg: &GuardConfig, source: &str, hyp: &str, h: &Scan, src: &Scan, hits: u64, s: &mut GuardScratch) -> Outcome {
     if !src.alnum {
         return Outcome::Undecided;
     }
@@ -571,14 +608,11 @@ fn copy_scanned(cfg: &GuardConfig, source: &str, hyp: &str, h: &Scan, src: &Scan
     }
     let n = cfg.copy_order.clamp(1, MAX_CHRF_CHAR_ORDER);
     let (hl, sl) = (h.lower, src.lower);
-    if hl == 0 {
+    if hl == 0 || presence_bound_of(n, hl, sl, hits) < cfg.copy_min_chrf {
         return Outcome::Pass;
     }
-    if presence_bound(n, &s.hyp_chars[..hl], &s.src_chars[..sl]) < cfg.copy_min_chrf {
-        return Outcome::Pass;
-    }
-    s.hyp_chars.extend(std::iter::repeat_n(0, n));
-    s.src_chars.extend(std::iter::repeat_n(0, n));
+    fill_chars(hyp, n, &mut s.hyp_chars);
+    fill_chars(source, n, &mut s.src_chars);
     if copy_bound(n, hl, sl, s) < cfg.copy_min_chrf {
         return Outcome::Pass;
     }
@@ -652,7 +686,6 @@ fn copy(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Out
 
 /// The lowercased non-space characters of `text` into `out` as code points shifted by one (0
 /// is the padding, smaller than any character), followed by `n` padding items; their number.
-#[cfg(test)]
 fn fill_chars(text: &str, n: usize, out: &mut Vec<u32>) -> usize {
     out.clear();
     for c in text.chars().filter(|&c| !is_space(c)) {
@@ -667,32 +700,38 @@ fn fill_chars(text: &str, n: usize, out: &mut Vec<u32>) -> usize {
     len
 }
 
-/// Bits of the presence set of [`presence_bound`] (a power of two).
+/// Bits of the presence set of [`presence_bound_of`] (a power of two).
 const PRESENCE_BITS: usize = 1 << 10;
 
-/// An upper bound of [`copy_chrf`] cheaper than [`copy_bound`], from one pass over each text
-/// and no table to clear: the source's character bigrams are hashed into a set of
-/// [`PRESENCE_BITS`] bits, and the hypothesis bigrams whose bit is set bound its clipped bigram
-/// matches (a clipped match is a hypothesis occurrence of a bigram the source has; a
-/// collision only adds); the matches of orders n >= 2 are at most the bigram matches, those of
-/// order 1 at most the shorter text (as in [`copy_bound`]); chrF grows with the matches.
+/// The bit of a character bigram in the presence set.
+fn presence_bit(a: u32, b: u32) -> usize {
+    ((a.wrapping_mul(0x9E37_79B1) ^ b).wrapping_mul(0x85EB_CA6B) >> 22) as usize
+}
+
+/// [`presence_bound_of`] of two filled texts (their bigrams hashed here).
+#[cfg(test)]
 fn presence_bound(n: usize, hyp: &[u32], src: &[u32]) -> f64 {
     let mut set = [0u64; PRESENCE_BITS / 64];
-    let bit = |a: u32, b: u32| ((a.wrapping_mul(0x9E37_79B1) ^ b).wrapping_mul(0x85EB_CA6B) >> 22) as usize;
     for w in src.windows(2) {
-        let k = bit(w[0], w[1]);
+        let k = presence_bit(w[0], w[1]);
         set[k / 64] |= 1 << (k % 64);
     }
-    let mut m2 = 0u64;
-    for w in hyp.windows(2) {
-        let k = bit(w[0], w[1]);
-        m2 += (set[k / 64] >> (k % 64)) & 1;
-    }
-    let (hl, sl) = (hyp.len(), src.len());
+    let hits = hyp.windows(2).map(|w| presence_bit(w[0], w[1])).map(|k| (set[k / 64] >> (k % 64)) & 1).sum();
+    presence_bound_of(n, hyp.len(), src.len(), hits)
+}
+
+/// An upper bound of [`copy_chrf`] cheaper than [`copy_bound`], with no table to clear and
+/// nothing written per character: the source's character bigrams are hashed into a set of
+/// [`PRESENCE_BITS`] bits, and the `hits`, the hypothesis bigrams whose bit is set, bound its
+/// clipped bigram matches (a clipped match is a hypothesis occurrence of a bigram the source
+/// has; a collision only adds); the matches of orders n >= 2 are at most the bigram matches,
+/// those of order 1 at most the shorter text (as in [`copy_bound`]); chrF grows with the
+/// matches. `hl` and `sl`: the texts' lowercased non-space characters.
+fn presence_bound_of(n: usize, hl: usize, sl: usize, hits: u64) -> f64 {
     let mut bound = OrderCounts::default();
     for order in 1..=n {
         let (h, r) = (ngram_count(hl, order), ngram_count(sl, order));
-        bound.matches[order - 1] = if order == 1 { h.min(r) } else { m2.min(h).min(r) };
+        bound.matches[order - 1] = if order == 1 { h.min(r) } else { hits.min(h).min(r) };
         bound.hyp[order - 1] = h;
         bound.reference[order - 1] = r;
     }
