@@ -49,7 +49,12 @@ impl Server {
 
     fn spawn(listen: &str, extra: &[&str], file_size_limit: Option<u64>) -> Server {
         static N: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
-        let own = !extra.iter().any(|a| *a == "--data-dir" || *a == "--durability" || *a == "--config");
+        // A config file that names no data directory (or durability) gets one too: the
+        // daemon's default (/var/lib/mtgauge) is shared state no test may write to.
+        let config_says = extra.iter().position(|a| *a == "--config").and_then(|i| extra.get(i + 1)).is_some_and(|path| {
+            std::fs::read_to_string(path).is_ok_and(|text| text.lines().any(|l| l.trim_start().starts_with("data_dir") || l.trim_start().starts_with("durability")))
+        });
+        let own = !config_says && !extra.iter().any(|a| *a == "--data-dir" || *a == "--durability");
         let dir = temp_dir(&format!("data-{}", N.fetch_add(1, std::sync::atomic::Ordering::Relaxed)));
         let mut args: Vec<String> = extra.iter().map(|s| s.to_string()).collect();
         if own {
