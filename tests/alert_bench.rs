@@ -3,6 +3,7 @@
 //! error contract. Nothing here looks at time. The data is the benchmark's own generated
 //! corpus (invented words).
 
+use mtgauge::alerts::rules::DEFAULT_FOR_SEGMENTS;
 use std::process::Command;
 
 use serde_json::Value;
@@ -32,7 +33,7 @@ fn a_reduced_run_finds_a_five_point_drop_with_every_rule_kind() {
     let s = &f["settings"];
     // Defaults: 10 segments/s x 5 s per evaluation; for-duration 200 segments and no seconds
     // (src/alerts/rules.rs, DEFAULT_EVAL_SECONDS, DEFAULT_FOR_SEGMENTS, DEFAULT_FOR_SECONDS).
-    assert_eq!((s["segments_per_evaluation"].as_u64(), s["for_segments"].as_u64(), s["for_seconds"].as_u64()), (Some(50), Some(200), Some(0)));
+    assert_eq!((s["segments_per_evaluation"].as_u64(), s["for_segments"].as_u64(), s["for_seconds"].as_u64()), (Some(50), Some(DEFAULT_FOR_SEGMENTS), Some(0)));
     assert_eq!((s["stable_segments"].as_u64(), s["trials_per_drop"].as_u64(), s["resamples"].as_u64(), s["recent_window"].as_u64()), (Some(SEGMENTS), Some(TRIALS), Some(200), Some(1000)));
     // The degraded system is calibrated to 5 points and measured on another sample of 4000
     // segments: the standard error of a BLEU difference there is about 0.4 points (measured
@@ -58,11 +59,11 @@ fn a_reduced_run_finds_a_five_point_drop_with_every_rule_kind() {
         assert_eq!(rule["trials"].as_u64().unwrap() + rule["fired_before_switch"].as_u64().unwrap(), TRIALS, "{name}");
         // A 5-point drop is found by every rule within the cap of 6000 segments, and not before
         // the for-duration has passed: the first evaluation where the condition holds has seen
-        // at least one degraded segment, and a below or drop alert fires 200 segments (4
-        // evaluations of 50) after it; a decline alert needs a chunk with degraded segments.
+        // at least one degraded segment, and a below or drop alert fires DEFAULT_FOR_SEGMENTS
+        // segments after it; a decline alert needs a chunk with degraded segments.
         assert!(rule["detected"].as_u64().unwrap() >= 2, "{name}: {rule}");
         let median = rule["median"].as_u64().unwrap_or_else(|| panic!("{name}: the 5-point drop is not found: {rule}"));
-        let least = if r["kind"] == "decline" { 0 } else { 200 };
+        let least = if r["kind"] == "decline" { 0 } else { DEFAULT_FOR_SEGMENTS };
         assert!(median > least && median <= 6000, "{name}: median {median}");
         // The fixed-window test beside it: one row per window size, each held to at most the
         // rule's false alarms on the same stable windows, the best among them reported.
@@ -84,7 +85,7 @@ fn help_teaches_what_is_measured_and_bad_options_fail_with_one_line() {
     let out = Command::new(BIN).args(["alert-bench", "--help"]).output().unwrap();
     assert!(out.status.success());
     let help = String::from_utf8_lossy(&out.stdout);
-    for want in ["false alerts", "for-duration", "4 evaluations", "10,000,000", "fixed-window test", "--rate", "--cap", "Runtime"] {
+    for want in ["false alerts", "for-duration", "evaluations at the default rate", "10,000,000", "fixed-window test", "--rate", "--cap", "Runtime"] {
         assert!(help.contains(want), "--help lacks {want:?}:\n{help}");
     }
     for args in [&["--ref-items", "10"][..], &["--drops", "0"], &["--points", "150"], &["--rate", "0"]] {
@@ -103,7 +104,8 @@ fn the_human_table_names_every_rule_and_the_cadence() {
         .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let text = String::from_utf8_lossy(&out.stdout);
-    for want in ["every 50 segments", "for-duration 200 segments", "degraded by 5.0 points", "measured drop", "below-2", "drop-2", "decline-2", "false/10^6", "median / p90"] {
+    let for_duration = format!("for-duration {DEFAULT_FOR_SEGMENTS} segments");
+    for want in ["every 50 segments", &for_duration, "degraded by 5.0 points", "measured drop", "below-2", "drop-2", "decline-2", "false/10^6", "median / p90"] {
         assert!(text.contains(want), "the table lacks {want:?}:\n{text}");
     }
     assert!(String::from_utf8_lossy(&out.stderr).contains("stable run"), "progress goes to stderr");

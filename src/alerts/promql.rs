@@ -423,7 +423,7 @@ points = 2
         assert!(y.contains("session:mtgauge_alert_segments:increase15m >= 300\n"));
         assert!(y.contains("session:mtgauge_alert_segments:sum{session=\"ferry.v7\"} >= 200\n"), "drop: the baseline's guard too");
         assert!(y.contains("        for: 120s\n") && y.contains("        for: 0s\n"));
-        assert!(y.contains("        # for_segments = 200: the daemon also waits"), "a rule with the default for-duration says what Prometheus cannot count: {y}");
+        assert!(y.contains(&format!("        # for_segments = {}: the daemon also waits", crate::alerts::rules::DEFAULT_FOR_SEGMENTS)), "a rule with the default for-duration says what Prometheus cannot count: {y}");
         // Labels and annotations quoted; template braces of user text kept literal.
         assert!(y.contains("          team: \"ferry \\\"mt\\\"\"\n"), "{y}");
         assert!(y.contains("          metric: \"chrf\"\n") && y.contains("          severity: \"warning\"\n"));

@@ -32,7 +32,7 @@
 //! # States (the Prometheus vocabulary)
 //! inactive -> pending when the condition holds (with at least `min_segments` behind it);
 //! pending -> firing once it has held for `for_seconds` and through `for_segments` newly scored
-//! segments (default: 200 segments for `below` and `drop`, nothing more for `decline`; a rule
+//! segments (default: 400 segments for `below` and `drop`, nothing more for `decline` or `flag-rate`; a rule
 //! that sets only `for_seconds` waits for time alone); pending -> inactive as soon as it does
 //! not. A firing alert resolves (-> inactive) only once its bound has come back past the
 //! threshold by `clear_margin` points (hysteresis), or when there are fewer than
@@ -56,7 +56,7 @@ pub const DEFAULT_FOR_SECONDS: u64 = 0;
 /// is what the detection benchmark measures (`mtgauge alert-bench`). `decline` rules wait for
 /// nothing more by default: their sequential test is itself the accumulation of evidence; nor do
 /// `flag-rate` rules, whose Wilson bound already weighs how many items were checked.
-pub const DEFAULT_FOR_SEGMENTS: u64 = 200;
+pub const DEFAULT_FOR_SEGMENTS: u64 = 400;
 /// Points past the threshold a firing alert's bound must come back by to resolve, unless the
 /// rule sets `clear_margin`.
 pub const DEFAULT_CLEAR_MARGIN: f64 = 0.5;
@@ -582,11 +582,12 @@ mod tests {
         let decline = entry("name = \"f\"\nsession = \"s\"\nwhen = \"decline\"\npoints = 2").check(0).unwrap();
         assert_eq!((decline.for_seconds, decline.for_segments), (0, 0), "decline: its test is the wait");
         let both = entry("name = \"f\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 45\nfor_seconds = 10\nfor_segments = 100").check(0).unwrap();
+        let n = DEFAULT_FOR_SEGMENTS;
         let mut t = Tracker::new(0);
         assert_eq!(t.step(&plain, m(44.0), 0, 1_000), None);
         assert_eq!(t.state, State::Pending);
-        assert_eq!(t.step(&plain, m(44.0), 3600, 1_199), None, "199 segments are not 200, however long it held");
-        assert_eq!(t.step(&plain, m(44.0), 3601, 1_200), Some(Transition::Fired));
+        assert_eq!(t.step(&plain, m(44.0), 3600, 1_000 + n - 1), None, "one segment short, however long it held");
+        assert_eq!(t.step(&plain, m(44.0), 3601, 1_000 + n), Some(Transition::Fired));
         let mut t = Tracker::new(0);
         t.step(&both, m(44.0), 0, 0);
         assert_eq!(t.step(&both, m(44.0), 5, 500), None, "segments enough, 5 s are not 10");
@@ -595,11 +596,11 @@ mod tests {
         // A pending alert whose condition lapses starts counting again.
         let mut t = Tracker::new(0);
         t.step(&plain, m(44.0), 0, 0);
-        t.step(&plain, m(46.0), 1, 150);
+        t.step(&plain, m(46.0), 1, n - 50);
         assert_eq!(t.state, State::Inactive);
-        t.step(&plain, m(44.0), 2, 160);
-        assert_eq!(t.step(&plain, m(44.0), 3, 300), None, "140 segments since it held again");
-        assert_eq!(t.step(&plain, m(44.0), 4, 360), Some(Transition::Fired));
+        t.step(&plain, m(44.0), 2, n - 40);
+        assert_eq!(t.step(&plain, m(44.0), 3, n + 100), None, "n - 60 segments since it held again");
+        assert_eq!(t.step(&plain, m(44.0), 4, 2 * n - 40), Some(Transition::Fired));
     }
 
     #[test]

@@ -365,8 +365,8 @@ mod tests {
     const WORDS: &[&str] = &["die", "Fähre", "nach", "Kiel", "fährt", "heute", "um", "neun", "Uhr", "ab", "Deck", "sieben", "bleibt", "geschlossen", "bitte", "Ticket", "bereithalten"];
 
     /// A session fed chunks of 60 segments, first close to the references, then with most words
-    /// dropped, then close again: a `decline` rule learns its baseline, fires on the drop within
-    /// a few chunks, and resolves after it; a stable run never fires.
+    /// dropped, then close again: a `decline` rule learns its baseline (BASELINE_CHUNKS chunks),
+    /// fires on the drop within a few chunks, and resolves after it; a stable run never fires.
     #[test]
     fn a_decline_rule_fires_on_a_drop_and_resolves_after() {
         let mut rng = SplitMix64::new(3);
@@ -383,9 +383,14 @@ mod tests {
         let mut trackers = HashMap::new();
         let mut scratch = Scratch::default();
         let mut states = Vec::new();
-        for chunk in 0..80 {
-            // Chunks 40..50 drop 60% of the words instead of 10%.
-            let drop = if (40..50).contains(&chunk) { 0.6 } else { 0.1 };
+        // The drop starts once the baseline is learned (and the first evaluation, which only
+        // marks where the first chunk starts), and lasts 10 chunks; the statistic, capped at
+        // twice its limit, needs about 2h / k chunks to come back to 0 after it.
+        let start = crate::alerts::shift::MIN_BASELINE_CHUNKS + 15;
+        let drop_chunks = start..start + 10;
+        for chunk in 0..start + 100 {
+            // During the drop, 60% of the words are dropped instead of 10%.
+            let drop = if drop_chunks.contains(&chunk) { 0.6 } else { 0.1 };
             let outcomes: Vec<_> = (0..60)
                 .map(|_| {
                     let seg = &segments[rng.index(segments.len())];
@@ -394,12 +399,12 @@ mod tests {
                 })
                 .collect();
             session.apply("", 0, &outcomes, 0, None).unwrap();
-            trackers = evaluate(&state, &rules, trackers, &board, None, chunk);
+            trackers = evaluate(&state, &rules, trackers, &board, None, chunk as i64);
             states.push(board.of("watched")[0].state.clone());
         }
         let first_firing = states.iter().position(|s| s == "firing");
-        assert!(states[..40].iter().all(|s| s == "inactive"), "no alarm while stable: {states:?}");
-        assert!(first_firing.is_some_and(|f| (40..44).contains(&f)), "fires within a few chunks of the drop: {states:?}");
+        assert!(states[..start].iter().all(|s| s == "inactive"), "no alarm while stable: {states:?}");
+        assert!(first_firing.is_some_and(|f| (start..start + 4).contains(&f)), "fires within a few chunks of the drop: {states:?}");
         assert_eq!(states.last().map(String::as_str), Some("inactive"), "resolves after the drop: {states:?}");
     }
 

@@ -71,8 +71,8 @@ and, in the trials, a degraded one after a switch. Both score the same randomly 
 each position. Every evaluation period the segments that arrived (--rate segments/s times the \
 default 5 s period: 50 segments at the default 10/s) are scored by the sessions and applied as \
 one batch with their replicate sums, and the daemon's own evaluator judges every rule; a rule's \
-for-duration (default: 200 segments scored while the condition holds, for below and drop; \
-decline rules wait for nothing more than their test) is thus 4 evaluations at the default rate.
+for-duration (default: 400 segments scored while the condition holds, for below and drop; \
+decline rules wait for nothing more than their test) is thus 8 evaluations at the default rate.
   The rules, all with default keys, each set for a drop of P points (--points, default 1,2): \
 below (threshold = the stable system's BLEU minus P), drop (points = P, baseline session \
 production), decline (points = P).
@@ -94,9 +94,9 @@ is set on the same stable run to let exactly as many windows alarm as the rule f
 the rule never fired: then it is the lowest stable window's score); printed beside each rule: the \
 window size with the smallest median delay, its delays, and its false alarms.
 
-Runtime: the default run takes about 5.7 minutes of CPU in a release build (calibration, stable \
-run and trials); on 2 cores shared with other builds it took 6 min 19 s and 9 min 12 s of wall \
-time, the stable run two thirds of it. The stable run scales with --segments (about 20 us of CPU \
+Runtime: the default run took 10 min 8 s of wall time on 2 cores shared with other builds, in a \
+release build (calibration 48 s, stable run 308 s, trials 251 s; the trials start after 14,000 \
+stable segments so that the decline rules' baseline is learned). The stable run scales with --segments (about 20 us of CPU \
 per segment: both sessions' scoring and replicate sums, and the evaluations, 1 per 50 segments at \
 the default rate); the trials with --trials and --cap. The figures depend only on the options, \
 the seed and the number of threads (the stable run is one stream per thread). \
