@@ -28,7 +28,7 @@ async fn history_steps_equal_the_cumulative_statistics_of_the_same_segments() {
     let mut scoring = ScoringClient::new(ch.clone());
     let mut sent = 0u64;
     for (k, chunk) in segs.iter().zip(&system.hypotheses).collect::<Vec<_>>().chunks(40).take(5).enumerate() {
-        let items = chunk.iter().map(|(s, h)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(s.id.clone())), hypothesis: (*h).clone() }).collect::<Vec<_>>();
+        let items = chunk.iter().map(|(s, h)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(s.id.clone())), hypothesis: (*h).clone(), ..Default::default() }).collect::<Vec<_>>();
         sent += items.len() as u64;
         scoring.submit(pb::ScoreBatch { session: "v8".into(), producer: "p".into(), sequence: k as u64 + 1, items, ..Default::default() }).await.unwrap();
     }
@@ -41,7 +41,7 @@ async fn history_steps_equal_the_cumulative_statistics_of_the_same_segments() {
     // One step of whole hours covering every batch: the hourly buckets summed.
     let from = before.div_euclid(3600) * 3600;
     let step = ((after + 1 - from) as u32).div_ceil(3600) * 3600;
-    let one = history.get_history(pb::GetHistoryRequest { session: "v8".into(), metric: "bleu".into(), from_unix: from, until_unix: from + i64::from(step), step_seconds: step, level: 0.0 }).await.unwrap().into_inner();
+    let one = history.get_history(pb::GetHistoryRequest { session: "v8".into(), metric: "bleu".into(), from_unix: from, until_unix: from + i64::from(step), step_seconds: step, level: 0.0, with_sums: false }).await.unwrap().into_inner();
     assert_eq!((one.resolution.as_str(), one.points.len()), ("hour", 1));
     let p = &one.points[0];
     assert_eq!(p.segments, sent);
@@ -52,7 +52,7 @@ async fn history_steps_equal_the_cumulative_statistics_of_the_same_segments() {
     assert!(one.memory_bytes > 0);
 
     // Minute steps over the same span: the segments add up to the same count.
-    let minutes = history.get_history(pb::GetHistoryRequest { session: "v8".into(), metric: "chrf".into(), from_unix: before - 60, until_unix: after + 60, step_seconds: 60, level: 0.9 }).await.unwrap().into_inner();
+    let minutes = history.get_history(pb::GetHistoryRequest { session: "v8".into(), metric: "chrf".into(), from_unix: before - 60, until_unix: after + 60, step_seconds: 60, level: 0.9, with_sums: false }).await.unwrap().into_inner();
     assert_eq!(minutes.resolution, "minute");
     assert_eq!(minutes.points.iter().map(|p| p.segments).sum::<u64>(), sent);
     for p in minutes.points.iter().filter(|p| p.segments > 0) {
