@@ -46,11 +46,11 @@ fn items() -> Vec<(pb::ScoreItem, String)> {
             _ => RUSSIAN.to_owned(),
         };
         let key = if k % 2 == 0 { pb::score_item::Key::Source(src.clone()) } else { pb::score_item::Key::SegmentId(seg.id.clone()) };
-        out.push((pb::ScoreItem { key: Some(key), hypothesis: hyp }, src));
+        out.push((pb::ScoreItem { key: Some(key), hypothesis: hyp, ..Default::default() }, src));
     }
-    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::Source(UNMATCHED_SOURCE.into())), hypothesis: RUSSIAN.into() }, UNMATCHED_SOURCE.into()));
+    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::Source(UNMATCHED_SOURCE.into())), hypothesis: RUSSIAN.into(), ..Default::default() }, UNMATCHED_SOURCE.into()));
     // An id the set does not have carries no source: not checked.
-    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId("no-such-id".into())), hypothesis: RUSSIAN.into() }, String::new()));
+    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId("no-such-id".into())), hypothesis: RUSSIAN.into(), ..Default::default() }, String::new()));
     out
 }
 

@@ -165,7 +165,7 @@ fn batches(session: &str, producer: &str, size: usize, hyps: &[&str], sources: O
             session: session.to_owned(),
             producer: producer.to_owned(),
             sequence: b as u64 + 1,
-            items: chunk.iter().enumerate().map(|(i, h)| pb::ScoreItem { key: Some(item_key(b * size + i, sources, ids)), hypothesis: (*h).to_owned() }).collect(),
+            items: chunk.iter().enumerate().map(|(i, h)| pb::ScoreItem { key: Some(item_key(b * size + i, sources, ids)), hypothesis: (*h).to_owned(), ..Default::default() }).collect(),
             ..Default::default()
         })
         .collect()
@@ -207,6 +207,7 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
         resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: Some(a.seed) }),
         target_language: a.target_language.clone().unwrap_or_default(),
         guard_settings: a.guard_settings.clone(),
+        external: Vec::new(),
     });
     let (totals, replica) = rt.block_on(stream_all(&fleet, &producer, create.as_ref(), &batches, show))?;
     if show {

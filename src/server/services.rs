@@ -112,6 +112,7 @@ fn session_info(s: &Session) -> pb::SessionInfo {
         resampling: Some(resampling_to_pb(&spec.resampling)),
         target_language: spec.target_language.clone().unwrap_or_default(),
         guard_settings: spec.guard_settings.clone(),
+        external: Vec::new(),
     }
 }
 
