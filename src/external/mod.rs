@@ -34,7 +34,7 @@ pub mod replicates;
 use std::fmt;
 use std::str::FromStr;
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 /// Decimals kept of an external value unless declared.
 pub const DEFAULT_DECIMALS: u32 = 6;
@@ -50,7 +50,7 @@ pub const MAX_EXTERNAL_NAME_LEN: usize = 64;
 pub const MAX_FIXED_MAGNITUDE: i128 = 1_000_000_000_000_000;
 
 /// One external metric a session accepts.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ExternalSpec {
     /// A Prometheus label name: `[a-zA-Z_][a-zA-Z0-9_]*`, not starting with `__`.
     pub name: String,
@@ -203,7 +203,8 @@ impl fmt::Display for ExternalSpec {
 
 /// The external metrics of a session, in declaration order (an index into it names a metric in
 /// every per-metric vector below).
-#[derive(Debug, Clone, PartialEq, Default, Serialize)]
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+#[serde(transparent)]
 pub struct Declaration {
     specs: Vec<ExternalSpec>,
 }
@@ -410,7 +411,7 @@ pub enum SumError {
 }
 
 /// Count, fixed-point sum and sum of squares of one metric's values; additive.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
 pub struct ExternalSums {
     /// Values counted.
     pub count: u64,
@@ -472,7 +473,7 @@ impl ExternalSums {
 }
 
 /// Per declared metric, its sums (declaration order); additive.
-#[derive(Debug, Clone, PartialEq, Eq, Default, Serialize)]
+#[derive(Debug, Clone, PartialEq, Eq, Default, Serialize, Deserialize)]
 pub struct ExternalTotals(pub Vec<ExternalSums>);
 
 impl ExternalTotals {
@@ -499,6 +500,77 @@ impl ExternalTotals {
         }
         let next = self.0.iter().zip(&o.0).map(|(a, b)| a.checked_add(b)).collect::<Result<Vec<_>, _>>()?;
         self.0 = next;
+        Ok(())
+    }
+}
+
+/// What one batch's external values add to a session: totals and, when the session keeps
+/// replicates, their replicate sums (computed while the batch is scored, outside any lock).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ExternalDelta {
+    /// Sums per metric.
+    pub totals: ExternalTotals,
+    /// Replicate sums (None: the session keeps none).
+    pub replicates: Option<replicates::ExternalReplicates>,
+}
+
+impl ExternalDelta {
+    /// The delta of `items` (weight key, values) under a declaration of `metrics` metrics,
+    /// with `resampling` (resamples, seed) when the session keeps replicates.
+    pub fn of(metrics: usize, resampling: Option<(usize, u64)>, items: &[(u64, ItemValues)]) -> Result<ExternalDelta, SumError> {
+        let mut totals = ExternalTotals::new(metrics);
+        let mut reps = resampling.map(|(r, seed)| replicates::ExternalReplicates::new(metrics, r, seed));
+        let mut weights = Vec::new();
+        for (key, item) in items {
+            totals.add_item(item)?;
+            if let Some(r) = &mut reps {
+                r.add(*key, item, &mut weights)?;
+            }
+        }
+        Ok(ExternalDelta { totals, replicates: reps })
+    }
+}
+
+/// A session's external statistics since creation or reset (its durable copy too).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ExternalState {
+    /// Sums per metric.
+    pub totals: ExternalTotals,
+    /// Replicate sums (None: the session keeps none).
+    pub replicates: Option<replicates::ExternalReplicates>,
+}
+
+impl ExternalState {
+    /// Empty statistics for `metrics` metrics.
+    pub fn new(metrics: usize, resampling: Option<(usize, u64)>) -> ExternalState {
+        ExternalState { totals: ExternalTotals::new(metrics), replicates: resampling.map(|(r, seed)| replicates::ExternalReplicates::new(metrics, r, seed)) }
+    }
+
+    /// Whether a copy read back fits `metrics` metrics and `resampling`.
+    pub fn fits(&self, metrics: usize, resampling: Option<(usize, u64)>) -> bool {
+        self.totals.0.len() == metrics
+            && match (&self.replicates, resampling) {
+                (Some(r), Some((n, seed))) => r.fits(metrics, n, seed),
+                (None, None) => true,
+                _ => false,
+            }
+    }
+
+    /// Add a batch's delta; nothing changes on error.
+    pub fn add(&mut self, d: &ExternalDelta) -> Result<(), SumError> {
+        let mut totals = self.totals.clone();
+        totals.merge(&d.totals)?;
+        let replicates = match (&self.replicates, &d.replicates) {
+            (Some(mine), Some(theirs)) => {
+                let mut r = mine.clone();
+                r.merge(theirs)?;
+                Some(r)
+            }
+            (None, None) => None,
+            _ => return Err(SumError::Mismatch),
+        };
+        self.totals = totals;
+        self.replicates = replicates;
         Ok(())
     }
 }

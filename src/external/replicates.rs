@@ -16,7 +16,7 @@ use crate::metric::resample::{fill_weights, percentile_interval, Interval, METHO
 use super::{ItemValues, SumError};
 
 /// Replicate counts and sums of every declared external metric.
-#[derive(Debug, Clone, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub struct ExternalReplicates {
     resamples: usize,
     seed: u64,
@@ -41,6 +41,12 @@ impl ExternalReplicates {
     /// Seed of the weights.
     pub fn seed(&self) -> u64 {
         self.seed
+    }
+
+    /// Whether these are sums of `metrics` metrics over `resamples` replicates under `seed`
+    /// (a copy read back from a store).
+    pub fn fits(&self, metrics: usize, resamples: usize, seed: u64) -> bool {
+        (self.metrics, self.resamples, self.seed) == (metrics, resamples, seed) && self.counts.len() == metrics * resamples && self.sums.len() == metrics * resamples
     }
 
     /// Whether nothing has been added.

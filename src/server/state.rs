@@ -79,6 +79,8 @@ pub struct Pending {
     pub replicates: Option<crate::metric::resample::Replicates>,
     /// The guard counts of the batch's items.
     pub guards: crate::guard::GuardCounts,
+    /// What the batch's external values add (None: none carried any).
+    pub external: Option<crate::external::ExternalDelta>,
 }
 
 /// A batch handed to [`commit`]: its effect, or the answer to wait for.
@@ -246,6 +248,9 @@ impl State {
             crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });
             session.restore_history(self.history_config(), s.history).map_err(bad)?;
+            if let Some(e) = s.external {
+                session.restore_external(e).map_err(bad)?;
+            }
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
         }
         Ok(n)
@@ -397,7 +402,7 @@ impl State {
         if resampling.resamples > MAX_SESSION_RESAMPLES {
             return Err(ServiceError::Invalid(format!("{} resamples are more than a session may keep ({MAX_SESSION_RESAMPLES})", resampling.resamples)));
         }
-        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling, target_language: None, guard_settings: Vec::new() })
+        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling, target_language: None, guard_settings: Vec::new(), external: Default::default() })
     }
 
     /// Create a session (builds its tables: CPU work, call from a blocking thread). With
@@ -465,7 +470,7 @@ impl State {
 
 /// The parts of a session definition in which `a` and `b` differ (empty: the same).
 pub fn differences(a: &SessionSpec, b: &SessionSpec) -> Vec<&'static str> {
-    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling), ("target language", a.target_language == b.target_language), ("guard settings", a.guard_settings == b.guard_settings)];
+    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling), ("target language", a.target_language == b.target_language), ("guard settings", a.guard_settings == b.guard_settings), ("external metrics", a.external == b.external)];
     parts.into_iter().filter(|(_, same)| !same).map(|(what, _)| what).collect()
 }
 
@@ -492,7 +497,18 @@ fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std
     let now = unix_now();
     for p in group {
         let current = live.is_some_and(|l| l.sessions.get(&p.session.spec().name).is_some_and(|e| Arc::ptr_eq(e.value(), &p.session)));
-        let applied = p.session.apply_at(now, &p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref(), &p.guards);
+        let mut applied = p.session.apply_at(now, &p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref(), &p.guards);
+        if let Some(a) = applied.as_mut().filter(|_| !p.session.spec().external.is_empty()) {
+            if let Some(d) = &p.external {
+                // Checked when scored; only sums near the i128 limit fail here, and then
+                // nothing is added (the batch's built-in statistics are applied already).
+                if let Err(e) = p.session.apply_external(d) {
+                    tracing::error!(session = %p.session.spec().name, error = %e, "external values not counted");
+                }
+            }
+            // Every applied batch of such a session carries the copy: the store keeps the last.
+            a.external = Some(p.session.external());
+        }
         effects.push((applied, current));
     }
     if let Some(store) = store {
