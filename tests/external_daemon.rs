@@ -70,6 +70,20 @@ fn items() -> (Vec<pb::ScoreItem>, Vec<(i128, i128)>) {
     (out, want)
 }
 
+/// Poll a sample of the server's scrape until it equals `want` (telemetry follows the
+/// acknowledgements); bounded: 500 polls.
+async fn sample_reaches(server: &Server, series: &str, want: f64) -> f64 {
+    let mut got = 0.0;
+    for _ in 0..500 {
+        got = server.sample(series);
+        if got == want {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+    got
+}
+
 fn batch(session: &str, producer: &str, sequence: u64, items: Vec<pb::ScoreItem>) -> pb::ScoreBatch {
     pb::ScoreBatch { session: session.into(), producer: producer.into(), sequence, items, ..Default::default() }
 }
@@ -135,6 +149,21 @@ async fn shuffled_shards_from_several_producers_give_the_sums_of_one() {
     let mean = qe.mean.unwrap();
     let iv = qe.interval.as_ref().expect("an interval from the session's replicates");
     assert!(iv.low < mean && mean < iv.high && iv.resamples > 0, "{iv:?} {mean}");
+
+    // Prometheus counters of both sessions: offsets from low = 0, so the sums as above; the
+    // squares over 10^decimals, rounded half to even once. Every value here is below 2^53.
+    let round_div = |q: i128, d: i128| {
+        let (a, r) = (q / d, q % d);
+        if 2 * r > d || (2 * r == d && a % 2 == 1) { a + 1 } else { a }
+    };
+    for s in ["ferry-v8", "ferry-v8-canary"] {
+        let series = |name: &str, metric: &str| format!("{name}{{session=\"{s}\",metric=\"{metric}\"}}");
+        assert_eq!(sample_reaches(&server, &series("mtgauge_external_count_total", "qe"), 600.0).await, 600.0);
+        let want_sum = want.iter().map(|w| w.0).sum::<i128>() as f64;
+        assert_eq!(sample_reaches(&server, &series("mtgauge_external_sum_total", "qe"), want_sum).await, want_sum);
+        let want_sq = round_div(want.iter().map(|w| w.1 * w.1).sum::<i128>(), 100) as f64;
+        assert_eq!(sample_reaches(&server, &series("mtgauge_external_squares_total", "edit_rate"), want_sq).await, want_sq);
+    }
 }
 
 #[tokio::test]
@@ -196,6 +225,8 @@ async fn a_durable_server_keeps_the_sums_across_a_restart() {
     let server = Server::start(&["--data-dir", &data, "--refset-dir", dir.to_str().unwrap()]);
     let ch = server.wait_serving().await;
     assert_eq!(external(&ch, "ferry-v8").await, before, "sums, replicates and so the interval come back");
+    let count = r#"mtgauge_external_count_total{session="ferry-v8",metric="qe"}"#;
+    assert_eq!(sample_reaches(&server, count, 600.0).await, 600.0, "the counters go on from the stored sums");
     let info = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "ferry-v8".into() }).await.unwrap().into_inner();
     assert_eq!(info.external, declaration().into_iter().map(|m| pb::ExternalMetric { decimals: Some(m.decimals.unwrap_or(6)), ..m }).collect::<Vec<_>>());
 

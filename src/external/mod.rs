@@ -472,6 +472,36 @@ impl ExternalSums {
     }
 }
 
+/// A metric's sums as Prometheus counters (which only grow and are whole numbers here): the
+/// count; the sum of `(value - low) x 10^decimals` (exact); and the sum of
+/// `(value - low)^2 x 10^decimals` (the exact offset sum of squares, at scale 10^(2 decimals),
+/// divided by 10^decimals and rounded half to even once over the whole sum, so it grows
+/// monotonically and stays far from the 64-bit limit). Offsetting by the declared low keeps
+/// every term non-negative for any range. Derived from the cumulative sums, so a restarted
+/// process publishes the same values. Saturates at `u64::MAX`.
+///
+/// Fleet mean: `low + sum / (count x 10^decimals)`; sample variance:
+/// `(squares / 10^decimals - sum^2 / (count x 10^(2 decimals))) / (count - 1)`.
+pub fn exported_counters(spec: &ExternalSpec, s: &ExternalSums) -> (u64, u64, u64) {
+    // In range of a validated spec: `to_fixed(low)` succeeds.
+    let low = i128::from(to_fixed(spec.low, spec.decimals).unwrap_or(0));
+    let n = i128::from(s.count);
+    let sum = s.sum.checked_sub(n.saturating_mul(low));
+    // sum (x - low)^2 = squares - 2 low sum + n low^2
+    let squares = low.checked_mul(2).and_then(|l2| l2.checked_mul(s.sum)).and_then(|a| s.squares.checked_sub(a)).and_then(|b| low.checked_mul(low).and_then(|ll| ll.checked_mul(n)).and_then(|c| b.checked_add(c)));
+    let to_u64 = |v: Option<i128>| v.map_or(u64::MAX, |v| u64::try_from(v.max(0)).unwrap_or(u64::MAX));
+    let scaled = squares.map(|q| {
+        let div = spec.scale();
+        let (quot, rem) = (q / div, q % div);
+        match (2 * rem).cmp(&div) {
+            std::cmp::Ordering::Less => quot,
+            std::cmp::Ordering::Greater => quot + 1,
+            std::cmp::Ordering::Equal => quot + (quot & 1),
+        }
+    });
+    (s.count, to_u64(sum), to_u64(scaled))
+}
+
 /// Per declared metric, its sums (declaration order); additive.
 #[derive(Debug, Clone, PartialEq, Eq, Default, Serialize, Deserialize)]
 pub struct ExternalTotals(pub Vec<ExternalSums>);

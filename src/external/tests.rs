@@ -270,3 +270,24 @@ fn interval_of_the_mean_covers_the_mean_and_narrows_with_n() {
     let ratio = w1600 / w100;
     assert!((0.15..0.4).contains(&ratio), "{ratio}");
 }
+
+#[test]
+fn exported_counters_offset_by_low_and_rescale_the_squares() {
+    let spec: ExternalSpec = "delta:-1:1:places=2".parse().unwrap();
+    let decl = Declaration::new(vec![spec.clone()]).unwrap();
+    let mut t = ExternalTotals::new(1);
+    for v in [-1.0, -0.25, 0.5] {
+        t.add_item(&decl.check_item([("delta", v)]).unwrap()).unwrap();
+    }
+    // Offsets from -1 at two places: 0, 75, 150; sum 225; squares 0 + 5625 + 22500 = 28125,
+    // over 10^2: 281.25 -> 281.
+    assert_eq!(exported_counters(&spec, &t.0[0]), (3, 225, 281));
+    // The fleet mean and variance back from the counters: -1 + 225 / 300 = -0.25.
+    let (n, sum, _) = exported_counters(&spec, &t.0[0]);
+    assert_eq!(spec.low + sum as f64 / (n as f64 * 100.0), t.0[0].mean(2).unwrap());
+    // Half to even on the squares: 2 values of 0.05 over low 0 at 2 places: 5^2 x 2 = 50 -> 0.5 -> 0.
+    let spec0: ExternalSpec = "qe:0:1:places=2".parse().unwrap();
+    assert_eq!(exported_counters(&spec0, &ExternalSums { count: 2, sum: 10, squares: 50 }), (2, 10, 0));
+    assert_eq!(exported_counters(&spec0, &ExternalSums { count: 2, sum: 10, squares: 150 }), (2, 10, 2));
+    assert_eq!(exported_counters(&spec0, &ExternalSums::default()), (0, 0, 0));
+}

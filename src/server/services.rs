@@ -236,6 +236,7 @@ impl pb::sessions_server::Sessions for Services {
             telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.resampling.describe(), &spec.labels, true);
             telemetry::init_session(&spec.name, &spec.config, [0; 3], &CorpusStats::default());
             telemetry::record_guards(&spec.name, &GuardCounts::default(), true);
+            telemetry::record_external(&spec.name, &spec.external, &crate::external::ExternalTotals::new(spec.external.len()));
         }
         tracing::info!(session = %spec.name, refset = %spec.refset, config = %spec.config.describe(), "session ready");
         Ok(Response::new(session_info(&session)))

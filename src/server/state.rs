@@ -251,6 +251,7 @@ impl State {
             if let Some(e) = s.external {
                 session.restore_external(e).map_err(bad)?;
             }
+            crate::telemetry::record_external(&session.spec().name, &session.spec().external, &session.external().totals);
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
         }
         Ok(n)
@@ -532,6 +533,8 @@ struct Published {
     added: crate::metric::CorpusStats,
     /// The session's scores after the batch, for its last batch of the group only.
     scores: Option<(crate::metric::CorpusStats, crate::metric::CorpusStats)>,
+    /// The session's external sums after the batch (sessions that declare external metrics).
+    external: Option<crate::external::ExternalTotals>,
 }
 
 /// The telemetry of a committed group, taken before the effects go to their batches: counters
@@ -543,7 +546,7 @@ fn to_publish(group: &[Pending], effects: &[(Option<Applied>, bool)]) -> Vec<Pub
         .enumerate()
         .map(|(i, (p, a))| {
             let last = !written[i + 1..].iter().any(|(q, _)| Arc::ptr_eq(&q.session, &p.session));
-            Published { session: Arc::clone(&p.session), batch: a.batch, added: a.added.clone(), scores: last.then(|| (a.cumulative.clone(), a.recent.clone())) }
+            Published { session: Arc::clone(&p.session), batch: a.batch, added: a.added.clone(), scores: last.then(|| (a.cumulative.clone(), a.recent.clone())), external: a.external.as_ref().map(|e| e.totals.clone()) }
         })
         .collect()
 }
@@ -556,6 +559,9 @@ fn publish(records: Vec<Published>) {
         crate::telemetry::record_guards(&spec.name, &r.batch.guards, false);
         if let Some((cumulative, recent)) = &r.scores {
             crate::telemetry::record_scores(&spec.name, &spec.config, cumulative, recent);
+        }
+        if let Some(t) = &r.external {
+            crate::telemetry::record_external(&spec.name, &spec.external, t);
         }
     }
 }
