@@ -238,3 +238,34 @@ async fn a_durable_server_keeps_the_sums_across_a_restart() {
     assert!(ack.duplicate);
     assert_eq!(external(&ch, "ferry-v8").await[0].count, 0);
 }
+
+/// `send --items` with `--create --external` into two replicas, then `status` over both: the
+/// fleet sums are the sums of all items, exactly.
+#[tokio::test]
+async fn status_over_two_replicas_adds_the_sums() {
+    const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
+    let dir = temp_dir("external-fleet");
+    demo_files(&dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let (a, b) = (Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]));
+    a.wait_serving().await;
+    b.wait_serving().await;
+    let run = |args: &[&str]| {
+        let out = std::process::Command::new(BIN).args(args).output().unwrap();
+        assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    for (server, lines) in [(&a, "{\"key\": \"c1\", \"scores\": {\"qe\": 0.25}}\n{\"id\": \"notice-0001\", \"hypothesis\": \"Boje.\", \"scores\": {\"qe\": 0.5}}\n"), (&b, "{\"key\": \"c3\", \"scores\": {\"qe\": 0.7500005}}\n")] {
+        let path = dir.join(format!("items-{}.jsonl", server.grpc.len() + lines.len()));
+        std::fs::write(&path, lines).unwrap();
+        run(&["send", "--server", &server.grpc, "--session", "ferry-v8", "--create", "--refset", "ferry", "--external", "qe:0:1", "--items", path.to_str().unwrap()]);
+    }
+    let both = format!("{},{}", a.grpc, b.grpc);
+    let j: serde_json::Value = serde_json::from_str(&run(&["status", "--server", &both, "--session", "ferry-v8", "--json"])).unwrap();
+    let qe = &j["external"][0];
+    // 0.7500005 at six places: a half, to the even 750000.
+    assert_eq!((qe["values"].as_u64(), qe["fixed_point"]["sum"].as_str()), (Some(3), Some("1500000")), "{j}");
+    assert_eq!(qe["mean"].as_f64(), Some(0.5));
+    let human = run(&["status", "--server", &both, "--session", "ferry-v8"]);
+    assert!(human.contains("qe          mean 0.500000, stddev 0.250000, 3 values, higher is better"), "{human}");
+}

@@ -331,7 +331,13 @@ fn merge(parts: &[(&str, &pb::SessionInfo, &pb::ScoresReport)], level: f64) -> R
         }
     }
     let [cum_reps, recent_reps] = reps;
-    merged.cumulative = Some(totals_with_intervals(&cum, &config, cum_reps.as_ref().filter(|_| complete[0]), level));
+    let mut cumulative = totals_with_intervals(&cum, &config, cum_reps.as_ref().filter(|_| complete[0]), level);
+    let external: Vec<&[pb::ExternalResult]> = parts.iter().map(|(_, _, r)| r.cumulative.as_ref().map_or(&[][..], |t| &t.external[..])).collect();
+    cumulative.external = crate::pb::external::merge_results(&external).map_err(|e| CliError::Usage(format!("session '{}': {}", first.session, e.0)))?;
+    if !cumulative.external.is_empty() {
+        notes.push("external metrics: fleet sums, mean and standard deviation, no fleet interval yet".into());
+    }
+    merged.cumulative = Some(cumulative);
     merged.recent = Some(totals_with_intervals(&recent, &config, recent_reps.as_ref().filter(|_| complete[1]), level));
     if first.resampling.and_then(|r| r.resamples).unwrap_or(0) > 0 && !(complete[0] && complete[1]) {
         notes.push("some replica sent no replicate sums for a window: no fleet interval for it".into());

@@ -58,6 +58,37 @@ pub fn results_to_pb(d: &Declaration, totals: &ExternalTotals, reps: Option<&Ext
     d.specs().iter().zip(&totals.0).enumerate().map(|(i, (s, t))| result_to_pb(s, t, reps.map(|r| (r, i)), level)).collect()
 }
 
+/// The external results of several replicas' reports added up (a fleet figure): counts and
+/// fixed-point sums exactly, the mean and standard deviation derived from the sums. No
+/// interval: replicas do not send their external replicate sums yet. Refused when the replicas
+/// declare different metrics.
+pub fn merge_results(parts: &[&[pb::ExternalResult]]) -> Result<Vec<pb::ExternalResult>, ConvertError> {
+    let Some(first) = parts.first() else { return Ok(Vec::new()) };
+    let same = |a: &pb::ExternalResult, b: &pb::ExternalResult| (a.metric.as_str(), a.decimals, a.lower_is_better) == (b.metric.as_str(), b.decimals, b.lower_is_better);
+    let int = |s: &str, what: &str| s.parse::<i128>().map_err(|_| ConvertError(format!("external {what} '{s}' is not an integer")));
+    let mut out = Vec::with_capacity(first.len());
+    for (i, head) in first.iter().enumerate() {
+        let mut acc = ExternalSums::default();
+        for p in parts {
+            let r = p.get(i).filter(|r| same(r, head) && p.len() == first.len()).ok_or_else(|| ConvertError("the replicas declare different external metrics".into()))?;
+            let s = ExternalSums { count: r.count, sum: int(&r.sum, "sum")?, squares: int(&r.squares, "squares")? };
+            acc = acc.checked_add(&s).map_err(|e| ConvertError(e.to_string()))?;
+        }
+        out.push(pb::ExternalResult {
+            metric: head.metric.clone(),
+            count: acc.count,
+            sum: acc.sum.to_string(),
+            squares: acc.squares.to_string(),
+            decimals: head.decimals,
+            mean: acc.mean(head.decimals),
+            stddev: acc.variance(head.decimals).map(f64::sqrt),
+            interval: None,
+            lower_is_better: head.lower_is_better,
+        });
+    }
+    Ok(out)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -97,6 +128,23 @@ mod tests {
         assert_eq!(item_values(&d, &item(&[("qe", 0.5), ("edit_rate", 12.5)])), Ok(ItemValues(vec![(0, 500_000), (1, 1250)])));
         let e = item_values(&d, &item(&[("zz", 0.5), ("qe", 2.0), ("aa", 0.1)])).unwrap_err();
         assert_eq!(e.metric(), Some("aa"));
+    }
+
+    #[test]
+    fn fleet_results_add_the_sums_exactly() {
+        let d = decl();
+        let totals = |vals: &[f64]| {
+            let mut t = ExternalTotals::new(d.len());
+            for v in vals {
+                t.add_item(&d.check_item([("qe", *v)]).unwrap()).unwrap();
+            }
+            results_to_pb(&d, &t, None, 0.95)
+        };
+        let (a, b, all) = (totals(&[0.25, 0.5]), totals(&[0.75]), totals(&[0.25, 0.5, 0.75]));
+        assert_eq!(merge_results(&[&a, &b]).unwrap(), all);
+        let other = results_to_pb(&Declaration::new(vec![ExternalSpec::new("qe", 0.0, 1.0).unwrap()]).unwrap(), &ExternalTotals::new(1), None, 0.95);
+        assert!(merge_results(&[&a, &other]).unwrap_err().0.contains("different"));
+        assert_eq!(merge_results(&[]).unwrap(), Vec::new());
     }
 
     #[test]
