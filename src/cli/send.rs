@@ -130,6 +130,7 @@ struct Totals {
     unknown: u64,
     rejected: u64,
     duplicate_batches: u64,
+    external: u64,
 }
 
 /// A file of lines aligned with the hypotheses: its bytes (part of the default producer id)
@@ -253,13 +254,14 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
         serde_json::json!({
             "session": a.session, "producer": producer, "replica": replica, "batches": totals.batches, "scored": totals.scored,
             "unknown": totals.unknown, "rejected": totals.rejected, "duplicate_batches": totals.duplicate_batches,
+            "with_external_values": totals.external,
         })
         .to_string()
     } else {
         format!(
             "sent {} segments in {} batches to session {} as producer {}: {} scored, {} unknown, {} rejected, {} batches already counted",
             sent, totals.batches, a.session, producer, totals.scored, totals.unknown, totals.rejected, totals.duplicate_batches
-        )
+        ) + &if totals.external > 0 { format!(", {} with external values counted", totals.external) } else { String::new() }
     };
     println!("{line}");
     Ok(())
@@ -295,6 +297,7 @@ async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSes
                 totals.unknown += ack.unknown as u64;
                 totals.rejected += ack.rejected as u64;
                 totals.duplicate_batches += ack.duplicate as u64;
+                totals.external += u64::from(ack.external);
                 next += 1;
                 if show {
                     eprint!("\r{} / {} batches acknowledged", next, batches.len());

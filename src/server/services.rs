@@ -301,6 +301,7 @@ impl InFlight {
             }
             None => {
                 ack.duplicate = true;
+                ack.external = 0;
                 (ack.rejections, ack.segment_scores, ack.guard_verdicts) = (Vec::new(), Vec::new(), Vec::new());
             }
         }
@@ -337,6 +338,7 @@ async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     drop(slot);
 
     let rejected = scored.rejections.len() as u64;
+    ack.external = scored.external_items;
     let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected, replicates: scored.replicates, guards: scored.guards, external: scored.external };
     let committing = state.submit_batch(pending)?;
     (ack.rejections, ack.segment_scores, ack.guard_verdicts) = (scored.rejections, scored.segment_scores, scored.verdicts);
@@ -359,6 +361,8 @@ struct ScoredItems {
     verdicts: Vec<pb::GuardVerdict>,
     /// What the items' external values add (None: no item carried any).
     external: Option<crate::external::ExternalDelta>,
+    /// Items whose external values are counted.
+    external_items: u32,
 }
 
 /// An item's external values, checked, or the reason it is rejected.
@@ -392,6 +396,7 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
         guards: GuardCounts::default(),
         verdicts: Vec::new(),
         external: None,
+        external_items: 0,
     };
     let mut external = Vec::new();
     let too_long = |what: &str, len: usize| format!("{what} of {len} bytes exceeds {} ({})", Limit::MaxTextBytes.key(), limits.max_text_bytes);
@@ -452,6 +457,7 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
         }
     }));
     out.replicates = session.replicate_delta(&out.outcomes);
+    out.external_items = external.len() as u32;
     if !external.is_empty() {
         out.external = Some(session.external_delta(&external).map_err(|e| ServiceError::Invalid(format!("batch refused: {e}")))?);
     }

@@ -143,7 +143,7 @@ def test_mean_sums_and_interval_against_fractions_numpy_and_student(mtgauge, ser
     values = generate_values(18, N_ITEMS)
     lines = [{"key": f"call-{i}", "scores": {"qe": v}} for i, v in enumerate(values)]
     sent = send_items(mtgauge, server, tmp_path, "qe.jsonl", lines, "ferry-v8-qe")
-    assert sent["rejected"] == 0, sent
+    assert sent["rejected"] == 0 and sent["with_external_values"] == N_ITEMS, sent
     ext = {e["metric"]: e for e in status(mtgauge, server, "ferry-v8-qe")["external"]}
     qe = ext["qe"]
     assert qe["values"] == N_ITEMS and ext["edit_rate"]["values"] == 0
@@ -196,7 +196,7 @@ def test_bad_values_are_rejected_and_counted_nowhere(mtgauge, server, tmp_path):
         {"key": "d", "scores": {"edit_rate": -1}},
     ]
     sent = send_items(mtgauge, server, tmp_path, "bad.jsonl", lines, "ferry-v8-bad")
-    assert sent["rejected"] == 3, sent
+    assert sent["rejected"] == 3 and sent["with_external_values"] == 1, sent
     ext = {e["metric"]: e for e in status(mtgauge, server, "ferry-v8-bad")["external"]}
     assert ext["qe"]["values"] == 1 and ext["qe"]["fixed_point"]["sum"] == "500000"
     assert ext["edit_rate"]["values"] == 0
