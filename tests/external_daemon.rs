@@ -186,10 +186,15 @@ async fn bad_values_reject_the_item_naming_the_metric_and_count_nothing() {
         too_many,
         it(&[("qe", 0.5)], ""),
         it(&[("qe", 0.25)], "good"),
+        // Over limits.max_text_bytes (64 KiB by default): the key and the source are bounded too.
+        it(&[("qe", 0.5)], &"k".repeat(70_000)),
+        pb::ScoreItem { key: Some(pb::score_item::Key::Source("s".repeat(70_000))), ..it(&[("qe", 0.5)], "") },
     ];
     let ack = ScoringClient::new(ch.clone()).submit(batch("ferry-v8", "p", 1, items)).await.unwrap().into_inner();
     let reasons: Vec<(u32, String)> = ack.rejections.iter().map(|r| (r.index, r.reason.clone())).collect();
-    assert_eq!((ack.rejected, ack.external), (7, 1), "{reasons:?}");
+    assert_eq!((ack.rejected, ack.external), (9, 1), "{reasons:?}");
+    assert!(reasons.iter().any(|(i, r)| *i == 8 && r.contains("item_key of 70000 bytes")), "{reasons:?}");
+    assert!(reasons.iter().any(|(i, r)| *i == 9 && r.contains("source of 70000 bytes")), "{reasons:?}");
     for (index, metric) in [(0, "bleurt_like"), (1, "qe"), (2, "edit_rate"), (3, "qe"), (4, "edit_rate")] {
         let (_, reason) = reasons.iter().find(|(i, _)| *i == index).expect("rejected");
         assert!(reason.contains(&format!("'{metric}'")), "{index}: {reason}");

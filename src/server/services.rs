@@ -418,6 +418,12 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
             };
             // An item with external values and no hypothesis is counted for those alone.
             if let (Some(v), true) = (&values, item.hypothesis.is_empty()) {
+                if let Some(pb::score_item::Key::Source(src)) = &item.key {
+                    if src.len() > limits.max_text_bytes {
+                        out.rejections.push(pb::Rejection { index, reason: too_long("source", src.len()) });
+                        continue;
+                    }
+                }
                 match external_key(item) {
                     Some(k) => external.push((k, v.clone())),
                     None => out.rejections.push(pb::Rejection { index, reason: "an item with only external values needs an item_key (or a segment_id or source) to key its bootstrap weights".into() }),
