@@ -71,6 +71,20 @@ proptest! {
         }
     }
 
+    /// Any double: no panic, and when it fits, the integer is within half a unit (plus the
+    /// double's own rounding of the product) of value x 10^d.
+    #[test]
+    fn fixed_point_of_any_double_is_the_nearest_integer(v in prop_oneof![any::<u64>().prop_map(f64::from_bits), -1e6f64..1e6, -1.0f64..1.0], d in 0u32..=MAX_DECIMALS) {
+        match to_fixed(v, d) {
+            Ok(f) => {
+                let x = v * 10f64.powi(d as i32);
+                prop_assert!((f as f64 - x).abs() <= 0.5 + x.abs() * 4.0 * f64::EPSILON, "{} {} -> {}", v, d, f);
+            }
+            Err(FixedError::NotFinite) => prop_assert!(!v.is_finite()),
+            Err(FixedError::TooLarge) => prop_assert!((v * 10f64.powi(d as i32)).abs() >= 9.2e18 * (1.0 - 1e-12)),
+        }
+    }
+
     /// Sums over any split and order of the items equal one pass over them.
     #[test]
     fn sums_are_additive_and_order_independent(values in proptest::collection::vec((0u32..=1_000_000, 0u32..=10_000), 0..60), cut in 0usize..60, seed in any::<u64>()) {
