@@ -4,7 +4,7 @@
 //! Layers, each importing only the ones below it: `cli` (one file per command) and `client`
 //! (the gRPC client side) -> `server` (gRPC services, the one shared state, the admin
 //! listeners) -> `store` (durable state) and `session` (sessions, windows, batch apply) ->
-//! `refs` (reference sets, compiled tables) and `guard` (reference-free checks) -> `metric` (statistics and the scores derived from
+//! `refs` (reference sets, compiled tables), `guard` (reference-free checks) and `external` (producers' own segment metrics) -> `metric` (statistics and the scores derived from
 //! them) -> `text` (tokenizers); `pb` (the API and its conversions), `telemetry` (metric names
 //! and recording) and `report` (renderings) serve the layers above them.
 //!
@@ -14,6 +14,7 @@ pub mod affinity;
 pub mod alerts;
 pub mod cli;
 pub mod client;
+pub mod external;
 pub mod guard;
 pub mod metric;
 pub mod pb;

@@ -118,7 +118,7 @@ fn load_req(name: &str, format: pb::RefFormat, paths: &[&str], source: &str, rep
 }
 
 fn by_id(id: &str, hyp: &str) -> pb::ScoreItem {
-    pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(id.into())), hypothesis: hyp.into() }
+    pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(id.into())), hypothesis: hyp.into(), ..Default::default() }
 }
 
 fn batch(session: &str, producer: &str, sequence: u64, items: Vec<pb::ScoreItem>) -> pb::ScoreBatch {
@@ -317,7 +317,7 @@ async fn api_bad_inputs_get_clear_statuses_and_change_nothing() {
     assert_eq!(snapshot(&ch).await, want, "a rejected item only counts as rejected");
     table.add(format!("Submit: hypothesis of {} bytes (10 MiB)", ten_mb.len()), format!("ack scored 0, rejected 1: {reason}"));
     // The same as a source key.
-    let ack = scoring.submit(batch("probe", "big", 2, vec![pb::ScoreItem { key: Some(pb::score_item::Key::Source(ten_mb.clone())), hypothesis: "Boje.".into() }])).await.unwrap().into_inner();
+    let ack = scoring.submit(batch("probe", "big", 2, vec![pb::ScoreItem { key: Some(pb::score_item::Key::Source(ten_mb.clone())), hypothesis: "Boje.".into(), ..Default::default() }])).await.unwrap().into_inner();
     assert_eq!(ack.rejected, 1, "{ack:?}");
     assert!(ack.rejections[0].reason.contains("source of") && ack.rejections[0].reason.contains("limits.max_text_bytes"), "{ack:?}");
     want.sessions[0].rejected += 1;
@@ -356,7 +356,7 @@ async fn api_bad_inputs_get_clear_statuses_and_change_nothing() {
     // Other whole-batch refusals.
     let out = failed("empty batch", scoring.submit(batch("probe", "p", 1, vec![])).await, Code::InvalidArgument, &["empty batch"]);
     table.add("Submit: batch without items", out);
-    let ack = scoring.submit(batch("probe", "p", 1, vec![pb::ScoreItem { key: None, hypothesis: "Boje.".into() }])).await.unwrap().into_inner();
+    let ack = scoring.submit(batch("probe", "p", 1, vec![pb::ScoreItem { key: None, hypothesis: "Boje.".into(), ..Default::default() }])).await.unwrap().into_inner();
     assert!(ack.rejected == 1 && ack.rejections[0].reason.contains("neither segment_id nor source"), "{ack:?}");
     want.sessions[0].rejected += 1;
     want.scores[0].rejected += 1;

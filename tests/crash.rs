@@ -50,7 +50,7 @@ fn plan(seed: u64) -> Vec<Vec<pb::ScoreBatch>> {
                     session: "crash".into(),
                     producer: format!("producer-{p}"),
                     sequence: b as u64 + 1,
-                    items: chunk.iter().map(|(i, h)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[*i].id.clone())), hypothesis: h.clone() }).collect(),
+                    items: chunk.iter().map(|(i, h)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[*i].id.clone())), hypothesis: h.clone(), ..Default::default() }).collect(),
                     want_segment_scores: false,
                     ..Default::default()
                 })
@@ -242,7 +242,7 @@ async fn a_store_that_cannot_be_written_stops_the_server_and_keeps_what_was_ackn
     let batch = |sequence: u64| {
         let items = (0..50).map(|i| {
             let s = (sequence as usize * 50 + i) % segs.len();
-            pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone() }
+            pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone(), ..Default::default() }
         });
         pb::ScoreBatch { session: "full".into(), producer: "p".into(), sequence, want_segment_scores: false, items: items.collect(), ..Default::default() }
     };

@@ -53,7 +53,7 @@ fn item(by_source: bool, seg: usize, hyp: &str) -> pb::ScoreItem {
     } else {
         pb::score_item::Key::SegmentId(segs[seg].id.clone())
     };
-    pb::ScoreItem { key: Some(key), hypothesis: hyp.to_owned() }
+    pb::ScoreItem { key: Some(key), hypothesis: hyp.to_owned(), ..Default::default() }
 }
 
 /// 16 producers, each on its own stream, send shuffled interleaved parts in batches of random
@@ -201,7 +201,7 @@ async fn lifecycle_unknown_reset_close_replace_watch() {
         session: "old".into(),
         producer: "p".into(),
         sequence: seq,
-        items: ids.iter().enumerate().map(|(k, id)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((*id).into())), hypothesis: hyp[k].clone() }).collect(),
+        items: ids.iter().enumerate().map(|(k, id)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((*id).into())), hypothesis: hyp[k].clone(), ..Default::default() }).collect(),
         want_segment_scores: false,
         ..Default::default()
     };
@@ -325,7 +325,7 @@ async fn bad_requests_get_precise_statuses() {
     assert!(e.message().contains("(ask with if_not_exists to reuse it)"), "{}", e.message());
 
     let batch = |session: &str, items: Vec<pb::ScoreItem>| pb::ScoreBatch { session: session.into(), producer: String::new(), sequence: 0, items, want_segment_scores: false, ..Default::default() };
-    let it = |id: &str, hyp: &str| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(id.into())), hypothesis: hyp.into() };
+    let it = |id: &str, hyp: &str| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(id.into())), hypothesis: hyp.into(), ..Default::default() };
     assert_eq!(code(scoring.submit(batch("nope", vec![it("notice-0001", "x")])).await), Code::NotFound);
     assert_eq!(code(scoring.submit(batch("v7", vec![])).await), Code::InvalidArgument);
     let many = (0..51).map(|_| it("notice-0001", "x")).collect();
@@ -336,7 +336,7 @@ async fn bad_requests_get_precise_statuses() {
     let s = scoring.submit(batch("v7", vec![it("notice-0001", &huge)])).await.unwrap_err();
     assert_eq!(s.code(), Code::ResourceExhausted, "oversize message: {s:?}");
     assert!(s.message().contains("max_message_bytes"), "oversize message: {s:?}");
-    let ack = scoring.submit(batch("v7", vec![pb::ScoreItem { key: None, hypothesis: "x".into() }, it("notice-0001", &"x".repeat(2001)), it("notice-0001", "Hunde")])).await.unwrap().into_inner();
+    let ack = scoring.submit(batch("v7", vec![pb::ScoreItem { key: None, hypothesis: "x".into(), ..Default::default() }, it("notice-0001", &"x".repeat(2001)), it("notice-0001", "Hunde")])).await.unwrap().into_inner();
     assert_eq!((ack.scored, ack.rejected), (1, 2));
     assert!(ack.rejections[0].reason.contains("neither"));
     assert!(ack.rejections[1].reason.contains("limits.max_text_bytes"));

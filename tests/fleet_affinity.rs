@@ -275,7 +275,7 @@ async fn a_misrouted_batch_is_refused_naming_the_rule() {
     let names = fleet.names.clone();
     let producer = (0..).map(|k| format!("probe-worker-{k}")).find(|p| mtgauge::affinity::owner(p, &names) == Some("r1")).unwrap();
     let seg = demo_segments().remove(0);
-    let batch = |seq: u64, declared: Vec<String>| pb::ScoreBatch { session: SESSION.into(), producer: producer.clone(), sequence: seq, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(seg.id.clone())), hypothesis: "Die Fähre fährt um neun.".into() }], replicas: declared, ..Default::default() };
+    let batch = |seq: u64, declared: Vec<String>| pb::ScoreBatch { session: SESSION.into(), producer: producer.clone(), sequence: seq, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(seg.id.clone())), hypothesis: "Die Fähre fährt um neun.".into(), ..Default::default() }], replicas: declared, ..Default::default() };
     for s in &fleet.servers {
         let ch = s.channel().await;
         mtgauge::pb::sessions_client::SessionsClient::new(ch).create(pb::CreateSessionRequest { name: SESSION.into(), refset: "ferry".into(), ..Default::default() }).await.unwrap();

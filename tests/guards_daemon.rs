@@ -46,11 +46,11 @@ fn items() -> Vec<(pb::ScoreItem, String)> {
             _ => RUSSIAN.to_owned(),
         };
         let key = if k % 2 == 0 { pb::score_item::Key::Source(src.clone()) } else { pb::score_item::Key::SegmentId(seg.id.clone()) };
-        out.push((pb::ScoreItem { key: Some(key), hypothesis: hyp }, src));
+        out.push((pb::ScoreItem { key: Some(key), hypothesis: hyp, ..Default::default() }, src));
     }
-    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::Source(UNMATCHED_SOURCE.into())), hypothesis: RUSSIAN.into() }, UNMATCHED_SOURCE.into()));
+    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::Source(UNMATCHED_SOURCE.into())), hypothesis: RUSSIAN.into(), ..Default::default() }, UNMATCHED_SOURCE.into()));
     // An id the set does not have carries no source: not checked.
-    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId("no-such-id".into())), hypothesis: RUSSIAN.into() }, String::new()));
+    out.push((pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId("no-such-id".into())), hypothesis: RUSSIAN.into(), ..Default::default() }, String::new()));
     out
 }
 
@@ -215,7 +215,7 @@ async fn reference_free_session_checks_items_with_a_source() {
     let items: Vec<(pb::ScoreItem, String)> = items()
         .into_iter()
         .filter(|(_, src)| !src.is_empty())
-        .map(|(it, src)| (pb::ScoreItem { key: Some(pb::score_item::Key::Source(src.clone())), hypothesis: it.hypothesis }, src))
+        .map(|(it, src)| (pb::ScoreItem { key: Some(pb::score_item::Key::Source(src.clone())), hypothesis: it.hypothesis, ..Default::default() }, src))
         .collect();
     let c = GuardConfig::default().with_target("de").unwrap();
     let mut want = GuardCounts::default();
@@ -300,7 +300,7 @@ async fn flag_rate_rule_fires_on_the_session_copying_its_sources() {
             .enumerate()
             .map(|(k, s)| {
                 let hyp = if copy_every > 0 && k % copy_every == 0 { s.source_text().to_owned() } else { s.refs[0].clone() };
-                pb::ScoreItem { key: Some(pb::score_item::Key::Source(s.source_text().to_owned())), hypothesis: hyp }
+                pb::ScoreItem { key: Some(pb::score_item::Key::Source(s.source_text().to_owned())), hypothesis: hyp, ..Default::default() }
             })
             .collect();
         let ack = ScoringClient::new(ch.clone()).submit(pb::ScoreBatch { session: name.into(), producer: "p".into(), sequence: 1, items, ..Default::default() }).await.unwrap().into_inner();

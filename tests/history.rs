@@ -28,7 +28,7 @@ async fn history_steps_equal_the_cumulative_statistics_of_the_same_segments() {
     let mut scoring = ScoringClient::new(ch.clone());
     let mut sent = 0u64;
     for (k, chunk) in segs.iter().zip(&system.hypotheses).collect::<Vec<_>>().chunks(40).take(5).enumerate() {
-        let items = chunk.iter().map(|(s, h)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(s.id.clone())), hypothesis: (*h).clone() }).collect::<Vec<_>>();
+        let items = chunk.iter().map(|(s, h)| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(s.id.clone())), hypothesis: (*h).clone(), ..Default::default() }).collect::<Vec<_>>();
         sent += items.len() as u64;
         scoring.submit(pb::ScoreBatch { session: "v8".into(), producer: "p".into(), sequence: k as u64 + 1, items, ..Default::default() }).await.unwrap();
     }

@@ -46,7 +46,7 @@ fn seed(dir: &std::path::Path, now: i64) -> Vec<(String, usize)> {
     let mut out = Vec::new();
     for (name, drop_at) in [("ferry-v8", None), ("ferry-v8-canary", Some(30))] {
         let labels = [("route".to_string(), "tarnholm".to_string())].into();
-        let spec = SessionSpec { name: name.into(), refset: "ferry".into(), config: ScoreConfig::default(), labels, window: 200, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() };
+        let spec = SessionSpec { name: name.into(), refset: "ferry".into(), config: ScoreConfig::default(), labels, window: 200, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new(), external: Default::default() };
         store.put_session(&spec, &set.digest_hex(), now - 3000).unwrap();
         let session = Session::new(spec, Arc::clone(&set), now - 3000);
         let mut scratch = Scratch::default();

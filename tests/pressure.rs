@@ -191,7 +191,7 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
         items: (0..BATCH)
             .map(|i| {
                 let key = if b.is_multiple_of(2) { pb::score_item::Key::SegmentId(format!("no-such-segment-{b:06}-{i:06}")) } else { pb::score_item::Key::Source(format!("  Unknown  notice {b:06} {i:06}  ")) };
-                pb::ScoreItem { key: Some(key), hypothesis: "die fähre fährt um neun".into() }
+                pb::ScoreItem { key: Some(key), hypothesis: "die fähre fährt um neun".into(), ..Default::default() }
             })
             .collect(),
         ..Default::default()
@@ -227,7 +227,7 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
     assert!(grown < 8 * 1024, "memory grew {grown} KiB over a flood of unknown ids and sources");
     // And the server still scores.
     let segs = demo_segments();
-    let ok = pb::ScoreBatch { session: "flood".into(), producer: "after".into(), sequence: 1, want_segment_scores: false, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[0].id.clone())), hypothesis: segs[0].refs[0].clone() }], ..Default::default() };
+    let ok = pb::ScoreBatch { session: "flood".into(), producer: "after".into(), sequence: 1, want_segment_scores: false, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[0].id.clone())), hypothesis: segs[0].refs[0].clone(), ..Default::default() }], ..Default::default() };
     let ack = scoring.submit(ok).await.unwrap().into_inner();
     assert_eq!(ack.scored, 1);
 }
@@ -252,7 +252,7 @@ async fn a_subscriber_that_stops_reading_skips_reports_instead_of_queueing_them(
     for b in 0..8u64 {
         let items = (0..10).map(|i| {
             let s = (b as usize * 10 + i) % segs.len();
-            pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone() }
+            pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(segs[s].id.clone())), hypothesis: hyps[s].clone(), ..Default::default() }
         });
         scoring.submit(pb::ScoreBatch { session: "w".into(), producer: "p".into(), sequence: b + 1, want_segment_scores: false, items: items.collect(), ..Default::default() }).await.unwrap();
         fast.message().await.unwrap().expect("the reading subscriber gets its reports");

@@ -162,7 +162,7 @@ async fn tokens_scopes_and_secrecy() {
     assert!(e.message().contains("probe-workers") && !e.message().contains(submit), "{}", e.message());
     sessions.create(with(Some(admin), create())).await.expect("admin creates");
 
-    let batch = || pb::ScoreBatch { session: "s".into(), producer: String::new(), sequence: 0, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId("notice-0001".into())), hypothesis: "Hunde an Deck 4".into() }], want_segment_scores: false, ..Default::default() };
+    let batch = || pb::ScoreBatch { session: "s".into(), producer: String::new(), sequence: 0, items: vec![pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId("notice-0001".into())), hypothesis: "Hunde an Deck 4".into(), ..Default::default() }], want_segment_scores: false, ..Default::default() };
     let mut scoring = ScoringClient::new(ch.clone());
     let mut r = tonic::Request::new(batch());
     r.metadata_mut().insert("authorization", format!("Bearer {read}").parse().unwrap());

@@ -255,7 +255,7 @@ async fn drive(ch: &Conn, session: &str, corpus: &Arc<Corpus>, a: &LoadArgs, pac
                 producer: String::new(),
                 sequence: 0,
                 items: (b * a.batch..((b + 1) * a.batch).min(n))
-                    .map(|i| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((i + 1).to_string())), hypothesis: corpus.hyps[i].clone() })
+                    .map(|i| pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId((i + 1).to_string())), hypothesis: corpus.hyps[i].clone(), ..Default::default() })
                     .collect(),
                 ..Default::default()
             })

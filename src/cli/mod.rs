@@ -14,6 +14,7 @@ mod report;
 mod rules;
 mod score;
 mod send;
+mod send_items;
 mod serve;
 mod status;
 mod token;

@@ -64,8 +64,19 @@ pub struct SendArgs {
     #[arg(long, value_name = "NAME")]
     pub session: String,
     /// Hypothesis file, one segment per line ("-" for stdin).
-    #[arg(long, value_name = "FILE")]
-    pub hyp: String,
+    #[arg(long, value_name = "FILE", required_unless_present = "items")]
+    pub hyp: Option<String>,
+    /// Items as JSONL instead of --hyp, one object a line: "id" (segment id) or "source",
+    /// "hypothesis" (optional when "scores" is given), "scores" ({"NAME": value, ...}: the
+    /// session's external metrics), "key" (the item's key for the bootstrap weights of its
+    /// scores, needed without id and source) ("-" for stdin).
+    #[arg(long, value_name = "FILE.jsonl", conflicts_with_all = ["hyp", "source", "ids"])]
+    pub items: Option<String>,
+    /// With --create: an external metric the session accepts (repeatable):
+    /// NAME:LOW:HIGH, then optionally :better=lower (default higher) and :places=N, the
+    /// decimals kept (default DEFAULT_DECIMALS = 6), e.g. qe:0:1 or edit_rate:0:100:better=lower:places=2.
+    #[arg(long = "external", value_name = "NAME:LOW:HIGH[:better=lower][:places=N]", requires = "create")]
+    pub external: Vec<crate::external::ExternalSpec>,
     /// Key items by the source text on the same line of this file instead of the line number.
     #[arg(long, value_name = "FILE")]
     pub source: Option<String>,
@@ -123,6 +134,7 @@ struct Totals {
     duplicate_batches: u64,
     /// The reference-free guards' counts of the acknowledged batches.
     guards: crate::guard::GuardCounts,
+    external: u64,
 }
 
 /// A file of lines aligned with the hypotheses: its bytes (part of the default producer id)
@@ -136,7 +148,7 @@ fn aligned<'a>(hyp_name: &str, hyps: usize, path: Option<&str>, bytes: &'a Optio
 
 /// The default producer id: stable for the same session, inputs and batch size, so that
 /// re-running the same command counts nothing twice. `inputs`: hypotheses, sources, ids.
-fn default_producer(session: &str, inputs: [Option<&[u8]>; 3], batch: usize) -> String {
+fn default_producer(session: &str, inputs: [Option<&[u8]>; 4], batch: usize) -> String {
     let mut h = Sha256::new();
     h.update(session.as_bytes());
     for (tag, bytes) in inputs.iter().enumerate() {
@@ -169,10 +181,21 @@ fn batches(session: &str, producer: &str, size: usize, hyps: &[&str], sources: O
             session: session.to_owned(),
             producer: producer.to_owned(),
             sequence: b as u64 + 1,
-            items: chunk.iter().enumerate().map(|(i, h)| pb::ScoreItem { key: Some(item_key(b * size + i, sources, ids)), hypothesis: (*h).to_owned() }).collect(),
+            items: chunk.iter().enumerate().map(|(i, h)| pb::ScoreItem { key: Some(item_key(b * size + i, sources, ids)), hypothesis: (*h).to_owned(), ..Default::default() }).collect(),
             ..Default::default()
         })
         .collect()
+}
+
+/// Items (of `--items`) in batches of `size`, numbered from 1 for `producer`.
+fn item_batches(session: &str, producer: &str, size: usize, items: Vec<pb::ScoreItem>) -> Vec<pb::ScoreBatch> {
+    let mut out = Vec::with_capacity(items.len().div_ceil(size));
+    let mut rest = items.into_iter().peekable();
+    while rest.peek().is_some() {
+        let chunk: Vec<pb::ScoreItem> = rest.by_ref().take(size).collect();
+        out.push(pb::ScoreBatch { session: session.to_owned(), producer: producer.to_owned(), sequence: out.len() as u64 + 1, items: chunk, ..Default::default() });
+    }
+    out
 }
 
 /// `--label KEY=VALUE` flags as a map.
@@ -190,15 +213,29 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
     if a.create && a.refset.is_none() && a.target_language.is_none() {
         return Err(CliError::Usage("--create needs --refset, or --target-language for a session without references".into()));
     }
-    let hyp_bytes = read_bytes(&a.hyp)?;
-    let hyp_name = display_name(&a.hyp);
-    let hyps = split_lines(hyp_name, &hyp_bytes)?;
-    let src_bytes = a.source.as_deref().map(read_bytes).transpose()?;
-    let sources = aligned(hyp_name, hyps.len(), a.source.as_deref(), &src_bytes)?;
-    let id_bytes = a.ids.as_deref().map(read_bytes).transpose()?;
-    let ids = aligned(hyp_name, hyps.len(), a.ids.as_deref(), &id_bytes)?;
-    let producer = a.producer.clone().unwrap_or_else(|| default_producer(&a.session, [Some(&hyp_bytes), src_bytes.as_deref(), id_bytes.as_deref()], a.batch));
-    let batches = batches(&a.session, &producer, a.batch, &hyps, sources.as_deref(), ids.as_deref());
+    let (producer, batches, sent) = match (&a.items, &a.hyp) {
+        (Some(path), _) => {
+            let bytes = read_bytes(path)?;
+            let items = super::send_items::parse_items(display_name(path), &bytes)?;
+            // Tag 3: an items file, apart from the three line-file roles.
+            let producer = a.producer.clone().unwrap_or_else(|| default_producer(&a.session, [None, None, None, Some(&bytes)], a.batch));
+            let n = items.len();
+            (producer.clone(), item_batches(&a.session, &producer, a.batch, items), n)
+        }
+        (None, Some(hyp)) => {
+            let hyp_bytes = read_bytes(hyp)?;
+            let hyp_name = display_name(hyp);
+            let hyps = split_lines(hyp_name, &hyp_bytes)?;
+            let src_bytes = a.source.as_deref().map(read_bytes).transpose()?;
+            let sources = aligned(hyp_name, hyps.len(), a.source.as_deref(), &src_bytes)?;
+            let id_bytes = a.ids.as_deref().map(read_bytes).transpose()?;
+            let ids = aligned(hyp_name, hyps.len(), a.ids.as_deref(), &id_bytes)?;
+            let producer = a.producer.clone().unwrap_or_else(|| default_producer(&a.session, [Some(&hyp_bytes), src_bytes.as_deref(), id_bytes.as_deref(), None], a.batch));
+            let b = batches(&a.session, &producer, a.batch, &hyps, sources.as_deref(), ids.as_deref());
+            (producer, b, hyps.len())
+        }
+        (None, None) => return Err(CliError::Usage("give --hyp or --items".into())),
+    };
     let config = a.scoring.config()?;
     let labels = labels(&a.labels)?;
     let show = stderr_is_terminal() && !a.json;
@@ -214,6 +251,7 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
         resampling: Some(pb::Resampling { resamples: Some(a.resamples as u32), seed: Some(a.seed) }),
         target_language: a.target_language.clone().unwrap_or_default(),
         guard_settings: a.guard_settings.clone(),
+        external: a.external.iter().map(crate::pb::external::spec_to_pb).collect(),
     });
     let (totals, replica) = rt.block_on(stream_all(&fleet, &producer, create.as_ref(), &batches, show))?;
     if show {
@@ -224,13 +262,17 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
             "session": a.session, "producer": producer, "replica": replica, "batches": totals.batches, "scored": totals.scored,
             "unknown": totals.unknown, "rejected": totals.rejected, "duplicate_batches": totals.duplicate_batches,
             "guards": crate::report::guards_json(&totals.guards, None),
+            "with_external_values": totals.external,
         })
         .to_string()
     } else {
         let mut line = format!(
             "sent {} segments in {} batches to session {} as producer {}: {} scored, {} unknown, {} rejected, {} batches already counted",
-            hyps.len(), totals.batches, a.session, producer, totals.scored, totals.unknown, totals.rejected, totals.duplicate_batches
+            sent, totals.batches, a.session, producer, totals.scored, totals.unknown, totals.rejected, totals.duplicate_batches
         );
+        if totals.external > 0 {
+            line += &format!(", {} with external values counted", totals.external);
+        }
         if totals.guards.checked > 0 {
             let flagged: Vec<String> = crate::guard::Guard::ALL.iter().filter(|&&g| totals.guards.flagged_by(g) > 0).map(|&g| format!("{} {g}", totals.guards.flagged_by(g))).collect();
             line += &format!("; guards checked {}, flagged: {}", totals.guards.checked, if flagged.is_empty() { "none".to_owned() } else { flagged.join(", ") });
@@ -274,6 +316,7 @@ async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSes
                 if let Some(g) = &ack.guards {
                     totals.guards += crate::pb::convert::guard_tally_from_pb(g);
                 }
+                totals.external += u64::from(ack.external);
                 next += 1;
                 if show {
                     eprint!("\r{} / {} batches acknowledged", next, batches.len());
@@ -323,9 +366,9 @@ mod tests {
         // ids, the batch size as 8 little-endian bytes; first 8 bytes in hex), computed with
         // Python's hashlib: a re-run after an upgrade keeps its producer id.
         let hyp = "Die Fähre.\n".as_bytes();
-        assert_eq!(default_producer("v7", [Some(hyp), Some(b"The ferry.\n"), None], 100), "send-15fad8dc936f7382");
-        assert_eq!(default_producer("v7", [Some(hyp), None, None], 100), "send-c9595bb27b1bfd38");
-        assert_ne!(default_producer("v7", [Some(hyp), None, None], 10), default_producer("v7", [Some(hyp), None, None], 100));
+        assert_eq!(default_producer("v7", [Some(hyp), Some(b"The ferry.\n"), None, None], 100), "send-15fad8dc936f7382");
+        assert_eq!(default_producer("v7", [Some(hyp), None, None, None], 100), "send-c9595bb27b1bfd38");
+        assert_ne!(default_producer("v7", [Some(hyp), None, None, None], 10), default_producer("v7", [Some(hyp), None, None, None], 100));
     }
 
     #[test]

@@ -67,12 +67,40 @@ fn window_view(t: Option<&pb::Totals>, config: &ScoreConfig, indent: &str) -> (V
     (Value::Object(m), lines)
 }
 
+/// The external metrics of a window: JSON (exact sums as decimal strings) and one line each.
+fn external_view(t: Option<&pb::Totals>, indent: &str) -> (Value, Vec<String>) {
+    let results = t.map_or(&[][..], |t| &t.external[..]);
+    let json = results
+        .iter()
+        .map(|e| {
+            json!({
+                "metric": e.metric, "values": e.count, "mean": e.mean, "stddev": e.stddev,
+                "interval": e.interval.as_ref().map(|i| json!({"level": i.level, "low": i.low, "high": i.high, "resamples": i.resamples, "method": i.method, "seed": i.seed})),
+                "fixed_point": {"decimals": e.decimals, "sum": e.sum, "squares": e.squares},
+                "better": if e.lower_is_better { "lower" } else { "higher" },
+            })
+        })
+        .collect::<Vec<_>>();
+    let lines = results
+        .iter()
+        .map(|e| {
+            let d = e.decimals.min(6) as usize;
+            let mean = e.mean.map_or_else(|| "no values".to_owned(), |m| format!("mean {m:.d$}"));
+            let range = e.interval.as_ref().map_or_else(String::new, |i| format!(" ({:.d$} .. {:.d$}, {}% interval)", i.low, i.high, (100.0 * i.level * 1e6).round() / 1e6));
+            let sd = e.stddev.map_or_else(String::new, |s| format!(", stddev {s:.d$}"));
+            format!("{indent}{:<12}{mean}{range}{sd}, {} values, {} is better", e.metric, e.count, if e.lower_is_better { "lower" } else { "higher" })
+        })
+        .collect();
+    (Value::Array(json), lines)
+}
+
 fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(Value, String), CliError> {
     let config = config_from_pb(r.config.as_ref()).map_err(|e| CliError::Usage(format!("server sent a bad configuration: {e}")))?;
     let cumulative = stats_from_pb(r.cumulative.as_ref().unwrap_or(&Default::default()));
     let recent = stats_from_pb(r.recent.as_ref().unwrap_or(&Default::default()));
     let (cum_json, cum_ranges) = window_view(r.cumulative.as_ref(), &config, "    ");
     let (recent_json, recent_ranges) = window_view(r.recent.as_ref(), &config, "    ");
+    let (external_json, external_lines) = external_view(r.cumulative.as_ref(), "    ");
     let resampling = r.resampling.unwrap_or_default();
     let mut config_j = config_json(&config);
     // The settings behind the intervals, as `score --interval` records them.
@@ -90,6 +118,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
         "config": config_j,
         "cumulative": cum_json,
         "recent": recent_json,
+        "external": external_json,
         "interval_note": (!r.interval_note.is_empty()).then_some(&r.interval_note),
         "alerts": r.alerts.iter().map(|a| json!({
             "rule": a.rule, "state": a.state, "since_unix": a.since_unix, "condition": a.condition,
@@ -108,6 +137,13 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     for l in stats_lines(&cumulative, &config, "    ").into_iter().chain(cum_ranges) {
         text += &l;
         text.push('\n');
+    }
+    if !external_lines.is_empty() {
+        text += "  external metrics (cumulative):\n";
+        for l in external_lines {
+            text += &l;
+            text.push('\n');
+        }
     }
     text += &format!("  recent (last {} segments): {} segments\n", r.window, recent.segments);
     for l in stats_lines(&recent, &config, "    ").into_iter().chain(recent_ranges) {
@@ -295,7 +331,13 @@ fn merge(parts: &[(&str, &pb::SessionInfo, &pb::ScoresReport)], level: f64) -> R
         }
     }
     let [cum_reps, recent_reps] = reps;
-    merged.cumulative = Some(totals_with_intervals(&cum, &config, cum_reps.as_ref().filter(|_| complete[0]), level));
+    let mut cumulative = totals_with_intervals(&cum, &config, cum_reps.as_ref().filter(|_| complete[0]), level);
+    let external: Vec<&[pb::ExternalResult]> = parts.iter().map(|(_, _, r)| r.cumulative.as_ref().map_or(&[][..], |t| &t.external[..])).collect();
+    cumulative.external = crate::pb::external::merge_results(&external).map_err(|e| CliError::Usage(format!("session '{}': {}", first.session, e.0)))?;
+    if !cumulative.external.is_empty() {
+        notes.push("external metrics: fleet sums, mean and standard deviation, no fleet interval yet".into());
+    }
+    merged.cumulative = Some(cumulative);
     merged.recent = Some(totals_with_intervals(&recent, &config, recent_reps.as_ref().filter(|_| complete[1]), level));
     if first.resampling.and_then(|r| r.resamples).unwrap_or(0) > 0 && !(complete[0] && complete[1]) {
         notes.push("some replica sent no replicate sums for a window: no fleet interval for it".into());

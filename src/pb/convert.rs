@@ -117,6 +117,7 @@ pub fn totals_to_pb(st: &CorpusStats, c: &ScoreConfig) -> pb::Totals {
                 interval: None,
             })
             .collect(),
+        external: Vec::new(),
     }
 }
 

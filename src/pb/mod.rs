@@ -17,3 +17,4 @@ pub const STREAM_WINDOW_BYTES: u32 = 1 << 20;
 pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
 
 pub mod convert;
+pub mod external;

@@ -123,7 +123,7 @@ mod tests {
         let mut rng = SplitMix64::new(21);
         let segments: Vec<SegmentInput> = (0..400).map(|i| SegmentInput { id: format!("n{i}"), source: None, refs: vec![(0..10).map(|_| WORDS[rng.index(WORDS.len())]).collect::<Vec<_>>().join(" ")] }).collect();
         let set = Arc::new(RefSet::new(segments.clone()).unwrap());
-        let spec = |name: &str| SessionSpec { name: name.into(), refset: "ferry".into(), config: Default::default(), labels: Default::default(), window, resampling: Default::default(), target_language: None, guard_settings: Vec::new() };
+        let spec = |name: &str| SessionSpec { name: name.into(), refset: "ferry".into(), config: Default::default(), labels: Default::default(), window, resampling: Default::default(), target_language: None, guard_settings: Vec::new(), external: Default::default() };
         (Session::new(spec("a"), Arc::clone(&set), 0), Session::new(spec("b"), set, 0), segments)
     }
 

@@ -112,6 +112,7 @@ fn session_info(s: &Session) -> pb::SessionInfo {
         resampling: Some(resampling_to_pb(&spec.resampling)),
         target_language: spec.target_language.clone().unwrap_or_default(),
         guard_settings: spec.guard_settings.clone(),
+        external: crate::pb::external::declaration_to_pb(&spec.external),
     }
 }
 
@@ -225,6 +226,7 @@ impl pb::sessions_server::Sessions for Services {
         spec.target_language = target_language_from_pb(&r.target_language)?;
         spec.guard_settings = r.guard_settings.iter().map(|s| s.trim().to_owned()).collect();
         crate::session::check_guard_settings(spec.target_language.as_deref(), &spec.guard_settings).map_err(|e| ServiceError::Invalid(e.to_string()))?;
+        spec.external = crate::pb::external::declaration_from_pb(&r.external).map_err(|e| ServiceError::Invalid(e.0))?;
         let state = self.state.clone();
         let (session, created) = blocking(move || state.create_session(spec, r.if_not_exists)).await?;
         let spec = session.spec();
@@ -234,6 +236,7 @@ impl pb::sessions_server::Sessions for Services {
             telemetry::record_session_info(&spec.name, &spec.refset, &session.refs().digest_hex(), &spec.config.describe(), &spec.resampling.describe(), &spec.labels, true);
             telemetry::init_session(&spec.name, &spec.config, [0; 3], &CorpusStats::default());
             telemetry::record_guards(&spec.name, &GuardCounts::default(), true);
+            telemetry::record_external(&spec.name, &spec.external, &crate::external::ExternalTotals::new(spec.external.len()));
         }
         tracing::info!(session = %spec.name, refset = %spec.refset, config = %spec.config.describe(), "session ready");
         Ok(Response::new(session_info(&session)))
@@ -298,6 +301,7 @@ impl InFlight {
             }
             None => {
                 ack.duplicate = true;
+                ack.external = 0;
                 (ack.rejections, ack.segment_scores, ack.guard_verdicts) = (Vec::new(), Vec::new(), Vec::new());
             }
         }
@@ -326,7 +330,7 @@ async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     let scoring = Arc::clone(&session);
     let slot = state.scoring_slot().await;
     let inline = batch.items.len() <= INLINE_BATCH_ITEMS;
-    let work = move || Ok(score_items(&scoring, &batch, &limits));
+    let work = move || score_items(&scoring, &batch, &limits);
     // A small batch is scored right here (well under a millisecond: the runtime stays
     // responsive, see `mtgauge load`'s health probe); a large one on the blocking pool, which
     // costs two thread hand-offs.
@@ -334,7 +338,8 @@ async fn begin_batch(state: &State, batch: pb::ScoreBatch) -> Result<InFlight> {
     drop(slot);
 
     let rejected = scored.rejections.len() as u64;
-    let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected, replicates: scored.replicates, guards: scored.guards };
+    ack.external = scored.external_items;
+    let pending = Pending { session, producer: ack.producer.clone(), sequence: ack.sequence, outcomes: scored.outcomes, rejected, replicates: scored.replicates, guards: scored.guards, external: scored.external };
     let committing = state.submit_batch(pending)?;
     (ack.rejections, ack.segment_scores, ack.guard_verdicts) = (scored.rejections, scored.segment_scores, scored.verdicts);
     Ok(InFlight { ack, committing: Some(committing), started })
@@ -354,11 +359,35 @@ struct ScoredItems {
     guards: GuardCounts,
     /// Per checked item, its guard verdict, when the batch asked for segment scores.
     verdicts: Vec<pb::GuardVerdict>,
+    /// What the items' external values add (None: no item carried any).
+    external: Option<crate::external::ExternalDelta>,
+    /// Items whose external values are counted.
+    external_items: u32,
+}
+
+/// An item's external values, checked, or the reason it is rejected.
+fn external_values(session: &Session, item: &pb::ScoreItem) -> std::result::Result<Option<crate::external::ItemValues>, String> {
+    if item.external.is_empty() {
+        return Ok(None);
+    }
+    crate::pb::external::item_values(&session.spec().external, item).map(Some).map_err(|e| e.to_string())
+}
+
+/// The bytes that key an item's bootstrap weights for its external values: the producer's item
+/// key when given, else the segment id or source text it names.
+fn external_key(item: &pb::ScoreItem) -> Option<u64> {
+    let bytes = match (&item.item_key, &item.key) {
+        (k, _) if !k.is_empty() => k.as_bytes(),
+        (_, Some(pb::score_item::Key::SegmentId(id))) => id.as_bytes(),
+        (_, Some(pb::score_item::Key::Source(src))) => src.as_bytes(),
+        (_, None) => return None,
+    };
+    Some(crate::metric::resample::segment_key(bytes))
 }
 
 /// Validate and score every item of a batch (CPU work, no lock taken); per-segment scores are
 /// derived here, once.
-fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits) -> ScoredItems {
+fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits) -> Result<ScoredItems> {
     let mut out = ScoredItems {
         outcomes: Vec::with_capacity(batch.items.len()),
         rejections: Vec::new(),
@@ -366,13 +395,41 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
         replicates: None,
         guards: GuardCounts::default(),
         verdicts: Vec::new(),
+        external: None,
+        external_items: 0,
     };
+    let mut external = Vec::new();
     let too_long = |what: &str, len: usize| format!("{what} of {len} bytes exceeds {} ({})", Limit::MaxTextBytes.key(), limits.max_text_bytes);
     SCRATCH.with(|s| GUARD_SCRATCH.with(|g| {
         let scratch = &mut s.borrow_mut();
         let guard_scratch = &mut g.borrow_mut();
         for (i, item) in batch.items.iter().enumerate() {
             let index = i as u32;
+            if item.item_key.len() > limits.max_text_bytes {
+                out.rejections.push(pb::Rejection { index, reason: too_long("item_key", item.item_key.len()) });
+                continue;
+            }
+            let values = match external_values(session, item) {
+                Ok(v) => v,
+                Err(reason) => {
+                    out.rejections.push(pb::Rejection { index, reason });
+                    continue;
+                }
+            };
+            // An item with external values and no hypothesis is counted for those alone.
+            if let (Some(v), true) = (&values, item.hypothesis.is_empty()) {
+                if let Some(pb::score_item::Key::Source(src)) = &item.key {
+                    if src.len() > limits.max_text_bytes {
+                        out.rejections.push(pb::Rejection { index, reason: too_long("source", src.len()) });
+                        continue;
+                    }
+                }
+                match external_key(item) {
+                    Some(k) => external.push((k, v.clone())),
+                    None => out.rejections.push(pb::Rejection { index, reason: "an item with only external values needs an item_key (or a segment_id or source) to key its bootstrap weights".into() }),
+                }
+                continue;
+            }
             let key = match &item.key {
                 Some(pb::score_item::Key::SegmentId(id)) => ItemKey::Id(id),
                 Some(pb::score_item::Key::Source(src)) if src.len() > limits.max_text_bytes => {
@@ -394,6 +451,9 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
                 out.segment_scores.push(pb::SegmentScore { index, segment_id: session.segment_id(*by_source, *seg).to_owned(), scores: segment_scores_to_pb(stats, &session.spec().config) });
             }
             out.outcomes.push(outcome);
+            if let (Some(v), Some(k)) = (values, external_key(item)) {
+                external.push((k, v));
+            }
             if let Some(v) = session.guard_item(key, &item.hypothesis, guard_scratch) {
                 out.guards.add(v);
                 if batch.want_segment_scores {
@@ -403,7 +463,11 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
         }
     }));
     out.replicates = session.replicate_delta(&out.outcomes);
-    out
+    out.external_items = external.len() as u32;
+    if !external.is_empty() {
+        out.external = Some(session.external_delta(&external).map_err(|e| ServiceError::Invalid(format!("batch refused: {e}")))?);
+    }
+    Ok(out)
 }
 
 /// Why a session that keeps replicates gives no interval for a window with segments.
@@ -431,11 +495,17 @@ pub fn report(state: &State, session: &Session, level: f64, with_sums: bool) -> 
             notes.push(RECENT_PREDATES);
         }
     }
+    let mut cumulative_totals = totals_with_intervals(&cumulative, c, cum_reps.as_ref(), level);
+    if !spec.external.is_empty() {
+        // External metrics: cumulative only so far (the recent window does not keep them yet).
+        let ext = session.external();
+        cumulative_totals.external = crate::pb::external::results_to_pb(&spec.external, &ext.totals, ext.replicates.as_ref(), level);
+    }
     pb::ScoresReport {
         session: spec.name.clone(),
         refset_digest: session.refs().digest_hex(),
         config: Some(config_to_pb(c)),
-        cumulative: Some(totals_with_intervals(&cumulative, c, cum_reps.as_ref(), level)),
+        cumulative: Some(cumulative_totals),
         recent: Some(totals_with_intervals(&recent, c, recent_reps.as_ref(), level)),
         window: spec.window as u32,
         unknown: counts.unknown,

@@ -79,6 +79,8 @@ pub struct Pending {
     pub replicates: Option<crate::metric::resample::Replicates>,
     /// The guard counts of the batch's items.
     pub guards: crate::guard::GuardCounts,
+    /// What the batch's external values add (None: none carried any).
+    pub external: Option<crate::external::ExternalDelta>,
 }
 
 /// A batch handed to [`commit`]: its effect, or the answer to wait for.
@@ -246,6 +248,10 @@ impl State {
             crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });
             session.restore_history(self.history_config(), s.history).map_err(bad)?;
+            if let Some(e) = s.external {
+                session.restore_external(e).map_err(bad)?;
+            }
+            crate::telemetry::record_external(&session.spec().name, &session.spec().external, &session.external().totals);
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
         }
         Ok(n)
@@ -397,7 +403,7 @@ impl State {
         if resampling.resamples > MAX_SESSION_RESAMPLES {
             return Err(ServiceError::Invalid(format!("{} resamples are more than a session may keep ({MAX_SESSION_RESAMPLES})", resampling.resamples)));
         }
-        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling, target_language: None, guard_settings: Vec::new() })
+        Ok(SessionSpec { name: name.to_owned(), refset: refset.to_owned(), config, labels, window, resampling, target_language: None, guard_settings: Vec::new(), external: Default::default() })
     }
 
     /// Create a session (builds its tables: CPU work, call from a blocking thread). With
@@ -480,7 +486,7 @@ impl State {
 
 /// The parts of a session definition in which `a` and `b` differ (empty: the same).
 pub fn differences(a: &SessionSpec, b: &SessionSpec) -> Vec<&'static str> {
-    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling), ("target language", a.target_language == b.target_language), ("guard settings", a.guard_settings == b.guard_settings)];
+    let parts = [("reference set", a.refset == b.refset), ("configuration", a.config == b.config), ("labels", a.labels == b.labels), ("window", a.window == b.window), ("resampling", a.resampling == b.resampling), ("target language", a.target_language == b.target_language), ("guard settings", a.guard_settings == b.guard_settings), ("external metrics", a.external == b.external)];
     parts.into_iter().filter(|(_, same)| !same).map(|(what, _)| what).collect()
 }
 
@@ -507,7 +513,18 @@ fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std
     let now = unix_now();
     for p in group {
         let current = live.is_some_and(|l| l.sessions.get(&p.session.spec().name).is_some_and(|e| Arc::ptr_eq(e.value(), &p.session)));
-        let applied = p.session.apply_at(now, &p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref(), &p.guards);
+        let mut applied = p.session.apply_at(now, &p.producer, p.sequence, &p.outcomes, p.rejected, p.replicates.as_ref(), &p.guards);
+        if let Some(a) = applied.as_mut().filter(|_| !p.session.spec().external.is_empty()) {
+            if let Some(d) = &p.external {
+                // Checked when scored; only sums near the i128 limit fail here, and then
+                // nothing is added (the batch's built-in statistics are applied already).
+                if let Err(e) = p.session.apply_external(d) {
+                    tracing::error!(session = %p.session.spec().name, error = %e, "external values not counted");
+                }
+            }
+            // Every applied batch of such a session carries the copy: the store keeps the last.
+            a.external = Some(p.session.external());
+        }
         effects.push((applied, current));
     }
     if let Some(store) = store {
@@ -531,6 +548,8 @@ struct Published {
     added: crate::metric::CorpusStats,
     /// The session's scores after the batch, for its last batch of the group only.
     scores: Option<(crate::metric::CorpusStats, crate::metric::CorpusStats)>,
+    /// The session's external sums after the batch (sessions that declare external metrics).
+    external: Option<crate::external::ExternalTotals>,
 }
 
 /// The telemetry of a committed group, taken before the effects go to their batches: counters
@@ -542,7 +561,7 @@ fn to_publish(group: &[Pending], effects: &[(Option<Applied>, bool)]) -> Vec<Pub
         .enumerate()
         .map(|(i, (p, a))| {
             let last = !written[i + 1..].iter().any(|(q, _)| Arc::ptr_eq(&q.session, &p.session));
-            Published { session: Arc::clone(&p.session), batch: a.batch, added: a.added.clone(), scores: last.then(|| (a.cumulative.clone(), a.recent.clone())) }
+            Published { session: Arc::clone(&p.session), batch: a.batch, added: a.added.clone(), scores: last.then(|| (a.cumulative.clone(), a.recent.clone())), external: a.external.as_ref().map(|e| e.totals.clone()) }
         })
         .collect()
 }
@@ -555,6 +574,9 @@ fn publish(records: Vec<Published>) {
         crate::telemetry::record_guards(&spec.name, &r.batch.guards, false);
         if let Some((cumulative, recent)) = &r.scores {
             crate::telemetry::record_scores(&spec.name, &spec.config, cumulative, recent);
+        }
+        if let Some(t) = &r.external {
+            crate::telemetry::record_external(&spec.name, &spec.external, t);
         }
     }
 }

@@ -202,6 +202,8 @@ pub struct SessionSpec {
     /// Guard thresholds as `KEY=VALUE` ([`GuardConfig::set`]), applied after the learned length
     /// ratio (so a `length-ratio` setting wins); validated when the session is created.
     pub guard_settings: Vec<String>,
+    /// External segment metrics its items may carry (validated when the session is created).
+    pub external: crate::external::Declaration,
 }
 
 /// How one item of a batch came out.
@@ -279,6 +281,8 @@ pub struct Session {
     state: Mutex<SessionState>,
     /// Time buckets of the statistics; its own short lock, taken after `state` is released.
     history: Mutex<history::History>,
+    /// External metric statistics; its own short lock, taken after `state` is released.
+    external: Mutex<crate::external::ExternalState>,
 }
 
 impl Session {
@@ -293,7 +297,33 @@ impl Session {
         let replicates = (spec.resampling.resamples > 0).then(|| SessionReplicates::new(&spec.config, spec.resampling, spec.window, 0));
         let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new(), replicates };
         let history = history::History::new(history::HistoryConfig::default(), &spec.config, (spec.resampling.resamples > 0).then(|| Replicates::new(&spec.config, spec.resampling.resamples, spec.resampling.seed)));
-        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state), history: Mutex::new(history) }
+        let external = Mutex::new(crate::external::ExternalState::new(spec.external.len(), external_resampling(&spec)));
+        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state), history: Mutex::new(history), external }
+    }
+
+    /// The external values a batch adds (CPU work, no lock taken): `items` are (weight key,
+    /// checked values).
+    pub fn external_delta(&self, items: &[(u64, crate::external::ItemValues)]) -> Result<crate::external::ExternalDelta, crate::external::SumError> {
+        crate::external::ExternalDelta::of(self.spec.external.len(), external_resampling(&self.spec), items)
+    }
+
+    /// Add a batch's external values (after the batch was applied, not a duplicate).
+    pub fn apply_external(&self, d: &crate::external::ExternalDelta) -> Result<(), crate::external::SumError> {
+        self.external.lock().unwrap_or_else(|e| e.into_inner()).add(d)
+    }
+
+    /// Replace the external statistics with a durable copy (at startup).
+    pub fn restore_external(&self, copy: crate::external::ExternalState) -> Result<(), String> {
+        if !copy.fits(self.spec.external.len(), external_resampling(&self.spec)) {
+            return Err("the stored external sums do not fit the session's external metrics or resampling".into());
+        }
+        *self.external.lock().unwrap_or_else(|e| e.into_inner()) = copy;
+        Ok(())
+    }
+
+    /// A copy of the external statistics.
+    pub fn external(&self) -> crate::external::ExternalState {
+        self.external.lock().unwrap_or_else(|e| e.into_inner()).clone()
     }
 
     /// The guards' configuration of this session.
@@ -529,7 +559,14 @@ impl Session {
         if let Some(r) = &mut st.replicates {
             r.reset(next);
         }
+        drop(st);
+        *self.external.lock().unwrap_or_else(|e| e.into_inner()) = crate::external::ExternalState::new(self.spec.external.len(), external_resampling(&self.spec));
     }
+}
+
+/// The replicate settings of a session's external metrics (None: it keeps no replicates).
+fn external_resampling(spec: &SessionSpec) -> Option<(usize, u64)> {
+    (spec.resampling.resamples > 0).then_some((spec.resampling.resamples, spec.resampling.seed))
 }
 
 impl SessionState {
@@ -575,7 +612,7 @@ impl SessionState {
             }
             keep_from = keep_from.min(r.saved_to());
         }
-        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from, history: None })
+        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from, history: None, external: None })
     }
 }
 
@@ -619,6 +656,9 @@ pub struct Applied {
     /// What the batch changed in the history ([`Session::apply_at`]; None from
     /// [`Session::apply`]).
     pub history: Option<history::HistoryWrite>,
+    /// The session's external statistics after the batch, for its durable copy (None: the
+    /// session declares no external metric, or [`Session::apply`]).
+    pub external: Option<crate::external::ExternalState>,
 }
 
 #[cfg(test)]
@@ -639,7 +679,7 @@ mod tests {
 
     fn spec(caseless: bool) -> SessionSpec {
         let config = ScoreConfig { caseless, ..Default::default() };
-        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() }
+        SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 2, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new(), external: Default::default() }
     }
 
     #[test]

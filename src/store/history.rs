@@ -147,7 +147,7 @@ mod tests {
     fn session() -> Session {
         let seg = |id: &str, r: &str| SegmentInput { id: id.into(), source: None, refs: vec![r.into()] };
         let set = RefSet::new(vec![seg("1", "Die Fähre nach Tarnholm fährt um neun Uhr ab."), seg("2", "Bitte halten Sie Ihre Fahrkarte bereit.")]).unwrap();
-        let spec = SessionSpec { name: "ferry".into(), refset: "notices".into(), config: ScoreConfig::default(), labels: Default::default(), window: 4, resampling: Resampling { resamples: 8, seed: 3 }, target_language: None, guard_settings: Vec::new() };
+        let spec = SessionSpec { name: "ferry".into(), refset: "notices".into(), config: ScoreConfig::default(), labels: Default::default(), window: 4, resampling: Resampling { resamples: 8, seed: 3 }, target_language: None, guard_settings: Vec::new(), external: Default::default() };
         Session::new(spec, Arc::new(set), 0)
     }
 

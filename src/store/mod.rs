@@ -108,6 +108,9 @@ struct StoredSession {
     /// Absent in sessions stored before the guards: none.
     #[serde(default)]
     guard_settings: Vec<String>,
+    /// Absent in sessions stored before external metrics: none.
+    #[serde(default)]
+    external: crate::external::Declaration,
 }
 
 #[derive(Debug, Default, Serialize, Deserialize)]
@@ -115,6 +118,10 @@ struct StoredStats {
     cumulative: CorpusStats,
     counts: Counts,
     next_row: u64,
+    /// External metric sums (absent: the session declares none, or none counted since
+    /// creation or reset).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    external: Option<crate::external::ExternalState>,
 }
 
 /// One session as read back.
@@ -145,6 +152,8 @@ pub struct LoadedSession {
     pub marks: HashMap<String, u64>,
     /// History buckets (none in a store written before histories).
     pub history: Vec<crate::session::history::StoredBucket>,
+    /// External metric sums (None: none stored).
+    pub external: Option<crate::external::ExternalState>,
 }
 
 /// Everything needed to rebuild the server state.
@@ -392,7 +401,7 @@ impl Store {
                 m.insert(producer.to_owned(), v.value());
             }
             let hist = history::load(&h_stats, &h_sums, name).map_err(|e| self.err(format!("history of {name}: {e}")))?;
-            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling, target_language: s.target_language, guard_settings: s.guard_settings };
+            let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling, target_language: s.target_language, guard_settings: s.guard_settings, external: s.external };
             snap.sessions.push(LoadedSession {
                 spec,
                 refset_digest: s.refset_digest,
@@ -406,6 +415,7 @@ impl Store {
                 next_row: st.next_row,
                 marks: m,
                 history: hist,
+                external: st.external,
             });
         }
         Ok(snap)
@@ -457,7 +467,7 @@ impl Store {
 
     /// Record a new session (its statistics start empty).
     pub fn put_session(&self, spec: &SessionSpec, refset_digest: &str, created_unix: i64) -> Result<(), StoreError> {
-        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling, target_language: spec.target_language.clone(), guard_settings: spec.guard_settings.clone() };
+        let s = StoredSession { name: spec.name.clone(), refset: spec.refset.clone(), refset_digest: refset_digest.to_owned(), config: spec.config, labels: spec.labels.clone(), window: spec.window, created_unix, resampling: spec.resampling, target_language: spec.target_language.clone(), guard_settings: spec.guard_settings.clone(), external: spec.external.clone() };
         let bytes = serde_json::to_vec(&s).map_err(|e| self.err(e))?;
         self.write(|txn| {
             txn.open_table(SESSIONS)?.insert(spec.name.as_str(), bytes.as_slice())?;
@@ -525,7 +535,7 @@ impl Store {
         for name in &order {
             let e = &by_session[name];
             let Some(last) = e.last else { continue };
-            let st = StoredStats { cumulative: last.cumulative, counts: last.counts, next_row: last.next_row };
+            let st = StoredStats { cumulative: last.cumulative, counts: last.counts, next_row: last.next_row, external: last.external.clone() };
             let stats = serde_json::to_vec(&st).map_err(|e| self.err(e))?;
             let blocks: Vec<(u64, Vec<u8>)> = e.blocks.iter().map(|(first, n, values)| (*first, encode_block(*n, values))).collect();
             let reps = e.replicates.map(encode_replicates);
@@ -657,7 +667,7 @@ mod tests {
     #[test]
     fn round_trip_and_versions() {
         let d = dir("rt");
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: [("model".into(), "v7".into())].into(), window: 3, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new(), external: Default::default() };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &set("Tor C")).unwrap();
@@ -703,7 +713,7 @@ mod tests {
         let d = dir("blocks");
         let refs = std::sync::Arc::new(set("Tor C"));
         let config: ScoreConfig = "bleu chrf".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37, resampling: Resampling { resamples: 20, seed: 5 }, target_language: None, guard_settings: Vec::new() };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 37, resampling: Resampling { resamples: 20, seed: 5 }, target_language: None, guard_settings: Vec::new(), external: Default::default() };
         let session = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
         // Copies of the replicate sums every 100 records here, so that some are written.
         session.state().replicates.as_mut().unwrap().set_save_every(100);
@@ -769,7 +779,7 @@ mod tests {
         let d = dir("upgrade");
         let refs = set("Tor C");
         let config: ScoreConfig = "bleu:order=2".parse().unwrap();
-        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new() };
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config, labels: BTreeMap::new(), window: 3, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new(), external: Default::default() };
         {
             let st = Store::open(&d).unwrap();
             st.put_refset("r", &refs).unwrap();
@@ -790,7 +800,7 @@ mod tests {
                 old.insert(("s", 2 + i as u64), bytes.as_slice()).unwrap();
             }
             drop(old);
-            let st = serde_json::to_vec(&StoredStats { cumulative, counts: Counts { scored: 5, ..Default::default() }, next_row: 5 }).unwrap();
+            let st = serde_json::to_vec(&StoredStats { cumulative, counts: Counts { scored: 5, ..Default::default() }, next_row: 5, external: None }).unwrap();
             txn.open_table(STATS).unwrap().insert("s", st.as_slice()).unwrap();
             txn.commit().unwrap();
         }

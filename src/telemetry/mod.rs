@@ -49,6 +49,9 @@ const ALERT_DELIVERIES: &str = "mtgauge_alert_deliveries_total";
 const ALERT_RETRIES: &str = "mtgauge_alert_delivery_retries_total";
 const GUARD_CHECKED: &str = "mtgauge_guard_checked_total";
 const GUARD_FLAGGED: &str = "mtgauge_guard_flagged_total";
+const EXTERNAL_COUNT: &str = "mtgauge_external_count_total";
+const EXTERNAL_SUM: &str = "mtgauge_external_sum_total";
+const EXTERNAL_SQUARES: &str = "mtgauge_external_squares_total";
 const COMMIT_SECONDS: &str = "mtgauge_store_commit_seconds";
 const COMMIT_BATCHES: &str = "mtgauge_store_commit_batches";
 
@@ -62,7 +65,7 @@ pub const COMMIT_BATCHES_BUCKETS: &[f64] = &[1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.
 pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 38] = [
+pub const METRIC_NAMES: [&str; 41] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -101,6 +104,9 @@ pub const METRIC_NAMES: [&str; 38] = [
     COMMIT_BATCHES,
     GUARD_CHECKED,
     GUARD_FLAGGED,
+    EXTERNAL_COUNT,
+    EXTERNAL_SUM,
+    EXTERNAL_SQUARES,
 ];
 
 /// The replicate families: name, help, and the labels after `session` and `replicate`.
@@ -201,6 +207,9 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(ALERT_DELIVERIES, "Alert events per delivery target by outcome: sent (accepted), failed (refused with a 4xx, or out of attempts), dropped (pushed out of a full queue).");
     describe_counter!(GUARD_CHECKED, "Items checked by the reference-free guards per session (items that carried a source, matched or not).");
     describe_counter!(GUARD_FLAGGED, "Items flagged per session and guard (empty, copy, length, repetition, script, language); an item can trip several.");
+    describe_counter!(EXTERNAL_COUNT, "Values of each external segment metric counted per session (the metric label is the session's declared name).");
+    describe_counter!(EXTERNAL_SUM, "Per session and external metric: the sum of (value - low) x 10^decimals, exact (low and decimals as declared; fleet mean = low + sum / (count x 10^decimals)).");
+    describe_counter!(EXTERNAL_SQUARES, "Per session and external metric: the sum of (value - low)^2 x 10^decimals, rounded half to even over the whole sum (variance = (squares / 10^decimals - sum^2 / (count x 10^(2 decimals))) / (count - 1)).");
     describe_counter!(ALERT_RETRIES, "Alert delivery attempts after the first one of a batch, per target.");
     describe_gauge!(ALERT_FIRING, "1 while the daemon's alert rule fires for the session, else 0.");
     describe_gauge!(ALERT_STATE, "1 for the state (inactive, pending, firing) the daemon's alert rule is in for the session, 0 for the others.");
@@ -269,6 +278,18 @@ pub fn record_guards(session: &str, counts: &crate::guard::GuardCounts, absolute
     put(counter!(GUARD_CHECKED, "session" => session.to_owned()), counts.checked);
     for g in crate::guard::Guard::ALL {
         put(counter!(GUARD_FLAGGED, "session" => session.to_owned(), "guard" => g.name()), counts.flagged_by(g));
+    }
+}
+
+/// Set a session's external metric counters from its cumulative external sums (after each
+/// batch, at creation and after a restart: derived from the sums, they never go backwards).
+pub fn record_external(session: &str, declaration: &crate::external::Declaration, totals: &crate::external::ExternalTotals) {
+    for (spec, sums) in declaration.specs().iter().zip(&totals.0) {
+        let (n, sum, squares) = crate::external::exported_counters(spec, sums);
+        let labels = [("session", session.to_owned()), ("metric", spec.name.clone())];
+        counter!(EXTERNAL_COUNT, &labels).absolute(n);
+        counter!(EXTERNAL_SUM, &labels).absolute(sum);
+        counter!(EXTERNAL_SQUARES, &labels).absolute(squares);
     }
 }
 

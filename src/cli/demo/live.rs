@@ -163,7 +163,7 @@ async fn live(seconds: u64, linger: bool) -> Result<(), CliError> {
         let config = config_to_pb(&ScoreConfig::default());
         let labels = [("model".to_string(), w.model.to_string()), ("lang".to_string(), "en-de".to_string())].into_iter().collect();
         SessionsClient::new(ch.clone())
-            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true, resampling: None, target_language: "de".into(), guard_settings: Vec::new() })
+            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true, resampling: None, target_language: "de".into(), guard_settings: Vec::new(), external: Vec::new() })
             .await
             .map_err(usage("create session"))?;
     }
@@ -301,7 +301,7 @@ async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, s
                 } else {
                     pb::score_item::Key::Source(seg.source_text().to_owned())
                 };
-                pb::ScoreItem { key: Some(key), hypothesis }
+                pb::ScoreItem { key: Some(key), hypothesis, ..Default::default() }
             })
             .collect();
         let batch = pb::ScoreBatch { session: w.session.into(), producer: producer.clone(), sequence: seq, items, want_segment_scores: false, replicas: Vec::new() };

@@ -1,0 +1,170 @@
+//! Conversions between the API's external-metric messages and [`crate::external`].
+
+use crate::external::replicates::ExternalReplicates;
+use crate::external::{Declaration, ExternalSpec, ExternalSums, ExternalTotals, ItemValues, ValueError, DEFAULT_DECIMALS};
+use crate::pb;
+
+use super::convert::{interval_to_pb, ConvertError};
+
+/// One declared metric, defaults filled in and validated.
+pub fn spec_from_pb(m: &pb::ExternalMetric) -> Result<ExternalSpec, ConvertError> {
+    let spec = ExternalSpec { name: m.name.clone(), low: m.low, high: m.high, higher_is_better: !m.lower_is_better, decimals: m.decimals.unwrap_or(DEFAULT_DECIMALS) };
+    spec.validate().map_err(|e| ConvertError(format!("external: {e}")))?;
+    Ok(spec)
+}
+
+/// A session's declaration, validated (names unique, at most the limit).
+pub fn declaration_from_pb(ms: &[pb::ExternalMetric]) -> Result<Declaration, ConvertError> {
+    let specs = ms.iter().map(spec_from_pb).collect::<Result<Vec<_>, _>>()?;
+    Declaration::new(specs).map_err(|e| ConvertError(format!("external: {e}")))
+}
+
+/// A declared metric as the API writes it (every default filled in).
+pub fn spec_to_pb(s: &ExternalSpec) -> pb::ExternalMetric {
+    pb::ExternalMetric { name: s.name.clone(), low: s.low, high: s.high, lower_is_better: !s.higher_is_better, decimals: Some(s.decimals) }
+}
+
+/// The declaration as the API writes it.
+pub fn declaration_to_pb(d: &Declaration) -> Vec<pb::ExternalMetric> {
+    d.specs().iter().map(spec_to_pb).collect()
+}
+
+/// An item's external values, checked against the declaration. Names are taken in byte order,
+/// so an item with several bad values is always rejected naming the same one.
+pub fn item_values(d: &Declaration, item: &pb::ScoreItem) -> Result<ItemValues, ValueError> {
+    let mut named: Vec<(&str, f64)> = item.external.iter().map(|(k, v)| (k.as_str(), *v)).collect();
+    named.sort_unstable_by(|a, b| a.0.cmp(b.0));
+    d.check_item(named)
+}
+
+/// One metric's result: the exact sums, the mean and standard deviation derived from them, and
+/// the interval of the mean from the replicates (metric `index` in them) when given.
+pub fn result_to_pb(spec: &ExternalSpec, sums: &ExternalSums, reps: Option<(&ExternalReplicates, usize)>, level: f64) -> pb::ExternalResult {
+    pb::ExternalResult {
+        metric: spec.name.clone(),
+        count: sums.count,
+        sum: sums.sum.to_string(),
+        squares: sums.squares.to_string(),
+        decimals: spec.decimals,
+        mean: sums.mean(spec.decimals),
+        stddev: sums.variance(spec.decimals).map(f64::sqrt),
+        interval: reps.and_then(|(r, m)| r.interval(m, spec.decimals, level)).map(interval_to_pb),
+        lower_is_better: !spec.higher_is_better,
+    }
+}
+
+/// Every declared metric's result, in declaration order.
+pub fn results_to_pb(d: &Declaration, totals: &ExternalTotals, reps: Option<&ExternalReplicates>, level: f64) -> Vec<pb::ExternalResult> {
+    d.specs().iter().zip(&totals.0).enumerate().map(|(i, (s, t))| result_to_pb(s, t, reps.map(|r| (r, i)), level)).collect()
+}
+
+/// The external results of several replicas' reports added up (a fleet figure): counts and
+/// fixed-point sums exactly, the mean and standard deviation derived from the sums. No
+/// interval: replicas do not send their external replicate sums yet. Refused when the replicas
+/// declare different metrics.
+pub fn merge_results(parts: &[&[pb::ExternalResult]]) -> Result<Vec<pb::ExternalResult>, ConvertError> {
+    let Some(first) = parts.first() else { return Ok(Vec::new()) };
+    let same = |a: &pb::ExternalResult, b: &pb::ExternalResult| (a.metric.as_str(), a.decimals, a.lower_is_better) == (b.metric.as_str(), b.decimals, b.lower_is_better);
+    let int = |s: &str, what: &str| s.parse::<i128>().map_err(|_| ConvertError(format!("external {what} '{s}' is not an integer")));
+    let mut out = Vec::with_capacity(first.len());
+    for (i, head) in first.iter().enumerate() {
+        let mut acc = ExternalSums::default();
+        for p in parts {
+            let r = p.get(i).filter(|r| same(r, head) && p.len() == first.len()).ok_or_else(|| ConvertError("the replicas declare different external metrics".into()))?;
+            let s = ExternalSums { count: r.count, sum: int(&r.sum, "sum")?, squares: int(&r.squares, "squares")? };
+            acc = acc.checked_add(&s).map_err(|e| ConvertError(e.to_string()))?;
+        }
+        out.push(pb::ExternalResult {
+            metric: head.metric.clone(),
+            count: acc.count,
+            sum: acc.sum.to_string(),
+            squares: acc.squares.to_string(),
+            decimals: head.decimals,
+            mean: acc.mean(head.decimals),
+            stddev: acc.variance(head.decimals).map(f64::sqrt),
+            interval: None,
+            lower_is_better: head.lower_is_better,
+        });
+    }
+    Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::metric::resample::segment_key;
+
+    fn decl() -> Declaration {
+        declaration_from_pb(&[
+            pb::ExternalMetric { name: "qe".into(), low: 0.0, high: 1.0, ..Default::default() },
+            pb::ExternalMetric { name: "edit_rate".into(), low: 0.0, high: 100.0, lower_is_better: true, decimals: Some(2) },
+        ])
+        .unwrap()
+    }
+
+    #[test]
+    fn declarations_round_trip_with_defaults_filled_in() {
+        let d = decl();
+        let back = declaration_to_pb(&d);
+        assert_eq!(back[0].decimals, Some(DEFAULT_DECIMALS));
+        assert!(!back[0].lower_is_better && back[1].lower_is_better);
+        assert_eq!(declaration_from_pb(&back).unwrap(), d);
+    }
+
+    #[test]
+    fn bad_declarations_name_the_metric() {
+        let e = declaration_from_pb(&[pb::ExternalMetric { name: "qe".into(), low: 1.0, high: 0.0, ..Default::default() }]).unwrap_err();
+        assert!(e.0.contains("'qe'"), "{e}");
+        let e = declaration_from_pb(&[pb::ExternalMetric { name: "q-e".into(), low: 0.0, high: 1.0, ..Default::default() }]).unwrap_err();
+        assert!(e.0.contains("'q-e'"), "{e}");
+        let twice = pb::ExternalMetric { name: "qe".into(), low: 0.0, high: 1.0, ..Default::default() };
+        assert!(declaration_from_pb(&[twice.clone(), twice]).unwrap_err().0.contains("twice"));
+    }
+
+    #[test]
+    fn item_values_are_checked_and_the_first_bad_name_in_byte_order_is_named() {
+        let d = decl();
+        let item = |vals: &[(&str, f64)]| pb::ScoreItem { external: vals.iter().map(|(k, v)| (k.to_string(), *v)).collect(), ..Default::default() };
+        assert_eq!(item_values(&d, &item(&[("qe", 0.5), ("edit_rate", 12.5)])), Ok(ItemValues(vec![(0, 500_000), (1, 1250)])));
+        let e = item_values(&d, &item(&[("zz", 0.5), ("qe", 2.0), ("aa", 0.1)])).unwrap_err();
+        assert_eq!(e.metric(), Some("aa"));
+    }
+
+    #[test]
+    fn fleet_results_add_the_sums_exactly() {
+        let d = decl();
+        let totals = |vals: &[f64]| {
+            let mut t = ExternalTotals::new(d.len());
+            for v in vals {
+                t.add_item(&d.check_item([("qe", *v)]).unwrap()).unwrap();
+            }
+            results_to_pb(&d, &t, None, 0.95)
+        };
+        let (a, b, all) = (totals(&[0.25, 0.5]), totals(&[0.75]), totals(&[0.25, 0.5, 0.75]));
+        assert_eq!(merge_results(&[&a, &b]).unwrap(), all);
+        let other = results_to_pb(&Declaration::new(vec![ExternalSpec::new("qe", 0.0, 1.0).unwrap()]).unwrap(), &ExternalTotals::new(1), None, 0.95);
+        assert!(merge_results(&[&a, &other]).unwrap_err().0.contains("different"));
+        assert_eq!(merge_results(&[]).unwrap(), Vec::new());
+    }
+
+    #[test]
+    fn results_carry_exact_sums_and_derived_values() {
+        let d = decl();
+        let mut t = ExternalTotals::new(d.len());
+        let mut reps = ExternalReplicates::new(d.len(), 50, 1);
+        let mut w = Vec::new();
+        for (i, v) in [0.25, 0.5, 0.75].into_iter().enumerate() {
+            let it = d.check_item([("qe", v)]).unwrap();
+            t.add_item(&it).unwrap();
+            reps.add(segment_key(format!("s{i}").as_bytes()), &it, &mut w).unwrap();
+        }
+        let r = results_to_pb(&d, &t, Some(&reps), 0.9);
+        assert_eq!((r[0].count, r[0].sum.as_str(), r[0].squares.as_str()), (3, "1500000", "875000000000"));
+        assert_eq!(r[0].mean, Some(0.5));
+        assert!((r[0].stddev.unwrap() - 0.25).abs() < 1e-12);
+        let iv = r[0].interval.as_ref().unwrap();
+        assert!(iv.low <= 0.5 && 0.5 <= iv.high && iv.level == 0.9);
+        assert_eq!((r[1].count, r[1].mean, r[1].stddev, r[1].interval.is_none()), (0, None, None, true));
+        assert!(results_to_pb(&d, &t, None, 0.9)[0].interval.is_none());
+    }
+}

@@ -1,0 +1,276 @@
+//! External segment metrics end to end: a real `mtgauge serve` process, sessions that declare
+//! them, items that carry them (with a hypothesis, with an unmatched source, or alone).
+
+mod common;
+
+use common::{demo_files, durable_with_ferry, temp_dir, Server};
+use mtgauge::cli::demo::scenario::demo_segments;
+use mtgauge::pb;
+use mtgauge::pb::scoring_client::ScoringClient;
+use mtgauge::pb::sessions_client::SessionsClient;
+use mtgauge::rng::SplitMix64;
+use tonic::Code;
+
+fn declaration() -> Vec<pb::ExternalMetric> {
+    vec![
+        pb::ExternalMetric { name: "qe".into(), low: 0.0, high: 1.0, ..Default::default() },
+        pb::ExternalMetric { name: "edit_rate".into(), low: 0.0, high: 100.0, lower_is_better: true, decimals: Some(2) },
+    ]
+}
+
+async fn create(ch: &tonic::transport::Channel, name: &str) {
+    let req = pb::CreateSessionRequest { name: name.into(), refset: "ferry".into(), external: declaration(), ..Default::default() };
+    let info = SessionsClient::new(ch.clone()).create(req).await.expect("create").into_inner();
+    assert_eq!(info.external.len(), 2);
+    assert_eq!(info.external[0].decimals, Some(6), "the default is filled in");
+}
+
+async fn external(ch: &tonic::transport::Channel, session: &str) -> Vec<pb::ExternalResult> {
+    let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: session.into(), ..Default::default() }).await.expect("scores").into_inner();
+    r.cumulative.expect("cumulative").external
+}
+
+/// Round `num / den` half to even, integers only.
+fn round_half_even(num: i128, den: i128) -> i128 {
+    let (q, r) = (num.div_euclid(den), num.rem_euclid(den));
+    match (2 * r).cmp(&den) {
+        std::cmp::Ordering::Less => q,
+        std::cmp::Ordering::Greater => q + 1,
+        std::cmp::Ordering::Equal => q + (q & 1),
+    }
+}
+
+/// 600 items: a third by segment id with a hypothesis, a third by a source no segment has, a
+/// third with only external values and an item key. qe = n / 10^7 (one decimal more than
+/// kept, so a tenth of them sit on a rounding half), edit_rate = m / 1000. Returns the items
+/// and the expected fixed-point values (qe at 10^6, edit_rate at 10^2).
+fn items() -> (Vec<pb::ScoreItem>, Vec<(i128, i128)>) {
+    let segs = demo_segments();
+    let mut rng = SplitMix64::new(18);
+    let (mut out, mut want) = (Vec::new(), Vec::new());
+    for i in 0..600usize {
+        let n = rng.below(10_000_001) as i64;
+        let m = rng.below(100_001) as i64;
+        let mut it = pb::ScoreItem { external: [("qe".to_string(), n as f64 / 1e7), ("edit_rate".to_string(), m as f64 / 1e3)].into_iter().collect(), ..Default::default() };
+        match i % 3 {
+            0 => {
+                let s = &segs[i % segs.len()];
+                it.key = Some(pb::score_item::Key::SegmentId(s.id.clone()));
+                it.hypothesis = s.refs[0].clone();
+            }
+            1 => {
+                it.key = Some(pb::score_item::Key::Source(format!("Kein Eintrag {i}")));
+                it.hypothesis = "Die Fähre fährt.".into();
+            }
+            _ => it.item_key = format!("call-{i}"),
+        }
+        out.push(it);
+        want.push((round_half_even(i128::from(n), 10), round_half_even(i128::from(m), 10)));
+    }
+    (out, want)
+}
+
+/// Poll a sample of the server's scrape until it equals `want` (telemetry follows the
+/// acknowledgements); bounded: 500 polls.
+async fn sample_reaches(server: &Server, series: &str, want: f64) -> f64 {
+    let mut got = 0.0;
+    for _ in 0..500 {
+        got = server.sample(series);
+        if got == want {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+    got
+}
+
+fn batch(session: &str, producer: &str, sequence: u64, items: Vec<pb::ScoreItem>) -> pb::ScoreBatch {
+    pb::ScoreBatch { session: session.into(), producer: producer.into(), sequence, items, ..Default::default() }
+}
+
+#[tokio::test]
+async fn shuffled_shards_from_several_producers_give_the_sums_of_one() {
+    let dir = temp_dir("external-shards");
+    demo_files(&dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let server = Server::start(&["--refset", &refs]);
+    let ch = server.wait_serving().await;
+    create(&ch, "ferry-v8").await;
+    create(&ch, "ferry-v8-canary").await;
+    let (items, want) = items();
+
+    // One producer, in order, batches of 50.
+    let mut scoring = ScoringClient::new(ch.clone());
+    for (k, chunk) in items.chunks(50).enumerate() {
+        let ack = scoring.submit(batch("ferry-v8", "one", k as u64 + 1, chunk.to_vec())).await.unwrap().into_inner();
+        assert_eq!((ack.rejected, ack.external as usize), (0, chunk.len()), "{ack:?}");
+    }
+
+    // Four producers, shuffled shards, concurrent streams of uneven batches.
+    let mut order: Vec<usize> = (0..items.len()).collect();
+    let mut rng = SplitMix64::new(7);
+    for i in (1..order.len()).rev() {
+        order.swap(i, rng.below(i as u64 + 1) as usize);
+    }
+    let mut tasks = Vec::new();
+    for p in 0..4usize {
+        let shard: Vec<pb::ScoreItem> = order.iter().skip(p).step_by(4).map(|&i| items[i].clone()).collect();
+        let ch = ch.clone();
+        tasks.push(tokio::spawn(async move {
+            let mut batches = Vec::new();
+            let (mut rest, mut seq, mut rng) = (&shard[..], 0, SplitMix64::new(p as u64));
+            while !rest.is_empty() {
+                let n = (1 + rng.below(30) as usize).min(rest.len());
+                seq += 1;
+                batches.push(batch("ferry-v8-canary", &format!("worker-{p}"), seq, rest[..n].to_vec()));
+                rest = &rest[n..];
+            }
+            let mut acks = ScoringClient::new(ch).stream(tokio_stream::iter(batches)).await.unwrap().into_inner();
+            while let Some(ack) = acks.message().await.unwrap() {
+                assert_eq!(ack.rejected, 0, "{ack:?}");
+            }
+        }));
+    }
+    for t in tasks {
+        t.await.unwrap();
+    }
+
+    let (one, shards) = (external(&ch, "ferry-v8").await, external(&ch, "ferry-v8-canary").await);
+    assert_eq!(one, shards, "sums, means and intervals do not depend on the split or the order");
+    let (qe, rate) = (&one[0], &one[1]);
+    assert_eq!((qe.metric.as_str(), rate.metric.as_str()), ("qe", "edit_rate"));
+    assert_eq!((qe.count, rate.count), (600, 600), "items of all three kinds are counted");
+    let sum = |f: fn(&(i128, i128)) -> i128| want.iter().map(f).sum::<i128>().to_string();
+    assert_eq!(qe.sum, sum(|w| w.0));
+    assert_eq!(qe.squares, sum(|w| w.0 * w.0));
+    assert_eq!(rate.sum, sum(|w| w.1));
+    assert_eq!(rate.squares, sum(|w| w.1 * w.1));
+    assert!(rate.lower_is_better && !qe.lower_is_better);
+    let mean = qe.mean.unwrap();
+    let iv = qe.interval.as_ref().expect("an interval from the session's replicates");
+    assert!(iv.low < mean && mean < iv.high && iv.resamples > 0, "{iv:?} {mean}");
+
+    // Prometheus counters of both sessions: offsets from low = 0, so the sums as above; the
+    // squares over 10^decimals, rounded half to even once. Every value here is below 2^53.
+    let round_div = |q: i128, d: i128| {
+        let (a, r) = (q / d, q % d);
+        if 2 * r > d || (2 * r == d && a % 2 == 1) { a + 1 } else { a }
+    };
+    for s in ["ferry-v8", "ferry-v8-canary"] {
+        let series = |name: &str, metric: &str| format!("{name}{{session=\"{s}\",metric=\"{metric}\"}}");
+        assert_eq!(sample_reaches(&server, &series("mtgauge_external_count_total", "qe"), 600.0).await, 600.0);
+        let want_sum = want.iter().map(|w| w.0).sum::<i128>() as f64;
+        assert_eq!(sample_reaches(&server, &series("mtgauge_external_sum_total", "qe"), want_sum).await, want_sum);
+        let want_sq = round_div(want.iter().map(|w| w.1 * w.1).sum::<i128>(), 100) as f64;
+        assert_eq!(sample_reaches(&server, &series("mtgauge_external_squares_total", "edit_rate"), want_sq).await, want_sq);
+    }
+}
+
+#[tokio::test]
+async fn bad_values_reject_the_item_naming_the_metric_and_count_nothing() {
+    let dir = temp_dir("external-bad");
+    demo_files(&dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let server = Server::start(&["--refset", &refs]);
+    let ch = server.wait_serving().await;
+    create(&ch, "ferry-v8").await;
+    let it = |vals: &[(&str, f64)], key: &str| pb::ScoreItem { external: vals.iter().map(|(k, v)| (k.to_string(), *v)).collect(), item_key: key.into(), ..Default::default() };
+    let many: Vec<(String, f64)> = (0..=mtgauge::external::MAX_EXTERNAL_METRICS).map(|i| (format!("m{i}"), 0.5)).collect();
+    let too_many = pb::ScoreItem { external: many.into_iter().collect(), item_key: "k".into(), ..Default::default() };
+    let items = vec![
+        it(&[("qe", 0.5), ("bleurt_like", 0.1)], "a"),
+        it(&[("qe", f64::NAN)], "b"),
+        it(&[("edit_rate", f64::INFINITY)], "c"),
+        it(&[("qe", 1.5)], "d"),
+        it(&[("edit_rate", -0.5), ("qe", 0.5)], "e"),
+        too_many,
+        it(&[("qe", 0.5)], ""),
+        it(&[("qe", 0.25)], "good"),
+        // Over limits.max_text_bytes (64 KiB by default): the key and the source are bounded too.
+        it(&[("qe", 0.5)], &"k".repeat(70_000)),
+        pb::ScoreItem { key: Some(pb::score_item::Key::Source("s".repeat(70_000))), ..it(&[("qe", 0.5)], "") },
+    ];
+    let ack = ScoringClient::new(ch.clone()).submit(batch("ferry-v8", "p", 1, items)).await.unwrap().into_inner();
+    let reasons: Vec<(u32, String)> = ack.rejections.iter().map(|r| (r.index, r.reason.clone())).collect();
+    assert_eq!((ack.rejected, ack.external), (9, 1), "{reasons:?}");
+    assert!(reasons.iter().any(|(i, r)| *i == 8 && r.contains("item_key of 70000 bytes")), "{reasons:?}");
+    assert!(reasons.iter().any(|(i, r)| *i == 9 && r.contains("source of 70000 bytes")), "{reasons:?}");
+    for (index, metric) in [(0, "bleurt_like"), (1, "qe"), (2, "edit_rate"), (3, "qe"), (4, "edit_rate")] {
+        let (_, reason) = reasons.iter().find(|(i, _)| *i == index).expect("rejected");
+        assert!(reason.contains(&format!("'{metric}'")), "{index}: {reason}");
+    }
+    assert!(reasons.iter().any(|(i, r)| *i == 5 && r.contains("more than")), "{reasons:?}");
+    assert!(reasons.iter().any(|(i, r)| *i == 6 && r.contains("item_key")), "{reasons:?}");
+    let ext = external(&ch, "ferry-v8").await;
+    // Only the good item: qe 0.25, nothing from the rejected ones (item 0 and 4 had a good qe).
+    assert_eq!((ext[0].count, ext[0].sum.as_str(), ext[1].count), (1, "250000", 0));
+
+    // A bad declaration is refused naming the metric.
+    let bad = pb::CreateSessionRequest { name: "ferry-v9".into(), refset: "ferry".into(), external: vec![pb::ExternalMetric { name: "qe".into(), low: 1.0, high: 0.0, ..Default::default() }], ..Default::default() };
+    let e = SessionsClient::new(ch.clone()).create(bad).await.unwrap_err();
+    assert_eq!(e.code(), Code::InvalidArgument);
+    assert!(e.message().contains("'qe'"), "{}", e.message());
+}
+
+#[tokio::test]
+async fn a_durable_server_keeps_the_sums_across_a_restart() {
+    let dir = temp_dir("external-durable");
+    demo_files(&dir);
+    let (mut server, ch, data) = durable_with_ferry(&dir).await;
+    create(&ch, "ferry-v8").await;
+    let (items, _) = items();
+    let mut scoring = ScoringClient::new(ch.clone());
+    for (k, chunk) in items.chunks(40).enumerate() {
+        scoring.submit(batch("ferry-v8", "one", k as u64 + 1, chunk.to_vec())).await.unwrap();
+    }
+    let before = external(&ch, "ferry-v8").await;
+    assert_eq!(before[0].count, 600);
+    server.kill();
+
+    let server = Server::start(&["--data-dir", &data, "--refset-dir", dir.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    assert_eq!(external(&ch, "ferry-v8").await, before, "sums, replicates and so the interval come back");
+    let count = r#"mtgauge_external_count_total{session="ferry-v8",metric="qe"}"#;
+    assert_eq!(sample_reaches(&server, count, 600.0).await, 600.0, "the counters go on from the stored sums");
+    let info = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "ferry-v8".into() }).await.unwrap().into_inner();
+    assert_eq!(info.external, declaration().into_iter().map(|m| pb::ExternalMetric { decimals: Some(m.decimals.unwrap_or(6)), ..m }).collect::<Vec<_>>());
+
+    // A reset zeroes them, durably.
+    SessionsClient::new(ch.clone()).reset(pb::ResetSessionRequest { name: "ferry-v8".into() }).await.unwrap();
+    assert_eq!(external(&ch, "ferry-v8").await[0].count, 0);
+    // A replayed batch is a duplicate: nothing counted twice.
+    let ack = ScoringClient::new(ch.clone()).submit(batch("ferry-v8", "one", 1, items[..40].to_vec())).await.unwrap().into_inner();
+    assert!(ack.duplicate && ack.external == 0, "{ack:?}");
+    assert_eq!(external(&ch, "ferry-v8").await[0].count, 0);
+}
+
+/// `send --items` with `--create --external` into two replicas, then `status` over both: the
+/// fleet sums are the sums of all items, exactly.
+#[tokio::test]
+async fn status_over_two_replicas_adds_the_sums() {
+    const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
+    let dir = temp_dir("external-fleet");
+    demo_files(&dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let (a, b) = (Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]));
+    a.wait_serving().await;
+    b.wait_serving().await;
+    let run = |args: &[&str]| {
+        let out = std::process::Command::new(BIN).args(args).output().unwrap();
+        assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    for (server, lines) in [(&a, "{\"key\": \"c1\", \"scores\": {\"qe\": 0.25}}\n{\"id\": \"notice-0001\", \"hypothesis\": \"Boje.\", \"scores\": {\"qe\": 0.5}}\n"), (&b, "{\"key\": \"c3\", \"scores\": {\"qe\": 0.7500005}}\n")] {
+        let path = dir.join(format!("items-{}.jsonl", server.grpc.len() + lines.len()));
+        std::fs::write(&path, lines).unwrap();
+        run(&["send", "--server", &server.grpc, "--session", "ferry-v8", "--create", "--refset", "ferry", "--external", "qe:0:1", "--items", path.to_str().unwrap()]);
+    }
+    let both = format!("{},{}", a.grpc, b.grpc);
+    let j: serde_json::Value = serde_json::from_str(&run(&["status", "--server", &both, "--session", "ferry-v8", "--json"])).unwrap();
+    let qe = &j["external"][0];
+    // 0.7500005 at six places: a half, to the even 750000.
+    assert_eq!((qe["values"].as_u64(), qe["fixed_point"]["sum"].as_str()), (Some(3), Some("1500000")), "{j}");
+    assert_eq!(qe["mean"].as_f64(), Some(0.5));
+    let human = run(&["status", "--server", &both, "--session", "ferry-v8"]);
+    assert!(human.contains("qe          mean 0.500000, stddev 0.250000, 3 values, higher is better"), "{human}");
+}
