@@ -624,6 +624,12 @@ fn copy_scanned(cfg: &GuardConfig, source: &str, hyp: &str, h: &Scan, src: &Scan
 fn repetition_scanned(cfg: &GuardConfig, source: &str, s: &mut GuardScratch) -> Outcome {
     let n = cfg.repeat_order.clamp(1, MAX_REPEAT_ORDER);
     let (top, run) = repeats_of_ids(&s.ids, n, &mut s.keys);
+    judge_repeats(cfg, n, (top, run), source, s)
+}
+
+/// The repetition verdict from the hypothesis' top n-gram count and longest run: flagged only
+/// for repetition the source does not have itself.
+fn judge_repeats(cfg: &GuardConfig, n: usize, (top, run): (usize, usize), source: &str, s: &mut GuardScratch) -> Outcome {
     let by_gram = top >= cfg.repeat_count;
     let by_run = run >= cfg.repeat_run;
     if !by_gram && !by_run {
@@ -866,14 +872,7 @@ fn repeats_of_ids(ids: &[u64], n: usize, keys: &mut Vec<u64>) -> (usize, usize) 
 fn repetition(cfg: &GuardConfig, source: &str, hyp: &str, s: &mut GuardScratch) -> Outcome {
     let n = cfg.repeat_order.clamp(1, MAX_REPEAT_ORDER);
     let (top, run) = repeats(hyp, n, s);
-    let by_gram = top >= cfg.repeat_count;
-    let by_run = run >= cfg.repeat_run;
-    if !by_gram && !by_run {
-        return Outcome::Pass;
-    }
-    // Only repetition the source does not have itself.
-    let (src_top, src_run) = repeats(source, n, s);
-    flag_if((by_gram && top > src_top) || (by_run && run > src_run))
+    judge_repeats(cfg, n, (top, run), source, s)
 }
 
 /// The script verdict and the number of letters of `hyp`.
