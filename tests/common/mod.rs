@@ -61,7 +61,9 @@ impl Server {
             args.extend(["--data-dir".to_string(), dir.display().to_string()]);
         }
         let mut command = Command::new(env!("CARGO_BIN_EXE_mtgauge"));
-        command.args(["serve", "--listen", listen, "--metrics-listen", "127.0.0.1:0"]).args(&args).env("RUST_LOG", "info").stdin(Stdio::null()).stdout(Stdio::null()).stderr(Stdio::piped());
+        // Two malloc arenas (glibc): memory tests measure what the server keeps, and per-thread
+        // arenas made on contention add megabytes of noise that depend on how busy the machine is.
+        command.args(["serve", "--listen", listen, "--metrics-listen", "127.0.0.1:0"]).args(&args).env("RUST_LOG", "info").env("MALLOC_ARENA_MAX", "2").stdin(Stdio::null()).stdout(Stdio::null()).stderr(Stdio::piped());
         if let Some(bytes) = file_size_limit {
             use std::os::unix::process::CommandExt;
             // SAFETY: only async-signal-safe calls (signal, setrlimit) between fork and exec.
