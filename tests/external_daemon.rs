@@ -62,7 +62,10 @@ fn items() -> (Vec<pb::ScoreItem>, Vec<(i128, i128)>) {
                 it.key = Some(pb::score_item::Key::Source(format!("Kein Eintrag {i}")));
                 it.hypothesis = "Die Fähre fährt.".into();
             }
-            _ => it.item_key = format!("call-{i}"),
+            _ => {
+                it.item_key = format!("call-{i}");
+                it.values_only = true;
+            }
         }
         out.push(it);
         want.push((round_half_even(i128::from(n), 10), round_half_even(i128::from(m), 10)));
@@ -174,9 +177,9 @@ async fn bad_values_reject_the_item_naming_the_metric_and_count_nothing() {
     let server = Server::start(&["--refset", &refs]);
     let ch = server.wait_serving().await;
     create(&ch, "ferry-v8").await;
-    let it = |vals: &[(&str, f64)], key: &str| pb::ScoreItem { external: vals.iter().map(|(k, v)| (k.to_string(), *v)).collect(), item_key: key.into(), ..Default::default() };
+    let it = |vals: &[(&str, f64)], key: &str| pb::ScoreItem { external: vals.iter().map(|(k, v)| (k.to_string(), *v)).collect(), item_key: key.into(), values_only: true, ..Default::default() };
     let many: Vec<(String, f64)> = (0..=mtgauge::external::MAX_EXTERNAL_METRICS).map(|i| (format!("m{i}"), 0.5)).collect();
-    let too_many = pb::ScoreItem { external: many.into_iter().collect(), item_key: "k".into(), ..Default::default() };
+    let too_many = pb::ScoreItem { external: many.into_iter().collect(), item_key: "k".into(), values_only: true, ..Default::default() };
     let items = vec![
         it(&[("qe", 0.5), ("bleurt_like", 0.1)], "a"),
         it(&[("qe", f64::NAN)], "b"),
@@ -273,4 +276,29 @@ async fn status_over_two_replicas_adds_the_sums() {
     assert_eq!(qe["mean"].as_f64(), Some(0.5));
     let human = run(&["status", "--server", &both, "--session", "ferry-v8"]);
     assert!(human.contains("qe          mean 0.500000, stddev 0.250000, 3 values, higher is better"), "{human}");
+}
+
+/// An empty translation that carries a quality-estimation value is still a translation: it is
+/// scored (and its value counted); only an item marked values_only is counted for its values
+/// alone, and the marker is refused on an item with a hypothesis or without values.
+#[tokio::test]
+async fn an_empty_translation_with_a_value_is_scored_and_values_only_is_explicit() {
+    let dir = temp_dir("external-empty");
+    demo_files(&dir);
+    let server = Server::start(&["--refset", &format!("ferry={}", dir.join("refs.jsonl").display())]);
+    let ch = server.wait_serving().await;
+    create(&ch, "ferry-empty").await;
+    let seg = demo_segments()[0].id.clone();
+    let qe = |v: f64| [("qe".to_string(), v)].into_iter().collect();
+    let items = vec![
+        pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(seg.clone())), hypothesis: String::new(), external: qe(0.1), ..Default::default() },
+        pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(seg.clone())), external: qe(0.2), values_only: true, ..Default::default() },
+        pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(seg.clone())), hypothesis: "Die Fähre.".into(), external: qe(0.3), values_only: true, ..Default::default() },
+        pb::ScoreItem { key: Some(pb::score_item::Key::SegmentId(seg)), values_only: true, ..Default::default() },
+    ];
+    let ack = ScoringClient::new(ch.clone()).submit(batch("ferry-empty", "p", 1, items)).await.unwrap().into_inner();
+    let reasons: Vec<(u32, String)> = ack.rejections.iter().map(|r| (r.index, r.reason.clone())).collect();
+    assert_eq!((ack.scored, ack.external, ack.rejected), (1, 2, 2), "{reasons:?}");
+    assert!(reasons.iter().any(|(i, r)| *i == 2 && r.contains("carries a hypothesis")), "{reasons:?}");
+    assert!(reasons.iter().any(|(i, r)| *i == 3 && r.contains("no external values")), "{reasons:?}");
 }

@@ -65,11 +65,13 @@ fn item_of(obj: &Map<String, Value>) -> Result<pb::ScoreItem, String> {
         }
         Some(_) => return Err("'scores' must be an object of name to number".into()),
     }
-    let hypothesis = text("hypothesis")?.unwrap_or_default();
-    if hypothesis.is_empty() && external.is_empty() {
+    // No "hypothesis": the line carries scores only; "hypothesis": "" is an empty translation.
+    let given = text("hypothesis")?;
+    if given.is_none() && external.is_empty() {
         return Err("neither a hypothesis nor scores".into());
     }
-    Ok(pb::ScoreItem { key, hypothesis, external, item_key: text("key")?.unwrap_or_default() })
+    let values_only = given.is_none();
+    Ok(pb::ScoreItem { key, hypothesis: given.unwrap_or_default(), external, item_key: text("key")?.unwrap_or_default(), values_only })
 }
 
 #[cfg(test)]
@@ -90,7 +92,8 @@ mod tests {
         assert_eq!(items[0].external.get("qe"), Some(&0.82));
         assert_eq!(items[1].key, Some(pb::score_item::Key::SegmentId("7".into())));
         assert!(items[1].external.is_empty());
-        assert_eq!((items[2].hypothesis.as_str(), items[2].external.len()), ("", 2));
+        assert_eq!((items[2].hypothesis.as_str(), items[2].external.len(), items[2].values_only), ("", 2, true));
+        assert!(!items[0].values_only && !items[1].values_only && items[3].values_only);
         assert_eq!((items[3].key.clone(), items[3].item_key.as_str()), (None, "call-9"));
     }
 

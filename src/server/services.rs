@@ -416,8 +416,16 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
                     continue;
                 }
             };
-            // An item with external values and no hypothesis is counted for those alone.
-            if let (Some(v), true) = (&values, item.hypothesis.is_empty()) {
+            // An item marked values-only is counted for its external values alone.
+            if item.values_only {
+                let Some(v) = &values else {
+                    out.rejections.push(pb::Rejection { index, reason: "values_only is set but the item carries no external values".into() });
+                    continue;
+                };
+                if !item.hypothesis.is_empty() {
+                    out.rejections.push(pb::Rejection { index, reason: "values_only is set but the item carries a hypothesis".into() });
+                    continue;
+                }
                 if let Some(pb::score_item::Key::Source(src)) = &item.key {
                     if src.len() > limits.max_text_bytes {
                         out.rejections.push(pb::Rejection { index, reason: too_long("source", src.len()) });
