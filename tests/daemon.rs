@@ -411,6 +411,17 @@ fn live_demo_shows_the_degrading_model() {
             .sum();
         assert!(flagged > 0, "no {guard} flags in the demo: {text}");
     }
+    // Each output carries a simulated quality-estimation score (an external segment metric):
+    // each summary shows its mean inside its interval, over every item sent.
+    let qe: Vec<Vec<&str>> = text.lines().map(|l| l.split_whitespace().collect::<Vec<_>>()).filter(|w| w.first() == Some(&"ferry_qe")).collect();
+    assert_eq!(qe.len(), 2, "{text}");
+    for w in qe {
+        // "ferry_qe mean M (LO .. HI, 95% interval), stddev S, N values, ..."
+        let num = |s: &str| s.trim_matches(|c: char| c == '(' || c == ',').parse::<f64>().unwrap();
+        let (mean, lo, hi, n) = (num(w[2]), num(w[3]), num(w[5]), num(w[10]));
+        assert!(0.0 < lo && lo <= mean && mean <= hi && hi < 1.0, "{w:?}");
+        assert!(n > 100.0, "{w:?}");
+    }
 }
 
 /// `demo --linger`: the status page's URL is printed at the start, and after the run the

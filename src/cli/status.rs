@@ -68,7 +68,7 @@ fn window_view(t: Option<&pb::Totals>, config: &ScoreConfig, indent: &str) -> (V
 }
 
 /// The external metrics of a window: JSON (exact sums as decimal strings) and one line each.
-fn external_view(t: Option<&pb::Totals>, indent: &str) -> (Value, Vec<String>) {
+pub(crate) fn external_view(t: Option<&pb::Totals>, indent: &str) -> (Value, Vec<String>) {
     let results = t.map_or(&[][..], |t| &t.external[..]);
     let json = results
         .iter()

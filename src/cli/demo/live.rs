@@ -148,7 +148,9 @@ async fn live(seconds: u64, linger: bool) -> Result<(), CliError> {
     println!("scenario: Nordhavn Ferries passenger notices, English -> German; two model versions watched live;");
     println!("model-v8-rc starts to degrade half-way (a simulated bad deploy). Running {seconds} s.");
     println!("a few outputs come back broken (empty, the source copied, a loop, English): the reference-free");
-    println!("guards count them per session (`status`, mtgauge_guard_flagged_total), with or without a reference.\n");
+    println!("guards count them per session (`status`, mtgauge_guard_flagged_total), with or without a reference.");
+    println!("each output also carries a simulated quality-estimation score ({DEMO_QE}, 0-1), counted like an external");
+    println!("segment metric: exact fixed-point sums, a bootstrap interval of the mean, mtgauge_external_*_total.\n");
 
     // Upload the embedded reference set over the API, as a client would.
     let segments = Arc::new(demo_segments());
@@ -163,7 +165,18 @@ async fn live(seconds: u64, linger: bool) -> Result<(), CliError> {
         let config = config_to_pb(&ScoreConfig::default());
         let labels = [("model".to_string(), w.model.to_string()), ("lang".to_string(), "en-de".to_string())].into_iter().collect();
         SessionsClient::new(ch.clone())
-            .create(pb::CreateSessionRequest { name: w.session.into(), refset: "ferry-notices".into(), config: Some(config), labels, window: DEMO_WINDOW, if_not_exists: true, resampling: None, target_language: "de".into(), guard_settings: Vec::new(), external: Vec::new() })
+            .create(pb::CreateSessionRequest {
+                name: w.session.into(),
+                refset: "ferry-notices".into(),
+                config: Some(config),
+                labels,
+                window: DEMO_WINDOW,
+                if_not_exists: true,
+                resampling: None,
+                target_language: "de".into(),
+                guard_settings: Vec::new(),
+                external: vec![demo_qe_spec()],
+            })
             .await
             .map_err(usage("create session"))?;
     }
@@ -232,6 +245,10 @@ async fn live(seconds: u64, linger: bool) -> Result<(), CliError> {
                 println!("  {:<8}{:>6.2} .. {:.2}   95% bootstrap interval ({} resamples over segments)", m.title(), i.low, i.high, i.resamples);
             }
         }
+        let (_, external) = crate::cli::status::external_view(Some(&c), "  ");
+        for line in external {
+            println!("{line}   (a simulated quality-estimation score)");
+        }
         let guards = crate::pb::convert::guard_tally_from_pb(&r.guards.clone().unwrap_or_default());
         for line in crate::report::guard_lines(&guards, Some(&r.target_language).filter(|t| !t.is_empty()).map(String::as_str), "  ") {
             println!("{line}");
@@ -273,6 +290,26 @@ async fn wait_serving(ch: &Channel) -> Result<(), CliError> {
     }
 }
 
+/// The simulated quality-estimation score the demo's producers attach to every output, as a
+/// team's own pipeline would (an external segment metric, 0 to 1, higher is better).
+pub const DEMO_QE: &str = "ferry_qe";
+/// Decimals the simulated score is given with.
+const DEMO_QE_DECIMALS: i32 = 4;
+
+fn demo_qe_spec() -> pb::ExternalMetric {
+    let spec = crate::external::ExternalSpec { name: DEMO_QE.into(), low: 0.0, high: 1.0, higher_is_better: true, decimals: DEMO_QE_DECIMALS as u32 };
+    crate::pb::external::spec_to_pb(&spec)
+}
+
+/// The simulated estimator: it follows the model's quality setting `q` (0 to 1) with noise, and
+/// scores broken outputs low; rounded to [`DEMO_QE_DECIMALS`].
+fn demo_qe(q: f64, broken: bool, rng: &mut SplitMix64) -> f64 {
+    let noise = (rng.next_u64() >> 11) as f64 / (1u64 << 53) as f64 - 0.5;
+    let v = if broken { 0.05 + 0.1 * (noise + 0.5) } else { 0.3 + 0.6 * q + 0.16 * noise };
+    let scale = 10f64.powi(DEMO_QE_DECIMALS);
+    (v.clamp(0.0, 1.0) * scale).round() / scale
+}
+
 /// One simulated producer: batches of random segments at a steady pace over one stream.
 async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, segments: Arc<Vec<SegmentInput>>, degraded: Arc<AtomicBool>, stop: Arc<AtomicBool>) {
     let (tx, rx) = mpsc::channel::<pb::ScoreBatch>(4);
@@ -290,10 +327,12 @@ async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, s
             .map(|_| {
                 let seg = &segments[rng.index(segments.len())];
                 let mut hypothesis = degraded_hypothesis(seg, q, rng.next_u64());
-                if rng.chance(broken) {
+                let is_broken = rng.chance(broken);
+                if is_broken {
                     let kind = BROKEN_KINDS[rng.index(BROKEN_KINDS.len())];
                     hypothesis = broken_hypothesis(kind, seg, &hypothesis, &segments[rng.index(segments.len())]);
                 }
+                let external = [(DEMO_QE.to_owned(), demo_qe(q, is_broken, &mut rng))].into_iter().collect();
                 let key = if !by_source {
                     pb::score_item::Key::SegmentId(seg.id.clone())
                 } else if rng.chance(UNKNOWN_SHARE) {
@@ -301,7 +340,7 @@ async fn produce(ch: Channel, w: &'static Watched, by_source: bool, seed: u64, s
                 } else {
                     pb::score_item::Key::Source(seg.source_text().to_owned())
                 };
-                pb::ScoreItem { key: Some(key), hypothesis, ..Default::default() }
+                pb::ScoreItem { key: Some(key), hypothesis, external, ..Default::default() }
             })
             .collect();
         let batch = pb::ScoreBatch { session: w.session.into(), producer: producer.clone(), sequence: seq, items, want_segment_scores: false, replicas: Vec::new() };
