@@ -12,7 +12,8 @@ use std::sync::Arc;
 use common::{temp_dir, Server};
 use mtgauge::cli::demo::scenario::{demo_segments, demo_systems};
 use mtgauge::metric::resample::Resampling;
-use mtgauge::metric::ScoreConfig;
+use mtgauge::metric::scores::corpus_score;
+use mtgauge::metric::{Metric, ScoreConfig};
 use mtgauge::refs::compiled::Scratch;
 use mtgauge::refs::RefSet;
 use mtgauge::session::{ItemKey, Session, SessionSpec};
@@ -36,8 +37,8 @@ fn browse(bin: &str, profile: &std::path::Path, extra: &[&str], url: &str) -> st
 }
 
 /// Seed `dir` with the demo reference set and two sessions; returns, per session, the number of
-/// minutes with segments in the last hour.
-fn seed(dir: &std::path::Path, now: i64) -> Vec<(String, usize)> {
+/// minutes with segments in the last hour and its score over its recent window.
+fn seed(dir: &std::path::Path, now: i64) -> Vec<(String, usize, f64)> {
     let set = Arc::new(RefSet::new(demo_segments()).unwrap());
     let store = Store::open(dir).unwrap();
     store.put_refset("ferry", &set).unwrap();
@@ -62,7 +63,8 @@ fn seed(dir: &std::path::Path, now: i64) -> Vec<(String, usize)> {
             let applied = session.apply_at(start + m * 60 + 5, "seed", m as u64 + 1, &outcomes, 0, None, &Default::default()).unwrap();
             store.commit_batches(&[BatchWrite { session: name, applied: &applied }]).unwrap();
         }
-        out.push((name.to_string(), minutes));
+        let recent = corpus_score(&session.state().window.stats(), &ScoreConfig::default(), Metric::Bleu).unwrap();
+        out.push((name.to_string(), minutes, recent));
     }
     out
 }
@@ -74,9 +76,29 @@ async fn status_page_in_headless_chromium() {
     let data = dir.join("data");
     let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_secs() as i64;
     let seeded = seed(&data, now);
-    let server = Server::start(&["--data-dir", data.to_str().unwrap()]);
+    // A floor between the two sessions' recent scores, for both (by label): the canary, all
+    // fallback output in its recent window, falls under it; the other does not.
+    let (good, poor) = (seeded[0].2, seeded[1].2);
+    assert!(good > poor + 10.0, "the seeded drop: {good} vs {poor}");
+    let floor = ((good + poor) / 2.0).round();
+    let config = dir.join("mtgauge.toml");
+    std::fs::write(&config, format!("alert_eval_seconds = 1\n\n[[alert]]\nname = \"floor\"\nlabels = {{ route = \"tarnholm\" }}\nwhen = \"below\"\nthreshold = {floor}\nmin_segments = 100\nfor_segments = 0\n")).unwrap();
+    let server = Server::start(&["--data-dir", data.to_str().unwrap(), "--config", config.to_str().unwrap()]);
     server.wait_serving().await;
     let url = format!("http://{}/", server.metrics);
+    // Wait for the evaluator to fire on the canary (it evaluates every second).
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
+    loop {
+        let body = reqwest_free_get(&server.metrics, "/api/v1/overview");
+        let v: serde_json::Value = serde_json::from_str(body.split("\r\n\r\n").nth(1).unwrap()).unwrap();
+        if v["sessions"][1]["alert_spans"].as_array().is_some_and(|a| !a.is_empty()) {
+            assert_eq!(v["sessions"][1]["alert_spans"][0]["rule"], "floor");
+            assert!(v["sessions"][0]["alert_spans"].as_array().unwrap().is_empty(), "the good session does not fire: {}", v["sessions"][0]);
+            break;
+        }
+        assert!(std::time::Instant::now() < deadline, "the floor rule never fired on the canary: {v}");
+        tokio::time::sleep(std::time::Duration::from_millis(300)).await;
+    }
 
     let out_dir = std::path::PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("page");
     std::fs::create_dir_all(&out_dir).unwrap();
@@ -84,14 +106,25 @@ async fn status_page_in_headless_chromium() {
     assert!(dom.status.success(), "{}", String::from_utf8_lossy(&dom.stderr));
     let dom = String::from_utf8_lossy(&dom.stdout).to_string();
     std::fs::write(out_dir.join("page.html"), &dom).unwrap();
-    for (name, minutes) in &seeded {
+    for (name, minutes, _) in &seeded {
         let at = dom.find(&format!("data-session=\"{name}\"")).unwrap_or_else(|| panic!("session {name} listed"));
         let card = &dom[at..dom[at..].find("</section>").map_or(dom.len(), |e| at + e)];
         assert!(card.contains("<svg"), "{name}: chart present");
         assert_eq!(card.matches("class=\"pt\"").count(), *minutes, "{name}: one point per minute with segments");
         assert!(card.contains("class=\"band\""), "{name}: confidence band");
         assert!(card.contains("route=tarnholm"), "{name}: labels");
+        assert!(card.contains(&format!("class=\"threshold\" data-rule=\"floor\" data-value=\"{floor}\"")), "{name}: the floor's threshold line");
+        assert!(card.contains("class=\"rate\""), "{name}: segments per second");
+        let spans = card.matches("class=\"alert-span\" data-rule=\"floor\" data-state=\"firing\"").count();
+        assert_eq!(spans, usize::from(name == "ferry-v8-canary"), "{name}: the span where the alert fires");
     }
+    // The comparison view: the first two comparable sessions, the canary worse.
+    let at = dom.find("id=\"compare\"").expect("comparison view");
+    let cmp = &dom[at..];
+    assert!(cmp.contains("<option selected=\"\">ferry-v8</option>") || cmp.contains("<option selected>ferry-v8</option>"), "A chosen: {}", &cmp[..cmp.len().min(600)]);
+    let diff: f64 = cmp.split("class=\"diff\" data-difference=\"").nth(1).unwrap().split('"').next().unwrap().parse().unwrap();
+    assert!((diff - (good - poor)).abs() < 15.0 && diff > 0.0, "ferry-v8 - canary on the shared segments: {diff} (recent {good} vs {poor})");
+    assert!(cmp.contains("A better"), "the interval of the difference lies above 0");
     // The drop shows: the canary's last points lie lower on the chart (larger y) than its
     // first ones.
     let at = dom.find("data-session=\"ferry-v8-canary\"").unwrap();
@@ -112,6 +145,15 @@ async fn status_page_in_headless_chromium() {
     let v: serde_json::Value = serde_json::from_str(body.split("\r\n\r\n").nth(1).unwrap()).unwrap();
     let names: Vec<&str> = v["sessions"].as_array().unwrap().iter().map(|s| s["name"].as_str().unwrap()).collect();
     assert_eq!(names, ["ferry-v8", "ferry-v8-canary"]);
+    // The comparison the view refreshes from, the other way round: negative, with an interval
+    // below 0.
+    let body = reqwest_free_get(&server.metrics, "/api/v1/compare?a=ferry-v8-canary&b=ferry-v8");
+    let v: serde_json::Value = serde_json::from_str(body.split("\r\n\r\n").nth(1).unwrap()).unwrap();
+    let bleu = &v["metrics"]["bleu"];
+    assert!((bleu["difference"].as_f64().unwrap() + diff).abs() < 1e-9, "{v}");
+    assert!(bleu["interval"]["high"].as_f64().unwrap() < 0.0, "{v}");
+    let body = reqwest_free_get(&server.metrics, "/api/v1/compare?a=ferry-v8&b=nope");
+    assert!(body.contains("\"error\"") && body.contains("nope"), "{body}");
 }
 
 /// A plain HTTP/1.1 GET over a TCP socket.

@@ -77,8 +77,15 @@ async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: 
             Err(message) => ("401 Unauthorized", "text/plain; charset=utf-8", message + "\n"),
             Ok(()) => {
                 let state = page.state.clone();
-                let body = tokio::task::spawn_blocking(move || if which { super::page::page_html(&state) } else { super::page::overview_json(&state) }).await.unwrap_or_default();
-                ("200 OK", if which { "text/html; charset=utf-8" } else { "application/json" }, body)
+                let query = path.split_once('?').map_or(String::new(), |(_, q)| q.to_owned());
+                let body = tokio::task::spawn_blocking(move || match which {
+                    PagePath::Page => super::page::page_html(&state),
+                    PagePath::Overview => super::page::overview_json(&state),
+                    PagePath::Compare => super::page::comparison_json(&state, &query),
+                })
+                .await
+                .unwrap_or_default();
+                ("200 OK", if which == PagePath::Page { "text/html; charset=utf-8" } else { "application/json" }, body)
             }
         }
     } else {
@@ -89,11 +96,23 @@ async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: 
     let _ = sock.shutdown().await;
 }
 
-/// Some(true) for the page, Some(false) for its JSON, None for anything else.
-fn page_path(path: &str) -> Option<bool> {
+/// What the status page serves.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum PagePath {
+    /// `GET /`: the page.
+    Page,
+    /// `GET /api/v1/overview`: every session's card, as JSON.
+    Overview,
+    /// `GET /api/v1/compare?a=NAME&b=NAME`: two sessions compared, as JSON.
+    Compare,
+}
+
+/// What `path` asks of the page, if anything.
+fn page_path(path: &str) -> Option<PagePath> {
     match path.split('?').next().unwrap_or("") {
-        "/" | "/index.html" => Some(true),
-        "/api/v1/overview" => Some(false),
+        "/" | "/index.html" => Some(PagePath::Page),
+        "/api/v1/overview" => Some(PagePath::Overview),
+        "/api/v1/compare" => Some(PagePath::Compare),
         _ => None,
     }
 }

@@ -15,7 +15,7 @@ use crate::alerts::deliver::{AlertEvent, DeliveryHandle};
 use crate::alerts::rules::{Condition, Measured, Rule, State as AlertState, Tracker, Transition, Window};
 use crate::alerts::shift::Cusum;
 use crate::metric::resample::Replicates;
-use crate::metric::CorpusStats;
+use crate::metric::{CorpusStats, Metric};
 use crate::metric::compare::{difference_interval, CompareSettings};
 use crate::metric::resample::DEFAULT_LEVEL;
 use crate::metric::scores::corpus_score;
@@ -23,21 +23,92 @@ use crate::pb;
 use crate::session::Session;
 use crate::telemetry;
 
-/// The states of every (rule, session) pair as last evaluated, by session name: what reports
-/// show. Written only by the evaluator.
+/// The states of every (rule, session) pair as last evaluated, by session name, with the
+/// spans during which alerts fired and the thresholds of the `below` rules: what reports and
+/// the status page show. Written only by the evaluator.
 #[derive(Clone, Default)]
 pub struct AlertBoard {
-    inner: Arc<Mutex<HashMap<String, Vec<pb::AlertStatus>>>>,
+    inner: Arc<Mutex<Board>>,
+}
+
+#[derive(Default)]
+struct Board {
+    states: HashMap<String, Vec<pb::AlertStatus>>,
+    spans: HashMap<String, std::collections::VecDeque<AlertSpan>>,
+    thresholds: HashMap<String, Vec<Threshold>>,
+}
+
+/// Spans of firing a session keeps (the oldest go first): in memory, since the daemon started.
+pub const MAX_ALERT_SPANS: usize = 64;
+
+/// A time during which a rule's alert fired on a session.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct AlertSpan {
+    /// The rule's name.
+    pub rule: String,
+    /// When it fired (seconds since the Unix epoch).
+    pub from: i64,
+    /// When it resolved; None while it fires.
+    pub until: Option<i64>,
+}
+
+/// The threshold of a `below` rule that selects a session.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Threshold {
+    /// The rule's name.
+    pub rule: String,
+    /// The metric it judges.
+    pub metric: Metric,
+    /// Its threshold, 0-100.
+    pub value: f64,
 }
 
 impl AlertBoard {
-    /// The alerts of a session, by rule name.
-    pub fn of(&self, session: &str) -> Vec<pb::AlertStatus> {
-        self.inner.lock().unwrap_or_else(|e| e.into_inner()).get(session).cloned().unwrap_or_default()
+    fn lock(&self) -> std::sync::MutexGuard<'_, Board> {
+        self.inner.lock().unwrap_or_else(|e| e.into_inner())
     }
 
-    fn publish(&self, all: HashMap<String, Vec<pb::AlertStatus>>) {
-        *self.inner.lock().unwrap_or_else(|e| e.into_inner()) = all;
+    /// The alerts of a session, by rule name.
+    pub fn of(&self, session: &str) -> Vec<pb::AlertStatus> {
+        self.lock().states.get(session).cloned().unwrap_or_default()
+    }
+
+    /// The spans during which alerts fired on a session, oldest first (at most
+    /// [`MAX_ALERT_SPANS`]; an open one is firing now).
+    pub fn spans_of(&self, session: &str) -> Vec<AlertSpan> {
+        self.lock().spans.get(session).map(|d| d.iter().cloned().collect()).unwrap_or_default()
+    }
+
+    /// The thresholds of the `below` rules that select a session.
+    pub fn thresholds_of(&self, session: &str) -> Vec<Threshold> {
+        self.lock().thresholds.get(session).cloned().unwrap_or_default()
+    }
+
+    /// Note a rule's transition on a session at `now`.
+    fn record(&self, rule: &str, session: &str, change: Transition, now: i64) {
+        let mut b = self.lock();
+        let spans = b.spans.entry(session.to_owned()).or_default();
+        match change {
+            Transition::Fired => {
+                if spans.len() == MAX_ALERT_SPANS {
+                    spans.pop_front();
+                }
+                spans.push_back(AlertSpan { rule: rule.to_owned(), from: now, until: None });
+            }
+            Transition::Resolved => {
+                if let Some(open) = spans.iter_mut().rev().find(|s| s.rule == rule && s.until.is_none()) {
+                    open.until = Some(now);
+                }
+            }
+        }
+    }
+
+    fn publish(&self, states: HashMap<String, Vec<pb::AlertStatus>>, thresholds: HashMap<String, Vec<Threshold>>) {
+        let mut b = self.lock();
+        // A session no rule judges any more (closed, say) keeps no spans.
+        b.spans.retain(|session, _| states.contains_key(session));
+        b.states = states;
+        b.thresholds = thresholds;
     }
 }
 
@@ -149,6 +220,7 @@ pub fn start(state: State, rules: Vec<Rule>, every: Duration, board: AlertBoard,
 pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, String), Pair>, board: &AlertBoard, delivery: Option<&DeliveryHandle>, now: i64) -> HashMap<(String, String), Pair> {
     let mut next = HashMap::new();
     let mut views: HashMap<String, Vec<pb::AlertStatus>> = HashMap::new();
+    let mut thresholds: HashMap<String, Vec<Threshold>> = HashMap::new();
     for session in state.sessions() {
         let spec = session.spec();
         for rule in rules.iter().filter(|r| r.selects(&spec.name, &spec.labels)) {
@@ -159,6 +231,10 @@ pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, St
             let change = p.tracker.step(rule, m, now, scored);
             if let Some(change) = change {
                 log_transition(rule, &spec.name, change, m);
+                board.record(&rule.name, &spec.name, change, now);
+            }
+            if let Condition::Below { threshold } = rule.condition {
+                thresholds.entry(spec.name.clone()).or_default().push(Threshold { rule: rule.name.clone(), metric: rule.metric, value: threshold });
             }
             if change == Some(Transition::Fired) {
                 p.fired_at = now;
@@ -180,7 +256,7 @@ pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, St
         }
         telemetry::record_alert(&rule, &session, AlertState::Inactive.name(), &AlertState::ALL.map(AlertState::name));
     }
-    board.publish(views);
+    board.publish(views, thresholds);
     next
 }
 
@@ -495,5 +571,30 @@ mod tests {
         assert_eq!((w.segments, a.segments), (60, 60));
         assert_eq!((w.state.as_str(), a.state.as_str()), ("inactive", "inactive"), "too few segments to judge by");
         drop(trackers);
+    }
+
+    #[test]
+    fn the_board_remembers_spans_of_firing_bounded() {
+        let board = AlertBoard::default();
+        board.record("floor", "s", Transition::Fired, 100);
+        board.record("other", "s", Transition::Fired, 150);
+        board.record("floor", "s", Transition::Resolved, 200);
+        assert_eq!(
+            board.spans_of("s"),
+            [AlertSpan { rule: "floor".into(), from: 100, until: Some(200) }, AlertSpan { rule: "other".into(), from: 150, until: None }]
+        );
+        // A resolve with nothing open changes nothing.
+        board.record("floor", "s", Transition::Resolved, 300);
+        assert_eq!(board.spans_of("s")[0].until, Some(200));
+        for t in 0..2 * MAX_ALERT_SPANS as i64 {
+            board.record("floor", "s", Transition::Fired, 1000 + 2 * t);
+            board.record("floor", "s", Transition::Resolved, 1001 + 2 * t);
+        }
+        let spans = board.spans_of("s");
+        assert_eq!(spans.len(), MAX_ALERT_SPANS);
+        assert_eq!(spans.last().map(|s| s.until), Some(Some(1001 + 2 * (2 * MAX_ALERT_SPANS as i64 - 1))), "the newest kept");
+        // A session no rule judges any more keeps none.
+        board.publish(HashMap::new(), HashMap::new());
+        assert!(board.spans_of("s").is_empty());
     }
 }

@@ -14,6 +14,7 @@ use crate::metric::resample::DEFAULT_LEVEL;
 use crate::metric::scores::corpus_score;
 use crate::metric::Metric;
 
+use super::alerting::AlertSpan;
 use super::history::{points, HistoryQuery, Point};
 use super::state::{unix_now, State};
 use crate::session::Session;
@@ -24,6 +25,11 @@ pub const CHART_STEPS: i64 = 60;
 pub const CHART_STEP_SECS: i64 = 60;
 /// Seconds between refreshes of the page.
 pub const REFRESH_SECS: u32 = 5;
+/// Seconds over which a card's segments per second are measured (the last five minutes).
+pub const RATE_SECS: i64 = 300;
+/// Approximate-randomization trials of the page's comparison (fewer than `compare`'s default:
+/// it is computed again at every refresh; the smallest p it can show is 1/1001).
+pub const PAGE_COMPARE_TRIALS: usize = 1_000;
 /// Chart size in SVG user units.
 const CHART_W: f64 = 640.0;
 const CHART_H: f64 = 180.0;
@@ -57,7 +63,16 @@ pub struct Card {
     segments: u64,
     unknown_share: f64,
     rejected_share: f64,
+    /// Segments scored per second over the last [`RATE_SECS`] (from the history).
+    segments_per_second: f64,
+    /// Items the guards checked, and each guard's flagged share of those it decided on (%).
+    guard_checked: u64,
+    guard_rates: Vec<(&'static str, f64)>,
     alerts: Vec<(String, String, i64)>,
+    /// Times alerts fired, since the daemon started (the newest [`super::alerting::MAX_ALERT_SPANS`]).
+    alert_spans: Vec<AlertSpan>,
+    /// The `below` rules' thresholds on the chart's metric: (rule, score).
+    thresholds: Vec<(String, f64)>,
     points: Vec<Point>,
     html: String,
 }
@@ -76,6 +91,10 @@ fn card(state: &State, s: &Session, now: i64) -> Card {
     let q = HistoryQuery { metric, from: until - CHART_STEPS * CHART_STEP_SECS, until, step: CHART_STEP_SECS, level: DEFAULT_LEVEL };
     let pts = points(s, &q).map(|(_, p)| p).unwrap_or_default();
     let alerts: Vec<(String, String, i64)> = state.alerts().of(&spec.name).into_iter().map(|a| (a.rule, a.state, a.since_unix)).collect();
+    let thresholds = state.alerts().thresholds_of(&spec.name).into_iter().filter(|t| t.metric == metric).map(|t| (t.rule, t.value)).collect();
+    let recent_segments: u64 = pts.iter().filter(|p| p.start + CHART_STEP_SECS > now - RATE_SECS).map(|p| p.segments).sum();
+    let guards = counts.guards;
+    let guard_rates = if guards.checked == 0 { Vec::new() } else { crate::guard::Guard::ALL.into_iter().filter_map(|g| Some((g.name(), 100.0 * guards.rate(g)?))).collect() };
     let mut c = Card {
         name: spec.name.clone(),
         labels: spec.labels.clone(),
@@ -87,7 +106,12 @@ fn card(state: &State, s: &Session, now: i64) -> Card {
         segments: counts.scored,
         unknown_share: counts.unknown as f64 / all,
         rejected_share: counts.rejected as f64 / all,
+        segments_per_second: recent_segments as f64 / RATE_SECS as f64,
+        guard_checked: guards.checked,
+        guard_rates,
         alerts,
+        alert_spans: state.alerts().spans_of(&spec.name),
+        thresholds,
         points: pts,
         html: String::new(),
     };
@@ -103,22 +127,40 @@ fn card_html(c: &Card, from: i64, until: i64) -> String {
     } else {
         c.alerts.iter().map(|(rule, st, _)| format!("<span class=\"alert {}\" data-rule=\"{}\">{}: {}</span>", esc(st), esc(rule), esc(rule), esc(st))).collect()
     };
+    let guards = if c.guard_checked == 0 {
+        String::new()
+    } else {
+        let rates: String = c.guard_rates.iter().map(|(g, r)| format!("<span class=\"guard{}\" data-guard=\"{g}\">{g} {r:.1}%</span>", if *r > 0.0 { " hit" } else { "" })).collect();
+        format!("<div class=\"guards\"><span class=\"quiet\">guards, share flagged of {} checked:</span> {rates}</div>", c.guard_checked)
+    };
+    let marks = Marks { spans: &c.alert_spans, thresholds: &c.thresholds };
     let _ = write!(
         h,
         "<section class=\"card\" data-session=\"{name}\"><header><h2>{name}</h2>{labels}</header>\
 <dl><dt>{m} since start</dt><dd class=\"cum\">{cum}</dd><dt>{m} recent window</dt><dd class=\"recent\">{rec}</dd>\
-<dt>segments</dt><dd class=\"segs\">{segs}</dd><dt>unknown</dt><dd>{unk:.1}%</dd><dt>rejected</dt><dd>{rej:.1}%</dd></dl>\
-<div class=\"alerts\">{alerts}</div>{chart}</section>",
+<dt>segments</dt><dd class=\"segs\">{segs}</dd><dt>segments/s (5 min)</dt><dd class=\"rate\">{rate:.2}</dd><dt>unknown</dt><dd>{unk:.1}%</dd><dt>rejected</dt><dd>{rej:.1}%</dd></dl>\
+{guards}<div class=\"alerts\">{alerts}</div>{chart}</section>",
         name = esc(&c.name),
         m = c.metric,
         cum = score_text(c.cumulative, c.cumulative_interval),
         rec = score_text(c.recent, c.recent_interval),
         segs = c.segments,
+        rate = c.segments_per_second,
         unk = 100.0 * c.unknown_share,
         rej = 100.0 * c.rejected_share,
-        chart = chart_svg(&c.name, c.metric, &c.points, &c.alerts, &Frame { from, until, step: CHART_STEP_SECS, left: "\u{2212}60 min".into(), right: "now (UTC minute steps)".into(), what: "per minute, last hour".into(), placement: "" }),
+        chart = chart_svg(&c.name, c.metric, &c.points, &marks, &Frame { from, until, step: CHART_STEP_SECS, left: "\u{2212}60 min".into(), right: "now (UTC minute steps)".into(), what: "per minute, last hour".into(), placement: "" }),
     );
     h
+}
+
+/// What a chart marks besides the scores: times alerts fired (shaded spans) and the
+/// thresholds of `below` rules (dashed lines).
+#[derive(Default)]
+pub struct Marks<'a> {
+    /// Spans of firing; an open one lasts to the chart's right edge.
+    pub spans: &'a [AlertSpan],
+    /// (rule, score) of each threshold.
+    pub thresholds: &'a [(String, f64)],
 }
 
 /// Where and over what time a chart is drawn.
@@ -152,7 +194,7 @@ pub fn report_svg(session: &str, metric: &str, pts: &[Point], frame: &Frame, foo
     let _ = write!(s, "<text class=\"caption\" transform=\"translate(14,{:.1}) rotate(-90)\" text-anchor=\"middle\">{} (0\u{2013}100)</text>", TOP + CHART_H / 2.0, esc(metric));
     let _ = write!(s, "<text class=\"caption\" x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\">time (UTC), one point per {} with segments; band: 95% bootstrap interval</text>", 20.0 + CHART_W / 2.0, TOP + CHART_H + 14.0, step_words(frame.step));
     let inner = Frame { placement: "x=\"20\" y=\"50\" width=\"640\" height=\"180\" ", from: frame.from, until: frame.until, step: frame.step, left: frame.left.clone(), right: frame.right.clone(), what: frame.what.clone() };
-    s.push_str(&chart_svg(session, metric, pts, &[], &inner));
+    s.push_str(&chart_svg(session, metric, pts, &Marks::default(), &inner));
     for (i, line) in lines.iter().enumerate() {
         let _ = write!(s, "<text class=\"foot\" x=\"20\" y=\"{:.1}\">{}</text>", TOP + CHART_H + 32.0 + 14.0 * i as f64, esc(line));
     }
@@ -189,8 +231,9 @@ pub fn step_words(step: i64) -> String {
 }
 
 /// The chart of one session: the score of each step with segments (a point and a line), its
-/// interval as a band, and a shaded span for each alert that is firing (from when it fired).
-pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, String, i64)], frame: &Frame) -> String {
+/// interval as a band, a shaded span for each time an alert fired, and a dashed line for each
+/// threshold.
+pub fn chart_svg(session: &str, metric: &str, pts: &[Point], marks: &Marks<'_>, frame: &Frame) -> String {
     let Frame { from, until, step, .. } = *frame;
     let with: Vec<&Point> = pts.iter().filter(|p| p.score.is_some()).collect();
     let (mut lo, mut hi) = (f64::MAX, f64::MIN);
@@ -203,6 +246,10 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, 
     if with.is_empty() {
         (lo, hi) = (0.0, 100.0);
     }
+    for (_, t) in marks.thresholds {
+        lo = lo.min(*t);
+        hi = hi.max(*t);
+    }
     let pad = ((hi - lo) * 0.1).max(1.0);
     let (lo, hi) = ((lo - pad).max(0.0), (hi + pad).min(100.0));
     let x = |t: i64| PAD_L + (t - from) as f64 / (until - from).max(1) as f64 * (CHART_W - PAD_L - 8.0);
@@ -211,9 +258,21 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, 
     let mut s = String::new();
     let _ = write!(s, "<svg class=\"chart\" {}viewBox=\"0 0 {CHART_W} {CHART_H}\" role=\"img\" aria-label=\"{} of {}, {}\" xmlns=\"http://www.w3.org/2000/svg\">", frame.placement, esc(metric), esc(session), esc(&frame.what));
     let _ = write!(s, "<rect class=\"plot\" x=\"{PAD_L}\" y=\"{PAD_T}\" width=\"{}\" height=\"{}\"/>", CHART_W - PAD_L - 8.0, CHART_H - PAD_T - PAD_B);
-    for (_, st, since) in alerts.iter().filter(|(_, st, _)| st == "firing") {
-        let x0 = x((*since).max(from));
-        let _ = write!(s, "<rect class=\"alert-span\" data-state=\"{}\" x=\"{x0:.1}\" y=\"{PAD_T}\" width=\"{:.1}\" height=\"{}\"/>", esc(st), (x(until) - x0).max(1.0), CHART_H - PAD_T - PAD_B);
+    for span in marks.spans.iter().filter(|sp| sp.from < until && sp.until.is_none_or(|u| u > from)) {
+        let (x0, x1) = (x(span.from.max(from)), x(span.until.unwrap_or(until).min(until)));
+        let (state, to) = match span.until {
+            Some(u) => ("resolved", format!("resolved {}", clock(u))),
+            None => ("firing", "firing now".to_owned()),
+        };
+        let _ = write!(
+            s,
+            "<rect class=\"alert-span\" data-rule=\"{}\" data-state=\"{state}\" x=\"{x0:.1}\" y=\"{PAD_T}\" width=\"{:.1}\" height=\"{}\"><title>{}: fired {}, {to}</title></rect>",
+            esc(&span.rule),
+            (x1 - x0).max(1.0),
+            CHART_H - PAD_T - PAD_B,
+            esc(&span.rule),
+            clock(span.from)
+        );
     }
     // The band: runs of consecutive steps that have an interval.
     let mut runs: Vec<Vec<&Point>> = Vec::new();
@@ -236,12 +295,29 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], alerts: &[(String, 
     for p in &with {
         let _ = write!(s, "<circle class=\"pt\" data-start=\"{}\" data-segments=\"{}\" cx=\"{:.1}\" cy=\"{:.1}\" r=\"2.5\"><title>{:.2} ({} segments)</title></circle>", p.start, p.segments, x(mid(p)), y(p.score.unwrap_or(0.0)), p.score.unwrap_or(0.0), p.segments);
     }
+    for (rule, t) in marks.thresholds {
+        let _ = write!(
+            s,
+            "<line class=\"threshold\" data-rule=\"{r}\" data-value=\"{t}\" x1=\"{PAD_L}\" x2=\"{:.1}\" y1=\"{y:.1}\" y2=\"{y:.1}\"><title>{r}: alert when the interval lies below {t}</title></line><text class=\"tick threshold-label\" x=\"{:.1}\" y=\"{:.1}\">{r} {t}</text>",
+            CHART_W - 8.0,
+            CHART_W - 10.0,
+            y(*t) - 3.0,
+            r = esc(rule),
+            y = y(*t)
+        );
+    }
     for v in [lo, (lo + hi) / 2.0, hi] {
         let _ = write!(s, "<text class=\"tick\" x=\"{:.1}\" y=\"{:.1}\">{v:.1}</text>", PAD_L - 4.0, y(v) + 3.0);
     }
     let _ = write!(s, "<text class=\"axis\" x=\"{PAD_L}\" y=\"{}\">{}</text><text class=\"axis end\" x=\"{}\" y=\"{}\">{}</text>", CHART_H - 6.0, esc(&frame.left), CHART_W - 8.0, CHART_H - 6.0, esc(&frame.right));
     s.push_str("</svg>");
     s
+}
+
+/// `unix` as hh:mm UTC.
+fn clock(unix: i64) -> String {
+    let d = unix.rem_euclid(86_400);
+    format!("{:02}:{:02} UTC", d / 3600, d % 3600 / 60)
 }
 
 /// Every session's card, at `now`.
@@ -255,13 +331,125 @@ pub fn overview_json(state: &State) -> String {
     serde_json::json!({ "unix_time": now, "refresh_seconds": REFRESH_SECS, "sessions": overview(state, now) }).to_string()
 }
 
+/// The first two sessions (in name order) that can be compared: the same reference-set
+/// version and configuration.
+fn default_pair(state: &State) -> Option<(String, String)> {
+    let all = state.sessions();
+    all.iter().enumerate().find_map(|(i, a)| {
+        all[i + 1..].iter().find(|b| b.refs().digest() == a.refs().digest() && b.spec().config == a.spec().config).map(|b| (a.spec().name.clone(), b.spec().name.clone()))
+    })
+}
+
+/// The comparison of session `a` with `b` over the segments both recent windows hold, as HTML
+/// (a table row per metric: A, B, A - B with its paired interval, p) and as JSON.
+pub fn comparison(state: &State, a: &str, b: &str) -> (String, serde_json::Value) {
+    let fail = |m: String| (format!("<p class=\"quiet\">{}</p>", esc(&m)), serde_json::json!({ "a": a, "b": b, "error": m }));
+    let (sa, sb) = match (state.session(a), state.session(b)) {
+        (Ok(x), Ok(y)) => (x, y),
+        (Err(e), _) | (_, Err(e)) => return fail(e.to_string()),
+    };
+    let r = sa.spec().resampling;
+    let settings = crate::metric::compare::CompareSettings { resamples: r.resamples, seed: r.seed, level: DEFAULT_LEVEL, trials: PAGE_COMPARE_TRIALS };
+    let p = match super::compare::paired(&sa, &sb, &settings, 1) {
+        Ok(p) => p,
+        Err(e) => return fail(e.to_string()),
+    };
+    if p.comparison.segments == 0 {
+        return fail(format!("sessions {a} and {b} hold no segment in common in their recent windows ({} and {} segments)", p.recent_a, p.recent_b));
+    }
+    let rows: String = p
+        .comparison
+        .metrics
+        .iter()
+        .map(|m| {
+            let iv = m.interval.map_or_else(String::new, |i| format!(" <span class=\"iv\">[{:+.2}, {:+.2}]</span>", i.low, i.high));
+            let verdict = match m.interval {
+                Some(i) if i.high < 0.0 => "<span class=\"worse\">A worse</span>",
+                Some(i) if i.low > 0.0 => "<span class=\"better\">A better</span>",
+                Some(_) => "<span class=\"quiet\">no clear difference</span>",
+                None => "",
+            };
+            let pv = m.p_value.map_or_else(|| "&ndash;".to_owned(), |p| format!("{p:.4}"));
+            format!("<tr data-metric=\"{}\"><td>{}</td><td>{:.2}</td><td>{:.2}</td><td class=\"diff\" data-difference=\"{}\">{:+.2}{iv}</td><td>{pv}</td><td>{verdict}</td></tr>", m.metric.name(), m.metric.title(), m.a.score, m.b.score, m.difference, m.difference)
+        })
+        .collect();
+    let html = format!(
+        "<table class=\"cmp\"><thead><tr><th></th><th>A: {}</th><th>B: {}</th><th>A &minus; B, 95% paired interval</th><th>p</th><th></th></tr></thead><tbody>{rows}</tbody></table>\
+<p class=\"quiet\">{} segments in both recent windows (A holds {}, B {}); paired bootstrap of {} replicates, p from {} randomization trials.</p>",
+        esc(a),
+        esc(b),
+        p.comparison.segments,
+        p.recent_a,
+        p.recent_b,
+        settings.resamples,
+        settings.trials
+    );
+    let json = serde_json::json!({ "a": a, "b": b, "segments": p.comparison.segments, "metrics": p.comparison.metrics.iter().map(|m| (m.metric.name(), m)).collect::<std::collections::BTreeMap<_, _>>() });
+    (html, json)
+}
+
+/// The JSON of `GET /api/v1/compare?a=NAME&b=NAME`: the comparison's numbers and its HTML.
+pub fn comparison_json(state: &State, query: &str) -> String {
+    let (mut a, mut b) = (String::new(), String::new());
+    for (k, v) in query.split('&').filter_map(|kv| kv.split_once('=')) {
+        match k {
+            "a" => a = percent_decode(v),
+            "b" => b = percent_decode(v),
+            _ => {}
+        }
+    }
+    let (html, mut json) = comparison(state, &a, &b);
+    json["html"] = serde_json::Value::String(html);
+    json.to_string()
+}
+
+/// A query-string value decoded (`+` is a space; a bad escape stays as it is).
+fn percent_decode(v: &str) -> String {
+    let bytes = v.as_bytes();
+    let mut out = Vec::with_capacity(bytes.len());
+    let mut i = 0;
+    while i < bytes.len() {
+        let hex = bytes.get(i + 1..i + 3).and_then(|h| std::str::from_utf8(h).ok()).and_then(|h| u8::from_str_radix(h, 16).ok());
+        match (bytes[i], hex) {
+            (b'+', _) => out.push(b' '),
+            (b'%', Some(x)) => {
+                out.push(x);
+                i += 2;
+            }
+            (c, _) => out.push(c),
+        }
+        i += 1;
+    }
+    String::from_utf8_lossy(&out).into_owned()
+}
+
+/// The comparison section: two choosers and the default pair's comparison.
+fn compare_section(state: &State) -> String {
+    let names: Vec<String> = state.sessions().iter().map(|s| s.spec().name.clone()).collect();
+    let pair = default_pair(state);
+    let options = |chosen: Option<&str>| -> String { names.iter().map(|n| format!("<option{}>{}</option>", if Some(n.as_str()) == chosen { " selected" } else { "" }, esc(n))).collect() };
+    let (a, b) = pair.as_ref().map_or((None, None), |(a, b)| (Some(a.as_str()), Some(b.as_str())));
+    let body = match &pair {
+        Some((a, b)) => comparison(state, a, b).0,
+        None => "<p class=\"quiet\">No two sessions score against the same reference set with the same configuration.</p>".to_owned(),
+    };
+    format!(
+        "<section class=\"card\" id=\"compare\"><header><h2>Compare two sessions</h2><span class=\"quiet\">A <select id=\"cmp-a\">{}</select> against B <select id=\"cmp-b\">{}</select></span></header><div id=\"cmp-result\">{body}</div></section>",
+        options(a),
+        options(b)
+    )
+}
+
 /// The page of `GET /`.
 pub fn page_html(state: &State) -> String {
     let cards: String = overview(state, unix_now()).iter().map(|c| c.html.as_str()).collect();
     format!(
         "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>mtgauge</title><style>{CSS}{CHART_CSS}</style></head>\
 <body><div class=\"top\"><h1>mtgauge</h1><span id=\"stamp\">sessions as served</span></div>\
-<main id=\"cards\">{cards}</main><script>const EVERY={every};{SCRIPT}</script></body></html>",
+<main id=\"cards\">{cards}</main><div class=\"below\">{compare}</div>\
+<p class=\"note\">Scores are an automatic proxy for translation quality, comparable only between sessions with the same tokenizer, references and configuration.</p>\
+<script>const EVERY={every};{SCRIPT}</script></body></html>",
+        compare = compare_section(state),
         every = REFRESH_SECS * 1000
     )
 }
@@ -271,17 +459,24 @@ const CSS: &str = "body{margin:0;font:14px/1.4 system-ui,sans-serif;background:#
 .top h1{font-size:18px;margin:0;letter-spacing:.08em}#cards{display:grid;grid-template-columns:repeat(auto-fill,minmax(660px,1fr));gap:1em;padding:1em}\
 .card{background:#fffdf8;border:1px solid #d9d2c3;border-radius:6px;padding:.6em .9em}.card header{display:flex;gap:.5em;align-items:baseline;flex-wrap:wrap}\
 .card h2{font-size:16px;margin:0 .4em 0 0}.tag{font-size:12px;background:#e8e1d0;border-radius:3px;padding:0 .4em}\
-dl{display:grid;grid-template-columns:repeat(5,auto);gap:0 1em;margin:.5em 0}dt{font-size:11px;color:#6b6457;grid-row:1}dd{margin:0;font-weight:600;grid-row:2}\
+dl{display:grid;grid-template-columns:repeat(6,auto);gap:0 1em;margin:.5em 0}dt{font-size:11px;color:#6b6457;grid-row:1}dd{margin:0;font-weight:600;grid-row:2}\
 .iv{font-weight:400;color:#6b6457}.alerts{margin:.3em 0}.alert{font-size:12px;border-radius:3px;padding:0 .4em;margin-right:.4em;background:#e8e1d0}\
 .alert.firing{background:#b8412c;color:#fff}.alert.pending{background:#d9a441}.quiet{font-size:12px;color:#8a8273}\
-.chart{width:100%;height:auto}";
+.chart{width:100%;height:auto}.guards{font-size:12px;margin:.2em 0}.guard{margin-right:.6em}.guard.hit{color:#b8412c;font-weight:600}\
+.below{padding:0 1em}#compare select{font:inherit}.cmp{border-collapse:collapse;margin:.5em 0}.cmp th,.cmp td{padding:.15em .8em;text-align:left;border-bottom:1px solid #e8e1d0}\
+.worse{color:#b8412c;font-weight:600}.better{color:#2e4a3f;font-weight:600}.note{padding:0 1.2em;font-size:12px;color:#6b6457}";
 /// The styles of a chart (the page's, and a report file's own copy).
 pub const CHART_CSS: &str = ".plot{fill:#fbf8f1;stroke:#d9d2c3}.band{fill:#7fa391;fill-opacity:.35}.line{fill:none;stroke:#2e4a3f;stroke-width:1.6}\
-.pt{fill:#2e4a3f}.alert-span{fill:#b8412c;fill-opacity:.15}.tick,.axis{font-size:10px;fill:#6b6457;font-family:sans-serif}.tick{text-anchor:end}.axis.end{text-anchor:end}";
+.pt{fill:#2e4a3f}.alert-span{fill:#b8412c;fill-opacity:.15}.alert-span[data-state=resolved]{fill-opacity:.08}\
+.threshold{stroke:#b8412c;stroke-width:1;stroke-dasharray:4 3}.threshold-label{fill:#b8412c}.tick,.axis{font-size:10px;fill:#6b6457;font-family:sans-serif}.tick{text-anchor:end}.axis.end{text-anchor:end}";
 
 const SCRIPT: &str = "async function refresh(){try{const r=await fetch('api/v1/overview',{cache:'no-store'});if(!r.ok)return;const d=await r.json();\
 document.getElementById('cards').innerHTML=d.sessions.map(s=>s.html).join('');\
-document.getElementById('stamp').textContent='updated '+new Date(d.unix_time*1000).toISOString().slice(11,19)+' UTC';}catch(e){}}\
+document.getElementById('stamp').textContent='updated '+new Date(d.unix_time*1000).toISOString().slice(11,19)+' UTC';await compare();}catch(e){}}\
+async function compare(){const a=document.getElementById('cmp-a'),b=document.getElementById('cmp-b');if(!a||!b||!a.value||!b.value)return;\
+const r=await fetch('api/v1/compare?a='+encodeURIComponent(a.value)+'&b='+encodeURIComponent(b.value),{cache:'no-store'});if(!r.ok)return;\
+document.getElementById('cmp-result').innerHTML=(await r.json()).html;}\
+for(const id of ['cmp-a','cmp-b']){const e=document.getElementById(id);if(e)e.addEventListener('change',()=>compare().catch(()=>{}));}\
 setInterval(refresh,EVERY);";
 
 #[cfg(test)]
@@ -303,11 +498,52 @@ mod tests {
         let frame = Frame { from: 0, until: 600, step: 60, left: String::new(), right: String::new(), what: String::new(), placement: "" };
         // Steps 0-1 with intervals (one run), step 2 without, step 4 alone with one.
         let pts = [point(0, true), point(60, true), point(120, false), point(240, true)];
-        let bands = band_xs(&chart_svg("s", "BLEU", &pts, &[], &frame));
+        let bands = band_xs(&chart_svg("s", "BLEU", &pts, &Marks::default(), &frame));
         assert_eq!(bands.len(), 2, "{bands:?}");
         let width = |xs: &[f64]| xs.iter().copied().fold(f64::MIN, f64::max) - xs.iter().copied().fold(f64::MAX, f64::min);
         assert!(width(&bands[0]) > 0.0 && width(&bands[1]) > 0.0, "{bands:?}");
         // The lone step's band spans the middle half of its step: half the run's width (one step).
         assert!((width(&bands[1]) - width(&bands[0]) / 2.0).abs() < 0.2, "{bands:?}");
+    }
+
+    /// The value of attribute `name` in each element of `svg` with class `class`.
+    fn attr_of(svg: &str, class: &str, name: &str) -> Vec<String> {
+        svg.split(&format!("class=\"{class}\"")).skip(1).map(|rest| rest.split(&format!("{name}=\"")).nth(1).and_then(|v| v.split('"').next()).unwrap_or("").to_owned()).collect()
+    }
+
+    #[test]
+    fn spans_and_thresholds_are_drawn_where_they_belong() {
+        let frame = Frame { from: 0, until: 600, step: 60, left: String::new(), right: String::new(), what: String::new(), placement: "" };
+        let pts = [point(0, true), point(60, true), point(300, true)];
+        let spans = [
+            // Before the chart: not drawn.
+            AlertSpan { rule: "old".into(), from: -900, until: Some(-300) },
+            // Resolved inside it, from its left edge.
+            AlertSpan { rule: "floor".into(), from: -60, until: Some(120) },
+            // Firing now: to the right edge.
+            AlertSpan { rule: "floor".into(), from: 300, until: None },
+        ];
+        // A threshold far under the scores widens the scale to show it.
+        let thresholds = [("floor".to_owned(), 20.0)];
+        let svg = chart_svg("s", "BLEU", &pts, &Marks { spans: &spans, thresholds: &thresholds }, &frame);
+        let xs: Vec<f64> = attr_of(&svg, "alert-span", "x").iter().map(|v| v.parse().unwrap()).collect();
+        let ws: Vec<f64> = attr_of(&svg, "alert-span", "width").iter().map(|v| v.parse().unwrap()).collect();
+        assert_eq!(attr_of(&svg, "alert-span", "data-state"), ["resolved", "firing"], "{svg}");
+        let plot_w = CHART_W - PAD_L - 8.0;
+        assert!((xs[0] - PAD_L).abs() < 0.1 && (ws[0] - plot_w * 120.0 / 600.0).abs() < 0.2, "{xs:?} {ws:?}");
+        assert!((xs[1] - (PAD_L + plot_w / 2.0)).abs() < 0.1 && (xs[1] + ws[1] - (PAD_L + plot_w)).abs() < 0.2, "{xs:?} {ws:?}");
+        let ys: Vec<f64> = attr_of(&svg, "threshold", "y1").iter().map(|v| v.parse().unwrap()).collect();
+        assert_eq!(ys.len(), 1, "{svg}");
+        // Inside the plot, below every point (larger y).
+        let point_ys: Vec<f64> = attr_of(&svg, "pt", "cy").iter().map(|v| v.parse().unwrap()).collect();
+        assert!(ys[0] <= CHART_H - PAD_B && point_ys.iter().all(|p| *p < ys[0]), "{ys:?} {point_ys:?}");
+    }
+
+    #[test]
+    fn query_values_are_decoded() {
+        assert_eq!(percent_decode("ferry-v8%2Bcanary+x"), "ferry-v8+canary x");
+        assert_eq!(percent_decode("%e2%88%92"), "\u{2212}");
+        // A bad or cut escape stays as it is.
+        assert_eq!(percent_decode("a%zz%4"), "a%zz%4");
     }
 }
