@@ -176,6 +176,30 @@ async fn tokens_scopes_and_secrecy() {
     // Health stays open for probes.
     assert!(health_status(ch.clone()).await.is_ok());
 
+    // The status page and its JSON need the read scope too; the scrape stays open.
+    let get = |path: &str, tok: Option<&str>| {
+        use std::io::{Read, Write};
+        let mut s = std::net::TcpStream::connect(&server.metrics).unwrap();
+        let auth = tok.map_or(String::new(), |t| format!("Authorization: Bearer {t}\r\n"));
+        write!(s, "GET {path} HTTP/1.1\r\nHost: x\r\n{auth}Connection: close\r\n\r\n").unwrap();
+        let mut out = String::new();
+        s.read_to_string(&mut out).unwrap();
+        out
+    };
+    for path in ["/", "/api/v1/overview", "/api/v1/compare?a=s&b=s"] {
+        for tok in [None, Some("mtg_wrong"), Some(submit)] {
+            let r = get(path, tok);
+            assert!(r.starts_with("HTTP/1.1 401"), "{path} with {tok:?}: {}", r.lines().next().unwrap_or(""));
+            assert!(!r.contains("data-session") && !r.contains("\"sessions\""), "{path}: nothing of the sessions without the read scope");
+        }
+        for tok in [read, admin] {
+            let r = get(path, Some(tok));
+            assert!(r.starts_with("HTTP/1.1 200"), "{path} with a read-scoped token: {}", r.lines().next().unwrap_or(""));
+        }
+    }
+    assert!(get("/", Some(read)).contains("data-session=\"s\""), "the page lists the session");
+    assert!(get("/metrics", None).starts_with("HTTP/1.1 200"), "the scrape needs no token");
+
     // The CLI takes the token from the environment.
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["status", "--server", &server.grpc, "--session", "s"]).env("MTGAUGE_TOKEN", read).output().unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
