@@ -145,6 +145,17 @@ async fn status_page_in_headless_chromium() {
     let v: serde_json::Value = serde_json::from_str(body.split("\r\n\r\n").nth(1).unwrap()).unwrap();
     let names: Vec<&str> = v["sessions"].as_array().unwrap().iter().map(|s| s["name"].as_str().unwrap()).collect();
     assert_eq!(names, ["ferry-v8", "ferry-v8-canary"]);
+    // Longer ranges: a day by 20-minute steps, one point per step the seeded minutes fall in.
+    let start = (now / 60) * 60 - 40 * 60;
+    let mut steps: Vec<i64> = (0..40i64).filter(|m| m % 7 != 3).map(|m| (start + m * 60 + 5) / 1200).collect();
+    steps.dedup();
+    let body = reqwest_free_get(&server.metrics, "/api/v1/overview?range=24h");
+    let v: serde_json::Value = serde_json::from_str(body.split("\r\n\r\n").nth(1).unwrap()).unwrap();
+    assert_eq!(v["range"], "24h");
+    let with: Vec<i64> = v["sessions"][1]["points"].as_array().unwrap().iter().filter(|p| p["segments"].as_u64() > Some(0)).map(|p| p["start"].as_i64().unwrap() / 1200).collect();
+    assert_eq!(with, steps, "one point per 20-minute step with segments");
+    assert_eq!(v["sessions"][1]["html"].as_str().unwrap().matches("class=\"pt\"").count(), steps.len());
+    assert!(v["sessions"][1]["html"].as_str().unwrap().contains("per 20 minutes, last 24 hours"), "the chart says its range");
     // The comparison the view refreshes from, the other way round: negative, with an interval
     // below 0.
     let body = reqwest_free_get(&server.metrics, "/api/v1/compare?a=ferry-v8-canary&b=ferry-v8");

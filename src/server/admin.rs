@@ -79,8 +79,8 @@ async fn answer_scrape<S: AsyncRead + AsyncWrite + Unpin>(sock: &mut S, handle: 
                 let state = page.state.clone();
                 let query = path.split_once('?').map_or(String::new(), |(_, q)| q.to_owned());
                 let body = tokio::task::spawn_blocking(move || match which {
-                    PagePath::Page => super::page::page_html(&state),
-                    PagePath::Overview => super::page::overview_json(&state),
+                    PagePath::Page => super::page::page_html(&state, &query),
+                    PagePath::Overview => super::page::overview_json(&state, &query),
                     PagePath::Compare => super::page::comparison_json(&state, &query),
                 })
                 .await

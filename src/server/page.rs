@@ -19,10 +19,42 @@ use super::history::{points, HistoryQuery, Point};
 use super::state::{unix_now, State};
 use crate::session::Session;
 
-/// Steps of a session's chart.
-pub const CHART_STEPS: i64 = 60;
-/// Seconds per chart step.
-pub const CHART_STEP_SECS: i64 = 60;
+/// A time range the page can chart: its span and step.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ChartRange {
+    /// How it is asked for (`?range=`) and shown.
+    pub key: &'static str,
+    /// Seconds it spans.
+    pub seconds: i64,
+    /// Seconds per step (whole minutes; whole hours read the hourly buckets).
+    pub step: i64,
+}
+
+/// The ranges the page offers, the first the default: an hour by minute, 6 hours by 5 minutes,
+/// a day by 20 minutes, a week by 2 hours (60 to 84 points each).
+pub const CHART_RANGES: [ChartRange; 4] = [
+    ChartRange { key: "1h", seconds: 3_600, step: 60 },
+    ChartRange { key: "6h", seconds: 6 * 3_600, step: 300 },
+    ChartRange { key: "24h", seconds: 86_400, step: 1_200 },
+    ChartRange { key: "7d", seconds: 7 * 86_400, step: 7_200 },
+];
+
+impl ChartRange {
+    /// The range named in a query string (`range=24h`), else the default.
+    pub fn from_query(query: &str) -> ChartRange {
+        let asked = query.split('&').filter_map(|kv| kv.split_once('=')).find(|(k, _)| *k == "range").map(|(_, v)| v);
+        CHART_RANGES.into_iter().find(|r| Some(r.key) == asked).unwrap_or(CHART_RANGES[0])
+    }
+
+    /// "last hour", "last 6 hours", "last 7 days".
+    fn words(&self) -> String {
+        match self.seconds {
+            3_600 => "last hour".into(),
+            s if s % 86_400 == 0 && s > 86_400 => format!("last {} days", s / 86_400),
+            s => format!("last {} hours", s / 3_600),
+        }
+    }
+}
 /// Seconds between refreshes of the page.
 pub const REFRESH_SECS: u32 = 5;
 /// Seconds over which a card's segments per second are measured (the last five minutes).
@@ -77,7 +109,7 @@ pub struct Card {
     html: String,
 }
 
-fn card(state: &State, s: &Session, now: i64) -> Card {
+fn card(state: &State, s: &Session, now: i64, range: ChartRange) -> Card {
     let spec = s.spec();
     let metric = Metric::ALL.into_iter().find(|m| spec.config.has(*m)).unwrap_or(Metric::Bleu);
     let (cum, recent, counts) = {
@@ -87,12 +119,14 @@ fn card(state: &State, s: &Session, now: i64) -> Card {
     let (cum_reps, recent_reps) = s.replicates();
     let iv = |r: Option<crate::metric::resample::Replicates>| r.and_then(|r| r.interval(metric, DEFAULT_LEVEL)).map(|i| (i.low, i.high));
     let all = (counts.scored + counts.unknown + counts.rejected).max(1) as f64;
-    let until = (now / CHART_STEP_SECS + 1) * CHART_STEP_SECS;
-    let q = HistoryQuery { metric, from: until - CHART_STEPS * CHART_STEP_SECS, until, step: CHART_STEP_SECS, level: DEFAULT_LEVEL };
+    let until = (now / range.step + 1) * range.step;
+    let q = HistoryQuery { metric, from: until - range.seconds, until, step: range.step, level: DEFAULT_LEVEL };
     let pts = points(s, &q).map(|(_, p)| p).unwrap_or_default();
+    let minute_end = (now / 60 + 1) * 60;
+    let last_minutes = HistoryQuery { metric, from: minute_end - RATE_SECS, until: minute_end, step: 60, level: DEFAULT_LEVEL };
     let alerts: Vec<(String, String, i64)> = state.alerts().of(&spec.name).into_iter().map(|a| (a.rule, a.state, a.since_unix)).collect();
     let thresholds = state.alerts().thresholds_of(&spec.name).into_iter().filter(|t| t.metric == metric).map(|t| (t.rule, t.value)).collect();
-    let recent_segments: u64 = pts.iter().filter(|p| p.start + CHART_STEP_SECS > now - RATE_SECS).map(|p| p.segments).sum();
+    let recent_segments: u64 = points(s, &last_minutes).map(|(_, p)| p.iter().map(|p| p.segments).sum()).unwrap_or(0);
     let guards = counts.guards;
     let guard_rates = if guards.checked == 0 { Vec::new() } else { crate::guard::Guard::ALL.into_iter().filter_map(|g| Some((g.name(), 100.0 * guards.rate(g)?))).collect() };
     let mut c = Card {
@@ -115,11 +149,11 @@ fn card(state: &State, s: &Session, now: i64) -> Card {
         points: pts,
         html: String::new(),
     };
-    c.html = card_html(&c, q.from, q.until);
+    c.html = card_html(&c, &q, range);
     c
 }
 
-fn card_html(c: &Card, from: i64, until: i64) -> String {
+fn card_html(c: &Card, q: &HistoryQuery, range: ChartRange) -> String {
     let mut h = String::new();
     let labels: String = c.labels.iter().map(|(k, v)| format!("<span class=\"tag\">{}={}</span>", esc(k), esc(v))).collect();
     let alerts: String = if c.alerts.is_empty() {
@@ -148,7 +182,15 @@ fn card_html(c: &Card, from: i64, until: i64) -> String {
         rate = c.segments_per_second,
         unk = 100.0 * c.unknown_share,
         rej = 100.0 * c.rejected_share,
-        chart = chart_svg(&c.name, c.metric, &c.points, &marks, &Frame { from, until, step: CHART_STEP_SECS, left: "\u{2212}60 min".into(), right: "now (UTC minute steps)".into(), what: "per minute, last hour".into(), placement: "" }),
+        chart = chart_svg(&c.name, c.metric, &c.points, &marks, &Frame {
+            from: q.from,
+            until: q.until,
+            step: q.step,
+            left: format!("\u{2212}{}", range.key),
+            right: format!("now (UTC, {} steps)", step_words(q.step)),
+            what: format!("per {}, {}", step_words(q.step), range.words()),
+            placement: "",
+        }),
     );
     h
 }
@@ -320,15 +362,16 @@ fn clock(unix: i64) -> String {
     format!("{:02}:{:02} UTC", d / 3600, d % 3600 / 60)
 }
 
-/// Every session's card, at `now`.
-pub fn overview(state: &State, now: i64) -> Vec<Card> {
-    state.sessions().iter().map(|s| card(state, s, now)).collect()
+/// Every session's card, at `now`, charting `range`.
+pub fn overview(state: &State, now: i64, range: ChartRange) -> Vec<Card> {
+    state.sessions().iter().map(|s| card(state, s, now, range)).collect()
 }
 
-/// The JSON of `GET /api/v1/overview`.
-pub fn overview_json(state: &State) -> String {
+/// The JSON of `GET /api/v1/overview[?range=R]`.
+pub fn overview_json(state: &State, query: &str) -> String {
     let now = unix_now();
-    serde_json::json!({ "unix_time": now, "refresh_seconds": REFRESH_SECS, "sessions": overview(state, now) }).to_string()
+    let range = ChartRange::from_query(query);
+    serde_json::json!({ "unix_time": now, "refresh_seconds": REFRESH_SECS, "range": range.key, "sessions": overview(state, now, range) }).to_string()
 }
 
 /// The first two sessions (in name order) that can be compared: the same reference-set
@@ -440,15 +483,18 @@ fn compare_section(state: &State) -> String {
     )
 }
 
-/// The page of `GET /`.
-pub fn page_html(state: &State) -> String {
-    let cards: String = overview(state, unix_now()).iter().map(|c| c.html.as_str()).collect();
+/// The page of `GET /[?range=R]`.
+pub fn page_html(state: &State, query: &str) -> String {
+    let range = ChartRange::from_query(query);
+    let cards: String = overview(state, unix_now(), range).iter().map(|c| c.html.as_str()).collect();
+    let ranges: String = CHART_RANGES.iter().map(|r| format!("<a href=\"?range={k}\"{}>{k}</a>", if *r == range { " class=\"on\"" } else { "" }, k = r.key)).collect();
     format!(
         "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>mtgauge</title><style>{CSS}{CHART_CSS}</style></head>\
-<body><div class=\"top\"><h1>mtgauge</h1><span id=\"stamp\">sessions as served</span></div>\
+<body><div class=\"top\"><h1>mtgauge</h1><nav class=\"ranges\">charts over {ranges}</nav><span id=\"stamp\">sessions as served</span></div>\
 <main id=\"cards\">{cards}</main><div class=\"below\">{compare}</div>\
 <p class=\"note\">Scores are an automatic proxy for translation quality, comparable only between sessions with the same tokenizer, references and configuration.</p>\
-<script>const EVERY={every};{SCRIPT}</script></body></html>",
+<script>const EVERY={every},RANGE='{range}';{SCRIPT}</script></body></html>",
+        range = range.key,
         compare = compare_section(state),
         every = REFRESH_SECS * 1000
     )
@@ -456,7 +502,7 @@ pub fn page_html(state: &State) -> String {
 
 const CSS: &str = "body{margin:0;font:14px/1.4 system-ui,sans-serif;background:#f4f1ea;color:#23201c}\
 .top{display:flex;align-items:baseline;gap:1em;padding:.6em 1.2em;background:#2e4a3f;color:#f4f1ea}\
-.top h1{font-size:18px;margin:0;letter-spacing:.08em}#cards{display:grid;grid-template-columns:repeat(auto-fill,minmax(660px,1fr));gap:1em;padding:1em}\
+.top h1{font-size:18px;margin:0;letter-spacing:.08em}.ranges{font-size:13px}.ranges a{color:#cfe0d6;margin:0 .25em}.ranges a.on{color:#fff;font-weight:700;text-decoration:none}#cards{display:grid;grid-template-columns:repeat(auto-fill,minmax(660px,1fr));gap:1em;padding:1em}\
 .card{background:#fffdf8;border:1px solid #d9d2c3;border-radius:6px;padding:.6em .9em}.card header{display:flex;gap:.5em;align-items:baseline;flex-wrap:wrap}\
 .card h2{font-size:16px;margin:0 .4em 0 0}.tag{font-size:12px;background:#e8e1d0;border-radius:3px;padding:0 .4em}\
 dl{display:grid;grid-template-columns:repeat(6,auto);gap:0 1em;margin:.5em 0}dt{font-size:11px;color:#6b6457;grid-row:1}dd{margin:0;font-weight:600;grid-row:2}\
@@ -470,7 +516,7 @@ pub const CHART_CSS: &str = ".plot{fill:#fbf8f1;stroke:#d9d2c3}.band{fill:#7fa39
 .pt{fill:#2e4a3f}.alert-span{fill:#b8412c;fill-opacity:.15}.alert-span[data-state=resolved]{fill-opacity:.08}\
 .threshold{stroke:#b8412c;stroke-width:1;stroke-dasharray:4 3}.threshold-label{fill:#b8412c}.tick,.axis{font-size:10px;fill:#6b6457;font-family:sans-serif}.tick{text-anchor:end}.axis.end{text-anchor:end}";
 
-const SCRIPT: &str = "async function refresh(){try{const r=await fetch('api/v1/overview',{cache:'no-store'});if(!r.ok)return;const d=await r.json();\
+const SCRIPT: &str = "async function refresh(){try{const r=await fetch('api/v1/overview?range='+RANGE,{cache:'no-store'});if(!r.ok)return;const d=await r.json();\
 document.getElementById('cards').innerHTML=d.sessions.map(s=>s.html).join('');\
 document.getElementById('stamp').textContent='updated '+new Date(d.unix_time*1000).toISOString().slice(11,19)+' UTC';await compare();}catch(e){}}\
 async function compare(){const a=document.getElementById('cmp-a'),b=document.getElementById('cmp-b');if(!a||!b||!a.value||!b.value)return;\
