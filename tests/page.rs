@@ -177,7 +177,7 @@ fn reqwest_free_get(addr: &str, path: &str) -> String {
     out
 }
 
-/// `mtgauge report`: the same chart as a standalone SVG file, read back with a real XML parser
+/// `mtgauge report`: the same chart as a standalone SVG file (and as a PNG image), read back with a real XML parser
 /// (xml.etree.ElementTree of Python's standard library, on expat; Python 3.11.7 here): well-formed, titled, with axis captions, the
 /// footer's proxy note and configuration, and one point per minute with segments.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -210,10 +210,36 @@ print(json.dumps({'root': root.tag, 'title': root.find(ns + 'title').text, 'text
     }
     assert_eq!(v["points"].as_u64(), Some(seeded[1].1 as u64), "one point per minute with segments");
     assert!(v["bands"].as_u64().unwrap() >= 1, "a confidence band");
+    // The same chart as a PNG: the signature, the size (twice the SVG's), and at each point of
+    // the SVG a pixel of the line's colour (#2e4a3f) in the image.
+    let png_out = dir.join("canary.png");
+    let r = run(&["--session", "ferry-v8-canary", "--since", "1h", "--step", "1m", "--until", &now.to_string(), "--out", png_out.to_str().unwrap()]);
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    let svg_again = dir.join("canary-again.svg");
+    let r = run(&["--session", "ferry-v8-canary", "--since", "1h", "--step", "1m", "--until", &now.to_string(), "--out", svg_again.to_str().unwrap()]);
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    let bytes = std::fs::read(&png_out).unwrap();
+    assert_eq!(&bytes[..8], b"\x89PNG\r\n\x1a\n", "PNG signature (PNG specification, ISO/IEC 15948)");
+    let img = resvg::tiny_skia::Pixmap::decode_png(&bytes).expect("a PNG that decodes");
+    let svg = std::fs::read_to_string(&svg_again).unwrap();
+    let dim = |attr: &str| -> f64 { svg.split(&format!(" {attr}=\"")).nth(1).unwrap().split('"').next().unwrap().parse().unwrap() };
+    assert_eq!((img.width(), img.height()), ((2.0 * dim("width")) as u32, (2.0 * dim("height")) as u32));
+    let pts: Vec<(f64, f64)> = svg.split("class=\"pt\"").skip(1).map(|p| {
+        let a = |k: &str| -> f64 { p.split(&format!("{k}=\"")).nth(1).unwrap().split('"').next().unwrap().parse().unwrap() };
+        (a("cx"), a("cy"))
+    }).collect();
+    assert_eq!(pts.len(), seeded[1].1);
+    for (cx, cy) in &pts {
+        // The chart sits at (20, 50) in the report, one unit per unit; two pixels per unit.
+        let (x, y) = ((2.0 * (20.0 + cx)) as u32, (2.0 * (50.0 + cy)) as u32);
+        let c = img.pixel(x, y).unwrap().demultiply();
+        let near = |v: u8, want: u8| (i16::from(v) - i16::from(want)).abs() <= 24;
+        assert!(near(c.red(), 0x2e) && near(c.green(), 0x4a) && near(c.blue(), 0x3f), "point at ({cx}, {cy}): pixel {:?}", (c.red(), c.green(), c.blue()));
+    }
     // Errors: one line on stderr, exit 2, and no file written.
-    let png = dir.join("x.png");
+    let png = dir.join("x.gif");
     for (args, want) in [
-        (vec!["--session", "ferry-v8-canary", "--out", png.to_str().unwrap()], "only .svg files are written"),
+        (vec!["--session", "ferry-v8-canary", "--out", png.to_str().unwrap()], "must end in .svg or .png"),
         (vec!["--session", "no-such", "--out", png.with_extension("svg").to_str().unwrap()], "NotFound"),
         (vec!["--session", "ferry-v8-canary", "--metric", "meteor", "--out", png.with_extension("svg").to_str().unwrap()], "meteor"),
     ] {

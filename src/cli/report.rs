@@ -19,7 +19,7 @@ use crate::server::history::Point;
 use crate::server::page::{report_svg, step_words, Frame};
 
 pub(super) const LONG_ABOUT: &str = "\
-Write a session's score over time as an SVG file: the score of each step (computed from the \
+Write a session's score over time as an SVG or PNG file (by the --out file's extension): the score of each step (computed from the \
 summed statistics of the daemon's history buckets, never an average of scores), its 95% bootstrap \
 interval as a band where the buckets still keep replicate sums (minute buckets for their first \
 hour, hourly ones for their first day, at the daemon's defaults), a title, axis captions with \
@@ -33,12 +33,35 @@ score and band from the sums. When a replica does not answer, it refuses (the ch
 out what that replica counted) unless --partial is given; the footer names the replicas summed.
 
 --since is how far back (an integer and m, h or d; default 24h); --step the width of one point \
-(default: the whole minutes or hours that give at most 120 points). Only .svg is written: \
-this build carries no rasterizer for PNG.
+(default: the whole minutes or hours that give at most 120 points). A .png is the same drawing \
+rendered at twice its size (1360 pixels wide) with the system's fonts (DejaVu Sans where \
+installed), for tickets that show no SVG.
 
 Example, the last six hours of a canary session, one point per 5 minutes:
   mtgauge report --server http://127.0.0.1:7410 --session ferry-v8-canary --since 6h --step 5m \\
       --out canary.svg";
+
+/// Pixels per SVG unit of a PNG report (sharp on high-density screens).
+pub const PNG_SCALE: f32 = 2.0;
+/// The font family drawn for `sans-serif` in a PNG report when the system has it.
+pub const PNG_SANS_SERIF: &str = "DejaVu Sans";
+
+/// `svg` (a report drawn by [`report_svg`]) rendered as a PNG image, [`PNG_SCALE`] pixels per
+/// unit, with the system's fonts.
+pub fn svg_to_png(svg: &str) -> Result<Vec<u8>, String> {
+    use resvg::{tiny_skia, usvg};
+    let mut opt = usvg::Options::default();
+    let db = opt.fontdb_mut();
+    db.load_system_fonts();
+    if db.faces().any(|f| f.families.iter().any(|(name, _)| name == PNG_SANS_SERIF)) {
+        db.set_sans_serif_family(PNG_SANS_SERIF);
+    }
+    let tree = usvg::Tree::from_str(svg, &opt).map_err(|e| e.to_string())?;
+    let size = tree.size().to_int_size().scale_by(PNG_SCALE).ok_or("the chart has no size")?;
+    let mut pixmap = tiny_skia::Pixmap::new(size.width(), size.height()).ok_or("the chart has no size")?;
+    resvg::render(&tree, tiny_skia::Transform::from_scale(PNG_SCALE, PNG_SCALE), &mut pixmap.as_mut());
+    pixmap.encode_png().map_err(|e| e.to_string())
+}
 
 /// Most points a default step gives.
 pub const DEFAULT_POINTS: i64 = 120;
@@ -58,7 +81,7 @@ pub struct ReportArgs {
     /// The session.
     #[arg(long, value_name = "NAME")]
     pub session: String,
-    /// The file to write (.svg).
+    /// The file to write: .svg, or .png for the same chart as an image.
     #[arg(long, value_name = "FILE")]
     pub out: PathBuf,
     /// bleu, chrf or chrf++ (default: the session's first metric).
@@ -105,9 +128,11 @@ fn utc(t: i64) -> String {
 }
 
 pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
-    if a.out.extension().and_then(|e| e.to_str()) != Some("svg") {
-        return Err(CliError::Usage(format!("--out {}: only .svg files are written (SVG is the one supported format)", a.out.display())));
-    }
+    let png = match a.out.extension().and_then(|e| e.to_str()).map(str::to_ascii_lowercase).as_deref() {
+        Some("svg") => false,
+        Some("png") => true,
+        _ => return Err(CliError::Usage(format!("--out {}: the file must end in .svg or .png (the format is taken from it)", a.out.display()))),
+    };
     let span = seconds("--since", &a.since)?;
     let step = match &a.step {
         Some(s) => seconds("--step", s)?,
@@ -154,7 +179,8 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
         footer.insert(1, h.clone());
     }
     let svg = report_svg(&a.session, &metric, &points, &frame, &footer);
-    std::fs::write(&a.out, svg).map_err(|e| CliError::Usage(format!("{}: {e}", a.out.display())))?;
+    let bytes = if png { svg_to_png(&svg).map_err(|e| CliError::Usage(format!("{}: cannot render the chart as PNG: {e}", a.out.display())))? } else { svg.into_bytes() };
+    std::fs::write(&a.out, bytes).map_err(|e| CliError::Usage(format!("{}: {e}", a.out.display())))?;
     eprintln!("mtgauge report: {} points ({} with segments) written to {}", points.len(), points.iter().filter(|p| p.segments > 0).count(), a.out.display());
     Ok(())
 }
