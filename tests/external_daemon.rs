@@ -30,6 +30,12 @@ async fn external(ch: &tonic::transport::Channel, session: &str) -> Vec<pb::Exte
     r.cumulative.expect("cumulative").external
 }
 
+/// The external results over a session's `recent` window.
+async fn recent_external(ch: &tonic::transport::Channel, session: &str) -> Vec<pb::ExternalResult> {
+    let r = ScoringClient::new(ch.clone()).get_scores(pb::GetScoresRequest { session: session.into(), ..Default::default() }).await.expect("scores").into_inner();
+    r.recent.expect("recent").external
+}
+
 /// Round `num / den` half to even, integers only.
 fn round_half_even(num: i128, den: i128) -> i128 {
     let (q, r) = (num.div_euclid(den), num.rem_euclid(den));
@@ -301,4 +307,73 @@ async fn an_empty_translation_with_a_value_is_scored_and_values_only_is_explicit
     assert_eq!((ack.scored, ack.external, ack.rejected), (1, 2, 2), "{reasons:?}");
     assert!(reasons.iter().any(|(i, r)| *i == 2 && r.contains("carries a hypothesis")), "{reasons:?}");
     assert!(reasons.iter().any(|(i, r)| *i == 3 && r.contains("no external values")), "{reasons:?}");
+}
+
+/// The `recent` window of a session keeps the external values of its last `window` items (of
+/// all three kinds: scored, unmatched, values-only): its count, exact sums and mean are those of
+/// the last 90 items' rounded values, computed here from the inputs; it has its own interval;
+/// and it comes back after a restart.
+#[tokio::test]
+async fn the_recent_window_holds_the_last_items_values() {
+    const WINDOW: usize = 90;
+    let dir = temp_dir("external-recent");
+    demo_files(&dir);
+    let (mut server, ch, data) = durable_with_ferry(&dir).await;
+    let req = pb::CreateSessionRequest { name: "ferry-v8".into(), refset: "ferry".into(), external: declaration(), window: WINDOW as u32, ..Default::default() };
+    SessionsClient::new(ch.clone()).create(req).await.expect("create");
+    let (items, want) = items();
+    let mut scoring = ScoringClient::new(ch.clone());
+    // Uneven batches (7 to 60 items): the window turns over inside batches and between them.
+    let (mut done, mut rng, mut seq) = (0, SplitMix64::new(3), 0);
+    while done < 500 {
+        let n = (7 + rng.below(54) as usize).min(500 - done);
+        seq += 1;
+        let ack = scoring.submit(batch("ferry-v8", "one", seq, items[done..done + n].to_vec())).await.unwrap().into_inner();
+        assert_eq!((ack.rejected, ack.external as usize), (0, n), "{ack:?}");
+        done += n;
+    }
+    let check = |recent: &[pb::ExternalResult], upto: usize| {
+        let last = &want[upto - WINDOW..upto];
+        let (qe, rate) = (&recent[0], &recent[1]);
+        assert_eq!((qe.metric.as_str(), qe.count, rate.count), ("qe", WINDOW as u64, WINDOW as u64));
+        let qe_sum: i128 = last.iter().map(|w| w.0).sum();
+        assert_eq!(qe.sum, qe_sum.to_string());
+        assert_eq!(qe.squares, last.iter().map(|w| w.0 * w.0).sum::<i128>().to_string());
+        assert_eq!(rate.sum, last.iter().map(|w| w.1).sum::<i128>().to_string());
+        // The mean of the last 90 rounded values: sum / (90 x 10^6), as one division of the
+        // exact integer sum.
+        assert_eq!(qe.mean, Some(qe_sum as f64 / (WINDOW as f64 * 1e6)));
+        let iv = qe.interval.as_ref().expect("an interval of the window's mean");
+        assert!(iv.low < qe.mean.unwrap() && qe.mean.unwrap() < iv.high, "{iv:?}");
+    };
+    let recent = recent_external(&ch, "ferry-v8").await;
+    check(&recent, 500);
+    let cumulative = external(&ch, "ferry-v8").await;
+    assert_eq!(cumulative[0].count, 500);
+    assert_ne!(recent[0].interval, cumulative[0].interval, "the window has its own replicates");
+
+    // `status --json` and the human view show it.
+    const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
+    let status = |args: &[&str]| {
+        let out = std::process::Command::new(BIN).args(["status", "--server", &server.grpc, "--session", "ferry-v8"]).args(args).output().unwrap();
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let j: serde_json::Value = serde_json::from_str(&status(&["--json"])).unwrap();
+    assert_eq!((j["recent_external"][0]["values"].as_u64(), j["recent_external"][0]["fixed_point"]["sum"].as_str()), (Some(WINDOW as u64), Some(recent[0].sum.as_str())), "{j}");
+    assert_eq!(j["external"][0]["values"].as_u64(), Some(500));
+    let human = status(&[]);
+    assert!(human.contains(&format!("external metrics (recent: the last {WINDOW} items that carried values):")), "{human}");
+
+    // Restart: the window comes back, then goes on turning over.
+    server.kill();
+    let server = Server::start(&["--data-dir", &data, "--refset-dir", dir.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    assert_eq!(recent_external(&ch, "ferry-v8").await, recent, "items, sums and replicates come back");
+    let ack = ScoringClient::new(ch.clone()).submit(batch("ferry-v8", "one", seq + 1, items[500..].to_vec())).await.unwrap().into_inner();
+    assert_eq!(ack.external, 100);
+    check(&recent_external(&ch, "ferry-v8").await, 600);
+    // A reset empties it.
+    SessionsClient::new(ch.clone()).reset(pb::ResetSessionRequest { name: "ferry-v8".into() }).await.unwrap();
+    assert_eq!(recent_external(&ch, "ferry-v8").await[0].count, 0);
 }

@@ -18,7 +18,10 @@ use crate::metric::{CorpusStats, ScoreConfig};
 
 pub(super) const LONG_ABOUT: &str = "\
 The scores of a running server's sessions: cumulative and recent statistics, scores with their \
-bootstrap intervals, alert states.
+bootstrap intervals, alert states. External metrics (values the producer sent with its items) \
+show their mean and interval since creation or reset (JSON `external`) and over the last \
+`window` items that carried values, scored or sent for their values alone (JSON \
+`recent_external`).
 
 A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
 replica, shows each session's fleet figures: the replicas' integer statistics and bootstrap \
@@ -101,6 +104,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     let (cum_json, cum_ranges) = window_view(r.cumulative.as_ref(), &config, "    ");
     let (recent_json, recent_ranges) = window_view(r.recent.as_ref(), &config, "    ");
     let (external_json, external_lines) = external_view(r.cumulative.as_ref(), "    ");
+    let (recent_external_json, recent_external_lines) = external_view(r.recent.as_ref(), "    ");
     let resampling = r.resampling.unwrap_or_default();
     let mut config_j = config_json(&config);
     // The settings behind the intervals, as `score --interval` records them.
@@ -119,6 +123,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
         "cumulative": cum_json,
         "recent": recent_json,
         "external": external_json,
+        "recent_external": recent_external_json,
         "interval_note": (!r.interval_note.is_empty()).then_some(&r.interval_note),
         "alerts": r.alerts.iter().map(|a| json!({
             "rule": a.rule, "state": a.state, "since_unix": a.since_unix, "condition": a.condition,
@@ -149,6 +154,13 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     for l in stats_lines(&recent, &config, "    ").into_iter().chain(recent_ranges) {
         text += &l;
         text.push('\n');
+    }
+    if !recent_external_lines.is_empty() {
+        text += &format!("  external metrics (recent: the last {} items that carried values):\n", r.window);
+        for l in recent_external_lines {
+            text += &l;
+            text.push('\n');
+        }
     }
     if guards.checked > 0 || target.is_some() {
         for l in guard_lines(&guards, target, "  ") {
@@ -338,7 +350,10 @@ fn merge(parts: &[(&str, &pb::SessionInfo, &pb::ScoresReport)], level: f64) -> R
         notes.push("external metrics: fleet sums, mean and standard deviation, no fleet interval yet".into());
     }
     merged.cumulative = Some(cumulative);
-    merged.recent = Some(totals_with_intervals(&recent, &config, recent_reps.as_ref().filter(|_| complete[1]), level));
+    let mut recent = totals_with_intervals(&recent, &config, recent_reps.as_ref().filter(|_| complete[1]), level);
+    let external: Vec<&[pb::ExternalResult]> = parts.iter().map(|(_, _, r)| r.recent.as_ref().map_or(&[][..], |t| &t.external[..])).collect();
+    recent.external = crate::pb::external::merge_results(&external).map_err(|e| CliError::Usage(format!("session '{}': {}", first.session, e.0)))?;
+    merged.recent = Some(recent);
     if first.resampling.and_then(|r| r.resamples).unwrap_or(0) > 0 && !(complete[0] && complete[1]) {
         notes.push("some replica sent no replicate sums for a window: no fleet interval for it".into());
     }

@@ -30,6 +30,7 @@
 //! reason naming the metric ([`ValueError`]); nothing is counted from it.
 
 pub mod replicates;
+pub mod window;
 
 use std::fmt;
 use std::str::FromStr;
@@ -542,6 +543,8 @@ pub struct ExternalDelta {
     pub totals: ExternalTotals,
     /// Replicate sums (None: the session keeps none).
     pub replicates: Option<replicates::ExternalReplicates>,
+    /// The items (weight key, values), in order: what enters the `recent` window.
+    pub items: Vec<(u64, ItemValues)>,
 }
 
 impl ExternalDelta {
@@ -557,7 +560,7 @@ impl ExternalDelta {
                 r.add(*key, item, &mut weights)?;
             }
         }
-        Ok(ExternalDelta { totals, replicates: reps })
+        Ok(ExternalDelta { totals, replicates: reps, items: items.to_vec() })
     }
 }
 

@@ -57,6 +57,16 @@ impl ExternalReplicates {
     /// Add one item's values with the weights of `key`; `weights` is scratch space (resized).
     /// Nothing changes on overflow.
     pub fn add(&mut self, key: u64, item: &ItemValues, weights: &mut Vec<u8>) -> Result<(), SumError> {
+        self.apply::<true>(key, item, weights)
+    }
+
+    /// Take out one item's values added before with the same key (an item leaving a window);
+    /// nothing changes on error.
+    pub fn subtract_item(&mut self, key: u64, item: &ItemValues, weights: &mut Vec<u8>) -> Result<(), SumError> {
+        self.apply::<false>(key, item, weights)
+    }
+
+    fn apply<const ADD: bool>(&mut self, key: u64, item: &ItemValues, weights: &mut Vec<u8>) -> Result<(), SumError> {
         if item.0.iter().any(|&(m, _)| m >= self.metrics) {
             return Err(SumError::Mismatch);
         }
@@ -68,8 +78,9 @@ impl ExternalReplicates {
             let f = i128::from(f);
             for (r, &w) in weights.iter().enumerate() {
                 let (c, s) = (&mut next.counts[base + r], &mut next.sums[base + r]);
-                *c = c.checked_add(u64::from(w)).ok_or(SumError::Overflow { count: *c })?;
-                *s = s.checked_add(i128::from(w) * f).ok_or(SumError::Overflow { count: *c })?;
+                let (nc, ns) = if ADD { (c.checked_add(u64::from(w)), s.checked_add(i128::from(w) * f)) } else { (c.checked_sub(u64::from(w)), s.checked_sub(i128::from(w) * f)) };
+                *c = nc.ok_or(SumError::Overflow { count: *c })?;
+                *s = ns.ok_or(SumError::Overflow { count: *c })?;
             }
         }
         *self = next;

@@ -305,3 +305,94 @@ fn exported_counters_offset_by_low_and_rescale_the_squares() {
     assert_eq!(exported_counters(&spec0, &ExternalSums { count: 2, sum: 10, squares: 150 }), (2, 10, 2));
     assert_eq!(exported_counters(&spec0, &ExternalSums::default()), (0, 0, 0));
 }
+
+/// Window sums recomputed the plain way: one pass over the last `n` items.
+fn last_n_sums(items: &[(u64, ItemValues)], n: usize, metrics: usize, resampling: (usize, u64)) -> (ExternalTotals, ExternalReplicates) {
+    let tail = &items[items.len().saturating_sub(n)..];
+    let mut t = ExternalTotals::new(metrics);
+    let mut r = ExternalReplicates::new(metrics, resampling.0, resampling.1);
+    let mut w = Vec::new();
+    for (k, it) in tail {
+        t.add_item(it).unwrap();
+        r.add(*k, it, &mut w).unwrap();
+    }
+    (t, r)
+}
+
+proptest! {
+    /// The window's sums (add on entry, subtract on eviction) equal the sums recomputed from its
+    /// last `capacity` items after every batch: batches smaller and larger than the window,
+    /// items carrying one metric or both, keys repeated, values of either sign.
+    #[test]
+    fn window_sums_equal_the_sums_of_the_last_n_items(
+        values in proptest::collection::vec((-1_000_000i64..=1_000_000, 0i64..=10_000, 0u8..3, 0u64..40), 1..120),
+        batches in proptest::collection::vec(1usize..25, 1..40),
+        capacity in 1usize..30,
+    ) {
+        let items: Vec<(u64, ItemValues)> = values
+            .iter()
+            .map(|&(a, b, which, key)| {
+                let v = match which { 0 => vec![(0, a)], 1 => vec![(1, b)], _ => vec![(0, a), (1, b)] };
+                (segment_key(format!("call-{key}").as_bytes()), ItemValues(v))
+            })
+            .collect();
+        let resampling = (30, 9);
+        let mut w = window::ExternalWindow::new(capacity, 2, Some(resampling), 5);
+        let (mut done, mut sizes) = (0, batches.iter().cycle());
+        while done < items.len() {
+            let n = (*sizes.next().unwrap()).min(items.len() - done);
+            let batch = &items[done..done + n];
+            let delta = ExternalDelta::of(2, Some(resampling), batch).unwrap();
+            w.add(&delta.items, delta.replicates.as_ref()).unwrap();
+            done += n;
+            let (t, r) = last_n_sums(&items[..done], capacity, 2, resampling);
+            prop_assert_eq!(w.totals(), &t, "after {} items", done);
+            prop_assert_eq!(w.replicates(), Some(&r), "after {} items", done);
+            prop_assert_eq!(w.len(), done.min(capacity));
+            prop_assert_eq!((w.first_id(), w.next_id()), (5 + (done - done.min(capacity)) as u64, 5 + done as u64));
+            let kept: Vec<&(u64, ItemValues)> = w.items().collect();
+            let want: Vec<&(u64, ItemValues)> = items[done - done.min(capacity)..done].iter().collect();
+            prop_assert_eq!(kept, want);
+        }
+        // Its durable rows read back to the same items, and a window rebuilt from them has the
+        // same sums.
+        let mut rows = Vec::new();
+        w.items().for_each(|(k, v)| window::encode_item(*k, v, &mut rows));
+        let back = window::decode_items(&rows, 2).unwrap();
+        prop_assert_eq!(&back, &w.items().cloned().collect::<Vec<_>>());
+        let rebuilt = window::ExternalWindow::restore(capacity, 2, Some(resampling), back, w.next_id()).unwrap();
+        prop_assert_eq!(&rebuilt, &w);
+    }
+}
+
+#[test]
+fn window_by_hand_evicts_the_oldest_and_keeps_the_latest_value_per_key() {
+    // Window of 3, no replicates: 0.1, 0.2, 0.3, then 0.4 pushes out 0.1.
+    let decl = qe();
+    let item = |v: f64| decl.check_item([("qe", v)]).unwrap();
+    let mut w = window::ExternalWindow::new(3, decl.len(), None, 0);
+    let batch = |ks: &[(&str, f64)]| ks.iter().map(|(k, v)| (segment_key(k.as_bytes()), item(*v))).collect::<Vec<_>>();
+    w.add(&batch(&[("a", 0.1), ("b", 0.2), ("a", 0.3)]), None).unwrap();
+    assert_eq!(w.totals().0[0], ExternalSums { count: 3, sum: 600_000, squares: 10_000_000_000 + 40_000_000_000 + 90_000_000_000 });
+    // Key a twice: its latest value, at the place it first appeared.
+    assert_eq!(w.latest_by_key(0), vec![(segment_key(b"a"), 300_000), (segment_key(b"b"), 200_000)]);
+    assert!(w.latest_by_key(1).is_empty(), "no item carries the second metric");
+    w.add(&batch(&[("c", 0.4)]), None).unwrap();
+    assert_eq!((w.totals().0[0].count, w.totals().0[0].sum), (3, 900_000));
+    assert_eq!(w.totals().0[0].mean(6), Some(0.3));
+    // A batch of five into a window of three keeps its last three.
+    w.add(&batch(&[("d", 0.5), ("e", 0.6), ("f", 0.7), ("g", 0.8), ("h", 0.9)]), None).unwrap();
+    assert_eq!((w.totals().0[0].count, w.totals().0[0].sum, w.first_id(), w.next_id()), (3, 2_400_000, 6, 9));
+    // A session that keeps replicates must pass the batch's replicate sums.
+    let mut with = window::ExternalWindow::new(3, decl.len(), Some((10, 1)), 0);
+    assert_eq!(with.add(&batch(&[("a", 0.1)]), None), Err(SumError::Mismatch));
+    assert!(with.is_empty());
+    w.clear();
+    assert_eq!((w.len(), w.next_id(), w.totals(), w.capacity()), (0, 9, &ExternalTotals::new(2), 3));
+    // Rows that do not parse or name an undeclared metric are refused.
+    assert_eq!(window::decode_items(&[1, 1, 5, 2], 2), None);
+    assert_eq!(window::decode_items(&[1, 3, 0, 2], 2), None);
+    assert_eq!(window::decode_items(&[1, 2, 1, 2, 0, 4], 2), None, "indices out of order");
+    assert_eq!(window::decode_items(&[7, 1, 1, 3], 2), Some(vec![(7, ItemValues(vec![(1, -2)]))]), "zigzag: 3 is -2");
+    assert!(window::ExternalWindow::restore(1, 2, None, vec![(1, ItemValues(vec![])), (2, ItemValues(vec![]))], 5).is_err(), "more items than the window holds");
+}

@@ -504,17 +504,21 @@ pub fn report(state: &State, session: &Session, level: f64, with_sums: bool) -> 
         }
     }
     let mut cumulative_totals = totals_with_intervals(&cumulative, c, cum_reps.as_ref(), level);
+    let mut recent_totals = totals_with_intervals(&recent, c, recent_reps.as_ref(), level);
     if !spec.external.is_empty() {
-        // External metrics: cumulative only so far (the recent window does not keep them yet).
+        // External metrics: since creation or reset, and over the window of the last items that
+        // carried values ([`crate::external::window`]).
         let ext = session.external();
         cumulative_totals.external = crate::pb::external::results_to_pb(&spec.external, &ext.totals, ext.replicates.as_ref(), level);
+        let (totals, reps) = session.external_recent();
+        recent_totals.external = crate::pb::external::results_to_pb(&spec.external, &totals, reps.as_ref(), level);
     }
     pb::ScoresReport {
         session: spec.name.clone(),
         refset_digest: session.refs().digest_hex(),
         config: Some(config_to_pb(c)),
         cumulative: Some(cumulative_totals),
-        recent: Some(totals_with_intervals(&recent, c, recent_reps.as_ref(), level)),
+        recent: Some(recent_totals),
         window: spec.window as u32,
         unknown: counts.unknown,
         rejected: counts.rejected,

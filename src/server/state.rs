@@ -249,7 +249,7 @@ impl State {
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });
             session.restore_history(self.history_config(), s.history).map_err(bad)?;
             if let Some(e) = s.external {
-                session.restore_external(e).map_err(bad)?;
+                session.restore_external(e, s.external_recent, s.external_next).map_err(bad)?;
             }
             crate::telemetry::record_external(&session.spec().name, &session.spec().external, &session.external().totals);
             self.inner.sessions.insert(session.spec().name.clone(), Arc::new(session));
@@ -518,12 +518,14 @@ fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std
             if let Some(d) = &p.external {
                 // Checked when scored; only sums near the i128 limit fail here, and then
                 // nothing is added (the batch's built-in statistics are applied already).
-                if let Err(e) = p.session.apply_external(d) {
-                    tracing::error!(session = %p.session.spec().name, error = %e, "external values not counted");
+                match p.session.apply_external(d) {
+                    Ok(rows) => a.external_rows = Some(rows),
+                    Err(e) => tracing::error!(session = %p.session.spec().name, error = %e, "external values not counted"),
                 }
             }
             // Every applied batch of such a session carries the copy: the store keeps the last.
-            a.external = Some(p.session.external());
+            let (copy, ids) = p.session.external_durable();
+            (a.external, a.external_window) = (Some(copy), Some(ids));
         }
         effects.push((applied, current));
     }

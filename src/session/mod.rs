@@ -282,7 +282,34 @@ pub struct Session {
     /// Time buckets of the statistics; its own short lock, taken after `state` is released.
     history: Mutex<history::History>,
     /// External metric statistics; its own short lock, taken after `state` is released.
-    external: Mutex<crate::external::ExternalState>,
+    external: Mutex<ExternalStats>,
+}
+
+/// A session's external metric statistics: since creation or reset, and over the `recent`
+/// window of items ([`crate::external::window`]).
+#[derive(Debug)]
+struct ExternalStats {
+    cumulative: crate::external::ExternalState,
+    recent: crate::external::window::ExternalWindow,
+}
+
+impl ExternalStats {
+    fn new(spec: &SessionSpec, next_id: u64) -> ExternalStats {
+        let (metrics, resampling) = (spec.external.len(), external_resampling(spec));
+        ExternalStats { cumulative: crate::external::ExternalState::new(metrics, resampling), recent: crate::external::window::ExternalWindow::new(spec.window, metrics, resampling, next_id) }
+    }
+}
+
+/// What one batch adds to the durable copy of the external `recent` window: its items as rows
+/// ([`crate::external::window::encode_item`]) with consecutive ids from `first_id`.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct ExternalRows {
+    /// Id of the first item.
+    pub first_id: u64,
+    /// Items.
+    pub items: u64,
+    /// Their rows, one after the other.
+    pub values: Vec<u64>,
 }
 
 impl Session {
@@ -297,7 +324,7 @@ impl Session {
         let replicates = (spec.resampling.resamples > 0).then(|| SessionReplicates::new(&spec.config, spec.resampling, spec.window, 0));
         let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new(), replicates };
         let history = history::History::new(history::HistoryConfig::default(), &spec.config, (spec.resampling.resamples > 0).then(|| Replicates::new(&spec.config, spec.resampling.resamples, spec.resampling.seed)));
-        let external = Mutex::new(crate::external::ExternalState::new(spec.external.len(), external_resampling(&spec)));
+        let external = Mutex::new(ExternalStats::new(&spec, 0));
         Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state), history: Mutex::new(history), external }
     }
 
@@ -307,23 +334,61 @@ impl Session {
         crate::external::ExternalDelta::of(self.spec.external.len(), external_resampling(&self.spec), items)
     }
 
-    /// Add a batch's external values (after the batch was applied, not a duplicate).
-    pub fn apply_external(&self, d: &crate::external::ExternalDelta) -> Result<(), crate::external::SumError> {
-        self.external.lock().unwrap_or_else(|e| e.into_inner()).add(d)
+    fn external_stats(&self) -> MutexGuard<'_, ExternalStats> {
+        // As for `state`: integers, whole after any panic that matters.
+        self.external.lock().unwrap_or_else(|e| e.into_inner())
     }
 
-    /// Replace the external statistics with a durable copy (at startup).
-    pub fn restore_external(&self, copy: crate::external::ExternalState) -> Result<(), String> {
-        if !copy.fits(self.spec.external.len(), external_resampling(&self.spec)) {
+    /// Add a batch's external values (after the batch was applied, not a duplicate) to the
+    /// cumulative sums and the `recent` window; the rows the window's durable copy gains.
+    /// Nothing changes when the cumulative sums would overflow. (The window's sums cannot
+    /// overflow when those do not: its items, the batch's included, are some of theirs.)
+    pub fn apply_external(&self, d: &crate::external::ExternalDelta) -> Result<ExternalRows, crate::external::SumError> {
+        let mut ext = self.external_stats();
+        ext.cumulative.add(d)?;
+        let first_id = ext.recent.next_id();
+        ext.recent.add(&d.items, d.replicates.as_ref())?;
+        drop(ext);
+        let mut values = Vec::with_capacity(d.items.len() * 4);
+        d.items.iter().for_each(|(k, v)| crate::external::window::encode_item(*k, v, &mut values));
+        Ok(ExternalRows { first_id, items: d.items.len() as u64, values })
+    }
+
+    /// Replace the external statistics with a durable copy (at startup): the cumulative sums,
+    /// and the `recent` window's items (oldest first) with the id the next item gets.
+    pub fn restore_external(&self, copy: crate::external::ExternalState, recent: Vec<(u64, crate::external::ItemValues)>, next_id: u64) -> Result<(), String> {
+        let (metrics, resampling) = (self.spec.external.len(), external_resampling(&self.spec));
+        if !copy.fits(metrics, resampling) {
             return Err("the stored external sums do not fit the session's external metrics or resampling".into());
         }
-        *self.external.lock().unwrap_or_else(|e| e.into_inner()) = copy;
+        let recent = crate::external::window::ExternalWindow::restore(self.spec.window, metrics, resampling, recent, next_id).map_err(|e| format!("external window: {e}"))?;
+        *self.external_stats() = ExternalStats { cumulative: copy, recent };
         Ok(())
     }
 
-    /// A copy of the external statistics.
+    /// A copy of the cumulative external statistics.
     pub fn external(&self) -> crate::external::ExternalState {
-        self.external.lock().unwrap_or_else(|e| e.into_inner()).clone()
+        self.external_stats().cumulative.clone()
+    }
+
+    /// The durable copy of the external statistics: the cumulative ones, and the ids of the
+    /// `recent` window's items (first, next).
+    pub fn external_durable(&self) -> (crate::external::ExternalState, (u64, u64)) {
+        let ext = self.external_stats();
+        (ext.cumulative.clone(), (ext.recent.first_id(), ext.recent.next_id()))
+    }
+
+    /// The external sums of the `recent` window, and its replicate sums (None: the session
+    /// keeps none).
+    pub fn external_recent(&self) -> (crate::external::ExternalTotals, Option<crate::external::replicates::ExternalReplicates>) {
+        let ext = self.external_stats();
+        (ext.recent.totals().clone(), ext.recent.replicates().cloned())
+    }
+
+    /// Per key, the latest fixed-point value of external metric `m` in the `recent` window,
+    /// keys in the order they first appear.
+    pub fn external_recent_by_key(&self, m: usize) -> Vec<(u64, i64)> {
+        self.external_stats().recent.latest_by_key(m)
     }
 
     /// The guards' configuration of this session.
@@ -507,7 +572,8 @@ impl Session {
         let window = st.window.memory_bytes();
         drop(st);
         let history = self.history().memory_bytes();
-        self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + window + replicates + history
+        let external = self.external_stats().recent.memory_bytes();
+        self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + window + replicates + history + external
     }
 
     /// Score one item (CPU work, no lock taken).
@@ -560,7 +626,9 @@ impl Session {
             r.reset(next);
         }
         drop(st);
-        *self.external.lock().unwrap_or_else(|e| e.into_inner()) = crate::external::ExternalState::new(self.spec.external.len(), external_resampling(&self.spec));
+        let mut ext = self.external_stats();
+        let next = ext.recent.next_id();
+        *ext = ExternalStats::new(&self.spec, next);
     }
 }
 
@@ -612,7 +680,7 @@ impl SessionState {
             }
             keep_from = keep_from.min(r.saved_to());
         }
-        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from, history: None, external: None })
+        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from, history: None, external: None, external_window: None, external_rows: None })
     }
 }
 
@@ -659,6 +727,11 @@ pub struct Applied {
     /// The session's external statistics after the batch, for its durable copy (None: the
     /// session declares no external metric, or [`Session::apply`]).
     pub external: Option<crate::external::ExternalState>,
+    /// The ids of the external `recent` window's items after the batch (first, next), with
+    /// `external`.
+    pub external_window: Option<(u64, u64)>,
+    /// The items the batch added to the external `recent` window.
+    pub external_rows: Option<ExternalRows>,
 }
 
 #[cfg(test)]

@@ -48,6 +48,11 @@ const WINDOW_ROWS: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("w
 /// records, then every value, as LEB128 varints. One block per session per group commit; a
 /// block goes when all its records have left the window.
 const WINDOW: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("window_blocks");
+/// (session, id of its first item) -> a block of consecutive items of the external `recent`
+/// window ([`crate::external::window::encode_item`]): the number of items, then every value, as
+/// LEB128 varints. One block per session per group commit; a block goes when all its items have
+/// left the window.
+const EXTERNAL_WINDOW: TableDefinition<(&str, u64), &[u8]> = TableDefinition::new("external_window_blocks");
 /// Session name -> a copy of its cumulative bootstrap replicate sums, as LEB128 varints: the
 /// record id it covers up to (exclusive), 1 when it covers every segment since creation or
 /// reset (else 0), then the sums (none: all zero). Window records after the covered id are
@@ -122,6 +127,10 @@ struct StoredStats {
     /// creation or reset).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     external: Option<crate::external::ExternalState>,
+    /// Ids of the external `recent` window's items (first, next); absent: empty (or stored
+    /// before the window kept external values).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    external_window: Option<(u64, u64)>,
 }
 
 /// One session as read back.
@@ -154,6 +163,10 @@ pub struct LoadedSession {
     pub history: Vec<crate::session::history::StoredBucket>,
     /// External metric sums (None: none stored).
     pub external: Option<crate::external::ExternalState>,
+    /// The external `recent` window's items, oldest first.
+    pub external_recent: Vec<(u64, crate::external::ItemValues)>,
+    /// Id the next item of the external `recent` window gets.
+    pub external_next: u64,
 }
 
 /// Everything needed to rebuild the server state.
@@ -260,6 +273,8 @@ struct SessionBlocks<'a> {
     replicates: Option<&'a SavedReplicates>,
     /// (first id, records, values).
     blocks: Vec<(u64, u64, Vec<u64>)>,
+    /// External window items, likewise.
+    external_blocks: Vec<(u64, u64, Vec<u64>)>,
     marks: Vec<(&'a str, u64)>,
 }
 
@@ -302,6 +317,8 @@ impl Store {
             txn.open_table(WINDOW)?;
             txn.open_table(MARKS)?;
             txn.open_table(REPLICATES)?;
+            // Added in the same schema version: a store without it has no external window yet.
+            txn.open_table(EXTERNAL_WINDOW)?;
             txn.open_table(history::HISTORY)?;
             txn.open_table(history::HISTORY_SUMS)?;
             Ok(())
@@ -356,6 +373,7 @@ impl Store {
         let window = txn.open_table(WINDOW).map_err(|e| self.err(e))?;
         let marks = txn.open_table(MARKS).map_err(|e| self.err(e))?;
         let replicates = txn.open_table(REPLICATES).map_err(|e| self.err(e))?;
+        let external_window = txn.open_table(EXTERNAL_WINDOW).map_err(|e| self.err(e))?;
         let (h_stats, h_sums) = (txn.open_table(history::HISTORY).map_err(|e| self.err(e))?, txn.open_table(history::HISTORY_SUMS).map_err(|e| self.err(e))?);
         for entry in txn.open_table(SESSIONS).map_err(|e| self.err(e))?.iter().map_err(|e| self.err(e))? {
             let (k, v) = entry.map_err(|e| self.err(e))?;
@@ -401,6 +419,19 @@ impl Store {
                 m.insert(producer.to_owned(), v.value());
             }
             let hist = history::load(&h_stats, &h_sums, name).map_err(|e| self.err(format!("history of {name}: {e}")))?;
+            let (first_item, external_next) = st.external_window.unwrap_or((0, 0));
+            let mut external_recent = Vec::new();
+            for r in external_window.range((name, 0)..=(name, u64::MAX)).map_err(|e| self.err(e))? {
+                let (k, v) = r.map_err(|e| self.err(e))?;
+                let first = k.value().1;
+                let bad = || self.err(format!("external window block {first} of {name} does not decode"));
+                let (n, values) = decode_values(v.value()).ok_or_else(bad)?;
+                let items = crate::external::window::decode_items(&values, s.external.len()).filter(|i| i.len() as u64 == n).ok_or_else(bad)?;
+                external_recent.extend(items.into_iter().enumerate().filter(|(i, _)| (first_item..external_next).contains(&(first + *i as u64))).map(|(_, it)| it));
+            }
+            if external_recent.len() as u64 != external_next.saturating_sub(first_item) {
+                return Err(self.err(format!("external window of {name} has {} items from item {first_item}, expected {}", external_recent.len(), external_next.saturating_sub(first_item))));
+            }
             let spec = SessionSpec { name: s.name, refset: s.refset, config: s.config, labels: s.labels, window: s.window, resampling: s.resampling, target_language: s.target_language, guard_settings: s.guard_settings, external: s.external };
             snap.sessions.push(LoadedSession {
                 spec,
@@ -416,6 +447,8 @@ impl Store {
                 marks: m,
                 history: hist,
                 external: st.external,
+                external_recent,
+                external_next,
             });
         }
         Ok(snap)
@@ -519,6 +552,15 @@ impl Store {
             if let Some((producer, seq)) = &a.mark {
                 e.marks.push((producer.as_str(), *seq));
             }
+            if let Some(x) = a.external_rows.as_ref().filter(|x| x.items > 0) {
+                match e.external_blocks.last_mut() {
+                    Some((first, count, values)) if *first + *count == x.first_id => {
+                        *count += x.items;
+                        values.extend_from_slice(&x.values);
+                    }
+                    _ => e.external_blocks.push((x.first_id, x.items, x.values.clone())),
+                }
+            }
             let n = a.batch.scored;
             if n == 0 {
                 continue;
@@ -535,11 +577,13 @@ impl Store {
         for name in &order {
             let e = &by_session[name];
             let Some(last) = e.last else { continue };
-            let st = StoredStats { cumulative: last.cumulative, counts: last.counts, next_row: last.next_row, external: last.external.clone() };
+            let st = StoredStats { cumulative: last.cumulative, counts: last.counts, next_row: last.next_row, external: last.external.clone(), external_window: last.external_window };
             let stats = serde_json::to_vec(&st).map_err(|e| self.err(e))?;
             let blocks: Vec<(u64, Vec<u8>)> = e.blocks.iter().map(|(first, n, values)| (*first, encode_block(*n, values))).collect();
             let reps = e.replicates.map(encode_replicates);
-            encoded.push((*name, stats, blocks, last.keep_from, reps));
+            let external_blocks: Vec<(u64, Vec<u8>)> = e.external_blocks.iter().map(|(first, n, values)| (*first, encode_block(*n, values))).collect();
+            let external_from = last.external_window.map(|(first, _)| first);
+            encoded.push((*name, stats, blocks, last.keep_from, reps, external_blocks, external_from));
         }
         let history_ops = history::encode(writes).map_err(|e| self.err(e))?;
         self.write(|txn| {
@@ -548,7 +592,8 @@ impl Store {
             let mut window = txn.open_table(WINDOW)?;
             let mut marks = txn.open_table(MARKS)?;
             let mut replicates = txn.open_table(REPLICATES)?;
-            for (name, st, blocks, first_live, reps) in &encoded {
+            let mut external_window = txn.open_table(EXTERNAL_WINDOW)?;
+            for (name, st, blocks, first_live, reps, external_blocks, external_from) in &encoded {
                 stats.insert(*name, st.as_slice())?;
                 if let Some(r) = reps {
                     replicates.insert(*name, r.as_slice())?;
@@ -566,6 +611,20 @@ impl Store {
                 old.pop();
                 for first in old {
                     window.remove((*name, first))?;
+                }
+                // The same for the external window's items.
+                for (first, b) in external_blocks {
+                    external_window.insert((*name, *first), b.as_slice())?;
+                }
+                if let Some(from) = external_from {
+                    let mut old = Vec::new();
+                    for r in external_window.range((*name, 0)..=(*name, *from))? {
+                        old.push(r?.0.value().1);
+                    }
+                    old.pop();
+                    for first in old {
+                        external_window.remove((*name, first))?;
+                    }
                 }
                 for (producer, seq) in &by_session[name].marks {
                     marks.insert((*name, *producer), *seq)?;
@@ -618,6 +677,7 @@ fn clear_session_data(txn: &redb::WriteTransaction, name: &str, marks: bool) -> 
     txn.open_table(STATS)?.remove(name)?;
     txn.open_table(REPLICATES)?.remove(name)?;
     txn.open_table(WINDOW)?.retain_in((name, 0)..=(name, u64::MAX), |_, _| false)?;
+    txn.open_table(EXTERNAL_WINDOW)?.retain_in((name, 0)..=(name, u64::MAX), |_, _| false)?;
     if marks {
         let mut m = txn.open_table(MARKS)?;
         let mut keys: Vec<String> = Vec::new();
@@ -800,7 +860,7 @@ mod tests {
                 old.insert(("s", 2 + i as u64), bytes.as_slice()).unwrap();
             }
             drop(old);
-            let st = serde_json::to_vec(&StoredStats { cumulative, counts: Counts { scored: 5, ..Default::default() }, next_row: 5, external: None }).unwrap();
+            let st = serde_json::to_vec(&StoredStats { cumulative, counts: Counts { scored: 5, ..Default::default() }, next_row: 5, external: None, external_window: None }).unwrap();
             txn.open_table(STATS).unwrap().insert("s", st.as_slice()).unwrap();
             txn.commit().unwrap();
         }
