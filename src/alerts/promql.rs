@@ -62,6 +62,9 @@ pub struct Rendered {
 
 /// Why a rule cannot be rendered, if it cannot.
 pub fn daemon_only(rule: &Rule) -> Option<&'static str> {
+    if rule.external.is_some() {
+        return Some("a rule on an external metric judges the bootstrap replicates of its values, which the daemon keeps (Prometheus has the fleet mean and standard deviation: group mtgauge-fleet-external of mtgauge-rules.yml)");
+    }
     match (&rule.condition, rule.window) {
         (Condition::Decline { .. }, _) => Some("a `decline` rule is a sequential test over the stream of chunks: the daemon evaluates it, Prometheus cannot"),
         (Condition::FlagRate { .. }, _) => Some("a `flag-rate` rule's Wilson bound comes from the guard counts the daemon keeps: the daemon evaluates it"),

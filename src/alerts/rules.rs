@@ -60,6 +60,9 @@ pub const DEFAULT_FOR_SEGMENTS: u64 = 400;
 /// Points past the threshold a firing alert's bound must come back by to resolve, unless the
 /// rule sets `clear_margin`.
 pub const DEFAULT_CLEAR_MARGIN: f64 = 0.5;
+/// Hysteresis of rules on an external metric unless set, in the metric's own units (whose
+/// scale mtgauge does not know: none unless the rule sets `clear_margin`).
+pub const DEFAULT_EXTERNAL_CLEAR_MARGIN: f64 = 0.0;
 /// Severity label unless the rule sets one.
 pub const DEFAULT_SEVERITY: &str = "warning";
 /// Seconds between two evaluations of every rule unless configured (`alert_eval_seconds`).
@@ -73,9 +76,9 @@ pub const MAX_RULES: usize = 256;
 /// Labels every alert carries, set by mtgauge (not by `extra_labels`).
 pub const ALERT_LABELS: [&str; 4] = ["alertname", "session", "severity", "metric"];
 /// Keys of one `[[alert]]` entry.
-pub const RULE_KEYS: [&str; 17] = [
+pub const RULE_KEYS: [&str; 18] = [
     "name", "session", "labels", "metric", "window", "when", "threshold", "baseline", "points", "min_segments", "for_seconds", "for_segments", "clear_margin", "severity",
-    "extra_labels", "annotations", "guard",
+    "extra_labels", "annotations", "guard", "external",
 ];
 /// Standard normal quantile of the two-sided 95% intervals of `flag-rate` rules.
 pub const WILSON_Z95: f64 = 1.959_963_984_540_054;
@@ -120,6 +123,8 @@ pub struct RuleEntry {
     extra_labels: BTreeMap<String, String>,
     /// `flag-rate` rules: the guard whose rate is judged.
     guard: Option<String>,
+    /// Rules on a session's external metric (instead of `metric`): its declared name.
+    external: Option<String>,
 }
 
 /// The segments a `below` or `drop` rule judges.
@@ -231,6 +236,11 @@ pub struct Rule {
     /// The metric.
     #[serde(serialize_with = "metric_name")]
     pub metric: Metric,
+    /// A session's external metric it judges instead of `metric` (its declared name): the
+    /// mean of its values, in the metric's own units; `below` and `drop` mean worse than, which
+    /// is above for a metric declared lower-is-better.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub external: Option<String>,
     /// The segments `below` and `drop` judge (`recent` for `decline`, which takes none).
     pub window: Window,
     /// What fires it.
@@ -274,6 +284,18 @@ impl RuleEntry {
         if self.session.is_none() && self.labels.is_empty() {
             return Err(err("give `session` (a name) or `labels` (a selector), or both".into()));
         }
+        if let Some(name) = &self.external {
+            if !crate::external::valid_name(name) {
+                return Err(err(format!("external '{}' is not a valid metric name ([a-zA-Z_][a-zA-Z0-9_]*)", name.escape_debug())));
+            }
+            if self.metric.is_some() {
+                return Err(err("give `metric` (a built-in metric) or `external` (a session's own metric), not both".into()));
+            }
+            if self.when.as_deref() == Some("flag-rate") {
+                return Err(err("`external` does not belong to `when = \"flag-rate\"`".into()));
+            }
+        }
+        let external = self.external.is_some();
         let m = self.metric.as_deref().unwrap_or("bleu");
         let metric = Metric::ALL.into_iter().find(|x| x.name() == m).ok_or_else(|| err(format!("metric '{m}' is not one of bleu, chrf, chrf++")))?;
         let window = Window::parse(self.window.as_deref().unwrap_or(if self.when.as_deref() == Some("flag-rate") { "all" } else { "recent" })).map_err(err)?;
@@ -300,7 +322,10 @@ impl RuleEntry {
             }
             Some("below") => {
                 let threshold = self.threshold.ok_or_else(|| err("`when = \"below\"` needs `threshold`".into()))?;
-                if !(0.0..=100.0).contains(&threshold) {
+                if external && !threshold.is_finite() {
+                    return Err(err(format!("threshold {threshold} is not a number")));
+                }
+                if !external && !(0.0..=100.0).contains(&threshold) {
                     return Err(err(format!("threshold {threshold} is not a score between 0 and 100")));
                 }
                 if self.baseline.is_some() || self.points.is_some() {
@@ -311,7 +336,7 @@ impl RuleEntry {
             Some("drop") => {
                 let baseline = self.baseline.clone().ok_or_else(|| err("`when = \"drop\"` needs `baseline` (a session name)".into()))?;
                 let points = self.points.ok_or_else(|| err("`when = \"drop\"` needs `points`".into()))?;
-                if !(0.0..=100.0).contains(&points) {
+                if !(0.0..=100.0).contains(&points) && !(external && points.is_finite() && points >= 0.0) {
                     return Err(err(format!("points {points} is not between 0 and 100")));
                 }
                 if self.threshold.is_some() {
@@ -321,7 +346,7 @@ impl RuleEntry {
             }
             Some("decline") => {
                 let points = self.points.ok_or_else(|| err("`when = \"decline\"` needs `points` (the drop to detect)".into()))?;
-                if !(points > 0.0 && points <= 100.0) {
+                if !(points > 0.0 && (points <= 100.0 || external && points.is_finite())) {
                     return Err(err(format!("points {points} is not above 0 and at most 100")));
                 }
                 if self.threshold.is_some() || self.baseline.is_some() {
@@ -344,7 +369,7 @@ impl RuleEntry {
                 }
             }
         }
-        let clear_margin = self.clear_margin.unwrap_or(DEFAULT_CLEAR_MARGIN);
+        let clear_margin = self.clear_margin.unwrap_or(if external { DEFAULT_EXTERNAL_CLEAR_MARGIN } else { DEFAULT_CLEAR_MARGIN });
         if clear_margin.is_nan() || clear_margin < 0.0 {
             return Err(err(format!("clear_margin {clear_margin} is negative")));
         }
@@ -358,6 +383,7 @@ impl RuleEntry {
             session: self.session.clone(),
             labels: self.labels.clone(),
             metric,
+            external: self.external.clone(),
             window,
             condition,
             min_segments: self.min_segments.unwrap_or(DEFAULT_MIN_SEGMENTS),
@@ -389,18 +415,22 @@ pub fn check_rules(entries: &[RuleEntry]) -> Result<Vec<Rule>, RuleError> {
 impl Rule {
     /// The condition in words (reports, logs, rendered rules).
     pub fn describe(&self) -> String {
+        let what = self.subject();
+        let units = if self.external.is_some() { "" } else { " points" };
         match &self.condition {
-            Condition::Below { threshold } => format!("{} {} 95% interval entirely below {threshold}", self.window.describe(), self.metric.name()),
+            Condition::Below { threshold } if self.external.is_some() => format!("{} mean {what}: 95% interval entirely worse than {threshold} (below it, or above it for a lower-is-better metric)", self.window.describe()),
+            Condition::Below { threshold } => format!("{} {what} 95% interval entirely below {threshold}", self.window.describe()),
             Condition::Drop { baseline, points } => {
-                format!("{} {} at least {points} points below session {baseline} (paired 95% interval of the difference below -{points})", self.window.describe(), self.metric.name())
+                format!("{} {what} at least {points}{units} worse than session {baseline} (95% interval of the difference beyond {points})", self.window.describe())
             }
-            Condition::Decline { points } => format!(
-                "{} of chunks of {} segments {points} points below the session's own past (CUSUM past its decision limit)",
-                self.metric.name(),
-                self.min_segments
-            ),
+            Condition::Decline { points } => format!("{what} of chunks of {} segments {points}{units} worse than the session's own past (CUSUM past its decision limit)", self.min_segments),
             Condition::FlagRate { guard, threshold } => format!("share of items the {guard} guard flags since start: 95% Wilson interval entirely above {threshold}%"),
         }
+    }
+
+    /// What the rule judges: the built-in metric's name, or the external metric's.
+    pub fn subject(&self) -> &str {
+        self.external.as_deref().unwrap_or(self.metric.name())
     }
 
     /// Whether the rule watches a session with this name and these labels.
@@ -414,6 +444,7 @@ impl Rule {
     fn judge(&self, m: &Measured) -> (bool, bool) {
         let limit = match &self.condition {
             Condition::Below { threshold } => *threshold,
+            Condition::Drop { points, .. } if m.higher_is_worse => *points,
             Condition::Drop { points, .. } => -points,
             Condition::Decline { .. } => {
                 let s = m.statistic.unwrap_or(0.0);
@@ -422,6 +453,10 @@ impl Rule {
             // Above, not below: the lower bound against the threshold.
             Condition::FlagRate { threshold, .. } => return (m.low > *threshold, m.low <= threshold - self.clear_margin),
         };
+        if m.higher_is_worse {
+            // Worse is higher: the lower bound against the limit.
+            return (m.low > limit, m.low <= limit - self.clear_margin);
+        }
         (m.high < limit, m.high >= limit + self.clear_margin)
     }
 }
@@ -465,6 +500,9 @@ pub struct Measured {
     pub segments: u64,
     /// `decline` rules: the test statistic as a share of its decision limit (past 1: fires).
     pub statistic: Option<f64>,
+    /// An external metric declared lower-is-better: `below` and `drop` fire on the lower
+    /// bound above the limit (worse is higher).
+    pub higher_is_worse: bool,
 }
 
 /// The running state of a (rule, session) pair.
@@ -533,7 +571,7 @@ mod tests {
     }
 
     fn m(high: f64, segments: u64) -> Option<Measured> {
-        Some(Measured { value: high - 2.0, low: high - 4.0, high, segments, statistic: None })
+        Some(Measured { value: high - 2.0, low: high - 4.0, high, segments, statistic: None, higher_is_worse: false })
     }
 
     #[test]
@@ -574,7 +612,7 @@ mod tests {
 
     #[test]
     fn for_segments_counts_newly_scored_segments_and_is_the_default() {
-        let m = |high: f64| Some(Measured { value: high - 1.0, low: high - 2.0, high, segments: 500, statistic: None });
+        let m = |high: f64| Some(Measured { value: high - 1.0, low: high - 2.0, high, segments: 500, statistic: None, higher_is_worse: false });
         let plain = entry("name = \"f\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 45").check(0).unwrap();
         assert_eq!((plain.for_seconds, plain.for_segments), (DEFAULT_FOR_SECONDS, DEFAULT_FOR_SEGMENTS), "the default waits for segments");
         let timed = entry("name = \"f\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 45\nfor_seconds = 30").check(0).unwrap();
@@ -641,7 +679,7 @@ mod tests {
         // The measurement as the daemon makes it: rate and Wilson bounds in percent.
         let measured = |flagged: u64, decided: u64| {
             let (lo, hi) = wilson(flagged, decided, WILSON_Z95).unwrap();
-            Some(Measured { value: 100.0 * flagged as f64 / decided as f64, low: 100.0 * lo, high: 100.0 * hi, segments: decided, statistic: None })
+            Some(Measured { value: 100.0 * flagged as f64 / decided as f64, low: 100.0 * lo, high: 100.0 * hi, segments: decided, statistic: None, higher_is_worse: false })
         };
         let mut t = Tracker::new(0);
         // 2 of 20 (10%, lower bound 2.8%): above the threshold, but fewer items than

@@ -132,11 +132,15 @@ pub struct Pair {
     /// the baseline session's (`drop`).
     history: History,
     baseline_history: History,
+    /// The same for rules on an external metric.
+    ext_chunk_start: Option<crate::external::ExternalState>,
+    ext_history: History<crate::external::ExternalState>,
+    ext_baseline_history: History<crate::external::ExternalState>,
 }
 
 impl Pair {
     fn new(now: i64) -> Pair {
-        Pair { tracker: Tracker::new(now), fired_at: now, posted_at: now, cusum: Cusum::default(), chunk_start: None, history: History::default(), baseline_history: History::default() }
+        Pair { tracker: Tracker::new(now), fired_at: now, posted_at: now, cusum: Cusum::default(), chunk_start: None, history: History::default(), baseline_history: History::default(), ext_chunk_start: None, ext_history: History::default(), ext_baseline_history: History::default() }
     }
 }
 
@@ -145,47 +149,100 @@ impl Pair {
 /// session's cumulative replicate sums (R x fields x 8 bytes: 46 KB at R = 200 for bleu + chrf).
 pub const HISTORY_POINTS: u64 = 30;
 
-/// A session's cumulative statistics and replicate sums at past evaluations, for a time
-/// window: the window's part is the cumulative now minus the cumulative at the newest point at
-/// least the window's length old. Until the evaluator has watched a session for that long,
-/// the window starts where it began watching, or at the session's creation (or reset) when
-/// that is within the window.
-#[derive(Debug, Clone, Default)]
-pub struct History {
-    points: std::collections::VecDeque<(i64, CorpusStats, Replicates)>,
+/// What a time window is cut from: a session's cumulative sums (with their replicate sums),
+/// from which an earlier copy can be subtracted.
+pub trait Cumulative: Clone {
+    /// Empty sums of the same shape.
+    fn empty_like(&self) -> Self;
+    /// Items counted.
+    fn count(&self) -> u64;
+    /// Whether `o` has the same shape (configuration, replicates, seed).
+    fn same_shape(&self, o: &Self) -> bool;
+    /// `self - o` (o part of self); None on a mismatch.
+    fn minus(&self, o: &Self) -> Option<Self>;
 }
 
-impl History {
-    /// Take the cumulative `(stats, reps)` at `now` and return the part of the last `seconds`.
-    pub fn window(&mut self, now: i64, seconds: u64, created_unix: i64, stats: CorpusStats, reps: Replicates) -> (CorpusStats, Replicates) {
-        let (config, resamples, seed) = (*reps.config(), reps.resamples(), reps.seed());
-        let zero = || (CorpusStats::default(), Replicates::new(&config, resamples, seed));
-        let reset = self.points.back().is_some_and(|(_, s, r)| s.segments > stats.segments || r.config() != reps.config() || r.resamples() != reps.resamples() || r.seed() != reps.seed());
+impl Cumulative for (CorpusStats, Replicates) {
+    fn empty_like(&self) -> Self {
+        (CorpusStats::default(), Replicates::new(self.1.config(), self.1.resamples(), self.1.seed()))
+    }
+    fn count(&self) -> u64 {
+        self.0.segments
+    }
+    fn same_shape(&self, o: &Self) -> bool {
+        o.1.config() == self.1.config() && o.1.resamples() == self.1.resamples() && o.1.seed() == self.1.seed()
+    }
+    fn minus(&self, o: &Self) -> Option<Self> {
+        let (mut s, mut r) = self.clone();
+        s -= o.0;
+        r.subtract(&o.1).ok()?;
+        Some((s, r))
+    }
+}
+
+impl Cumulative for crate::external::ExternalState {
+    fn empty_like(&self) -> Self {
+        let resampling = self.replicates.as_ref().map(|r| (r.resamples(), r.seed()));
+        crate::external::ExternalState::new(self.totals.0.len(), resampling)
+    }
+    fn count(&self) -> u64 {
+        self.totals.0.iter().map(|t| t.count).sum()
+    }
+    fn same_shape(&self, o: &Self) -> bool {
+        let resampling = o.replicates.as_ref().map(|r| (r.resamples(), r.seed()));
+        self.fits(o.totals.0.len(), resampling)
+    }
+    fn minus(&self, o: &Self) -> Option<Self> {
+        let totals = self.totals.0.iter().zip(&o.totals.0).map(|(a, b)| a.checked_sub(b).ok()).collect::<Option<Vec<_>>>()?;
+        let replicates = match (&self.replicates, &o.replicates) {
+            (Some(a), Some(b)) => {
+                let mut r = a.clone();
+                r.subtract(b).ok()?;
+                Some(r)
+            }
+            (None, None) => None,
+            _ => return None,
+        };
+        Some(crate::external::ExternalState { totals: crate::external::ExternalTotals(totals), replicates })
+    }
+}
+
+/// A session's cumulative sums at past evaluations, for a time window: the window's part is
+/// the cumulative now minus the cumulative at the newest point at least the window's length
+/// old. Until the evaluator has watched a session for that long, the window starts where it
+/// began watching, or at the session's creation (or reset) when that is within the window.
+#[derive(Debug, Clone)]
+pub struct History<T = (CorpusStats, Replicates)> {
+    points: std::collections::VecDeque<(i64, T)>,
+}
+
+impl<T> Default for History<T> {
+    fn default() -> Self {
+        History { points: std::collections::VecDeque::new() }
+    }
+}
+
+impl<T: Cumulative> History<T> {
+    /// Take the cumulative `now_sums` at `now` and return the part of the last `seconds`.
+    pub fn window(&mut self, now: i64, seconds: u64, created_unix: i64, now_sums: T) -> T {
+        let reset = self.points.back().is_some_and(|(_, old)| old.count() > now_sums.count() || !old.same_shape(&now_sums));
         if reset {
             // Reset (or recreated): the session starts over about now.
             self.points.clear();
-            let (s, r) = zero();
-            self.points.push_back((now, s, r));
+            self.points.push_back((now, now_sums.empty_like()));
         } else if self.points.is_empty() && created_unix > now - seconds as i64 {
             // Created within the window: all of its life is in it.
-            let (s, r) = zero();
-            self.points.push_back((created_unix, s, r));
+            self.points.push_back((created_unix, now_sums.empty_like()));
         }
         let spacing = (seconds / HISTORY_POINTS).max(1) as i64;
-        if self.points.back().is_none_or(|(t, _, _)| now - t >= spacing) {
-            self.points.push_back((now, stats, reps.clone()));
+        if self.points.back().is_none_or(|(t, _)| now - t >= spacing) {
+            self.points.push_back((now, now_sums.clone()));
         }
         let edge = now - seconds as i64;
         while self.points.len() >= 2 && self.points[1].0 <= edge {
             self.points.pop_front();
         }
-        let (_, s0, r0) = &self.points[0];
-        let (mut s, mut r) = (stats, reps);
-        s -= *s0;
-        if r.subtract(r0).is_err() {
-            return zero();
-        }
-        (s, r)
+        now_sums.minus(&self.points[0].1).unwrap_or_else(|| now_sums.empty_like())
     }
 }
 
@@ -227,13 +284,19 @@ pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, St
             let key = (rule.name.clone(), spec.name.clone());
             let mut p = trackers.remove(&key).unwrap_or_else(|| Pair::new(now));
             let m = measure(state, rule, &session, &mut p, now);
-            let scored = session.state().cumulative.segments;
+            // The clock of `for_segments`: segments scored, or for a rule on an external metric
+            // the values it counted.
+            let scored = match &rule.external {
+                Some(name) => spec.external.index(name).and_then(|m| session.external().totals.0.get(m).map(|t| t.count)).unwrap_or(0),
+                None => session.state().cumulative.segments,
+            };
             let change = p.tracker.step(rule, m, now, scored);
             if let Some(change) = change {
                 log_transition(rule, &spec.name, change, m);
                 board.record(&rule.name, &spec.name, change, now);
             }
-            if let Condition::Below { threshold } = rule.condition {
+            if let (Condition::Below { threshold }, None) = (&rule.condition, &rule.external) {
+                let threshold = *threshold;
                 thresholds.entry(spec.name.clone()).or_default().push(Threshold { rule: rule.name.clone(), metric: rule.metric, value: threshold });
             }
             if change == Some(Transition::Fired) {
@@ -270,7 +333,7 @@ fn labels(rule: &Rule, session: &str) -> std::collections::BTreeMap<String, Stri
     l.insert("alertname".into(), rule.name.clone());
     l.insert("session".into(), session.to_owned());
     l.insert("severity".into(), rule.severity.clone());
-    l.insert("metric".into(), rule.metric.name().to_owned());
+    l.insert("metric".into(), rule.subject().to_owned());
     l
 }
 
@@ -282,7 +345,7 @@ fn event(rule: &Rule, session: &Session, p: &Pair, resolved: bool, now: i64) -> 
     annotations.insert("measured".into(), measured);
     annotations.insert(
         "description".into(),
-        format!("{} is an automatic proxy for translation quality: look at the session's recent output and at what changed (model, input, references) before concluding anything.", rule.metric.title()),
+        format!("{} is an automatic proxy for translation quality: look at the session's recent output and at what changed (model, input, references) before concluding anything.", rule.external.as_deref().unwrap_or(rule.metric.title())),
     );
     AlertEvent { labels: labels(rule, &session.spec().name), annotations, starts_at: at(p.fired_at), ends_at: resolved.then(|| at(now)), generator_url: String::new() }
 }
@@ -298,6 +361,9 @@ fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64
     if let Condition::FlagRate { guard, .. } = &rule.condition {
         return flag_rate(session, guard);
     }
+    if let Some(name) = &rule.external {
+        return external(state, rule, name, session, p, now);
+    }
     let config = &session.spec().config;
     if !config.has(rule.metric) {
         return None;
@@ -309,7 +375,7 @@ fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64
             let stats = session.state().window.stats();
             let (_, recent) = session.replicates();
             let i = recent?.interval(rule.metric, DEFAULT_LEVEL)?;
-            Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments, statistic: None })
+            Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments, statistic: None, higher_is_worse: false })
         }
         (Condition::Drop { baseline, .. }, Window::Recent) => {
             let base = state.session(baseline).ok()?;
@@ -317,19 +383,19 @@ fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64
                 // What `paired` would sum, read from the windows' own sums (exactly equal).
                 let i = difference_interval(&ra, &rb, rule.metric, DEFAULT_LEVEL)?;
                 let value = corpus_score(&sa, config, rule.metric).unwrap_or(0.0) - corpus_score(&sb, config, rule.metric).unwrap_or(0.0);
-                return Some(Measured { value, low: i.low, high: i.high, segments: sa.segments, statistic: None });
+                return Some(Measured { value, low: i.low, high: i.high, segments: sa.segments, statistic: None, higher_is_worse: false });
             }
             let r = session.spec().resampling;
             let settings = CompareSettings { resamples: r.resamples, seed: r.seed, level: DEFAULT_LEVEL, trials: 0 };
             let p = super::compare::paired(session, &base, &settings, 1).ok()?;
             let m = p.comparison.get(rule.metric)?;
             let i = m.interval?;
-            Some(Measured { value: m.difference, low: i.low, high: i.high, segments: p.comparison.segments, statistic: None })
+            Some(Measured { value: m.difference, low: i.low, high: i.high, segments: p.comparison.segments, statistic: None, higher_is_worse: false })
         }
         (Condition::Below { .. }, w) => {
             let (stats, reps) = windowed(session, w, &mut p.history, now)?;
             let i = reps.interval(rule.metric, DEFAULT_LEVEL)?;
-            Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments, statistic: None })
+            Some(Measured { value: corpus_score(&stats, config, rule.metric)?, low: i.low, high: i.high, segments: stats.segments, statistic: None, higher_is_worse: false })
         }
         (Condition::Drop { baseline, .. }, w) => {
             // Each session's window on its own, paired through the replicates: the same
@@ -343,7 +409,7 @@ fn measure(state: &State, rule: &Rule, session: &Session, p: &mut Pair, now: i64
             let i = difference_interval(&ra, &rb, rule.metric, DEFAULT_LEVEL)?;
             rb.interval(rule.metric, DEFAULT_LEVEL)?;
             let value = corpus_score(&sa, config, rule.metric)? - corpus_score(&sb, config, rule.metric)?;
-            Some(Measured { value, low: i.low, high: i.high, segments: sa.segments.min(sb.segments), statistic: None })
+            Some(Measured { value, low: i.low, high: i.high, segments: sa.segments.min(sb.segments), statistic: None, higher_is_worse: false })
         }
     }
 }
@@ -356,7 +422,7 @@ fn flag_rate(session: &Session, guard: &str) -> Option<Measured> {
     let decided = counts.checked.saturating_sub(counts.undecided_by(g));
     let flagged = counts.flagged_by(g);
     let (low, high) = crate::alerts::rules::wilson(flagged, decided, crate::alerts::rules::WILSON_Z95)?;
-    Some(Measured { value: 100.0 * flagged as f64 / decided as f64, low: 100.0 * low, high: 100.0 * high, segments: decided, statistic: None })
+    Some(Measured { value: 100.0 * flagged as f64 / decided as f64, low: 100.0 * low, high: 100.0 * high, segments: decided, statistic: None, higher_is_worse: false })
 }
 
 /// A session's statistics and replicate sums over `window` (`all` or a time window).
@@ -364,7 +430,7 @@ fn windowed(session: &Session, window: Window, history: &mut History, now: i64) 
     let (stats, reps) = session.cumulative_with_replicates();
     let reps = reps?;
     match window {
-        Window::Last(seconds) => Some(history.window(now, seconds, session.created_unix(), stats, reps)),
+        Window::Last(seconds) => Some(history.window(now, seconds, session.created_unix(), (stats, reps))),
         _ => Some((stats, reps)),
     }
 }
@@ -399,7 +465,92 @@ fn decline(rule: &Rule, session: &Session, p: &mut Pair, points: f64) -> Option<
     let step = p.cusum.observe(x, se, points);
     // The chunk's score with a normal-approximation 95% range (1.96 standard errors), and the
     // test statistic (None while the baseline is being learned).
-    Some(Measured { value: x, low: x - 1.96 * se, high: x + 1.96 * se, segments: chunk.segments, statistic: step.map(|s| s.statistic) })
+    Some(Measured { value: x, low: x - 1.96 * se, high: x + 1.96 * se, segments: chunk.segments, statistic: step.map(|s| s.statistic), higher_is_worse: false })
+}
+
+/// A session's external metric `m` over `window`: its sums and replicate sums (None: the
+/// session keeps no replicates).
+fn external_window(session: &Session, m: usize, window: Window, history: &mut History<crate::external::ExternalState>, now: i64) -> Option<(crate::external::ExternalSums, crate::external::replicates::ExternalReplicates)> {
+    let (totals, reps) = match window {
+        Window::Recent => session.external_recent(),
+        Window::All => {
+            let e = session.external();
+            (e.totals, e.replicates)
+        }
+        Window::Last(seconds) => {
+            let e = history.window(now, seconds, session.created_unix(), session.external());
+            (e.totals, e.replicates)
+        }
+    };
+    Some((*totals.0.get(m)?, reps?))
+}
+
+/// A rule on an external metric: the mean of its values (over the rule's window) with the
+/// percentile interval of the replicate means (`below`), the difference of two sessions' means
+/// with the interval of the replicate differences, each item weighted alike in both by its key
+/// (`drop`), or the CUSUM over chunks of `min_segments` values (`decline`).
+fn external(state: &State, rule: &Rule, name: &str, session: &Session, p: &mut Pair, now: i64) -> Option<Measured> {
+    let specs = session.spec().external.specs();
+    let m = session.spec().external.index(name)?;
+    let spec = &specs[m];
+    let (d, worse_high) = (spec.decimals, !spec.higher_is_better);
+    let measured = |value: f64, (low, high): (f64, f64), segments: u64| Measured { value, low, high, segments, statistic: None, higher_is_worse: worse_high };
+    match &rule.condition {
+        Condition::Below { .. } => {
+            let (sums, reps) = external_window(session, m, rule.window, &mut p.ext_history, now)?;
+            let i = reps.interval(m, d, DEFAULT_LEVEL)?;
+            Some(measured(sums.mean(d)?, (i.low, i.high), sums.count))
+        }
+        Condition::Drop { baseline, .. } => {
+            let base = state.session(baseline).ok()?;
+            let bm = base.spec().external.index(name)?;
+            let bspec = &base.spec().external.specs()[bm];
+            if bspec.decimals != d || bspec.higher_is_better != spec.higher_is_better {
+                return None;
+            }
+            let (sa, ra) = external_window(session, m, rule.window, &mut p.ext_history, now)?;
+            let (sb, rb) = external_window(&base, bm, rule.window, &mut p.ext_baseline_history, now)?;
+            if ra.resamples() != rb.resamples() || ra.seed() != rb.seed() {
+                return None;
+            }
+            let scale = 10f64.powi(d as i32);
+            let mut diffs: Vec<f64> = (0..ra.resamples())
+                .filter_map(|r| {
+                    let ((ca, xa), (cb, xb)) = (ra.replicate(m, r)?, rb.replicate(bm, r)?);
+                    (ca > 0 && cb > 0).then(|| (xa as f64 / ca as f64 - xb as f64 / cb as f64) / scale)
+                })
+                .collect();
+            let iv = crate::metric::compare::symmetric_interval(&mut diffs, DEFAULT_LEVEL)?;
+            Some(measured(sa.mean(d)? - sb.mean(d)?, iv, sa.count.min(sb.count)))
+        }
+        Condition::Decline { points } => {
+            let now_state = session.external();
+            let Some(start) = &p.ext_chunk_start else {
+                p.ext_chunk_start = Some(now_state);
+                return p.tracker.last;
+            };
+            let (n_now, n_start) = (now_state.totals.0.get(m)?.count, start.totals.0.get(m)?.count);
+            if n_now < n_start || !now_state.same_shape(start) {
+                // The session was reset: start over.
+                (p.cusum, p.ext_chunk_start) = (Cusum::default(), Some(now_state));
+                return None;
+            }
+            if n_now - n_start < rule.min_segments {
+                return p.tracker.last;
+            }
+            let chunk = now_state.minus(start)?;
+            p.ext_chunk_start = Some(now_state);
+            let sums = chunk.totals.0[m];
+            let means = chunk.replicates.as_ref()?.means(m, d);
+            let mean = means.iter().sum::<f64>() / means.len().max(1) as f64;
+            let se = (means.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / (means.len().max(2) - 1) as f64).sqrt();
+            let x = sums.mean(d)?;
+            // The test looks for a fall: a lower-is-better metric is fed negated.
+            let step = p.cusum.observe(if worse_high { -x } else { x }, se, *points);
+            Some(Measured { statistic: step.map(|s| s.statistic), ..measured(x, (x - 1.96 * se, x + 1.96 * se), sums.count) })
+        }
+        Condition::FlagRate { .. } => None,
+    }
 }
 
 /// The condition in words.
@@ -596,5 +747,80 @@ mod tests {
         // A session no rule judges any more keeps none.
         board.publish(HashMap::new(), HashMap::new());
         assert!(board.spans_of("s").is_empty());
+    }
+
+    /// Rules on external metrics, with a generated quality-estimation stream (0-1, 4 decimals;
+    /// each item's value is its own quality plus noise, sd about 0.1): after 100 stable chunks of
+    /// 100 values, session `cand` falls by 0.02 for 40 chunks while `stable` does not. `below`
+    /// (threshold 0.69, stable mean 0.70), `drop` against `prod` (fed the same items, by key; 0.005
+    /// beyond) and `decline` (0.02) fire on `cand` during the drop and never before, and never on
+    /// `stable`; the same for `errors`, declared lower-is-better (1 - the QE value), whose rules
+    /// fire on a rise.
+    #[test]
+    fn external_rules_fire_on_a_drop_of_two_hundredths_and_not_on_a_stable_stream() {
+        use crate::external::{Declaration, ExternalSpec};
+        let (state, _, _) = ferry_state(10, &[]);
+        let decl = Declaration::new(vec![
+            ExternalSpec { decimals: 4, ..ExternalSpec::new("qe", 0.0, 1.0).unwrap() },
+            ExternalSpec { decimals: 4, higher_is_better: false, ..ExternalSpec::new("errors", 0.0, 1.0).unwrap() },
+        ])
+        .unwrap();
+        let sessions: Vec<Arc<Session>> = ["prod", "stable", "cand"]
+            .iter()
+            .map(|name| {
+                let labels = if *name == "prod" { Default::default() } else { [("watched".to_string(), "yes".to_string())].into() };
+                let mut spec = state.session_spec(name, "ferry", Default::default(), labels, 0, Default::default()).unwrap();
+                spec.external = decl.clone();
+                state.create_session(spec, false).unwrap().0
+            })
+            .collect();
+        let rule = |name: &str, ext: &str, rest: &str| -> toml::Value { toml::from_str(&format!("name = \"{name}\"\nlabels = {{ watched = \"yes\" }}\nexternal = \"{ext}\"\nmin_segments = 100\n{rest}")).unwrap() };
+        let entries: Vec<crate::alerts::rules::RuleEntry> = [
+            rule("qe-below", "qe", "when = \"below\"\nthreshold = 0.69"),
+            rule("qe-drop", "qe", "when = \"drop\"\nbaseline = \"prod\"\npoints = 0.005"),
+            rule("qe-decline", "qe", "when = \"decline\"\npoints = 0.02"),
+            rule("errors-below", "errors", "when = \"below\"\nthreshold = 0.31"),
+            rule("errors-drop", "errors", "when = \"drop\"\nbaseline = \"prod\"\npoints = 0.005"),
+            rule("errors-decline", "errors", "when = \"decline\"\npoints = 0.02"),
+        ]
+        .into_iter()
+        .map(|v| v.try_into().unwrap())
+        .collect();
+        let rules = crate::alerts::rules::check_rules(&entries).unwrap();
+        let board = AlertBoard::default();
+        let mut trackers = HashMap::new();
+        let mut rng = SplitMix64::new(29);
+        let (stable_chunks, drop_chunks) = (100u64, 40u64);
+        let mut first_firing: HashMap<(String, String), u64> = HashMap::new();
+        for chunk in 0..stable_chunks + drop_chunks {
+            let mut batches: [Vec<(u64, crate::external::ItemValues)>; 3] = Default::default();
+            for i in 0..100u64 {
+                let key = chunk * 100 + i;
+                let quality = 0.55 + 0.3 * rng.next_f64();
+                for (s, batch) in batches.iter_mut().enumerate() {
+                    let fall = if s == 2 && chunk >= stable_chunks { 0.02 } else { 0.0 };
+                    let v: f64 = (quality + 0.1 * (rng.next_f64() - 0.5) - fall).clamp(0.0, 1.0);
+                    batch.push((key, decl.check_item([("qe", v), ("errors", 1.0 - v)]).unwrap()));
+                }
+            }
+            for (session, batch) in sessions.iter().zip(&batches) {
+                session.apply_external(&session.external_delta(batch).unwrap()).unwrap();
+            }
+            trackers = evaluate(&state, &rules, trackers, &board, None, chunk as i64);
+            for name in ["stable", "cand"] {
+                for a in board.of(name).into_iter().filter(|a| a.state == "firing") {
+                    first_firing.entry((name.to_string(), a.rule.clone())).or_insert(chunk);
+                }
+            }
+        }
+        for r in &rules {
+            assert_eq!(first_firing.get(&("stable".to_string(), r.name.clone())), None, "{}: fired on the stable session", r.name);
+            let at = first_firing.get(&("cand".to_string(), r.name.clone())).copied();
+            assert!(at.is_some_and(|c| c >= stable_chunks), "{}: fires on the drop, not before: {at:?} (drop at chunk {stable_chunks})", r.name);
+        }
+        // What the board shows for a rule on an external metric: the mean in its own units.
+        let shown = board.of("cand").into_iter().find(|a| a.rule == "qe-below").unwrap();
+        assert!(shown.value.is_some_and(|v| (0.6..0.75).contains(&v)), "{shown:?}");
+        assert!(shown.condition.contains("mean qe"), "{}", shown.condition);
     }
 }

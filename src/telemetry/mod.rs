@@ -52,6 +52,8 @@ const GUARD_FLAGGED: &str = "mtgauge_guard_flagged_total";
 const EXTERNAL_COUNT: &str = "mtgauge_external_count_total";
 const EXTERNAL_SUM: &str = "mtgauge_external_sum_total";
 const EXTERNAL_SQUARES: &str = "mtgauge_external_squares_total";
+const EXTERNAL_LOW: &str = "mtgauge_external_low";
+const EXTERNAL_SCALE: &str = "mtgauge_external_scale";
 const COMMIT_SECONDS: &str = "mtgauge_store_commit_seconds";
 const COMMIT_BATCHES: &str = "mtgauge_store_commit_batches";
 
@@ -209,6 +211,8 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(GUARD_FLAGGED, "Items flagged per session and guard (empty, copy, length, repetition, script, language); an item can trip several.");
     describe_counter!(EXTERNAL_COUNT, "Values of each external segment metric counted per session (the metric label is the session's declared name).");
     describe_counter!(EXTERNAL_SUM, "Per session and external metric: the sum of (value - low) x 10^decimals, exact (low and decimals as declared; fleet mean = low + sum / (count x 10^decimals)).");
+    describe_gauge!(EXTERNAL_LOW, "Per session and external metric: the declared low end of its range, which the sum and squares counters are offset by.");
+    describe_gauge!(EXTERNAL_SCALE, "Per session and external metric: 10^decimals, the fixed-point scale of its sum and squares counters.");
     describe_counter!(EXTERNAL_SQUARES, "Per session and external metric: the sum of (value - low)^2 x 10^decimals, rounded half to even over the whole sum (variance = (squares / 10^decimals - sum^2 / (count x 10^(2 decimals))) / (count - 1)).");
     describe_counter!(ALERT_RETRIES, "Alert delivery attempts after the first one of a batch, per target.");
     describe_gauge!(ALERT_FIRING, "1 while the daemon's alert rule fires for the session, else 0.");
@@ -290,6 +294,8 @@ pub fn record_external(session: &str, declaration: &crate::external::Declaration
         counter!(EXTERNAL_COUNT, &labels).absolute(n);
         counter!(EXTERNAL_SUM, &labels).absolute(sum);
         counter!(EXTERNAL_SQUARES, &labels).absolute(squares);
+        gauge!(EXTERNAL_LOW, &labels).set(spec.low);
+        gauge!(EXTERNAL_SCALE, &labels).set(spec.scale() as f64);
     }
 }
 

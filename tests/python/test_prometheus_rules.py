@@ -156,9 +156,11 @@ def test_recorded_names_follow_the_convention():
 
 def test_window_groups_are_the_same_rules():
     g = groups(RULES.read_text(encoding="utf-8"))
-    assert set(g) == {"mtgauge-fleet-since-start", "mtgauge-fleet-15m", "mtgauge-fleet-1h"}, sorted(g)
+    assert set(g) == {"mtgauge-fleet-since-start", "mtgauge-fleet-15m", "mtgauge-fleet-1h",
+                      "mtgauge-fleet-external"}, sorted(g)
     w15, w1h, start = g["mtgauge-fleet-15m"], g["mtgauge-fleet-1h"], g["mtgauge-fleet-since-start"]
-    strip = lambda s: re.sub(r"\n\s*# -+\s*$", "", s.rstrip())  # noqa: E731 (the separator line)
+    # The separator line, and the comment block that opens the next group.
+    strip = lambda s: re.sub(r"\n\s*# -+(\n\s*#.*)*\s*$", "", s.rstrip())  # noqa: E731
     # 1h is 15m with the window replaced.
     assert strip(w15.replace("15m", "1h")) == strip(w1h)
     # Since start is 15m on the raw counters.
