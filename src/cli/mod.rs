@@ -19,6 +19,7 @@ mod serve;
 mod status;
 mod token;
 mod tokenize;
+mod watch;
 
 use std::io::IsTerminal;
 use std::process::ExitCode;
@@ -75,7 +76,7 @@ pub enum Command {
     #[command(long_about = send::LONG_ABOUT)]
     Send(send::SendArgs),
     /// Show the scores of a running server's sessions.
-    #[command(long_about = status::LONG_ABOUT)]
+    #[command(long_about = status::long_about())]
     Status(status::StatusArgs),
     /// Make a bearer token and the line for the server's tokens file.
     #[command(long_about = token::LONG_ABOUT)]
