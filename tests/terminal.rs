@@ -179,3 +179,91 @@ async fn watch_on_a_terminal_redraws_the_block_and_exits_on_ctrl_c() {
     let flag = pane.tmux(&["display-message", "-p", "#{cursor_flag}"]);
     assert_eq!(String::from_utf8_lossy(&flag.stdout).trim(), "1");
 }
+
+/// Segments of the generated corpus for the bar tests: above the progress threshold
+/// (`PROGRESS_MIN_SEGMENTS`, 20,000), small enough to score in a few seconds.
+const BAR_SEGMENTS: usize = 25_000;
+
+/// A generated line-aligned corpus: references and hypotheses (every other one with a word
+/// left out and one changed); the paths of the reference and hypothesis files.
+fn generated_corpus(dir: &Path) -> (String, String) {
+    let (mut refs, mut hyps) = (String::new(), String::new());
+    for k in 0..BAR_SEGMENTS {
+        let r = format!("the ferry {k} to Tarnholm leaves from pier {} at {} hours", k % 7, k % 24);
+        let h = if k % 2 == 0 { r.clone() } else { format!("ferry {k} to Tarnholm leaves from gate {} at {} hours", k % 7, k % 24) };
+        refs += &(r + "\n");
+        hyps += &(h + "\n");
+    }
+    let (r, h) = (dir.join("ref.txt"), dir.join("hyp.txt"));
+    std::fs::write(&r, refs).unwrap();
+    std::fs::write(&h, hyps).unwrap();
+    (r.to_str().unwrap().to_owned(), h.to_str().unwrap().to_owned())
+}
+
+#[test]
+fn score_through_a_pipe_draws_no_bar() {
+    let dir = temp_dir("bar-pipe");
+    let (r, h) = generated_corpus(&dir);
+    let out = mtgauge(&["score", "--ref", &r, "--hyp", &h]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(String::from_utf8_lossy(&out.stderr), "", "stderr is not a terminal: no bar");
+    assert!(String::from_utf8_lossy(&out.stdout).contains(&format!("{BAR_SEGMENTS} segments")));
+}
+
+/// The pane's line that starts with `label [` (the bar's last drawing).
+fn bar_line(screen: &str, label: &str) -> String {
+    screen.lines().find(|l| l.starts_with(&format!("{label} ["))).unwrap_or_else(|| panic!("no {label} bar on the screen:\n{screen}")).trim_end().to_owned()
+}
+
+/// The bar's characters between its brackets.
+fn filling(line: &str) -> &str {
+    line.split_once('[').and_then(|(_, r)| r.split_once(']')).map_or("", |(b, _)| b)
+}
+
+#[test]
+fn score_on_a_terminal_draws_a_bar_with_rate_and_time() {
+    if tmux().is_none() {
+        return;
+    }
+    let dir = temp_dir("bar-tty");
+    let (r, h) = generated_corpus(&dir);
+    let (exit, write_exit) = exit_file(&dir);
+    let stdout = dir.join("stdout.txt");
+    // stdout into a file, stderr on the pane's terminal.
+    let command = format!("'{}' score --ref '{r}' --hyp '{h}' > '{}'{write_exit}; sleep 60", env!("CARGO_BIN_EXE_mtgauge"), stdout.display());
+    let pane = Pane::start("score", &command);
+    assert_eq!(wait_exit(&exit), "EXIT=0\n");
+    let screen = pane.capture();
+    let line = bar_line(&screen, "scoring");
+    assert!(!filling(&line).is_empty() && filling(&line).chars().all(|c| c == '#'), "a full bar at the end: {line}");
+    let counts = format!("] {BAR_SEGMENTS}/{BAR_SEGMENTS} segments, ");
+    assert!(line.contains(&counts) && line.contains(" segments/s, took 0:"), "{line}");
+    // The bar does not change what is printed on stdout.
+    let piped = mtgauge(&["score", "--ref", &r, "--hyp", &h]);
+    assert_eq!(std::fs::read(&stdout).unwrap(), piped.stdout);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn send_on_a_terminal_draws_a_bar_over_acknowledged_segments() {
+    if tmux().is_none() {
+        return;
+    }
+    let dir = temp_dir("send-tty");
+    let (server, _) = server_with_v7(&dir).await;
+    let (exit, write_exit) = exit_file(&dir);
+    let p = |n: &str| dir.join(n).to_str().unwrap().to_owned();
+    let command = format!(
+        "'{}' send --server {} --session v8 --create --refset ferry --hyp '{}' --ids '{}' --batch 20{write_exit}; sleep 60",
+        env!("CARGO_BIN_EXE_mtgauge"),
+        server.grpc,
+        p("hyp.model-v7.de.txt"),
+        p("ids.txt")
+    );
+    let pane = Pane::start("send", &command);
+    assert_eq!(wait_exit(&exit), "EXIT=0\n");
+    let screen = pane.capture();
+    let line = bar_line(&screen, "sending");
+    assert!(filling(&line).chars().all(|c| c == '#') && line.contains("] 300/300 segments, "), "{line}");
+    // The summary line follows on a line of its own.
+    assert!(screen.lines().any(|l| l.starts_with("sent 300 segments in 15 batches to session v8")), "{screen}");
+}

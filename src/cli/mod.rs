@@ -10,6 +10,7 @@ mod compare;
 pub mod demo;
 mod input;
 mod load;
+mod progress;
 mod report;
 mod rules;
 mod score;
@@ -59,7 +60,7 @@ pub struct Cli {
 #[derive(Debug, Subcommand)]
 pub enum Command {
     /// Score a hypothesis file against reference files, offline.
-    #[command(long_about = score::LONG_ABOUT)]
+    #[command(long_about = score::long_about())]
     Score(score::ScoreArgs),
     /// Compare two systems' hypothesis files on the same references, offline: the difference of
     /// their scores, its paired-bootstrap interval and an approximate-randomization p-value.
