@@ -19,13 +19,20 @@ fn mtgauge(args: &[&str]) -> std::process::Output {
     Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(args).output().unwrap()
 }
 
-/// A server with the demo reference set and session `v7` holding the demo's 300 segments of
-/// model v7; the server and the session's cumulative BLEU as `status --json` reports it.
+/// Alert rules of the test server: one on `v7` whose threshold its BLEU (about 57) is far
+/// below, so that it fires once evaluated.
+const ALERT_RULES: &str = "alert_eval_seconds = 1\n\n[[alert]]\nname = \"floor\"\nsession = \"v7\"\nmetric = \"bleu\"\nwhen = \"below\"\nthreshold = 90.0\nmin_segments = 100\nfor_seconds = 0\n";
+
+/// A server with the demo reference set, the alert rules [`ALERT_RULES`] and session `v7`
+/// holding the demo's 300 segments of model v7; the server and the session's cumulative BLEU as
+/// `status --json` reports it.
 async fn server_with_v7(dir: &Path) -> (Server, f64) {
     demo_files(dir);
     let ids: String = demo_segments().iter().map(|s| s.id.clone() + "\n").collect();
     std::fs::write(dir.join("ids.txt"), ids).unwrap();
-    let server = Server::start(&["--refset", &format!("ferry={}", dir.join("refs.jsonl").display())]);
+    let config = dir.join("mtgauge.toml");
+    std::fs::write(&config, ALERT_RULES).unwrap();
+    let server = Server::start(&["--refset", &format!("ferry={}", dir.join("refs.jsonl").display()), "--config", config.to_str().unwrap()]);
     server.wait_serving().await;
     let p = |n: &str| dir.join(n).to_str().unwrap().to_owned();
     let sent = mtgauge(&["send", "--server", &server.grpc, "--session", "v7", "--create", "--refset", "ferry", "--hyp", &p("hyp.model-v7.de.txt"), "--ids", &p("ids.txt")]);
@@ -60,9 +67,12 @@ async fn watch_through_a_pipe_prints_plain_lines_and_stops_on_ctrl_c() {
     });
     let mut lines = Vec::new();
     let deadline = Instant::now() + VIEW_TIMEOUT;
-    while lines.len() < 2 {
+    // Until two refreshes came and the daemon's first evaluation of the rule (every second)
+    // shows it firing.
+    let firing = |l: &String| l.ends_with("; alerts FIRING floor");
+    while lines.len() < 2 || !lines.iter().any(firing) {
         let left = deadline.saturating_duration_since(Instant::now());
-        lines.push(String::from_utf8(rx.recv_timeout(left).unwrap_or_else(|_| panic!("two refreshes within {VIEW_TIMEOUT:?}; got {lines:?}"))).unwrap());
+        lines.push(String::from_utf8(rx.recv_timeout(left).unwrap_or_else(|_| panic!("two refreshes and the alert firing within {VIEW_TIMEOUT:?}; got {lines:?}"))).unwrap());
     }
     // Ctrl-C is SIGINT to the process (POSIX: the terminal's interrupt character sends it).
     assert!(Command::new("kill").args(["-INT", &child.id().to_string()]).status().unwrap().success());
@@ -77,6 +87,8 @@ async fn watch_through_a_pipe_prints_plain_lines_and_stops_on_ctrl_c() {
         assert!(l.contains(" v7: 300 segments, ") && l.contains(&score) && l.contains("unknown 0.0%, rejected 0.0% of 300 items"), "{l}");
         assert!(l.starts_with("20") && l.as_bytes()[19] == b'Z', "time stamp first: {l}");
         assert!(l.contains(if k == 0 { "measuring segments/s" } else { " 0.0 segments/s" }), "{l}");
+        // The demo's sources come with its segments: the guards checked every item.
+        assert!(l.contains("; guards 300 checked, flagged: "), "{l}");
     }
 }
 
@@ -169,6 +181,9 @@ async fn watch_on_a_terminal_redraws_the_block_and_exits_on_ctrl_c() {
     let first = pane.wait_for("the session block with its sparkline", |s| s.contains("v7 (reference set ferry): 300 segments") && spark(s));
     assert!(first.contains(&format!("cumulative {bleu:.2} (")), "{first}");
     assert!(first.contains("unknown 0.0%, rejected 0.0% of 300 items"), "{first}");
+    assert!(first.contains("  guards   300 checked, flagged: "), "{first}");
+    // The rule's state as the daemon evaluates it (every second): firing, redrawn in place.
+    pane.wait_for("the alert firing", |s| s.contains("  alerts   FIRING floor"));
     // Redrawn in place: the second refresh measured a rate, and the screen holds one header.
     let second = pane.wait_for("a second refresh", |s| s.contains(" 0.0 segments/s"));
     assert_eq!(second.matches("mtgauge status --watch:").count(), 1, "{second}");
