@@ -69,7 +69,7 @@ pub struct StatusArgs {
     /// standard output is not a terminal, one plain line per session per refresh instead.
     #[arg(long, conflicts_with = "json")]
     pub watch: bool,
-    /// With --watch: seconds between refreshes (whole seconds, at least 1).
+    /// With --watch, how many seconds pass between refreshes (a whole number, at least 1).
     #[arg(long, value_name = "SECONDS", default_value_t = super::watch::DEFAULT_WATCH_SECONDS, requires = "watch")]
     pub every: u64,
 }
