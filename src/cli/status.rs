@@ -37,7 +37,8 @@ hour's score per minute (its first metric, from the daemon's history; a dot mark
 without segments, and the height spans at least {} points so that noise does not look like a \
 collapse), segments per second since the previous refresh, the shares of unknown and rejected \
 items, guard counts and alert states. When standard output is not a terminal (a pipe, a file), \
-it prints one plain line per session per refresh instead, starting with the UTC time.",
+it prints one plain line per session per refresh instead, starting with the UTC time. Ctrl-C \
+(or SIGTERM) ends it with the cursor shown again and exit code 0.",
         super::watch::DEFAULT_WATCH_SECONDS,
         super::watch::SPARK_MIN_SPAN,
     )

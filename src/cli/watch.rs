@@ -57,13 +57,13 @@ struct View<'a> {
     spark: Option<Spark>,
 }
 
-/// `status --watch`: refresh every `a.every` seconds until Ctrl-C.
+/// `status --watch`: refresh every `a.every` seconds until Ctrl-C (or SIGTERM).
 pub(super) async fn run(fleet: &Fleet, a: &StatusArgs) -> Result<(), CliError> {
     if a.every == 0 {
         return Err(CliError::Usage("--every must be at least 1 second".into()));
     }
     let terminal = std::io::stdout().is_terminal();
-    let mut stop = std::pin::pin!(tokio::signal::ctrl_c());
+    let mut stop = std::pin::pin!(stop_signal());
     let mut out = std::io::stdout();
     let mut last_counts: HashMap<String, (Instant, u64)> = HashMap::new();
     let mut last_frame: Option<Vec<String>> = None;
@@ -110,6 +110,22 @@ pub(super) async fn run(fleet: &Fleet, a: &StatusArgs) -> Result<(), CliError> {
         // The reader of a pipe went away (`| head`): nothing more to show.
         Err(CliError::Output { source, .. }) if source.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
         r => r,
+    }
+}
+
+/// Ctrl-C (SIGINT), or SIGTERM (`kill`): either ends the watch the same clean way. Never
+/// resolves when no handler can be installed (the default actions then stay).
+async fn stop_signal() {
+    #[cfg(unix)]
+    if let Ok(mut term) = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+        tokio::select! {
+            r = tokio::signal::ctrl_c() => if r.is_err() { term.recv().await; },
+            _ = term.recv() => {}
+        }
+        return;
+    }
+    if tokio::signal::ctrl_c().await.is_err() {
+        std::future::pending::<()>().await;
     }
 }
 
