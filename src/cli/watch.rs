@@ -106,11 +106,8 @@ pub(super) async fn run(fleet: &Fleet, a: &StatusArgs) -> Result<(), CliError> {
         // Ctrl-C leaves the cursor wherever the terminal echoed it: show it again, end the line.
         let _ = put(&mut out, &format!("{SHOW_CURSOR}\n"));
     }
-    match result {
-        // The reader of a pipe went away (`| head`): nothing more to show.
-        Err(CliError::Output { source, .. }) if source.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
-        r => r,
-    }
+    // A reader that goes away (`| head`) ends the process by SIGPIPE before this (main.rs).
+    result
 }
 
 /// Ctrl-C (SIGINT), or SIGTERM (`kill`): either ends the watch the same clean way. Never
@@ -154,7 +151,12 @@ async fn refresh(fleet: &Fleet, a: &StatusArgs, terminal: bool, last_counts: &mu
         let spark = if terminal { Some(spark(fleet, &s.report.session, a.partial).await) } else { None };
         views.push(View { shown: s, config, rate, spark });
     }
-    Ok(if terminal { views.iter().flat_map(|v| block(v).into_iter().chain([String::new()])).collect() } else { views.iter().map(line).collect() })
+    Ok(match (terminal, views.is_empty()) {
+        (true, _) => views.iter().flat_map(|v| block(v).into_iter().chain([String::new()])).collect(),
+        // A line each refresh even then: the watch is alive and the server answers.
+        (false, true) => vec!["no sessions".to_owned()],
+        (false, false) => views.iter().map(line).collect(),
+    })
 }
 
 /// Segments per second since the previous refresh.
