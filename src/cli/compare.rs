@@ -8,7 +8,8 @@ use std::sync::Arc;
 use clap::Args;
 use serde_json::{json, Value};
 
-use super::input::{display_name, parse_refset, read_all, read_bytes, RefFormat, PROGRESS_MIN_SEGMENTS};
+use super::input::{display_name, parse_refset, read_all, read_bytes, RefFormat};
+use super::progress::PROGRESS_MIN_SEGMENTS;
 use super::score::score_systems;
 use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
 use crate::client::fleet::{identify, Endpoint, Fleet};

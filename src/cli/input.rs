@@ -1,17 +1,11 @@
-//! Reading input files and drawing progress for the offline commands.
+//! Reading input files for the offline commands.
 
-use std::io::{Read, Write};
-use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
-use std::time::Duration;
+use std::io::Read;
 
 use crate::refs::{self, InputError, RefSet};
 
 /// Name used for standard input in messages.
 pub const STDIN_NAME: &str = "<stdin>";
-/// Inputs with at least this many segments get a progress bar (when stderr is a terminal).
-pub const PROGRESS_MIN_SEGMENTS: usize = 20_000;
-/// How often the progress bar is redrawn.
-const PROGRESS_INTERVAL: Duration = Duration::from_millis(200);
 
 /// Read a whole file (`-` is standard input).
 pub fn read_bytes(path: &str) -> Result<Vec<u8>, InputError> {
@@ -70,48 +64,4 @@ pub fn parse_refset(paths: &[String], format: RefFormat, bytes: &[Vec<u8>], sour
         refs::LoadError::NoReferences => InputError::file("--ref", "no reference file given"),
         refs::LoadError::Set { file, message } => InputError::file(&file, message),
     })
-}
-
-/// A progress line on stderr, redrawn from a background thread while work runs.
-pub struct Progress<'a> {
-    done: &'a AtomicUsize,
-    total: usize,
-    stop: AtomicBool,
-}
-
-impl<'a> Progress<'a> {
-    /// Progress over `total` units counted in `done`.
-    pub fn new(done: &'a AtomicUsize, total: usize) -> Self {
-        Progress { done, total, stop: AtomicBool::new(false) }
-    }
-
-    /// Run `work` while drawing progress when `show` is set.
-    pub fn run<T: Send>(&self, show: bool, label: &str, work: impl FnOnce() -> T + Send) -> T {
-        if !show {
-            return work();
-        }
-        std::thread::scope(|s| {
-            s.spawn(|| {
-                while !self.stop.load(Ordering::Relaxed) {
-                    self.draw(label);
-                    std::thread::sleep(PROGRESS_INTERVAL);
-                }
-                self.draw(label);
-                eprintln!();
-            });
-            let out = work();
-            self.stop.store(true, Ordering::Relaxed);
-            out
-        })
-    }
-
-    fn draw(&self, label: &str) {
-        const WIDTH: usize = 30;
-        let done = self.done.load(Ordering::Relaxed).min(self.total);
-        let filled = (done * WIDTH).checked_div(self.total).unwrap_or(WIDTH);
-        let bar: String = "#".repeat(filled) + &"-".repeat(WIDTH - filled);
-        let mut err = std::io::stderr().lock();
-        let _ = write!(err, "\r{label} [{bar}] {done}/{}", self.total);
-        let _ = err.flush();
-    }
 }

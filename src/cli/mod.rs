@@ -10,6 +10,7 @@ mod compare;
 pub mod demo;
 mod input;
 mod load;
+mod progress;
 mod report;
 mod rules;
 mod score;
@@ -19,6 +20,7 @@ mod serve;
 mod status;
 mod token;
 mod tokenize;
+mod watch;
 
 use std::io::IsTerminal;
 use std::process::ExitCode;
@@ -58,7 +60,7 @@ pub struct Cli {
 #[derive(Debug, Subcommand)]
 pub enum Command {
     /// Score a hypothesis file against reference files, offline.
-    #[command(long_about = score::LONG_ABOUT)]
+    #[command(long_about = score::long_about())]
     Score(score::ScoreArgs),
     /// Compare two systems' hypothesis files on the same references, offline: the difference of
     /// their scores, its paired-bootstrap interval and an approximate-randomization p-value.
@@ -75,7 +77,7 @@ pub enum Command {
     #[command(long_about = send::LONG_ABOUT)]
     Send(send::SendArgs),
     /// Show the scores of a running server's sessions.
-    #[command(long_about = status::LONG_ABOUT)]
+    #[command(long_about = status::long_about())]
     Status(status::StatusArgs),
     /// Make a bearer token and the line for the server's tokens file.
     #[command(long_about = token::LONG_ABOUT)]

@@ -190,7 +190,7 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
 pub const MAX_HISTORY_MESSAGE_BYTES: usize = 256 << 20;
 
 /// One server's history of the session.
-async fn get_history(e: &Endpoint, req: pb::GetHistoryRequest) -> Result<pb::HistoryReport, ClientError> {
+pub(super) async fn get_history(e: &Endpoint, req: pb::GetHistoryRequest) -> Result<pb::HistoryReport, ClientError> {
     let mut client = pb::history_client::HistoryClient::new(e.connect()?).max_decoding_message_size(MAX_HISTORY_MESSAGE_BYTES);
     Ok(client.get_history(req).await.map_err(|s| ClientError::call("get history", s))?.into_inner())
 }
@@ -199,7 +199,7 @@ async fn get_history(e: &Endpoint, req: pb::GetHistoryRequest) -> Result<pb::His
 /// added up (exact; never an average of scores), the score and interval derived from the sums.
 /// Refused when a replica does not answer (unless `partial`) or when the replicas score the
 /// session differently. Also returns a footer line naming the replicas.
-async fn fleet_history(endpoints: &[Endpoint], req: pb::GetHistoryRequest, partial: bool) -> Result<(pb::HistoryReport, ScoreConfig, String), CliError> {
+pub(super) async fn fleet_history(endpoints: &[Endpoint], req: pb::GetHistoryRequest, partial: bool) -> Result<(pb::HistoryReport, ScoreConfig, String), CliError> {
     let mut answers: Vec<(String, pb::HistoryReport)> = Vec::new();
     let (mut missing, mut without) = (Vec::new(), Vec::new());
     for e in endpoints {

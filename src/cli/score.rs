@@ -7,7 +7,8 @@ use std::sync::Arc;
 use clap::Args;
 use serde_json::{json, Value};
 
-use super::input::{display_name, parse_refset, read_all, read_bytes, resolve_format, Progress, RefFormat, PROGRESS_MIN_SEGMENTS};
+use super::input::{display_name, parse_refset, read_all, read_bytes, resolve_format, RefFormat};
+use super::progress::{Progress, PROGRESS_MIN_SEGMENTS};
 use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
 use crate::guard::{self, GuardConfig, GuardCounts, GuardScratch, LengthTally, Verdict};
 use crate::metric::resample::{self, Replicates};
@@ -20,11 +21,14 @@ use crate::report::{
     RefSetSummary, PROXY_NOTE,
 };
 
-pub(super) const LONG_ABOUT: &str = "\
+/// `score --help`: inputs, examples, how scores are computed, errors and the progress bar.
+pub(super) fn long_about() -> String {
+    format!(
+        "\
 Score a hypothesis file against reference files, offline.
 
 References are line-aligned plain text (one --ref per reference stream; segment id = line number \
-from 1) or one JSONL file of {\"id\": ..., \"source\": ..., \"refs\": [...]} objects (line i of the \
+from 1) or one JSONL file of {{\"id\": ..., \"source\": ..., \"refs\": [...]}} objects (line i of the \
 hypothesis file is then scored against record i). Lines end with \\n (a \\r before it is dropped).
 
 Examples:
@@ -39,7 +43,13 @@ length, effective reference length), never averaged over sentences; chrF from su
 statistics. --interval adds a bootstrap percentile interval to each score: replicates that \
 reweight the segments by Poisson(1) weights, a fixed function of segment id, replicate and seed \
 (the same segment gets the same weights in every run). Errors (unreadable file, invalid UTF-8, line-count mismatch, malformed JSONL) print \
-one line naming the file and line, exit with code 2, and print nothing on stdout.";
+one line naming the file and line, exit with code 2, and print nothing on stdout.
+
+When stderr is a terminal, inputs of {} segments or more get a progress bar there: segments \
+done of the total, the rate and the time left (nothing is drawn when stderr is a pipe or a file).",
+        PROGRESS_MIN_SEGMENTS,
+    )
+}
 
 /// Arguments of `mtgauge score`.
 #[derive(Debug, Args)]

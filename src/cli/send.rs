@@ -6,6 +6,7 @@ use clap::Args;
 use sha2::{Digest, Sha256};
 
 use super::input::{display_name, read_bytes};
+use super::progress::Bar;
 use super::{stderr_is_terminal, CliError, ScoringArgs};
 use crate::client::fleet::{Fleet, DEFAULT_REPLICA_WAIT};
 use crate::client::{retryable, Backoff, ClientError, MAX_ATTEMPTS};
@@ -42,7 +43,10 @@ on each replica.
 
 Connection settings come from the environment: MTGAUGE_TOKEN (bearer token), MTGAUGE_TLS_CA \
 (server CA, PEM; or use an https:// URL), MTGAUGE_TLS_CERT and MTGAUGE_TLS_KEY (client \
-certificate for mutual TLS).";
+certificate for mutual TLS).
+
+When stderr is a terminal (and without --json), a progress bar there shows the segments \
+acknowledged of the total, segments per second and the time left.";
 
 /// `send` options.
 #[derive(Debug, Args)]
@@ -253,10 +257,12 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
         guard_settings: a.guard_settings.clone(),
         external: a.external.iter().map(crate::pb::external::spec_to_pb).collect(),
     });
-    let (totals, replica) = rt.block_on(stream_all(&fleet, &producer, create.as_ref(), &batches, show))?;
-    if show {
-        eprintln!();
+    let mut bar = show.then(|| Bar::new("sending", "segments", sent));
+    let streamed = rt.block_on(stream_all(&fleet, &producer, create.as_ref(), &batches, bar.as_mut()));
+    if let Some(b) = &mut bar {
+        b.end();
     }
+    let (totals, replica) = streamed?;
     let line = if a.json {
         serde_json::json!({
             "session": a.session, "producer": producer, "replica": replica, "batches": totals.batches, "scored": totals.scored,
@@ -285,11 +291,13 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
 
 /// Stream every batch to the producer's replica (creating the session there first when
 /// asked), resuming after the last acknowledged batch when a call fails (the replica's
-/// per-producer sequence marks make a resent batch count once). Returns the totals and the
-/// replica's name (None: a lone server).
-async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSessionRequest>, batches: &[pb::ScoreBatch], show: bool) -> Result<(Totals, Option<String>), CliError> {
+/// per-producer sequence marks make a resent batch count once), drawing the acknowledged
+/// items on `bar`. Returns the totals and the replica's name (None: a lone server).
+async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSessionRequest>, batches: &[pb::ScoreBatch], mut bar: Option<&mut Bar>) -> Result<(Totals, Option<String>), CliError> {
     let mut totals = Totals::default();
     let mut next = 0usize;
+    // Items of the acknowledged batches.
+    let mut done = 0usize;
     let mut backoff = Backoff::default();
     let mut failures = 0u32;
     let mut route = fleet.route(producer).await?;
@@ -317,9 +325,10 @@ async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSes
                     totals.guards += crate::pb::convert::guard_tally_from_pb(g);
                 }
                 totals.external += u64::from(ack.external);
+                done += batches.get(next).map_or(0, |b| b.items.len());
                 next += 1;
-                if show {
-                    eprint!("\r{} / {} batches acknowledged", next, batches.len());
+                if let Some(b) = bar.as_deref_mut() {
+                    b.update(done);
                 }
             }
             Ok::<(), (&str, tonic::Status)>(())
@@ -339,8 +348,8 @@ async fn stream_all(fleet: &Fleet, producer: &str, create: Option<&pb::CreateSes
         if failures >= MAX_ATTEMPTS {
             return Err(CliError::Usage(format!("gave up after {MAX_ATTEMPTS} attempts ({what}: {last}); {next} of {} batches acknowledged (re-run the same command to resume)", batches.len())));
         }
-        if show {
-            eprintln!();
+        if let Some(b) = bar.as_deref_mut() {
+            b.end();
         }
         let (delay, attempt) = (backoff.delay().as_secs_f64(), failures + 1);
         if what == "create session" {

@@ -16,7 +16,10 @@ use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
 use crate::metric::resample::Replicates;
 use crate::metric::{CorpusStats, ScoreConfig};
 
-pub(super) const LONG_ABOUT: &str = "\
+/// `status --help`: what it shows, fleets, and the watch view (its defaults from the constants).
+pub(super) fn long_about() -> String {
+    format!(
+        "\
 The scores of a running server's sessions: cumulative and recent statistics, scores with their \
 bootstrap intervals, alert states. External metrics (values the producer sent with its items) \
 show their mean and interval since creation or reset (JSON `external`) and over the last \
@@ -29,7 +32,20 @@ replicate sums added up (exact, never an average of scores), with how many repli
 When one does not answer, status refuses to show a fleet figure (it would leave out what that \
 replica counted) unless --partial is given. `recent` is then the sum of each replica's own \
 recent window. Alert states are each daemon's own (see `status --server` of one replica); \
-fleet alerts come from the Prometheus rules `mtgauge rules` renders.";
+fleet alerts come from the Prometheus rules `mtgauge rules` renders.
+
+--watch keeps showing the sessions until Ctrl-C, redrawn in place every --every seconds (default \
+{} seconds): per session the cumulative and recent scores with their intervals, a sparkline of the last \
+hour's score per minute (its first metric, from the daemon's history; a dot marks a minute \
+without segments, and the height spans at least {} points so that noise does not look like a \
+collapse), segments per second since the previous refresh, the shares of unknown and rejected \
+items, guard counts and alert states. When standard output is not a terminal (a pipe, a file), \
+it prints one plain line per session per refresh instead, starting with the UTC time. Ctrl-C \
+(or SIGTERM) ends it with the cursor shown again and exit code 0.",
+        super::watch::DEFAULT_WATCH_SECONDS,
+        super::watch::SPARK_MIN_SPAN,
+    )
+}
 
 /// `status` options.
 #[derive(Debug, Args)]
@@ -51,6 +67,15 @@ pub struct StatusArgs {
     /// Confidence level of the intervals, strictly between 0 and 1.
     #[arg(long, value_name = "L", default_value_t = DEFAULT_LEVEL)]
     pub level: f64,
+    /// Keep watching until Ctrl-C: one block per session, redrawn in place every --every
+    /// seconds, with scores and intervals, a sparkline of the last hour's score per minute,
+    /// segments per second, unknown and rejected shares, guard counts and alert states. When
+    /// standard output is not a terminal, one plain line per session per refresh instead.
+    #[arg(long, conflicts_with = "json")]
+    pub watch: bool,
+    /// With --watch, how many seconds pass between refreshes (a whole number, at least 1).
+    #[arg(long, value_name = "SECONDS", default_value_t = super::watch::DEFAULT_WATCH_SECONDS, requires = "watch")]
+    pub every: u64,
 }
 
 /// `stats_json` of a window with each score's interval (as in `score --json`), and the human
@@ -192,16 +217,11 @@ pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
     }
     let fleet = Fleet::parse(&a.server, std::time::Duration::ZERO, false)?;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
-    let rendered = rt.block_on(async {
-        if let Some(one) = fleet.lone().await? {
-            let mut out = Vec::new();
-            for (info, r) in reports(&one, a.session.as_deref(), a.level, false).await? {
-                out.push(render(&r, &info, a.level)?);
-            }
-            return Ok::<_, CliError>(out);
-        }
-        fleet_view(&fleet.endpoints().await?, &a).await
-    })?;
+    if a.watch {
+        return rt.block_on(super::watch::run(&fleet, &a));
+    }
+    let shown = rt.block_on(fetch(&fleet, a.session.as_deref(), a.level, a.partial))?;
+    let rendered = shown.iter().map(|s| rendered(s, a.level)).collect::<Result<Vec<_>, _>>()?;
     let text = if a.json {
         let v: Vec<Value> = rendered.iter().map(|(j, _)| j.clone()).collect();
         let v = if a.session.is_some() { v.into_iter().next().unwrap_or(Value::Null) } else { Value::Array(v) };
@@ -213,6 +233,33 @@ pub(super) fn run(a: StatusArgs) -> Result<(), CliError> {
     };
     print!("{text}");
     Ok(())
+}
+
+/// One session as status shows it: its description, its report (for a fleet, the replicas'
+/// reports added up) and, for a fleet, what the `fleet` JSON field and the headline say.
+pub(super) struct Shown {
+    pub info: pb::SessionInfo,
+    pub report: pb::ScoresReport,
+    pub fleet: Option<(Value, String)>,
+}
+
+/// The sessions of one server or a fleet (or the one asked for), each with its report.
+pub(super) async fn fetch(fleet: &Fleet, session: Option<&str>, level: f64, partial: bool) -> Result<Vec<Shown>, CliError> {
+    if let Some(one) = fleet.lone().await? {
+        return Ok(reports(&one, session, level, false).await?.into_iter().map(|(info, report)| Shown { info, report, fleet: None }).collect());
+    }
+    fleet_view(&fleet.endpoints().await?, session, level, partial).await
+}
+
+/// The JSON and human text of one shown session.
+fn rendered(s: &Shown, level: f64) -> Result<(Value, String), CliError> {
+    let (mut j, text) = render(&s.report, &s.info, level)?;
+    let Some((fleet, head)) = &s.fleet else { return Ok((j, text)) };
+    if let Value::Object(o) = &mut j {
+        o.insert("fleet".into(), fleet.clone());
+        o.insert("alerts".into(), Value::Array(Vec::new()));
+    }
+    Ok((j, head.clone() + &text))
 }
 
 /// Every session of one server (or the one asked for) with its report.
@@ -239,19 +286,19 @@ struct ReplicaReports {
 }
 
 /// Every replica's reports summed per session: the fleet figures.
-async fn fleet_view(endpoints: &[Endpoint], a: &StatusArgs) -> Result<Vec<(Value, String)>, CliError> {
+async fn fleet_view(endpoints: &[Endpoint], session: Option<&str>, level: f64, partial: bool) -> Result<Vec<Shown>, CliError> {
     let mut answered = Vec::new();
     let mut missing = Vec::new();
     for e in endpoints {
         let name = identify(e.clone()).await.ok().map(|id| id.replica).filter(|n| !n.is_empty()).unwrap_or_else(|| e.url.clone());
-        match reports(e, a.session.as_deref(), a.level, true).await {
+        match reports(e, session, level, true).await {
             Ok(sessions) => answered.push(ReplicaReports { name, sessions }),
             // This replica has no such session: it counted nothing of it.
-            Err(ClientError::Call { status, .. }) if status.code() == tonic::Code::NotFound && a.session.is_some() => answered.push(ReplicaReports { name, sessions: Vec::new() }),
+            Err(ClientError::Call { status, .. }) if status.code() == tonic::Code::NotFound && session.is_some() => answered.push(ReplicaReports { name, sessions: Vec::new() }),
             Err(err) => missing.push(format!("{} ({err})", e.url)),
         }
     }
-    if !missing.is_empty() && !a.partial {
+    if !missing.is_empty() && !partial {
         return Err(CliError::Usage(format!(
             "{} of {} replicas answered; no answer from {}: a fleet figure would leave out what it counted (--partial shows the sum of those that answered)",
             answered.len(), endpoints.len(), missing.join(", ")
@@ -266,31 +313,26 @@ async fn fleet_view(endpoints: &[Endpoint], a: &StatusArgs) -> Result<Vec<(Value
         }
     }
     if names.is_empty() {
-        if let Some(s) = &a.session {
+        if let Some(s) = session {
             return Err(CliError::Usage(format!("no replica has a session named '{s}'")));
         }
     }
     let mut out = Vec::new();
     for name in names {
         let parts: Vec<(&str, &pb::SessionInfo, &pb::ScoresReport)> = answered.iter().flat_map(|r| r.sessions.iter().filter(|(i, _)| i.name == name).map(move |(i, rep)| (r.name.as_str(), i, rep))).collect();
-        let (info, merged) = merge(&parts, a.level)?;
-        let (mut j, text) = render(&merged, &info, a.level)?;
+        let (info, report) = merge(&parts, level)?;
         let holders: Vec<&str> = parts.iter().map(|(n, _, _)| *n).collect();
         let fleet = json!({
             "replicas": endpoints.len(), "answered": answered.iter().map(|r| r.name.as_str()).collect::<Vec<_>>(),
             "missing": missing, "partial": !missing.is_empty(), "with_session": holders,
             "recent": "the sum of each replica's own recent window",
         });
-        if let Value::Object(o) = &mut j {
-            o.insert("fleet".into(), fleet);
-            o.insert("alerts".into(), Value::Array(Vec::new()));
-        }
         let head = format!(
             "fleet: {} of {} replicas answered{}; session on {} ({}); recent = each replica's window summed\n",
             answered.len(), endpoints.len(), if missing.is_empty() { String::new() } else { format!(" (PARTIAL: no answer from {})", missing.join(", ")) },
             holders.len(), holders.join(", ")
         );
-        out.push((j, head + &text));
+        out.push(Shown { info, report, fleet: Some((fleet, head)) });
     }
     Ok(out)
 }
