@@ -71,6 +71,11 @@ segments/s and as the ratio of the time with replicates over the time alone.
       the 1-thread BLEU loop over the demo scenario's 900 (source, hypothesis) items, alone and \
 with every item also checked by the reference-free guards (German target; and with the guard \
 setting language-id=off, which keeps the script check), as segments/s and the time the guards add.
+  external metrics
+      the same loop with every item also carrying two external values (a 0-1 score with four \
+decimals, a lower-is-better rate with two), checked, converted to fixed point and summed per \
+batch of 64, without and with the daemon's 200 bootstrap replicates: segments/s and the \
+microseconds the values add to an item.
   language identifiers
       the two identifiers the language guard uses (whatlang 0.18.0, the thorough one; whichlang \
 0.1.1, the fast screen) on the demo's German hypotheses and English sources: microseconds per \
@@ -344,6 +349,8 @@ pub(super) fn run(a: BenchArgs) -> Result<(), CliError> {
     log("timing the reference-free guards on the demo scenario".into());
     figures["guards"] = super::bench_guards::guard_cost();
     figures["language_identifiers"] = super::bench_guards::identifier_figures();
+    log("timing external segment metrics on the demo scenario".into());
+    figures["external"] = super::bench_external::external_cost();
     let files = CorpusFiles::write(&corpus)?;
     log(format!("timing the whole `mtgauge score` command on {threads} threads"));
     let (e2e_bleu, e2e_bleu_worst, printed) = end_to_end(&files, "bleu", threads)?;
@@ -442,6 +449,7 @@ fn human(f: &Value) -> String {
     s += "\n";
     s += &super::bench_guards::guard_cost_line(&f["guards"]);
     s += &super::bench_guards::identifier_lines(&f["language_identifiers"]);
+    s += &super::bench_external::external_cost_line(&f["external"]);
     let m1 = &f["memory_bytes_per_segment_1_ref"];
     let m2 = &f["memory_bytes_per_segment_2_refs"];
     s += &format!(

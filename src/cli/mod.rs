@@ -5,6 +5,7 @@
 
 mod alert_bench;
 mod bench;
+mod bench_external;
 mod bench_guards;
 mod compare;
 pub mod demo;
