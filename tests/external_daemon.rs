@@ -377,3 +377,70 @@ async fn the_recent_window_holds_the_last_items_values() {
     SessionsClient::new(ch.clone()).reset(pb::ResetSessionRequest { name: "ferry-v8".into() }).await.unwrap();
     assert_eq!(recent_external(&ch, "ferry-v8").await[0].count, 0);
 }
+
+/// `Compare` of two sessions pairs their external values by item key: B's are A's plus 0.05
+/// and some noise, sent in another order and other batches, with items of A's that B lacks.
+/// The difference is the exact mean difference over the shared keys (computed here from the
+/// integers sent), its interval holds it; sessions with no key in common have nothing to
+/// compare.
+#[tokio::test]
+async fn compare_pairs_external_values_by_item_key() {
+    let dir = temp_dir("external-compare");
+    demo_files(&dir);
+    let server = Server::start(&["--refset", &format!("ferry={}", dir.join("refs.jsonl").display())]);
+    let ch = server.wait_serving().await;
+    for s in ["ferry-v8", "ferry-v9", "other-calls"] {
+        create(&ch, s).await;
+    }
+    let mut rng = SplitMix64::new(31);
+    // Six decimals exactly: k / 10^6 reads back as that decimal, so its fixed point is k.
+    let a: Vec<i64> = (0..240).map(|_| rng.below(900_001) as i64).collect();
+    let b: Vec<i64> = a.iter().map(|&x| x + 50_000 + rng.below(40_001) as i64 - 20_000).collect();
+    let item = |key: String, k: i64| pb::ScoreItem { item_key: key, external: [("qe".to_string(), k as f64 / 1e6)].into_iter().collect(), values_only: true, ..Default::default() };
+    let mut scoring = ScoringClient::new(ch.clone());
+    let items_a: Vec<pb::ScoreItem> = a.iter().enumerate().map(|(i, &k)| item(format!("call-{i}"), k)).collect();
+    for (n, chunk) in items_a.chunks(64).enumerate() {
+        scoring.submit(batch("ferry-v8", "a", n as u64 + 1, chunk.to_vec())).await.unwrap();
+    }
+    // B holds the first 200 keys only, newest first, in batches of 30.
+    let items_b: Vec<pb::ScoreItem> = (0..200).rev().map(|i| item(format!("call-{i}"), b[i])).collect();
+    for (n, chunk) in items_b.chunks(30).enumerate() {
+        scoring.submit(batch("ferry-v9", "b", n as u64 + 1, chunk.to_vec())).await.unwrap();
+    }
+    let others: Vec<pb::ScoreItem> = (0..50).map(|i| item(format!("other-{i}"), a[i])).collect();
+    scoring.submit(batch("other-calls", "c", 1, others)).await.unwrap();
+
+    let compare = |x: &str, y: &str| pb::CompareRequest { session_a: x.into(), session_b: y.into(), resamples: Some(400), trials: Some(3000), ..Default::default() };
+    let r = scoring.compare(compare("ferry-v8", "ferry-v9")).await.unwrap().into_inner();
+    let qe = r.external.iter().find(|e| e.metric == "qe").expect("qe compared");
+    let (sa, sb): (i64, i64) = (a[..200].iter().sum(), b[..200].iter().sum());
+    let want = (sa - sb) as f64 / (200.0 * 1e6);
+    assert_eq!((qe.items, qe.difference), (200, Some(want)), "{qe:?}");
+    assert!((-0.055..-0.045).contains(&want), "the shift of 0.05 with noise averaging near 0: {want}");
+    assert_eq!((qe.a, qe.b), (Some(sa as f64 / 200e6), Some(sb as f64 / 200e6)));
+    let iv = qe.interval.as_ref().expect("paired interval");
+    assert!(iv.low < want && want < iv.high && iv.high < 0.0, "{iv:?}");
+    assert_eq!(qe.p_value, Some(1.0 / 3001.0), "no trial comes as far apart: {qe:?}");
+    // edit_rate is declared by both but no item carries it.
+    let rate = r.external.iter().find(|e| e.metric == "edit_rate").unwrap();
+    assert_eq!((rate.items, rate.difference, rate.note.as_str()), (0, None, mtgauge::external::compare::NO_COMMON_ITEMS));
+
+    // No key in common.
+    let r = scoring.compare(compare("ferry-v8", "other-calls")).await.unwrap().into_inner();
+    let qe = &r.external[0];
+    assert_eq!((qe.metric.as_str(), qe.items, qe.difference, qe.interval.is_none(), qe.note.as_str()), ("qe", 0, None, true, mtgauge::external::compare::NO_COMMON_ITEMS));
+
+    // The command line shows both.
+    const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
+    let run = |args: &[&str]| {
+        let out = std::process::Command::new(BIN).args(["compare", "--server", &server.grpc, "--session", "ferry-v8", "--session"]).args(args).output().unwrap();
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let j: serde_json::Value = serde_json::from_str(&run(&["ferry-v9", "--json"])).unwrap();
+    assert_eq!((j["external"][0]["metric"].as_str(), j["external"][0]["items"].as_u64(), j["external"][0]["difference"].as_f64()), (Some("qe"), Some(200), Some(want)), "{j}");
+    let human = run(&["other-calls"]);
+    assert!(human.contains(&format!("qe          {}", mtgauge::external::compare::NO_COMMON_ITEMS)), "{human}");
+    let human = run(&["ferry-v9"]);
+    assert!(human.contains(&format!("A - B {want:+.6}")) && human.contains("200 items, higher is better"), "{human}");
+}

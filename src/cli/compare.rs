@@ -47,6 +47,13 @@ and differences are comparable only under the same tokenizer, references and con
 
 Live: with --server URL --session A --session B, a running server compares two of its sessions over the segments both `recent` windows hold (matched by segment id; a segment scored more than once counts with its latest score). Both sessions must score against the same reference-set version with the same configuration, else the server refuses with FAILED_PRECONDITION. The default replicates there are 200 (the daemon's).
 
+External metrics (live, one server): each external metric session A declares that session B \
+declares too (same decimals and direction) is compared over the items both recent windows hold, \
+matched by item key (else segment id; the latest value of a key counts): both means, their \
+difference A - B, its paired-bootstrap interval (the same weights, drawn from the key) and an \
+approximate-randomization p-value, as above. With no key in common it says there is nothing to \
+compare. Over a fleet they are not compared yet.
+
 A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
 replica. Each replica sends both sessions' recent windows (segment keys and integer \
 statistics); they are joined by segment and compared here with the same engine, pairing and \
@@ -208,6 +215,7 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
         }
         m.insert("config".into(), c);
         m.insert("unix_time".into(), json!(report.unix_time));
+        m.insert("external".into(), external_json(&report.external));
         if let Some(f) = &fleet_view {
             m.insert("fleet".into(), f.json.clone());
         }
@@ -229,12 +237,58 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
             lines.insert(1, format!("  {}", f.line));
         }
         lines.extend(comparison_lines(&result, "  "));
+        lines.extend(external_lines(&report.external, "  "));
         lines.push(format!("  config  {}", config.describe()));
         lines.push(PROXY_NOTE.to_owned());
         lines.join("\n") + "\n"
     };
     let mut stdout = std::io::stdout().lock();
     stdout.write_all(out.as_bytes()).and_then(|_| stdout.flush()).map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+/// The external metrics of a live comparison as JSON: per metric, the items compared, both
+/// means with their intervals, the difference with its interval and p-value, or the note why
+/// there is none.
+fn external_json(ext: &[crate::pb::ExternalComparison]) -> Value {
+    let iv = |i: &Option<crate::pb::Interval>| i.as_ref().map(|i| json!({"level": i.level, "low": i.low, "high": i.high, "resamples": i.resamples, "method": i.method, "seed": i.seed}));
+    Value::Array(
+        ext.iter()
+            .map(|e| {
+                json!({
+                    "metric": e.metric, "items": e.items,
+                    "a": {"mean": e.a, "interval": iv(&e.a_interval)},
+                    "b": {"mean": e.b, "interval": iv(&e.b_interval)},
+                    "difference": e.difference, "interval": iv(&e.interval),
+                    "p_value": e.p_value, "trials": e.trials, "extreme_trials": e.extreme_trials,
+                    "better": if e.lower_is_better { "lower" } else { "higher" },
+                    "decimals": e.decimals,
+                    "note": (!e.note.is_empty()).then_some(&e.note),
+                })
+            })
+            .collect(),
+    )
+}
+
+/// Human lines of the external metrics of a live comparison (none when no session declares
+/// any), each starting with `indent`.
+fn external_lines(ext: &[crate::pb::ExternalComparison], indent: &str) -> Vec<String> {
+    if ext.is_empty() {
+        return Vec::new();
+    }
+    let mut out = vec![format!("{indent}external metrics: mean over the items both recent windows hold, matched by item key (else segment id)")];
+    for e in ext {
+        let d = e.decimals.min(6) as usize;
+        let (Some(a), Some(b), Some(diff)) = (e.a, e.b, e.difference) else {
+            out.push(format!("{indent}  {:<12}{}", e.metric, e.note));
+            continue;
+        };
+        let signed = |x: f64| if x.abs() < 0.5 * 10f64.powi(-(d as i32)) { format!("{:.d$}", 0.0) } else { format!("{x:+.d$}") };
+        let interval = e.interval.as_ref().map_or_else(String::new, |i| format!(", interval {} .. {}", signed(i.low), signed(i.high)));
+        let p = e.p_value.map_or_else(String::new, |p| format!(", p-value {p:.4}"));
+        let better = if e.lower_is_better { "lower" } else { "higher" };
+        out.push(format!("{indent}  {:<12}A {a:.d$}  B {b:.d$}  A - B {}{interval}{p}; {} items, {better} is better", e.metric, signed(diff), e.items));
+    }
+    out
 }
 
 /// What a fleet comparison adds to the report: which replicas answered, in words and JSON.
@@ -368,6 +422,8 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
         seed: settings.seed,
         unix_time,
         note: PROXY_NOTE.to_owned(),
+        // Replicas do not send their external windows: one server compares them.
+        external: Vec::new(),
     };
     let partial_words = if missing.is_empty() { String::new() } else { format!(" (PARTIAL: no answer from {})", missing.join(", ")) };
     let line = format!(
@@ -382,6 +438,7 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
         "on_several_replicas": {"a": on_several[0], "b": on_several[1]},
         "held": {"a": held[0], "b": held[1]},
         "recent": "the union of the replicas' recent windows, each segment once (the first replica in --server order that holds it)",
+        "external": "not compared over a fleet: compare the sessions on one server for their external metrics",
     });
     Ok((report, FleetView { line, json }))
 }

@@ -29,6 +29,7 @@
 //! declared range, more values than [`MAX_EXTERNAL_METRICS`]) is rejected as a whole with a
 //! reason naming the metric ([`ValueError`]); nothing is counted from it.
 
+pub mod compare;
 pub mod replicates;
 pub mod window;
 

@@ -58,6 +58,27 @@ pub fn results_to_pb(d: &Declaration, totals: &ExternalTotals, reps: Option<&Ext
     d.specs().iter().zip(&totals.0).enumerate().map(|(i, (s, t))| result_to_pb(s, t, reps.map(|r| (r, i)), level)).collect()
 }
 
+/// A comparison of one external metric as the API writes it.
+pub fn comparison_to_pb(spec: &ExternalSpec, c: &crate::external::compare::ValueComparison, note: &str) -> pb::ExternalComparison {
+    use super::convert::interval_to_pb;
+    pb::ExternalComparison {
+        metric: spec.name.clone(),
+        items: c.items,
+        a: c.a.map(|s| s.mean),
+        b: c.b.map(|s| s.mean),
+        a_interval: c.a.and_then(|s| s.interval).map(interval_to_pb),
+        b_interval: c.b.and_then(|s| s.interval).map(interval_to_pb),
+        difference: c.difference,
+        interval: c.interval.map(interval_to_pb),
+        p_value: c.p_value,
+        trials: c.trials as u64,
+        extreme_trials: c.extreme_trials as u64,
+        lower_is_better: !spec.higher_is_better,
+        decimals: spec.decimals,
+        note: note.to_owned(),
+    }
+}
+
 /// The external results of several replicas' reports added up (a fleet figure): counts and
 /// fixed-point sums exactly, the mean and standard deviation derived from the sums. No
 /// interval: replicas do not send their external replicate sums yet. Refused when the replicas

@@ -4,6 +4,8 @@
 use std::collections::HashMap;
 
 use super::error::{Result, ServiceError};
+use crate::external::compare::{compare_values, ValueComparison, NO_COMMON_ITEMS};
+use crate::external::ExternalSpec;
 use crate::metric::compare::{compare, CompareSettings, Comparison};
 use crate::metric::resample::Replicates;
 use crate::metric::{CorpusStats, SegmentStats};
@@ -53,6 +55,43 @@ pub fn paired(a: &Session, b: &Session, settings: &CompareSettings, threads: usi
     }
     let comparison = compare(&a.spec().config, &keys, &sa, &sb, settings, threads);
     Ok(Paired { comparison, recent_a: in_a.len() as u64, recent_b: in_b.len() as u64 })
+}
+
+/// Why an external metric of session A is not compared with session B's.
+pub const NOT_IN_B: &str = "session B does not declare this metric";
+/// See [`NOT_IN_B`].
+pub const DECLARED_OTHERWISE: &str = "session B declares this metric with other decimals or direction: its values are not comparable";
+
+/// Each external metric session `a` declares, in its order, compared with session `b`'s over
+/// the items both `recent` windows hold (matched by key; a key seen more than once counts with
+/// its latest value), with why not when there is nothing to compare (CPU work: call from a
+/// blocking thread).
+pub fn external(a: &Session, b: &Session, settings: &CompareSettings, threads: usize) -> Vec<(ExternalSpec, ValueComparison, &'static str)> {
+    let empty = compare_values(&[], &[], &[], 0, settings, 1);
+    a.spec()
+        .external
+        .specs()
+        .iter()
+        .enumerate()
+        .map(|(ia, spec)| {
+            let Some(ib) = b.spec().external.index(&spec.name) else { return (spec.clone(), empty, NOT_IN_B) };
+            let other = &b.spec().external.specs()[ib];
+            if (other.decimals, other.higher_is_better) != (spec.decimals, spec.higher_is_better) {
+                return (spec.clone(), empty, DECLARED_OTHERWISE);
+            }
+            let of_b: HashMap<u64, i64> = b.external_recent_by_key(ib).into_iter().collect();
+            let (mut keys, mut va, mut vb) = (Vec::new(), Vec::new(), Vec::new());
+            for (k, v) in a.external_recent_by_key(ia) {
+                if let Some(&w) = of_b.get(&k) {
+                    keys.push(k);
+                    va.push(v);
+                    vb.push(w);
+                }
+            }
+            let c = compare_values(&keys, &va, &vb, spec.decimals, settings, threads);
+            (spec.clone(), c, if keys.is_empty() { NO_COMMON_ITEMS } else { "" })
+        })
+        .collect()
 }
 
 /// The statistics and replicate sums of both `recent` windows, when they hold the same

@@ -561,6 +561,7 @@ fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<
     let p = super::compare::paired(a, b, &settings, threads)?;
     let c = p.comparison;
     let metrics = pb::convert::metric_comparisons_to_pb(&c);
+    let external = super::compare::external(a, b, &settings, threads).iter().map(|(spec, x, note)| crate::pb::external::comparison_to_pb(spec, x, note)).collect();
     Ok(pb::CompareReport {
         session_a: a.spec().name.clone(),
         session_b: b.spec().name.clone(),
@@ -576,6 +577,7 @@ fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<
         seed: settings.seed,
         unix_time: unix_now(),
         note: PROXY_NOTE.to_owned(),
+        external,
     })
 }
 
