@@ -281,7 +281,8 @@ async fn status_over_two_replicas_adds_the_sums() {
     assert_eq!((qe["values"].as_u64(), qe["fixed_point"]["sum"].as_str()), (Some(3), Some("1500000")), "{j}");
     assert_eq!(qe["mean"].as_f64(), Some(0.5));
     let human = run(&["status", "--server", &both, "--session", "ferry-v8"]);
-    assert!(human.contains("qe          mean 0.500000, stddev 0.250000, 3 values, higher is better"), "{human}");
+    // With the fleet interval (from the replicas' replicate sums) between the mean and the rest.
+    assert!(human.contains("qe          mean 0.500000 (") && human.contains("95% interval), stddev 0.250000, 3 values, higher is better"), "{human}");
 }
 
 /// An empty translation that carries a quality-estimation value is still a translation: it is
@@ -443,4 +444,46 @@ async fn compare_pairs_external_values_by_item_key() {
     assert!(human.contains(&format!("qe          {}", mtgauge::external::compare::NO_COMMON_ITEMS)), "{human}");
     let human = run(&["ferry-v9"]);
     assert!(human.contains(&format!("A - B {want:+.6}")) && human.contains("200 items, higher is better"), "{human}");
+}
+
+/// Two replicas, each holding part of the items, report through `status` the same external
+/// means and intervals (cumulative and recent) as one process holding all of them: the
+/// replicas send their external replicate sums, which add up exactly.
+#[tokio::test]
+async fn a_fleet_of_two_reports_the_interval_of_one_process() {
+    const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
+    let dir = temp_dir("external-fleet-interval");
+    demo_files(&dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let (a, b, one) = (Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]));
+    for s in [&a, &b, &one] {
+        s.wait_serving().await;
+    }
+    let run = |args: &[&str]| {
+        let out = std::process::Command::new(BIN).args(args).output().unwrap();
+        assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let mut rng = SplitMix64::new(44);
+    let lines: Vec<String> = (0..150).map(|i| format!("{{\"key\": \"call-{i}\", \"scores\": {{\"qe\": {}}}}}", rng.below(1_000_001) as f64 / 1e6)).collect();
+    let send = |server: &Server, part: &[String], name: &str| {
+        let path = dir.join(name);
+        std::fs::write(&path, part.join("\n") + "\n").unwrap();
+        run(&["send", "--server", &server.grpc, "--session", "ferry-v8", "--create", "--refset", "ferry", "--external", "qe:0:1", "--items", path.to_str().unwrap()]);
+    };
+    send(&a, &lines[..60], "part-a.jsonl");
+    send(&b, &lines[60..], "part-b.jsonl");
+    send(&one, &lines, "all.jsonl");
+    let status = |servers: &str| -> serde_json::Value { serde_json::from_str(&run(&["status", "--server", servers, "--session", "ferry-v8", "--json"])).unwrap() };
+    let (fleet, single) = (status(&format!("{},{}", a.grpc, b.grpc)), status(&one.grpc));
+    for key in ["external", "recent_external"] {
+        let (f, s) = (&fleet[key][0], &single[key][0]);
+        assert_eq!(f["values"].as_u64(), Some(150), "{key}: {fleet}");
+        assert!(s["interval"]["low"].as_f64().is_some(), "{key}: {single}");
+        // The interval is derived from the summed replicate sums: equal to one process's.
+        for field in ["mean", "interval", "fixed_point"] {
+            assert_eq!(f[field], s[field], "{key}.{field}");
+        }
+    }
+    assert!(fleet["interval_note"].is_null(), "{fleet}");
 }

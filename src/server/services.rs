@@ -512,6 +512,13 @@ pub fn report(state: &State, session: &Session, level: f64, with_sums: bool) -> 
         cumulative_totals.external = crate::pb::external::results_to_pb(&spec.external, &ext.totals, ext.replicates.as_ref(), level);
         let (totals, reps) = session.external_recent();
         recent_totals.external = crate::pb::external::results_to_pb(&spec.external, &totals, reps.as_ref(), level);
+        if with_sums {
+            for (results, reps) in [(&mut cumulative_totals.external, ext.replicates.as_ref()), (&mut recent_totals.external, reps.as_ref())] {
+                for (m, r) in results.iter_mut().enumerate() {
+                    r.replicate_sums = reps.map(|x| crate::pb::external::replicate_sums_to_pb(x, m));
+                }
+            }
+        }
     }
     pb::ScoresReport {
         session: spec.name.clone(),
