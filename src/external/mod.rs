@@ -514,12 +514,21 @@ impl ExternalTotals {
         ExternalTotals(vec![ExternalSums::default(); n])
     }
 
-    /// Count one item's values.
+    /// Count one item's values; nothing changes on error.
     pub fn add_item(&mut self, item: &ItemValues) -> Result<(), SumError> {
+        self.apply_item(item, ExternalSums::checked_add)
+    }
+
+    /// Take one item's values out (an item leaving a window); nothing changes on error.
+    pub fn subtract_item(&mut self, item: &ItemValues) -> Result<(), SumError> {
+        self.apply_item(item, ExternalSums::checked_sub)
+    }
+
+    fn apply_item(&mut self, item: &ItemValues, op: fn(&ExternalSums, &ExternalSums) -> Result<ExternalSums, SumError>) -> Result<(), SumError> {
         let mut next = self.0.clone();
         for &(i, f) in &item.0 {
             let slot = next.get_mut(i).ok_or(SumError::Mismatch)?;
-            *slot = slot.checked_add(&ExternalSums::one(f))?;
+            *slot = op(slot, &ExternalSums::one(f))?;
         }
         self.0 = next;
         Ok(())

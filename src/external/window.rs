@@ -22,7 +22,7 @@
 use std::collections::{HashMap, VecDeque};
 
 use super::replicates::ExternalReplicates;
-use super::{ExternalSums, ExternalTotals, ItemValues, SumError};
+use super::{ExternalTotals, ItemValues, SumError};
 
 /// The last `capacity` items that carried external values.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -154,19 +154,6 @@ impl ExternalWindow {
     /// Heap bytes held (about).
     pub fn memory_bytes(&self) -> usize {
         self.items.capacity() * std::mem::size_of::<(u64, ItemValues)>() + self.items.iter().map(|(_, v)| v.0.capacity() * 16).sum::<usize>() + self.replicates.as_ref().map_or(0, ExternalReplicates::memory_bytes)
-    }
-}
-
-impl ExternalTotals {
-    /// Take one item's values out (an item leaving a window); nothing changes on error.
-    pub fn subtract_item(&mut self, item: &ItemValues) -> Result<(), SumError> {
-        let mut next = self.0.clone();
-        for &(i, f) in &item.0 {
-            let slot = next.get_mut(i).ok_or(SumError::Mismatch)?;
-            *slot = slot.checked_sub(&ExternalSums::one(f))?;
-        }
-        self.0 = next;
-        Ok(())
     }
 }
 
