@@ -128,22 +128,15 @@ impl ExternalWindow {
         self.items.iter()
     }
 
+    /// The (key, value) of metric `m` of every item that carries it, oldest first.
+    pub fn values_of(&self, m: usize) -> Vec<(u64, i64)> {
+        self.items.iter().filter_map(|(key, item)| item.0.iter().find(|&&(i, _)| i == m).map(|&(_, v)| (*key, v))).collect()
+    }
+
     /// Per key, its latest item's value of metric `m`, in the order the keys first appear
     /// (oldest first); items without a value of `m` are skipped.
     pub fn latest_by_key(&self, m: usize) -> Vec<(u64, i64)> {
-        let mut at: HashMap<u64, usize> = HashMap::new();
-        let mut out: Vec<(u64, i64)> = Vec::new();
-        for (key, item) in &self.items {
-            let Some(&(_, v)) = item.0.iter().find(|&&(i, _)| i == m) else { continue };
-            match at.get(key) {
-                Some(&i) => out[i].1 = v,
-                None => {
-                    at.insert(*key, out.len());
-                    out.push((*key, v));
-                }
-            }
-        }
-        out
+        latest_by_key(self.values_of(m))
     }
 
     /// Forget every item (ids go on).
@@ -155,6 +148,23 @@ impl ExternalWindow {
     pub fn memory_bytes(&self) -> usize {
         self.items.capacity() * std::mem::size_of::<(u64, ItemValues)>() + self.items.iter().map(|(_, v)| v.0.capacity() * 16).sum::<usize>() + self.replicates.as_ref().map_or(0, ExternalReplicates::memory_bytes)
     }
+}
+
+/// Per key, its latest value, in the order the keys first appear, of (key, value) pairs oldest
+/// first.
+pub fn latest_by_key(values: Vec<(u64, i64)>) -> Vec<(u64, i64)> {
+    let mut at: HashMap<u64, usize> = HashMap::new();
+    let mut out: Vec<(u64, i64)> = Vec::with_capacity(values.len());
+    for (key, v) in values {
+        match at.get(&key) {
+            Some(&i) => out[i].1 = v,
+            None => {
+                at.insert(key, out.len());
+                out.push((key, v));
+            }
+        }
+    }
+    out
 }
 
 /// Append one item as a durable row: its key, the number of values, then per value its metric

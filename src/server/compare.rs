@@ -182,6 +182,42 @@ mod tests {
         }
     }
 
+    /// External metrics: compared when both sessions declare them alike, with the reason
+    /// otherwise; a key sent twice counts with its latest value.
+    #[test]
+    fn external_metrics_are_paired_by_key_when_declared_alike() {
+        use crate::external::Declaration;
+        let set = Arc::new(RefSet::new(vec![SegmentInput { id: "n1".into(), source: None, refs: vec!["die Fähre".into()] }]).unwrap());
+        let spec = |name: &str, decl: &[&str]| SessionSpec {
+            name: name.into(),
+            refset: "ferry".into(),
+            config: Default::default(),
+            labels: Default::default(),
+            window: 10,
+            resampling: Default::default(),
+            target_language: None,
+            guard_settings: Vec::new(),
+            external: Declaration::new(decl.iter().map(|d| d.parse().unwrap()).collect()).unwrap(),
+        };
+        let a = Session::new(spec("a", &["qe:0:1", "ter:0:100:better=lower", "fluency:0:5"]), Arc::clone(&set), 0);
+        let b = Session::new(spec("b", &["ter:0:100:better=lower:places=2", "qe:0:1"]), set, 0);
+        let send = |s: &Session, name: &str, items: &[(&str, f64)]| {
+            let m = s.spec().external.clone();
+            let items: Vec<_> = items.iter().map(|(k, v)| (crate::metric::resample::segment_key(k.as_bytes()), m.check_item([(name, *v)]).unwrap())).collect();
+            s.apply_external(&s.external_delta(&items).unwrap()).unwrap();
+        };
+        send(&a, "qe", &[("k1", 0.5), ("k2", 0.25), ("k1", 0.75), ("only-a", 0.1)]);
+        send(&b, "qe", &[("k2", 0.5), ("k1", 0.5), ("only-b", 0.9)]);
+        let settings = CompareSettings { resamples: 50, seed: 1, level: DEFAULT_LEVEL, trials: 100 };
+        let got = external(&a, &b, &settings, 1);
+        let names: Vec<(&str, &str)> = got.iter().map(|(s, _, note)| (s.name.as_str(), *note)).collect();
+        assert_eq!(names, vec![("qe", ""), ("ter", DECLARED_OTHERWISE), ("fluency", NOT_IN_B)]);
+        // k1: 0.75 (latest) against 0.5; k2: 0.25 against 0.5. Mean difference 0.
+        let qe = &got[0].1;
+        assert_eq!((qe.items, qe.difference, qe.a.unwrap().mean, qe.b.unwrap().mean), (2, Some(0.0), 0.5, 0.5));
+        assert_eq!((got[1].1.items, got[1].1.difference), (0, None));
+    }
+
     /// The windows' own sums give exactly what the paired comparison gives when both windows
     /// hold the same segments once; a repeated segment or another segment set falls back.
     #[test]
