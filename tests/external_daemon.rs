@@ -446,35 +446,45 @@ async fn compare_pairs_external_values_by_item_key() {
     assert!(human.contains(&format!("A - B {want:+.6}")) && human.contains("200 items, higher is better"), "{human}");
 }
 
-/// Two replicas, each holding part of the items, report through `status` the same external
-/// means and intervals (cumulative and recent) as one process holding all of them: the
-/// replicas send their external replicate sums, which add up exactly.
-#[tokio::test]
-async fn a_fleet_of_two_reports_the_interval_of_one_process() {
-    const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
-    let dir = temp_dir("external-fleet-interval");
-    demo_files(&dir);
+/// Run the command line, which must succeed; its standard output.
+fn cli(args: &[&str]) -> String {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(args).output().unwrap();
+    assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    String::from_utf8(out.stdout).unwrap()
+}
+
+/// Two replicas and one more process, each with the demo's reference set, serving.
+async fn two_replicas_and_one(dir: &std::path::Path) -> (Server, Server, Server) {
+    demo_files(dir);
     let refs = format!("ferry={}", dir.join("refs.jsonl").display());
     let (a, b, one) = (Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]));
     for s in [&a, &b, &one] {
         s.wait_serving().await;
     }
-    let run = |args: &[&str]| {
-        let out = std::process::Command::new(BIN).args(args).output().unwrap();
-        assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
-        String::from_utf8(out.stdout).unwrap()
-    };
+    (a, b, one)
+}
+
+/// `send --items` of JSONL `lines` (written to `file` in `dir`) into `session`, created with
+/// `--external qe:0:1` when new.
+fn send_lines(dir: &std::path::Path, server: &Server, session: &str, lines: &[String], file: &str) {
+    let path = dir.join(file);
+    std::fs::write(&path, lines.join("\n") + "\n").unwrap();
+    cli(&["send", "--server", &server.grpc, "--session", session, "--create", "--refset", "ferry", "--external", "qe:0:1", "--items", path.to_str().unwrap()]);
+}
+
+/// Two replicas, each holding part of the items, report through `status` the same external
+/// means and intervals (cumulative and recent) as one process holding all of them: the
+/// replicas send their external replicate sums, which add up exactly.
+#[tokio::test]
+async fn a_fleet_of_two_reports_the_interval_of_one_process() {
+    let dir = temp_dir("external-fleet-interval");
+    let (a, b, one) = two_replicas_and_one(&dir).await;
     let mut rng = SplitMix64::new(44);
     let lines: Vec<String> = (0..150).map(|i| format!("{{\"key\": \"call-{i}\", \"scores\": {{\"qe\": {}}}}}", rng.below(1_000_001) as f64 / 1e6)).collect();
-    let send = |server: &Server, part: &[String], name: &str| {
-        let path = dir.join(name);
-        std::fs::write(&path, part.join("\n") + "\n").unwrap();
-        run(&["send", "--server", &server.grpc, "--session", "ferry-v8", "--create", "--refset", "ferry", "--external", "qe:0:1", "--items", path.to_str().unwrap()]);
-    };
-    send(&a, &lines[..60], "part-a.jsonl");
-    send(&b, &lines[60..], "part-b.jsonl");
-    send(&one, &lines, "all.jsonl");
-    let status = |servers: &str| -> serde_json::Value { serde_json::from_str(&run(&["status", "--server", servers, "--session", "ferry-v8", "--json"])).unwrap() };
+    send_lines(&dir, &a, "ferry-v8", &lines[..60], "part-a.jsonl");
+    send_lines(&dir, &b, "ferry-v8", &lines[60..], "part-b.jsonl");
+    send_lines(&dir, &one, "ferry-v8", &lines, "all.jsonl");
+    let status = |servers: &str| -> serde_json::Value { serde_json::from_str(&cli(&["status", "--server", servers, "--session", "ferry-v8", "--json"])).unwrap() };
     let (fleet, single) = (status(&format!("{},{}", a.grpc, b.grpc)), status(&one.grpc));
     for key in ["external", "recent_external"] {
         let (f, s) = (&fleet[key][0], &single[key][0]);
@@ -486,4 +496,35 @@ async fn a_fleet_of_two_reports_the_interval_of_one_process() {
         }
     }
     assert!(fleet["interval_note"].is_null(), "{fleet}");
+}
+
+/// `compare` over a fleet: two replicas each hold part of both sessions' items (some keys on
+/// both replicas), one process holds all of them; the fleet comparison of the external metric
+/// equals the one process's (the same keys, values, weights and coins).
+#[tokio::test]
+async fn a_fleet_compares_external_values_as_one_process() {
+    let dir = temp_dir("external-fleet-compare");
+    let (a, b, one) = two_replicas_and_one(&dir).await;
+    let mut rng = SplitMix64::new(52);
+    let base: Vec<u64> = (0..120).map(|_| rng.below(900_001)).collect();
+    let line = |i: usize, k: u64| format!("{{\"key\": \"call-{i}\", \"scores\": {{\"qe\": {}}}}}", k as f64 / 1e6);
+    let v8: Vec<String> = base.iter().enumerate().map(|(i, &k)| line(i, k)).collect();
+    let v9: Vec<String> = base.iter().enumerate().map(|(i, &k)| line(i, k + 30_000 + rng.below(20_001))).collect();
+    let send = |server: &Server, session: &str, part: &[String], name: &str| send_lines(&dir, server, session, part, name);
+    // Replica a: v8's items 0..70, v9's 30..120; replica b: v8's 50..120 (50..70 on both, the
+    // same values), v9's 0..40.
+    send(&a, "v8", &v8[..70], "a8.jsonl");
+    send(&a, "v9", &v9[30..], "a9.jsonl");
+    send(&b, "v8", &v8[50..], "b8.jsonl");
+    send(&b, "v9", &v9[..40], "b9.jsonl");
+    send(&one, "v8", &v8, "o8.jsonl");
+    send(&one, "v9", &v9, "o9.jsonl");
+    let compare = |servers: &str| -> serde_json::Value { serde_json::from_str(&cli(&["compare", "--server", servers, "--session", "v8", "--session", "v9", "--json"])).unwrap() };
+    let (fleet, single) = (compare(&format!("{},{}", a.grpc, b.grpc)), compare(&one.grpc));
+    let (f, s) = (&fleet["external"][0], &single["external"][0]);
+    assert_eq!(f["items"].as_u64(), Some(120), "{fleet}");
+    assert!(s["interval"]["low"].as_f64().is_some() && s["p_value"].as_f64().is_some(), "{single}");
+    for field in ["items", "a", "b", "difference", "interval", "p_value", "extreme_trials"] {
+        assert_eq!(f[field], s[field], "{field}");
+    }
 }

@@ -52,7 +52,8 @@ declares too (same decimals and direction) is compared over the items both recen
 matched by item key (else segment id; the latest value of a key counts): both means, their \
 difference A - B, its paired-bootstrap interval (the same weights, drawn from the key) and an \
 approximate-randomization p-value, as above. With no key in common it says there is nothing to \
-compare. Over a fleet they are not compared yet.
+compare. Over a fleet each replica sends its external windows too; a key held by several \
+replicas counts once, from the first in --server order.
 
 A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
 replica. Each replica sends both sessions' recent windows (segment keys and integer \
@@ -291,6 +292,64 @@ fn external_lines(ext: &[crate::pb::ExternalComparison], indent: &str) -> Vec<St
     out
 }
 
+/// One session's external window values gathered from replicas: per metric (in the order first
+/// seen), its spec and per key its value, keys in the order first seen.
+#[derive(Default)]
+struct FleetExternal {
+    metrics: Vec<(crate::external::ExternalSpec, std::collections::HashMap<u64, i64>, Vec<u64>)>,
+}
+
+impl FleetExternal {
+    /// The slot of `spec`'s metric; a metric declared otherwise than before is refused.
+    fn slot(&mut self, spec: crate::external::ExternalSpec) -> Result<usize, String> {
+        match self.metrics.iter().position(|(s, _, _)| s.name == spec.name) {
+            Some(i) if (self.metrics[i].0.decimals, self.metrics[i].0.higher_is_better) != (spec.decimals, spec.higher_is_better) => Err(format!("external metric '{}' is declared otherwise than on another replica", spec.name)),
+            Some(i) => Ok(i),
+            None => {
+                self.metrics.push((spec, Default::default(), Vec::new()));
+                Ok(self.metrics.len() - 1)
+            }
+        }
+    }
+
+    /// Take in one part of one replica's window values (keys not yet held).
+    fn add(&mut self, part: &crate::pb::ExternalWindowValues) -> Result<(), String> {
+        let spec = part.metric.as_ref().ok_or("an external window chunk without its metric")?;
+        let spec = crate::pb::external::spec_from_pb(spec).map_err(|e| e.0)?;
+        if part.keys.len() != part.values.len() {
+            return Err(format!("external window chunk of {} keys and {} values", part.keys.len(), part.values.len()));
+        }
+        let i = self.slot(spec)?;
+        let (_, values, order) = &mut self.metrics[i];
+        for (&k, &v) in part.keys.iter().zip(&part.values) {
+            if values.insert(k, v).is_none() {
+                order.push(k);
+            }
+        }
+        Ok(())
+    }
+
+    /// Add a later replica's values: keys already held keep their value.
+    fn merge(&mut self, later: FleetExternal) -> Result<(), String> {
+        for (spec, values, order) in later.metrics {
+            let i = self.slot(spec)?;
+            let (_, mine, my_order) = &mut self.metrics[i];
+            for k in order {
+                if let std::collections::hash_map::Entry::Vacant(e) = mine.entry(k) {
+                    e.insert(values[&k]);
+                    my_order.push(k);
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// As the comparison takes them.
+    fn values(self) -> crate::external::compare::WindowValues {
+        self.metrics.into_iter().map(|(spec, values, order)| (spec, order.iter().map(|k| (*k, values[k])).collect())).collect()
+    }
+}
+
 /// What a fleet comparison adds to the report: which replicas answered, in words and JSON.
 struct FleetView {
     line: String,
@@ -314,6 +373,7 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
     let (mut held, mut on_several) = ([0usize; 2], [0usize; 2]);
     let mut head: Option<(String, crate::pb::SegmentChunk)> = None;
     let mut present = [false; 2];
+    let mut external: [FleetExternal; 2] = Default::default();
     let (mut answered, mut missing) = (Vec::new(), Vec::new());
     'replicas: for e in endpoints {
         let name = identify(e.clone()).await.ok().map(|id| id.replica).filter(|n| !n.is_empty()).unwrap_or_else(|| e.url.clone());
@@ -378,6 +438,14 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
                 }
             }
         }
+        // External values: a key counts once per session, from the first replica holding it.
+        for (i, chunks) in got.iter().enumerate() {
+            let mut mine = FleetExternal::default();
+            for part in chunks.iter().flat_map(|c| &c.external) {
+                mine.add(part).map_err(|why| CliError::Usage(format!("{name}'s session '{}': {why}", sessions[i])))?;
+            }
+            external[i].merge(mine).map_err(|why| CliError::Usage(format!("{name}'s session '{}': {why}", sessions[i])))?;
+        }
         answered.push(name);
     }
     if !missing.is_empty() && !partial {
@@ -405,7 +473,13 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
     }
     let threads = threads.max(1);
     let (settings, config2) = (*settings, config);
-    let c = tokio::task::spawn_blocking(move || compare::compare(&config2, &keys, &sa, &sb, &settings, threads)).await.map_err(|e| CliError::Usage(format!("comparison failed: {e}")))?;
+    let [ext_a, ext_b] = external.map(FleetExternal::values);
+    let (c, external) = tokio::task::spawn_blocking(move || {
+        let external: Vec<crate::pb::ExternalComparison> = crate::external::compare::compare_declared(&ext_a, &ext_b, &settings, threads).iter().map(|(spec, x, note)| crate::pb::external::comparison_to_pb(spec, x, note)).collect();
+        (compare::compare(&config2, &keys, &sa, &sb, &settings, threads), external)
+    })
+    .await
+    .map_err(|e| CliError::Usage(format!("comparison failed: {e}")))?;
     let unix_time = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64);
     let report = crate::pb::CompareReport {
         session_a: sessions[0].clone(),
@@ -422,8 +496,7 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
         seed: settings.seed,
         unix_time,
         note: PROXY_NOTE.to_owned(),
-        // Replicas do not send their external windows: one server compares them.
-        external: Vec::new(),
+        external,
     };
     let partial_words = if missing.is_empty() { String::new() } else { format!(" (PARTIAL: no answer from {})", missing.join(", ")) };
     let line = format!(
@@ -438,7 +511,7 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
         "on_several_replicas": {"a": on_several[0], "b": on_several[1]},
         "held": {"a": held[0], "b": held[1]},
         "recent": "the union of the replicas' recent windows, each segment once (the first replica in --server order that holds it)",
-        "external": "not compared over a fleet: compare the sessions on one server for their external metrics",
+        "external": "per metric, the union of the replicas' recent windows, each item key once (the first replica in --server order that holds it)",
     });
     Ok((report, FleetView { line, json }))
 }

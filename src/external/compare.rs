@@ -34,6 +34,41 @@ use crate::metric::resample::Interval;
 
 /// Why there is no comparison of a metric both sessions declare.
 pub const NO_COMMON_ITEMS: &str = "nothing to compare: no item key is in both recent windows";
+/// Why an external metric of session A is not compared with session B's.
+pub const NOT_IN_B: &str = "session B does not declare this metric";
+/// See [`NOT_IN_B`].
+pub const DECLARED_OTHERWISE: &str = "session B declares this metric with other decimals or direction: its values are not comparable";
+
+/// One session's external metrics for a comparison: per declared metric (in declaration
+/// order), its spec and per key its latest fixed-point value, keys in the order they first
+/// appear.
+pub type WindowValues = Vec<(super::ExternalSpec, Vec<(u64, i64)>)>;
+
+/// Each metric of `a`, in its order, compared with `b`'s metric of the same name over the keys
+/// both hold (in `a`'s order), with why not when there is nothing to compare (empty when there
+/// is a comparison).
+pub fn compare_declared(a: &WindowValues, b: &WindowValues, settings: &CompareSettings, threads: usize) -> Vec<(super::ExternalSpec, ValueComparison, &'static str)> {
+    let empty = compare_values(&[], &[], &[], 0, settings, 1);
+    a.iter()
+        .map(|(spec, va)| {
+            let Some((other, vb)) = b.iter().find(|(o, _)| o.name == spec.name) else { return (spec.clone(), empty, NOT_IN_B) };
+            if (other.decimals, other.higher_is_better) != (spec.decimals, spec.higher_is_better) {
+                return (spec.clone(), empty, DECLARED_OTHERWISE);
+            }
+            let of_b: std::collections::HashMap<u64, i64> = vb.iter().copied().collect();
+            let (mut keys, mut xa, mut xb) = (Vec::new(), Vec::new(), Vec::new());
+            for (k, v) in va {
+                if let Some(&w) = of_b.get(k) {
+                    keys.push(*k);
+                    xa.push(*v);
+                    xb.push(w);
+                }
+            }
+            let c = compare_values(&keys, &xa, &xb, spec.decimals, settings, threads);
+            (spec.clone(), c, if keys.is_empty() { NO_COMMON_ITEMS } else { "" })
+        })
+        .collect()
+}
 
 /// One system's mean over the compared items, with its own interval.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]

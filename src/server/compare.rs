@@ -4,7 +4,7 @@
 use std::collections::HashMap;
 
 use super::error::{Result, ServiceError};
-use crate::external::compare::{compare_values, ValueComparison, NO_COMMON_ITEMS};
+use crate::external::compare::{compare_declared, ValueComparison, WindowValues};
 use crate::external::ExternalSpec;
 use crate::metric::compare::{compare, CompareSettings, Comparison};
 use crate::metric::resample::Replicates;
@@ -57,41 +57,18 @@ pub fn paired(a: &Session, b: &Session, settings: &CompareSettings, threads: usi
     Ok(Paired { comparison, recent_a: in_a.len() as u64, recent_b: in_b.len() as u64 })
 }
 
-/// Why an external metric of session A is not compared with session B's.
-pub const NOT_IN_B: &str = "session B does not declare this metric";
-/// See [`NOT_IN_B`].
-pub const DECLARED_OTHERWISE: &str = "session B declares this metric with other decimals or direction: its values are not comparable";
+/// A session's external `recent` window values for a comparison (per metric, latest value
+/// per key).
+pub fn external_values(s: &Session) -> WindowValues {
+    s.spec().external.specs().iter().enumerate().map(|(m, spec)| (spec.clone(), s.external_recent_by_key(m))).collect()
+}
 
 /// Each external metric session `a` declares, in its order, compared with session `b`'s over
 /// the items both `recent` windows hold (matched by key; a key seen more than once counts with
 /// its latest value), with why not when there is nothing to compare (CPU work: call from a
 /// blocking thread).
 pub fn external(a: &Session, b: &Session, settings: &CompareSettings, threads: usize) -> Vec<(ExternalSpec, ValueComparison, &'static str)> {
-    let empty = compare_values(&[], &[], &[], 0, settings, 1);
-    a.spec()
-        .external
-        .specs()
-        .iter()
-        .enumerate()
-        .map(|(ia, spec)| {
-            let Some(ib) = b.spec().external.index(&spec.name) else { return (spec.clone(), empty, NOT_IN_B) };
-            let other = &b.spec().external.specs()[ib];
-            if (other.decimals, other.higher_is_better) != (spec.decimals, spec.higher_is_better) {
-                return (spec.clone(), empty, DECLARED_OTHERWISE);
-            }
-            let of_b: HashMap<u64, i64> = b.external_recent_by_key(ib).into_iter().collect();
-            let (mut keys, mut va, mut vb) = (Vec::new(), Vec::new(), Vec::new());
-            for (k, v) in a.external_recent_by_key(ia) {
-                if let Some(&w) = of_b.get(&k) {
-                    keys.push(k);
-                    va.push(v);
-                    vb.push(w);
-                }
-            }
-            let c = compare_values(&keys, &va, &vb, spec.decimals, settings, threads);
-            (spec.clone(), c, if keys.is_empty() { NO_COMMON_ITEMS } else { "" })
-        })
-        .collect()
+    compare_declared(&external_values(a), &external_values(b), settings, threads)
 }
 
 /// The statistics and replicate sums of both `recent` windows, when they hold the same
@@ -114,7 +91,8 @@ pub fn same_segments(a: &Session, b: &Session) -> Option<((CorpusStats, Replicat
 pub const SEGMENT_CHUNK: usize = 1024;
 
 /// A session's `recent` window as chunks of `per_chunk` segments (at least one chunk, empty
-/// when the window is). CPU work: call from a blocking thread.
+/// when the window is), then its external metrics' window values in chunks of
+/// [`EXTERNAL_CHUNK`]. CPU work: call from a blocking thread.
 pub fn segment_chunks(s: &Session, per_chunk: usize) -> Vec<crate::pb::SegmentChunk> {
     let layout = crate::metric::layout::Layout::new(&s.spec().config);
     let segments = s.recent_segments();
@@ -137,10 +115,20 @@ pub fn segment_chunks(s: &Session, per_chunk: usize) -> Vec<crate::pb::SegmentCh
         })
         .collect();
     if out.is_empty() {
-        out.push(head);
+        out.push(head.clone());
+    }
+    for (spec, values) in external_values(s) {
+        let metric = crate::pb::external::spec_to_pb(&spec);
+        for part in values.chunks(EXTERNAL_CHUNK) {
+            let (keys, values) = part.iter().copied().unzip();
+            out.push(crate::pb::SegmentChunk { external: vec![crate::pb::ExternalWindowValues { metric: Some(metric.clone()), keys, values }], ..head.clone() });
+        }
     }
     out
 }
+
+/// External values per [`crate::pb::SegmentChunk`] (at most about 1.3 MB: two varints each).
+pub const EXTERNAL_CHUNK: usize = 65_536;
 
 #[cfg(test)]
 mod tests {
@@ -211,7 +199,7 @@ mod tests {
         let settings = CompareSettings { resamples: 50, seed: 1, level: DEFAULT_LEVEL, trials: 100 };
         let got = external(&a, &b, &settings, 1);
         let names: Vec<(&str, &str)> = got.iter().map(|(s, _, note)| (s.name.as_str(), *note)).collect();
-        assert_eq!(names, vec![("qe", ""), ("ter", DECLARED_OTHERWISE), ("fluency", NOT_IN_B)]);
+        assert_eq!(names, vec![("qe", ""), ("ter", crate::external::compare::DECLARED_OTHERWISE), ("fluency", crate::external::compare::NOT_IN_B)]);
         // k1: 0.75 (latest) against 0.5; k2: 0.25 against 0.5. Mean difference 0.
         let qe = &got[0].1;
         assert_eq!((qe.items, qe.difference, qe.a.unwrap().mean, qe.b.unwrap().mean), (2, Some(0.0), 0.5, 0.5));
