@@ -118,7 +118,7 @@ pub fn compare_values(keys: &[u64], a: &[i64], b: &[i64], decimals: u32, setting
             let mut r = ExternalReplicates::new(1, settings.resamples, settings.seed);
             for (k, &v) in keys.iter().zip(vals) {
                 // One metric, values in range of a declaration: cannot overflow.
-                let _ = r.add(*k, &ItemValues(vec![(0, v)]), &mut w);
+                let _ = r.add_in_place(*k, &ItemValues(vec![(0, v)]), &mut w);
             }
             r
         };

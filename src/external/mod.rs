@@ -567,7 +567,8 @@ impl ExternalDelta {
         for (key, item) in items {
             totals.add_item(item)?;
             if let Some(r) = &mut reps {
-                r.add(*key, item, &mut weights)?;
+                // Scratch sums of this batch, dropped on error.
+                r.add_in_place(*key, item, &mut weights)?;
             }
         }
         Ok(ExternalDelta { totals, replicates: reps, items: items.to_vec() })

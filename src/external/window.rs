@@ -75,7 +75,8 @@ impl ExternalWindow {
         for (key, item) in self.items.iter().chain(items).take(evicted) {
             totals.subtract_item(item)?;
             if let Some(r) = &mut reps {
-                r.subtract_item(*key, item, &mut weights)?;
+                // `reps` is a scratch copy, dropped on error.
+                r.subtract_in_place(*key, item, &mut weights)?;
             }
         }
         // The sums are right; now the items.
