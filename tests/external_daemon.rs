@@ -281,7 +281,8 @@ async fn status_over_two_replicas_adds_the_sums() {
     assert_eq!((qe["values"].as_u64(), qe["fixed_point"]["sum"].as_str()), (Some(3), Some("1500000")), "{j}");
     assert_eq!(qe["mean"].as_f64(), Some(0.5));
     let human = run(&["status", "--server", &both, "--session", "ferry-v8"]);
-    assert!(human.contains("qe          mean 0.500000, stddev 0.250000, 3 values, higher is better"), "{human}");
+    // With the fleet interval (from the replicas' replicate sums) between the mean and the rest.
+    assert!(human.contains("qe          mean 0.500000 (") && human.contains("95% interval), stddev 0.250000, 3 values, higher is better"), "{human}");
 }
 
 /// An empty translation that carries a quality-estimation value is still a translation: it is
@@ -376,4 +377,154 @@ async fn the_recent_window_holds_the_last_items_values() {
     // A reset empties it.
     SessionsClient::new(ch.clone()).reset(pb::ResetSessionRequest { name: "ferry-v8".into() }).await.unwrap();
     assert_eq!(recent_external(&ch, "ferry-v8").await[0].count, 0);
+}
+
+/// `Compare` of two sessions pairs their external values by item key: B's are A's plus 0.05
+/// and some noise, sent in another order and other batches, with items of A's that B lacks.
+/// The difference is the exact mean difference over the shared keys (computed here from the
+/// integers sent), its interval holds it; sessions with no key in common have nothing to
+/// compare.
+#[tokio::test]
+async fn compare_pairs_external_values_by_item_key() {
+    let dir = temp_dir("external-compare");
+    demo_files(&dir);
+    let server = Server::start(&["--refset", &format!("ferry={}", dir.join("refs.jsonl").display())]);
+    let ch = server.wait_serving().await;
+    for s in ["ferry-v8", "ferry-v9", "other-calls"] {
+        create(&ch, s).await;
+    }
+    let mut rng = SplitMix64::new(31);
+    // Six decimals exactly: k / 10^6 reads back as that decimal, so its fixed point is k.
+    let a: Vec<i64> = (0..240).map(|_| rng.below(900_001) as i64).collect();
+    let b: Vec<i64> = a.iter().map(|&x| x + 50_000 + rng.below(40_001) as i64 - 20_000).collect();
+    let item = |key: String, k: i64| pb::ScoreItem { item_key: key, external: [("qe".to_string(), k as f64 / 1e6)].into_iter().collect(), values_only: true, ..Default::default() };
+    let mut scoring = ScoringClient::new(ch.clone());
+    let items_a: Vec<pb::ScoreItem> = a.iter().enumerate().map(|(i, &k)| item(format!("call-{i}"), k)).collect();
+    for (n, chunk) in items_a.chunks(64).enumerate() {
+        scoring.submit(batch("ferry-v8", "a", n as u64 + 1, chunk.to_vec())).await.unwrap();
+    }
+    // B holds the first 200 keys only, newest first, in batches of 30.
+    let items_b: Vec<pb::ScoreItem> = (0..200).rev().map(|i| item(format!("call-{i}"), b[i])).collect();
+    for (n, chunk) in items_b.chunks(30).enumerate() {
+        scoring.submit(batch("ferry-v9", "b", n as u64 + 1, chunk.to_vec())).await.unwrap();
+    }
+    let others: Vec<pb::ScoreItem> = (0..50).map(|i| item(format!("other-{i}"), a[i])).collect();
+    scoring.submit(batch("other-calls", "c", 1, others)).await.unwrap();
+
+    let compare = |x: &str, y: &str| pb::CompareRequest { session_a: x.into(), session_b: y.into(), resamples: Some(400), trials: Some(3000), ..Default::default() };
+    let r = scoring.compare(compare("ferry-v8", "ferry-v9")).await.unwrap().into_inner();
+    let qe = r.external.iter().find(|e| e.metric == "qe").expect("qe compared");
+    let (sa, sb): (i64, i64) = (a[..200].iter().sum(), b[..200].iter().sum());
+    let want = (sa - sb) as f64 / (200.0 * 1e6);
+    assert_eq!((qe.items, qe.difference), (200, Some(want)), "{qe:?}");
+    assert!((-0.055..-0.045).contains(&want), "the shift of 0.05 with noise averaging near 0: {want}");
+    assert_eq!((qe.a, qe.b), (Some(sa as f64 / 200e6), Some(sb as f64 / 200e6)));
+    let iv = qe.interval.as_ref().expect("paired interval");
+    assert!(iv.low < want && want < iv.high && iv.high < 0.0, "{iv:?}");
+    assert_eq!(qe.p_value, Some(1.0 / 3001.0), "no trial comes as far apart: {qe:?}");
+    // edit_rate is declared by both but no item carries it.
+    let rate = r.external.iter().find(|e| e.metric == "edit_rate").unwrap();
+    assert_eq!((rate.items, rate.difference, rate.note.as_str()), (0, None, mtgauge::external::compare::NO_COMMON_ITEMS));
+
+    // No key in common.
+    let r = scoring.compare(compare("ferry-v8", "other-calls")).await.unwrap().into_inner();
+    let qe = &r.external[0];
+    assert_eq!((qe.metric.as_str(), qe.items, qe.difference, qe.interval.is_none(), qe.note.as_str()), ("qe", 0, None, true, mtgauge::external::compare::NO_COMMON_ITEMS));
+
+    // The command line shows both.
+    const BIN: &str = env!("CARGO_BIN_EXE_mtgauge");
+    let run = |args: &[&str]| {
+        let out = std::process::Command::new(BIN).args(["compare", "--server", &server.grpc, "--session", "ferry-v8", "--session"]).args(args).output().unwrap();
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let j: serde_json::Value = serde_json::from_str(&run(&["ferry-v9", "--json"])).unwrap();
+    assert_eq!((j["external"][0]["metric"].as_str(), j["external"][0]["items"].as_u64(), j["external"][0]["difference"].as_f64()), (Some("qe"), Some(200), Some(want)), "{j}");
+    let human = run(&["other-calls"]);
+    assert!(human.contains(&format!("qe          {}", mtgauge::external::compare::NO_COMMON_ITEMS)), "{human}");
+    let human = run(&["ferry-v9"]);
+    assert!(human.contains(&format!("A - B {want:+.6}")) && human.contains("200 items, higher is better"), "{human}");
+}
+
+/// Run the command line, which must succeed; its standard output.
+fn cli(args: &[&str]) -> String {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(args).output().unwrap();
+    assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    String::from_utf8(out.stdout).unwrap()
+}
+
+/// Two replicas and one more process, each with the demo's reference set, serving.
+async fn two_replicas_and_one(dir: &std::path::Path) -> (Server, Server, Server) {
+    demo_files(dir);
+    let refs = format!("ferry={}", dir.join("refs.jsonl").display());
+    let (a, b, one) = (Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]), Server::start(&["--refset", &refs]));
+    for s in [&a, &b, &one] {
+        s.wait_serving().await;
+    }
+    (a, b, one)
+}
+
+/// `send --items` of JSONL `lines` (written to `file` in `dir`) into `session`, created with
+/// `--external qe:0:1` when new.
+fn send_lines(dir: &std::path::Path, server: &Server, session: &str, lines: &[String], file: &str) {
+    let path = dir.join(file);
+    std::fs::write(&path, lines.join("\n") + "\n").unwrap();
+    cli(&["send", "--server", &server.grpc, "--session", session, "--create", "--refset", "ferry", "--external", "qe:0:1", "--items", path.to_str().unwrap()]);
+}
+
+/// Two replicas, each holding part of the items, report through `status` the same external
+/// means and intervals (cumulative and recent) as one process holding all of them: the
+/// replicas send their external replicate sums, which add up exactly.
+#[tokio::test]
+async fn a_fleet_of_two_reports_the_interval_of_one_process() {
+    let dir = temp_dir("external-fleet-interval");
+    let (a, b, one) = two_replicas_and_one(&dir).await;
+    let mut rng = SplitMix64::new(44);
+    let lines: Vec<String> = (0..150).map(|i| format!("{{\"key\": \"call-{i}\", \"scores\": {{\"qe\": {}}}}}", rng.below(1_000_001) as f64 / 1e6)).collect();
+    send_lines(&dir, &a, "ferry-v8", &lines[..60], "part-a.jsonl");
+    send_lines(&dir, &b, "ferry-v8", &lines[60..], "part-b.jsonl");
+    send_lines(&dir, &one, "ferry-v8", &lines, "all.jsonl");
+    let status = |servers: &str| -> serde_json::Value { serde_json::from_str(&cli(&["status", "--server", servers, "--session", "ferry-v8", "--json"])).unwrap() };
+    let (fleet, single) = (status(&format!("{},{}", a.grpc, b.grpc)), status(&one.grpc));
+    for key in ["external", "recent_external"] {
+        let (f, s) = (&fleet[key][0], &single[key][0]);
+        assert_eq!(f["values"].as_u64(), Some(150), "{key}: {fleet}");
+        assert!(s["interval"]["low"].as_f64().is_some(), "{key}: {single}");
+        // The interval is derived from the summed replicate sums: equal to one process's.
+        for field in ["mean", "interval", "fixed_point"] {
+            assert_eq!(f[field], s[field], "{key}.{field}");
+        }
+    }
+    assert!(fleet["interval_note"].is_null(), "{fleet}");
+}
+
+/// `compare` over a fleet: two replicas each hold part of both sessions' items (some keys on
+/// both replicas), one process holds all of them; the fleet comparison of the external metric
+/// equals the one process's (the same keys, values, weights and coins).
+#[tokio::test]
+async fn a_fleet_compares_external_values_as_one_process() {
+    let dir = temp_dir("external-fleet-compare");
+    let (a, b, one) = two_replicas_and_one(&dir).await;
+    let mut rng = SplitMix64::new(52);
+    let base: Vec<u64> = (0..120).map(|_| rng.below(900_001)).collect();
+    let line = |i: usize, k: u64| format!("{{\"key\": \"call-{i}\", \"scores\": {{\"qe\": {}}}}}", k as f64 / 1e6);
+    let v8: Vec<String> = base.iter().enumerate().map(|(i, &k)| line(i, k)).collect();
+    let v9: Vec<String> = base.iter().enumerate().map(|(i, &k)| line(i, k + 30_000 + rng.below(20_001))).collect();
+    let send = |server: &Server, session: &str, part: &[String], name: &str| send_lines(&dir, server, session, part, name);
+    // Replica a: v8's items 0..70, v9's 30..120; replica b: v8's 50..120 (50..70 on both, the
+    // same values), v9's 0..40.
+    send(&a, "v8", &v8[..70], "a8.jsonl");
+    send(&a, "v9", &v9[30..], "a9.jsonl");
+    send(&b, "v8", &v8[50..], "b8.jsonl");
+    send(&b, "v9", &v9[..40], "b9.jsonl");
+    send(&one, "v8", &v8, "o8.jsonl");
+    send(&one, "v9", &v9, "o9.jsonl");
+    let compare = |servers: &str| -> serde_json::Value { serde_json::from_str(&cli(&["compare", "--server", servers, "--session", "v8", "--session", "v9", "--json"])).unwrap() };
+    let (fleet, single) = (compare(&format!("{},{}", a.grpc, b.grpc)), compare(&one.grpc));
+    let (f, s) = (&fleet["external"][0], &single["external"][0]);
+    assert_eq!(f["items"].as_u64(), Some(120), "{fleet}");
+    assert!(s["interval"]["low"].as_f64().is_some() && s["p_value"].as_f64().is_some(), "{single}");
+    for field in ["items", "a", "b", "difference", "interval", "p_value", "extreme_trials"] {
+        assert_eq!(f[field], s[field], "{field}");
+    }
 }

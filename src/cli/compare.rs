@@ -48,6 +48,14 @@ and differences are comparable only under the same tokenizer, references and con
 
 Live: with --server URL --session A --session B, a running server compares two of its sessions over the segments both `recent` windows hold (matched by segment id; a segment scored more than once counts with its latest score). Both sessions must score against the same reference-set version with the same configuration, else the server refuses with FAILED_PRECONDITION. The default replicates there are 200 (the daemon's).
 
+External metrics (live, one server): each external metric session A declares that session B \
+declares too (same decimals and direction) is compared over the items both recent windows hold, \
+matched by item key (else segment id; the latest value of a key counts): both means, their \
+difference A - B, its paired-bootstrap interval (the same weights, drawn from the key) and an \
+approximate-randomization p-value, as above. With no key in common it says there is nothing to \
+compare. Over a fleet each replica sends its external windows too; a key held by several \
+replicas counts once, from the first in --server order.
+
 A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
 replica. Each replica sends both sessions' recent windows (segment keys and integer \
 statistics); they are joined by segment and compared here with the same engine, pairing and \
@@ -209,6 +217,7 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
         }
         m.insert("config".into(), c);
         m.insert("unix_time".into(), json!(report.unix_time));
+        m.insert("external".into(), external_json(&report.external));
         if let Some(f) = &fleet_view {
             m.insert("fleet".into(), f.json.clone());
         }
@@ -230,12 +239,116 @@ fn live(a: &CompareArgs, server: &str) -> Result<(), CliError> {
             lines.insert(1, format!("  {}", f.line));
         }
         lines.extend(comparison_lines(&result, "  "));
+        lines.extend(external_lines(&report.external, "  "));
         lines.push(format!("  config  {}", config.describe()));
         lines.push(PROXY_NOTE.to_owned());
         lines.join("\n") + "\n"
     };
     let mut stdout = std::io::stdout().lock();
     stdout.write_all(out.as_bytes()).and_then(|_| stdout.flush()).map_err(|e| CliError::Output { what: "standard output".into(), source: e })
+}
+
+/// The external metrics of a live comparison as JSON: per metric, the items compared, both
+/// means with their intervals, the difference with its interval and p-value, or the note why
+/// there is none.
+fn external_json(ext: &[crate::pb::ExternalComparison]) -> Value {
+    let iv = |i: &Option<crate::pb::Interval>| i.as_ref().map(|i| json!({"level": i.level, "low": i.low, "high": i.high, "resamples": i.resamples, "method": i.method, "seed": i.seed}));
+    Value::Array(
+        ext.iter()
+            .map(|e| {
+                json!({
+                    "metric": e.metric, "items": e.items,
+                    "a": {"mean": e.a, "interval": iv(&e.a_interval)},
+                    "b": {"mean": e.b, "interval": iv(&e.b_interval)},
+                    "difference": e.difference, "interval": iv(&e.interval),
+                    "p_value": e.p_value, "trials": e.trials, "extreme_trials": e.extreme_trials,
+                    "better": if e.lower_is_better { "lower" } else { "higher" },
+                    "decimals": e.decimals,
+                    "note": (!e.note.is_empty()).then_some(&e.note),
+                })
+            })
+            .collect(),
+    )
+}
+
+/// Human lines of the external metrics of a live comparison (none when no session declares
+/// any), each starting with `indent`.
+fn external_lines(ext: &[crate::pb::ExternalComparison], indent: &str) -> Vec<String> {
+    if ext.is_empty() {
+        return Vec::new();
+    }
+    let mut out = vec![format!("{indent}external metrics: mean over the items both recent windows hold, matched by item key (else segment id)")];
+    for e in ext {
+        let d = e.decimals.min(6) as usize;
+        let (Some(a), Some(b), Some(diff)) = (e.a, e.b, e.difference) else {
+            out.push(format!("{indent}  {:<12}{}", e.metric, e.note));
+            continue;
+        };
+        let signed = |x: f64| if x.abs() < 0.5 * 10f64.powi(-(d as i32)) { format!("{:.d$}", 0.0) } else { format!("{x:+.d$}") };
+        let interval = e.interval.as_ref().map_or_else(String::new, |i| format!(", interval {} .. {}", signed(i.low), signed(i.high)));
+        let p = e.p_value.map_or_else(String::new, |p| format!(", p-value {p:.4}"));
+        let better = if e.lower_is_better { "lower" } else { "higher" };
+        out.push(format!("{indent}  {:<12}A {a:.d$}  B {b:.d$}  A - B {}{interval}{p}; {} items, {better} is better", e.metric, signed(diff), e.items));
+    }
+    out
+}
+
+/// One session's external window values gathered from replicas: per metric (in the order first
+/// seen), its spec and per key its value, keys in the order first seen.
+#[derive(Default)]
+struct FleetExternal {
+    metrics: Vec<(crate::external::ExternalSpec, std::collections::HashMap<u64, i64>, Vec<u64>)>,
+}
+
+impl FleetExternal {
+    /// The slot of `spec`'s metric; a metric declared otherwise than before is refused.
+    fn slot(&mut self, spec: crate::external::ExternalSpec) -> Result<usize, String> {
+        match self.metrics.iter().position(|(s, _, _)| s.name == spec.name) {
+            Some(i) if (self.metrics[i].0.decimals, self.metrics[i].0.higher_is_better) != (spec.decimals, spec.higher_is_better) => Err(format!("external metric '{}' is declared otherwise than on another replica", spec.name)),
+            Some(i) => Ok(i),
+            None => {
+                self.metrics.push((spec, Default::default(), Vec::new()));
+                Ok(self.metrics.len() - 1)
+            }
+        }
+    }
+
+    /// Take in one part of one replica's window values (keys not yet held).
+    fn add(&mut self, part: &crate::pb::ExternalWindowValues) -> Result<(), String> {
+        let spec = part.metric.as_ref().ok_or("an external window chunk without its metric")?;
+        let spec = crate::pb::external::spec_from_pb(spec).map_err(|e| e.0)?;
+        if part.keys.len() != part.values.len() {
+            return Err(format!("external window chunk of {} keys and {} values", part.keys.len(), part.values.len()));
+        }
+        let i = self.slot(spec)?;
+        let (_, values, order) = &mut self.metrics[i];
+        for (&k, &v) in part.keys.iter().zip(&part.values) {
+            if values.insert(k, v).is_none() {
+                order.push(k);
+            }
+        }
+        Ok(())
+    }
+
+    /// Add a later replica's values: keys already held keep their value.
+    fn merge(&mut self, later: FleetExternal) -> Result<(), String> {
+        for (spec, values, order) in later.metrics {
+            let i = self.slot(spec)?;
+            let (_, mine, my_order) = &mut self.metrics[i];
+            for k in order {
+                if let std::collections::hash_map::Entry::Vacant(e) = mine.entry(k) {
+                    e.insert(values[&k]);
+                    my_order.push(k);
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// As the comparison takes them.
+    fn values(self) -> crate::external::compare::WindowValues {
+        self.metrics.into_iter().map(|(spec, values, order)| (spec, order.iter().map(|k| (*k, values[k])).collect())).collect()
+    }
 }
 
 /// What a fleet comparison adds to the report: which replicas answered, in words and JSON.
@@ -261,6 +374,7 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
     let (mut held, mut on_several) = ([0usize; 2], [0usize; 2]);
     let mut head: Option<(String, crate::pb::SegmentChunk)> = None;
     let mut present = [false; 2];
+    let mut external: [FleetExternal; 2] = Default::default();
     let (mut answered, mut missing) = (Vec::new(), Vec::new());
     'replicas: for e in endpoints {
         let name = identify(e.clone()).await.ok().map(|id| id.replica).filter(|n| !n.is_empty()).unwrap_or_else(|| e.url.clone());
@@ -325,6 +439,14 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
                 }
             }
         }
+        // External values: a key counts once per session, from the first replica holding it.
+        for (i, chunks) in got.iter().enumerate() {
+            let mut mine = FleetExternal::default();
+            for part in chunks.iter().flat_map(|c| &c.external) {
+                mine.add(part).map_err(|why| CliError::Usage(format!("{name}'s session '{}': {why}", sessions[i])))?;
+            }
+            external[i].merge(mine).map_err(|why| CliError::Usage(format!("{name}'s session '{}': {why}", sessions[i])))?;
+        }
         answered.push(name);
     }
     if !missing.is_empty() && !partial {
@@ -352,7 +474,13 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
     }
     let threads = threads.max(1);
     let (settings, config2) = (*settings, config);
-    let c = tokio::task::spawn_blocking(move || compare::compare(&config2, &keys, &sa, &sb, &settings, threads)).await.map_err(|e| CliError::Usage(format!("comparison failed: {e}")))?;
+    let [ext_a, ext_b] = external.map(FleetExternal::values);
+    let (c, external) = tokio::task::spawn_blocking(move || {
+        let external: Vec<crate::pb::ExternalComparison> = crate::external::compare::compare_declared(&ext_a, &ext_b, &settings, threads).iter().map(|(spec, x, note)| crate::pb::external::comparison_to_pb(spec, x, note)).collect();
+        (compare::compare(&config2, &keys, &sa, &sb, &settings, threads), external)
+    })
+    .await
+    .map_err(|e| CliError::Usage(format!("comparison failed: {e}")))?;
     let unix_time = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64);
     let report = crate::pb::CompareReport {
         session_a: sessions[0].clone(),
@@ -369,6 +497,7 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
         seed: settings.seed,
         unix_time,
         note: PROXY_NOTE.to_owned(),
+        external,
     };
     let partial_words = if missing.is_empty() { String::new() } else { format!(" (PARTIAL: no answer from {})", missing.join(", ")) };
     let line = format!(
@@ -383,6 +512,7 @@ async fn fleet_compare(endpoints: &[Endpoint], sessions: &[String], settings: &C
         "on_several_replicas": {"a": on_several[0], "b": on_several[1]},
         "held": {"a": held[0], "b": held[1]},
         "recent": "the union of the replicas' recent windows, each segment once (the first replica in --server order that holds it)",
+        "external": "per metric, the union of the replicas' recent windows, each item key once (the first replica in --server order that holds it)",
     });
     Ok((report, FleetView { line, json }))
 }

@@ -387,14 +387,15 @@ fn merge(parts: &[(&str, &pb::SessionInfo, &pb::ScoresReport)], level: f64) -> R
     let [cum_reps, recent_reps] = reps;
     let mut cumulative = totals_with_intervals(&cum, &config, cum_reps.as_ref().filter(|_| complete[0]), level);
     let external: Vec<&[pb::ExternalResult]> = parts.iter().map(|(_, _, r)| r.cumulative.as_ref().map_or(&[][..], |t| &t.external[..])).collect();
-    cumulative.external = crate::pb::external::merge_results(&external).map_err(|e| CliError::Usage(format!("session '{}': {}", first.session, e.0)))?;
-    if !cumulative.external.is_empty() {
-        notes.push("external metrics: fleet sums, mean and standard deviation, no fleet interval yet".into());
-    }
-    merged.cumulative = Some(cumulative);
+    cumulative.external = crate::pb::external::merge_results(&external, level).map_err(|e| CliError::Usage(format!("session '{}': {}", first.session, e.0)))?;
     let mut recent = totals_with_intervals(&recent, &config, recent_reps.as_ref().filter(|_| complete[1]), level);
     let external: Vec<&[pb::ExternalResult]> = parts.iter().map(|(_, _, r)| r.recent.as_ref().map_or(&[][..], |t| &t.external[..])).collect();
-    recent.external = crate::pb::external::merge_results(&external).map_err(|e| CliError::Usage(format!("session '{}': {}", first.session, e.0)))?;
+    recent.external = crate::pb::external::merge_results(&external, level).map_err(|e| CliError::Usage(format!("session '{}': {}", first.session, e.0)))?;
+    let no_interval = |t: &pb::Totals| t.external.iter().any(|e| e.count > 0 && e.interval.is_none());
+    if first.resampling.and_then(|r| r.resamples).unwrap_or(0) > 0 && (no_interval(&cumulative) || no_interval(&recent)) {
+        notes.push("some replica sent no external replicate sums: no fleet interval for those external metrics".into());
+    }
+    merged.cumulative = Some(cumulative);
     merged.recent = Some(recent);
     if first.resampling.and_then(|r| r.resamples).unwrap_or(0) > 0 && !(complete[0] && complete[1]) {
         notes.push("some replica sent no replicate sums for a window: no fleet interval for it".into());

@@ -29,6 +29,7 @@
 //! declared range, more values than [`MAX_EXTERNAL_METRICS`]) is rejected as a whole with a
 //! reason naming the metric ([`ValueError`]); nothing is counted from it.
 
+pub mod compare;
 pub mod replicates;
 pub mod window;
 
@@ -513,12 +514,21 @@ impl ExternalTotals {
         ExternalTotals(vec![ExternalSums::default(); n])
     }
 
-    /// Count one item's values.
+    /// Count one item's values; nothing changes on error.
     pub fn add_item(&mut self, item: &ItemValues) -> Result<(), SumError> {
+        self.apply_item(item, ExternalSums::checked_add)
+    }
+
+    /// Take one item's values out (an item leaving a window); nothing changes on error.
+    pub fn subtract_item(&mut self, item: &ItemValues) -> Result<(), SumError> {
+        self.apply_item(item, ExternalSums::checked_sub)
+    }
+
+    fn apply_item(&mut self, item: &ItemValues, op: fn(&ExternalSums, &ExternalSums) -> Result<ExternalSums, SumError>) -> Result<(), SumError> {
         let mut next = self.0.clone();
         for &(i, f) in &item.0 {
             let slot = next.get_mut(i).ok_or(SumError::Mismatch)?;
-            *slot = slot.checked_add(&ExternalSums::one(f))?;
+            *slot = op(slot, &ExternalSums::one(f))?;
         }
         self.0 = next;
         Ok(())
@@ -557,7 +567,8 @@ impl ExternalDelta {
         for (key, item) in items {
             totals.add_item(item)?;
             if let Some(r) = &mut reps {
-                r.add(*key, item, &mut weights)?;
+                // Scratch sums of this batch, dropped on error.
+                r.add_in_place(*key, item, &mut weights)?;
             }
         }
         Ok(ExternalDelta { totals, replicates: reps, items: items.to_vec() })

@@ -57,12 +57,21 @@ impl ExternalReplicates {
     /// Add one item's values with the weights of `key`; `weights` is scratch space (resized).
     /// Nothing changes on overflow.
     pub fn add(&mut self, key: u64, item: &ItemValues, weights: &mut Vec<u8>) -> Result<(), SumError> {
+        let mut next = self.clone();
+        next.add_in_place(key, item, weights)?;
+        *self = next;
+        Ok(())
+    }
+
+    /// [`ExternalReplicates::add`] without the copy that keeps it whole on error: for scratch
+    /// sums that are dropped on error (a batch's, a window's next sums).
+    pub fn add_in_place(&mut self, key: u64, item: &ItemValues, weights: &mut Vec<u8>) -> Result<(), SumError> {
         self.apply::<true>(key, item, weights)
     }
 
-    /// Take out one item's values added before with the same key (an item leaving a window);
-    /// nothing changes on error.
-    pub fn subtract_item(&mut self, key: u64, item: &ItemValues, weights: &mut Vec<u8>) -> Result<(), SumError> {
+    /// Take out one item's values added before with the same key (an item leaving a window),
+    /// in place: on error the sums are partly changed, so call it on scratch sums.
+    pub fn subtract_in_place(&mut self, key: u64, item: &ItemValues, weights: &mut Vec<u8>) -> Result<(), SumError> {
         self.apply::<false>(key, item, weights)
     }
 
@@ -72,18 +81,16 @@ impl ExternalReplicates {
         }
         weights.resize(self.resamples, 0);
         fill_weights(key, self.seed, weights);
-        let mut next = self.clone();
         for &(m, f) in &item.0 {
             let base = m * self.resamples;
             let f = i128::from(f);
             for (r, &w) in weights.iter().enumerate() {
-                let (c, s) = (&mut next.counts[base + r], &mut next.sums[base + r]);
+                let (c, s) = (&mut self.counts[base + r], &mut self.sums[base + r]);
                 let (nc, ns) = if ADD { (c.checked_add(u64::from(w)), s.checked_add(i128::from(w) * f)) } else { (c.checked_sub(u64::from(w)), s.checked_sub(i128::from(w) * f)) };
                 *c = nc.ok_or(SumError::Overflow { count: *c })?;
                 *s = ns.ok_or(SumError::Overflow { count: *c })?;
             }
         }
-        *self = next;
         Ok(())
     }
 

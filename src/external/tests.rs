@@ -396,3 +396,80 @@ fn window_by_hand_evicts_the_oldest_and_keeps_the_latest_value_per_key() {
     assert_eq!(window::decode_items(&[7, 1, 1, 3], 2), Some(vec![(7, ItemValues(vec![(1, -2)]))]), "zigzag: 3 is -2");
     assert!(window::ExternalWindow::restore(1, 2, None, vec![(1, ItemValues(vec![])), (2, ItemValues(vec![]))], 5).is_err(), "more items than the window holds");
 }
+
+/// The randomization count written the plain way: per trial, per item, its coin (the coins of
+/// the built-in comparison), then both sums with the swapped values exchanged.
+fn naive_extreme(keys: &[u64], a: &[i64], b: &[i64], trials: usize, seed: u64) -> usize {
+    let observed: i128 = a.iter().zip(b).map(|(&x, &y)| i128::from(x) - i128::from(y)).sum();
+    (0..trials)
+        .filter(|&t| {
+            let d: i128 = (0..a.len())
+                .map(|i| {
+                    let swap = (crate::metric::compare::swap_word(keys[i], seed, (t / 64) as u64) >> (t % 64)) & 1 == 1;
+                    let (x, y) = if swap { (b[i], a[i]) } else { (a[i], b[i]) };
+                    i128::from(x) - i128::from(y)
+                })
+                .sum();
+            d.abs() >= observed.abs()
+        })
+        .count()
+}
+
+#[test]
+fn external_comparison_of_a_shifted_copy() {
+    use crate::metric::compare::CompareSettings;
+    let mut rng = crate::rng::SplitMix64::new(12);
+    let n = 150;
+    let keys: Vec<u64> = (0..n).map(|i| segment_key(format!("call-{i}").as_bytes())).collect();
+    let a: Vec<i64> = (0..n).map(|_| rng.below(900_001) as i64).collect();
+    // B = A + 0.05 + noise in -0.02..0.02 (six decimals).
+    let b: Vec<i64> = a.iter().map(|&x| x + 50_000 + rng.below(40_001) as i64 - 20_000).collect();
+    let settings = CompareSettings { resamples: 300, seed: 4, level: 0.95, trials: 2100 };
+    let c = compare::compare_values(&keys, &a, &b, 6, &settings, 2);
+    let (sa, sb): (i64, i64) = (a.iter().sum(), b.iter().sum());
+    let want = (sa - sb) as f64 / (n as f64 * 1e6);
+    assert_eq!(c.difference, Some(want));
+    assert!(want < -0.04 && want > -0.06, "{want}");
+    assert_eq!((c.a.unwrap().mean, c.b.unwrap().mean), (sa as f64 / (n as f64 * 1e6), sb as f64 / (n as f64 * 1e6)));
+    let i = c.interval.unwrap();
+    assert!(i.low < want && want < i.high && i.high < 0.0, "{i:?} {want}");
+    assert_eq!((i.method, i.resamples, i.seed), (crate::metric::compare::DIFFERENCE_METHOD, 300, 4));
+    // Far from chance: no trial comes as far apart; p = 1 / (trials + 1).
+    assert_eq!((c.extreme_trials, c.trials, c.p_value), (0, 2100, Some(1.0 / 2101.0)));
+    // B against A: the same negated, the interval mirrored (tail-symmetric ranks).
+    let r = compare::compare_values(&keys, &b, &a, 6, &settings, 1);
+    assert_eq!(r.difference, Some(-want));
+    assert_eq!((r.interval.unwrap().low, r.interval.unwrap().high), (-i.high, -i.low));
+    // The replicates are the built-in weights of the keys: the interval is that of the paired
+    // replicate mean differences, computed here from fill_weights.
+    let mut d: Vec<f64> = (0..300)
+        .map(|rep| {
+            let (mut cnt, mut s) = (0i128, 0i128);
+            for (k, (&x, &y)) in keys.iter().zip(a.iter().zip(&b)) {
+                let mut w = [0u8; 300];
+                fill_weights(*k, 4, &mut w);
+                cnt += i128::from(w[rep]);
+                s += i128::from(w[rep]) * i128::from(x - y);
+            }
+            s as f64 / (cnt as f64 * 1e6)
+        })
+        .collect();
+    d.sort_by(f64::total_cmp);
+    // k = ceil(0.025 x 300) = 8: d_(8) and d_(293).
+    assert_eq!((i.low, i.high), (d[7], d[292]));
+
+    // Close systems (noise only): the p-value's count equals the plain loop's, whatever the
+    // threads.
+    let close: Vec<i64> = a.iter().map(|&x| x + rng.below(40_001) as i64 - 20_000).collect();
+    let want_c = naive_extreme(&keys, &a, &close, 2100, 4);
+    assert!(want_c > 0 && want_c < 2100, "{want_c}");
+    for threads in [1, 3] {
+        assert_eq!(compare::compare_values(&keys, &a, &close, 6, &settings, threads).extreme_trials, want_c);
+    }
+    // Identical: no difference, every trial as far apart, p = 1.
+    let same = compare::compare_values(&keys, &a, &a, 6, &settings, 1);
+    assert_eq!((same.difference, same.extreme_trials, same.p_value), (Some(0.0), 2100, Some(1.0)));
+    // Nothing in common: nothing to compare.
+    let none = compare::compare_values(&[], &[], &[], 6, &settings, 1);
+    assert_eq!((none.items, none.difference, none.interval, none.p_value), (0, None, None, None));
+}

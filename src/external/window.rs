@@ -22,7 +22,7 @@
 use std::collections::{HashMap, VecDeque};
 
 use super::replicates::ExternalReplicates;
-use super::{ExternalSums, ExternalTotals, ItemValues, SumError};
+use super::{ExternalTotals, ItemValues, SumError};
 
 /// The last `capacity` items that carried external values.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -75,7 +75,8 @@ impl ExternalWindow {
         for (key, item) in self.items.iter().chain(items).take(evicted) {
             totals.subtract_item(item)?;
             if let Some(r) = &mut reps {
-                r.subtract_item(*key, item, &mut weights)?;
+                // `reps` is a scratch copy, dropped on error.
+                r.subtract_in_place(*key, item, &mut weights)?;
             }
         }
         // The sums are right; now the items.
@@ -128,22 +129,15 @@ impl ExternalWindow {
         self.items.iter()
     }
 
+    /// The (key, value) of metric `m` of every item that carries it, oldest first.
+    pub fn values_of(&self, m: usize) -> Vec<(u64, i64)> {
+        self.items.iter().filter_map(|(key, item)| item.0.iter().find(|&&(i, _)| i == m).map(|&(_, v)| (*key, v))).collect()
+    }
+
     /// Per key, its latest item's value of metric `m`, in the order the keys first appear
     /// (oldest first); items without a value of `m` are skipped.
     pub fn latest_by_key(&self, m: usize) -> Vec<(u64, i64)> {
-        let mut at: HashMap<u64, usize> = HashMap::new();
-        let mut out: Vec<(u64, i64)> = Vec::new();
-        for (key, item) in &self.items {
-            let Some(&(_, v)) = item.0.iter().find(|&&(i, _)| i == m) else { continue };
-            match at.get(key) {
-                Some(&i) => out[i].1 = v,
-                None => {
-                    at.insert(*key, out.len());
-                    out.push((*key, v));
-                }
-            }
-        }
-        out
+        latest_by_key(self.values_of(m))
     }
 
     /// Forget every item (ids go on).
@@ -157,17 +151,21 @@ impl ExternalWindow {
     }
 }
 
-impl ExternalTotals {
-    /// Take one item's values out (an item leaving a window); nothing changes on error.
-    pub fn subtract_item(&mut self, item: &ItemValues) -> Result<(), SumError> {
-        let mut next = self.0.clone();
-        for &(i, f) in &item.0 {
-            let slot = next.get_mut(i).ok_or(SumError::Mismatch)?;
-            *slot = slot.checked_sub(&ExternalSums::one(f))?;
+/// Per key, its latest value, in the order the keys first appear, of (key, value) pairs oldest
+/// first.
+pub fn latest_by_key(values: Vec<(u64, i64)>) -> Vec<(u64, i64)> {
+    let mut at: HashMap<u64, usize> = HashMap::new();
+    let mut out: Vec<(u64, i64)> = Vec::with_capacity(values.len());
+    for (key, v) in values {
+        match at.get(&key) {
+            Some(&i) => out[i].1 = v,
+            None => {
+                at.insert(key, out.len());
+                out.push((key, v));
+            }
         }
-        self.0 = next;
-        Ok(())
     }
+    out
 }
 
 /// Append one item as a durable row: its key, the number of values, then per value its metric

@@ -226,7 +226,7 @@ pub fn difference_interval(ra: &Replicates, rb: &Replicates, m: Metric, level: f
 
 /// The start of a segment's swap coins under `seed`.
 #[inline]
-fn swap_base(key: u64, seed: u64) -> u64 {
+pub fn swap_base(key: u64, seed: u64) -> u64 {
     mix64(key ^ mix64(seed ^ SWAP_DOMAIN))
 }
 
@@ -335,45 +335,75 @@ pub fn randomization(config: &ScoreConfig, keys: &[u64], a: &[SegmentStats], b: 
     };
     let (mut ra, mut rb) = (Vec::new(), Vec::new());
     let observed: Vec<f64> = score_diffs(&vec![0; diff.fields.len()], &mut ra, &mut rb).map(f64::abs).collect();
-    let blocks = trials.div_ceil(TRIAL_BLOCK);
-    let next = std::sync::atomic::AtomicUsize::new(0);
-    let work = || {
-        let mut count = vec![0usize; metrics.len()];
-        let (mut ra, mut rb) = (Vec::new(), Vec::new());
-        let mut sums = Vec::new();
-        let mut table = Vec::new();
-        loop {
-            let blk = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
-            if blk >= blocks {
-                return count;
-            }
-            let first = blk * TRIAL_BLOCK;
-            let n = TRIAL_BLOCK.min(trials - first);
-            block_sums(&diff, first, n, &mut table, &mut sums);
-            let w = diff.fields.len();
-            for t in 0..n {
-                for (j, d) in score_diffs(&sums[t * w..(t + 1) * w], &mut ra, &mut rb).enumerate() {
-                    count[j] += usize::from(d.abs() >= observed[j] - TIE_TOLERANCE);
+    let swaps = SwapRows { rows: &diff.rows, bases: &diff.bases, width: diff.fields.len() };
+    let counts = swaps.count_trials(trials, threads, metrics.len(), || (Vec::new(), Vec::new()), |(ra, rb), d, count| {
+        for (j, x) in score_diffs(d, ra, rb).enumerate() {
+            count[j] += usize::from(x.abs() >= observed[j] - TIE_TOLERANCE);
+        }
+    });
+    metrics.iter().zip(counts).map(|(&m, c)| (m, c)).collect()
+}
+
+/// What the randomization swaps, in any integer statistics: per item whose two systems differ,
+/// its row of differences `a - b` (`width` values) and its [`swap_word`] start (the same
+/// coins for every user of the engine: a function of key, trial and seed).
+pub struct SwapRows<'a> {
+    /// Row-major, `width` values per item.
+    pub rows: &'a [i64],
+    /// Per item, `mix64(key ^ mix64(seed ^ SWAP_DOMAIN))` ([`swap_base`]).
+    pub bases: &'a [u64],
+    /// Values per row.
+    pub width: usize,
+}
+
+impl SwapRows<'_> {
+    /// Run trials `0..trials` on up to `threads` threads: each trial's D_S (the sum of the rows
+    /// its coins swap, `width` values) goes to `judge` with a per-thread state from `state` and
+    /// `counters` counters; the counters summed over all trials (results never depend on the
+    /// threads).
+    pub fn count_trials<S, M, J>(&self, trials: usize, threads: usize, counters: usize, state: M, judge: J) -> Vec<usize>
+    where
+        M: Fn() -> S + Sync,
+        J: Fn(&mut S, &[i64], &mut [usize]) + Sync,
+    {
+        let blocks = trials.div_ceil(TRIAL_BLOCK);
+        let next = std::sync::atomic::AtomicUsize::new(0);
+        let w = self.width;
+        let work = || {
+            let mut count = vec![0usize; counters];
+            let mut st = state();
+            let mut sums = Vec::new();
+            let mut table = Vec::new();
+            loop {
+                let blk = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                if blk >= blocks {
+                    return count;
+                }
+                let first = blk * TRIAL_BLOCK;
+                let n = TRIAL_BLOCK.min(trials - first);
+                block_sums(self, first, n, &mut table, &mut sums);
+                for t in 0..n {
+                    judge(&mut st, &sums[t * w..(t + 1) * w], &mut count);
                 }
             }
-        }
-    };
-    let threads = threads.clamp(1, blocks.max(1));
-    let counts: Vec<Vec<usize>> = if threads == 1 {
-        vec![work()]
-    } else {
-        std::thread::scope(|s| {
-            let handles: Vec<_> = (0..threads).map(|_| s.spawn(work)).collect();
-            handles.into_iter().map(|h| h.join().expect("randomization thread panicked")).collect()
-        })
-    };
-    metrics.iter().enumerate().map(|(j, &m)| (m, counts.iter().map(|c| c[j]).sum())).collect()
+        };
+        let threads = threads.clamp(1, blocks.max(1));
+        let counts: Vec<Vec<usize>> = if threads == 1 {
+            vec![work()]
+        } else {
+            std::thread::scope(|s| {
+                let handles: Vec<_> = (0..threads).map(|_| s.spawn(work)).collect();
+                handles.into_iter().map(|h| h.join().expect("randomization thread panicked")).collect()
+            })
+        };
+        (0..counters).map(|j| counts.iter().map(|c| c[j]).sum()).collect()
+    }
 }
 
 /// `sums[t * w ..][..w]` = D_S of trial `first + t` for t in `0..n` (`first` a multiple of 64).
-fn block_sums(diff: &Differences, first: usize, n: usize, table: &mut Vec<i64>, sums: &mut Vec<i64>) {
+fn block_sums(diff: &SwapRows<'_>, first: usize, n: usize, table: &mut Vec<i64>, sums: &mut Vec<i64>) {
     debug_assert_eq!(first % 64, 0);
-    let w = diff.fields.len();
+    let w = diff.width;
     sums.clear();
     sums.resize(n * w, 0);
     if w == 0 {

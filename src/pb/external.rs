@@ -50,7 +50,20 @@ pub fn result_to_pb(spec: &ExternalSpec, sums: &ExternalSums, reps: Option<(&Ext
         stddev: sums.variance(spec.decimals).map(f64::sqrt),
         interval: reps.and_then(|(r, m)| r.interval(m, spec.decimals, level)).map(interval_to_pb),
         lower_is_better: !spec.higher_is_better,
+        replicate_sums: None,
     }
+}
+
+/// Metric `m`'s replicate sums as the API writes them.
+pub fn replicate_sums_to_pb(r: &ExternalReplicates, m: usize) -> pb::ExternalReplicateSums {
+    let (counts, sums): (Vec<u64>, Vec<String>) = (0..r.resamples()).filter_map(|i| r.replicate(m, i)).map(|(c, s)| (c, s.to_string())).unzip();
+    pb::ExternalReplicateSums { resamples: r.resamples() as u32, seed: r.seed(), counts, sums }
+}
+
+/// One metric's replicate sums from an API message (None: they do not parse or fit).
+pub fn replicate_sums_from_pb(p: &pb::ExternalReplicateSums) -> Option<ExternalReplicates> {
+    let sums = p.sums.iter().map(|s| s.parse::<i128>().ok()).collect::<Option<Vec<i128>>>()?;
+    ExternalReplicates::from_parts(1, p.resamples as usize, p.seed, p.counts.clone(), sums)
 }
 
 /// Every declared metric's result, in declaration order.
@@ -58,21 +71,50 @@ pub fn results_to_pb(d: &Declaration, totals: &ExternalTotals, reps: Option<&Ext
     d.specs().iter().zip(&totals.0).enumerate().map(|(i, (s, t))| result_to_pb(s, t, reps.map(|r| (r, i)), level)).collect()
 }
 
+/// A comparison of one external metric as the API writes it.
+pub fn comparison_to_pb(spec: &ExternalSpec, c: &crate::external::compare::ValueComparison, note: &str) -> pb::ExternalComparison {
+    use super::convert::interval_to_pb;
+    pb::ExternalComparison {
+        metric: spec.name.clone(),
+        items: c.items,
+        a: c.a.map(|s| s.mean),
+        b: c.b.map(|s| s.mean),
+        a_interval: c.a.and_then(|s| s.interval).map(interval_to_pb),
+        b_interval: c.b.and_then(|s| s.interval).map(interval_to_pb),
+        difference: c.difference,
+        interval: c.interval.map(interval_to_pb),
+        p_value: c.p_value,
+        trials: c.trials as u64,
+        extreme_trials: c.extreme_trials as u64,
+        lower_is_better: !spec.higher_is_better,
+        decimals: spec.decimals,
+        note: note.to_owned(),
+    }
+}
+
 /// The external results of several replicas' reports added up (a fleet figure): counts and
-/// fixed-point sums exactly, the mean and standard deviation derived from the sums. No
-/// interval: replicas do not send their external replicate sums yet. Refused when the replicas
-/// declare different metrics.
-pub fn merge_results(parts: &[&[pb::ExternalResult]]) -> Result<Vec<pb::ExternalResult>, ConvertError> {
+/// fixed-point sums exactly, the mean and standard deviation derived from the sums, and the
+/// interval at `level` from the replicate sums added up, when every replica sent them with the
+/// same replicates and seed (else none). Refused when the replicas declare different metrics.
+pub fn merge_results(parts: &[&[pb::ExternalResult]], level: f64) -> Result<Vec<pb::ExternalResult>, ConvertError> {
     let Some(first) = parts.first() else { return Ok(Vec::new()) };
     let same = |a: &pb::ExternalResult, b: &pb::ExternalResult| (a.metric.as_str(), a.decimals, a.lower_is_better) == (b.metric.as_str(), b.decimals, b.lower_is_better);
     let int = |s: &str, what: &str| s.parse::<i128>().map_err(|_| ConvertError(format!("external {what} '{s}' is not an integer")));
     let mut out = Vec::with_capacity(first.len());
     for (i, head) in first.iter().enumerate() {
         let mut acc = ExternalSums::default();
+        // None once a replica sent no (or unlike) replicate sums.
+        let mut reps: Option<Option<ExternalReplicates>> = None;
         for p in parts {
             let r = p.get(i).filter(|r| same(r, head) && p.len() == first.len()).ok_or_else(|| ConvertError("the replicas declare different external metrics".into()))?;
             let s = ExternalSums { count: r.count, sum: int(&r.sum, "sum")?, squares: int(&r.squares, "squares")? };
             acc = acc.checked_add(&s).map_err(|e| ConvertError(e.to_string()))?;
+            let mine = r.replicate_sums.as_ref().and_then(replicate_sums_from_pb);
+            reps = Some(match (reps, mine) {
+                (None, m) => m,
+                (Some(Some(mut a)), Some(m)) => a.merge(&m).ok().map(|_| a),
+                _ => None,
+            });
         }
         out.push(pb::ExternalResult {
             metric: head.metric.clone(),
@@ -82,8 +124,9 @@ pub fn merge_results(parts: &[&[pb::ExternalResult]]) -> Result<Vec<pb::External
             decimals: head.decimals,
             mean: acc.mean(head.decimals),
             stddev: acc.variance(head.decimals).map(f64::sqrt),
-            interval: None,
+            interval: reps.flatten().and_then(|r| r.interval(0, head.decimals, level)).map(interval_to_pb),
             lower_is_better: head.lower_is_better,
+            replicate_sums: None,
         });
     }
     Ok(out)
@@ -141,10 +184,47 @@ mod tests {
             results_to_pb(&d, &t, None, 0.95)
         };
         let (a, b, all) = (totals(&[0.25, 0.5]), totals(&[0.75]), totals(&[0.25, 0.5, 0.75]));
-        assert_eq!(merge_results(&[&a, &b]).unwrap(), all);
+        assert_eq!(merge_results(&[&a, &b], 0.95).unwrap(), all);
         let other = results_to_pb(&Declaration::new(vec![ExternalSpec::new("qe", 0.0, 1.0).unwrap()]).unwrap(), &ExternalTotals::new(1), None, 0.95);
-        assert!(merge_results(&[&a, &other]).unwrap_err().0.contains("different"));
-        assert_eq!(merge_results(&[]).unwrap(), Vec::new());
+        assert!(merge_results(&[&a, &other], 0.95).unwrap_err().0.contains("different"));
+        assert_eq!(merge_results(&[], 0.95).unwrap(), Vec::new());
+    }
+
+    #[test]
+    fn fleet_intervals_come_from_the_summed_replicate_sums() {
+        let d = decl();
+        // Results with replicate sums over the items `from..to` (qe = i / 100, key "call-i").
+        let part = |from: usize, to: usize| {
+            let mut t = ExternalTotals::new(d.len());
+            let mut reps = ExternalReplicates::new(d.len(), 40, 3);
+            let mut w = Vec::new();
+            for i in from..to {
+                let it = d.check_item([("qe", i as f64 / 100.0)]).unwrap();
+                t.add_item(&it).unwrap();
+                reps.add(segment_key(format!("call-{i}").as_bytes()), &it, &mut w).unwrap();
+            }
+            let mut r = results_to_pb(&d, &t, Some(&reps), 0.9);
+            for (m, x) in r.iter_mut().enumerate() {
+                x.replicate_sums = Some(replicate_sums_to_pb(&reps, m));
+            }
+            (r, reps)
+        };
+        let ((a, _), (b, _), (all, reps)) = (part(0, 17), part(17, 50), part(0, 50));
+        // One metric's sums read back are that metric's replicates.
+        let back = replicate_sums_from_pb(all[0].replicate_sums.as_ref().unwrap()).unwrap();
+        assert!((0..40).all(|r| back.replicate(0, r) == reps.replicate(0, r)) && back.replicate(0, 40).is_none());
+        assert!(reps.replicate(0, 7).is_some_and(|(c, s)| c > 0 && s > 0));
+        let fleet = merge_results(&[&a, &b], 0.9).unwrap();
+        assert_eq!(fleet[0].interval, all[0].interval, "the same interval as one process");
+        assert!(fleet[0].interval.is_some() && fleet[1].interval.is_none(), "edit_rate has no values");
+        // A replica without replicate sums: no fleet interval.
+        let mut bare = b.clone();
+        bare[0].replicate_sums = None;
+        assert!(merge_results(&[&a, &bare], 0.9).unwrap()[0].interval.is_none());
+        // Sums that do not parse are refused as such (no interval).
+        let mut bad = b.clone();
+        bad[0].replicate_sums.as_mut().unwrap().sums[0] = "x".into();
+        assert!(replicate_sums_from_pb(bad[0].replicate_sums.as_ref().unwrap()).is_none());
     }
 
     #[test]

@@ -4,6 +4,8 @@
 use std::collections::HashMap;
 
 use super::error::{Result, ServiceError};
+use crate::external::compare::{compare_declared, ValueComparison, WindowValues};
+use crate::external::ExternalSpec;
 use crate::metric::compare::{compare, CompareSettings, Comparison};
 use crate::metric::resample::Replicates;
 use crate::metric::{CorpusStats, SegmentStats};
@@ -55,6 +57,20 @@ pub fn paired(a: &Session, b: &Session, settings: &CompareSettings, threads: usi
     Ok(Paired { comparison, recent_a: in_a.len() as u64, recent_b: in_b.len() as u64 })
 }
 
+/// A session's external `recent` window values for a comparison (per metric, latest value
+/// per key).
+pub fn external_values(s: &Session) -> WindowValues {
+    s.spec().external.specs().iter().enumerate().map(|(m, spec)| (spec.clone(), s.external_recent_by_key(m))).collect()
+}
+
+/// Each external metric session `a` declares, in its order, compared with session `b`'s over
+/// the items both `recent` windows hold (matched by key; a key seen more than once counts with
+/// its latest value), with why not when there is nothing to compare (CPU work: call from a
+/// blocking thread).
+pub fn external(a: &Session, b: &Session, settings: &CompareSettings, threads: usize) -> Vec<(ExternalSpec, ValueComparison, &'static str)> {
+    compare_declared(&external_values(a), &external_values(b), settings, threads)
+}
+
 /// The statistics and replicate sums of both `recent` windows, when they hold the same
 /// segments, each once (a probe set replayed to both sessions, say): then the comparison
 /// [`paired`] makes sums exactly these (the same segments with the same weights, integers),
@@ -75,7 +91,8 @@ pub fn same_segments(a: &Session, b: &Session) -> Option<((CorpusStats, Replicat
 pub const SEGMENT_CHUNK: usize = 1024;
 
 /// A session's `recent` window as chunks of `per_chunk` segments (at least one chunk, empty
-/// when the window is). CPU work: call from a blocking thread.
+/// when the window is), then its external metrics' window values in chunks of
+/// [`EXTERNAL_CHUNK`]. CPU work: call from a blocking thread.
 pub fn segment_chunks(s: &Session, per_chunk: usize) -> Vec<crate::pb::SegmentChunk> {
     let layout = crate::metric::layout::Layout::new(&s.spec().config);
     let segments = s.recent_segments();
@@ -98,10 +115,20 @@ pub fn segment_chunks(s: &Session, per_chunk: usize) -> Vec<crate::pb::SegmentCh
         })
         .collect();
     if out.is_empty() {
-        out.push(head);
+        out.push(head.clone());
+    }
+    for (spec, values) in external_values(s) {
+        let metric = crate::pb::external::spec_to_pb(&spec);
+        for part in values.chunks(EXTERNAL_CHUNK) {
+            let (keys, values) = part.iter().copied().unzip();
+            out.push(crate::pb::SegmentChunk { external: vec![crate::pb::ExternalWindowValues { metric: Some(metric.clone()), keys, values }], ..head.clone() });
+        }
     }
     out
 }
+
+/// External values per [`crate::pb::SegmentChunk`] (at most about 1.3 MB: two varints each).
+pub const EXTERNAL_CHUNK: usize = 65_536;
 
 #[cfg(test)]
 mod tests {
@@ -141,6 +168,42 @@ mod tests {
                 .collect();
             s.apply("", 0, &outcomes, 0, None).unwrap();
         }
+    }
+
+    /// External metrics: compared when both sessions declare them alike, with the reason
+    /// otherwise; a key sent twice counts with its latest value.
+    #[test]
+    fn external_metrics_are_paired_by_key_when_declared_alike() {
+        use crate::external::Declaration;
+        let set = Arc::new(RefSet::new(vec![SegmentInput { id: "n1".into(), source: None, refs: vec!["die Fähre".into()] }]).unwrap());
+        let spec = |name: &str, decl: &[&str]| SessionSpec {
+            name: name.into(),
+            refset: "ferry".into(),
+            config: Default::default(),
+            labels: Default::default(),
+            window: 10,
+            resampling: Default::default(),
+            target_language: None,
+            guard_settings: Vec::new(),
+            external: Declaration::new(decl.iter().map(|d| d.parse().unwrap()).collect()).unwrap(),
+        };
+        let a = Session::new(spec("a", &["qe:0:1", "ter:0:100:better=lower", "fluency:0:5"]), Arc::clone(&set), 0);
+        let b = Session::new(spec("b", &["ter:0:100:better=lower:places=2", "qe:0:1"]), set, 0);
+        let send = |s: &Session, name: &str, items: &[(&str, f64)]| {
+            let m = s.spec().external.clone();
+            let items: Vec<_> = items.iter().map(|(k, v)| (crate::metric::resample::segment_key(k.as_bytes()), m.check_item([(name, *v)]).unwrap())).collect();
+            s.apply_external(&s.external_delta(&items).unwrap()).unwrap();
+        };
+        send(&a, "qe", &[("k1", 0.5), ("k2", 0.25), ("k1", 0.75), ("only-a", 0.1)]);
+        send(&b, "qe", &[("k2", 0.5), ("k1", 0.5), ("only-b", 0.9)]);
+        let settings = CompareSettings { resamples: 50, seed: 1, level: DEFAULT_LEVEL, trials: 100 };
+        let got = external(&a, &b, &settings, 1);
+        let names: Vec<(&str, &str)> = got.iter().map(|(s, _, note)| (s.name.as_str(), *note)).collect();
+        assert_eq!(names, vec![("qe", ""), ("ter", crate::external::compare::DECLARED_OTHERWISE), ("fluency", crate::external::compare::NOT_IN_B)]);
+        // k1: 0.75 (latest) against 0.5; k2: 0.25 against 0.5. Mean difference 0.
+        let qe = &got[0].1;
+        assert_eq!((qe.items, qe.difference, qe.a.unwrap().mean, qe.b.unwrap().mean), (2, Some(0.0), 0.5, 0.5));
+        assert_eq!((got[1].1.items, got[1].1.difference), (0, None));
     }
 
     /// The windows' own sums give exactly what the paired comparison gives when both windows

@@ -512,6 +512,13 @@ pub fn report(state: &State, session: &Session, level: f64, with_sums: bool) -> 
         cumulative_totals.external = crate::pb::external::results_to_pb(&spec.external, &ext.totals, ext.replicates.as_ref(), level);
         let (totals, reps) = session.external_recent();
         recent_totals.external = crate::pb::external::results_to_pb(&spec.external, &totals, reps.as_ref(), level);
+        if with_sums {
+            for (results, reps) in [(&mut cumulative_totals.external, ext.replicates.as_ref()), (&mut recent_totals.external, reps.as_ref())] {
+                for (m, r) in results.iter_mut().enumerate() {
+                    r.replicate_sums = reps.map(|x| crate::pb::external::replicate_sums_to_pb(x, m));
+                }
+            }
+        }
     }
     pb::ScoresReport {
         session: spec.name.clone(),
@@ -561,6 +568,7 @@ fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<
     let p = super::compare::paired(a, b, &settings, threads)?;
     let c = p.comparison;
     let metrics = pb::convert::metric_comparisons_to_pb(&c);
+    let external = super::compare::external(a, b, &settings, threads).iter().map(|(spec, x, note)| crate::pb::external::comparison_to_pb(spec, x, note)).collect();
     Ok(pb::CompareReport {
         session_a: a.spec().name.clone(),
         session_b: b.spec().name.clone(),
@@ -576,6 +584,7 @@ fn compare_sessions(a: &Session, b: &Session, r: &pb::CompareRequest) -> Result<
         seed: settings.seed,
         unix_time: unix_now(),
         note: PROXY_NOTE.to_owned(),
+        external,
     })
 }
 

@@ -341,13 +341,14 @@ impl Session {
 
     /// Add a batch's external values (after the batch was applied, not a duplicate) to the
     /// cumulative sums and the `recent` window; the rows the window's durable copy gains.
-    /// Nothing changes when the cumulative sums would overflow. (The window's sums cannot
-    /// overflow when those do not: its items, the batch's included, are some of theirs.)
+    /// Nothing changes on error (sums that would overflow).
     pub fn apply_external(&self, d: &crate::external::ExternalDelta) -> Result<ExternalRows, crate::external::SumError> {
         let mut ext = self.external_stats();
-        ext.cumulative.add(d)?;
+        let mut cumulative = ext.cumulative.clone();
+        cumulative.add(d)?;
         let first_id = ext.recent.next_id();
         ext.recent.add(&d.items, d.replicates.as_ref())?;
+        ext.cumulative = cumulative;
         drop(ext);
         let mut values = Vec::with_capacity(d.items.len() * 4);
         d.items.iter().for_each(|(k, v)| crate::external::window::encode_item(*k, v, &mut values));
@@ -388,7 +389,9 @@ impl Session {
     /// Per key, the latest fixed-point value of external metric `m` in the `recent` window,
     /// keys in the order they first appear.
     pub fn external_recent_by_key(&self, m: usize) -> Vec<(u64, i64)> {
-        self.external_stats().recent.latest_by_key(m)
+        // One pass under the lock; the keys are matched up outside it.
+        let values = self.external_stats().recent.values_of(m);
+        crate::external::window::latest_by_key(values)
     }
 
     /// The guards' configuration of this session.

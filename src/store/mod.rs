@@ -598,34 +598,9 @@ impl Store {
                 if let Some(r) = reps {
                     replicates.insert(*name, r.as_slice())?;
                 }
-                for (first, b) in blocks {
-                    window.insert((*name, *first), b.as_slice())?;
-                }
-                // Blocks that start at or before the first record to keep: all but the last of
-                // them hold only records that left the window and that the replicate copy
-                // covers.
-                let mut old = Vec::new();
-                for r in window.range((*name, 0)..=(*name, *first_live))? {
-                    old.push(r?.0.value().1);
-                }
-                old.pop();
-                for first in old {
-                    window.remove((*name, first))?;
-                }
-                // The same for the external window's items.
-                for (first, b) in external_blocks {
-                    external_window.insert((*name, *first), b.as_slice())?;
-                }
-                if let Some(from) = external_from {
-                    let mut old = Vec::new();
-                    for r in external_window.range((*name, 0)..=(*name, *from))? {
-                        old.push(r?.0.value().1);
-                    }
-                    old.pop();
-                    for first in old {
-                        external_window.remove((*name, first))?;
-                    }
-                }
+                // Records to keep: the window's and those the replicate copy does not cover.
+                put_blocks(&mut window, name, blocks, Some(*first_live))?;
+                put_blocks(&mut external_window, name, external_blocks, *external_from)?;
                 for (producer, seq) in &by_session[name].marks {
                     marks.insert((*name, *producer), *seq)?;
                 }
@@ -633,6 +608,24 @@ impl Store {
             Ok(())
         })
     }
+}
+
+/// Write a session's new blocks of `table`, then drop its blocks that hold only records before
+/// `keep_from` (when given): of the blocks that start at or before it, all but the last.
+fn put_blocks(table: &mut redb::Table<'_, (&str, u64), &[u8]>, name: &str, blocks: &[(u64, Vec<u8>)], keep_from: Option<u64>) -> Result<(), redb::Error> {
+    for (first, b) in blocks {
+        table.insert((name, *first), b.as_slice())?;
+    }
+    let Some(keep_from) = keep_from else { return Ok(()) };
+    let mut old = Vec::new();
+    for r in table.range((name, 0)..=(name, keep_from))? {
+        old.push(r?.0.value().1);
+    }
+    old.pop();
+    for first in old {
+        table.remove((name, first))?;
+    }
+    Ok(())
 }
 
 /// Schema 1 -> 2: each session's window records, one row each, become one block.
@@ -830,6 +823,60 @@ mod tests {
         let (c2, r2) = restored.replicates();
         assert!(c1.is_some() && r1.is_some());
         assert_eq!((c1, r1), (c2, r2), "replicate sums rebuilt from the copy and the kept records");
+    }
+
+    /// The external window's items: one block per group commit that added items; only the
+    /// blocks with an item still in the window stay (a reset drops them all), and the items read
+    /// back rebuild the same window sums.
+    #[test]
+    fn external_window_blocks_hold_exactly_the_window() {
+        use crate::external::{Declaration, ExternalSpec};
+        use crate::session::Session;
+        let d = dir("external-blocks");
+        let refs = std::sync::Arc::new(set("Tor C"));
+        let external = Declaration::new(vec![ExternalSpec::new("qe", -1.0, 1.0).unwrap()]).unwrap();
+        let spec = SessionSpec { name: "s".into(), refset: "r".into(), config: ScoreConfig::default(), labels: BTreeMap::new(), window: 29, resampling: Resampling { resamples: 20, seed: 5 }, target_language: None, guard_settings: Vec::new(), external };
+        let session = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
+        let mut rng = crate::rng::SplitMix64::new(8);
+        let st = Store::open(&d).unwrap();
+        st.put_refset("r", &refs).unwrap();
+        st.put_session(&spec, &refs.digest_hex(), 1).unwrap();
+        let (mut seq, mut commits): (u64, Vec<(u64, u64)>) = (0, Vec::new());
+        for round in 0..50 {
+            if round == 30 {
+                session.reset();
+                st.reset_session("s", session.state().window.next_id()).unwrap();
+                commits.clear();
+            }
+            let mut group = Vec::new();
+            for _ in 0..1 + rng.below(3) {
+                seq += 1;
+                // Values of either sign, some items without a key of their own.
+                let items: Vec<(u64, crate::external::ItemValues)> = (0..rng.below(12)).map(|_| (rng.below(40), spec.external.check_item([("qe", rng.below(2_000_001) as f64 / 1e6 - 1.0)]).unwrap())).collect();
+                let mut applied = session.apply("p", seq, &[], 0, None).unwrap();
+                applied.external_rows = Some(session.apply_external(&session.external_delta(&items).unwrap()).unwrap());
+                let (copy, ids) = session.external_durable();
+                (applied.external, applied.external_window) = (Some(copy), Some(ids));
+                group.push(applied);
+            }
+            st.commit_batches(&group.iter().map(|applied| BatchWrite { session: "s", applied }).collect::<Vec<_>>()).unwrap();
+            let added: u64 = group.iter().map(|a| a.external_rows.as_ref().unwrap().items).sum();
+            if added > 0 {
+                commits.push((group[0].external_rows.as_ref().unwrap().first_id, added));
+            }
+            let (first, _) = group.last().unwrap().external_window.unwrap();
+            let live = commits.iter().filter(|(f, n)| f + n > first).count() as u64;
+            let blocks = st.db.begin_read().unwrap().open_table(EXTERNAL_WINDOW).unwrap().len().unwrap();
+            assert_eq!(blocks, live, "round {round}: blocks kept");
+        }
+        drop(st);
+        let snap = Store::open(&d).unwrap().load().unwrap();
+        let s = &snap.sessions[0];
+        let restored = Session::new(spec.clone(), std::sync::Arc::clone(&refs), 1);
+        restored.restore_external(s.external.clone().unwrap(), s.external_recent.clone(), s.external_next).unwrap();
+        assert_eq!(s.external_recent.len(), 29, "the window is full again after the reset");
+        assert_eq!(restored.external_recent(), session.external_recent());
+        assert_eq!(restored.external_durable(), session.external_durable());
     }
 
     /// A store of schema 1 (one stored row per window record) is upgraded on open: the same
