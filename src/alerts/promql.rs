@@ -69,6 +69,7 @@ pub fn daemon_only(rule: &Rule) -> Option<&'static str> {
         (Condition::Decline { .. }, _) => Some("a `decline` rule is a sequential test over the stream of chunks: the daemon evaluates it, Prometheus cannot"),
         (Condition::FlagRate { .. }, _) => Some("a `flag-rate` rule's Wilson bound comes from the guard counts the daemon keeps: the daemon evaluates it"),
         (_, Window::Recent) => Some("the `recent` window is the session's last segments by count, which Prometheus cannot select: use `all` or a time window such as 15m"),
+        (_, Window::Segments(_)) => Some("a window of the last N segments is a count of segments, which Prometheus cannot select: use `all` or a time window such as 15m"),
         _ => None,
     }
 }
@@ -426,7 +427,7 @@ points = 2
         assert!(y.contains("session:mtgauge_alert_segments:increase15m >= 300\n"));
         assert!(y.contains("session:mtgauge_alert_segments:sum{session=\"ferry.v7\"} >= 200\n"), "drop: the baseline's guard too");
         assert!(y.contains("        for: 120s\n") && y.contains("        for: 0s\n"));
-        assert!(y.contains(&format!("        # for_segments = {}: the daemon also waits", crate::alerts::rules::DEFAULT_FOR_SEGMENTS)), "a rule with the default for-duration says what Prometheus cannot count: {y}");
+        assert!(y.contains(&format!("        # for_segments = {}: the daemon also waits", crate::alerts::rules::DEFAULT_DROP_FOR_SEGMENTS)), "a rule with the default for-duration says what Prometheus cannot count: {y}");
         // Labels and annotations quoted; template braces of user text kept literal.
         assert!(y.contains("          team: \"ferry \\\"mt\\\"\"\n"), "{y}");
         assert!(y.contains("          metric: \"chrf\"\n") && y.contains("          severity: \"warning\"\n"));

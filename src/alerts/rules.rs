@@ -71,6 +71,18 @@ pub const DEFAULT_EVAL_SECONDS: u64 = 5;
 pub const MIN_WINDOW_SECONDS: u64 = 60;
 /// Longest time window a rule may use, in seconds (7 days).
 pub const MAX_WINDOW_SECONDS: u64 = 7 * 86_400;
+/// Shortest segment-count window a rule may use (`100seg`).
+pub const MIN_WINDOW_SEGMENTS: u64 = 100;
+/// Longest segment-count window a rule may use.
+pub const MAX_WINDOW_SEGMENTS: u64 = 1_000_000;
+/// The window of `drop` rules unless they set one: the last 2,000 segments of each session.
+/// Twice the default recent window: the paired difference's interval is then 0.7 times as wide,
+/// which is what lets a rule set for a 1-point drop stay silent for 10 million stable segments
+/// and still find a 2-point drop within 4,000 segments (`mtgauge alert-bench`).
+pub const DEFAULT_DROP_WINDOW_SEGMENTS: u64 = 2_000;
+/// Segments a `drop` rule's condition must hold through unless it sets `for_segments`: with its
+/// wider window it needs less confirmation, and a 5-point drop is found within 1,000 segments.
+pub const DEFAULT_DROP_FOR_SEGMENTS: u64 = 200;
 /// Most rules a config file may declare.
 pub const MAX_RULES: usize = 256;
 /// Labels every alert carries, set by mtgauge (not by `extra_labels`).
@@ -136,6 +148,8 @@ pub enum Window {
     All,
     /// The segments scored in the last this many seconds.
     Last(u64),
+    /// The last this many segments each session scored (to within 1/30 of it).
+    Segments(u64),
 }
 
 impl Window {
@@ -146,7 +160,14 @@ impl Window {
             "all" => return Ok(Window::All),
             _ => {}
         }
-        let bad = || format!("window '{text}' is not recent, all, or a duration such as 15m or 1h (an integer and s, m, h or d)");
+        let bad = || format!("window '{text}' is not recent, all, a duration such as 15m or 1h (an integer and s, m, h or d), or a count of segments such as 2000seg");
+        if let Some(n) = text.strip_suffix("seg") {
+            let n: u64 = n.parse().map_err(|_| bad())?;
+            if !(MIN_WINDOW_SEGMENTS..=MAX_WINDOW_SEGMENTS).contains(&n) {
+                return Err(format!("window '{text}' is not between {MIN_WINDOW_SEGMENTS} and {MAX_WINDOW_SEGMENTS} segments"));
+            }
+            return Ok(Window::Segments(n));
+        }
         let split = text.find(|c: char| !c.is_ascii_digit()).ok_or_else(bad)?;
         let (digits, unit) = text.split_at(split);
         let n: u64 = digits.parse().map_err(|_| bad())?;
@@ -170,6 +191,7 @@ impl Window {
         match self {
             Window::Recent => "recent".into(),
             Window::All => "all".into(),
+            Window::Segments(n) => format!("{n}seg"),
             Window::Last(s) => {
                 let (n, u) = [(86_400, "d"), (3_600, "h"), (60, "m")].into_iter().find(|(n, _)| s % n == 0).unwrap_or((1, "s"));
                 format!("{}{u}", s / n)
@@ -183,6 +205,7 @@ impl Window {
             Window::Recent => "recent".into(),
             Window::All => "since start".into(),
             Window::Last(_) => format!("last {}", self.name()),
+            Window::Segments(n) => format!("last {n} segments"),
         }
     }
 }
@@ -298,7 +321,12 @@ impl RuleEntry {
         let external = self.external.is_some();
         let m = self.metric.as_deref().unwrap_or("bleu");
         let metric = Metric::ALL.into_iter().find(|x| x.name() == m).ok_or_else(|| err(format!("metric '{m}' is not one of bleu, chrf, chrf++")))?;
-        let window = Window::parse(self.window.as_deref().unwrap_or(if self.when.as_deref() == Some("flag-rate") { "all" } else { "recent" })).map_err(err)?;
+        let window = match (self.window.as_deref(), self.when.as_deref()) {
+            (Some(w), _) => Window::parse(w).map_err(err)?,
+            (None, Some("flag-rate")) => Window::All,
+            (None, Some("drop")) => Window::Segments(DEFAULT_DROP_WINDOW_SEGMENTS),
+            (None, _) => Window::Recent,
+        };
         if self.guard.is_some() && self.when.as_deref() != Some("flag-rate") {
             return Err(err("`guard` belongs to `when = \"flag-rate\"`".into()));
         }
@@ -376,6 +404,7 @@ impl RuleEntry {
         let for_segments = match (self.for_segments, self.for_seconds, &condition) {
             (Some(n), _, _) => n,
             (None, Some(_), _) | (None, None, Condition::Decline { .. } | Condition::FlagRate { .. }) => 0,
+            (None, None, Condition::Drop { .. }) => DEFAULT_DROP_FOR_SEGMENTS,
             (None, None, _) => DEFAULT_FOR_SEGMENTS,
         };
         Ok(Rule {
@@ -589,7 +618,7 @@ mod tests {
             ("name = \"a\"\nsession = \"s\"\nwhen = \"decline\"", "needs `points`"),
             ("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 140", "between 0 and 100"),
             ("name = \"a\"\nsession = \"s\"\nmetric = \"ter\"\nwhen = \"below\"\nthreshold = 4", "metric 'ter'"),
-            ("name = \"a\"\nsession = \"s\"\nwindow = \"15 m\"\nwhen = \"below\"\nthreshold = 4", "window '15 m' is not recent, all, or a duration"),
+            ("name = \"a\"\nsession = \"s\"\nwindow = \"15 m\"\nwhen = \"below\"\nthreshold = 4", "window '15 m' is not recent, all, a duration"),
             ("name = \"a\"\nsession = \"s\"\nwindow = \"30s\"\nwhen = \"below\"\nthreshold = 4", "not between 60 s and 7 days"),
             ("name = \"a\"\nsession = \"s\"\nwindow = \"1h\"\nwhen = \"decline\"\npoints = 2", "`window` does not belong"),
             ("name = \"a b\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4", "rule name"),
@@ -605,6 +634,15 @@ mod tests {
             assert_eq!(Window::parse(text), Ok(window), "{text}");
             assert_eq!(window.name(), name);
         }
+        assert_eq!(Window::parse("2000seg"), Ok(Window::Segments(2000)));
+        assert_eq!(Window::Segments(2000).name(), "2000seg");
+        assert!(Window::parse("99seg").is_err() && Window::parse("seg").is_err() && Window::parse("1000001seg").is_err());
+        // Defaults: drop judges the last 2,000 segments through 200, below the recent window
+        // through 400.
+        let d = entry("name = \"d\"\nsession = \"s\"\nwhen = \"drop\"\nbaseline = \"p\"\npoints = 1").check(0).unwrap();
+        assert_eq!((d.window, d.for_segments), (Window::Segments(DEFAULT_DROP_WINDOW_SEGMENTS), DEFAULT_DROP_FOR_SEGMENTS));
+        let b = entry("name = \"b\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 40").check(0).unwrap();
+        assert_eq!((b.window, b.for_segments), (Window::Recent, DEFAULT_FOR_SEGMENTS));
         assert!(Window::parse("8d").is_err() && Window::parse("m").is_err() && Window::parse("5").is_err() && Window::parse("99999999999999999999h").is_err());
         let twice = check_rules(&[entry("name = \"a\"\nsession = \"s\"\nwhen = \"below\"\nthreshold = 4"), entry("name = \"a\"\nsession = \"t\"\nwhen = \"below\"\nthreshold = 5")]);
         assert!(twice.unwrap_err().to_string().contains("declared twice"));

@@ -431,6 +431,11 @@ fn windowed(session: &Session, window: Window, history: &mut History, now: i64) 
     let reps = reps?;
     match window {
         Window::Last(seconds) => Some(history.window(now, seconds, session.created_unix(), (stats, reps))),
+        // The same history with the session's segment count for a clock.
+        Window::Segments(n) => {
+            let count = stats.segments as i64;
+            Some(history.window(count, n, 0, (stats, reps)))
+        }
         _ => Some((stats, reps)),
     }
 }
@@ -479,6 +484,12 @@ fn external_window(session: &Session, m: usize, window: Window, history: &mut Hi
         }
         Window::Last(seconds) => {
             let e = history.window(now, seconds, session.created_unix(), session.external());
+            (e.totals, e.replicates)
+        }
+        Window::Segments(n) => {
+            let e = session.external();
+            let count = e.totals.0.get(m).map_or(0, |t| t.count) as i64;
+            let e = history.window(count, n, 0, e);
             (e.totals, e.replicates)
         }
     };

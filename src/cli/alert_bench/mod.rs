@@ -20,7 +20,7 @@ use self::sim::{Deployment, Systems, CANDIDATE, PRODUCTION};
 use super::bench::{DEFAULT_BENCH_TOKENS, DEFAULT_BENCH_VOCAB};
 use super::demo::corpus::{Noise, CORPUS_NOISE};
 use super::{default_threads, CliError};
-use crate::alerts::rules::{check_rules, Rule, RuleEntry, DEFAULT_EVAL_SECONDS, DEFAULT_FOR_SECONDS, DEFAULT_FOR_SEGMENTS, DEFAULT_MIN_SEGMENTS};
+use crate::alerts::rules::{check_rules, Rule, RuleEntry, DEFAULT_DROP_FOR_SEGMENTS, DEFAULT_DROP_WINDOW_SEGMENTS, DEFAULT_EVAL_SECONDS, DEFAULT_FOR_SECONDS, DEFAULT_FOR_SEGMENTS, DEFAULT_MIN_SEGMENTS};
 use crate::alerts::shift::BASELINE_CHUNKS;
 use crate::metric::resample::DAEMON_RESAMPLES;
 use crate::rng::SplitMix64;
@@ -71,8 +71,10 @@ and, in the trials, a degraded one after a switch. Both score the same randomly 
 each position. Every evaluation period the segments that arrived (--rate segments/s times the \
 default 5 s period: 50 segments at the default 10/s) are scored by the sessions and applied as \
 one batch with their replicate sums, and the daemon's own evaluator judges every rule; a rule's \
-for-duration (default: 400 segments scored while the condition holds, for below and drop; \
-decline rules wait for nothing more than their test) is thus 8 evaluations at the default rate.
+for-duration (default: 400 segments scored while the condition holds for below, 200 for drop; \
+decline rules wait for nothing more than their test) is thus 8 or 4 evaluations at the default \
+rate. below judges the recent window; drop, at its default, the last 2,000 segments of each \
+session.
   The rules, all with default keys, each set for a drop of P points (--points, default 1,2): \
 below (threshold = the stable system's BLEU minus P), drop (points = P, baseline session \
 production), decline (points = P).
@@ -449,6 +451,8 @@ pub(super) fn run(a: AlertBenchArgs) -> Result<(), CliError> {
             "segments_per_evaluation": per_evaluation,
             "for_seconds": DEFAULT_FOR_SECONDS,
             "for_segments": DEFAULT_FOR_SEGMENTS,
+            "drop_for_segments": DEFAULT_DROP_FOR_SEGMENTS,
+            "drop_window_segments": DEFAULT_DROP_WINDOW_SEGMENTS,
             "decline_target_run_chunks": crate::alerts::shift::TARGET_RUN_CHUNKS,
             "decline_baseline_chunks": BASELINE_CHUNKS,
             "decline_lag_chunks": crate::alerts::shift::LAG_CHUNKS,
@@ -490,8 +494,8 @@ fn human(f: &serde_json::Value) -> String {
     let sy = &f["systems"];
     let num = |v: &serde_json::Value| v.as_f64().unwrap_or(f64::NAN);
     let mut o = format!(
-        "mtgauge alert-bench: {} stable segments; {} trials per drop; {} segments/s, one evaluation every {} s = every {} segments; for-duration {} segments (below, drop), {} s; decline: limit for an in-control run of {:e} chunks, baseline {} chunks, {} chunks old\n",
-        s["stable_segments"], s["trials_per_drop"], s["rate_segments_per_second"], s["evaluation_seconds"], s["segments_per_evaluation"], s["for_segments"], s["for_seconds"], s["decline_target_run_chunks"].as_f64().unwrap_or(f64::NAN), s["decline_baseline_chunks"], s["decline_lag_chunks"]
+        "mtgauge alert-bench: {} stable segments; {} trials per drop; {} segments/s, one evaluation every {} s = every {} segments; for-duration {} segments (below), {} (drop, over the last {} segments), {} s; decline: limit for an in-control run of {:e} chunks, baseline {} chunks, {} chunks old\n",
+        s["stable_segments"], s["trials_per_drop"], s["rate_segments_per_second"], s["evaluation_seconds"], s["segments_per_evaluation"], s["for_segments"], s["drop_for_segments"], s["drop_window_segments"], s["for_seconds"], s["decline_target_run_chunks"].as_f64().unwrap_or(f64::NAN), s["decline_baseline_chunks"], s["decline_lag_chunks"]
     );
     o += &format!(
         "  sessions: recent window {}, {} replicates, BLEU; rules at their defaults (min_segments {}); reference set of {} generated items\n",
