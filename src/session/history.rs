@@ -131,6 +131,9 @@ pub enum HistoryError {
     /// Too many steps.
     #[error("{0} steps asked for; at most {MAX_HISTORY_STEPS} (use a longer step or a shorter range)")]
     TooManySteps(i64),
+    /// A step's external sums overflow (the step starting then).
+    #[error("the external sums of the step at {0} overflow; use a shorter step")]
+    Overflow(i64),
 }
 
 impl HistoryConfig {
