@@ -16,7 +16,7 @@ use crate::pb;
 use crate::pb::convert::{config_from_pb, interval_from_pb, interval_to_pb, replicate_sums_from_pb, stats_from_pb};
 use crate::report::PROXY_NOTE;
 use crate::server::history::Point;
-use crate::server::page::{report_svg, step_words, Frame};
+use crate::server::page::{report_svg, step_words, Frame, SCORE_BOUNDS};
 
 pub(super) const LONG_ABOUT: &str = "\
 Write a session's score over time as an SVG or PNG file (by the --out file's extension): the score of each step (computed from the \
@@ -167,6 +167,8 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
         right: utc(history.until_unix),
         what: format!("{} to {}, per {}", utc(history.from_unix), utc(history.until_unix), step_words(step)),
         placement: "",
+        bounds: SCORE_BOUNDS,
+        counted: "segments",
     };
     let segments: u64 = points.iter().map(|p| p.segments).sum();
     let footer = vec![
