@@ -461,6 +461,19 @@ async fn external_history_survives_a_restart_and_equals_the_values_sent() {
     let back = history.get_history(query("edit_rate", first - 60, last + 60, 60)).await.unwrap().into_inner();
     assert_eq!(back.points, after_reset.points, "the minute buckets come back");
 
+    // `report --metric qe`: the same minutes drawn in the metric's units.
+    let out = dir.join("qe.svg");
+    let report = |server: &str| std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["report", "--server", server, "--session", "ferry-v8", "--metric", "qe", "--since", "2h", "--step", "1m", "--out", out.to_str().unwrap()]).output().unwrap();
+    let run = report(&server.grpc);
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let svg = std::fs::read_to_string(&out).unwrap();
+    assert!(svg.contains("qe (0\u{2013}1)"), "the axis caption in the metric's units");
+    assert!(svg.contains("600 values of qe"), "the footer counts the values");
+    assert_eq!(svg.matches("class=\"pt\"").count(), minutes.points.iter().filter(|p| p.segments > 0).count(), "one point per minute with values");
+    let run = report(&format!("{},{}", server.grpc, server.grpc));
+    assert_eq!(run.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&run.stderr).contains("--metric qe"), "{}", String::from_utf8_lossy(&run.stderr));
+
     // A session closed and created anew starts with an empty history.
     SessionsClient::new(ch.clone()).close(pb::CloseSessionRequest { name: "ferry-v8".into() }).await.unwrap();
     create(&ch, "ferry-v8").await;
