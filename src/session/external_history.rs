@@ -5,14 +5,15 @@
 //! ([`crate::external::ExternalSums::mean_interval`]); no replicate sums are kept.
 //!
 //! Like the built-in history it is kept across a reset (it records when values arrived) and
-//! goes with the session. A bucket holds [`EXTERNAL_BUCKET_BYTES`] plus 48 bytes per declared
-//! metric; [`ExternalHistory::bound_bytes`] is what a session's can grow to.
+//! goes with the session. A bucket holds [`EXTERNAL_BUCKET_BYTES`] (32) plus 48 bytes per
+//! declared metric; [`ExternalHistory::bound_bytes`] is what a session's can grow to: at the
+//! default spans (12 242 buckets) 979 360 bytes for one metric, 9.8 MB for the limit of 16.
 
 use std::collections::VecDeque;
 
 use crate::external::{ExternalTotals, SumError};
 
-use super::history::{HistoryConfig, HistoryError, Resolution, MAX_HISTORY_STEPS};
+use super::history::{floor_to, plan_steps, HistoryConfig, HistoryError, Resolution};
 
 /// Memory of one bucket without its sums.
 pub const EXTERNAL_BUCKET_BYTES: usize = std::mem::size_of::<ExternalBucket>();
@@ -51,10 +52,6 @@ pub struct ExternalHistory {
     metrics: usize,
     minutes: VecDeque<ExternalBucket>,
     hours: VecDeque<ExternalBucket>,
-}
-
-fn floor_to(t: i64, unit: i64) -> i64 {
-    t.div_euclid(unit) * unit
 }
 
 impl ExternalHistory {
@@ -159,15 +156,7 @@ impl ExternalHistory {
     /// ([`Resolution::for_step`]); `from` is moved back to a bucket boundary. Refused as the
     /// built-in history's queries are, and when a step's sums overflow.
     pub fn query(&self, from: i64, until: i64, step: i64) -> Result<(Resolution, Vec<(i64, ExternalTotals)>), HistoryError> {
-        let r = Resolution::for_step(step).ok_or(HistoryError::Step(step))?;
-        let from = floor_to(from, r.seconds());
-        if until <= from {
-            return Err(HistoryError::Range(from, until));
-        }
-        let n = (until - from).div_euclid(step) + i64::from((until - from) % step != 0);
-        if n as usize > MAX_HISTORY_STEPS {
-            return Err(HistoryError::TooManySteps(n));
-        }
+        let (r, from, n) = plan_steps(from, until, step)?;
         let mut steps: Vec<(i64, ExternalTotals)> = (0..n).map(|k| (from + k * step, ExternalTotals::new(self.metrics))).collect();
         for b in self.level(r).iter().filter(|b| b.start >= from && b.start < until) {
             let k = ((b.start - from) / step) as usize;
@@ -254,6 +243,20 @@ mod tests {
             assert_eq!(back.query(from, t0 + 10 * 3600, step).unwrap(), h.query(from, t0 + 10 * 3600, step).unwrap());
         }
         assert!(ExternalHistory::restore(cfg, 2, stored).is_err(), "another declaration");
+    }
+
+    /// The bound quoted in the module documentation: at the default spans, a bucket of one
+    /// metric and the most a session declaring the limit of metrics can hold.
+    #[test]
+    fn memory_bound_at_the_defaults() {
+        let one = ExternalHistory::new(HistoryConfig::default(), 1);
+        assert_eq!(one.bucket_bytes(), EXTERNAL_BUCKET_BYTES + 48, "count u64 and two i128, aligned to 16");
+        assert_eq!((EXTERNAL_BUCKET_BYTES, one.bound_bytes()), (32, 979_360), "the start and the Vec; 12 242 buckets of 80 bytes");
+        let most = ExternalHistory::new(HistoryConfig::default(), crate::external::MAX_EXTERNAL_METRICS);
+        // 10 081 minute and 2 161 hourly buckets (the built-in history's bound).
+        assert_eq!(most.bound_bytes(), (10_081 + 2_161) * (EXTERNAL_BUCKET_BYTES + 16 * 48));
+        // Printed for the report (cargo test -- --nocapture).
+        println!("external bucket {} B + 48 B a metric; bound {} B at {} metrics", EXTERNAL_BUCKET_BYTES, most.bound_bytes(), crate::external::MAX_EXTERNAL_METRICS);
     }
 
     /// Sums that would overflow change nothing; a batch stamped before the newest bucket

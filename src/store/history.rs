@@ -253,4 +253,43 @@ mod tests {
         let txn = st.db.begin_read().unwrap();
         assert!(txn.open_table(HISTORY).unwrap().is_empty().unwrap());
     }
+
+    /// External sums written through group commits over three minutes come back as the same
+    /// external history (every step at both resolutions), and go when the session is deleted.
+    #[test]
+    fn external_history_survives_a_reopen() {
+        let d = dir("external");
+        let with_external = || {
+            let s = session();
+            let mut spec = s.spec().clone();
+            spec.external = crate::external::Declaration::new(vec![crate::external::ExternalSpec::new("qe", 0.0, 1.0).unwrap()]).unwrap();
+            Session::new(spec, Arc::clone(s.refs()), 0)
+        };
+        let s = with_external();
+        let t0 = 1_800_000_000;
+        {
+            let st = Store::open(&d).unwrap();
+            st.put_refset("notices", s.refs()).unwrap();
+            st.put_session(s.spec(), &s.refs().digest_hex(), 0).unwrap();
+            for (i, v) in [0.25, 0.5, 0.75, 0.125, 0.875].iter().enumerate() {
+                let mut applied = s.apply_at(t0 + 40 * i as i64, "p", i as u64 + 1, &[], 0, None, &Default::default()).unwrap();
+                let d = s.external_delta(&[(i as u64, s.spec().external.check_item([("qe", *v)]).unwrap())]).unwrap();
+                s.apply_external(&d).unwrap();
+                applied.external_history = Some(s.record_external(t0 + 40 * i as i64, &d.totals).unwrap());
+                st.commit_batches(&[crate::store::BatchWrite { session: "ferry", applied: &applied }]).unwrap();
+            }
+        }
+        let st = Store::open(&d).unwrap();
+        let loaded = st.load().unwrap().sessions.remove(0);
+        let back = with_external();
+        back.restore_external_history(HistoryConfig::default(), loaded.external_history).unwrap();
+        for step in [60, 3600] {
+            let want = s.external_history().query(t0, t0 + 3600, step).unwrap();
+            assert_eq!(back.external_history().query(t0, t0 + 3600, step).unwrap(), want, "step {step}");
+            assert_eq!(want.1.iter().map(|(_, t)| t.0[0].count).sum::<u64>(), 5);
+        }
+        st.delete_session("ferry").unwrap();
+        use redb::{ReadableDatabase, ReadableTableMetadata};
+        assert!(st.db.begin_read().unwrap().open_table(HISTORY_EXTERNAL).unwrap().is_empty().unwrap());
+    }
 }
