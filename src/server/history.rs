@@ -63,14 +63,6 @@ pub enum Series {
     External(usize),
 }
 
-/// The metric a request names (empty: the session's first configured one).
-pub fn metric_of(session: &Session, name: &str) -> Result<Metric> {
-    match series_of(session, name)? {
-        Series::Builtin(m) => Ok(m),
-        Series::External(_) => Err(ServiceError::Invalid(format!("'{}' is an external metric of session '{}'; this call takes a built-in metric ({})", name.escape_debug(), session.spec().name, builtin_names(session)))),
-    }
-}
-
 fn builtin_names(session: &Session) -> String {
     Metric::ALL.into_iter().filter(|m| session.spec().config.has(*m)).map(Metric::name).collect::<Vec<_>>().join(", ")
 }
