@@ -528,3 +528,113 @@ async fn a_fleet_compares_external_values_as_one_process() {
         assert_eq!(f[field], s[field], "{field}");
     }
 }
+
+/// The history of an external metric through GetHistory: one step over every batch gives the
+/// mean of the values sent (recomputed here from them), their count, and the normal-theory
+/// interval of the mean (mean ± 1.96 s / sqrt(n) for 600 values: the normal 0.975 quantile,
+/// NIST/SEMATECH e-Handbook of Statistical Methods, table 1.3.6.7.1; s by two passes over
+/// the values); minute steps whose batches fell wholly in one minute equal those batches'
+/// means. A reset keeps it, a restart brings it back unchanged, a closed session's goes.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn external_history_survives_a_restart_and_equals_the_values_sent() {
+    use mtgauge::pb::history_client::HistoryClient;
+    let now = || std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_secs() as i64;
+    let dir = temp_dir("external-history");
+    demo_files(&dir);
+    let (mut server, ch, data) = durable_with_ferry(&dir).await;
+    create(&ch, "ferry-v8").await;
+    let (items, want) = items();
+    let mut scoring = ScoringClient::new(ch.clone());
+    let first = now();
+    // (minute of the batch when it fell wholly in one, its qe values)
+    let mut batches: Vec<(Option<i64>, Vec<f64>)> = Vec::new();
+    for (k, chunk) in items.chunks(40).enumerate() {
+        let t0 = now();
+        scoring.submit(batch("ferry-v8", "one", k as u64 + 1, chunk.to_vec())).await.unwrap();
+        let t1 = now();
+        let values = want[k * 40..k * 40 + chunk.len()].iter().map(|(q, _)| *q as f64 / 1e6).collect();
+        batches.push(((t0 / 60 == t1 / 60).then_some(t0 / 60 * 60), values));
+    }
+    let last = now();
+    let from = first.div_euclid(3600) * 3600;
+    let step = ((last + 1 - from) as u32).div_ceil(3600) * 3600;
+    let query = |metric: &str, from: i64, until: i64, step: u32| pb::GetHistoryRequest { session: "ferry-v8".into(), metric: metric.into(), from_unix: from, until_unix: until, step_seconds: step, ..Default::default() };
+    let mut history = HistoryClient::new(ch.clone());
+    let one = history.get_history(query("qe", from, from + i64::from(step), step)).await.unwrap().into_inner();
+    assert_eq!((one.metric.as_str(), one.resolution.as_str(), one.points.len()), ("qe", "hour", 1));
+    let values: Vec<f64> = batches.iter().flat_map(|(_, v)| v.iter().copied()).collect();
+    let n = values.len() as f64;
+    let mean = values.iter().sum::<f64>() / n;
+    let sd = (values.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (n - 1.0)).sqrt();
+    let p = &one.points[0];
+    assert_eq!(p.segments, 600, "the count of values");
+    assert!((p.score.unwrap() - mean).abs() < 1e-9, "{:?} {mean}", p.score);
+    let iv = p.interval.as_ref().expect("an interval from 600 values");
+    let half = 1.96 * sd / n.sqrt();
+    assert!((iv.low - (mean - half)).abs() < 1e-9 && (iv.high - (mean + half)).abs() < 1e-9, "{iv:?} {mean} {half}");
+    assert_eq!((iv.method.as_str(), iv.level, iv.resamples), ("student-t-mean", 0.95, 0));
+    assert!(one.memory_bytes > 0);
+
+    // Minute steps: counts add up; a minute whose batches are all known has their mean.
+    let minutes = history.get_history(query("qe", first - 60, last + 60, 60)).await.unwrap().into_inner();
+    assert_eq!(minutes.resolution, "minute");
+    assert_eq!(minutes.points.iter().map(|p| p.segments).sum::<u64>(), 600);
+    let mut checked = 0;
+    for p in minutes.points.iter().filter(|p| p.segments > 0) {
+        let in_it: Vec<&(Option<i64>, Vec<f64>)> = batches.iter().filter(|(m, _)| *m == Some(p.start_unix)).collect();
+        let count: usize = in_it.iter().map(|(_, v)| v.len()).sum();
+        if count as u64 != p.segments {
+            continue; // a batch that straddled a minute boundary may be in it
+        }
+        let m = in_it.iter().flat_map(|(_, v)| v.iter()).sum::<f64>() / count as f64;
+        assert!((p.score.unwrap() - m).abs() < 1e-9, "minute {}: {:?} {m}", p.start_unix, p.score);
+        checked += 1;
+    }
+    assert!(checked > 0, "at least one minute is checked against its batches");
+
+    // Refusals name the metric; an external metric's intervals are at 0.95 only.
+    let e = history.get_history(query("fluency", 0, 0, 60)).await.unwrap_err();
+    assert_eq!(e.code(), Code::InvalidArgument);
+    assert!(e.message().contains("'fluency'") && e.message().contains("qe, edit_rate"), "{}", e.message());
+    let e = history.get_history(pb::GetHistoryRequest { level: 0.9, ..query("qe", 0, 0, 60) }).await.unwrap_err();
+    assert!(e.message().contains("0.95"), "{}", e.message());
+
+    // A reset keeps the history; a restart brings it back as it was.
+    SessionsClient::new(ch.clone()).reset(pb::ResetSessionRequest { name: "ferry-v8".into() }).await.unwrap();
+    let after_reset = history.get_history(query("edit_rate", first - 60, last + 60, 60)).await.unwrap().into_inner();
+    assert_eq!(after_reset.points.iter().map(|p| p.segments).sum::<u64>(), 600);
+    server.kill();
+    let server = Server::start(&["--data-dir", &data, "--refset-dir", dir.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let mut history = HistoryClient::new(ch.clone());
+    let back = history.get_history(query("qe", from, from + i64::from(step), step)).await.unwrap().into_inner();
+    assert_eq!(back.points, one.points, "the hourly buckets come back");
+    let back = history.get_history(query("edit_rate", first - 60, last + 60, 60)).await.unwrap().into_inner();
+    assert_eq!(back.points, after_reset.points, "the minute buckets come back");
+
+    // `report --metric qe`: the same minutes drawn in the metric's units.
+    let out = dir.join("qe.svg");
+    let report = |server: &str| std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["report", "--server", server, "--session", "ferry-v8", "--metric", "qe", "--since", "2h", "--step", "1m", "--out", out.to_str().unwrap()]).output().unwrap();
+    let run = report(&server.grpc);
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let svg = std::fs::read_to_string(&out).unwrap();
+    assert!(svg.contains("qe (0\u{2013}1)"), "the axis caption in the metric's units");
+    assert!(svg.contains("600 values of qe"), "the footer counts the values");
+    assert_eq!(svg.matches("class=\"pt\"").count(), minutes.points.iter().filter(|p| p.segments > 0).count(), "one point per minute with values");
+    let run = report(&format!("{},{}", server.grpc, server.grpc));
+    assert_eq!(run.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&run.stderr).contains("--metric qe"), "{}", String::from_utf8_lossy(&run.stderr));
+
+    // A session closed and created anew starts with an empty history.
+    SessionsClient::new(ch.clone()).close(pb::CloseSessionRequest { name: "ferry-v8".into() }).await.unwrap();
+    create(&ch, "ferry-v8").await;
+    let fresh = history.get_history(query("qe", from, from + i64::from(step), step)).await.unwrap().into_inner();
+    assert_eq!(fresh.points[0].segments, 0);
+    // ... also in the store.
+    let mut server = server;
+    server.kill();
+    let server = Server::start(&["--data-dir", &data, "--refset-dir", dir.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let fresh = HistoryClient::new(ch).get_history(query("qe", from, from + i64::from(step), step)).await.unwrap().into_inner();
+    assert_eq!(fresh.points[0].segments, 0, "the closed session's buckets were removed from the store");
+}

@@ -2,7 +2,8 @@
 //! times over the last 40 minutes (one drops from the good demo system to the dictionary
 //! fallback for its last 10 minutes), a real `mtgauge serve` on it, headless Chromium (Debian
 //! `chromium`) loads `GET /`: the DOM lists both sessions with one chart point per minute that
-//! had segments, and a screenshot is written to the test output directory.
+//! had segments, and a third session's external metric with its mean, and a screenshot is
+//! written to the test output directory.
 
 mod common;
 
@@ -69,6 +70,35 @@ fn seed(dir: &std::path::Path, now: i64) -> Vec<(String, usize, f64)> {
     out
 }
 
+/// A third session, `tarnholm-qe`, with an external metric `qe` (0..1): values over 10 of the
+/// last 40 minutes, written as the daemon's group commit writes them. Returns the minutes with
+/// values and the mean of every value sent.
+fn seed_external(dir: &std::path::Path, now: i64) -> (usize, f64) {
+    use mtgauge::external::{Declaration, ExternalSpec};
+    let set = Arc::new(RefSet::new(demo_segments()).unwrap());
+    let store = Store::open(dir).unwrap();
+    let external = Declaration::new(vec![ExternalSpec::new("qe", 0.0, 1.0).unwrap()]).unwrap();
+    let spec = SessionSpec { name: "tarnholm-qe".into(), refset: "ferry".into(), config: ScoreConfig::default(), labels: Default::default(), window: 200, resampling: Resampling::default(), target_language: None, guard_settings: Vec::new(), external };
+    store.put_session(&spec, &set.digest_hex(), now - 3000).unwrap();
+    let session = Session::new(spec, set, now - 3000);
+    let start = (now / 60) * 60 - 40 * 60;
+    let mut sent = Vec::new();
+    for m in 0..10i64 {
+        let t = start + m * 4 * 60 + 5;
+        let values: Vec<f64> = (0..5).map(|k| 0.4 + 0.01 * (m * 5 + k) as f64).collect();
+        let items: Vec<_> = values.iter().enumerate().map(|(k, v)| ((m * 5) as u64 + k as u64, session.spec().external.check_item([("qe", *v)]).unwrap())).collect();
+        sent.extend(values);
+        let mut applied = session.apply_at(t, "seed", m as u64 + 1, &[], 0, None, &Default::default()).unwrap();
+        let d = session.external_delta(&items).unwrap();
+        applied.external_rows = Some(session.apply_external(&d).unwrap());
+        applied.external_history = Some(session.record_external(t, &d.totals).unwrap());
+        let (copy, ids) = session.external_durable();
+        (applied.external, applied.external_window) = (Some(copy), Some(ids));
+        store.commit_batches(&[BatchWrite { session: "tarnholm-qe", applied: &applied }]).unwrap();
+    }
+    (10, sent.iter().sum::<f64>() / sent.len() as f64)
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn status_page_in_headless_chromium() {
     let Some(bin) = chromium() else { return };
@@ -76,6 +106,7 @@ async fn status_page_in_headless_chromium() {
     let data = dir.join("data");
     let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().as_secs() as i64;
     let seeded = seed(&data, now);
+    let (qe_minutes, qe_mean) = seed_external(&data, now);
     // A floor between the two sessions' recent scores, for both (by label): the canary, all
     // fallback output in its recent window, falls under it; the other does not.
     let (good, poor) = (seeded[0].2, seeded[1].2);
@@ -118,6 +149,14 @@ async fn status_page_in_headless_chromium() {
         let spans = card.matches("class=\"alert-span\" data-rule=\"floor\" data-state=\"firing\"").count();
         assert_eq!(spans, usize::from(name == "ferry-v8-canary"), "{name}: the span where the alert fires");
     }
+    // The session with an external metric lists its mean since start (recomputed here from
+    // the values sent) and charts its mean per minute.
+    let at = dom.find("data-session=\"tarnholm-qe\"").expect("the session with an external metric listed");
+    let card = &dom[at..dom[at..].find("</section>").map_or(dom.len(), |e| at + e)];
+    let row = card.split("<tr data-metric=\"qe\">").nth(1).expect("a row for qe");
+    assert!(row.contains(&format!("<td class=\"ext-cum\">{qe_mean:.3}")), "{row}");
+    let chart = card.split("class=\"ext-chart\"").nth(1).expect("the external chart");
+    assert_eq!(chart.matches("class=\"pt\"").count(), qe_minutes, "one point per minute with values");
     // The comparison view: the first two comparable sessions, the canary worse.
     let at = dom.find("id=\"compare\"").expect("comparison view");
     let cmp = &dom[at..];
@@ -144,7 +183,7 @@ async fn status_page_in_headless_chromium() {
     let body = reqwest_free_get(&server.metrics, "/api/v1/overview");
     let v: serde_json::Value = serde_json::from_str(body.split("\r\n\r\n").nth(1).unwrap()).unwrap();
     let names: Vec<&str> = v["sessions"].as_array().unwrap().iter().map(|s| s["name"].as_str().unwrap()).collect();
-    assert_eq!(names, ["ferry-v8", "ferry-v8-canary"]);
+    assert_eq!(names, ["ferry-v8", "ferry-v8-canary", "tarnholm-qe"]);
     // Longer ranges: a day by 20-minute steps, one point per step the seeded minutes fall in.
     let start = (now / 60) * 60 - 40 * 60;
     let mut steps: Vec<i64> = (0..40i64).filter(|m| m % 7 != 3).map(|m| (start + m * 60 + 5) / 1200).collect();

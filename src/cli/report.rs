@@ -16,7 +16,7 @@ use crate::pb;
 use crate::pb::convert::{config_from_pb, interval_from_pb, interval_to_pb, replicate_sums_from_pb, stats_from_pb};
 use crate::report::PROXY_NOTE;
 use crate::server::history::Point;
-use crate::server::page::{report_svg, step_words, Frame};
+use crate::server::page::{report_svg, step_words, Frame, SCORE_BOUNDS};
 
 pub(super) const LONG_ABOUT: &str = "\
 Write a session's score over time as an SVG or PNG file (by the --out file's extension): the score of each step (computed from the \
@@ -31,6 +31,12 @@ replica. History is kept per replica; the report adds up each step's integer sta
 bootstrap replicate sums over the replicas (exact, never an average of scores) and derives the \
 score and band from the sums. When a replica does not answer, it refuses (the chart would leave \
 out what that replica counted) unless --partial is given; the footer names the replicas summed.
+
+An external metric the session declares (--metric with its name): the mean of the values that \
+arrived in each step, in the metric's own units (the y axis captioned \"NAME (LOW\u{2013}HIGH)\" with its \
+declared range), and as its band the 95% normal-theory interval of the mean from the step's count, \
+sum and sum of squares (Student's t). Drawn from one server (replicas do not send their external \
+sums yet).
 
 --since is how far back (an integer and m, h or d; default 24h); --step the width of one point \
 (default: the whole minutes or hours that give at most 120 points). A .png is the same drawing \
@@ -84,7 +90,8 @@ pub struct ReportArgs {
     /// The file to write: .svg, or .png for the same chart as an image.
     #[arg(long, value_name = "FILE")]
     pub out: PathBuf,
-    /// bleu, chrf or chrf++ (default: the session's first metric).
+    /// bleu, chrf or chrf++, or the name of an external metric the session declares (default:
+    /// the session's first built-in metric).
     #[arg(long, value_name = "METRIC")]
     pub metric: Option<String>,
     /// How far back the chart reaches: 90m, 24h, 7d.
@@ -143,18 +150,26 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
     }
     let fleet = Fleet::parse(&a.server, Duration::ZERO, false)?;
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().map_err(|e| CliError::Usage(format!("cannot start the runtime: {e}")))?;
-    let (history, config, holders) = rt.block_on(async {
+    let external_name = a.metric.clone().filter(|m| !crate::metric::Metric::ALL.iter().any(|b| b.name() == m));
+    let (history, config, holders, declared) = rt.block_on(async {
         let now = a.until.unwrap_or_else(|| std::time::SystemTime::now().duration_since(UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64));
         let until = (now / step + 1) * step;
         let req = pb::GetHistoryRequest { session: a.session.clone(), metric: a.metric.clone().unwrap_or_default(), from_unix: until - (span + step - 1) / step * step, until_unix: until, step_seconds: step as u32, level: 0.0, with_sums: false };
         if let Some(one) = fleet.lone().await? {
             let history = get_history(&one, req).await?;
             let config = config_from_pb(history.config.as_ref()).map_err(|e| CliError::Usage(format!("server sent a bad configuration: {e}")))?;
-            return Ok::<_, CliError>((history, config, None));
+            let declared = match &external_name {
+                Some(name) => Some(declared_metric(&one, &a.session, name).await?),
+                None => None,
+            };
+            return Ok::<_, CliError>((history, config, None, declared));
+        }
+        if let Some(name) = &external_name {
+            return Err(CliError::Usage(format!("--metric {name}: a fleet report covers the built-in metrics only (replicas do not send their external sums yet); give one replica's URL to --server")));
         }
         let endpoints = fleet.endpoints().await?;
         let (history, config, holders) = fleet_history(&endpoints, pb::GetHistoryRequest { with_sums: true, ..req }, a.partial).await?;
-        Ok((history, config, Some(holders)))
+        Ok((history, config, Some(holders), None))
     })?;
     let points: Vec<Point> = history.points.iter().map(|p| Point { start: p.start_unix, segments: p.segments, score: p.score, interval: p.interval.as_ref().map(interval_from_pb), unknown: p.unknown, rejected: p.rejected }).collect();
     let metric = crate::metric::Metric::ALL.into_iter().find(|m| m.name() == history.metric).map_or(history.metric.clone(), |m| m.title().to_owned());
@@ -167,10 +182,16 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
         right: utc(history.until_unix),
         what: format!("{} to {}, per {}", utc(history.from_unix), utc(history.until_unix), step_words(step)),
         placement: "",
+        bounds: declared.as_ref().map_or(SCORE_BOUNDS, |d| (d.low, d.high)),
+        counted: if declared.is_some() { "values" } else { "segments" },
     };
     let segments: u64 = points.iter().map(|p| p.segments).sum();
+    let counted = match &declared {
+        Some(d) => format!("{segments} values of {} ({}) in these {} steps; configuration of the built-in metrics: {}", d.name, if d.lower_is_better { "lower is better" } else { "higher is better" }, points.len(), config.describe()),
+        None => format!("{} segments in these {} steps; configuration: {}", segments, points.len(), config.describe()),
+    };
     let footer = vec![
-        format!("{} segments in these {} steps; configuration: {}", segments, points.len(), config.describe()),
+        counted,
         format!("reference set digest {}; written by mtgauge {}", history.refset_digest, env!("CARGO_PKG_VERSION")),
         PROXY_NOTE.to_owned(),
     ];
@@ -183,6 +204,13 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
     std::fs::write(&a.out, bytes).map_err(|e| CliError::Usage(format!("{}: {e}", a.out.display())))?;
     eprintln!("mtgauge report: {} points ({} with segments) written to {}", points.len(), points.iter().filter(|p| p.segments > 0).count(), a.out.display());
     Ok(())
+}
+
+/// The declaration of external metric `name` of `session` on one server.
+async fn declared_metric(e: &Endpoint, session: &str, name: &str) -> Result<pb::ExternalMetric, CliError> {
+    let mut client = pb::sessions_client::SessionsClient::new(e.connect()?);
+    let info = client.get(pb::GetSessionRequest { name: session.to_owned() }).await.map_err(|s| ClientError::call("get session", s))?.into_inner();
+    info.external.into_iter().find(|m| m.name == name).ok_or_else(|| CliError::Usage(format!("--metric {name}: session '{session}' declares no such external metric")))
 }
 
 /// Whole-message limit for history answers with replicate sums (about 46 kB a step at 200

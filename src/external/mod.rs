@@ -474,6 +474,33 @@ impl ExternalSums {
     }
 }
 
+/// Name of the interval of a mean derived from a count, sum and sum of squares alone (history
+/// steps keep no replicate sums): the normal-theory interval `mean ± t(0.975, n - 1) s / sqrt(n)`
+/// (Student 1908), with the normal quantile [`Z975`] above [`T975`]'s 30 degrees of freedom.
+pub const MEAN_INTERVAL_METHOD: &str = "student-t-mean";
+/// Confidence level of [`ExternalSums::mean_interval`].
+pub const MEAN_INTERVAL_LEVEL: f64 = 0.95;
+/// Quantiles t(0.975, df) of Student's t for df = 1..=30 (NIST/SEMATECH e-Handbook of
+/// Statistical Methods, table 1.3.6.7.2, three decimals).
+pub const T975: [f64; 30] = [
+    12.706, 4.303, 3.182, 2.776, 2.571, 2.447, 2.365, 2.306, 2.262, 2.228, 2.201, 2.179, 2.160, 2.145, 2.131, 2.120, 2.110, 2.101, 2.093, 2.086, 2.080, 2.074, 2.069, 2.064, 2.060, 2.056, 2.052, 2.048, 2.045, 2.042,
+];
+/// The standard normal 0.975 quantile (same handbook, table 1.3.6.7.1), used above 30 degrees
+/// of freedom.
+pub const Z975: f64 = 1.96;
+
+impl ExternalSums {
+    /// The [`MEAN_INTERVAL_LEVEL`] interval of the mean ([`MEAN_INTERVAL_METHOD`]), unscaled;
+    /// None below two values.
+    pub fn mean_interval(&self, decimals: u32) -> Option<(f64, f64)> {
+        let (mean, variance) = (self.mean(decimals)?, self.variance(decimals)?);
+        let df = (self.count - 1) as usize;
+        let t = T975.get(df - 1).copied().unwrap_or(Z975);
+        let half = t * (variance / self.count as f64).sqrt();
+        Some((mean - half, mean + half))
+    }
+}
+
 /// A metric's sums as Prometheus counters (which only grow and are whole numbers here): the
 /// count; the sum of `(value - low) x 10^decimals` (exact); and the sum of
 /// `(value - low)^2 x 10^decimals` (the exact offset sum of squares, at scale 10^(2 decimals),

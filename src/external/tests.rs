@@ -473,3 +473,32 @@ fn external_comparison_of_a_shifted_copy() {
     let none = compare::compare_values(&[], &[], &[], 6, &settings, 1);
     assert_eq!((none.items, none.difference, none.interval, none.p_value), (0, None, None, None));
 }
+
+/// The normal-theory interval of a mean, by hand: values 1 and 3 (n = 2, mean 2, s = sqrt 2)
+/// give 2 ± t(0.975, 1) · sqrt(2) / sqrt(2) = 2 ± 12.706; ten values use t(0.975, 9) = 2.262;
+/// 41 values (40 degrees of freedom) use the normal quantile 1.96.
+/// Quantiles: NIST/SEMATECH e-Handbook of Statistical Methods, tables 1.3.6.7.1 and 1.3.6.7.2.
+#[test]
+fn mean_interval_by_hand() {
+    let mut s = ExternalSums::one(1).checked_add(&ExternalSums::one(3)).unwrap();
+    let (lo, hi) = s.mean_interval(0).unwrap();
+    assert!((lo - (2.0 - 12.706)).abs() < 1e-9 && (hi - (2.0 + 12.706)).abs() < 1e-9, "{lo} {hi}");
+    assert_eq!(ExternalSums::one(1).mean_interval(0), None, "one value has no interval");
+    // Ten values 0..=9 at two decimals (fixed 0, 100, ..., 900): mean 4.5, s^2 = 82.5/9.
+    s = ExternalSums::default();
+    for v in 0..10 {
+        s = s.checked_add(&ExternalSums::one(v * 100)).unwrap();
+    }
+    let (lo, hi) = s.mean_interval(2).unwrap();
+    let half = 2.262 * (82.5f64 / 9.0 / 10.0).sqrt();
+    assert!((lo - (4.5 - half)).abs() < 1e-9 && (hi - (4.5 + half)).abs() < 1e-9, "{lo} {hi}");
+    // 41 values, 20 of 0 and 21 of 2: mean 42/41, s^2 = (21 x 4 - 42^2/41) / 40.
+    s = ExternalSums::default();
+    for i in 0..41 {
+        s = s.checked_add(&ExternalSums::one(if i < 20 { 0 } else { 2 })).unwrap();
+    }
+    let (mean, var) = (42.0 / 41.0, (84.0 - 42.0f64 * 42.0 / 41.0) / 40.0);
+    let (lo, hi) = s.mean_interval(0).unwrap();
+    let half = 1.96 * (var / 41.0).sqrt();
+    assert!((lo - (mean - half)).abs() < 1e-9 && (hi - (mean + half)).abs() < 1e-9, "{lo} {hi}");
+}

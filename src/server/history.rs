@@ -8,6 +8,7 @@ use tonic::{Request, Response, Status};
 use super::auth::{Scope, Tokens};
 use super::error::{Result, ServiceError};
 use super::state::{unix_now, State};
+use crate::external::{MEAN_INTERVAL_LEVEL, MEAN_INTERVAL_METHOD};
 use crate::metric::resample::{valid_level, Interval, DEFAULT_LEVEL};
 use crate::metric::scores::corpus_score;
 use crate::metric::Metric;
@@ -53,14 +54,54 @@ pub struct Point {
     pub rejected: u64,
 }
 
-/// The metric a request names (empty: the session's first configured one).
-pub fn metric_of(session: &Session, name: &str) -> Result<Metric> {
-    let config = &session.spec().config;
-    let m = match name {
-        "" => Metric::ALL.into_iter().find(|m| config.has(*m)),
+/// What a history request reads: a built-in metric, or a declared external metric (its index).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Series {
+    /// A built-in metric.
+    Builtin(Metric),
+    /// An external metric, by its place in the session's declaration.
+    External(usize),
+}
+
+fn builtin_names(session: &Session) -> String {
+    Metric::ALL.into_iter().filter(|m| session.spec().config.has(*m)).map(Metric::name).collect::<Vec<_>>().join(", ")
+}
+
+/// The series a request names: a built-in metric the session scores (empty: the first), else
+/// one of its declared external metrics; an error naming the metric and what the session has.
+pub fn series_of(session: &Session, name: &str) -> Result<Series> {
+    let spec = session.spec();
+    let builtin = match name {
+        "" => Metric::ALL.into_iter().find(|m| spec.config.has(*m)),
         n => Metric::ALL.into_iter().find(|m| m.name() == n),
     };
-    m.filter(|m| config.has(*m)).ok_or_else(|| ServiceError::Invalid(format!("session '{}' does not score metric '{}'", session.spec().name, name.escape_debug())))
+    if let Some(m) = builtin.filter(|m| spec.config.has(*m)) {
+        return Ok(Series::Builtin(m));
+    }
+    if let Some(i) = spec.external.index(name) {
+        return Ok(Series::External(i));
+    }
+    let declared: Vec<&str> = spec.external.specs().iter().map(|s| s.name.as_str()).collect();
+    let external = if declared.is_empty() { "none declared".to_owned() } else { declared.join(", ") };
+    Err(ServiceError::Invalid(format!("session '{}' has no metric '{}' (built-in: {}; external: {external})", spec.name, name.escape_debug(), builtin_names(session))))
+}
+
+/// The steps of external metric `m`: per step the mean of the values that arrived in it (in
+/// the metric's own units) as `score`, their count as `segments`, and the normal-theory
+/// interval of the mean ([`crate::external::MEAN_INTERVAL_METHOD`]) from the summed count, sum
+/// and squares; `unknown` and `rejected` are 0.
+pub fn external_points(session: &Session, m: usize, from: i64, until: i64, step: i64) -> Result<(Resolution, Vec<Point>)> {
+    let spec = session.spec().external.specs().get(m).ok_or_else(|| ServiceError::Internal(format!("external metric {m} of session '{}'", session.spec().name)))?;
+    let (resolution, steps) = session.external_history().query(from, until, step).map_err(|e| ServiceError::Invalid(e.to_string()))?;
+    let points = steps
+        .iter()
+        .map(|(start, totals)| {
+            let sums = totals.0[m];
+            let interval = sums.mean_interval(spec.decimals).map(|(low, high)| Interval { level: MEAN_INTERVAL_LEVEL, low, high, resamples: 0, method: MEAN_INTERVAL_METHOD, seed: 0 });
+            Point { start: *start, segments: sums.count, score: sums.mean(spec.decimals), interval, unknown: 0, rejected: 0 }
+        })
+        .collect();
+    Ok((resolution, points))
 }
 
 /// Read the steps: the buckets' sums are copied under the history's lock, the scores and
@@ -102,6 +143,11 @@ fn point_to_pb(s: &Step, config: &ScoreConfig, q: &HistoryQuery, with_sums: bool
     }
 }
 
+/// A step of an external metric in an API message (no statistics or replicate sums).
+fn external_point_to_pb(p: Point) -> pb::HistoryPoint {
+    pb::HistoryPoint { start_unix: p.start, segments: p.segments, score: p.score, interval: p.interval.map(pb::convert::interval_to_pb), unknown: 0, rejected: 0, totals: None, sums: None }
+}
+
 /// The gRPC `History` service.
 #[derive(Clone)]
 pub struct HistoryService {
@@ -117,8 +163,13 @@ impl HistoryService {
 }
 
 /// The query a request asks for, with its defaults filled in at `now`.
-fn query_of(session: &Session, r: &pb::GetHistoryRequest, now: i64) -> Result<HistoryQuery> {
-    let metric = metric_of(session, &r.metric)?;
+fn query_of(session: &Session, r: &pb::GetHistoryRequest, now: i64) -> Result<(Series, HistoryQuery)> {
+    let series = series_of(session, &r.metric)?;
+    let metric = match series {
+        Series::Builtin(m) => m,
+        // Unused for an external series.
+        Series::External(_) => Metric::Bleu,
+    };
     let step = if r.step_seconds == 0 { DEFAULT_HISTORY_STEP_SECS } else { i64::from(r.step_seconds) };
     let until = if r.until_unix == 0 { now } else { r.until_unix };
     let from = if r.from_unix == 0 { until - DEFAULT_HISTORY_STEPS * step } else { r.from_unix };
@@ -127,7 +178,10 @@ fn query_of(session: &Session, r: &pb::GetHistoryRequest, now: i64) -> Result<Hi
         l if valid_level(l) => l,
         l => return Err(ServiceError::Invalid(format!("level {l} is not strictly between 0 and 1"))),
     };
-    Ok(HistoryQuery { metric, from, until, step, level })
+    if matches!(series, Series::External(_)) && level != MEAN_INTERVAL_LEVEL {
+        return Err(ServiceError::Invalid(format!("the history of external metric '{}' has intervals at level {MEAN_INTERVAL_LEVEL} only (leave level at 0)", r.metric.escape_debug())));
+    }
+    Ok((series, HistoryQuery { metric, from, until, step, level }))
 }
 
 #[tonic::async_trait]
@@ -138,10 +192,25 @@ impl pb::history_server::History for HistoryService {
         }
         let r = req.into_inner();
         let session = self.state.session(&r.session)?;
-        let q = query_of(&session, &r, unix_now())?;
+        let (series, q) = query_of(&session, &r, unix_now())?;
         let report = tokio::task::spawn_blocking(move || -> Result<pb::HistoryReport> {
-            let (resolution, steps) = steps(&session, &q)?;
             let config = &session.spec().config;
+            if let Series::External(m) = series {
+                let (resolution, points) = external_points(&session, m, q.from, q.until, q.step)?;
+                return Ok(pb::HistoryReport {
+                    session: session.spec().name.clone(),
+                    metric: r.metric.clone(),
+                    from_unix: points.first().map_or(q.from, |p| p.start),
+                    until_unix: q.until,
+                    step_seconds: q.step as u32,
+                    resolution: resolution.name().into(),
+                    points: points.into_iter().map(external_point_to_pb).collect(),
+                    config: Some(pb::convert::config_to_pb(config)),
+                    refset_digest: session.refs().digest_hex(),
+                    memory_bytes: session.external_history().memory_bytes() as u64,
+                });
+            }
+            let (resolution, steps) = steps(&session, &q)?;
             Ok(pb::HistoryReport {
                 session: session.spec().name.clone(),
                 metric: q.metric.name().into(),

@@ -2,7 +2,9 @@
 //! (labels, cumulative and recent scores with intervals, counts, unknown and rejected shares,
 //! alert states) with a chart per session of its score over the last hour from the history,
 //! and `GET /api/v1/overview` the same as JSON, which the page fetches to refresh its cards in
-//! place.
+//! place. A session with external metrics also shows each one's mean since start and over the
+//! recent window, with intervals, and a small chart of the first one's mean per step from its
+//! history, scaled inside the metric's declared range.
 //!
 //! Charts are SVG drawn here, on the server, from the history's steps: no JavaScript library,
 //! nothing fetched from elsewhere, and the first response is already complete (a page opened
@@ -15,7 +17,7 @@ use crate::metric::scores::corpus_score;
 use crate::metric::Metric;
 
 use super::alerting::AlertSpan;
-use super::history::{points, HistoryQuery, Point};
+use super::history::{external_points, points, HistoryQuery, Point};
 use super::state::{unix_now, State};
 use crate::session::Session;
 
@@ -82,6 +84,66 @@ fn score_text(score: Option<f64>, iv: Option<(f64, f64)>) -> String {
     }
 }
 
+/// A mean of an external metric (its own units) and its interval, at `places` decimals.
+fn mean_text(mean: Option<f64>, iv: Option<(f64, f64)>, places: usize) -> String {
+    match (mean, iv) {
+        (Some(m), Some((l, h))) => format!("{m:.places$} <span class=\"iv\">[{l:.places$}, {h:.places$}]</span>"),
+        (Some(m), None) => format!("{m:.places$}"),
+        _ => "&ndash;".into(),
+    }
+}
+
+/// Decimals that show a value of a metric ranging `low..high` (2 for a range of 10 or more,
+/// one more per factor of ten less, at most 6).
+fn places_for(low: f64, high: f64) -> usize {
+    let span = (high - low).max(1e-6);
+    (3.0 - span.log10().floor()).clamp(2.0, 6.0) as usize
+}
+
+/// One external metric's figures on a card.
+#[derive(Debug, serde::Serialize)]
+pub struct ExternalFigure {
+    name: String,
+    low: f64,
+    high: f64,
+    lower_is_better: bool,
+    /// Values counted since start (or reset).
+    count: u64,
+    /// Mean since start, and its interval from the session's replicates.
+    cumulative: Option<f64>,
+    cumulative_interval: Option<(f64, f64)>,
+    /// Mean over the `recent` window, and its interval.
+    recent: Option<f64>,
+    recent_interval: Option<(f64, f64)>,
+}
+
+/// The external figures of a session (declaration order), as `status` derives them: the
+/// means of the exact sums, the intervals from the replicates (none without them).
+fn external_figures(s: &Session) -> Vec<ExternalFigure> {
+    let specs = s.spec().external.specs();
+    if specs.is_empty() {
+        return Vec::new();
+    }
+    let cum = s.external();
+    let (recent, recent_reps) = s.external_recent();
+    let iv = |r: Option<&crate::external::replicates::ExternalReplicates>, i: usize, decimals: u32| r.and_then(|r| r.interval(i, decimals, DEFAULT_LEVEL)).map(|iv| (iv.low, iv.high));
+    specs
+        .iter()
+        .enumerate()
+        .map(|(i, e)| ExternalFigure {
+            name: e.name.clone(),
+            low: e.low,
+            high: e.high,
+            lower_is_better: !e.higher_is_better,
+            count: cum.totals.0.get(i).map_or(0, |t| t.count),
+            cumulative: cum.totals.0.get(i).and_then(|t| t.mean(e.decimals)),
+            cumulative_interval: iv(cum.replicates.as_ref(), i, e.decimals),
+            recent: recent.0.get(i).and_then(|t| t.mean(e.decimals)),
+            recent_interval: iv(recent_reps.as_ref(), i, e.decimals),
+        })
+        .collect()
+}
+
 /// One session's figures for the page and the JSON.
 #[derive(Debug, serde::Serialize)]
 pub struct Card {
@@ -106,6 +168,10 @@ pub struct Card {
     /// The `below` rules' thresholds on the chart's metric: (rule, score).
     thresholds: Vec<(String, f64)>,
     points: Vec<Point>,
+    /// Each declared external metric's means.
+    external: Vec<ExternalFigure>,
+    /// The first external metric's mean per step over the chart's range (empty without one).
+    external_points: Vec<Point>,
     html: String,
 }
 
@@ -147,6 +213,8 @@ fn card(state: &State, s: &Session, now: i64, range: ChartRange) -> Card {
         alert_spans: state.alerts().spans_of(&spec.name),
         thresholds,
         points: pts,
+        external: external_figures(s),
+        external_points: if spec.external.is_empty() { Vec::new() } else { external_points(s, 0, q.from, q.until, q.step).map(|(_, p)| p).unwrap_or_default() },
         html: String::new(),
     };
     c.html = card_html(&c, &q, range);
@@ -161,6 +229,7 @@ fn card_html(c: &Card, q: &HistoryQuery, range: ChartRange) -> String {
     } else {
         c.alerts.iter().map(|(rule, st, _)| format!("<span class=\"alert {}\" data-rule=\"{}\">{}: {}</span>", esc(st), esc(rule), esc(rule), esc(st))).collect()
     };
+    let external = external_html(c, q, range);
     let guards = if c.guard_checked == 0 {
         String::new()
     } else {
@@ -173,7 +242,7 @@ fn card_html(c: &Card, q: &HistoryQuery, range: ChartRange) -> String {
         "<section class=\"card\" data-session=\"{name}\"><header><h2>{name}</h2>{labels}</header>\
 <dl><dt>{m} since start</dt><dd class=\"cum\">{cum}</dd><dt>{m} recent window</dt><dd class=\"recent\">{rec}</dd>\
 <dt>segments</dt><dd class=\"segs\">{segs}</dd><dt>segments/s (5 min)</dt><dd class=\"rate\">{rate:.2}</dd><dt>unknown</dt><dd>{unk:.1}%</dd><dt>rejected</dt><dd>{rej:.1}%</dd></dl>\
-{guards}<div class=\"alerts\">{alerts}</div>{chart}</section>",
+{guards}<div class=\"alerts\">{alerts}</div>{chart}{external}</section>",
         name = esc(&c.name),
         m = c.metric,
         cum = score_text(c.cumulative, c.cumulative_interval),
@@ -190,9 +259,46 @@ fn card_html(c: &Card, q: &HistoryQuery, range: ChartRange) -> String {
             right: format!("now (UTC, {} steps)", step_words(q.step)),
             what: format!("per {}, {}", step_words(q.step), range.words()),
             placement: "",
+            bounds: SCORE_BOUNDS,
+            counted: "segments",
         }),
     );
     h
+}
+
+/// A card's external metrics: a row per metric (mean since start and over the recent window,
+/// with intervals, and the values counted) and a small chart of the first one's mean per step.
+fn external_html(c: &Card, q: &HistoryQuery, range: ChartRange) -> String {
+    let Some(first) = c.external.first() else { return String::new() };
+    let rows: String = c
+        .external
+        .iter()
+        .map(|e| {
+            let places = places_for(e.low, e.high);
+            format!(
+                "<tr data-metric=\"{n}\"><th>{n} <span class=\"quiet\">({}\u{2013}{}, {})</span></th><td class=\"ext-cum\">{}</td><td class=\"ext-recent\">{}</td><td class=\"ext-count\">{}</td></tr>",
+                e.low,
+                e.high,
+                if e.lower_is_better { "lower is better" } else { "higher is better" },
+                mean_text(e.cumulative, e.cumulative_interval, places),
+                mean_text(e.recent, e.recent_interval, places),
+                e.count,
+                n = esc(&e.name),
+            )
+        })
+        .collect();
+    let chart = chart_svg(&c.name, &first.name, &c.external_points, &Marks::default(), &Frame {
+        from: q.from,
+        until: q.until,
+        step: q.step,
+        left: format!("\u{2212}{}", range.key),
+        right: format!("{} mean per {}", first.name, step_words(q.step)),
+        what: format!("mean per {}, {}", step_words(q.step), range.words()),
+        placement: "",
+        bounds: (first.low, first.high),
+        counted: "values",
+    });
+    format!("<table class=\"ext\"><tr><th>external metric</th><th>mean since start</th><th>recent window</th><th>values</th></tr>{rows}</table><div class=\"ext-chart\">{chart}</div>")
 }
 
 /// What a chart marks besides the scores: times alerts fired (shaded spans) and the
@@ -221,7 +327,15 @@ pub struct Frame {
     pub what: String,
     /// Attributes placing the chart inside another SVG (x, y, width, height), or "".
     pub placement: &'static str,
+    /// The range a value can take ([`SCORE_BOUNDS`] for a score, the declared low..high for
+    /// an external metric): the y scale follows the data, padded, but not beyond it.
+    pub bounds: (f64, f64),
+    /// What a step counts ("segments", or "values" of an external metric).
+    pub counted: &'static str,
 }
+
+/// The range of a score (0-100).
+pub const SCORE_BOUNDS: (f64, f64) = (0.0, 100.0);
 
 /// A chart on its own, for a file: title, axis captions with units, the chart, and a footer
 /// (`footer` lines: configuration, reference set, the proxy note).
@@ -233,9 +347,10 @@ pub fn report_svg(session: &str, metric: &str, pts: &[Point], frame: &Frame, foo
     let _ = write!(s, "<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{w}\" height=\"{h}\" viewBox=\"0 0 {w} {h}\">");
     let _ = write!(s, "<title>{} of {}, {}</title><style>{CHART_CSS}.title{{font:600 14px sans-serif;fill:#23201c}}.caption,.foot{{font:10px sans-serif;fill:#6b6457}}</style>", esc(metric), esc(session), esc(&frame.what));
     let _ = write!(s, "<rect width=\"{w}\" height=\"{h}\" fill=\"#fffdf8\"/><text class=\"title\" x=\"20\" y=\"22\">{} of session {}</text><text class=\"caption\" x=\"20\" y=\"38\">{}</text>", esc(metric), esc(session), esc(&frame.what));
-    let _ = write!(s, "<text class=\"caption\" transform=\"translate(14,{:.1}) rotate(-90)\" text-anchor=\"middle\">{} (0\u{2013}100)</text>", TOP + CHART_H / 2.0, esc(metric));
-    let _ = write!(s, "<text class=\"caption\" x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\">time (UTC), one point per {} with segments; band: 95% bootstrap interval</text>", 20.0 + CHART_W / 2.0, TOP + CHART_H + 14.0, step_words(frame.step));
-    let inner = Frame { placement: "x=\"20\" y=\"50\" width=\"640\" height=\"180\" ", from: frame.from, until: frame.until, step: frame.step, left: frame.left.clone(), right: frame.right.clone(), what: frame.what.clone() };
+    let _ = write!(s, "<text class=\"caption\" transform=\"translate(14,{:.1}) rotate(-90)\" text-anchor=\"middle\">{} ({}\u{2013}{})</text>", TOP + CHART_H / 2.0, esc(metric), frame.bounds.0, frame.bounds.1);
+    let band = if frame.counted == "segments" { "95% bootstrap interval" } else { "95% interval of the mean (Student t)" };
+    let _ = write!(s, "<text class=\"caption\" x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\">time (UTC), one point per {} with {}; band: {band}</text>", 20.0 + CHART_W / 2.0, TOP + CHART_H + 14.0, step_words(frame.step), frame.counted);
+    let inner = Frame { placement: "x=\"20\" y=\"50\" width=\"640\" height=\"180\" ", from: frame.from, until: frame.until, step: frame.step, left: frame.left.clone(), right: frame.right.clone(), what: frame.what.clone(), bounds: frame.bounds, counted: frame.counted };
     s.push_str(&chart_svg(session, metric, pts, &Marks::default(), &inner));
     for (i, line) in lines.iter().enumerate() {
         let _ = write!(s, "<text class=\"foot\" x=\"20\" y=\"{:.1}\">{}</text>", TOP + CHART_H + 32.0 + 14.0 * i as f64, esc(line));
@@ -286,14 +401,17 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], marks: &Marks<'_>, 
         hi = hi.max(h);
     }
     if with.is_empty() {
-        (lo, hi) = (0.0, 100.0);
+        (lo, hi) = frame.bounds;
     }
     for (_, t) in marks.thresholds {
         lo = lo.min(*t);
         hi = hi.max(*t);
     }
-    let pad = ((hi - lo) * 0.1).max(1.0);
-    let (lo, hi) = ((lo - pad).max(0.0), (hi + pad).min(100.0));
+    // A tenth of the data's range on each side, at least a hundredth of the bounds (1 for scores).
+    let (low, high) = frame.bounds;
+    let pad = ((hi - lo) * 0.1).max((high - low) / 100.0);
+    let (lo, hi) = ((lo - pad).max(low), (hi + pad).min(high));
+    let tick_places = if hi - lo >= 1.0 { 1 } else { 3 };
     let x = |t: i64| PAD_L + (t - from) as f64 / (until - from).max(1) as f64 * (CHART_W - PAD_L - 8.0);
     let y = |v: f64| PAD_T + (hi - v) / (hi - lo).max(1e-9) * (CHART_H - PAD_T - PAD_B);
     let mid = |p: &Point| p.start + step / 2;
@@ -335,7 +453,7 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], marks: &Marks<'_>, 
     let line: Vec<String> = with.iter().map(|p| format!("{:.1},{:.1}", x(mid(p)), y(p.score.unwrap_or(0.0)))).collect();
     let _ = write!(s, "<polyline class=\"line\" points=\"{}\"/>", line.join(" "));
     for p in &with {
-        let _ = write!(s, "<circle class=\"pt\" data-start=\"{}\" data-segments=\"{}\" cx=\"{:.1}\" cy=\"{:.1}\" r=\"2.5\"><title>{:.2} ({} segments)</title></circle>", p.start, p.segments, x(mid(p)), y(p.score.unwrap_or(0.0)), p.score.unwrap_or(0.0), p.segments);
+        let _ = write!(s, "<circle class=\"pt\" data-start=\"{}\" data-segments=\"{}\" cx=\"{:.1}\" cy=\"{:.1}\" r=\"2.5\"><title>{:.2} ({} {})</title></circle>", p.start, p.segments, x(mid(p)), y(p.score.unwrap_or(0.0)), p.score.unwrap_or(0.0), p.segments, frame.counted);
     }
     for (rule, t) in marks.thresholds {
         let _ = write!(
@@ -349,7 +467,7 @@ pub fn chart_svg(session: &str, metric: &str, pts: &[Point], marks: &Marks<'_>, 
         );
     }
     for v in [lo, (lo + hi) / 2.0, hi] {
-        let _ = write!(s, "<text class=\"tick\" x=\"{:.1}\" y=\"{:.1}\">{v:.1}</text>", PAD_L - 4.0, y(v) + 3.0);
+        let _ = write!(s, "<text class=\"tick\" x=\"{:.1}\" y=\"{:.1}\">{v:.tick_places$}</text>", PAD_L - 4.0, y(v) + 3.0);
     }
     let _ = write!(s, "<text class=\"axis\" x=\"{PAD_L}\" y=\"{}\">{}</text><text class=\"axis end\" x=\"{}\" y=\"{}\">{}</text>", CHART_H - 6.0, esc(&frame.left), CHART_W - 8.0, CHART_H - 6.0, esc(&frame.right));
     s.push_str("</svg>");
@@ -508,7 +626,7 @@ const CSS: &str = "body{margin:0;font:14px/1.4 system-ui,sans-serif;background:#
 dl{display:grid;grid-template-columns:repeat(6,auto);gap:0 1em;margin:.5em 0}dt{font-size:11px;color:#6b6457;grid-row:1}dd{margin:0;font-weight:600;grid-row:2}\
 .iv{font-weight:400;color:#6b6457}.alerts{margin:.3em 0}.alert{font-size:12px;border-radius:3px;padding:0 .4em;margin-right:.4em;background:#e8e1d0}\
 .alert.firing{background:#b8412c;color:#fff}.alert.pending{background:#d9a441}.quiet{font-size:12px;color:#8a8273}\
-.chart{width:100%;height:auto}.guards{font-size:12px;margin:.2em 0}.guard{margin-right:.6em}.guard.hit{color:#b8412c;font-weight:600}\
+.chart{width:100%;height:auto}.ext{font-size:12px;border-collapse:collapse;margin:.3em 0}.ext th,.ext td{padding:0 1em 0 0;text-align:left}.ext td{font-weight:600}.ext-chart .chart{width:60%}.guards{font-size:12px;margin:.2em 0}.guard{margin-right:.6em}.guard.hit{color:#b8412c;font-weight:600}\
 .below{padding:0 1em}#compare select{font:inherit}.cmp{border-collapse:collapse;margin:.5em 0}.cmp th,.cmp td{padding:.15em .8em;text-align:left;border-bottom:1px solid #e8e1d0}\
 .worse{color:#b8412c;font-weight:600}.better{color:#2e4a3f;font-weight:600}.note{padding:0 1.2em;font-size:12px;color:#6b6457}";
 /// The styles of a chart (the page's, and a report file's own copy).
@@ -530,6 +648,47 @@ mod tests {
     use super::*;
     use crate::metric::resample::{Interval, METHOD};
 
+    /// The numbers of the y axis' ticks of the first chart in `html`.
+    fn ticks(html: &str) -> Vec<f64> {
+        html.split("<text class=\"tick\"").skip(1).take(3).map(|t| t.split('>').nth(1).unwrap().split('<').next().unwrap().parse().unwrap()).collect()
+    }
+
+    /// A card of a session with external metrics lists each one's mean since start (the mean
+    /// of the values sent, recomputed here) and charts the first one's mean per minute on a
+    /// scale that follows the data inside the declared 0..1, not a score's 0..100.
+    #[test]
+    fn a_card_lists_external_means_and_charts_the_first_in_its_units() {
+        use crate::external::{Declaration, ExternalSpec};
+        use crate::refs::{RefSet, SegmentInput};
+        let state = State::new(None, crate::server::Limits::default()).unwrap();
+        let set = RefSet::new(vec![SegmentInput { id: "1".into(), source: None, refs: vec!["Die Fähre nach Tarnholm fährt um neun Uhr ab.".into()] }]).unwrap();
+        state.insert_refset("ferry", set, false).unwrap();
+        let mut spec = state.session_spec("ferry-v8", "ferry", Default::default(), Default::default(), 0, Default::default()).unwrap();
+        spec.external = Declaration::new(vec![ExternalSpec::new("qe", 0.0, 1.0).unwrap(), ExternalSpec::new("edit_rate", 0.0, 100.0).unwrap()]).unwrap();
+        let (session, _) = state.create_session(spec, false).unwrap();
+        let now = unix_now();
+        let values = [0.41, 0.47, 0.52, 0.60];
+        for (k, v) in values.iter().enumerate() {
+            let items = vec![(k as u64, session.spec().external.check_item([("qe", *v)]).unwrap())];
+            let d = session.external_delta(&items).unwrap();
+            session.apply_external(&d).unwrap();
+            session.record_external(now, &d.totals).unwrap();
+        }
+        let c = card(&state, &session, now, CHART_RANGES[0]);
+        let mean = values.iter().sum::<f64>() / values.len() as f64;
+        let row = c.html.split("<tr data-metric=\"qe\">").nth(1).expect("a row for qe");
+        assert!(row.contains(&format!("<td class=\"ext-cum\">{mean:.3}")), "{row}");
+        assert!(row.contains("<td class=\"ext-count\">4</td>"), "{row}");
+        assert!(c.html.contains("<tr data-metric=\"edit_rate\">"));
+        let chart = c.html.split("class=\"ext-chart\"").nth(1).expect("the external chart");
+        assert_eq!(chart.matches("class=\"pt\"").count(), 1, "one minute with values");
+        let t = ticks(chart);
+        assert!(t.iter().all(|v| (0.0..=1.0).contains(v)) && t[2] - t[0] < 1.0, "{t:?}");
+        assert!(t[0] < 0.41 && t[2] > 0.60, "{t:?}");
+        // The built-in chart keeps the score's bounds: no segments, so 0..100.
+        assert_eq!(ticks(&c.html), vec![0.0, 50.0, 100.0]);
+    }
+
     fn point(start: i64, interval: bool) -> Point {
         Point { start, segments: 10, score: Some(40.0), interval: interval.then_some(Interval { level: 0.95, low: 35.0, high: 45.0, resamples: 200, method: METHOD, seed: 1 }), unknown: 0, rejected: 0 }
     }
@@ -541,7 +700,7 @@ mod tests {
 
     #[test]
     fn a_lone_step_with_an_interval_gets_a_band_of_some_width() {
-        let frame = Frame { from: 0, until: 600, step: 60, left: String::new(), right: String::new(), what: String::new(), placement: "" };
+        let frame = Frame { from: 0, until: 600, step: 60, left: String::new(), right: String::new(), what: String::new(), placement: "", bounds: SCORE_BOUNDS, counted: "segments" };
         // Steps 0-1 with intervals (one run), step 2 without, step 4 alone with one.
         let pts = [point(0, true), point(60, true), point(120, false), point(240, true)];
         let bands = band_xs(&chart_svg("s", "BLEU", &pts, &Marks::default(), &frame));
@@ -559,7 +718,7 @@ mod tests {
 
     #[test]
     fn spans_and_thresholds_are_drawn_where_they_belong() {
-        let frame = Frame { from: 0, until: 600, step: 60, left: String::new(), right: String::new(), what: String::new(), placement: "" };
+        let frame = Frame { from: 0, until: 600, step: 60, left: String::new(), right: String::new(), what: String::new(), placement: "", bounds: SCORE_BOUNDS, counted: "segments" };
         let pts = [point(0, true), point(60, true), point(300, true)];
         let spans = [
             // Before the chart: not drawn.

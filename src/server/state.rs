@@ -248,6 +248,7 @@ impl State {
             crate::telemetry::record_scores(&spec.name, &config, &s.cumulative, &window.stats());
             session.restore(crate::session::SessionState { cumulative: s.cumulative, window, counts: s.counts, producers: s.marks, replicates });
             session.restore_history(self.history_config(), s.history).map_err(bad)?;
+            session.restore_external_history(self.history_config(), s.external_history).map_err(bad)?;
             if let Some(e) = s.external {
                 session.restore_external(e, s.external_recent, s.external_next).map_err(bad)?;
             }
@@ -435,7 +436,7 @@ impl State {
             return Err(ServiceError::Limit { what: format!("{} sessions", self.inner.sessions.len() + 1), limit: self.inner.limits.max_sessions as u64, key: Limit::MaxSessions.key() });
         }
         let session = Arc::new(Session::new(spec.clone(), Arc::clone(&set), unix_now()));
-        session.history().set_config(self.history_config());
+        session.set_history_config(self.history_config());
         match self.inner.sessions.entry(spec.name.clone()) {
             // Created concurrently by another request: the same rule.
             Entry::Occupied(e) => existing(e.get()),
@@ -519,7 +520,13 @@ fn commit(live: Option<&Inner>, store: Option<&Store>, group: &[Pending]) -> std
                 // Checked when scored; only sums near the i128 limit fail here, and then
                 // nothing is added (the batch's built-in statistics are applied already).
                 match p.session.apply_external(d) {
-                    Ok(rows) => a.external_rows = Some(rows),
+                    Ok(rows) => {
+                        a.external_rows = Some(rows);
+                        match p.session.record_external(now, &d.totals) {
+                            Ok(w) => a.external_history = Some(w),
+                            Err(e) => tracing::error!(session = %p.session.spec().name, error = %e, "external values not counted in the history"),
+                        }
+                    }
                     Err(e) => tracing::error!(session = %p.session.spec().name, error = %e, "external values not counted"),
                 }
             }

@@ -131,6 +131,9 @@ pub enum HistoryError {
     /// Too many steps.
     #[error("{0} steps asked for; at most {MAX_HISTORY_STEPS} (use a longer step or a shorter range)")]
     TooManySteps(i64),
+    /// A step's external sums overflow (the step starting then).
+    #[error("the external sums of the step at {0} overflow; use a shorter step")]
+    Overflow(i64),
 }
 
 impl HistoryConfig {
@@ -300,8 +303,24 @@ pub struct History {
     hours: VecDeque<Bucket>,
 }
 
-fn floor_to(t: i64, unit: i64) -> i64 {
+pub(super) fn floor_to(t: i64, unit: i64) -> i64 {
     t.div_euclid(unit) * unit
+}
+
+/// The buckets a query of steps of `step` seconds over `from..until` reads, its start moved
+/// back to a bucket boundary, and its number of steps; refused when the step, range or count
+/// is not allowed. Shared by the built-in and the external history.
+pub(super) fn plan_steps(from: i64, until: i64, step: i64) -> Result<(Resolution, i64, i64), HistoryError> {
+    let r = Resolution::for_step(step).ok_or(HistoryError::Step(step))?;
+    let from = floor_to(from, r.seconds());
+    if until <= from {
+        return Err(HistoryError::Range(from, until));
+    }
+    let n = (until - from).div_euclid(step) + i64::from((until - from) % step != 0);
+    if n as usize > MAX_HISTORY_STEPS {
+        return Err(HistoryError::TooManySteps(n));
+    }
+    Ok((r, from, n))
 }
 
 impl History {
@@ -453,15 +472,7 @@ impl History {
     /// sum of the buckets that start in it, read from the resolution the step calls for
     /// ([`Resolution::for_step`]); `from` is moved back to a bucket boundary.
     pub fn query(&self, from: i64, until: i64, step: i64) -> Result<(Resolution, Vec<Step>), HistoryError> {
-        let r = Resolution::for_step(step).ok_or(HistoryError::Step(step))?;
-        let from = floor_to(from, r.seconds());
-        if until <= from {
-            return Err(HistoryError::Range(from, until));
-        }
-        let n = (until - from).div_euclid(step) + i64::from((until - from) % step != 0);
-        if n as usize > MAX_HISTORY_STEPS {
-            return Err(HistoryError::TooManySteps(n));
-        }
+        let (r, from, n) = plan_steps(from, until, step)?;
         let mut steps: Vec<Step> = (0..n).map(|k| Step { start: from + k * step, stats: CorpusStats::default(), counts: Counts::default(), sums: None }).collect();
         let mut missing = vec![self.template.is_none(); steps.len()];
         for b in self.level(r).iter().filter(|b| b.start >= from && b.start < until) {

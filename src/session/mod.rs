@@ -3,6 +3,7 @@
 //!
 //! Pure and synchronous like the scoring core: the server owns sessions and calls in here.
 
+pub mod external_history;
 pub mod history;
 mod replicates;
 mod window;
@@ -281,6 +282,8 @@ pub struct Session {
     state: Mutex<SessionState>,
     /// Time buckets of the statistics; its own short lock, taken after `state` is released.
     history: Mutex<history::History>,
+    /// Time buckets of the external metrics' sums (kept across a reset, as `history`).
+    external_history: Mutex<external_history::ExternalHistory>,
     /// External metric statistics; its own short lock, taken after `state` is released.
     external: Mutex<ExternalStats>,
 }
@@ -325,7 +328,8 @@ impl Session {
         let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new(), replicates };
         let history = history::History::new(history::HistoryConfig::default(), &spec.config, (spec.resampling.resamples > 0).then(|| Replicates::new(&spec.config, spec.resampling.resamples, spec.resampling.seed)));
         let external = Mutex::new(ExternalStats::new(&spec, 0));
-        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state), history: Mutex::new(history), external }
+        let external_history = Mutex::new(external_history::ExternalHistory::new(history::HistoryConfig::default(), spec.external.len()));
+        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state), history: Mutex::new(history), external, external_history }
     }
 
     /// The external values a batch adds (CPU work, no lock taken): `items` are (weight key,
@@ -470,6 +474,30 @@ impl Session {
         self.history.lock().unwrap_or_else(|e| e.into_inner())
     }
 
+    /// Set the spans of the history and of the external metrics' history.
+    pub fn set_history_config(&self, config: history::HistoryConfig) {
+        self.history().set_config(config);
+        self.external_history().set_config(config);
+    }
+
+    /// Lock the external metrics' history (short sections only).
+    pub fn external_history(&self) -> MutexGuard<'_, external_history::ExternalHistory> {
+        // As for `history`: integers, whole after any panic that matters.
+        self.external_history.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    /// Count a batch's external sums (applied with [`Session::apply_external`]) in the
+    /// external metrics' buckets of time `now`; what the store is to write.
+    pub fn record_external(&self, now: i64, added: &crate::external::ExternalTotals) -> Result<external_history::ExternalHistoryWrite, crate::external::SumError> {
+        self.external_history().record(now, added)
+    }
+
+    /// Replace the external metrics' history with one rebuilt from a store, under `config`.
+    pub fn restore_external_history(&self, config: history::HistoryConfig, stored: Vec<external_history::StoredExternalBucket>) -> Result<(), String> {
+        *self.external_history() = external_history::ExternalHistory::restore(config, self.spec.external.len(), stored)?;
+        Ok(())
+    }
+
     /// Replace the history with one rebuilt from a store, under `config`.
     pub fn restore_history(&self, config: history::HistoryConfig, stored: Vec<history::StoredBucket>) -> Result<(), String> {
         let template = (self.spec.resampling.resamples > 0).then(|| Replicates::new(&self.spec.config, self.spec.resampling.resamples, self.spec.resampling.seed));
@@ -575,7 +603,7 @@ impl Session {
         let window = st.window.memory_bytes();
         drop(st);
         let history = self.history().memory_bytes();
-        let external = self.external_stats().recent.memory_bytes();
+        let external = self.external_stats().recent.memory_bytes() + self.external_history().memory_bytes();
         self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + window + replicates + history + external
     }
 
@@ -683,7 +711,7 @@ impl SessionState {
             }
             keep_from = keep_from.min(r.saved_to());
         }
-        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from, history: None, external: None, external_window: None, external_rows: None })
+        Some(Applied { mark, first_row, rows, added, batch, cumulative: self.cumulative, recent: self.window.stats(), counts: self.counts, next_row: self.window.next_id(), save_replicates, keep_from, history: None, external: None, external_window: None, external_rows: None, external_history: None })
     }
 }
 
@@ -735,6 +763,8 @@ pub struct Applied {
     pub external_window: Option<(u64, u64)>,
     /// The items the batch added to the external `recent` window.
     pub external_rows: Option<ExternalRows>,
+    /// What the batch's external values changed in the external metrics' history.
+    pub external_history: Option<external_history::ExternalHistoryWrite>,
 }
 
 #[cfg(test)]

@@ -6,6 +6,8 @@ use redb::{ReadableTable, TableDefinition};
 use serde::{Deserialize, Serialize};
 
 use crate::metric::CorpusStats;
+use crate::external::ExternalTotals;
+use crate::session::external_history::{ExternalBucket, ExternalHistoryWrite, StoredExternalBucket};
 use crate::session::history::{HistoryWrite, Resolution, StoredBucket};
 use crate::session::Counts;
 
@@ -17,6 +19,10 @@ pub(super) const HISTORY: TableDefinition<(&str, u8, u64), &[u8]> = TableDefinit
 /// (session, resolution code, bucket start) -> the bucket's replicate sums as LEB128 varints
 /// (their count, then the sums), written once when the bucket closes.
 pub(super) const HISTORY_SUMS: TableDefinition<(&str, u8, u64), &[u8]> = TableDefinition::new("history_sums");
+/// (session, resolution code, bucket start) -> JSON of the bucket's external sums
+/// ([`ExternalTotals`], one per declared metric), rewritten by every group commit that adds to
+/// it ([`crate::session::external_history`]). Added after the built-in tables, the same way.
+pub(super) const HISTORY_EXTERNAL: TableDefinition<(&str, u8, u64), &[u8]> = TableDefinition::new("history_external");
 
 #[derive(Debug, Serialize, Deserialize)]
 struct StoredStats {
@@ -34,6 +40,10 @@ pub(super) enum Op {
     DropBefore(String, u8, u64),
     /// Remove sums of buckets that start before.
     DropSumsBefore(String, u8, u64),
+    /// Write a bucket's external sums.
+    External(String, u8, u64, Vec<u8>),
+    /// Remove external buckets that start before.
+    ExternalDropBefore(String, u8, u64),
 }
 
 fn key_start(t: i64) -> u64 {
@@ -44,8 +54,12 @@ fn key_start(t: i64) -> u64 {
 pub(super) fn encode(writes: &[BatchWrite<'_>]) -> Result<Vec<Op>, serde_json::Error> {
     let mut ops = Vec::new();
     for w in writes {
-        let Some(h) = &w.applied.history else { continue };
-        ops.extend(encode_one(w.session, h)?);
+        if let Some(h) = &w.applied.history {
+            ops.extend(encode_one(w.session, h)?);
+        }
+        if let Some(h) = &w.applied.external_history {
+            ops.extend(encode_external(w.session, h)?);
+        }
     }
     Ok(ops)
 }
@@ -67,6 +81,15 @@ fn encode_one(name: &str, h: &HistoryWrite) -> Result<Vec<Op>, serde_json::Error
     Ok(ops)
 }
 
+fn encode_external(name: &str, h: &ExternalHistoryWrite) -> Result<Vec<Op>, serde_json::Error> {
+    let mut ops = Vec::new();
+    for (r, start, totals) in &h.buckets {
+        ops.push(Op::External(name.to_owned(), r.code(), key_start(*start), serde_json::to_vec(totals)?));
+    }
+    ops.extend(h.dropped_before.iter().map(|(r, t)| Op::ExternalDropBefore(name.to_owned(), r.code(), key_start(*t))));
+    Ok(ops)
+}
+
 /// Apply the operations in the group commit's transaction.
 pub(super) fn apply(txn: &redb::WriteTransaction, ops: &[Op]) -> Result<(), redb::Error> {
     if ops.is_empty() {
@@ -74,6 +97,7 @@ pub(super) fn apply(txn: &redb::WriteTransaction, ops: &[Op]) -> Result<(), redb
     }
     let mut stats = txn.open_table(HISTORY)?;
     let mut sums = txn.open_table(HISTORY_SUMS)?;
+    let mut external = txn.open_table(HISTORY_EXTERNAL)?;
     for op in ops {
         match op {
             Op::Stats(n, r, t, b) => {
@@ -89,6 +113,12 @@ pub(super) fn apply(txn: &redb::WriteTransaction, ops: &[Op]) -> Result<(), redb
             Op::DropSumsBefore(n, r, t) => {
                 sums.retain_in((n.as_str(), *r, 0)..(n.as_str(), *r, *t), |_, _| false)?;
             }
+            Op::External(n, r, t, b) => {
+                external.insert((n.as_str(), *r, *t), b.as_slice())?;
+            }
+            Op::ExternalDropBefore(n, r, t) => {
+                external.retain_in((n.as_str(), *r, 0)..(n.as_str(), *r, *t), |_, _| false)?;
+            }
         }
     }
     Ok(())
@@ -98,6 +128,7 @@ pub(super) fn apply(txn: &redb::WriteTransaction, ops: &[Op]) -> Result<(), redb
 pub(super) fn clear(txn: &redb::WriteTransaction, name: &str) -> Result<(), redb::Error> {
     txn.open_table(HISTORY)?.retain_in((name, 0, 0)..=(name, u8::MAX, u64::MAX), |_, _| false)?;
     txn.open_table(HISTORY_SUMS)?.retain_in((name, 0, 0)..=(name, u8::MAX, u64::MAX), |_, _| false)?;
+    txn.open_table(HISTORY_EXTERNAL)?.retain_in((name, 0, 0)..=(name, u8::MAX, u64::MAX), |_, _| false)?;
     Ok(())
 }
 
@@ -120,6 +151,19 @@ pub(super) fn load(stats: &impl ReadableTable<(&'static str, u8, u64), &'static 
             None => None,
         };
         out.push(StoredBucket { resolution, start: start as i64, stats: st.stats, counts: st.counts, sums: s });
+    }
+    Ok(out)
+}
+
+/// A session's external buckets as stored.
+pub(super) fn load_external(table: &impl ReadableTable<(&'static str, u8, u64), &'static [u8]>, name: &str) -> Result<Vec<StoredExternalBucket>, String> {
+    let mut out = Vec::new();
+    for r in table.range((name, 0, 0)..=(name, u8::MAX, u64::MAX)).map_err(|e| e.to_string())? {
+        let (k, v) = r.map_err(|e| e.to_string())?;
+        let (_, code, start) = k.value();
+        let resolution = Resolution::from_code(code).ok_or_else(|| format!("external history bucket of resolution {code}"))?;
+        let totals: ExternalTotals = serde_json::from_slice(v.value()).map_err(|e| format!("external history bucket {start}: {e}"))?;
+        out.push(StoredExternalBucket { resolution, bucket: ExternalBucket { start: start as i64, totals } });
     }
     Ok(out)
 }
@@ -208,5 +252,44 @@ mod tests {
         use redb::{ReadableDatabase, ReadableTableMetadata};
         let txn = st.db.begin_read().unwrap();
         assert!(txn.open_table(HISTORY).unwrap().is_empty().unwrap());
+    }
+
+    /// External sums written through group commits over three minutes come back as the same
+    /// external history (every step at both resolutions), and go when the session is deleted.
+    #[test]
+    fn external_history_survives_a_reopen() {
+        let d = dir("external");
+        let with_external = || {
+            let s = session();
+            let mut spec = s.spec().clone();
+            spec.external = crate::external::Declaration::new(vec![crate::external::ExternalSpec::new("qe", 0.0, 1.0).unwrap()]).unwrap();
+            Session::new(spec, Arc::clone(s.refs()), 0)
+        };
+        let s = with_external();
+        let t0 = 1_800_000_000;
+        {
+            let st = Store::open(&d).unwrap();
+            st.put_refset("notices", s.refs()).unwrap();
+            st.put_session(s.spec(), &s.refs().digest_hex(), 0).unwrap();
+            for (i, v) in [0.25, 0.5, 0.75, 0.125, 0.875].iter().enumerate() {
+                let mut applied = s.apply_at(t0 + 40 * i as i64, "p", i as u64 + 1, &[], 0, None, &Default::default()).unwrap();
+                let d = s.external_delta(&[(i as u64, s.spec().external.check_item([("qe", *v)]).unwrap())]).unwrap();
+                s.apply_external(&d).unwrap();
+                applied.external_history = Some(s.record_external(t0 + 40 * i as i64, &d.totals).unwrap());
+                st.commit_batches(&[crate::store::BatchWrite { session: "ferry", applied: &applied }]).unwrap();
+            }
+        }
+        let st = Store::open(&d).unwrap();
+        let loaded = st.load().unwrap().sessions.remove(0);
+        let back = with_external();
+        back.restore_external_history(HistoryConfig::default(), loaded.external_history).unwrap();
+        for step in [60, 3600] {
+            let want = s.external_history().query(t0, t0 + 3600, step).unwrap();
+            assert_eq!(back.external_history().query(t0, t0 + 3600, step).unwrap(), want, "step {step}");
+            assert_eq!(want.1.iter().map(|(_, t)| t.0[0].count).sum::<u64>(), 5);
+        }
+        st.delete_session("ferry").unwrap();
+        use redb::{ReadableDatabase, ReadableTableMetadata};
+        assert!(st.db.begin_read().unwrap().open_table(HISTORY_EXTERNAL).unwrap().is_empty().unwrap());
     }
 }

@@ -161,6 +161,8 @@ pub struct LoadedSession {
     pub marks: HashMap<String, u64>,
     /// History buckets (none in a store written before histories).
     pub history: Vec<crate::session::history::StoredBucket>,
+    /// External metrics' history buckets (none in a store written before them).
+    pub external_history: Vec<crate::session::external_history::StoredExternalBucket>,
     /// External metric sums (None: none stored).
     pub external: Option<crate::external::ExternalState>,
     /// The external `recent` window's items, oldest first.
@@ -321,6 +323,7 @@ impl Store {
             txn.open_table(EXTERNAL_WINDOW)?;
             txn.open_table(history::HISTORY)?;
             txn.open_table(history::HISTORY_SUMS)?;
+            txn.open_table(history::HISTORY_EXTERNAL)?;
             Ok(())
         })()
         .map_err(|e| self.err(e))?;
@@ -375,6 +378,7 @@ impl Store {
         let replicates = txn.open_table(REPLICATES).map_err(|e| self.err(e))?;
         let external_window = txn.open_table(EXTERNAL_WINDOW).map_err(|e| self.err(e))?;
         let (h_stats, h_sums) = (txn.open_table(history::HISTORY).map_err(|e| self.err(e))?, txn.open_table(history::HISTORY_SUMS).map_err(|e| self.err(e))?);
+        let h_external = txn.open_table(history::HISTORY_EXTERNAL).map_err(|e| self.err(e))?;
         for entry in txn.open_table(SESSIONS).map_err(|e| self.err(e))?.iter().map_err(|e| self.err(e))? {
             let (k, v) = entry.map_err(|e| self.err(e))?;
             let name = k.value();
@@ -419,6 +423,7 @@ impl Store {
                 m.insert(producer.to_owned(), v.value());
             }
             let hist = history::load(&h_stats, &h_sums, name).map_err(|e| self.err(format!("history of {name}: {e}")))?;
+            let external_history = history::load_external(&h_external, name).map_err(|e| self.err(format!("external history of {name}: {e}")))?;
             let (first_item, external_next) = st.external_window.unwrap_or((0, 0));
             let mut external_recent = Vec::new();
             for r in external_window.range((name, 0)..=(name, u64::MAX)).map_err(|e| self.err(e))? {
@@ -446,6 +451,7 @@ impl Store {
                 next_row: st.next_row,
                 marks: m,
                 history: hist,
+                external_history,
                 external: st.external,
                 external_recent,
                 external_next,
