@@ -67,7 +67,7 @@ pub const COMMIT_BATCHES_BUCKETS: &[f64] = &[1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.
 pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 41] = [
+pub const METRIC_NAMES: [&str; 43] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -109,6 +109,8 @@ pub const METRIC_NAMES: [&str; 41] = [
     EXTERNAL_COUNT,
     EXTERNAL_SUM,
     EXTERNAL_SQUARES,
+    EXTERNAL_LOW,
+    EXTERNAL_SCALE,
 ];
 
 /// The replicate families: name, help, and the labels after `session` and `replicate`.
