@@ -173,7 +173,7 @@ async fn status_page_in_headless_chromium() {
 
     let shot = out_dir.join("status-page.png");
     let _ = std::fs::remove_file(&shot);
-    let s = browse(bin, &dir.join("profile-shot"), &[&format!("--screenshot={}", shot.display()), "--window-size=1400,700"], &url);
+    let s = browse(bin, &dir.join("profile-shot"), &[&format!("--screenshot={}", shot.display()), "--window-size=1400,1060"], &url);
     assert!(s.status.success(), "{}", String::from_utf8_lossy(&s.stderr));
     let png = std::fs::read(&shot).expect("screenshot written");
     assert_eq!(&png[..8], b"\x89PNG\r\n\x1a\n", "PNG signature (PNG specification, ISO/IEC 15948)");

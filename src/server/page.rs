@@ -251,7 +251,9 @@ fn card_html(c: &Card, q: &HistoryQuery, range: ChartRange) -> String {
         rate = c.segments_per_second,
         unk = 100.0 * c.unknown_share,
         rej = 100.0 * c.rejected_share,
-        chart = chart_svg(&c.name, c.metric, &c.points, &marks, &Frame {
+        // A session that has scored no segment but counts external values (values only)
+        // shows their chart alone.
+        chart = if c.segments == 0 && !c.external.is_empty() && c.points.iter().all(|p| p.segments == 0) { String::new() } else { chart_svg(&c.name, c.metric, &c.points, &marks, &Frame {
             from: q.from,
             until: q.until,
             step: q.step,
@@ -261,7 +263,7 @@ fn card_html(c: &Card, q: &HistoryQuery, range: ChartRange) -> String {
             placement: "",
             bounds: SCORE_BOUNDS,
             counted: "segments",
-        }),
+        }) },
     );
     h
 }
