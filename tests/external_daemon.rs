@@ -638,3 +638,37 @@ async fn external_history_survives_a_restart_and_equals_the_values_sent() {
     let fresh = HistoryClient::new(ch).get_history(query("qe", from, from + i64::from(step), step)).await.unwrap().into_inner();
     assert_eq!(fresh.points[0].segments, 0, "the closed session's buckets were removed from the store");
 }
+
+/// A session of external values alone: no reference set and no target language, only the
+/// declared metrics (`send --create --external` without `--refset`). Values-only lines are
+/// counted, and so is the value of a line with a hypothesis (which has nothing to be scored
+/// against); the sums survive a restart. Without a reference set, a target language or an
+/// external metric, creation is refused.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_session_of_values_alone_needs_no_reference_set() {
+    let dir = temp_dir("external-values-only");
+    demo_files(&dir);
+    let (mut server, _ch, data) = durable_with_ferry(&dir).await;
+    let lines: Vec<String> = (0..50).map(|i| format!("{{\"key\": \"call-{i}\", \"scores\": {{\"qe\": {}}}}}", f64::from(i) / 100.0)).chain(["{\"source\": \"The ferry leaves at nine.\", \"hypothesis\": \"Die Fähre fährt um neun.\", \"scores\": {\"qe\": 0.5}}".to_string()]).collect();
+    let path = dir.join("values.jsonl");
+    std::fs::write(&path, lines.join("\n") + "\n").unwrap();
+    cli(&["send", "--server", &server.grpc, "--session", "qe-only", "--create", "--external", "qe:0:1:places=2", "--items", path.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    let got = external(&ch, "qe-only").await;
+    // 0.00 + 0.01 + ... + 0.49 = 12.25, and 0.5: 12.75 over 51 values.
+    assert_eq!(got[0].count, 51);
+    assert!((got[0].mean.unwrap() - 12.75 / 51.0).abs() < 1e-12, "{got:?}");
+    let info = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "qe-only".into() }).await.unwrap().into_inner();
+    assert!(info.refset.is_empty(), "{info:?}");
+    server.kill();
+    let server = Server::start(&["--data-dir", &data, "--refset-dir", dir.to_str().unwrap()]);
+    let ch = server.wait_serving().await;
+    assert_eq!(external(&ch, "qe-only").await, got, "the sums come back after a restart");
+    // Nothing to count: refused, by the server and by `send`.
+    let e = SessionsClient::new(ch.clone()).create(pb::CreateSessionRequest { name: "nothing".into(), ..Default::default() }).await.unwrap_err();
+    assert_eq!(e.code(), Code::InvalidArgument);
+    assert!(e.message().contains("external metrics"), "{}", e.message());
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mtgauge")).args(["send", "--server", &server.grpc, "--session", "nothing", "--create", "--items", path.to_str().unwrap()]).output().unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("--external"), "{}", String::from_utf8_lossy(&out.stderr));
+}

@@ -22,17 +22,18 @@
 //!   Daemon only (`window` is `all`, the counts the daemon keeps).
 //!
 //! # Windows
-//! What `below` and `drop` judge: `recent` (default), the session's recent window of the last
-//! segments; `all`, everything since the session was created or reset; or a time window such
-//! as `15m` or `1h` (an integer and s, m, h or d), the segments scored in the last that long.
-//! The daemon evaluates all three; `mtgauge rules` renders `all` and time windows for Prometheus
-//! (`recent` counts segments, which Prometheus cannot: daemon only). `decline` tests chunks of
-//! new segments and takes no window.
+//! What `below` and `drop` judge: `recent` (the default of `below`), the session's recent window
+//! of the last segments; the last N segments each session scored, such as `1800seg` (the
+//! default of `drop`: [`DEFAULT_DROP_WINDOW_SEGMENTS`]); `all`, everything since the session was
+//! created or reset; or a time window such as `15m` or `1h` (an integer and s, m, h or d), the
+//! segments scored in the last that long. The daemon evaluates all four; `mtgauge rules`
+//! renders `all` and time windows for Prometheus (`recent` and `Nseg` count segments, which
+//! Prometheus cannot: daemon only). `decline` tests chunks of new segments and takes no window.
 //!
 //! # States (the Prometheus vocabulary)
 //! inactive -> pending when the condition holds (with at least `min_segments` behind it);
 //! pending -> firing once it has held for `for_seconds` and through `for_segments` newly scored
-//! segments (default: 400 segments for `below` and `drop`, nothing more for `decline` or `flag-rate`; a rule
+//! segments (default: 400 segments for `below`, 200 for `drop`, nothing more for `decline` or `flag-rate`; a rule
 //! that sets only `for_seconds` waits for time alone); pending -> inactive as soon as it does
 //! not. A firing alert resolves (-> inactive) only once its bound has come back past the
 //! threshold by `clear_margin` points (hysteresis), or when there are fewer than
@@ -75,13 +76,16 @@ pub const MAX_WINDOW_SECONDS: u64 = 7 * 86_400;
 pub const MIN_WINDOW_SEGMENTS: u64 = 100;
 /// Longest segment-count window a rule may use.
 pub const MAX_WINDOW_SEGMENTS: u64 = 1_000_000;
-/// The window of `drop` rules unless they set one: the last 2,000 segments of each session.
-/// Twice the default recent window: the paired difference's interval is then 0.7 times as wide,
-/// which is what lets a rule set for a 1-point drop stay silent for 10 million stable segments
-/// and still find a 2-point drop within 4,000 segments (`mtgauge alert-bench`).
-pub const DEFAULT_DROP_WINDOW_SEGMENTS: u64 = 2_000;
+/// The window of `drop` rules unless they set one: the last 1,800 segments of each session.
+/// Longer than the default recent window (1,000): the paired difference carries the noise of
+/// both sessions, and its interval over 1,800 segments is 0.75 times as wide, which lets a rule
+/// set for a 1-point drop stay silent over 10 million stable segments and still find 2- and
+/// 5-point drops in time (`mtgauge alert-bench`; 2,000 segments found a 5-point drop too late,
+/// the recent window raised a false alert).
+pub const DEFAULT_DROP_WINDOW_SEGMENTS: u64 = 1_800;
 /// Segments a `drop` rule's condition must hold through unless it sets `for_segments`: with its
-/// wider window it needs less confirmation, and a 5-point drop is found within 1,000 segments.
+/// longer window it needs less confirmation than `below` (100 and 150 let a false alert through
+/// in the benchmark).
 pub const DEFAULT_DROP_FOR_SEGMENTS: u64 = 200;
 /// Most rules a config file may declare.
 pub const MAX_RULES: usize = 256;
@@ -449,8 +453,11 @@ impl Rule {
         match &self.condition {
             Condition::Below { threshold } if self.external.is_some() => format!("{} mean {what}: 95% interval entirely worse than {threshold} (below it, or above it for a lower-is-better metric)", self.window.describe()),
             Condition::Below { threshold } => format!("{} {what} 95% interval entirely below {threshold}", self.window.describe()),
+            Condition::Drop { baseline, points } if self.external.is_some() => {
+                format!("{} mean {what} at least {points} worse than session {baseline} (95% interval of the difference beyond {points}: below -{points}, or above it for a lower-is-better metric)", self.window.describe())
+            }
             Condition::Drop { baseline, points } => {
-                format!("{} {what} at least {points}{units} worse than session {baseline} (95% interval of the difference beyond {points})", self.window.describe())
+                format!("{} {what} at least {points} points below session {baseline} (paired 95% interval of the difference below -{points})", self.window.describe())
             }
             Condition::Decline { points } => format!("{what} of chunks of {} segments {points}{units} worse than the session's own past (CUSUM past its decision limit)", self.min_segments),
             Condition::FlagRate { guard, threshold } => format!("share of items the {guard} guard flags since start: 95% Wilson interval entirely above {threshold}%"),
@@ -637,7 +644,7 @@ mod tests {
         assert_eq!(Window::parse("2000seg"), Ok(Window::Segments(2000)));
         assert_eq!(Window::Segments(2000).name(), "2000seg");
         assert!(Window::parse("99seg").is_err() && Window::parse("seg").is_err() && Window::parse("1000001seg").is_err());
-        // Defaults: drop judges the last 2,000 segments through 200, below the recent window
+        // Defaults: drop judges the last 1,800 segments through 200, below the recent window
         // through 400.
         let d = entry("name = \"d\"\nsession = \"s\"\nwhen = \"drop\"\nbaseline = \"p\"\npoints = 1").check(0).unwrap();
         assert_eq!((d.window, d.for_segments), (Window::Segments(DEFAULT_DROP_WINDOW_SEGMENTS), DEFAULT_DROP_FOR_SEGMENTS));

@@ -4,7 +4,6 @@
 //! by the item, as a session does with the values of a batch (the work done outside any lock).
 
 use std::sync::Arc;
-use std::time::Instant;
 
 use serde_json::{json, Value};
 
@@ -16,24 +15,10 @@ use crate::refs::compiled::{Compiled, Scratch};
 use crate::refs::RefSet;
 use crate::text::DEFAULT_TOKENIZER;
 
-/// Passes over the demo items per measurement.
-const PASSES: usize = 8;
-/// Measurements of each loop; the fastest counts.
-const ROUNDS: usize = 3;
+use super::bench_guards::{fastest, PASSES};
+
 /// Items per batch, as the values are added (one delta per batch).
 const BATCH: usize = 64;
-
-fn fastest(mut f: impl FnMut() -> u64) -> f64 {
-    let mut best = f64::INFINITY;
-    let mut sink = 0u64;
-    for _ in 0..ROUNDS {
-        let t = Instant::now();
-        sink = sink.wrapping_add(f());
-        best = best.min(t.elapsed().as_secs_f64());
-    }
-    std::hint::black_box(sink);
-    best
-}
 
 /// The figures: segments/s of BLEU alone, of BLEU with two external values per item (without
 /// and with replicates), and the time the values add per item.

@@ -15,11 +15,12 @@ use crate::refs::RefSet;
 use crate::text::DEFAULT_TOKENIZER;
 
 /// Passes over the demo items per measurement (900 items each).
-const PASSES: usize = 8;
+pub(super) const PASSES: usize = 8;
 /// Measurements of each loop; the fastest counts.
 const ROUNDS: usize = 3;
 
-fn fastest(mut f: impl FnMut() -> u64) -> f64 {
+/// The fastest of [`ROUNDS`] runs of `f`, in seconds.
+pub(super) fn fastest(mut f: impl FnMut() -> u64) -> f64 {
     let mut best = f64::INFINITY;
     let mut sink = 0u64;
     for _ in 0..ROUNDS {

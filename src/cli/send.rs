@@ -89,8 +89,8 @@ pub struct SendArgs {
     #[arg(long, value_name = "FILE", conflicts_with = "source")]
     pub ids: Option<String>,
     /// Create the session first (no error when an identical one exists); needs --refset, or
-    /// --target-language alone for a reference-free session (the guards check items that carry
-    /// a source: give --source).
+    /// for a session without references --target-language (the guards check items that carry
+    /// a source: give --source) and/or --external (values only: give --items).
     #[arg(long)]
     pub create: bool,
     /// Reference set of the session to create.
@@ -214,8 +214,8 @@ pub(super) fn run(a: SendArgs) -> Result<(), CliError> {
     if a.batch == 0 {
         return Err(CliError::Usage("--batch must be at least 1".into()));
     }
-    if a.create && a.refset.is_none() && a.target_language.is_none() {
-        return Err(CliError::Usage("--create needs --refset, or --target-language for a session without references".into()));
+    if a.create && a.refset.is_none() && a.target_language.is_none() && a.external.is_empty() {
+        return Err(CliError::Usage("--create needs --refset, or for a session without references --target-language or --external".into()));
     }
     let (producer, batches, sent) = match (&a.items, &a.hyp) {
         (Some(path), _) => {

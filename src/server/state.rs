@@ -414,12 +414,12 @@ impl State {
     ///
     /// A session without a reference set (`spec.refset` empty) is reference-free: it scores
     /// nothing and counts its items as unknown, while the guards check those with a source.
-    /// It needs its target language, and is kept over the empty set, stored as a version no
-    /// name refers to.
+    /// It needs its target language or external metrics (values only), and is kept over the
+    /// empty set, stored as a version no name refers to.
     pub fn create_session(&self, spec: SessionSpec, if_not_exists: bool) -> Result<(Arc<Session>, bool)> {
         let reference_free = spec.refset.is_empty();
-        if reference_free && spec.target_language.is_none() {
-            return Err(ServiceError::Invalid("a session without a reference set needs its target language (the guards are all it has)".into()));
+        if reference_free && spec.target_language.is_none() && spec.external.is_empty() {
+            return Err(ServiceError::Invalid("a session without a reference set needs its target language (for the guards) or external metrics (for values alone): it would have nothing to count".into()));
         }
         let set = match reference_free {
             true => Arc::new(RefSet::new(Vec::new()).map_err(|e| ServiceError::Internal(e.to_string()))?),

@@ -73,7 +73,7 @@ default 5 s period: 50 segments at the default 10/s) are scored by the sessions 
 one batch with their replicate sums, and the daemon's own evaluator judges every rule; a rule's \
 for-duration (default: 400 segments scored while the condition holds for below, 200 for drop; \
 decline rules wait for nothing more than their test) is thus 8 or 4 evaluations at the default \
-rate. below judges the recent window; drop, at its default, the last 2,000 segments of each \
+rate. below judges the recent window; drop, at its default, the last 1,800 segments of each \
 session.
   The rules, all with default keys, each set for a drop of P points (--points, default 1,2): \
 below (threshold = the stable system's BLEU minus P), drop (points = P, baseline session \
