@@ -35,8 +35,8 @@ out what that replica counted) unless --partial is given; the footer names the r
 An external metric the session declares (--metric with its name): the mean of the values that \
 arrived in each step, in the metric's own units (the y axis captioned \"NAME (LOW\u{2013}HIGH)\" with its \
 declared range), and as its band the 95% normal-theory interval of the mean from the step's count, \
-sum and sum of squares (Student's t). Drawn from one server (replicas do not send their external \
-sums yet).
+sum and sum of squares (Student's t). Over a fleet, each step's count, sum and squares are added \
+up over the replicas first.
 
 --since is how far back (an integer and m, h or d; default 24h); --step the width of one point \
 (default: the whole minutes or hours that give at most 120 points). A .png is the same drawing \
@@ -164,12 +164,13 @@ pub(super) fn run(a: ReportArgs) -> Result<(), CliError> {
             };
             return Ok::<_, CliError>((history, config, None, declared));
         }
-        if let Some(name) = &external_name {
-            return Err(CliError::Usage(format!("--metric {name}: a fleet report covers the built-in metrics only (replicas do not send their external sums yet); give one replica's URL to --server")));
-        }
         let endpoints = fleet.endpoints().await?;
+        let declared = match (&external_name, endpoints.first()) {
+            (Some(name), Some(e)) => Some(declared_metric(e, &a.session, name).await?),
+            _ => None,
+        };
         let (history, config, holders) = fleet_history(&endpoints, pb::GetHistoryRequest { with_sums: true, ..req }, a.partial).await?;
-        Ok((history, config, Some(holders), None))
+        Ok((history, config, Some(holders), declared))
     })?;
     let points: Vec<Point> = history.points.iter().map(|p| Point { start: p.start_unix, segments: p.segments, score: p.score, interval: p.interval.as_ref().map(interval_from_pb), unknown: p.unknown, rejected: p.rejected }).collect();
     let metric = crate::metric::Metric::ALL.into_iter().find(|m| m.name() == history.metric).map_or(history.metric.clone(), |m| m.title().to_owned());
@@ -251,7 +252,51 @@ pub(super) async fn fleet_history(endpoints: &[Endpoint], req: pb::GetHistoryReq
         return Err(CliError::Usage(format!("no replica has a session named '{}'", req.session)));
     };
     let config = config_from_pb(first.config.as_ref()).map_err(|e| CliError::Usage(format!("{first_name} sent a bad configuration: {e}")))?;
-    let metric = crate::metric::Metric::ALL.into_iter().find(|m| m.name() == first.metric).ok_or_else(|| CliError::Usage(format!("{first_name} sent an unknown metric '{}'", first.metric)))?;
+    for (name, h) in &answers {
+        if h.config != first.config || h.refset_digest != first.refset_digest || h.metric != first.metric || h.step_seconds != first.step_seconds {
+            return Err(CliError::Usage(format!(
+                "replicas {first_name} and {name} score session '{}' differently (reference-set digest or configuration) or answered other steps: their histories do not add up",
+                req.session
+            )));
+        }
+    }
+    let names: Vec<&str> = answers.iter().map(|(n, _)| n.as_str()).collect();
+    let mut line = format!("fleet: {} of {} replicas answered; the session's steps summed over {}", answers.len() + without.len(), endpoints.len(), names.join(", "));
+    if !missing.is_empty() {
+        line += &format!(" (PARTIAL: no answer from {})", missing.join(", "));
+    }
+    let from_unix = answers.iter().map(|(_, h)| h.from_unix).min().unwrap_or(first.from_unix);
+    let Some(metric) = crate::metric::Metric::ALL.into_iter().find(|m| m.name() == first.metric) else {
+        // An external metric: each step's count, sum and squares added up, the mean and its
+        // interval derived from the sums.
+        let mut steps: std::collections::BTreeMap<i64, (crate::external::ExternalSums, u32)> = std::collections::BTreeMap::new();
+        for (name, h) in &answers {
+            for p in &h.points {
+                let Some(x) = &p.external else {
+                    if p.segments > 0 {
+                        return Err(CliError::Usage(format!("{name} sent no sums of external metric '{}' (a server from before fleet reports of external metrics)", first.metric)));
+                    }
+                    continue;
+                };
+                let int = |v: &str| v.parse::<i128>().map_err(|_| CliError::Usage(format!("{name} sent a sum that is not an integer: '{v}'")));
+                let sums = crate::external::ExternalSums { count: x.count, sum: int(&x.sum)?, squares: int(&x.squares)? };
+                let e = steps.entry(p.start_unix).or_insert((crate::external::ExternalSums::default(), x.decimals));
+                if e.1 != x.decimals {
+                    return Err(CliError::Usage(format!("replicas keep external metric '{}' at different decimals: their histories do not add up", first.metric)));
+                }
+                e.0 = e.0.checked_add(&sums).map_err(|err| CliError::Usage(err.to_string()))?;
+            }
+        }
+        let points = steps
+            .into_iter()
+            .map(|(start, (sums, decimals))| {
+                let spec = crate::external::ExternalSpec { name: first.metric.clone(), low: f64::MIN, high: f64::MAX, higher_is_better: true, decimals };
+                let p = crate::server::history::external_point(&spec, start, &sums);
+                pb::HistoryPoint { start_unix: p.start, segments: p.segments, score: p.score, interval: p.interval.map(interval_to_pb), ..Default::default() }
+            })
+            .collect();
+        return Ok((pb::HistoryReport { from_unix, points, ..first.clone() }, config, line));
+    };
     let level = crate::metric::resample::DEFAULT_LEVEL;
     // Per step start: statistics, counters, replicate sums (None once a step with segments
     // came without them).
@@ -263,13 +308,7 @@ pub(super) async fn fleet_history(endpoints: &[Endpoint], req: pb::GetHistoryReq
         complete: bool,
     }
     let mut steps: std::collections::BTreeMap<i64, Sum> = std::collections::BTreeMap::new();
-    for (name, h) in &answers {
-        if h.config != first.config || h.refset_digest != first.refset_digest || h.metric != first.metric || h.step_seconds != first.step_seconds {
-            return Err(CliError::Usage(format!(
-                "replicas {first_name} and {name} score session '{}' differently (reference-set digest or configuration) or answered other steps: their histories do not add up",
-                req.session
-            )));
-        }
+    for (_, h) in &answers {
         for p in &h.points {
             let e = steps.entry(p.start_unix).or_insert_with(|| Sum { stats: CorpusStats::default(), unknown: 0, rejected: 0, sums: None, complete: true });
             e.stats += stats_from_pb(p.totals.as_ref().unwrap_or(&Default::default()));
@@ -299,17 +338,7 @@ pub(super) async fn fleet_history(endpoints: &[Endpoint], req: pb::GetHistoryReq
             ..Default::default()
         })
         .collect();
-    let merged = pb::HistoryReport {
-        from_unix: answers.iter().map(|(_, h)| h.from_unix).min().unwrap_or(first.from_unix),
-        points,
-        ..first.clone()
-    };
-    let names: Vec<&str> = answers.iter().map(|(n, _)| n.as_str()).collect();
-    let mut line = format!("fleet: {} of {} replicas answered; the session's steps summed over {}", answers.len() + without.len(), endpoints.len(), names.join(", "));
-    if !missing.is_empty() {
-        line += &format!(" (PARTIAL: no answer from {})", missing.join(", "));
-    }
-    Ok((merged, config, line))
+    Ok((pb::HistoryReport { from_unix, points, ..first.clone() }, config, line))
 }
 
 #[cfg(test)]

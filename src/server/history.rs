@@ -91,17 +91,23 @@ pub fn series_of(session: &Session, name: &str) -> Result<Series> {
 /// interval of the mean ([`crate::external::MEAN_INTERVAL_METHOD`]) from the summed count, sum
 /// and squares; `unknown` and `rejected` are 0.
 pub fn external_points(session: &Session, m: usize, from: i64, until: i64, step: i64) -> Result<(Resolution, Vec<Point>)> {
-    let spec = session.spec().external.specs().get(m).ok_or_else(|| ServiceError::Internal(format!("external metric {m} of session '{}'", session.spec().name)))?;
+    let (resolution, steps) = external_steps(session, m, from, until, step)?;
+    let spec = &session.spec().external.specs()[m];
+    Ok((resolution, steps.iter().map(|(start, sums)| external_point(spec, *start, sums)).collect()))
+}
+
+/// A step of an external metric from its summed count, sum and squares: the mean, the count
+/// and the normal-theory interval of the mean.
+pub fn external_point(spec: &crate::external::ExternalSpec, start: i64, sums: &crate::external::ExternalSums) -> Point {
+    let interval = sums.mean_interval(spec.decimals).map(|(low, high)| Interval { level: MEAN_INTERVAL_LEVEL, low, high, resamples: 0, method: MEAN_INTERVAL_METHOD, seed: 0 });
+    Point { start, segments: sums.count, score: sums.mean(spec.decimals), interval, unknown: 0, rejected: 0 }
+}
+
+/// The summed count, sum and squares of external metric `m` in each step.
+fn external_steps(session: &Session, m: usize, from: i64, until: i64, step: i64) -> Result<(Resolution, Vec<(i64, crate::external::ExternalSums)>)> {
+    session.spec().external.specs().get(m).ok_or_else(|| ServiceError::Internal(format!("external metric {m} of session '{}'", session.spec().name)))?;
     let (resolution, steps) = session.external_history().query(from, until, step).map_err(|e| ServiceError::Invalid(e.to_string()))?;
-    let points = steps
-        .iter()
-        .map(|(start, totals)| {
-            let sums = totals.0[m];
-            let interval = sums.mean_interval(spec.decimals).map(|(low, high)| Interval { level: MEAN_INTERVAL_LEVEL, low, high, resamples: 0, method: MEAN_INTERVAL_METHOD, seed: 0 });
-            Point { start: *start, segments: sums.count, score: sums.mean(spec.decimals), interval, unknown: 0, rejected: 0 }
-        })
-        .collect();
-    Ok((resolution, points))
+    Ok((resolution, steps.iter().map(|(start, totals)| (*start, totals.0[m])).collect()))
 }
 
 /// Read the steps: the buckets' sums are copied under the history's lock, the scores and
@@ -140,12 +146,13 @@ fn point_to_pb(s: &Step, config: &ScoreConfig, q: &HistoryQuery, with_sums: bool
         rejected: p.rejected,
         totals: with_sums.then(|| pb::convert::totals_to_pb(&s.stats, config)),
         sums: s.sums.as_ref().filter(|_| with_sums).map(pb::convert::replicate_sums_to_pb),
+        external: None,
     }
 }
 
 /// A step of an external metric in an API message (no statistics or replicate sums).
-fn external_point_to_pb(p: Point) -> pb::HistoryPoint {
-    pb::HistoryPoint { start_unix: p.start, segments: p.segments, score: p.score, interval: p.interval.map(pb::convert::interval_to_pb), unknown: 0, rejected: 0, totals: None, sums: None }
+fn external_point_to_pb(p: Point, sums: Option<pb::ExternalResult>) -> pb::HistoryPoint {
+    pb::HistoryPoint { start_unix: p.start, segments: p.segments, score: p.score, interval: p.interval.map(pb::convert::interval_to_pb), unknown: 0, rejected: 0, totals: None, sums: None, external: sums }
 }
 
 /// The gRPC `History` service.
@@ -196,15 +203,20 @@ impl pb::history_server::History for HistoryService {
         let report = tokio::task::spawn_blocking(move || -> Result<pb::HistoryReport> {
             let config = &session.spec().config;
             if let Series::External(m) = series {
-                let (resolution, points) = external_points(&session, m, q.from, q.until, q.step)?;
+                let (resolution, steps) = external_steps(&session, m, q.from, q.until, q.step)?;
+                let spec = &session.spec().external.specs()[m];
+                let points: Vec<pb::HistoryPoint> = steps
+                    .iter()
+                    .map(|(start, sums)| external_point_to_pb(external_point(spec, *start, sums), r.with_sums.then(|| crate::pb::external::result_to_pb(spec, sums, None, MEAN_INTERVAL_LEVEL))))
+                    .collect();
                 return Ok(pb::HistoryReport {
                     session: session.spec().name.clone(),
                     metric: r.metric.clone(),
-                    from_unix: points.first().map_or(q.from, |p| p.start),
+                    from_unix: points.first().map_or(q.from, |p| p.start_unix),
                     until_unix: q.until,
                     step_seconds: q.step as u32,
                     resolution: resolution.name().into(),
-                    points: points.into_iter().map(external_point_to_pb).collect(),
+                    points,
                     config: Some(pb::convert::config_to_pb(config)),
                     refset_digest: session.refs().digest_hex(),
                     memory_bytes: session.external_history().memory_bytes() as u64,
