@@ -287,7 +287,7 @@ pub fn evaluate(state: &State, rules: &[Rule], mut trackers: HashMap<(String, St
             // The clock of `for_segments`: segments scored, or for a rule on an external metric
             // the values it counted.
             let scored = match &rule.external {
-                Some(name) => spec.external.index(name).and_then(|m| session.external().totals.0.get(m).map(|t| t.count)).unwrap_or(0),
+                Some(name) => spec.external.index(name).and_then(|m| session.external_totals().0.get(m).map(|t| t.count)).unwrap_or(0),
                 None => session.state().cumulative.segments,
             };
             let change = p.tracker.step(rule, m, now, scored);
@@ -646,6 +646,12 @@ mod tests {
         assert_eq!(states.last().map(String::as_str), Some("inactive"), "resolves after the drop: {states:?}");
     }
 
+    /// Rules from TOML tables, checked.
+    fn checked(tables: Vec<toml::Value>) -> Vec<Rule> {
+        let entries: Vec<crate::alerts::rules::RuleEntry> = tables.into_iter().map(|v| v.try_into().unwrap()).collect();
+        crate::alerts::rules::check_rules(&entries).unwrap()
+    }
+
     fn ferry_state(n: usize, sessions: &[&str]) -> (State, Vec<SegmentInput>, Vec<Arc<Session>>) {
         let mut rng = SplitMix64::new(11);
         let segments: Vec<SegmentInput> = (0..n)
@@ -683,15 +689,11 @@ mod tests {
     fn time_windows_judge_the_segments_of_their_last_minutes() {
         let (state, segments, sessions) = ferry_state(3000, &["cand", "prod"]);
         let rule = |name: &str, window: &str, rest: &str| -> toml::Value { toml::from_str(&format!("name = \"{name}\"\nwindow = \"{window}\"\nmin_segments = 100\nfor_seconds = 0\n{rest}")).unwrap() };
-        let entries: Vec<crate::alerts::rules::RuleEntry> = [
+        let rules = checked(vec![
             rule("floor-5m", "5m", "session = \"cand\"\nwhen = \"below\"\nthreshold = 50"),
             rule("floor-all", "all", "session = \"cand\"\nwhen = \"below\"\nthreshold = 50"),
             rule("worse-5m", "5m", "session = \"cand\"\nwhen = \"drop\"\nbaseline = \"prod\"\npoints = 10"),
-        ]
-        .into_iter()
-        .map(|v| v.try_into().unwrap())
-        .collect();
-        let rules = crate::alerts::rules::check_rules(&entries).unwrap();
+        ]);
         let board = AlertBoard::default();
         let mut trackers = HashMap::new();
         let mut rng = SplitMix64::new(5);
@@ -786,18 +788,14 @@ mod tests {
             })
             .collect();
         let rule = |name: &str, ext: &str, rest: &str| -> toml::Value { toml::from_str(&format!("name = \"{name}\"\nlabels = {{ watched = \"yes\" }}\nexternal = \"{ext}\"\nmin_segments = 100\n{rest}")).unwrap() };
-        let entries: Vec<crate::alerts::rules::RuleEntry> = [
+        let rules = checked(vec![
             rule("qe-below", "qe", "when = \"below\"\nthreshold = 0.69"),
             rule("qe-drop", "qe", "when = \"drop\"\nbaseline = \"prod\"\npoints = 0.005"),
             rule("qe-decline", "qe", "when = \"decline\"\npoints = 0.02"),
             rule("errors-below", "errors", "when = \"below\"\nthreshold = 0.31"),
             rule("errors-drop", "errors", "when = \"drop\"\nbaseline = \"prod\"\npoints = 0.005"),
             rule("errors-decline", "errors", "when = \"decline\"\npoints = 0.02"),
-        ]
-        .into_iter()
-        .map(|v| v.try_into().unwrap())
-        .collect();
-        let rules = crate::alerts::rules::check_rules(&entries).unwrap();
+        ]);
         let board = AlertBoard::default();
         let mut trackers = HashMap::new();
         let mut rng = SplitMix64::new(29);

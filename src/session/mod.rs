@@ -376,6 +376,11 @@ impl Session {
         self.external_stats().cumulative.clone()
     }
 
+    /// A copy of the cumulative external sums alone (no replicate sums).
+    pub fn external_totals(&self) -> crate::external::ExternalTotals {
+        self.external_stats().cumulative.totals.clone()
+    }
+
     /// The durable copy of the external statistics: the cumulative ones, and the ids of the
     /// `recent` window's items (first, next).
     pub fn external_durable(&self) -> (crate::external::ExternalState, (u64, u64)) {
