@@ -219,3 +219,51 @@ fn counts_add_across_batches_and_order() {
     assert_eq!(sum, whole);
     assert!(whole.flagged.iter().sum::<u64>() > 0);
 }
+
+/// The language guard's vocabulary as a session learns it from the demo's German references
+/// (`mtgauge::guard::vocab::learn`), checked on the same generated corpus.
+#[test]
+fn the_learned_vocabulary_screen() {
+    use mtgauge::guard::vocab::{learn, Learned};
+    let plain = config();
+    let segs = demo_segments();
+    let refs: Vec<&str> = segs.iter().flat_map(|s| s.refs.iter().map(String::as_str)).collect();
+    let Learned::Vocabulary(v) = learn(&plain, &refs) else { panic!("German references give a German vocabulary") };
+    // English "references" for a German target are refused (they are identified as English),
+    // as is a target its script decides and a session without a target.
+    let sources: Vec<&str> = segs.iter().filter_map(|s| s.source.as_deref()).collect();
+    assert!(matches!(learn(&plain, &sources), Learned::Skipped(why) if why.contains("target language")));
+    assert!(matches!(learn(&GuardConfig::default().with_target("el").expect("Greek is known"), &refs), Learned::Skipped(_)));
+    assert!(matches!(learn(&GuardConfig::default(), &refs), Learned::Skipped(_)));
+
+    // The default threshold's margin (mtgauge::guard::DEFAULT_LANGUAGE_VOCAB_SHARE, our choice):
+    // every German hypothesis of the three simulated systems has at least that share of its
+    // words in the vocabulary, every English source at most 0.5.
+    let share = mtgauge::guard::DEFAULT_LANGUAGE_VOCAB_SHARE;
+    let german_min = demo_systems().iter().flat_map(|s| s.hypotheses.iter()).filter_map(|h| v.share(h)).fold(1.0f64, f64::min);
+    let english_max = sources.iter().filter_map(|s| v.share(s)).fold(0.0f64, f64::max);
+    eprintln!("vocabulary {} words; German hypotheses' share at least {german_min:.3}, English sources' at most {english_max:.3}", v.len());
+    assert!(german_min >= share, "{german_min}");
+    assert!(english_max <= 0.5, "{english_max}");
+
+    // On the generated corpus: every guard but language gives the verdicts it gives without
+    // the vocabulary; language keeps the stated tolerance on off-target English (decides on at
+    // least half, flags at least 95% of those) and passes every clean item the identifiers pass.
+    let c = GuardConfig { vocabulary: Some(std::sync::Arc::new(v)), ..plain.clone() };
+    let items = corpus(4000, 0x6775_6172_6473);
+    let (with, without) = (verdicts(&c, &items), verdicts(&plain, &items));
+    let lang = 1u8 << (Guard::Language as u8);
+    for (a, b) in with.iter().zip(&without) {
+        assert_eq!((a.flagged & !lang, a.undecided & !lang), (b.flagged & !lang, b.undecided & !lang));
+    }
+    let of_kind = |vs: &[Verdict], k: Kind| count(items.iter().zip(vs).filter(|(it, _)| it.kind == k).map(|(_, v)| *v));
+    let off = of_kind(&with, Kind::OffTargetLanguage);
+    let decided = off.checked - off.undecided_by(Guard::Language);
+    assert!(decided * 2 >= off.checked, "{off:?}");
+    assert!(off.flagged_by(Guard::Language) * 100 >= decided * 95, "{off:?}");
+    assert_eq!(off, of_kind(&without, Kind::OffTargetLanguage), "no off-target English passes the screen");
+    let (clean_with, clean_without) = (of_kind(&with, Kind::Clean), of_kind(&without, Kind::Clean));
+    eprintln!("clean language verdicts: with the vocabulary {clean_with:?}, without {clean_without:?}");
+    assert_eq!(clean_with.flagged_by(Guard::Language), 0);
+    assert!(clean_with.undecided_by(Guard::Language) <= clean_without.undecided_by(Guard::Language));
+}

@@ -24,6 +24,13 @@ fn offline_config() -> GuardConfig {
     }
     let mut c = GuardConfig::default().with_target("de").unwrap();
     c.length_ratio = tally.ratio(c.length_min_chars).unwrap();
+    // The language vocabulary a session learns from its references (German: used).
+    let segs = demo_segments();
+    let refs: Vec<&str> = segs.iter().flat_map(|s| s.refs.iter().map(String::as_str)).collect();
+    match mtgauge::guard::vocab::learn(&c, &refs) {
+        mtgauge::guard::vocab::Learned::Vocabulary(v) => c.vocabulary = Some(std::sync::Arc::new(v)),
+        mtgauge::guard::vocab::Learned::Skipped(why) => panic!("no vocabulary: {why}"),
+    }
     c
 }
 

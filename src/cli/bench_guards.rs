@@ -1,6 +1,6 @@
-//! `bench`'s cost of the reference-free guards: the 1-thread BLEU scoring loop over the demo
-//! scenario's (English source, German hypothesis) pairs, alone and with every item also checked
-//! by the guards, as a daemon session does with items that carry a source.
+//! `bench`'s cost of the reference-free guards: the 1-thread BLEU scoring loop of a session
+//! over the demo scenario's (English source, German hypothesis) pairs, alone and with every item
+//! also checked by the guards, as a daemon session does with items whose segment has a source.
 
 use std::sync::Arc;
 use std::time::Instant;
@@ -8,10 +8,11 @@ use std::time::Instant;
 use serde_json::{json, Value};
 
 use super::demo::scenario::{demo_segments, demo_systems};
-use crate::guard::{check, GuardConfig, GuardScratch, LengthTally};
-use crate::metric::{MetricSpec, ScoreConfig, SegmentStats};
-use crate::refs::compiled::{Compiled, Scratch};
+use crate::guard::GuardScratch;
+use crate::metric::{MetricSpec, ScoreConfig};
+use crate::refs::compiled::Scratch;
 use crate::refs::RefSet;
+use crate::session::{ItemKey, Outcome, Session, SessionSpec};
 use crate::text::DEFAULT_TOKENIZER;
 
 /// Passes over the demo items per measurement (900 items each).
@@ -32,61 +33,85 @@ pub(super) fn fastest(mut f: impl FnMut() -> u64) -> f64 {
     best
 }
 
-/// [`PASSES`] passes over the items: BLEU-scored when `score`, checked by `guards` when given.
-fn passes(compiled: &Compiled, items: &[(usize, String)], sources: &[String], guards: Option<&GuardConfig>, score: bool) -> u64 {
-    let (mut scratch, mut one, mut g) = (Scratch::default(), SegmentStats::default(), GuardScratch::default());
+/// [`PASSES`] passes over the items as a daemon session takes them (by segment id): scored,
+/// and checked by the guards when `guards`.
+fn passes(session: &Session, items: &[(String, String)], guards: bool) -> u64 {
+    let (mut scratch, mut g) = (Scratch::default(), GuardScratch::default());
     let mut sink = 0u64;
     for _ in 0..PASSES {
-        for (i, h) in items {
-            if score {
-                compiled.score_segment_into(*i, h, &mut scratch, &mut one);
-                sink = sink.wrapping_add(one.bleu.hyp_len);
+        for (id, h) in items {
+            let key = ItemKey::Id(id);
+            let outcome = session.score_item(key, h, &mut scratch);
+            if let Outcome::Scored { stats, .. } = &outcome {
+                sink = sink.wrapping_add(stats.bleu.hyp_len);
             }
-            if let Some(c) = guards {
-                sink = sink.wrapping_add(u64::from(check(c, &sources[*i], h, &mut g).flagged));
+            if guards {
+                sink = sink.wrapping_add(session.guard_item(key, &outcome, h, &mut g).map_or(0, |v| u64::from(v.flagged)));
             }
         }
     }
     sink
 }
 
-/// The figures: segments/s of BLEU alone, guards alone (with and without the language
-/// identifier: `language-id=off`), and BLEU with the guards, and the time the guards add to
-/// BLEU scoring per segment.
-pub(super) fn guard_cost() -> Value {
-    let segs = demo_segments();
-    let config = ScoreConfig::new(DEFAULT_TOKENIZER, false, ["bleu".parse::<MetricSpec>().expect("fixed metric")]).expect("fixed configuration");
-    let mut tally = LengthTally::default();
-    for s in &segs {
-        for r in &s.refs {
-            tally.add(s.source_text(), r);
+/// [`PASSES`] passes of the guards alone over items already scored.
+fn guard_passes(session: &Session, items: &[(String, String)], outcomes: &[Outcome]) -> u64 {
+    let mut g = GuardScratch::default();
+    let mut sink = 0u64;
+    for _ in 0..PASSES {
+        for ((id, h), o) in items.iter().zip(outcomes) {
+            sink = sink.wrapping_add(session.guard_item(ItemKey::Id(id), o, h, &mut g).map_or(0, |v| u64::from(v.flagged)));
         }
     }
-    let sources: Vec<String> = segs.iter().map(|s| s.source_text().to_owned()).collect();
-    let Ok(set) = RefSet::new(segs) else { return Value::Null };
-    let compiled = Compiled::build(Arc::new(set), config);
-    let items: Vec<(usize, String)> = demo_systems().into_iter().flat_map(|sys| sys.hypotheses.into_iter().enumerate()).collect();
-    let mut with_target = GuardConfig::default().with_target("de").unwrap_or_default();
-    with_target.length_ratio = tally.ratio(with_target.length_min_chars).unwrap_or(with_target.length_ratio);
-    let no_target = GuardConfig { language_id: false, ..with_target.clone() };
+    sink
+}
 
-    let run = |guards: Option<&GuardConfig>, score: bool| fastest(|| passes(&compiled, &items, &sources, guards, score));
+/// A BLEU session over the demo set with German declared as its target and `settings`.
+fn demo_session(settings: &[&str]) -> Option<Session> {
+    let config = ScoreConfig::new(DEFAULT_TOKENIZER, false, ["bleu".parse::<MetricSpec>().ok()?]).ok()?;
+    let set = RefSet::new(demo_segments()).ok()?;
+    let spec = SessionSpec {
+        name: "bench".into(),
+        refset: "demo".into(),
+        config,
+        labels: Default::default(),
+        window: 1,
+        resampling: Default::default(),
+        target_language: Some("de".into()),
+        guard_settings: settings.iter().map(|s| s.to_string()).collect(),
+        external: Default::default(),
+    };
+    Some(Session::new(spec, Arc::new(set), 0))
+}
+
+/// The figures: segments/s of BLEU alone (a session's scoring of items named by segment id),
+/// of the guards alone, and of BLEU with the guards: all of them, without the vocabulary screen
+/// (`language-vocab-share=off`: every item's language goes to the identifiers) and without
+/// language identification (`language-id=off`, which keeps the script check); and the time the
+/// guards add to BLEU scoring per segment.
+pub(super) fn guard_cost() -> Value {
+    let (Some(all), Some(no_vocab), Some(no_lang)) = (demo_session(&[]), demo_session(&["language-vocab-share=off"]), demo_session(&["language-id=off"])) else { return Value::Null };
+    let ids: Vec<String> = all.refs().segments().map(|s| s.id().to_owned()).collect();
+    let items: Vec<(String, String)> = demo_systems().into_iter().flat_map(|sys| ids.iter().cloned().zip(sys.hypotheses).collect::<Vec<_>>()).collect();
+    let mut scratch = Scratch::default();
+    let outcomes: Vec<Outcome> = items.iter().map(|(id, h)| all.score_item(ItemKey::Id(id), h, &mut scratch)).collect();
     let n = (PASSES * items.len()) as f64;
-    let alone = run(None, true);
-    let guards_only = run(Some(&with_target), false);
-    let guards_no_lang = run(Some(&no_target), false);
-    let both = run(Some(&with_target), true);
-    let both_no_lang = run(Some(&no_target), true);
+    let alone = fastest(|| passes(&all, &items, false));
+    let guards_only = fastest(|| guard_passes(&all, &items, &outcomes));
+    let both = fastest(|| passes(&all, &items, true));
+    let both_no_vocab = fastest(|| passes(&no_vocab, &items, true));
+    let both_no_lang = fastest(|| passes(&no_lang, &items, true));
     json!({
         "items": items.len(),
         "passes": PASSES,
-        "metrics": config.describe(),
+        "metrics": all.spec().config.describe(),
+        "vocabulary_words": all.guard_config().vocabulary.as_ref().map_or(0, |v| v.len()),
         "bleu_segments_per_s": n / alone,
         "guards_segments_per_s": n / guards_only,
-        "guards_without_language_id_segments_per_s": n / guards_no_lang,
         "bleu_with_guards_segments_per_s": n / both,
+        "bleu_with_guards_without_vocabulary_segments_per_s": n / both_no_vocab,
         "bleu_with_guards_without_language_id_segments_per_s": n / both_no_lang,
         "added_time_ratio": both / alone - 1.0,
+        "added_time_ratio_without_vocabulary": both_no_vocab / alone - 1.0,
         "added_time_ratio_without_language_id": both_no_lang / alone - 1.0,
     })
 }
@@ -150,13 +175,16 @@ pub(super) fn identifier_lines(f: &Value) -> String {
 pub(super) fn guard_cost_line(g: &Value) -> String {
     let n = |k: &str| g[k].as_f64().unwrap_or(f64::NAN);
     format!(
-        "  guards ({} demo items x {}, 1 thread): BLEU alone {:.0} segments/s, with all guards {:.0} segments/s (+{:.0}% time; guards alone {:.0}/s); without language identification {:.0} segments/s (+{:.0}%)\n",
+        "  guards ({} demo items x {}, 1 thread, German target, vocabulary of {} words): BLEU alone {:.0} segments/s, with all guards {:.0} segments/s (+{:.0}% time; guards alone {:.0}/s); without the vocabulary screen {:.0} segments/s (+{:.0}%); without language identification {:.0} segments/s (+{:.0}%)\n",
         g["items"],
         g["passes"],
+        g["vocabulary_words"],
         n("bleu_segments_per_s"),
         n("bleu_with_guards_segments_per_s"),
         100.0 * n("added_time_ratio"),
         n("guards_segments_per_s"),
+        n("bleu_with_guards_without_vocabulary_segments_per_s"),
+        100.0 * n("added_time_ratio_without_vocabulary"),
         n("bleu_with_guards_without_language_id_segments_per_s"),
         100.0 * n("added_time_ratio_without_language_id")
     )

@@ -133,6 +133,8 @@ impl GuardArgs {
 struct Guarded {
     config: GuardConfig,
     verdicts: Vec<Verdict>,
+    /// Words of the language guard's vocabulary, or why there is none.
+    vocabulary: Result<usize, &'static str>,
 }
 
 impl Guarded {
@@ -269,6 +271,7 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
             if let Value::Object(o) = &mut v {
                 o.insert("length_ratio".into(), json!(g.config.length_ratio));
                 o.insert("length_ratio_learned".into(), json!(!a.guards.ratio_given()));
+                o.insert("language_vocabulary".into(), vocabulary_json(g.vocabulary));
             }
             m.insert("guards".into(), v);
         }
@@ -394,7 +397,8 @@ fn score_parsed(
 
 /// Read the source file and check every hypothesis against its source line (in `threads`
 /// chunks; verdicts never depend on the split). With `learn`, the expected length ratio is the
-/// references' non-space characters over their sources'.
+/// references' non-space characters over their sources'. The language guard's vocabulary is
+/// learned from the references when it can be used ([`guard::vocab::learn`]).
 fn run_guards(mut config: GuardConfig, learn: bool, path: &str, refs: &RefSet, (hyp_name, hyps): (&str, &[&str]), threads: usize) -> Result<Guarded, CliError> {
     let bytes = read_bytes(path)?;
     let name = display_name(path);
@@ -411,6 +415,16 @@ fn run_guards(mut config: GuardConfig, learn: bool, path: &str, refs: &RefSet, (
             config.length_ratio = r;
         }
     }
+    // The language guard's vocabulary, learned from the references as a daemon session does.
+    let references: Vec<&str> = refs.segments().flat_map(|s| s.refs()).collect();
+    let vocabulary = match guard::vocab::learn(&config, &references) {
+        guard::vocab::Learned::Vocabulary(v) => {
+            let words = v.len();
+            config.vocabulary = Some(std::sync::Arc::new(v));
+            Ok(words)
+        }
+        guard::vocab::Learned::Skipped(why) => Err(why),
+    };
     let chunk = hyps.len().div_ceil(threads.max(1)).max(1);
     let verdicts = std::thread::scope(|scope| {
         let config = &config;
@@ -426,7 +440,23 @@ fn run_guards(mut config: GuardConfig, learn: bool, path: &str, refs: &RefSet, (
             .collect();
         handles.into_iter().flat_map(|h| h.join().unwrap_or_default()).collect::<Vec<_>>()
     });
-    Ok(Guarded { config, verdicts })
+    Ok(Guarded { config, verdicts, vocabulary })
+}
+
+/// The language guard's vocabulary in JSON: its words, or why there is none.
+fn vocabulary_json(v: Result<usize, &str>) -> Value {
+    match v {
+        Ok(words) => json!({ "words": words }),
+        Err(why) => json!({ "words": 0, "none_because": why }),
+    }
+}
+
+/// The language guard's vocabulary in words.
+fn vocabulary_text(v: Result<usize, &str>) -> String {
+    match v {
+        Ok(words) => format!("language vocabulary of {words} words from the references"),
+        Err(why) => format!("no language vocabulary: {why}"),
+    }
 }
 
 fn write_per_segment(path: &str, scored: &Scored, guarded: Option<&Guarded>) -> Result<(), CliError> {
@@ -465,7 +495,7 @@ fn human(
     }
     if let Some(g) = guarded {
         lines.extend(guard_lines(&g.counts(), g.config.target.map(|t| t.code), "  "));
-        lines.push(format!("    (expected length ratio {:.3})", g.config.length_ratio));
+        lines.push(format!("    (expected length ratio {:.3}; {})", g.config.length_ratio, vocabulary_text(g.vocabulary)));
     }
     lines.push(format!("  config  {}", config.describe()));
     lines.push(PROXY_NOTE.to_owned());

@@ -259,7 +259,9 @@ proptest! {
         order in 1usize..=8,
     ) {
         // check() reads each text once; check_by_guard() runs each documented rule on its own.
+        // A vocabulary of the source's words and a few more, so the screen decides some items.
         let mut c = cfg(target);
+        c.vocabulary = Some(Arc::new(Vocabulary::of_texts([src.as_str(), "Fähre паром 渡轮 abc"])));
         c.repeat_order = order;
         c.copy_order = order;
         c.repeat_count = 2;
@@ -269,6 +271,26 @@ proptest! {
         // And with the source copied, which takes the copy chrF path.
         let near = format!("{hyp} {src}");
         prop_assert_eq!(check(&c, &src, &near, &mut s), check_by_guard(&c, &src, &near, &mut GuardScratch::default()));
+        // And an exact copy after normalisation (case and punctuation changed).
+        let copied = format!("¡{}!", src.to_uppercase());
+        prop_assert_eq!(check(&c, &src, &copied, &mut s), check_by_guard(&c, &src, &copied, &mut GuardScratch::default()));
+    }
+
+    #[test]
+    fn one_pass_words_equal_the_word_definition(text in prop_oneof![any_text(), any::<String>(), "(Straße|ÄÖÜ|ñandú|x1Y2|abcdefghijklmnopq|€|„|–|渡轮| |\\.)*"]) {
+        // The hypothesis scan's words and vocabulary counts are the definition's (for_each_word).
+        let vocab = Vocabulary::of_texts(["straße äöü abcdefghijklmnopq 渡"]);
+        let mut c = cfg("de");
+        c.vocabulary = Some(Arc::new(vocab.clone()));
+        let mut ids = Vec::new();
+        let h = scan::scan_hypothesis(&text, &[Script::Latin], &SourceFacts::default().presence, Some(&vocab), &mut ids, &mut Default::default());
+        let mut want = Vec::new();
+        word_ids(&text, &mut want);
+        prop_assert_eq!(&ids, &want);
+        prop_assert_eq!(Some((h.known, h.lettered)), vocabulary_counts(&c, &text));
+        prop_assert_eq!(h.chars, char_len(&text));
+        prop_assert_eq!(h.alnum_lower, alnum_lower(&text).count());
+        prop_assert_eq!(h.lower, fill_chars(&text, 0, &mut Vec::new()));
     }
 
     #[test]

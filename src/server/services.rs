@@ -455,6 +455,7 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
                 continue;
             }
             let outcome = session.score_item(key, &item.hypothesis, scratch);
+            let verdict = session.guard_item(key, &outcome, &item.hypothesis, guard_scratch);
             if let (true, Outcome::Scored { stats, by_source, index: seg }) = (batch.want_segment_scores, &outcome) {
                 out.segment_scores.push(pb::SegmentScore { index, segment_id: session.segment_id(*by_source, *seg).to_owned(), scores: segment_scores_to_pb(stats, &session.spec().config) });
             }
@@ -462,7 +463,7 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
             if let (Some(v), Some(k)) = (values, external_key(item)) {
                 external.push((k, v));
             }
-            if let Some(v) = session.guard_item(key, &item.hypothesis, guard_scratch) {
+            if let Some(v) = verdict {
                 out.guards.add(v);
                 if batch.want_segment_scores {
                     out.verdicts.push(guard_verdict_to_pb(index, v));

@@ -104,9 +104,10 @@ pub fn normalize_source(text: &str, caseless: bool) -> String {
     out
 }
 
-/// The guards' configuration of a session: defaults, the declared target, and the expected
+/// The guards' configuration of a session: defaults, the declared target, the expected
 /// length ratio learned from the set's segments that have a source (each reference against
-/// its source) when there is enough text.
+/// its source) when there is enough text, the settings, and the target vocabulary learned from
+/// the references ([`crate::guard::vocab::learn`]) when it can be used.
 fn guard_config(spec: &SessionSpec, refs: &RefSet) -> GuardConfig {
     let mut c = GuardConfig::default();
     c.target = spec.target_language.as_deref().and_then(crate::guard::language);
@@ -125,6 +126,10 @@ fn guard_config(spec: &SessionSpec, refs: &RefSet) -> GuardConfig {
         // Checked at creation ([`check_guard_settings`]); a stored one that no longer parses
         // keeps its default.
         let _ = c.set(s);
+    }
+    let references: Vec<&str> = refs.segments().flat_map(|s| s.refs()).collect();
+    if let crate::guard::vocab::Learned::Vocabulary(v) = crate::guard::vocab::learn(&c, &references) {
+        c.vocabulary = Some(Arc::new(v));
     }
     c
 }
@@ -276,6 +281,11 @@ pub struct Session {
     /// The guards' thresholds: the declared target, and the expected length ratio learned from
     /// the set's sources and references when it has sources.
     guards: GuardConfig,
+    /// What the guards need of each segment's source, by segment index (empty when no segment
+    /// has a source; a segment without one has default facts, never read).
+    source_facts: Vec<crate::guard::SourceFacts>,
+    /// The segment index in the set of each source index entry's first segment.
+    source_segment: Vec<u32>,
     created_unix: i64,
     /// Held only to add a batch's statistics or to read a snapshot, never across an await or
     /// while scoring: a std mutex is right for such short sections.
@@ -324,12 +334,16 @@ impl Session {
         let keys_of = |set: &RefSet| set.segments().map(|s| segment_key(s.id().as_bytes())).collect::<Vec<u64>>();
         let keys = keys_of(compiled.refs());
         let source_keys = sources.as_ref().map_or_else(Vec::new, |ix| keys_of(ix.compiled.refs()));
+        let set = compiled.refs();
+        let source_facts = if sources.is_some() { set.segments().map(|s| s.source().map(crate::guard::SourceFacts::of).unwrap_or_default()).collect() } else { Vec::new() };
+        // Each entry carries its first segment's id (ids are unique in the set).
+        let source_segment = sources.as_ref().map_or_else(Vec::new, |ix| ix.compiled.refs().segments().map(|e| set.find(e.id()).map_or(u32::MAX, |i| i as u32)).collect());
         let replicates = (spec.resampling.resamples > 0).then(|| SessionReplicates::new(&spec.config, spec.resampling, spec.window, 0));
         let state = SessionState { cumulative: CorpusStats::default(), window: Window::new(spec.window, &spec.config), counts: Counts::default(), producers: HashMap::new(), replicates };
         let history = history::History::new(history::HistoryConfig::default(), &spec.config, (spec.resampling.resamples > 0).then(|| Replicates::new(&spec.config, spec.resampling.resamples, spec.resampling.seed)));
         let external = Mutex::new(ExternalStats::new(&spec, 0));
         let external_history = Mutex::new(external_history::ExternalHistory::new(history::HistoryConfig::default(), spec.external.len()));
-        Session { spec, compiled, sources, keys, source_keys, guards, created_unix, state: Mutex::new(state), history: Mutex::new(history), external, external_history }
+        Session { spec, compiled, sources, keys, source_keys, guards, source_facts, source_segment, created_unix, state: Mutex::new(state), history: Mutex::new(history), external, external_history }
     }
 
     /// The external values a batch adds (CPU work, no lock taken): `items` are (weight key,
@@ -408,14 +422,25 @@ impl Session {
         &self.guards
     }
 
-    /// The guards' verdict on one item (CPU work, no lock taken): items that carry a source
-    /// (live traffic, matched or not) or name a segment that has one; None for the others.
-    pub fn guard_item(&self, key: ItemKey<'_>, hyp: &str, scratch: &mut GuardScratch) -> Option<Verdict> {
-        let source = match key {
-            ItemKey::Source(src) => src,
-            ItemKey::Id(id) => self.compiled.refs().find(id).and_then(|i| self.compiled.refs().segment(i).source())?,
+    /// The guards' verdict on one item (CPU work, no lock taken) that [`Session::score_item`]
+    /// gave `outcome`: items that carry a source (live traffic, matched or not) or name a
+    /// segment that has one; None for the others. A matched segment's source is not read again
+    /// (its [`crate::guard::SourceFacts`] are kept) when the item's source is that text.
+    pub fn guard_item(&self, key: ItemKey<'_>, outcome: &Outcome, hyp: &str, scratch: &mut GuardScratch) -> Option<Verdict> {
+        let set = self.compiled.refs();
+        let segment = match (key, outcome) {
+            (ItemKey::Id(_), Outcome::Scored { by_source: false, index, .. }) => Some(*index as usize),
+            (ItemKey::Id(_), _) => None,
+            (ItemKey::Source(_), Outcome::Scored { by_source: true, index, .. }) => self.source_segment.get(*index as usize).map(|&i| i as usize),
+            (ItemKey::Source(_), _) => None,
         };
-        Some(crate::guard::check(&self.guards, source, hyp, scratch))
+        let known = segment.and_then(|i| Some((set.segment(i).source()?, self.source_facts.get(i)?)));
+        match (key, known) {
+            (ItemKey::Id(_), Some((source, facts))) => Some(crate::guard::check_with(&self.guards, facts, source, hyp, scratch)),
+            (ItemKey::Id(_), None) => None,
+            (ItemKey::Source(src), Some((source, facts))) if src == source => Some(crate::guard::check_with(&self.guards, facts, source, hyp, scratch)),
+            (ItemKey::Source(src), _) => Some(crate::guard::check(&self.guards, src, hyp, scratch)),
+        }
     }
 
     /// The replicate key of the segment a window record names by its [`segment_code`].
@@ -847,7 +872,7 @@ mod tests {
         // By id (the segment has a source), by an unknown source, and an unknown id (no source).
         let verdicts: Vec<Option<Verdict>> = [(ItemKey::Id("1"), ""), (ItemKey::Source("Nothing like it."), "Nothing like it."), (ItemKey::Id("9"), "x")]
             .into_iter()
-            .map(|(k, h)| s.guard_item(k, h, &mut g))
+            .map(|(k, h)| s.guard_item(k, &s.score_item(k, h, &mut Scratch::default()), h, &mut g))
             .collect();
         assert!(verdicts[0].is_some_and(|v| v.is_flagged(crate::guard::Guard::Empty)));
         assert!(verdicts[1].is_some_and(|v| v.is_flagged(crate::guard::Guard::Copy)));

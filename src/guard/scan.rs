@@ -1,0 +1,525 @@
+//! One pass over each text for the guards: [`SourceFacts::of`] for a source (kept per reference
+//! segment by a session, so a matched item's source is not read again) and [`scan_hypothesis`]
+//! for a hypothesis. ASCII bytes take a table-driven path and Latin-1 letters a short one;
+//! nothing is written per character but the words.
+
+use super::script::{script_of, Script};
+use super::vocab::Vocabulary;
+use super::is_word_char;
+use crate::text::{is_cjk, is_space};
+
+/// Bits of the presence set: one per ordered pair of the 32 character classes ([`class_of`]).
+pub(super) const PRESENCE_BITS: usize = 1 << 10;
+
+/// The character-pair presence set of the copy guard's first bound.
+pub(super) type PresenceSet = [u64; PRESENCE_BITS / 64];
+
+const CLASS: u8 = 31;
+const ALNUM: u8 = 32;
+const ALPHA: u8 = 64;
+const SPACE: u8 = 128;
+
+/// Per ASCII byte: its class ([`class_of`] of its lowercase) and whether it is alphanumeric,
+/// alphabetic, white space ([`crate::text::is_space`]).
+static ASCII: [u8; 128] = ascii_table();
+
+const fn ascii_table() -> [u8; 128] {
+    let mut t = [0u8; 128];
+    let mut i = 0;
+    while i < 128 {
+        let b = i as u8;
+        let l = b.to_ascii_lowercase();
+        let mut e = match l {
+            b'a'..=b'z' => l - b'a' + 1,
+            b'0'..=b'9' => 27,
+            _ => 28 + (l & 3),
+        };
+        if b.is_ascii_alphanumeric() {
+            e |= ALNUM;
+        }
+        if b.is_ascii_alphabetic() {
+            e |= ALPHA;
+        }
+        if matches!(b, b' ' | b'\t' | b'\n' | 0x0B | 0x0C | b'\r' | 0x1C..=0x1F) {
+            e |= SPACE;
+        }
+        t[i] = e;
+        i += 1;
+    }
+    t
+}
+
+/// The class (0..32) of a lowercased character in the presence set: each ASCII letter its own
+/// (1..=26), ASCII digits 27, other ASCII characters 28..=31, any other character its code
+/// point hashed to five bits. Equal characters have equal classes, which is all the bound needs
+/// (characters sharing a class can only add hits).
+#[inline]
+pub(super) fn class_of(l: char) -> u32 {
+    let c = l as u32;
+    if c < 128 {
+        u32::from(ASCII[c as usize] & CLASS)
+    } else {
+        c.wrapping_mul(0x9E37_79B1) >> 27
+    }
+}
+
+/// The bit of the character-class pair (a, b).
+#[inline]
+pub(super) fn presence_bit(a: u32, b: u32) -> usize {
+    ((a << 5) | b) as usize
+}
+
+/// A Latin-1 letter (U+00C0..=U+00FF but the signs U+00D7 and U+00F7) and its lowercase (one
+/// character; U+00DF and U+00FF are lowercase already).
+#[inline]
+fn latin1_letter(c: char) -> Option<char> {
+    match c as u32 {
+        0xD7 | 0xF7 => None,
+        u @ 0xC0..=0xDE => char::from_u32(u + 0x20),
+        0xDF..=0xFF => Some(c),
+        _ => None,
+    }
+}
+
+/// Punctuation and symbols of Latin-1, General Punctuation and Currency Symbols that are no
+/// white space, letter, digit or mark and are their own lowercase (a short path for the
+/// quotes, dashes and currency signs of Latin-script text).
+#[inline]
+fn plain_symbol(c: char) -> bool {
+    matches!(c as u32, 0xA1..=0xA9 | 0xAB..=0xB1 | 0xB4 | 0xB6..=0xB8 | 0xBB | 0xBF | 0x2010..=0x2027 | 0x2030..=0x205E | 0x20A0..=0x20C0)
+}
+
+/// What the guards need of a source, from one pass over it: its non-space characters, its
+/// lowercased non-space characters (what the copy chrF reads), whether it has a letter or
+/// digit, and the presence set of its character pairs. 144 bytes whatever the source's length.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SourceFacts {
+    pub(super) presence: PresenceSet,
+    pub(super) chars: u64,
+    pub(super) lower: usize,
+    /// Lowercased letters and digits (the length of [`super::alnum_lower`]).
+    pub(super) alnum_lower: usize,
+    pub(super) alnum: bool,
+}
+
+impl Default for SourceFacts {
+    fn default() -> Self {
+        SourceFacts { presence: [0; PRESENCE_BITS / 64], chars: 0, lower: 0, alnum_lower: 0, alnum: false }
+    }
+}
+
+impl SourceFacts {
+    /// The facts of `source`.
+    pub fn of(source: &str) -> SourceFacts {
+        let mut f = SourceFacts::default();
+        let mut prev: Option<u32> = None;
+        let mut add = |set: &mut PresenceSet, cl: u32| {
+            if let Some(p) = prev {
+                let k = presence_bit(p, cl);
+                set[k / 64] |= 1 << (k % 64);
+            }
+            prev = Some(cl);
+        };
+        for c in source.chars() {
+            if c.is_ascii() {
+                let e = ASCII[c as usize];
+                if e & SPACE == 0 {
+                    f.chars += 1;
+                    f.lower += 1;
+                    f.alnum |= e & ALNUM != 0;
+                    f.alnum_lower += usize::from(e & ALNUM != 0);
+                    add(&mut f.presence, u32::from(e & CLASS));
+                }
+                continue;
+            }
+            if is_space(c) {
+                continue;
+            }
+            f.chars += 1;
+            let an = c.is_alphanumeric();
+            f.alnum |= an;
+            for l in c.to_lowercase() {
+                f.lower += 1;
+                f.alnum_lower += usize::from(an);
+                add(&mut f.presence, class_of(l));
+            }
+        }
+        f
+    }
+}
+
+/// What one pass over a hypothesis gathers.
+#[derive(Debug, Clone, Copy, Default)]
+pub(super) struct HypScan {
+    /// Non-space characters ([`super::char_len`]).
+    pub chars: u64,
+    /// Lowercased non-space characters (the length [`super::fill_chars`] returns).
+    pub lower: usize,
+    /// Whether it has a letter, mark or digit (`char::is_alphanumeric`).
+    pub alnum: bool,
+    /// Lowercased letters and digits (the length of [`super::alnum_lower`]).
+    pub alnum_lower: usize,
+    /// Letters ([`script_of`] is some).
+    pub letters: usize,
+    /// Letters in one of the target's scripts.
+    pub expected: usize,
+    /// Character pairs whose bit is set in the source's presence set.
+    pub hits: u64,
+    /// Words with a letter.
+    pub lettered: usize,
+    /// Words with a letter found in the vocabulary (0 without one).
+    pub known: usize,
+}
+
+/// Multiplier of the word hash (the golden ratio's 64-bit fraction).
+const WORD_K: u64 = 0x9E37_79B9_7F4A_7C15;
+
+/// One 8-byte block into a word's hash.
+#[inline]
+fn word_block(h: u64, block: u64) -> u64 {
+    (h ^ block).wrapping_mul(WORD_K).rotate_left(29)
+}
+
+/// A word's hash from its blocks' state and its length in bytes (never 0). Each step is a
+/// bijection of the state, so two words of at most eight bytes never collide.
+#[inline]
+fn word_finish(h: u64, len: usize) -> u64 {
+    (h ^ len as u64).wrapping_mul(WORD_K).max(1)
+}
+
+/// Start of a word's hash.
+const WORD_SEED: u64 = 0xCBF2_9CE4_8422_2325;
+
+/// Lowercase the ASCII letters of a block of ASCII letters and digits (letters have bit 0x40,
+/// digits not: that bit shifted to 0x20); zero bytes stay zero.
+#[inline]
+fn lower_block(w: u64) -> u64 {
+    w | ((w & 0x4040_4040_4040_4040) >> 1)
+}
+
+/// The eight bytes of `text` from `i`, little-endian.
+#[inline]
+fn load8(text: &[u8], i: usize) -> u64 {
+    u64::from_le_bytes(text[i..i + 8].try_into().unwrap_or([0; 8]))
+}
+
+/// [`word_id`] of a word of ASCII letters and digits, eight bytes at a time.
+fn ascii_word_id(word: &[u8]) -> u64 {
+    let mut h = WORD_SEED;
+    let mut blocks = word.chunks(8);
+    for b in &mut blocks {
+        let w = b.iter().rev().fold(0u64, |w, &x| (w << 8) | u64::from(x));
+        h = word_block(h, lower_block(w));
+    }
+    word_finish(h, word.len())
+}
+
+/// The bytes of a word's lowercased characters, gathered into blocks as [`word_id`] hashes them.
+struct WordStream {
+    h: u64,
+    w: u64,
+    n: usize,
+    len: usize,
+}
+
+impl WordStream {
+    #[inline]
+    fn push(&mut self, b: u8) {
+        self.w |= u64::from(b) << (8 * self.n);
+        self.n += 1;
+        self.len += 1;
+        if self.n == 8 {
+            self.h = word_block(self.h, self.w);
+            (self.w, self.n) = (0, 0);
+        }
+    }
+    #[inline]
+    fn push_char(&mut self, l: char) {
+        let mut buf = [0u8; 4];
+        for &b in l.encode_utf8(&mut buf).as_bytes() {
+            self.push(b);
+        }
+    }
+}
+
+/// The id of a word: a 64-bit hash of the UTF-8 bytes of its lowercased characters, taken in
+/// little-endian blocks of eight (the last one padded with zero bytes, which no word has), and
+/// their number. A collision (about 2^-64 per pair of distinct words) could only merge two words.
+pub(super) fn word_id(word: &str) -> u64 {
+    if word.bytes().all(|b| b.is_ascii_alphanumeric()) {
+        return ascii_word_id(word.as_bytes());
+    }
+    let mut s = WordStream { h: WORD_SEED, w: 0, n: 0, len: 0 };
+    for c in word.chars() {
+        if c.is_ascii() {
+            s.push(c.to_ascii_lowercase() as u8);
+        } else if let Some(l) = latin1_letter(c) {
+            // U+00C0..=U+00FF in UTF-8: 0xC3, then 0x80 | the low six bits.
+            s.push(0xC3);
+            s.push(0x80 | (l as u32 & 0x3F) as u8);
+        } else {
+            c.to_lowercase().for_each(|l| s.push_char(l));
+        }
+    }
+    if s.n > 0 {
+        s.h = word_block(s.h, s.w);
+    }
+    word_finish(s.h, s.len)
+}
+
+/// Where [`scan_hypothesis`] writes where a text's words start and end (one spare entry,
+/// written and not counted).
+#[derive(Debug, Default, Clone)]
+pub(super) struct WordSpans {
+    edges: Vec<u32>,
+}
+
+/// Per ASCII byte, what it adds to the packed counts of [`scan_hypothesis`]: one non-space
+/// character (bits 0..21), one letter or digit (bits 21..42), one letter (bits 42..63).
+static ASCII_COUNTS: [u64; 128] = ascii_counts();
+
+const fn ascii_counts() -> [u64; 128] {
+    let mut t = [0u64; 128];
+    let mut i = 0;
+    while i < 128 {
+        let e = ASCII[i];
+        t[i] = ((e & SPACE == 0) as u64) | (((e & ALNUM != 0) as u64) << 21) | (((e & ALPHA != 0) as u64) << 42);
+        i += 1;
+    }
+    t
+}
+
+/// Bytes read between two flushes of the packed counts (each field holds up to 2^21 - 1).
+const COUNT_BLOCK: usize = 1 << 20;
+
+/// The id ([`word_id`]) of the word `hyp[start..end]` and whether it has a letter: ASCII words
+/// (letters and digits) read eight bytes at a time, the last block read from the text around
+/// it and masked, not copied; a word with any other byte through [`word_id`].
+#[inline]
+fn word_at(hyp: &str, start: usize, end: usize) -> (u64, bool) {
+    const HIGH: u64 = 0x8080_8080_8080_8080;
+    const LETTER: u64 = 0x4040_4040_4040_4040;
+    let text = hyp.as_bytes();
+    let mut h = WORD_SEED;
+    let mut seen = 0u64;
+    let mut i = start;
+    while i + 8 <= end {
+        let w = load8(text, i);
+        seen |= w;
+        h = word_block(h, lower_block(w));
+        i += 8;
+    }
+    let rest = end - i;
+    if rest > 0 {
+        let w = if i + 8 <= text.len() {
+            load8(text, i) & (u64::MAX >> (8 * (8 - rest)))
+        } else if end >= 8 {
+            load8(text, end - 8) >> (8 * (8 - rest))
+        } else {
+            text[i..end].iter().rev().fold(0u64, |w, &b| (w << 8) | u64::from(b))
+        };
+        seen |= w;
+        h = word_block(h, lower_block(w));
+    }
+    if seen & HIGH != 0 {
+        let word = &hyp[start..end];
+        return (word_id(word), word.chars().any(char::is_alphabetic));
+    }
+    (word_finish(h, end - start), seen & LETTER != 0)
+}
+
+/// One pass over `hyp`: the [`HypScan`] counts against the source's `presence` set and, when
+/// given, the `vocab`; its words into `ids` exactly as [`super::word_ids`] gives them.
+///
+/// Two loops. The first reads the bytes, ASCII ones with no branch on what they are: their
+/// counts come packed from [`ASCII_COUNTS`] into one register, the pair probe and the word
+/// edges are arithmetic (an edge is written at every byte and counted when it is one); other
+/// characters take a slower path. The second hashes the words between the edges ([`word_at`])
+/// and looks them up in the vocabulary.
+// The last edge's `open ^= 1` is not read after it.
+#[allow(unused_assignments)]
+pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
+    let latin = usize::from(scripts.contains(&Script::Latin));
+    let bytes = hyp.as_bytes();
+    let cap = bytes.len() + 2;
+    if spans.edges.len() < cap {
+        spans.edges.resize(cap, 0);
+    }
+    let edges = &mut spans.edges[..cap];
+    // The presence set with a 17th zero word: the pair (none, c) reads it.
+    let mut set = [0u64; PRESENCE_BITS / 64 + 1];
+    set[..PRESENCE_BITS / 64].copy_from_slice(presence);
+    // Counts of the ASCII bytes, packed ([`ASCII_COUNTS`]) and flushed every COUNT_BLOCK bytes.
+    let (mut packed, mut ascii_chars, mut ascii_alnum, mut ascii_letters) = (0u64, 0usize, 0usize, 0usize);
+    let mut flush = |packed: &mut u64| {
+        const FIELD: u64 = (1 << 21) - 1;
+        ascii_chars += (*packed & FIELD) as usize;
+        ascii_alnum += ((*packed >> 21) & FIELD) as usize;
+        ascii_letters += ((*packed >> 42) & FIELD) as usize;
+        *packed = 0;
+    };
+    // Counts of the other characters.
+    let (mut chars, mut alnum_lower, mut letters, mut expected, mut extra_lower) = (0usize, 0usize, 0usize, 0usize, 0usize);
+    let mut hits = 0u64;
+    // The previous non-space character's class (32: none); whether a word is open; edges.
+    let (mut prev, mut open, mut ned) = (32u32, 0u32, 0usize);
+    macro_rules! edge_if {
+        ($cond:expr, $at:expr) => {
+            if $cond {
+                edges[ned] = $at as u32;
+                ned += 1;
+                open ^= 1;
+            }
+        };
+    }
+    macro_rules! probe {
+        ($cl:expr) => {{
+            let k = ((prev << 5) | $cl) as usize;
+            hits += (set[k >> 6] >> (k & 63)) & 1;
+            prev = $cl;
+        }};
+    }
+    let mut i = 0usize;
+    let mut next_flush = COUNT_BLOCK;
+    while i < bytes.len() {
+        let b = bytes[i];
+        if b < 0x80 {
+            let e = u32::from(ASCII[b as usize]);
+            packed += ASCII_COUNTS[b as usize];
+            let solid = ((e >> 7) & 1) ^ 1;
+            let an = (e >> 5) & 1;
+            let cl = e & 31;
+            let k = ((prev << 5) | cl) as usize;
+            hits += (set[k >> 6] >> (k & 63)) & u64::from(solid);
+            prev = if solid != 0 { cl } else { prev };
+            edges[ned] = i as u32;
+            ned += (an ^ open) as usize;
+            open = an;
+            i += 1;
+            if i == next_flush {
+                flush(&mut packed);
+                next_flush += COUNT_BLOCK;
+            }
+            continue;
+        }
+        let Some(c) = hyp[i..].chars().next() else { break };
+        let len = c.len_utf8();
+        if let Some(l) = latin1_letter(c) {
+            chars += 1;
+            probe!(class_of(l));
+            alnum_lower += 1;
+            letters += 1;
+            expected += latin;
+            edge_if!(open == 0, i);
+        } else if plain_symbol(c) {
+            chars += 1;
+            probe!(class_of(c));
+            edge_if!(open != 0, i);
+        } else {
+            let space = is_space(c);
+            let an = c.is_alphanumeric();
+            if !space {
+                chars += 1;
+                for l in c.to_lowercase() {
+                    extra_lower += 1;
+                    alnum_lower += usize::from(an);
+                    probe!(class_of(l));
+                }
+                extra_lower -= 1;
+            }
+            if let Some(sc) = script_of(c) {
+                letters += 1;
+                expected += usize::from(scripts.contains(&sc));
+            }
+            let cjk = is_cjk(c);
+            if cjk || space || !is_word_char(c) {
+                edge_if!(open != 0, i);
+                if cjk && c.is_alphabetic() {
+                    edge_if!(true, i);
+                    edge_if!(true, i + len);
+                }
+            } else {
+                edge_if!(open == 0, i);
+            }
+        }
+        // A multi-byte character may step over a flush point.
+        if i + len >= next_flush {
+            flush(&mut packed);
+            next_flush = i + len + COUNT_BLOCK;
+        }
+        i += len;
+    }
+    edge_if!(open != 0, bytes.len());
+    flush(&mut packed);
+    let (mut lettered, mut known) = (0usize, 0usize);
+    ids.clear();
+    for w in edges[..ned].chunks_exact(2) {
+        let (id, letter) = word_at(hyp, w[0] as usize, w[1] as usize);
+        ids.push(id);
+        if letter {
+            lettered += 1;
+            if let Some(v) = vocab {
+                known += usize::from(v.contains(id));
+            }
+        }
+    }
+    let chars = ascii_chars + chars;
+    let alnum_lower = ascii_alnum + alnum_lower;
+    HypScan {
+        chars: chars as u64,
+        lower: chars + extra_lower,
+        alnum: alnum_lower > 0,
+        alnum_lower,
+        letters: ascii_letters + letters,
+        expected: ascii_letters * latin + expected,
+        hits,
+        lettered,
+        known,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn ascii_table_agrees_with_the_definitions() {
+        for b in 0u8..128 {
+            let c = b as char;
+            let e = ASCII[b as usize];
+            assert_eq!(e & SPACE != 0, is_space(c), "{b}");
+            assert_eq!(e & ALNUM != 0, c.is_alphanumeric(), "{b}");
+            assert_eq!(e & ALPHA != 0, script_of(c).is_some(), "{b}");
+            assert_eq!(u32::from(e & CLASS), class_of(c.to_ascii_lowercase()), "{b}");
+        }
+    }
+
+    #[test]
+    fn plain_symbols_agree_with_unicode() {
+        let mut n = 0;
+        for u in 0x80u32..0x2100 {
+            let Some(c) = char::from_u32(u) else { continue };
+            if plain_symbol(c) {
+                n += 1;
+                assert!(!is_space(c) && !c.is_alphanumeric() && script_of(c).is_none() && !is_word_char(c) && !is_cjk(c), "{c:?}");
+                assert_eq!(c.to_lowercase().collect::<Vec<_>>(), vec![c], "{c:?}");
+            }
+        }
+        assert!(n > 100);
+    }
+
+    #[test]
+    fn latin1_letters_agree_with_unicode() {
+        for u in 0x80u32..0x100 {
+            let c = char::from_u32(u).unwrap();
+            match latin1_letter(c) {
+                Some(l) => {
+                    assert!(c.is_alphabetic() && c.is_alphanumeric() && is_word_char(c) && !is_cjk(c) && !is_space(c), "{c}");
+                    assert_eq!(script_of(c), Some(Script::Latin), "{c}");
+                    assert_eq!(c.to_lowercase().collect::<Vec<_>>(), vec![l], "{c}");
+                }
+                None => assert!(!(0xC0..=0xFF).contains(&u) || !c.is_alphabetic(), "{c}"),
+            }
+        }
+    }
+}
