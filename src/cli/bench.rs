@@ -68,9 +68,11 @@ that time over the fastest run (and over the slowest).
 also added to R replicate sums (R = 200, the daemon's, and 1000, `score --interval`'s default), as \
 segments/s and as the ratio of the time with replicates over the time alone.
   guards
-      the 1-thread BLEU loop over the demo scenario's 900 (source, hypothesis) items, alone and \
-with every item also checked by the reference-free guards (German target; and with the guard \
-setting language-id=off, which keeps the script check), as segments/s and the time the guards add.
+      a session's 1-thread BLEU loop over the demo scenario's 900 (source, hypothesis) items by \
+segment id, in batches of 100 as the daemon takes them, alone and with every item of a batch \
+then checked by the reference-free guards (German target, the language vocabulary learned from \
+the references; and with language-vocab-share=off, every item's language to the identifiers, \
+and with language-id=off, which keeps the script check), as segments/s and the time the guards add.
   external metrics
       the same loop with every item also carrying two external values (a 0-1 score with four \
 decimals, a lower-is-better rate with two), checked, converted to fixed point and summed per \

@@ -33,20 +33,27 @@ pub(super) fn fastest(mut f: impl FnMut() -> u64) -> f64 {
     best
 }
 
-/// [`PASSES`] passes over the items as a daemon session takes them (by segment id): scored,
-/// and checked by the guards when `guards`.
+/// [`PASSES`] passes over the items as the daemon takes a batch of them (by segment id, in
+/// batches of `mtgauge send`'s default size): each batch scored, then its items checked by the
+/// guards when `guards`.
 fn passes(session: &Session, items: &[(String, String)], guards: bool) -> u64 {
     let (mut scratch, mut g) = (Scratch::default(), GuardScratch::default());
+    let mut outcomes = Vec::with_capacity(super::send::DEFAULT_BATCH);
     let mut sink = 0u64;
     for _ in 0..PASSES {
-        for (id, h) in items {
-            let key = ItemKey::Id(id);
-            let outcome = session.score_item(key, h, &mut scratch);
-            if let Outcome::Scored { stats, .. } = &outcome {
-                sink = sink.wrapping_add(stats.bleu.hyp_len);
+        for batch in items.chunks(super::send::DEFAULT_BATCH) {
+            outcomes.clear();
+            for (id, h) in batch {
+                let outcome = session.score_item(ItemKey::Id(id), h, &mut scratch);
+                if let Outcome::Scored { stats, .. } = &outcome {
+                    sink = sink.wrapping_add(stats.bleu.hyp_len);
+                }
+                outcomes.push(outcome);
             }
             if guards {
-                sink = sink.wrapping_add(session.guard_item(key, &outcome, h, &mut g).map_or(0, |v| u64::from(v.flagged)));
+                for ((id, h), o) in batch.iter().zip(&outcomes) {
+                    sink = sink.wrapping_add(session.guard_item(ItemKey::Id(id), o, h, &mut g).map_or(0, |v| u64::from(v.flagged)));
+                }
             }
         }
     }

@@ -45,7 +45,7 @@ use std::fmt;
 use std::sync::Arc;
 
 #[cfg(test)]
-use scan::{presence_bit, PRESENCE_BITS};
+use scan::PRESENCE_BITS;
 use scan::{scan_hypothesis, HypScan};
 pub use scan::SourceFacts;
 pub use script::{language, language_codes, script_of, Language, Script, LANGUAGES};
@@ -530,7 +530,7 @@ fn copy_scanned(cfg: &GuardConfig, source: &str, hyp: &str, h: &HypScan, src: &S
     }
     let n = cfg.copy_order.clamp(1, MAX_CHRF_CHAR_ORDER);
     let (hl, sl) = (h.lower, src.lower);
-    if hl == 0 || presence_bound_of(n, hl, sl, h.hits) < cfg.copy_min_chrf {
+    if hl == 0 || presence_surely_below(n, hl, sl, h.hits, cfg.copy_min_chrf) || presence_bound_of(n, hl, sl, h.hits) < cfg.copy_min_chrf {
         return Outcome::Pass;
     }
     fill_chars(hyp, n, &mut s.hyp_chars);
@@ -632,14 +632,34 @@ fn fill_chars(text: &str, n: usize, out: &mut Vec<u32>) -> usize {
 /// [`presence_bound_of`] of two filled texts (their bigrams hashed here).
 #[cfg(test)]
 fn presence_bound(n: usize, hyp: &[u32], src: &[u32]) -> f64 {
+    presence_bound_of(n, hyp.len(), src.len(), presence_hits(hyp, src))
+}
+
+/// The hypothesis bigrams of two filled texts whose class pair the source has, by definition.
+#[cfg(test)]
+fn presence_hits(hyp: &[u32], src: &[u32]) -> u64 {
+    // One bit per ordered pair of classes, by the pair's number a * 32 + b.
     let mut set = [0u64; PRESENCE_BITS / 64];
     let class = |x: u32| scan::class_of(char::from_u32(x - 1).expect("a filled character"));
+    let pair = |a: u32, b: u32| (class(a) * 32 + class(b)) as usize;
     for w in src.windows(2) {
-        let k = presence_bit(class(w[0]), class(w[1]));
+        let k = pair(w[0], w[1]);
         set[k / 64] |= 1 << (k % 64);
     }
-    let hits = hyp.windows(2).map(|w| presence_bit(class(w[0]), class(w[1]))).map(|k| (set[k / 64] >> (k % 64)) & 1).sum();
-    presence_bound_of(n, hyp.len(), src.len(), hits)
+    hyp.windows(2).map(|w| pair(w[0], w[1])).map(|k| (set[k / 64] >> (k % 64)) & 1).sum()
+}
+
+/// A quick sufficient condition for [`presence_bound_of`] below `min`: with every order of both
+/// texts defined (each at least `n` characters), every precision and recall of an order from
+/// 2 is at most `hits` over the fewest n-grams of order `n`, order 1's at most 1; chrF, a
+/// weighted harmonic mean of the mean precision and the mean recall, is at most the larger.
+fn presence_surely_below(n: usize, hl: usize, sl: usize, hits: u64, min: f64) -> bool {
+    if n < 2 || hl < n || sl < n {
+        return false;
+    }
+    let fewest = (hl.min(sl) - n + 1) as f64;
+    let upper = (1.0 + (n - 1) as f64 * (hits as f64 / fewest).min(1.0)) / n as f64;
+    100.0 * upper < min
 }
 
 /// An upper bound of [`copy_chrf`] cheaper than [`copy_bound`], with no table to clear and
@@ -747,6 +767,20 @@ fn repeats(text: &str, n: usize, s: &mut GuardScratch) -> (usize, usize) {
     repeats_of_ids(&s.ids, n, 0, &mut s.keys)
 }
 
+/// True when some of 256 slots (by a key's top byte, remixed) gets `at_least` of `keys`: false
+/// means no key occurs that often.
+fn slot_reaches(keys: &[u64], at_least: usize) -> bool {
+    let mut slots = [0u8; 256];
+    let cap = at_least.min(255) as u8;
+    let mut reached = false;
+    for &k in keys {
+        let c = &mut slots[(k.wrapping_mul(0x9E37_79B9_7F4A_7C15) >> 56) as usize];
+        *c = c.saturating_add(1);
+        reached |= *c >= cap;
+    }
+    reached
+}
+
 /// [`repeats`] of the words `ids`, except that a top count below `at_least` may be given as 0.
 fn repeats_of_ids(ids: &[u64], n: usize, at_least: usize, keys: &mut Vec<u64>) -> (usize, usize) {
     let len = ids.len();
@@ -759,24 +793,18 @@ fn repeats_of_ids(ids: &[u64], n: usize, at_least: usize, keys: &mut Vec<u64>) -
     if len < n {
         return (0, longest);
     }
+    // Counted first in 256 slots by their top byte: no slot reaching `at_least` means no key
+    // does (equal keys share a slot). Words first: an n-gram occurring `at_least` times has its
+    // first word occurring as often.
+    if at_least > 1 && !slot_reaches(ids, at_least) {
+        return (0, longest);
+    }
     // One 64-bit key per n-gram (a collision, about 2^-64 per pair, could only merge two
-    // n-grams). Counted first in 256 slots by their top byte: no slot reaching `at_least` means
-    // no n-gram does (equal keys share a slot); else sorted: the longest run of equal keys is
-    // the top count.
+    // n-grams); sorted, the longest run of equal keys is the top count.
     keys.clear();
     keys.extend(ids.windows(n).map(|w| w.iter().fold(0u64, |k, &id| (k.rotate_left(17) ^ id).wrapping_mul(0x9E37_79B9_7F4A_7C15))));
-    if at_least > 1 {
-        let mut slots = [0u8; 256];
-        let cap = at_least.min(255) as u8;
-        let mut reached = false;
-        for &k in keys.iter() {
-            let c = &mut slots[(k >> 56) as usize];
-            *c = c.saturating_add(1);
-            reached |= *c >= cap;
-        }
-        if !reached {
-            return (0, longest);
-        }
+    if at_least > 1 && !slot_reaches(keys, at_least) {
+        return (0, longest);
     }
     keys.sort_unstable();
     let (mut top, mut count) = (0usize, 0usize);

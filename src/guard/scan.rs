@@ -12,7 +12,8 @@ use crate::text::{is_cjk, is_space};
 pub(super) const PRESENCE_BITS: usize = 1 << 10;
 
 /// The character-pair presence set of the copy guard's first bound.
-pub(super) type PresenceSet = [u64; PRESENCE_BITS / 64];
+/// Row `a` holds the pairs (a, b) as bit `b`.
+pub(super) type PresenceSet = [u32; PRESENCE_BITS / 32];
 
 const CLASS: u8 = 31;
 const ALNUM: u8 = 32;
@@ -28,12 +29,8 @@ const fn ascii_table() -> [u8; 128] {
     let mut i = 0;
     while i < 128 {
         let b = i as u8;
-        let l = b.to_ascii_lowercase();
-        let mut e = match l {
-            b'a'..=b'z' => l - b'a' + 1,
-            b'0'..=b'9' => 27,
-            _ => 28 + (l & 3),
-        };
+        // The class: the low five bits (the same for both cases of a letter).
+        let mut e = b & 31;
         if b.is_ascii_alphanumeric() {
             e |= ALNUM;
         }
@@ -49,10 +46,11 @@ const fn ascii_table() -> [u8; 128] {
     t
 }
 
-/// The class (0..32) of a lowercased character in the presence set: each ASCII letter its own
-/// (1..=26), ASCII digits 27, other ASCII characters 28..=31, any other character its code
-/// point hashed to five bits. Equal characters have equal classes, which is all the bound needs
-/// (characters sharing a class can only add hits).
+/// The class (0..32) of a lowercased character in the presence set: an ASCII character its low
+/// five bits (each letter its own class, 1..=26, either case; digits and signs share classes
+/// with letters), any other character its code point hashed to five bits. Equal characters
+/// have equal classes, which is all the bound needs (characters sharing a class can only add
+/// hits).
 #[inline]
 pub(super) fn class_of(l: char) -> u32 {
     let c = l as u32;
@@ -61,12 +59,6 @@ pub(super) fn class_of(l: char) -> u32 {
     } else {
         c.wrapping_mul(0x9E37_79B1) >> 27
     }
-}
-
-/// The bit of the character-class pair (a, b).
-#[inline]
-pub(super) fn presence_bit(a: u32, b: u32) -> usize {
-    ((a << 5) | b) as usize
 }
 
 /// A Latin-1 letter (U+00C0..=U+00FF but the signs U+00D7 and U+00F7) and its lowercase (one
@@ -91,7 +83,7 @@ fn plain_symbol(c: char) -> bool {
 
 /// What the guards need of a source, from one pass over it: its non-space characters, its
 /// lowercased non-space characters (what the copy chrF reads), whether it has a letter or
-/// digit, and the presence set of its character pairs. 144 bytes whatever the source's length.
+/// digit, and the presence set of its character pairs: 160 bytes whatever the source's length.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct SourceFacts {
     pub(super) presence: PresenceSet,
@@ -104,7 +96,7 @@ pub struct SourceFacts {
 
 impl Default for SourceFacts {
     fn default() -> Self {
-        SourceFacts { presence: [0; PRESENCE_BITS / 64], chars: 0, lower: 0, alnum_lower: 0, alnum: false }
+        SourceFacts { presence: [0; 32], chars: 0, lower: 0, alnum_lower: 0, alnum: false }
     }
 }
 
@@ -115,8 +107,7 @@ impl SourceFacts {
         let mut prev: Option<u32> = None;
         let mut add = |set: &mut PresenceSet, cl: u32| {
             if let Some(p) = prev {
-                let k = presence_bit(p, cl);
-                set[k / 64] |= 1 << (k % 64);
+                set[p as usize] |= 1 << cl;
             }
             prev = Some(cl);
         };
@@ -190,11 +181,12 @@ fn word_finish(h: u64, len: usize) -> u64 {
 /// Start of a word's hash.
 const WORD_SEED: u64 = 0xCBF2_9CE4_8422_2325;
 
-/// Lowercase the ASCII letters of a block of ASCII letters and digits (letters have bit 0x40,
-/// digits not: that bit shifted to 0x20); zero bytes stay zero.
+/// Lowercase the ASCII letters of a block of a word's bytes: ASCII letters and digits, and
+/// bytes of other characters (high bit set, left alone). ASCII letters have bit 0x40 and digits
+/// not: that bit of each byte without the high bit, shifted to 0x20. Zero bytes stay zero.
 #[inline]
 fn lower_block(w: u64) -> u64 {
-    w | ((w & 0x4040_4040_4040_4040) >> 1)
+    w | ((w & 0x4040_4040_4040_4040 & ((!w & HIGH) >> 1)) >> 1)
 }
 
 /// The eight bytes of `text` from `i`, little-endian.
@@ -274,32 +266,66 @@ pub(super) struct WordSpans {
     edges: Vec<u32>,
 }
 
-/// Per ASCII byte, what it adds to the packed counts of [`scan_hypothesis`]: one non-space
-/// character (bits 0..21), one letter or digit (bits 21..42), one letter (bits 42..63).
-static ASCII_COUNTS: [u64; 128] = ascii_counts();
+/// Every byte's high bit.
+const HIGH: u64 = 0x8080_8080_8080_8080;
+/// Every byte's low bit.
+const LOW: u64 = 0x0101_0101_0101_0101;
 
-const fn ascii_counts() -> [u64; 128] {
-    let mut t = [0u64; 128];
-    let mut i = 0;
-    while i < 128 {
-        let e = ASCII[i];
-        t[i] = ((e & SPACE == 0) as u64) | (((e & ALNUM != 0) as u64) << 21) | (((e & ALPHA != 0) as u64) << 42);
-        i += 1;
-    }
-    t
+/// The high bit of each byte of a block of ASCII bytes at least `n` (at most 0x80); `xh` is
+/// the block with every high bit set, so no subtraction borrows across bytes.
+#[inline]
+fn at_least(xh: u64, n: u64) -> u64 {
+    xh.wrapping_sub(LOW * n) & HIGH
 }
 
-/// Bytes read between two flushes of the packed counts (each field holds up to 2^21 - 1).
-const COUNT_BLOCK: usize = 1 << 20;
-
-/// The id ([`word_id`]) of the word `hyp[start..end]` and whether it has a letter: ASCII words
-/// (letters and digits) read eight bytes at a time, the last block read from the text around
-/// it and masked, not copied; a word with any other byte through [`word_id`].
+/// The number of bytes whose high bit is set in `m` (only high bits set).
 #[inline]
-fn word_at(hyp: &str, start: usize, end: usize) -> (u64, bool) {
-    const HIGH: u64 = 0x8080_8080_8080_8080;
+fn count_high(m: u64) -> usize {
+    ((m >> 7).wrapping_mul(LOW) >> 56) as usize
+}
+
+/// Masks (the high bit of each byte) of a block of eight ASCII bytes: non-space
+/// ([`crate::text::is_space`] false), letter or digit, letter.
+#[inline]
+fn ascii_block_masks(x: u64) -> (u64, u64, u64) {
+    let xh = x | HIGH;
+    // White space: 0x09..=0x0D and 0x1C..=0x20.
+    let space = (at_least(xh, 0x09) & !at_least(xh, 0x0E)) | (at_least(xh, 0x1C) & !at_least(xh, 0x21));
+    let digit = at_least(xh, 0x30) & !at_least(xh, 0x3A);
+    // Letters: with bit 0x20 set, 0x61..=0x7A (no other ASCII byte lands there).
+    let lh = xh | (LOW * 0x20);
+    let letter = at_least(lh, 0x61) & !at_least(lh, 0x7B);
+    (HIGH & !space, digit | letter, letter)
+}
+
+/// The low `k` bytes of a block set, by `k` (0..=8).
+const BYTE_MASKS: [u64; 9] = [0, 0xFF, 0xFFFF, 0xFF_FFFF, 0xFFFF_FFFF, 0xFF_FFFF_FFFF, 0xFFFF_FFFF_FFFF, 0xFF_FFFF_FFFF_FFFF, u64::MAX];
+
+/// The id ([`word_id`]) of the word `hyp[start..end]` and whether it has a letter: read eight
+/// bytes at a time, the last block read from the text around it and masked, not copied, when
+/// its lowercase's UTF-8 is its own bytes with the ASCII letters lowercased: a word of ASCII
+/// letters and digits, or any word when `latin_lower` (the text's characters outside ASCII are
+/// all lowercase Latin-1 letters, their own lowercase, whose first byte 0xC3 has bit 0x40);
+/// other words through [`word_id`].
+#[inline]
+fn word_at(hyp: &str, start: usize, end: usize, latin_lower: bool) -> (u64, bool) {
     const LETTER: u64 = 0x4040_4040_4040_4040;
     let text = hyp.as_bytes();
+    let len = end - start;
+    // Most words: at most sixteen bytes with sixteen readable from their start; both blocks
+    // read and masked, the second one's hash kept only when the word reaches into it.
+    if len <= 16 && start + 16 <= text.len() {
+        let a = load8(text, start) & BYTE_MASKS[len.min(8)];
+        let b = load8(text, start + 8) & BYTE_MASKS[len.saturating_sub(8)];
+        let seen = a | b;
+        if seen & HIGH == 0 || latin_lower {
+            let h1 = word_block(WORD_SEED, lower_block(a));
+            let h2 = word_block(h1, lower_block(b));
+            return (word_finish(if len > 8 { h2 } else { h1 }, len), seen & LETTER != 0);
+        }
+        let word = &hyp[start..end];
+        return (word_id(word), word.chars().any(char::is_alphabetic));
+    }
     let mut h = WORD_SEED;
     let mut seen = 0u64;
     let mut i = start;
@@ -321,7 +347,7 @@ fn word_at(hyp: &str, start: usize, end: usize) -> (u64, bool) {
         seen |= w;
         h = word_block(h, lower_block(w));
     }
-    if seen & HIGH != 0 {
+    if seen & HIGH != 0 && !latin_lower {
         let word = &hyp[start..end];
         return (word_id(word), word.chars().any(char::is_alphabetic));
     }
@@ -331,38 +357,31 @@ fn word_at(hyp: &str, start: usize, end: usize) -> (u64, bool) {
 /// One pass over `hyp`: the [`HypScan`] counts against the source's `presence` set and, when
 /// given, the `vocab`; its words into `ids` exactly as [`super::word_ids`] gives them.
 ///
-/// Two loops. The first reads the bytes, ASCII ones with no branch on what they are: their
-/// counts come packed from [`ASCII_COUNTS`] into one register, the pair probe and the word
-/// edges are arithmetic (an edge is written at every byte and counted when it is one); other
-/// characters take a slower path. The second hashes the words between the edges ([`word_at`])
-/// and looks them up in the vocabulary.
+/// Two loops. The first reads eight ASCII bytes at a time: their counts are bit counts of
+/// masks ([`ascii_block_masks`]), their eight pair probes and word edges arithmetic with no
+/// branch on what the bytes are (an edge is written at every byte and counted when it is one);
+/// other characters, and ASCII bytes next to them, take a slower path. The second hashes the
+/// words between the edges ([`word_at`]) and looks them up in the vocabulary.
 // The last edge's `open ^= 1` is not read after it.
 #[allow(unused_assignments)]
 pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
     let latin = usize::from(scripts.contains(&Script::Latin));
     let bytes = hyp.as_bytes();
-    let cap = bytes.len() + 2;
+    let cap = bytes.len() + 9;
     if spans.edges.len() < cap {
         spans.edges.resize(cap, 0);
     }
     let edges = &mut spans.edges[..cap];
-    // The presence set with a 17th zero word: the pair (none, c) reads it.
-    let mut set = [0u64; PRESENCE_BITS / 64 + 1];
-    set[..PRESENCE_BITS / 64].copy_from_slice(presence);
-    // Counts of the ASCII bytes, packed ([`ASCII_COUNTS`]) and flushed every COUNT_BLOCK bytes.
-    let (mut packed, mut ascii_chars, mut ascii_alnum, mut ascii_letters) = (0u64, 0usize, 0usize, 0usize);
-    let mut flush = |packed: &mut u64| {
-        const FIELD: u64 = (1 << 21) - 1;
-        ascii_chars += (*packed & FIELD) as usize;
-        ascii_alnum += ((*packed >> 21) & FIELD) as usize;
-        ascii_letters += ((*packed >> 42) & FIELD) as usize;
-        *packed = 0;
-    };
-    // Counts of the other characters.
-    let (mut chars, mut alnum_lower, mut letters, mut expected, mut extra_lower) = (0usize, 0usize, 0usize, 0usize, 0usize);
+    // The presence set with a 33rd zero row: the pair (none, c) reads it.
+    let mut set = [0u32; 33];
+    set[..32].copy_from_slice(presence);
+    let (mut chars, mut alnum_lower, mut letters, mut expected, mut extra_lower, mut ascii_letters) = (0usize, 0usize, 0usize, 0usize, 0usize, 0usize);
     let mut hits = 0u64;
     // The previous non-space character's class (32: none); whether a word is open; edges.
     let (mut prev, mut open, mut ned) = (32u32, 0u32, 0usize);
+    // Whether every character outside ASCII so far is a lowercase Latin-1 letter or a plain
+    // symbol (no word's bytes then need lowercasing but its ASCII letters).
+    let mut latin_lower = true;
     macro_rules! edge_if {
         ($cond:expr, $at:expr) => {
             if $cond {
@@ -374,32 +393,49 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
     }
     macro_rules! probe {
         ($cl:expr) => {{
-            let k = ((prev << 5) | $cl) as usize;
-            hits += (set[k >> 6] >> (k & 63)) & 1;
+            hits += u64::from((set[prev as usize] >> $cl) & 1);
             prev = $cl;
         }};
     }
     let mut i = 0usize;
-    let mut next_flush = COUNT_BLOCK;
     while i < bytes.len() {
+        if i + 8 <= bytes.len() {
+            let x = load8(bytes, i);
+            if x & HIGH == 0 {
+                let (solid, alnum, letter) = ascii_block_masks(x);
+                chars += count_high(solid);
+                alnum_lower += count_high(alnum);
+                ascii_letters += count_high(letter);
+                for j in 0..8 {
+                    let cl = ((x >> (8 * j)) & 31) as u32;
+                    let on = ((solid >> (8 * j + 7)) & 1) as u32;
+                    hits += u64::from((set[prev as usize] >> cl) & on);
+                    prev = if on != 0 { cl } else { prev };
+                }
+                // Bit j: byte j is a letter or digit (the high bits gathered into one byte).
+                let m = ((alnum >> 7).wrapping_mul(0x0102_0408_1020_4080) >> 56) as u32;
+                let t = m ^ ((m << 1) | open);
+                for j in 0..8 {
+                    edges[ned] = (i + j) as u32;
+                    ned += ((t >> j) & 1) as usize;
+                }
+                open = (m >> 7) & 1;
+                i += 8;
+                continue;
+            }
+        }
         let b = bytes[i];
         if b < 0x80 {
-            let e = u32::from(ASCII[b as usize]);
-            packed += ASCII_COUNTS[b as usize];
-            let solid = ((e >> 7) & 1) ^ 1;
-            let an = (e >> 5) & 1;
-            let cl = e & 31;
-            let k = ((prev << 5) | cl) as usize;
-            hits += (set[k >> 6] >> (k & 63)) & u64::from(solid);
-            prev = if solid != 0 { cl } else { prev };
-            edges[ned] = i as u32;
-            ned += (an ^ open) as usize;
-            open = an;
-            i += 1;
-            if i == next_flush {
-                flush(&mut packed);
-                next_flush += COUNT_BLOCK;
+            let e = ASCII[b as usize];
+            let an = u32::from(e & ALNUM != 0);
+            if e & SPACE == 0 {
+                chars += 1;
+                probe!(u32::from(e & CLASS));
             }
+            alnum_lower += an as usize;
+            ascii_letters += usize::from(e & ALPHA != 0);
+            edge_if!(an != open, i);
+            i += 1;
             continue;
         }
         let Some(c) = hyp[i..].chars().next() else { break };
@@ -410,12 +446,14 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
             alnum_lower += 1;
             letters += 1;
             expected += latin;
+            latin_lower &= l == c;
             edge_if!(open == 0, i);
         } else if plain_symbol(c) {
             chars += 1;
             probe!(class_of(c));
             edge_if!(open != 0, i);
         } else {
+            latin_lower = false;
             let space = is_space(c);
             let an = c.is_alphanumeric();
             if !space {
@@ -442,19 +480,13 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
                 edge_if!(open == 0, i);
             }
         }
-        // A multi-byte character may step over a flush point.
-        if i + len >= next_flush {
-            flush(&mut packed);
-            next_flush = i + len + COUNT_BLOCK;
-        }
         i += len;
     }
     edge_if!(open != 0, bytes.len());
-    flush(&mut packed);
     let (mut lettered, mut known) = (0usize, 0usize);
     ids.clear();
     for w in edges[..ned].chunks_exact(2) {
-        let (id, letter) = word_at(hyp, w[0] as usize, w[1] as usize);
+        let (id, letter) = word_at(hyp, w[0] as usize, w[1] as usize, latin_lower);
         ids.push(id);
         if letter {
             lettered += 1;
@@ -463,8 +495,6 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
             }
         }
     }
-    let chars = ascii_chars + chars;
-    let alnum_lower = ascii_alnum + alnum_lower;
     HypScan {
         chars: chars as u64,
         lower: chars + extra_lower,
@@ -491,6 +521,37 @@ mod tests {
             assert_eq!(e & ALNUM != 0, c.is_alphanumeric(), "{b}");
             assert_eq!(e & ALPHA != 0, script_of(c).is_some(), "{b}");
             assert_eq!(u32::from(e & CLASS), class_of(c.to_ascii_lowercase()), "{b}");
+        }
+    }
+
+    #[test]
+    #[cfg(target_pointer_width = "64")]
+    fn source_facts_size() {
+        // What README and the docs say a session keeps per segment with a source.
+        assert_eq!(std::mem::size_of::<SourceFacts>(), 160);
+    }
+
+    #[test]
+    fn block_masks_agree_with_the_table() {
+        // Every ASCII byte at every position of a block, among other bytes.
+        for b in 0u8..128 {
+            for pos in 0..8 {
+                let mut block = [b'a', b' ', b'7', b'.', b'Z', b'\t', 0x1F, b'_'];
+                block[pos] = b;
+                let (solid, alnum, letter) = ascii_block_masks(u64::from_le_bytes(block));
+                for (j, &x) in block.iter().enumerate() {
+                    let e = ASCII[x as usize];
+                    let bit = |m: u64| (m >> (8 * j + 7)) & 1 == 1;
+                    assert_eq!(bit(solid), e & SPACE == 0, "{x:#x} at {j}");
+                    assert_eq!(bit(alnum), e & ALNUM != 0, "{x:#x} at {j}");
+                    assert_eq!(bit(letter), e & ALPHA != 0, "{x:#x} at {j}");
+                }
+                assert_eq!(count_high(solid), block.iter().filter(|&&x| ASCII[x as usize] & SPACE == 0).count());
+                let m = ((alnum >> 7).wrapping_mul(0x0102_0408_1020_4080) >> 56) as u32;
+                for (j, &x) in block.iter().enumerate() {
+                    assert_eq!((m >> j) & 1 == 1, x.is_ascii_alphanumeric(), "{x:#x} at {j}");
+                }
+            }
         }
     }
 

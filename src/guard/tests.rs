@@ -277,13 +277,17 @@ proptest! {
     }
 
     #[test]
-    fn one_pass_words_equal_the_word_definition(text in prop_oneof![any_text(), any::<String>(), "(Straße|ÄÖÜ|ñandú|x1Y2|abcdefghijklmnopq|€|„|–|渡轮| |\\.)*"]) {
+    fn one_pass_words_equal_the_word_definition(
+        text in prop_oneof![any_text(), any::<String>(), "(Straße|ÄÖÜ|ñandú|x1Y2|abcdefghijklmnopq|€|„|–|渡轮| |\\.|\t|Ferry to the Harbour, 10:15\\.)*"],
+        src in prop_oneof![any_text(), "(ferry|Fähre|harbour| |\\.|\n)*"],
+    ) {
         // The hypothesis scan's words and vocabulary counts are the definition's (for_each_word).
         let vocab = Vocabulary::of_texts(["straße äöü abcdefghijklmnopq 渡"]);
         let mut c = cfg("de");
         c.vocabulary = Some(Arc::new(vocab.clone()));
         let mut ids = Vec::new();
-        let h = scan::scan_hypothesis(&text, &[Script::Latin], &SourceFacts::default().presence, Some(&vocab), &mut ids, &mut Default::default());
+        let facts = SourceFacts::of(&src);
+        let h = scan::scan_hypothesis(&text, &[Script::Latin], &facts.presence, Some(&vocab), &mut ids, &mut Default::default());
         let mut want = Vec::new();
         word_ids(&text, &mut want);
         prop_assert_eq!(&ids, &want);
@@ -291,6 +295,13 @@ proptest! {
         prop_assert_eq!(h.chars, char_len(&text));
         prop_assert_eq!(h.alnum_lower, alnum_lower(&text).count());
         prop_assert_eq!(h.lower, fill_chars(&text, 0, &mut Vec::new()));
+        // The pair probes and the source's facts, against the filled characters.
+        let (mut hf, mut sf) = (Vec::new(), Vec::new());
+        fill_chars(&text, 0, &mut hf);
+        fill_chars(&src, 0, &mut sf);
+        prop_assert_eq!(h.hits, presence_hits(&hf, &sf));
+        prop_assert_eq!((facts.chars, facts.lower, facts.alnum_lower), (char_len(&src), sf.len(), alnum_lower(&src).count()));
+        prop_assert_eq!(h.letters, text.chars().filter(|&c| script_of(c).is_some()).count());
     }
 
     #[test]

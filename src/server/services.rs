@@ -403,6 +403,7 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
     SCRATCH.with(|s| GUARD_SCRATCH.with(|g| {
         let scratch = &mut s.borrow_mut();
         let guard_scratch = &mut g.borrow_mut();
+        let mut guard_pending = Vec::with_capacity(batch.items.len());
         for (i, item) in batch.items.iter().enumerate() {
             let index = i as u32;
             if item.item_key.len() > limits.max_text_bytes {
@@ -455,7 +456,6 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
                 continue;
             }
             let outcome = session.score_item(key, &item.hypothesis, scratch);
-            let verdict = session.guard_item(key, &outcome, &item.hypothesis, guard_scratch);
             if let (true, Outcome::Scored { stats, by_source, index: seg }) = (batch.want_segment_scores, &outcome) {
                 out.segment_scores.push(pb::SegmentScore { index, segment_id: session.segment_id(*by_source, *seg).to_owned(), scores: segment_scores_to_pb(stats, &session.spec().config) });
             }
@@ -463,7 +463,12 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
             if let (Some(v), Some(k)) = (values, external_key(item)) {
                 external.push((k, v));
             }
-            if let Some(v) = verdict {
+            guard_pending.push((index, key, out.outcomes.len() - 1, item.hypothesis.as_str()));
+        }
+        // The guards after the scoring, in a loop of their own: each loop's code and tables stay
+        // in the caches (verdicts do not depend on the order).
+        for (index, key, o, hyp) in guard_pending {
+            if let Some(v) = session.guard_item(key, &out.outcomes[o], hyp, guard_scratch) {
                 out.guards.add(v);
                 if batch.want_segment_scores {
                     out.verdicts.push(guard_verdict_to_pb(index, v));

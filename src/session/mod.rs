@@ -634,7 +634,8 @@ impl Session {
         drop(st);
         let history = self.history().memory_bytes();
         let external = self.external_stats().recent.memory_bytes() + self.external_history().memory_bytes();
-        self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + window + replicates + history + external
+        let guards = self.source_facts.capacity() * std::mem::size_of::<crate::guard::SourceFacts>() + self.source_segment.capacity() * 4 + self.guards.vocabulary.as_ref().map_or(0, |v| v.memory_bytes());
+        self.compiled.memory_bytes() + sources + (self.keys.capacity() + self.source_keys.capacity()) * 8 + window + replicates + history + external + guards
     }
 
     /// Score one item (CPU work, no lock taken).
