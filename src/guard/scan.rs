@@ -1,7 +1,8 @@
 //! One pass over each text for the guards: [`SourceFacts::of`] for a source (kept per reference
 //! segment by a session, so a matched item's source is not read again) and [`scan_hypothesis`]
-//! for a hypothesis. ASCII bytes take a table-driven path and Latin-1 letters a short one;
-//! nothing is written per character but the words.
+//! for a hypothesis: eight ASCII bytes at a time where they come in eights, Latin-1 letters and
+//! common punctuation on a short path, other characters on the general one; the words are
+//! found in that pass and hashed from their bytes in a second, short one.
 
 use super::script::{script_of, Script};
 use super::vocab::Vocabulary;
