@@ -27,9 +27,8 @@ fn offline_config() -> GuardConfig {
     // The language vocabulary a session learns from its references (German: used).
     let segs = demo_segments();
     let refs: Vec<&str> = segs.iter().flat_map(|s| s.refs.iter().map(String::as_str)).collect();
-    match mtgauge::guard::vocab::learn(&c, &refs) {
-        mtgauge::guard::vocab::Learned::Vocabulary(v) => c.vocabulary = Some(std::sync::Arc::new(v)),
-        mtgauge::guard::vocab::Learned::Skipped(why) => panic!("no vocabulary: {why}"),
+    if let Err(why) = c.learn_vocabulary(&refs) {
+        panic!("no vocabulary: {why}");
     }
     c
 }

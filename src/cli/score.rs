@@ -417,14 +417,7 @@ fn run_guards(mut config: GuardConfig, learn: bool, path: &str, refs: &RefSet, (
     }
     // The language guard's vocabulary, learned from the references as a daemon session does.
     let references: Vec<&str> = refs.segments().flat_map(|s| s.refs()).collect();
-    let vocabulary = match guard::vocab::learn(&config, &references) {
-        guard::vocab::Learned::Vocabulary(v) => {
-            let words = v.len();
-            config.vocabulary = Some(std::sync::Arc::new(v));
-            Ok(words)
-        }
-        guard::vocab::Learned::Skipped(why) => Err(why),
-    };
+    let vocabulary = config.learn_vocabulary(&references);
     let chunk = hyps.len().div_ceil(threads.max(1)).max(1);
     let verdicts = std::thread::scope(|scope| {
         let config = &config;

@@ -158,6 +158,21 @@ pub fn learn(cfg: &GuardConfig, references: &[&str]) -> Learned {
     Learned::Vocabulary(Vocabulary::of_texts(references.iter().copied()))
 }
 
+impl GuardConfig {
+    /// Learn the vocabulary of `references` into this configuration when it can be used
+    /// ([`learn`]): its number of words, or why there is none.
+    pub fn learn_vocabulary(&mut self, references: &[&str]) -> Result<usize, &'static str> {
+        match learn(self, references) {
+            Learned::Vocabulary(v) => {
+                let words = v.len();
+                self.vocabulary = Some(std::sync::Arc::new(v));
+                Ok(words)
+            }
+            Learned::Skipped(why) => Err(why),
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -128,9 +128,8 @@ fn guard_config(spec: &SessionSpec, refs: &RefSet) -> GuardConfig {
         let _ = c.set(s);
     }
     let references: Vec<&str> = refs.segments().flat_map(|s| s.refs()).collect();
-    if let crate::guard::vocab::Learned::Vocabulary(v) = crate::guard::vocab::learn(&c, &references) {
-        c.vocabulary = Some(Arc::new(v));
-    }
+    // Without one (the reason is the configuration's to tell), the identifiers decide.
+    let _ = c.learn_vocabulary(&references);
     c
 }
 
