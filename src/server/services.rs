@@ -403,7 +403,9 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
     SCRATCH.with(|s| GUARD_SCRATCH.with(|g| {
         let scratch = &mut s.borrow_mut();
         let guard_scratch = &mut g.borrow_mut();
-        let mut guard_pending = Vec::with_capacity(batch.items.len());
+        // (item index, outcome index) of the scored-or-unknown items: 8 bytes an item, so a
+        // large batch's list stays a small allocation (the keys are read again from the items).
+        let mut guard_pending: Vec<(u32, u32)> = Vec::with_capacity(batch.items.len());
         for (i, item) in batch.items.iter().enumerate() {
             let index = i as u32;
             if item.item_key.len() > limits.max_text_bytes {
@@ -463,12 +465,19 @@ fn score_items(session: &Session, batch: &pb::ScoreBatch, limits: &super::Limits
             if let (Some(v), Some(k)) = (values, external_key(item)) {
                 external.push((k, v));
             }
-            guard_pending.push((index, key, out.outcomes.len() - 1, item.hypothesis.as_str()));
+            guard_pending.push((index, (out.outcomes.len() - 1) as u32));
         }
         // The guards after the scoring, in a loop of their own: each loop's code and tables stay
         // in the caches (verdicts do not depend on the order).
-        for (index, key, o, hyp) in guard_pending {
-            if let Some(v) = session.guard_item(key, &out.outcomes[o], hyp, guard_scratch) {
+        for (index, o) in guard_pending {
+            let item = &batch.items[index as usize];
+            let key = match &item.key {
+                Some(pb::score_item::Key::SegmentId(id)) => ItemKey::Id(id),
+                Some(pb::score_item::Key::Source(src)) => ItemKey::Source(src),
+                // Items without a key were rejected before scoring.
+                None => continue,
+            };
+            if let Some(v) = session.guard_item(key, &out.outcomes[o as usize], &item.hypothesis, guard_scratch) {
                 out.guards.add(v);
                 if batch.want_segment_scores {
                     out.verdicts.push(guard_verdict_to_pb(index, v));
