@@ -221,7 +221,8 @@ async fn a_flood_of_unknown_ids_and_sources_is_counted_and_keeps_nothing() {
     assert_eq!(stats_from_pb(r.cumulative.as_ref().unwrap()).segments, 0, "nothing was scored");
     assert_eq!(server.sample("mtgauge_segments_total{session=\"flood\",outcome=\"unknown\"}"), items as f64);
     // Keeping the keys alone would take FLOOD * BATCH * (about 29 bytes + a 24-byte String) = 53 MB;
-    // 8 MiB leaves room for allocator noise only (with two malloc arenas, see tests/common).
+    // 8 MiB leaves room for allocator noise only (two malloc arenas and a fixed mmap threshold,
+    // see tests/common).
     let grown = rss_after.saturating_sub(rss_warm);
     eprintln!("RSS {rss_warm} KiB -> {rss_after} KiB over {} unknown items", FLOOD * BATCH);
     assert!(grown < 8 * 1024, "memory grew {grown} KiB over a flood of unknown ids and sources");

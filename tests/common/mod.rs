@@ -63,7 +63,11 @@ impl Server {
         let mut command = Command::new(env!("CARGO_BIN_EXE_mtgauge"));
         // Two malloc arenas (glibc): memory tests measure what the server keeps, and per-thread
         // arenas made on contention add megabytes of noise that depend on how busy the machine is.
-        command.args(["serve", "--listen", listen, "--metrics-listen", "127.0.0.1:0"]).args(&args).env("RUST_LOG", "info").env("MALLOC_ARENA_MAX", "2").stdin(Stdio::null()).stdout(Stdio::null()).stderr(Stdio::piped());
+        // A fixed mmap threshold (glibc, mallopt(3) M_MMAP_THRESHOLD): by default glibc raises the
+        // threshold each time a large block is freed, after which batch-sized buffers come from the
+        // heap and stay resident in amounts that depend on timing (0 to 12 MiB over the unknown
+        // flood in tests/pressure.rs; 0.1 to 0.9 MiB with the threshold fixed, 8 runs).
+        command.args(["serve", "--listen", listen, "--metrics-listen", "127.0.0.1:0"]).args(&args).env("RUST_LOG", "info").env("MALLOC_ARENA_MAX", "2").env("MALLOC_MMAP_THRESHOLD_", "131072").stdin(Stdio::null()).stdout(Stdio::null()).stderr(Stdio::piped());
         if let Some(bytes) = file_size_limit {
             use std::os::unix::process::CommandExt;
             // SAFETY: only async-signal-safe calls (signal, setrlimit) between fork and exec.
