@@ -141,7 +141,7 @@ impl SourceFacts {
 }
 
 /// What one pass over a hypothesis gathers.
-#[derive(Debug, Clone, Copy, Default)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
 pub(super) struct HypScan {
     /// Non-space characters ([`super::char_len`]).
     pub chars: u64,
@@ -308,7 +308,7 @@ const BYTE_MASKS: [u64; 9] = [0, 0xFF, 0xFFFF, 0xFF_FFFF, 0xFFFF_FFFF, 0xFF_FFFF
 /// letters and digits, or any word when `latin_lower` (the text's characters outside ASCII are
 /// all lowercase Latin-1 letters, their own lowercase, whose first byte 0xC3 has bit 0x40);
 /// other words through [`word_id`].
-#[inline]
+#[inline(always)]
 fn word_at(hyp: &str, start: usize, end: usize, latin_lower: bool) -> (u64, bool) {
     const LETTER: u64 = 0x4040_4040_4040_4040;
     let text = hyp.as_bytes();
@@ -363,9 +363,41 @@ fn word_at(hyp: &str, start: usize, end: usize, latin_lower: bool) -> (u64, bool
 /// branch on what the bytes are (an edge is written at every byte and counted when it is one);
 /// other characters, and ASCII bytes next to them, take a slower path. The second hashes the
 /// words between the edges ([`word_at`]) and looks them up in the vocabulary.
+///
+/// On x86-64 processors with SSSE3, POPCNT, BMI1, BMI2 and LZCNT (checked at run time) the first loop reads
+/// sixteen bytes at a time instead ([`simd`]), the same counts, probes and edges.
+pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
+    #[cfg(target_arch = "x86_64")]
+    if simd::available() {
+        // SAFETY: the processor has the features `scan_simd` is compiled for.
+        return unsafe { scan_simd(hyp, scripts, presence, vocab, ids, spans) };
+    }
+    scan_with::<false>(hyp, scripts, presence, vocab, ids, spans)
+}
+
+/// [`scan_hypothesis`] on the eight-byte path whatever the processor (what tests compare the
+/// sixteen-byte path with).
+#[cfg(test)]
+pub(super) fn scan_hypothesis_portable(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
+    scan_with::<false>(hyp, scripts, presence, vocab, ids, spans)
+}
+
+/// [`scan_with`] compiled for SSSE3, POPCNT, BMI1, BMI2 and LZCNT (the last three: bit scans
+/// and shifts by a variable in one instruction each), its sixteen-byte path on.
+///
+/// # Safety
+/// The processor must have SSSE3, POPCNT, BMI1, BMI2 and LZCNT ([`simd::available`]).
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "ssse3,popcnt,bmi1,bmi2,lzcnt")]
+unsafe fn scan_simd(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
+    scan_with::<true>(hyp, scripts, presence, vocab, ids, spans)
+}
+
+/// The body of [`scan_hypothesis`]; `SIMD` (only in [`scan_simd`]) turns the sixteen-byte path on.
 // The last edge's `open ^= 1` is not read after it.
 #[allow(unused_assignments)]
-pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
+#[inline(always)]
+fn scan_with<const SIMD: bool>(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
     let latin = usize::from(scripts.contains(&Script::Latin));
     let bytes = hyp.as_bytes();
     let cap = bytes.len() + 9;
@@ -373,8 +405,9 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
         spans.edges.resize(cap, 0);
     }
     let edges = &mut spans.edges[..cap];
-    // The presence set with a 33rd zero row: the pair (none, c) reads it.
-    let mut set = [0u32; 33];
+    // The presence set with zero rows after it: the pair (none, c) reads row 32 (64 rows: an
+    // index masked to six bits is in bounds).
+    let mut set = [0u32; 64];
     set[..32].copy_from_slice(presence);
     let (mut chars, mut alnum_lower, mut letters, mut expected, mut extra_lower, mut ascii_letters) = (0usize, 0usize, 0usize, 0usize, 0usize, 0usize);
     let mut hits = 0u64;
@@ -398,8 +431,61 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
             prev = $cl;
         }};
     }
+    #[cfg(target_arch = "x86_64")]
+    // SAFETY: with SIMD on, this runs in `scan_simd`, whose features the tables need.
+    let tables = SIMD.then(|| unsafe { simd::Tables::of(&set) });
     let mut i = 0usize;
     while i < bytes.len() {
+        #[cfg(target_arch = "x86_64")]
+        if let Some(tables) = &tables {
+            // SAFETY: the features as for the tables.
+            let c = unsafe { simd::chunk(bytes, i, tables) };
+            let k = c.ascii;
+            if k > 0 {
+                // The first k bytes (ASCII): their masks, bit j for byte i + j.
+                let valid = (1u32 << k) - 1;
+                let (solid, alnum, letter) = (c.solid & valid, c.alnum & valid, c.letter & valid);
+                chars += solid.count_ones() as usize;
+                alnum_lower += alnum.count_ones() as usize;
+                ascii_letters += letter.count_ones() as usize;
+                // A non-space byte pairs with the last non-space one before it: for the chunk's
+                // first, the one `prev` holds; for the others, the one just before or, past one
+                // white-space byte, the one before that (both probed in the chunk); past more
+                // white space, found here.
+                if solid != 0 {
+                    let first = solid & solid.wrapping_neg();
+                    hits += u64::from((set[prev as usize & 63] >> (bytes[i + first.trailing_zeros() as usize] & CLASS)) & 1);
+                    let rest = solid & !first;
+                    hits += u64::from((c.pairs & rest & ((solid << 1) | (solid << 2))).count_ones());
+                    let mut far = rest & !(solid << 1) & !(solid << 2);
+                    while far != 0 {
+                        let j = far.trailing_zeros() as usize;
+                        let below = solid & ((1u32 << j) - 1);
+                        let p = bytes[i + 31 - below.leading_zeros() as usize] & CLASS;
+                        hits += u64::from((set[usize::from(p)] >> (bytes[i + j] & CLASS)) & 1);
+                        far &= far - 1;
+                    }
+                    prev = u32::from(bytes[i + 31 - solid.leading_zeros() as usize] & CLASS);
+                }
+                // Word edges where a letter or digit follows another byte or the reverse: six
+                // written without a branch (an edge past the last is written and not counted),
+                // the rest, rare, in a loop.
+                let mut t = (alnum ^ ((alnum << 1) | open)) & valid;
+                for _ in 0..6 {
+                    edges[ned] = (i + (t.trailing_zeros() as usize & 31)) as u32;
+                    ned += usize::from(t != 0);
+                    t &= t.wrapping_sub(1);
+                }
+                while t != 0 {
+                    edges[ned] = (i + t.trailing_zeros() as usize) as u32;
+                    ned += 1;
+                    t &= t - 1;
+                }
+                open = (alnum >> (k - 1)) & 1;
+                i += k;
+                continue;
+            }
+        }
         if i + 8 <= bytes.len() {
             let x = load8(bytes, i);
             if x & HIGH == 0 {
@@ -489,12 +575,9 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
     for w in edges[..ned].chunks_exact(2) {
         let (id, letter) = word_at(hyp, w[0] as usize, w[1] as usize, latin_lower);
         ids.push(id);
-        if letter {
-            lettered += 1;
-            if let Some(v) = vocab {
-                known += usize::from(v.contains(id));
-            }
-        }
+        // No branch on the word: a word without a letter is looked up and not counted.
+        lettered += usize::from(letter);
+        known += usize::from(letter) & usize::from(vocab.is_some_and(|v| v.contains(id)));
     }
     HypScan {
         chars: chars as u64,
@@ -506,6 +589,142 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
         hits,
         lettered,
         known,
+    }
+}
+
+/// The sixteen-byte path of [`scan_hypothesis`] (x86-64, SSSE3, POPCNT, BMI1, BMI2 and LZCNT): the masks of
+/// sixteen bytes by byte compares, and their fifteen pairs of adjacent bytes probed in the
+/// presence set by byte shuffles.
+#[cfg(target_arch = "x86_64")]
+mod simd {
+    use std::arch::x86_64::*;
+
+    /// Whether the processor has what [`super::scan_simd`] is compiled for (std caches the
+    /// answer).
+    #[inline]
+    pub(super) fn available() -> bool {
+        is_x86_feature_detected!("ssse3") && is_x86_feature_detected!("popcnt") && is_x86_feature_detected!("bmi1") && is_x86_feature_detected!("bmi2") && is_x86_feature_detected!("lzcnt")
+    }
+
+    /// The presence set's first 32 rows as eight tables of sixteen bytes: the bit of the pair
+    /// (a, b) is bit b % 8 of byte 4a + b / 8 (rows are little-endian u32), in table
+    /// (4a + b / 8) / 16.
+    pub(super) struct Tables([__m128i; 8]);
+
+    impl Tables {
+        /// # Safety
+        /// SSSE3 (see [`available`]).
+        #[inline(always)]
+        pub(super) unsafe fn of(set: &[u32; 64]) -> Tables {
+            let p = set.as_ptr();
+            // SAFETY: rows 0..32 are 128 bytes of `set`; unaligned loads.
+            unsafe {
+                Tables([
+                    _mm_loadu_si128(p.cast()),
+                    _mm_loadu_si128(p.add(4).cast()),
+                    _mm_loadu_si128(p.add(8).cast()),
+                    _mm_loadu_si128(p.add(12).cast()),
+                    _mm_loadu_si128(p.add(16).cast()),
+                    _mm_loadu_si128(p.add(20).cast()),
+                    _mm_loadu_si128(p.add(24).cast()),
+                    _mm_loadu_si128(p.add(28).cast()),
+                ])
+            }
+        }
+    }
+
+    /// What [`chunk`] finds in sixteen bytes: bit j of each mask for byte j.
+    pub(super) struct Chunk {
+        /// Leading bytes that are ASCII (0..=16); the masks hold only for those.
+        pub ascii: usize,
+        /// Not white space ([`crate::text::is_space`]).
+        pub solid: u32,
+        /// ASCII letters and digits.
+        pub alnum: u32,
+        /// ASCII letters.
+        pub letter: u32,
+        /// Bit j (j >= 1): the pair (class of byte j - 1, or of byte j - 2 when byte j - 1 is
+        /// white space; class of byte j) is in the set.
+        pub pairs: u32,
+    }
+
+    /// The masks of the bytes of `bytes` from `i`, at most sixteen (`ascii` counts only bytes
+    /// before the end): the last chunk of a text of at least sixteen bytes is its last sixteen
+    /// bytes shifted down, zero bytes shifted in; a shorter text's is read from a copy.
+    ///
+    /// # Safety
+    /// SSSE3 (see [`available`]); `i < bytes.len()`.
+    #[inline(always)]
+    pub(super) unsafe fn chunk(bytes: &[u8], i: usize, t: &Tables) -> Chunk {
+        debug_assert!(i < bytes.len());
+        let len = bytes.len();
+        // SAFETY: the loads read sixteen bytes of `bytes` (or of the copy); SSSE3.
+        unsafe {
+            let x = if i + 16 <= len {
+                _mm_loadu_si128(bytes.as_ptr().add(i).cast())
+            } else if len >= 16 {
+                let d = (i + 16 - len) as i8;
+                let at = _mm_add_epi8(_mm_setr_epi8(0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 14, 15), _mm_set1_epi8(d));
+                // Indices past 15 get their high bit set: a zero byte.
+                let at = _mm_or_si128(at, _mm_cmpgt_epi8(at, _mm_set1_epi8(15)));
+                _mm_shuffle_epi8(_mm_loadu_si128(bytes.as_ptr().add(len - 16).cast()), at)
+            } else {
+                let mut copy = [0u8; 16];
+                copy[..len - i].copy_from_slice(&bytes[i..]);
+                _mm_loadu_si128(copy.as_ptr().cast())
+            };
+            let c = chunk_of(x, t);
+            Chunk { ascii: c.ascii.min(len - i), ..c }
+        }
+    }
+
+    /// [`chunk`] of the sixteen bytes `x`.
+    ///
+    /// # Safety
+    /// SSSE3 (see [`available`]).
+    #[inline(always)]
+    unsafe fn chunk_of(x: __m128i, t: &Tables) -> Chunk {
+        // SAFETY: SSSE3, the caller's promise.
+        unsafe {
+            // (Macros, not closures: a closure would not get the caller's target features.)
+            macro_rules! mask {
+                ($v:expr) => {
+                    _mm_movemask_epi8($v) as u32
+                };
+            }
+            // Signed byte compares: bytes from 0x80 are negative and fall in no range (they
+            // are past `ascii` anyway).
+            macro_rules! within {
+                ($v:expr, $lo:expr, $hi:expr) => {
+                    _mm_and_si128(_mm_cmpgt_epi8($v, _mm_set1_epi8($lo - 1)), _mm_cmplt_epi8($v, _mm_set1_epi8($hi + 1)))
+                };
+            }
+            let ascii = (mask!(x) | 0x1_0000).trailing_zeros() as usize;
+            let space = _mm_or_si128(within!(x, 0x09, 0x0D), within!(x, 0x1C, 0x20));
+            let digit = within!(x, 0x30, 0x39);
+            // Letters: with bit 0x20 set, 0x61..=0x7A (no other ASCII byte lands there).
+            let lx = _mm_or_si128(x, _mm_set1_epi8(0x20));
+            let letter = within!(lx, 0x61, 0x7A);
+            // The pair probes: byte index 4 * previous class + class / 8 (below 128; 16-bit
+            // shifts, the bits they carry across bytes masked off), its table by the top three
+            // bits, its byte by the low four; then bit class % 8 of that byte.
+            let cls = _mm_and_si128(x, _mm_set1_epi8(31));
+            // The previous byte's class, or the one before it when the previous byte is white space.
+            let after_space = _mm_slli_si128::<1>(space);
+            let prev = _mm_or_si128(_mm_andnot_si128(after_space, _mm_slli_si128::<1>(cls)), _mm_and_si128(after_space, _mm_slli_si128::<2>(cls)));
+            let index = _mm_or_si128(_mm_slli_epi16::<2>(prev), _mm_and_si128(_mm_srli_epi16::<3>(cls), _mm_set1_epi8(3)));
+            let low = _mm_and_si128(index, _mm_set1_epi8(15));
+            let high = _mm_and_si128(_mm_srli_epi16::<4>(index), _mm_set1_epi8(7));
+            let mut row = _mm_setzero_si128();
+            for (k, table) in t.0.iter().enumerate() {
+                let here = _mm_cmpeq_epi8(high, _mm_set1_epi8(k as i8));
+                row = _mm_or_si128(row, _mm_and_si128(_mm_shuffle_epi8(*table, low), here));
+            }
+            let bits = _mm_setr_epi8(1, 2, 4, 8, 16, 32, 64, -128, 1, 2, 4, 8, 16, 32, 64, -128);
+            let bit = _mm_shuffle_epi8(bits, _mm_and_si128(cls, _mm_set1_epi8(7)));
+            let pairs = mask!(_mm_cmpeq_epi8(_mm_and_si128(row, bit), bit));
+            Chunk { ascii, solid: !mask!(space) & 0xFFFF, alnum: mask!(_mm_or_si128(digit, letter)), letter: mask!(letter), pairs }
+        }
     }
 }
 

@@ -305,6 +305,35 @@ proptest! {
     }
 
     #[test]
+    fn the_sixteen_byte_path_equals_the_eight_byte_path(
+        text in prop_oneof![
+            r"([a-zA-Z0-9]{1,12}|[ \t\n\x0B\x0C\r\x1C-\x1F]{1,3}|[!-/:-@\[-`{-~]|ä|ß|É|€|渡){0,40}",
+            r"[\x00-\x7F]{0,80}",
+            any_text(),
+            any::<String>(),
+        ],
+        src in prop_oneof![any_text(), r"[\x00-\x7F]{0,80}", r"(ferry|Fähre|harbour| |\.|\n)*"],
+    ) {
+        // scan_hypothesis takes the sixteen-byte path where the processor has it (x86-64 with
+        // SSSE3, POPCNT, BMI1, BMI2 and LZCNT); the eight-byte path is the one on every other. Same scan, same words.
+        let vocab = Vocabulary::of_texts(["straße äöü abcdefghijklmnopq 渡", src.as_str()]);
+        let facts = SourceFacts::of(&src);
+        // Texts made of the source too, so that pairs across white space hit its set.
+        let spaced: String = src.chars().flat_map(|c| [c, ' ']).collect();
+        for text in [text.clone(), format!("{src} {text}"), src.replace(' ', "  \t"), spaced] {
+            let (mut ids, mut ids_portable) = (Vec::new(), Vec::new());
+            let h = scan::scan_hypothesis(&text, &[Script::Latin], &facts.presence, Some(&vocab), &mut ids, &mut Default::default());
+            let p = scan::scan_hypothesis_portable(&text, &[Script::Latin], &facts.presence, Some(&vocab), &mut ids_portable, &mut Default::default());
+            prop_assert_eq!(h, p);
+            prop_assert_eq!(ids, ids_portable);
+            let (mut hf, mut sf) = (Vec::new(), Vec::new());
+            fill_chars(&text, 0, &mut hf);
+            fill_chars(&src, 0, &mut sf);
+            prop_assert_eq!(h.hits, presence_hits(&hf, &sf));
+        }
+    }
+
+    #[test]
     fn copy_bound_never_below_the_exact_chrf(src in any_text(), hyp in any_text(), n in 1usize..=10) {
         let mut s = GuardScratch::default();
         let (hl, sl) = (fill_chars(&hyp, n, &mut s.hyp_chars), fill_chars(&src, n, &mut s.src_chars));

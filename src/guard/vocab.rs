@@ -69,7 +69,9 @@ impl Vocabulary {
     #[inline]
     fn slot(&self, id: u64) -> (usize, u64) {
         let x = id.wrapping_mul(0x9E37_79B9_7F4A_7C15);
-        let block = if self.shift == 0 { 0 } else { (x >> (64 - self.shift)) as usize };
+        // The top `shift` bits (none when there is one block), with no branch: x >> (64 - shift)
+        // in two shifts that stay below 64.
+        let block = ((x >> 1) >> (63 - self.shift)) as usize;
         (block, (1u64 << (x & 63)) | (1u64 << ((x >> 6) & 63)) | (1u64 << ((x >> 12) & 63)))
     }
 
