@@ -657,9 +657,10 @@ fn presence_surely_below(n: usize, hl: usize, sl: usize, hits: u64, min: f64) ->
     if n < 2 || hl < n || sl < n {
         return false;
     }
-    let fewest = (hl.min(sl) - n + 1) as f64;
-    let upper = (1.0 + (n - 1) as f64 * (hits as f64 / fewest).min(1.0)) / n as f64;
-    100.0 * upper < min
+    // 100 * (1 + (n - 1) * min(hits / fewest, 1)) / n < min, multiplied out (no division).
+    let fewest = (hl.min(sl) - n + 1) as u64;
+    let scaled = 100 * (fewest + (n as u64 - 1) * hits.min(fewest));
+    (scaled as f64) < min * (n as u64 * fewest) as f64
 }
 
 /// An upper bound of [`copy_chrf`] cheaper than [`copy_bound`], with no table to clear and

@@ -260,8 +260,8 @@ pub(super) fn word_id(word: &str) -> u64 {
     word_finish(s.h, s.len)
 }
 
-/// Where [`scan_hypothesis`] writes where a text's words start and end (one spare entry,
-/// written and not counted).
+/// Where [`scan_hypothesis`] writes where a text's words start and end (spare entries past
+/// them, written and not counted: one on the eight-byte path, up to six on the sixteen-byte one).
 #[derive(Debug, Default, Clone)]
 pub(super) struct WordSpans {
     edges: Vec<u32>,
@@ -468,14 +468,17 @@ fn scan_with<const SIMD: bool>(hyp: &str, scripts: &[Script], presence: &Presenc
                     prev = u32::from(bytes[i + 31 - solid.leading_zeros() as usize] & CLASS);
                 }
                 // Word edges where a letter or digit follows another byte or the reverse: six
-                // written without a branch (an edge past the last is written and not counted),
-                // the rest, rare, in a loop.
+                // written without a branch, each to its own place (edges past the last are
+                // written and not counted; at most i + 1 edges lie before byte i, so six more
+                // fit in the text's length plus nine), the rest, rare, in a loop.
                 let mut t = (alnum ^ ((alnum << 1) | open)) & valid;
-                for _ in 0..6 {
-                    edges[ned] = (i + (t.trailing_zeros() as usize & 31)) as u32;
-                    ned += usize::from(t != 0);
+                let n = t.count_ones() as usize;
+                let out = &mut edges[ned..ned + 6];
+                for e in out.iter_mut() {
+                    *e = (i + (t.trailing_zeros() as usize & 31)) as u32;
                     t &= t.wrapping_sub(1);
                 }
+                ned += n.min(6);
                 while t != 0 {
                     edges[ned] = (i + t.trailing_zeros() as usize) as u32;
                     ned += 1;

@@ -79,7 +79,8 @@ impl Vocabulary {
     #[inline]
     pub fn contains(&self, id: u64) -> bool {
         let (b, mask) = self.slot(id);
-        self.blocks[b] & mask == mask
+        // (The index masked to the power-of-two length it is already below: no bounds check.)
+        self.blocks[b & (self.blocks.len() - 1)] & mask == mask
     }
 
     /// Share of `text`'s words with a letter that are (probably) in the vocabulary, what the
