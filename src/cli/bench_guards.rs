@@ -112,6 +112,7 @@ pub(super) fn guard_cost() -> Value {
         "passes": PASSES,
         "metrics": all.spec().config.describe(),
         "vocabulary_words": all.guard_config().vocabulary.as_ref().map_or(0, |v| v.len()),
+        "scan": crate::guard::scan_path(),
         "bleu_segments_per_s": n / alone,
         "guards_segments_per_s": n / guards_only,
         "bleu_with_guards_segments_per_s": n / both,
@@ -182,10 +183,11 @@ pub(super) fn identifier_lines(f: &Value) -> String {
 pub(super) fn guard_cost_line(g: &Value) -> String {
     let n = |k: &str| g[k].as_f64().unwrap_or(f64::NAN);
     format!(
-        "  guards ({} demo items x {}, 1 thread, German target, vocabulary of {} words): BLEU alone {:.0} segments/s, with all guards {:.0} segments/s (+{:.0}% time; guards alone {:.0}/s); without the vocabulary screen {:.0} segments/s (+{:.0}%); without language identification {:.0} segments/s (+{:.0}%)\n",
+        "  guards ({} demo items x {}, 1 thread, German target, vocabulary of {} words, {} scan): BLEU alone {:.0} segments/s, with all guards {:.0} segments/s (+{:.0}% time; guards alone {:.0}/s); without the vocabulary screen {:.0} segments/s (+{:.0}%); without language identification {:.0} segments/s (+{:.0}%)\n",
         g["items"],
         g["passes"],
         g["vocabulary_words"],
+        g["scan"].as_str().unwrap_or("?"),
         n("bleu_segments_per_s"),
         n("bleu_with_guards_segments_per_s"),
         100.0 * n("added_time_ratio"),

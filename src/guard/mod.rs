@@ -47,7 +47,7 @@ use std::sync::Arc;
 #[cfg(test)]
 use scan::PRESENCE_BITS;
 use scan::{scan_hypothesis, HypScan};
-pub use scan::SourceFacts;
+pub use scan::{scan_path, SourceFacts};
 pub use script::{language, language_codes, script_of, Language, Script, LANGUAGES};
 pub use vocab::Vocabulary;
 

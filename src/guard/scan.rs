@@ -1,8 +1,11 @@
 //! One pass over each text for the guards: [`SourceFacts::of`] for a source (kept per reference
 //! segment by a session, so a matched item's source is not read again) and [`scan_hypothesis`]
-//! for a hypothesis: eight ASCII bytes at a time where they come in eights, Latin-1 letters and
-//! common punctuation on a short path, other characters on the general one; the words are
-//! found in that pass and hashed from their bytes in a second, short one.
+//! for a hypothesis: sixteen bytes at a time by SSE byte shuffles where the processor has them
+//! (x86-64 with SSSE3, POPCNT, BMI1, BMI2 and LZCNT, checked at run time), else eight ASCII bytes
+//! at a time in 64-bit words; Latin-1 letters and common punctuation on a short path, other
+//! characters on the general one; the words are found in that pass and hashed from their bytes
+//! in a second, short one. Both paths give the same scan (a property test holds them to each
+//! other and to the definitions).
 
 use super::script::{script_of, Script};
 use super::vocab::Vocabulary;
@@ -375,6 +378,16 @@ pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &Presence
     scan_with::<false>(hyp, scripts, presence, vocab, ids, spans)
 }
 
+/// Which path [`scan_hypothesis`] takes on this processor: "sixteen-byte" or "eight-byte"
+/// (what `mtgauge bench` reports beside its figures).
+pub fn scan_path() -> &'static str {
+    #[cfg(target_arch = "x86_64")]
+    if simd::available() {
+        return "sixteen-byte";
+    }
+    "eight-byte"
+}
+
 /// [`scan_hypothesis`] on the eight-byte path whatever the processor (what tests compare the
 /// sixteen-byte path with).
 #[cfg(test)]
@@ -438,7 +451,7 @@ fn scan_with<const SIMD: bool>(hyp: &str, scripts: &[Script], presence: &Presenc
     while i < bytes.len() {
         #[cfg(target_arch = "x86_64")]
         if let Some(tables) = &tables {
-            // SAFETY: the features as for the tables.
+            // SAFETY: i < bytes.len() (the loop's condition); the features as for the tables.
             let c = unsafe { simd::chunk(bytes, i, tables) };
             let k = c.ascii;
             if k > 0 {
