@@ -367,8 +367,9 @@ fn word_at(hyp: &str, start: usize, end: usize, latin_lower: bool) -> (u64, bool
 /// other characters, and ASCII bytes next to them, take a slower path. The second hashes the
 /// words between the edges ([`word_at`]) and looks them up in the vocabulary.
 ///
-/// On x86-64 processors with SSSE3, POPCNT, BMI1, BMI2 and LZCNT (checked at run time) the first loop reads
-/// sixteen bytes at a time instead ([`simd`]), the same counts, probes and edges.
+/// On x86-64 processors with SSSE3, POPCNT, BMI1, BMI2 and LZCNT (checked at run time) the
+/// first loop reads sixteen bytes at a time instead ([`simd`]), the same counts, probes and
+/// edges.
 pub(super) fn scan_hypothesis(hyp: &str, scripts: &[Script], presence: &PresenceSet, vocab: Option<&Vocabulary>, ids: &mut Vec<u64>, spans: &mut WordSpans) -> HypScan {
     #[cfg(target_arch = "x86_64")]
     if simd::available() {
