@@ -5,7 +5,7 @@
 
 use serde_json::{json, Map, Value};
 
-use crate::guard::{Guard, GuardCounts, Verdict};
+use crate::guard::{Guard, GuardCounts, GuardSetup, Verdict};
 use crate::metric::compare::{self, CompareSettings, Comparison};
 use crate::metric::resample::{Replicates, METHOD};
 use crate::metric::scores::Report;
@@ -294,6 +294,35 @@ pub fn guard_lines(counts: &GuardCounts, target: Option<&str>, indent: &str) -> 
         out.push(format!("{indent}  {:<11}{:>8} flagged {rate}{undecided}", g.name(), counts.flagged_by(g)));
     }
     out
+}
+
+/// What the guards took from the reference set, as keys of the `guards` JSON object
+/// (`score --json`, `status --json`): `length_ratio`, `length_ratio_from` and
+/// `language_vocabulary` (its words, or 0 and why there is none).
+pub fn insert_guard_setup(guards: &mut Value, setup: &GuardSetup) {
+    if let Value::Object(o) = guards {
+        o.insert("length_ratio".into(), json!(setup.length_ratio));
+        o.insert("length_ratio_from".into(), json!(setup.length_ratio_from.name()));
+        let vocabulary = match &setup.vocabulary {
+            Ok(words) => json!({ "words": words }),
+            Err(why) => json!({ "words": 0, "none_because": why }),
+        };
+        o.insert("language_vocabulary".into(), vocabulary);
+    }
+}
+
+/// What the guards took from the reference set, in one human line starting with `indent`.
+pub fn guard_setup_line(setup: &GuardSetup, indent: &str) -> String {
+    let vocabulary = match &setup.vocabulary {
+        Ok(words) => format!("language vocabulary of {words} words from the references"),
+        Err(why) => format!("no language vocabulary: {why}"),
+    };
+    let from = match setup.length_ratio_from {
+        crate::guard::RatioFrom::Learned => "learned from the references and their sources",
+        crate::guard::RatioFrom::Setting => "set",
+        crate::guard::RatioFrom::Default => "the default, not learned (too few source characters in the reference set)",
+    };
+    format!("{indent}(expected length ratio {:.3}, {from}; {vocabulary})", setup.length_ratio)
 }
 
 /// One item's verdict as JSON (per-segment output): the guards that flagged it and those that

@@ -756,7 +756,7 @@ fn score_with_source_reports_guards_and_per_segment_reasons() {
     let g = &v["guards"];
     assert_eq!(g["checked"], 5);
     assert_eq!(g["target_language"], "de");
-    assert_eq!(g["length_ratio_learned"], true);
+    assert_eq!(g["length_ratio_from"], "learned");
     let flagged = |name: &str| g["by_guard"][name]["flagged"].as_u64().expect("count");
     assert_eq!(flagged("empty"), 1);
     assert_eq!(flagged("copy"), 1);
@@ -786,10 +786,18 @@ fn score_with_source_reports_guards_and_per_segment_reasons() {
     let human = text(&out.stdout);
     assert!(human.contains("guards  5 items checked against their sources, target language de"), "{human}");
     assert!(human.lines().any(|l| l.trim_start().starts_with("copy") && l.contains(" 1 flagged")), "{human}");
+    let learned = format!("(expected length ratio {:.3}, learned from the references and their sources; ", chars(G_REF) / chars(G_SRC));
+    assert!(human.contains(&learned), "{human}");
     let v = json_ok(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src, "--guard-setting", "length-ratio=1.5", "--json"], None);
     assert_eq!(v["guards"]["length_ratio"], 1.5);
-    assert_eq!(v["guards"]["length_ratio_learned"], false);
+    assert_eq!(v["guards"]["length_ratio_from"], "setting");
     assert_eq!(v["guards"]["target_language"], Value::Null);
+    // Without a target there is no vocabulary screen, and the reason is given.
+    assert_eq!(v["guards"]["language_vocabulary"]["words"], 0);
+    assert_eq!(v["guards"]["language_vocabulary"]["none_because"], "no target language declared");
+    // Sources shorter than the length guard's minimum teach nothing: the default ratio (1.0).
+    let v = json_ok(&["score", "--ref", &r, "--hyp", &hyp, "--source", &src, "--guard-setting", "length-min-chars=100000", "--json"], None);
+    assert_eq!((v["guards"]["length_ratio"].as_f64(), v["guards"]["length_ratio_from"].as_str()), (Some(1.0), Some("default")));
     // Without --source there is no `guards` key.
     assert!(json_ok(&["score", "--ref", &r, "--hyp", &hyp, "--json"], None).get("guards").is_none());
 }

@@ -6,7 +6,7 @@ mod common;
 
 use common::{demo_files, durable_with_ferry, temp_dir, Server};
 use mtgauge::cli::demo::scenario::demo_segments;
-use mtgauge::guard::{check, Guard, GuardConfig, GuardCounts, GuardScratch, LengthTally};
+use mtgauge::guard::{check, Guard, GuardConfig, GuardCounts, GuardScratch, GuardSetup, LengthTally, RatioFrom};
 use mtgauge::pb;
 use mtgauge::pb::convert::{config_to_pb, guard_tally_from_pb};
 use mtgauge::pb::scoring_client::ScoringClient;
@@ -14,23 +14,25 @@ use mtgauge::pb::sessions_client::SessionsClient;
 use tonic::Code;
 
 /// The session's guard configuration, built offline as the daemon builds it: German target,
-/// expected length ratio learned from the demo references against their sources.
-fn offline_config() -> GuardConfig {
+/// expected length ratio learned from the demo references against their sources, the
+/// language vocabulary from the references; and what it learned.
+fn offline_config() -> (GuardConfig, GuardSetup) {
+    let segs = demo_segments();
+    let pairs = segs.iter().flat_map(|s| s.refs.iter().map(|r| (s.source.as_deref().unwrap_or_default(), r.as_str())));
+    let refs: Vec<&str> = segs.iter().flat_map(|s| s.refs.iter().map(String::as_str)).collect();
+    let mut c = GuardConfig::default().with_target("de").unwrap();
+    let setup = c.learn_from(pairs, &refs, false);
+    // Learned here by hand as well (the definition: references' non-space characters over
+    // their sources'), and the vocabulary is used for German.
     let mut tally = LengthTally::default();
-    for s in demo_segments() {
+    for s in &segs {
         for r in &s.refs {
             tally.add(s.source.as_deref().unwrap_or_default(), r);
         }
     }
-    let mut c = GuardConfig::default().with_target("de").unwrap();
-    c.length_ratio = tally.ratio(c.length_min_chars).unwrap();
-    // The language vocabulary a session learns from its references (German: used).
-    let segs = demo_segments();
-    let refs: Vec<&str> = segs.iter().flat_map(|s| s.refs.iter().map(String::as_str)).collect();
-    if let Err(why) = c.learn_vocabulary(&refs) {
-        panic!("no vocabulary: {why}");
-    }
-    c
+    assert_eq!((setup.length_ratio, setup.length_ratio_from), (tally.ratio(1).unwrap(), RatioFrom::Learned));
+    assert!(matches!(setup.vocabulary, Ok(words) if words > 100), "{setup:?}");
+    (c, setup)
 }
 
 /// Invented text: a Russian notice, and an English notice that is not in the reference set.
@@ -91,7 +93,7 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
 
     // Expected verdicts: the offline guards on (source, hypothesis) of the checked items.
     let items = items();
-    let c = offline_config();
+    let (c, setup) = offline_config();
     let mut scratch = GuardScratch::default();
     let mut want = GuardCounts::default();
     let mut want_verdicts = Vec::new();
@@ -151,9 +153,16 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
     assert_eq!(st["guards"]["checked"], want.checked);
     assert_eq!(st["guards"]["target_language"], "de");
     assert_eq!(st["guards"]["by_guard"]["copy"]["flagged"], want.flagged_by(Guard::Copy));
+    // What the session's guards learned from the set, as the offline guards learn it.
+    assert_eq!(st["guards"]["length_ratio"].as_f64(), Some(setup.length_ratio));
+    assert_eq!(st["guards"]["length_ratio_from"], "learned");
+    assert_eq!(st["guards"]["language_vocabulary"]["words"].as_u64(), setup.vocabulary.clone().ok().map(|w| w as u64));
+    assert_eq!(info.guard_setup.as_ref().map(|g| g.length_ratio), Some(setup.length_ratio));
     let human = std::process::Command::new(bin).args(["status", "--server", &server.grpc, "--session", "g"]).output().unwrap();
     let human = String::from_utf8_lossy(&human.stdout);
     assert!(human.contains(&format!("guards  {} items checked against their sources, target language de", want.checked)), "{human}");
+    let line = format!("(expected length ratio {:.3}, learned from the references and their sources; language vocabulary of {} words from the references)", setup.length_ratio, setup.vocabulary.clone().unwrap());
+    assert!(human.contains(&line), "{human}");
 
     // Guard settings are part of a session's definition: a bad one is refused; with
     // language-id=off the language guard only flags text in another script.
@@ -166,7 +175,10 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
     fast.guard_settings = vec!["language-id=off".into(), "repeat-count=4".into()];
     let info = SessionsClient::new(ch.clone()).create(fast).await.unwrap().into_inner();
     assert_eq!(info.guard_settings, ["language-id=off", "repeat-count=4"]);
-    let mut c_fast = offline_config();
+    let fast_setup = info.guard_setup.clone().expect("a guard setup");
+    assert_eq!((fast_setup.vocabulary_words, fast_setup.no_vocabulary_because.as_str()), (0, "language identification is off"));
+    assert_eq!((fast_setup.length_ratio, fast_setup.length_ratio_from.as_str()), (setup.length_ratio, "learned"));
+    let mut c_fast = offline_config().0;
     c_fast.set("language-id=off").unwrap();
     c_fast.set("repeat-count=4").unwrap();
     let mut want_fast = GuardCounts::default();
@@ -189,6 +201,7 @@ async fn guards_in_acks_verdicts_scores_status_counters_and_after_restart() {
     assert_eq!(after.target_language, "de");
     let fast = SessionsClient::new(ch.clone()).get(pb::GetSessionRequest { name: "fast".into() }).await.unwrap().into_inner();
     assert_eq!(fast.guard_settings, ["language-id=off", "repeat-count=4"]);
+    assert_eq!(fast.guard_setup, info.guard_setup, "learned again after a restart");
     let scrape = again.scrape();
     assert!(scrape.lines().any(|l| l == format!("mtgauge_guard_checked_total{{session=\"g\"}} {}", want.checked)), "{scrape}");
     // A reset zeroes them like every other count.
@@ -266,6 +279,9 @@ async fn reference_free_session_checks_items_with_a_source() {
     assert_eq!(st["guards"]["checked"], 41);
     assert_eq!(st["guards"]["target_language"], "de");
     assert_eq!(st["guards"]["by_guard"]["repetition"]["flagged"], want.flagged_by(Guard::Repetition));
+    // Nothing to learn from: the default ratio, no vocabulary, and why.
+    assert_eq!((st["guards"]["length_ratio"].as_f64(), st["guards"]["length_ratio_from"].as_str()), (Some(1.0), Some("default")));
+    assert_eq!(st["guards"]["language_vocabulary"]["none_because"], "no references");
 
     // Durable like any session: after a restart (the empty set is kept for it).
     let mut server = server;

@@ -10,14 +10,14 @@ use serde_json::{json, Value};
 use super::input::{display_name, parse_refset, read_all, read_bytes, resolve_format, RefFormat};
 use super::progress::{Progress, PROGRESS_MIN_SEGMENTS};
 use super::{default_threads, stderr_is_terminal, CliError, ScoringArgs};
-use crate::guard::{self, GuardConfig, GuardCounts, GuardScratch, LengthTally, Verdict};
+use crate::guard::{self, GuardConfig, GuardCounts, GuardScratch, GuardSetup, Verdict};
 use crate::metric::resample::{self, Replicates};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::Compiled;
 use crate::refs::oneshot;
 use crate::refs::{check_same_length, split_lines, InputError, RefSet};
 use crate::report::{
-    config_json, guard_lines, guards_json, interval_lines, intervals_json, refset_json, segment_json, stats_json, stats_lines, verdict_json, IntervalSettings,
+    config_json, guard_lines, guard_setup_line, guards_json, insert_guard_setup, interval_lines, intervals_json, refset_json, segment_json, stats_json, stats_lines, verdict_json, IntervalSettings,
     RefSetSummary, PROXY_NOTE,
 };
 
@@ -125,7 +125,7 @@ impl GuardArgs {
 
     /// True when the expected length ratio was set (else it is learned).
     fn ratio_given(&self) -> bool {
-        self.settings.iter().any(|s| s.split_once('=').is_some_and(|(k, _)| k.trim() == "length-ratio"))
+        guard::sets_length_ratio(&self.settings)
     }
 }
 
@@ -133,8 +133,8 @@ impl GuardArgs {
 struct Guarded {
     config: GuardConfig,
     verdicts: Vec<Verdict>,
-    /// Words of the language guard's vocabulary, or why there is none.
-    vocabulary: Result<usize, &'static str>,
+    /// What the guards took from the references.
+    setup: GuardSetup,
 }
 
 impl Guarded {
@@ -268,11 +268,7 @@ pub(super) fn run(a: ScoreArgs) -> Result<(), CliError> {
         }
         if let Some(g) = &guarded {
             let mut v = guards_json(&g.counts(), g.config.target.map(|t| t.code));
-            if let Value::Object(o) = &mut v {
-                o.insert("length_ratio".into(), json!(g.config.length_ratio));
-                o.insert("length_ratio_learned".into(), json!(!a.guards.ratio_given()));
-                o.insert("language_vocabulary".into(), vocabulary_json(g.vocabulary));
-            }
+            insert_guard_setup(&mut v, &g.setup);
             m.insert("guards".into(), v);
         }
         m.insert("refset".into(), refset_json(None, &refs));
@@ -374,7 +370,7 @@ fn score_parsed(
     let hyps = split_lines(hyp_name, hyp_bytes)?;
     check_same_length(hyp_name, hyps.len(), display_name(&a.refs[0]), refs.len())?;
     let guarded = match (guard_config, &a.guards.source) {
-        (Some(c), Some(path)) => Some(run_guards(c, !a.guards.ratio_given(), path, &refs, (hyp_name, &hyps), threads)?),
+        (Some(c), Some(path)) => Some(run_guards(c, a.guards.ratio_given(), path, &refs, (hyp_name, &hyps), threads)?),
         _ => None,
     };
     let show = stderr_is_terminal() && hyps.len() >= PROGRESS_MIN_SEGMENTS;
@@ -396,28 +392,17 @@ fn score_parsed(
 }
 
 /// Read the source file and check every hypothesis against its source line (in `threads`
-/// chunks; verdicts never depend on the split). With `learn`, the expected length ratio is the
-/// references' non-space characters over their sources'. The language guard's vocabulary is
-/// learned from the references when it can be used ([`guard::vocab::learn`]).
-fn run_guards(mut config: GuardConfig, learn: bool, path: &str, refs: &RefSet, (hyp_name, hyps): (&str, &[&str]), threads: usize) -> Result<Guarded, CliError> {
+/// chunks; verdicts never depend on the split), with what the guards learn from the
+/// references as a daemon session does ([`GuardConfig::learn_from`]): the expected length
+/// ratio of the references over their sources unless `ratio_set`, and the language vocabulary.
+fn run_guards(mut config: GuardConfig, ratio_set: bool, path: &str, refs: &RefSet, (hyp_name, hyps): (&str, &[&str]), threads: usize) -> Result<Guarded, CliError> {
     let bytes = read_bytes(path)?;
     let name = display_name(path);
     let sources = split_lines(name, &bytes)?;
     check_same_length(name, sources.len(), hyp_name, hyps.len())?;
-    if learn {
-        let mut tally = LengthTally::default();
-        for (seg, src) in refs.segments().zip(&sources) {
-            for r in seg.refs() {
-                tally.add(src, r);
-            }
-        }
-        if let Some(r) = tally.ratio(config.length_min_chars) {
-            config.length_ratio = r;
-        }
-    }
-    // The language guard's vocabulary, learned from the references as a daemon session does.
+    let pairs = refs.segments().zip(&sources).flat_map(|(seg, src)| seg.refs().map(move |r| (*src, r)));
     let references: Vec<&str> = refs.segments().flat_map(|s| s.refs()).collect();
-    let vocabulary = config.learn_vocabulary(&references);
+    let setup = config.learn_from(pairs, &references, ratio_set);
     let chunk = hyps.len().div_ceil(threads.max(1)).max(1);
     let verdicts = std::thread::scope(|scope| {
         let config = &config;
@@ -433,23 +418,7 @@ fn run_guards(mut config: GuardConfig, learn: bool, path: &str, refs: &RefSet, (
             .collect();
         handles.into_iter().flat_map(|h| h.join().unwrap_or_default()).collect::<Vec<_>>()
     });
-    Ok(Guarded { config, verdicts, vocabulary })
-}
-
-/// The language guard's vocabulary in JSON: its words, or why there is none.
-fn vocabulary_json(v: Result<usize, &str>) -> Value {
-    match v {
-        Ok(words) => json!({ "words": words }),
-        Err(why) => json!({ "words": 0, "none_because": why }),
-    }
-}
-
-/// The language guard's vocabulary in words.
-fn vocabulary_text(v: Result<usize, &str>) -> String {
-    match v {
-        Ok(words) => format!("language vocabulary of {words} words from the references"),
-        Err(why) => format!("no language vocabulary: {why}"),
-    }
+    Ok(Guarded { config, verdicts, setup })
 }
 
 fn write_per_segment(path: &str, scored: &Scored, guarded: Option<&Guarded>) -> Result<(), CliError> {
@@ -488,7 +457,7 @@ fn human(
     }
     if let Some(g) = guarded {
         lines.extend(guard_lines(&g.counts(), g.config.target.map(|t| t.code), "  "));
-        lines.push(format!("    (expected length ratio {:.3}; {})", g.config.length_ratio, vocabulary_text(g.vocabulary)));
+        lines.push(guard_setup_line(&g.setup, "    "));
     }
     lines.push(format!("  config  {}", config.describe()));
     lines.push(PROXY_NOTE.to_owned());

@@ -9,7 +9,7 @@ use super::CliError;
 use crate::pb;
 use crate::pb::scoring_client::ScoringClient;
 use crate::pb::sessions_client::SessionsClient;
-use crate::report::{config_json, guard_lines, guards_json, stats_json, stats_lines, IntervalSettings, PROXY_NOTE};
+use crate::report::{config_json, guard_lines, guard_setup_line, guards_json, insert_guard_setup, stats_json, stats_lines, IntervalSettings, PROXY_NOTE};
 use crate::guard::GuardCounts;
 use crate::pb::convert::{config_from_pb, guard_tally_from_pb, guard_tally_to_pb, interval_of, replicate_sums_from_pb, stats_from_pb, totals_with_intervals};
 use crate::metric::resample::{valid_level, DEFAULT_LEVEL};
@@ -24,7 +24,9 @@ The scores of a running server's sessions: cumulative and recent statistics, sco
 bootstrap intervals, alert states. External metrics (values the producer sent with its items) \
 show their mean and interval since creation or reset (JSON `external`) and over the last \
 `window` items that carried values, scored or sent for their values alone (JSON \
-`recent_external`).
+`recent_external`). The reference-free guards' counts (JSON `guards`) come with what the \
+session's guards learned from its reference set: the expected length ratio and whether it was \
+learned, set or left at its default, and the language vocabulary's size or why there is none.
 
 A fleet: --server with several URLs (comma-separated), or a name that resolves to every \
 replica, shows each session's fleet figures: the replicas' integer statistics and bootstrap \
@@ -139,9 +141,14 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
     }
     let guards = guard_tally_from_pb(&r.guards.clone().unwrap_or_default());
     let target = (!r.target_language.is_empty()).then_some(r.target_language.as_str());
+    let setup = info.guard_setup.as_ref().and_then(crate::pb::convert::guard_setup_from_pb);
+    let mut guards_j = guards_json(&guards, target);
+    if let Some(setup) = &setup {
+        insert_guard_setup(&mut guards_j, setup);
+    }
     let j = json!({
         "session": r.session,
-        "guards": guards_json(&guards, target),
+        "guards": guards_j,
         "labels": info.labels,
         "refset": { "name": info.refset, "digest": r.refset_digest },
         "config": config_j,
@@ -188,7 +195,7 @@ fn render(r: &pb::ScoresReport, info: &pb::SessionInfo, level: f64) -> Result<(V
         }
     }
     if guards.checked > 0 || target.is_some() {
-        for l in guard_lines(&guards, target, "  ") {
+        for l in guard_lines(&guards, target, "  ").into_iter().chain(setup.as_ref().map(|s| guard_setup_line(s, "    "))) {
             text += &l;
             text.push('\n');
         }

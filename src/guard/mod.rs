@@ -412,6 +412,77 @@ impl LengthTally {
     }
 }
 
+/// Where the length guard's expected ratio comes from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum RatioFrom {
+    /// The reference set's references against their sources ([`LengthTally`]).
+    Learned,
+    /// A `length-ratio` setting.
+    Setting,
+    /// [`DEFAULT_LENGTH_RATIO`]: no setting, and too little source text to learn from.
+    Default,
+}
+
+impl RatioFrom {
+    /// Its name in reports and the API: "learned", "setting" or "default".
+    pub fn name(self) -> &'static str {
+        match self {
+            RatioFrom::Learned => "learned",
+            RatioFrom::Setting => "setting",
+            RatioFrom::Default => "default",
+        }
+    }
+
+    /// The origin of a name ([`RatioFrom::name`]).
+    pub fn from_name(name: &str) -> Option<RatioFrom> {
+        [RatioFrom::Learned, RatioFrom::Setting, RatioFrom::Default].into_iter().find(|r| r.name() == name)
+    }
+}
+
+/// What the guards took from a reference set ([`GuardConfig::learn_from`]), reported beside
+/// their counts (`score`, `status`): the verdicts depend on it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct GuardSetup {
+    /// The length guard's expected hypothesis/source ratio of non-space characters.
+    pub length_ratio: f64,
+    /// Where it comes from.
+    pub length_ratio_from: RatioFrom,
+    /// Words of the language guard's vocabulary, or why it has none.
+    pub vocabulary: Result<usize, String>,
+}
+
+/// True when `settings` set the expected length ratio (it is then not learned).
+pub fn sets_length_ratio(settings: &[String]) -> bool {
+    settings.iter().any(|s| s.split_once('=').is_some_and(|(k, _)| k.trim() == "length-ratio"))
+}
+
+impl GuardConfig {
+    /// Learn what the guards take from a reference set, once the settings are applied: the
+    /// expected length ratio from its (source, reference) pairs, unless `ratio_set` or their
+    /// sources hold fewer than `length_min_chars` non-space characters, and the language
+    /// vocabulary from its references ([`GuardConfig::learn_vocabulary`]). The daemon's
+    /// sessions and `score` both learn here.
+    pub fn learn_from<'a>(&mut self, pairs: impl IntoIterator<Item = (&'a str, &'a str)>, references: &[&str], ratio_set: bool) -> GuardSetup {
+        let length_ratio_from = if ratio_set {
+            RatioFrom::Setting
+        } else {
+            let mut tally = LengthTally::default();
+            for (source, reference) in pairs {
+                tally.add(source, reference);
+            }
+            match tally.ratio(self.length_min_chars) {
+                Some(r) => {
+                    self.length_ratio = r;
+                    RatioFrom::Learned
+                }
+                None => RatioFrom::Default,
+            }
+        };
+        let vocabulary = self.learn_vocabulary(references).map_err(str::to_owned);
+        GuardSetup { length_ratio: self.length_ratio, length_ratio_from, vocabulary }
+    }
+}
+
 /// Non-space characters of `text`.
 pub fn char_len(text: &str) -> u64 {
     text.chars().filter(|&c| !is_space(c)).count() as u64

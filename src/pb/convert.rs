@@ -279,6 +279,23 @@ pub fn guard_tally_from_pb(t: &pb::GuardTally) -> crate::guard::GuardCounts {
     c
 }
 
+/// What a session's guards took from its reference set, in the API.
+pub fn guard_setup_to_pb(s: &crate::guard::GuardSetup) -> pb::GuardSetup {
+    let (words, why) = match &s.vocabulary {
+        Ok(words) => (*words as u64, String::new()),
+        Err(why) => (0, why.clone()),
+    };
+    pb::GuardSetup { length_ratio: s.length_ratio, length_ratio_from: s.length_ratio_from.name().to_owned(), vocabulary_words: words, no_vocabulary_because: why }
+}
+
+/// The API's guard setup; None when the server sent none or an origin this client does not
+/// know.
+pub fn guard_setup_from_pb(s: &pb::GuardSetup) -> Option<crate::guard::GuardSetup> {
+    let length_ratio_from = crate::guard::RatioFrom::from_name(&s.length_ratio_from)?;
+    let vocabulary = if s.no_vocabulary_because.is_empty() { Ok(s.vocabulary_words as usize) } else { Err(s.no_vocabulary_because.clone()) };
+    Some(crate::guard::GuardSetup { length_ratio: s.length_ratio, length_ratio_from, vocabulary })
+}
+
 /// One item's verdict in the API.
 pub fn guard_verdict_to_pb(index: u32, v: crate::guard::Verdict) -> pb::GuardVerdict {
     pb::GuardVerdict {

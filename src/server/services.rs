@@ -112,6 +112,7 @@ fn session_info(s: &Session) -> pb::SessionInfo {
         resampling: Some(resampling_to_pb(&spec.resampling)),
         target_language: spec.target_language.clone().unwrap_or_default(),
         guard_settings: spec.guard_settings.clone(),
+        guard_setup: Some(crate::pb::convert::guard_setup_to_pb(s.guard_setup())),
         external: crate::pb::external::declaration_to_pb(&spec.external),
     }
 }

@@ -13,7 +13,7 @@ use std::sync::{Arc, Mutex, MutexGuard};
 
 use unicode_normalization::UnicodeNormalization;
 
-use crate::guard::{GuardConfig, GuardCounts, GuardScratch, LengthTally, Verdict};
+use crate::guard::{GuardConfig, GuardCounts, GuardScratch, GuardSetup, Verdict};
 use crate::metric::resample::{segment_key, Replicates, Resampling};
 use crate::metric::{CorpusStats, ScoreConfig, SegmentStats};
 use crate::refs::compiled::{Compiled, Scratch};
@@ -104,33 +104,21 @@ pub fn normalize_source(text: &str, caseless: bool) -> String {
     out
 }
 
-/// The guards' configuration of a session: defaults, the declared target, the expected
-/// length ratio learned from the set's segments that have a source (each reference against
-/// its source) when there is enough text, the settings, and the target vocabulary learned from
-/// the references ([`crate::guard::vocab::learn`]) when it can be used.
-fn guard_config(spec: &SessionSpec, refs: &RefSet) -> GuardConfig {
-    let mut c = GuardConfig::default();
-    c.target = spec.target_language.as_deref().and_then(crate::guard::language);
-    let mut tally = LengthTally::default();
-    for seg in refs.segments() {
-        if let Some(src) = seg.source() {
-            for r in seg.refs() {
-                tally.add(src, r);
-            }
-        }
-    }
-    if let Some(r) = tally.ratio(c.length_min_chars) {
-        c.length_ratio = r;
-    }
+/// The guards' configuration of a session: defaults, the declared target, the settings, and
+/// what it learns from the reference set ([`GuardConfig::learn_from`]): the expected length
+/// ratio from the segments that have a source (each reference against its source) unless a
+/// setting gives it, and the target vocabulary from the references when it can be used.
+fn guard_config(spec: &SessionSpec, refs: &RefSet) -> (GuardConfig, GuardSetup) {
+    let mut c = GuardConfig { target: spec.target_language.as_deref().and_then(crate::guard::language), ..GuardConfig::default() };
     for s in &spec.guard_settings {
         // Checked at creation ([`check_guard_settings`]); a stored one that no longer parses
         // keeps its default.
         let _ = c.set(s);
     }
+    let pairs = refs.segments().filter_map(|seg| seg.source().map(|src| seg.refs().map(move |r| (src, r)))).flatten();
     let references: Vec<&str> = refs.segments().flat_map(|s| s.refs()).collect();
-    // Without one (the reason is the configuration's to tell), the identifiers decide.
-    let _ = c.learn_vocabulary(&references);
-    c
+    let setup = c.learn_from(pairs, &references, crate::guard::sets_length_ratio(&spec.guard_settings));
+    (c, setup)
 }
 
 /// Check guard settings (and the target language code) of a session definition.
@@ -277,9 +265,11 @@ pub struct Session {
     /// index's entries.
     keys: Vec<u64>,
     source_keys: Vec<u64>,
-    /// The guards' thresholds: the declared target, and the expected length ratio learned from
-    /// the set's sources and references when it has sources.
+    /// The guards' thresholds: the declared target, the settings, and what they learned from
+    /// the reference set.
     guards: GuardConfig,
+    /// What the guards took from the reference set (for `status`).
+    guard_setup: GuardSetup,
     /// What the guards need of each segment's source, by segment index (empty when no segment
     /// has a source; a segment without one has default facts, never read).
     source_facts: Vec<crate::guard::SourceFacts>,
@@ -328,7 +318,7 @@ impl Session {
     /// Create a session over `refs` (the reference-set version it keeps for its lifetime).
     pub fn new(spec: SessionSpec, refs: Arc<RefSet>, created_unix: i64) -> Session {
         let sources = SourceIndex::build(&refs, spec.config);
-        let guards = guard_config(&spec, &refs);
+        let (guards, guard_setup) = guard_config(&spec, &refs);
         let compiled = Compiled::build(refs, spec.config);
         let keys_of = |set: &RefSet| set.segments().map(|s| segment_key(s.id().as_bytes())).collect::<Vec<u64>>();
         let keys = keys_of(compiled.refs());
@@ -342,7 +332,7 @@ impl Session {
         let history = history::History::new(history::HistoryConfig::default(), &spec.config, (spec.resampling.resamples > 0).then(|| Replicates::new(&spec.config, spec.resampling.resamples, spec.resampling.seed)));
         let external = Mutex::new(ExternalStats::new(&spec, 0));
         let external_history = Mutex::new(external_history::ExternalHistory::new(history::HistoryConfig::default(), spec.external.len()));
-        Session { spec, compiled, sources, keys, source_keys, guards, source_facts, source_segment, created_unix, state: Mutex::new(state), history: Mutex::new(history), external, external_history }
+        Session { spec, compiled, sources, keys, source_keys, guards, guard_setup, source_facts, source_segment, created_unix, state: Mutex::new(state), history: Mutex::new(history), external, external_history }
     }
 
     /// The external values a batch adds (CPU work, no lock taken): `items` are (weight key,
@@ -419,6 +409,12 @@ impl Session {
     /// The guards' configuration of this session.
     pub fn guard_config(&self) -> &GuardConfig {
         &self.guards
+    }
+
+    /// What the guards took from the reference set: the expected length ratio and where it
+    /// comes from, the language vocabulary's words or why there is none.
+    pub fn guard_setup(&self) -> &GuardSetup {
+        &self.guard_setup
     }
 
     /// The guards' verdict on one item (CPU work, no lock taken) that [`Session::score_item`]

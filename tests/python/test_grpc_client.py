@@ -594,7 +594,18 @@ def test_guard_fields_of_acks_and_verdicts(stubs, api, demo_refs):
     session (no reference set, target language only; items are unknown and still checked)."""
     expected = guard_items(stubs, demo_refs)
     items = [it for it, _, _ in expected]
-    create_session(stubs, api, "py-guards", target_language="de")
+    info = create_session(stubs, api, "py-guards", target_language="de")
+    # What the session's guards learned from the set (SessionInfo.guard_setup): the expected
+    # length ratio is the references' non-space characters over their sources' (README, the
+    # length guard's definition), each reference counted against its source; and a vocabulary.
+    def solid(text):
+        return sum(1 for c in text if not c.isspace())
+    ref_chars = sum(solid(r) for row in demo_refs for r in row["refs"])
+    src_chars = sum(solid(row["source"]) * len(row["refs"]) for row in demo_refs)
+    setup = info.guard_setup
+    assert setup.length_ratio_from == "learned", setup
+    assert abs(setup.length_ratio - ref_chars / src_chars) < 1e-12, (setup, ref_chars, src_chars)
+    assert setup.vocabulary_words > 0 and setup.no_vocabulary_because == "", setup
     ack = api.scoring.Submit(stubs.scoring.ScoreBatch(
         session="py-guards", producer="py-guards-1", sequence=1, items=items,
         want_segment_scores=True), timeout=RPC_TIMEOUT)
@@ -613,6 +624,8 @@ def test_guard_fields_of_acks_and_verdicts(stubs, api, demo_refs):
         name="py-guards-free", config=stubs.common.ScoreConfig(metrics=metric_configs(stubs)),
         target_language="deu"), timeout=RPC_TIMEOUT)
     assert info.refset == "" and info.target_language == "de"
+    assert info.guard_setup.length_ratio_from == "default" and info.guard_setup.length_ratio == 1.0
+    assert info.guard_setup.vocabulary_words == 0 and info.guard_setup.no_vocabulary_because == "no references"
     by_source = [(stubs.scoring.ScoreItem(source=row["source"], hypothesis=it.hypothesis), m, n)
                  for (it, m, n), row in zip(expected, demo_refs)]
     ack = api.scoring.Submit(stubs.scoring.ScoreBatch(
