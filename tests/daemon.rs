@@ -759,7 +759,7 @@ team = "ferry-mt"
     let out = mtgauge(&["serve", "--config", example, "--show-config"]);
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let shown: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
-    assert_eq!(shown["settings"]["alert"].as_array().map(Vec::len), Some(3));
+    assert_eq!(shown["settings"]["alert"].as_array().map(Vec::len), Some(4));
     // A rule with a mistake is refused at startup, naming the rule and the key.
     std::fs::write(&config, "[[alert]]\nname = \"bad\"\nsession = \"x\"\nwhen = \"below\"\n").unwrap();
     let out = mtgauge(&["serve", "--config", config.to_str().unwrap(), "--show-config"]);

@@ -7,9 +7,10 @@
 //!
 //! # What is rendered
 //! `below` and `drop` rules over the `all` window (each replica's counters, summed) or a time
-//! window (`increase()` over it, summed). Not rendered, and listed in the output's header:
-//! `recent` windows (a count of segments, which Prometheus cannot select) and `decline` rules
-//! (a sequential test over the stream, in the daemon only).
+//! window (`increase()` over it, summed), and `flag-rate` rules (the guard counters
+//! `mtgauge_guard_{checked,flagged,undecided}_total`, summed over the replicas). Not rendered,
+//! and listed in the output's header: `recent` windows (a count of segments, which Prometheus
+//! cannot select) and `decline` rules (a sequential test over the stream, in the daemon only).
 //!
 //! One group, in dependency order (a rule reads only rules above it, evaluated at the same
 //! timestamp): per (metric, window) the replicate scores and the scored-segment count; per rule
@@ -21,7 +22,11 @@
 //! - `below`: the `Q`-quantile by session of the replicate scores, Q = (1 + level) / 2 (0.975
 //!   for the 95% interval): its upper bound;
 //! - `drop`: the same quantile of the per-replicate difference (session - baseline), paired by
-//!   replicate: the same segment has the same weights in both sessions.
+//!   replicate: the same segment has the same weights in both sessions;
+//! - `flag-rate`: the lower bound of the 95% Wilson (1927) score interval of the guard's flagged
+//!   share of the items it decided on (checked minus undecided), in percent, as the daemon's
+//!   [`super::rules::wilson`] computes it; it fires above the threshold, resolves at or below
+//!   threshold - clear_margin, and `min_segments` counts the decided items.
 //!
 //! An alert's condition is the daemon's: the bound below the limit (threshold, or -points),
 //! or, once firing (the `ALERTS` series Prometheus keeps for its own alerts), below the limit
@@ -40,7 +45,7 @@
 use std::collections::BTreeSet;
 use std::fmt::Write;
 
-use super::rules::{Condition, Rule, Window};
+use super::rules::{Condition, Rule, Window, WILSON_Z95};
 use crate::metric::resample::DEFAULT_LEVEL;
 use crate::metric::Metric;
 
@@ -67,7 +72,6 @@ pub fn daemon_only(rule: &Rule) -> Option<&'static str> {
     }
     match (&rule.condition, rule.window) {
         (Condition::Decline { .. }, _) => Some("a `decline` rule is a sequential test over the stream of chunks: the daemon evaluates it, Prometheus cannot"),
-        (Condition::FlagRate { .. }, _) => Some("a `flag-rate` rule's Wilson bound comes from the guard counts the daemon keeps: the daemon evaluates it"),
         (_, Window::Recent) => Some("the `recent` window is the session's last segments by count, which Prometheus cannot select: use `all` or a time window such as 15m"),
         (_, Window::Segments(_)) => Some("a window of the last N segments is a count of segments, which Prometheus cannot select: use `all` or a time window such as 15m"),
         _ => None,
@@ -127,6 +131,31 @@ fn replicate_record(m: Metric, w: Window) -> (String, String) {
 
 fn segments_record(w: Window) -> String {
     format!("session:mtgauge_alert_segments:{}", op(w))
+}
+
+/// Per (session, guard): items flagged, summed over the replicas.
+const GUARD_FLAGGED_RECORD: &str = "session_guard:mtgauge_alert_guard_flagged:sum";
+/// Per (session, guard): items the guard decided on (checked minus undecided), summed over the
+/// replicas; no series while it is 0 (a share of nothing is not judged, as in the daemon).
+const GUARD_DECIDED_RECORD: &str = "session_guard:mtgauge_alert_guard_decided:sum";
+
+/// The guard records `flag-rate` rules read.
+fn guard_series(out: &mut String) {
+    record(out, GUARD_FLAGGED_RECORD, "sum by (session, guard) (mtgauge_guard_flagged_total)", &[]);
+    record(
+        out,
+        GUARD_DECIDED_RECORD,
+        "  (\n      sum by (session) (mtgauge_guard_checked_total)\n    - on (session) group_right\n      sum by (session, guard) (mtgauge_guard_undecided_total)\n  )\n> 0",
+        &[],
+    );
+}
+
+/// The record and selector a rule's `min_segments` is judged on.
+fn count_selector(rule: &Rule) -> String {
+    match &rule.condition {
+        Condition::FlagRate { guard, .. } => format!("{GUARD_DECIDED_RECORD}{{guard={}}}", promql_string(guard)),
+        _ => segments_record(rule.window),
+    }
 }
 
 /// A selector `{a="x", b="y"}` of the non-empty parts (empty string when none).
@@ -210,6 +239,9 @@ pub fn render(rules: &[Rule], source: &str) -> Rendered {
     let _ = writeln!(out, "# unsmoothed and chrF with beta 2; `all` is what the replicas' counters hold; increase()");
     let _ = writeln!(out, "# extrapolates to a time window's edges. BLEU and chrF are automatic proxies for translation");
     let _ = writeln!(out, "# quality, comparable only under the same tokenizer, references and configuration.");
+    let _ = writeln!(out, "# A `flag-rate` alert fires when the lower bound of the 95% Wilson interval of the share of");
+    let _ = writeln!(out, "# items a reference-free guard flagged (of those it decided on, over the replicas' summed");
+    let _ = writeln!(out, "# counters) is above the rule's threshold, and resolves once it is clear_margin below it.");
     let _ = writeln!(out, "#");
     if rendered.is_empty() {
         let _ = writeln!(out, "# Rendered: none.");
@@ -225,7 +257,14 @@ pub fn render(rules: &[Rule], source: &str) -> Rendered {
         return Rendered { yaml: out, rendered, skipped };
     }
     let _ = writeln!(out, "groups:\n  - name: {GROUP}\n    rules:");
-    // Series per (metric, window), and segments per window, in a stable order.
+    // Series per (metric, window), and segments per window, in a stable order; the guard
+    // records once for any `flag-rate` rule.
+    let (flag, scores): (Vec<&Rule>, Vec<&Rule>) = keep.iter().copied().partition(|r| matches!(r.condition, Condition::FlagRate { .. }));
+    let keep_all = keep;
+    let keep = scores;
+    if !flag.is_empty() {
+        guard_series(&mut out);
+    }
     let needed: BTreeSet<(usize, String, u64)> = keep.iter().map(|r| (Metric::ALL.iter().position(|m| *m == r.metric).unwrap_or(0), r.window.name(), window_key(r.window))).collect();
     let windows: BTreeSet<(u64, String)> = keep.iter().map(|r| (window_key(r.window), r.window.name())).collect();
     for (key, _) in &windows {
@@ -236,10 +275,10 @@ pub fn render(rules: &[Rule], source: &str) -> Rendered {
         let w = keep.iter().map(|r| r.window).find(|w| window_key(*w) == *key).unwrap_or(Window::All);
         series(&mut out, Metric::ALL[*mi], w);
     }
-    for r in &keep {
+    for r in &keep_all {
         bound(&mut out, r, q);
     }
-    for r in &keep {
+    for r in &keep_all {
         alert(&mut out, r);
     }
     Rendered { yaml: out, rendered, skipped }
@@ -268,6 +307,18 @@ fn label_filter(rule: &Rule) -> String {
 }
 
 fn bound(out: &mut String, rule: &Rule, q: f64) {
+    if let Condition::FlagRate { guard, .. } = &rule.condition {
+        let mut own = own_session(rule);
+        own.push(format!("guard={}", promql_string(guard)));
+        let (f, n) = (format!("{GUARD_FLAGGED_RECORD}{}", selector(&own)), format!("{GUARD_DECIDED_RECORD}{}", selector(&own)));
+        // Wilson (1927): (p + z^2/2n - z sqrt(p(1 - p)/n + z^2/4n^2)) / (1 + z^2/n), p = f/n.
+        let z = num(WILSON_Z95);
+        let expr = format!(
+            "clamp_min(\n    100 * (\n        {f} / {n}\n      + {z}^2 / (2 * {n})\n      - {z} * sqrt(\n            {f} / {n} * (1 - {f} / {n}) / {n}\n          + {z}^2 / (4 * {n}^2)\n        )\n    )\n  /\n    (1 + {z}^2 / {n}),\n  0)"
+        );
+        record(out, BOUND_RECORD, &format!("{expr}{}", label_filter(rule)), &[("rule", &rule.name)]);
+        return;
+    }
     let (rec, metric_part) = replicate_record(rule.metric, rule.window);
     let by = if rule.metric == Metric::Bleu { "session" } else { "session, metric" };
     let mut own = own_session(rule);
@@ -278,7 +329,8 @@ fn bound(out: &mut String, rule: &Rule, q: f64) {
             let base = selector(&[format!("session={}", promql_string(baseline)), metric_part]);
             format!("quantile by ({by}) ({q},\n    {rec}{}\n  - ignoring (session) group_left\n    {rec}{base}\n)", selector(&own))
         }
-        Condition::Decline { .. } | Condition::FlagRate { .. } => unreachable!("decline and flag-rate rules are not rendered"),
+        Condition::Decline { .. } => unreachable!("decline rules are not rendered"),
+        Condition::FlagRate { .. } => unreachable!("flag-rate rules took the branch above"),
     };
     let expr = format!("{expr}{}", label_filter(rule));
     record(out, BOUND_RECORD, &expr, &[("rule", &rule.name)]);
@@ -295,18 +347,21 @@ fn num(x: f64) -> String {
 }
 
 fn alert(out: &mut String, rule: &Rule) {
-    let limit = match &rule.condition {
-        Condition::Below { threshold } => *threshold,
-        Condition::Drop { points, .. } => -points,
-        Condition::Decline { .. } | Condition::FlagRate { .. } => unreachable!("decline and flag-rate rules are not rendered"),
+    // The bound against the limit: the upper bound below it, or for `flag-rate` the lower
+    // bound above it; a firing alert holds until clear_margin past the limit.
+    let (cmp, limit, hold) = match &rule.condition {
+        Condition::Below { threshold } => ("<", *threshold, threshold + rule.clear_margin),
+        Condition::Drop { points, .. } => ("<", -points, -points + rule.clear_margin),
+        Condition::FlagRate { threshold, .. } => (">", *threshold, threshold - rule.clear_margin),
+        Condition::Decline { .. } => unreachable!("decline rules are not rendered"),
     };
     let b = format!("max by (session) ({BOUND_RECORD}{{rule={}}})", promql_string(&rule.name));
     let firing = format!("ALERTS{{alertname={}, alertstate=\"firing\"}}", promql_string(&rule.name));
-    let seg = segments_record(rule.window);
+    let seg = count_selector(rule);
     let mut expr = format!(
-        "  (\n      {b} < {}\n    or\n      (\n          {b} < {}\n        and on (session)\n          {firing}\n      )\n  )\nand on (session)\n  {seg} >= {}",
+        "  (\n      {b} {cmp} {}\n    or\n      (\n          {b} {cmp} {}\n        and on (session)\n          {firing}\n      )\n  )\nand on (session)\n  {seg} >= {}",
         num(limit),
-        num(limit + rule.clear_margin),
+        num(hold),
         rule.min_segments
     );
     if let Condition::Drop { baseline, .. } = &rule.condition {
@@ -324,21 +379,19 @@ fn alert(out: &mut String, rule: &Rule) {
     let _ = writeln!(out, "        labels:");
     let mut labels = rule.extra_labels.clone();
     labels.insert("severity".into(), rule.severity.clone());
-    labels.insert("metric".into(), rule.metric.name().into());
+    labels.insert("metric".into(), rule.metric_label());
     for (k, v) in &labels {
         let _ = writeln!(out, "          {k}: {}", yaml_string(v));
     }
     let _ = writeln!(out, "        annotations:");
     let mut ann: std::collections::BTreeMap<String, String> = rule.annotations.iter().map(|(k, v)| (k.clone(), literal(v))).collect();
     ann.entry("summary".into()).or_insert_with(|| literal(&format!("{}: {}", rule.name, describe(rule))) + " on session {{ $labels.session }}");
-    ann.insert("measured".into(), format!("upper bound of the {:.0}% interval {{{{ $value | printf \"%.2f\" }}}} (Prometheus, over the exported replicates)", DEFAULT_LEVEL * 100.0));
-    ann.insert(
-        "description".into(),
-        literal(&format!(
-            "{} is an automatic proxy for translation quality: look at the session's recent output and at what changed (model, input, references) before concluding anything.",
-            rule.metric.title()
-        )),
-    );
+    let measured = match &rule.condition {
+        Condition::FlagRate { .. } => "lower bound of the 95% Wilson interval of the flagged share {{ $value | printf \"%.2f\" }}% (Prometheus, over the replicas' summed guard counters)".to_owned(),
+        _ => format!("upper bound of the {:.0}% interval {{{{ $value | printf \"%.2f\" }}}} (Prometheus, over the exported replicates)", DEFAULT_LEVEL * 100.0),
+    };
+    ann.insert("measured".into(), measured);
+    ann.insert("description".into(), literal(&rule.description()));
     for (k, v) in &ann {
         let _ = writeln!(out, "          {k}: {}", yaml_string(v));
     }
@@ -440,6 +493,37 @@ points = 2
             let used = y.find(&format!("{name}{{")).or_else(|| y.find(&format!("({name})"))).or_else(|| y.find(&format!("* {name}"))).unwrap();
             assert!(def < used, "{name} used before it is recorded");
         }
+    }
+
+    #[test]
+    fn renders_flag_rate_rules_with_the_wilson_bound_of_the_summed_guard_counters() {
+        let text = "[[alert]]\nname = \"copies\"\nlabels = { lang = \"en-de\" }\nwhen = \"flag-rate\"\nguard = \"copy\"\nthreshold = 2\nmin_segments = 150\nclear_margin = 0.5\n\n\
+                    [[alert]]\nname = \"loops\"\nsession = \"ferry.v8\"\nwhen = \"flag-rate\"\nguard = \"repetition\"\nthreshold = 1\n";
+        let r = render(&rules(text), "serve.toml");
+        assert_eq!(r.rendered, ["copies", "loops"]);
+        assert!(r.skipped.is_empty());
+        let y = &r.yaml;
+        // The guard records once, before the bounds that read them; no score series.
+        assert_eq!(y.matches(&format!("- record: {GUARD_FLAGGED_RECORD}\n")).count(), 1, "{y}");
+        assert_eq!(y.matches(&format!("- record: {GUARD_DECIDED_RECORD}\n")).count(), 1);
+        assert!(!y.contains("mtgauge_alert_segments") && !y.contains("mtgauge_replicate_"), "{y}");
+        assert!(y.find(&format!("- record: {GUARD_DECIDED_RECORD}\n")) < y.find(&format!("- record: {BOUND_RECORD}\n")));
+        // Decided = checked - undecided, per (session, guard), over the replicas.
+        assert!(y.contains("sum by (session) (mtgauge_guard_checked_total)\n") && y.contains("- on (session) group_right\n") && y.contains("sum by (session, guard) (mtgauge_guard_undecided_total)\n"), "{y}");
+        // The bound: Wilson's lower bound in percent, of the rule's guard (and session), with
+        // the label filter through the session info.
+        let f = format!("{GUARD_FLAGGED_RECORD}{{guard=\"copy\"}}");
+        let n = format!("{GUARD_DECIDED_RECORD}{{guard=\"copy\"}}");
+        assert!(y.contains(&format!("{f} / {n}\n")) && y.contains("- 1.959963984540054 * sqrt("), "{y}");
+        assert!(y.contains(&format!("(1 + 1.959963984540054^2 / {n})")), "{y}");
+        assert!(y.contains("(mtgauge_session_info{lang=\"en-de\"} == 1)"));
+        assert!(y.contains(&format!("{GUARD_FLAGGED_RECORD}{{session=\"ferry.v8\", guard=\"repetition\"}}")), "{y}");
+        // Fires above the threshold, holds above threshold - clear_margin, on decided items.
+        assert!(y.contains("{rule=\"copies\"}) > 2\n") && y.contains("{rule=\"copies\"}) > 1.5\n"), "{y}");
+        assert!(y.contains(&format!("  {n} >= 150\n")), "{y}");
+        assert!(y.contains("          metric: \"guard:copy\"\n") && y.contains("          metric: \"guard:repetition\"\n"), "{y}");
+        assert!(y.contains("lower bound of the 95% Wilson interval of the flagged share"));
+        assert!(y.contains("The copy guard flags likely broken output"));
     }
 
     #[test]

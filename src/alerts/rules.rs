@@ -464,9 +464,33 @@ impl Rule {
         }
     }
 
+    /// The `description` annotation of its alerts (the daemon's and the rendered rules'): what
+    /// the measure is a proxy for, and where to look.
+    pub fn description(&self) -> String {
+        match &self.condition {
+            Condition::FlagRate { guard, .. } => format!(
+                "The {guard} guard flags likely broken output by a fixed rule, without a reference: look at the session's flagged items (per-item verdicts) and at what changed (model, input) before concluding anything."
+            ),
+            _ => format!(
+                "{} is an automatic proxy for translation quality: look at the session's recent output and at what changed (model, input, references) before concluding anything.",
+                self.external.as_deref().unwrap_or(self.metric.title())
+            ),
+        }
+    }
+
     /// What the rule judges: the built-in metric's name, or the external metric's.
     pub fn subject(&self) -> &str {
         self.external.as_deref().unwrap_or(self.metric.name())
+    }
+
+    /// The `metric` label of its alerts (the daemon's and the rendered rules', so that
+    /// Alertmanager sees one alert from both): what it judges, or for `flag-rate` the guard
+    /// (`guard:copy`).
+    pub fn metric_label(&self) -> String {
+        match &self.condition {
+            Condition::FlagRate { guard, .. } => format!("guard:{guard}"),
+            _ => self.subject().to_owned(),
+        }
     }
 
     /// Whether the rule watches a session with this name and these labels.
@@ -709,6 +733,9 @@ mod tests {
         let r = entry("name = \"copies\"\nlabels = { lang = \"en-de\" }\nwhen = \"flag-rate\"\nguard = \"copy\"\nthreshold = 2\nmin_segments = 50\nfor_seconds = 0\nclear_margin = 0.5").check(0).unwrap();
         assert_eq!((r.condition.clone(), r.window), (Condition::FlagRate { guard: "copy".into(), threshold: 2.0 }, Window::All));
         assert!(r.describe().contains("copy guard") && r.describe().contains("above 2%"), "{}", r.describe());
+        // Its alerts name the guard in the `metric` label, and their description speaks of it.
+        assert_eq!(r.metric_label(), "guard:copy");
+        assert!(r.description().starts_with("The copy guard flags"), "{}", r.description());
         for (text, want) in [
             ("when = \"flag-rate\"\nthreshold = 2", "needs `guard`"),
             ("when = \"flag-rate\"\nguard = \"colour\"\nthreshold = 2", "guard 'colour'"),

@@ -16,7 +16,8 @@ counters of every replica summed, and the bootstrap replicates they export \
 (`serve --exported-resamples`, default 100) for the intervals.
 
 Rendered: rules with `when = \"below\"` or `when = \"drop\"` over `window = \"all\"` (what the \
-replicas' counters hold) or a time window such as \"15m\" (increase() over it). Not rendered, \
+replicas' counters hold) or a time window such as \"15m\" (increase() over it), and rules with \
+`when = \"flag-rate\"` (the guard counters summed over the replicas). Not rendered, \
 and named in the file's header and on stderr: `window = \"recent\"` (the session's last \
 segments by count, which Prometheus cannot select) and `when = \"decline\"` (a sequential test \
 over the stream of chunks). Those run in the daemon only.
@@ -26,7 +27,10 @@ Each alert fires when the upper bound of the 95% interval is below the rule's li
 scored segments in the window, for for_seconds; once firing it resolves when the bound is back \
 above the limit by clear_margin. Alerts carry the daemon's labels (alertname, session, \
 severity, metric and extra_labels), so the same alert from the daemon and from Prometheus is \
-one alert at Alertmanager. Check the output with `promtool check rules`.
+one alert at Alertmanager. A flag-rate alert fires when the lower bound of the 95% Wilson \
+interval of the guard's flagged share (of the items it decided on: checked minus undecided) is \
+above the threshold, with at least min_segments decided items, and resolves once the bound is \
+clear_margin below it. Check the output with `promtool check rules`.
 
 The whole config file is checked as `serve` checks it; an error names the key.";
 

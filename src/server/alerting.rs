@@ -333,7 +333,7 @@ fn labels(rule: &Rule, session: &str) -> std::collections::BTreeMap<String, Stri
     l.insert("alertname".into(), rule.name.clone());
     l.insert("session".into(), session.to_owned());
     l.insert("severity".into(), rule.severity.clone());
-    l.insert("metric".into(), rule.subject().to_owned());
+    l.insert("metric".into(), rule.metric_label());
     l
 }
 
@@ -343,10 +343,7 @@ fn event(rule: &Rule, session: &Session, p: &Pair, resolved: bool, now: i64) -> 
     let measured = p.tracker.last.map_or_else(|| "nothing to judge by".to_owned(), |m| format!("{:.2} (95% interval {:.2} .. {:.2}, {} segments)", m.value, m.low, m.high, m.segments));
     annotations.entry("summary".into()).or_insert_with(|| format!("{}: {} on session {}", rule.name, describe(rule), session.spec().name));
     annotations.insert("measured".into(), measured);
-    annotations.insert(
-        "description".into(),
-        format!("{} is an automatic proxy for translation quality: look at the session's recent output and at what changed (model, input, references) before concluding anything.", rule.external.as_deref().unwrap_or(rule.metric.title())),
-    );
+    annotations.insert("description".into(), rule.description());
     AlertEvent { labels: labels(rule, &session.spec().name), annotations, starts_at: at(p.fired_at), ends_at: resolved.then(|| at(now)), generator_url: String::new() }
 }
 

@@ -49,6 +49,7 @@ const ALERT_DELIVERIES: &str = "mtgauge_alert_deliveries_total";
 const ALERT_RETRIES: &str = "mtgauge_alert_delivery_retries_total";
 const GUARD_CHECKED: &str = "mtgauge_guard_checked_total";
 const GUARD_FLAGGED: &str = "mtgauge_guard_flagged_total";
+const GUARD_UNDECIDED: &str = "mtgauge_guard_undecided_total";
 const EXTERNAL_COUNT: &str = "mtgauge_external_count_total";
 const EXTERNAL_SUM: &str = "mtgauge_external_sum_total";
 const EXTERNAL_SQUARES: &str = "mtgauge_external_squares_total";
@@ -67,7 +68,7 @@ pub const COMMIT_BATCHES_BUCKETS: &[f64] = &[1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.
 pub const DEFAULT_EXPORTED_RESAMPLES: usize = 100;
 
 /// Every metric the server exports (what `serve --show-config` lists for dashboards and rules).
-pub const METRIC_NAMES: [&str; 43] = [
+pub const METRIC_NAMES: [&str; 44] = [
     SEGMENTS,
     BLEU_MATCHES,
     BLEU_NGRAMS,
@@ -106,6 +107,7 @@ pub const METRIC_NAMES: [&str; 43] = [
     COMMIT_BATCHES,
     GUARD_CHECKED,
     GUARD_FLAGGED,
+    GUARD_UNDECIDED,
     EXTERNAL_COUNT,
     EXTERNAL_SUM,
     EXTERNAL_SQUARES,
@@ -211,6 +213,7 @@ pub fn install_metrics() -> Result<PrometheusHandle, String> {
     describe_counter!(ALERT_DELIVERIES, "Alert events per delivery target by outcome: sent (accepted), failed (refused with a 4xx, or out of attempts), dropped (pushed out of a full queue).");
     describe_counter!(GUARD_CHECKED, "Items checked by the reference-free guards per session (items that carried a source, matched or not).");
     describe_counter!(GUARD_FLAGGED, "Items flagged per session and guard (empty, copy, length, repetition, script, language); an item can trip several.");
+    describe_counter!(GUARD_UNDECIDED, "Items a guard could not decide on per session and guard (too short, no declared target, ...): checked minus undecided is what a guard's flagged share is of.");
     describe_counter!(EXTERNAL_COUNT, "Values of each external segment metric counted per session (the metric label is the session's declared name).");
     describe_counter!(EXTERNAL_SUM, "Per session and external metric: the sum of (value - low) x 10^decimals, exact (low and decimals as declared; fleet mean = low + sum / (count x 10^decimals)).");
     describe_gauge!(EXTERNAL_LOW, "Per session and external metric: the declared low end of its range, which the sum and squares counters are offset by.");
@@ -284,6 +287,7 @@ pub fn record_guards(session: &str, counts: &crate::guard::GuardCounts, absolute
     put(counter!(GUARD_CHECKED, "session" => session.to_owned()), counts.checked);
     for g in crate::guard::Guard::ALL {
         put(counter!(GUARD_FLAGGED, "session" => session.to_owned(), "guard" => g.name()), counts.flagged_by(g));
+        put(counter!(GUARD_UNDECIDED, "session" => session.to_owned(), "guard" => g.name()), counts.undecided_by(g));
     }
 }
 

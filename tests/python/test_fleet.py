@@ -341,8 +341,12 @@ AGREE_RULES = [
     ("agree-chrf-15m", 'labels = {{ suite = "agree" }}\nmetric = "chrf"\nwindow = "15m"\nwhen = "below"\nthreshold = {chrf}'),
     ("agree-worse", f'session = "{AGREE_DEGRADED}"\nwindow = "all"\nwhen = "drop"\nbaseline = "{AGREE_V7}"\npoints = 5'),
     ("agree-better", f'session = "{AGREE_V7}"\nwindow = "all"\nwhen = "drop"\nbaseline = "{AGREE_DEGRADED}"\npoints = 5'),
+    # The dictionary fallback's outputs are out of the length band on 10 of the 300 notices
+    # (`mtgauge score --source`; model-v7: none): the Wilson lower bound of 10/300 is 1.82%.
+    ("agree-lengths", 'labels = {{ suite = "agree" }}\nwhen = "flag-rate"\nguard = "length"\nthreshold = 1'),
 ]
-AGREE_EXPECTED = {("agree-floor", AGREE_DEGRADED), ("agree-chrf-15m", AGREE_DEGRADED), ("agree-worse", AGREE_DEGRADED)}
+AGREE_EXPECTED = {("agree-floor", AGREE_DEGRADED), ("agree-chrf-15m", AGREE_DEGRADED), ("agree-worse", AGREE_DEGRADED),
+                  ("agree-lengths", AGREE_DEGRADED)}
 
 
 @pytest.fixture(scope="module")
@@ -685,6 +689,14 @@ def test_daemon_and_prometheus_agree_on_alerts(replicas, prometheus, judge, corp
         assert bounds[rule] <= own + 1e-9 and own - bounds[rule] < 1.0, (rule, bounds[rule], own)
     assert seen[("agree-floor", AGREE_DEGRADED)]["segments"] == len(bad)
     assert thresholds["bleu"] > seen[("agree-floor", AGREE_DEGRADED)]["high"]
+    # flag-rate: the same summed guard counts and Wilson's formula on both sides: equal bounds
+    # (the daemon's `low`, in percent), and the guard in the `metric` label.
+    own = seen[("agree-lengths", AGREE_DEGRADED)]
+    print(f"agree-lengths: daemon {own['value']:.4f}% flagged, Wilson lower bound {own['low']:.6f} over {own['segments']} "
+          f"decided items; Prometheus bound {bounds['agree-lengths']:.6f}")
+    assert own["segments"] == len(bad) and abs(bounds["agree-lengths"] - own["low"]) < 1e-9, (bounds["agree-lengths"], own)
+    assert palerts[("agree-lengths", AGREE_DEGRADED)]["labels"]["metric"] == "guard:length"
+    assert seen[("agree-lengths", AGREE_V7)]["state"] == "inactive" and seen[("agree-lengths", AGREE_V7)]["value"] == 0
 
 
 SESSION_IV = "fleet-interval"

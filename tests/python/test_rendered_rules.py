@@ -100,6 +100,18 @@ for_seconds = 0
 summary = "base BLEU below 40"
 
 [[alert]]
+name = "copies"
+labels = { probe = "ferry-notices" }
+when = "flag-rate"
+guard = "copy"
+threshold = 5
+min_segments = 100
+for_seconds = 0
+clear_margin = 1.0
+[alert.annotations]
+summary = "copy rate above 5%"
+
+[[alert]]
 name = "recent-floor"
 session = "cand"
 when = "below"
@@ -131,6 +143,31 @@ def series(name, labels, values):
     return f"      - series: '{name}{{{text}}}'\n        values: '{values}'\n"
 
 
+Z95 = 1.959963984540054  # standard normal 0.975 quantile (common practice, to 16 digits)
+
+
+def wilson_low(flagged, n, z=Z95):
+    """Lower bound of the Wilson (1927) score interval of flagged / n, in percent: (p + z^2/2n -
+    z sqrt(p(1 - p)/n + z^2/4n^2)) / (1 + z^2/n) (E. B. Wilson, "Probable inference, the law of
+    succession, and statistical inference", JASA 22, 1927; the formula from memory)."""
+    p = flagged / n
+    return 100 * (p + z * z / (2 * n) - z * (p * (1 - p) / n + z * z / (4 * n * n)) ** 0.5) / (1 + z * z / n)
+
+
+def guard_session(session, checked, undecided, flagged, other_flagged):
+    """Guard counters of `session` on both replicas, per phase (totals split evenly): items
+    checked, the copy guard's undecided and flagged items, and the length guard's flags (which
+    a copy rule must not read)."""
+    out = []
+    for inst in REPLICAS:
+        out.append(series("mtgauge_guard_checked_total", {"session": session, "instance": inst}, phases([c / 2 for c in checked])))
+        for guard, und, flg in (("copy", undecided, flagged), ("length", [0] * 3, other_flagged)):
+            labels = {"session": session, "guard": guard, "instance": inst}
+            out.append(series("mtgauge_guard_undecided_total", labels, phases([u / 2 for u in und])))
+            out.append(series("mtgauge_guard_flagged_total", labels, phases([f / 2 for f in flg])))
+    return out
+
+
 def bleu_session(session, precisions_by_phase):
     """Replicate BLEU counters of `session`: replicate r has every precision
     precisions_by_phase[k][r] in phase k, split evenly over the two replicas; "all" window."""
@@ -158,7 +195,7 @@ def test_rendered_rules_pass_promtool(tmp_path):
     # The two rules Prometheus cannot evaluate are named, with the reason.
     assert "not rendered (daemon only): recent-floor: the `recent` window" in proc.stderr, proc.stderr
     assert "not rendered (daemon only): slide: a `decline` rule" in proc.stderr
-    assert "5 of 7 rules rendered" in proc.stderr
+    assert "6 of 8 rules rendered" in proc.stderr
     text = rules.read_text(encoding="utf-8")
     assert "# Not rendered (daemon only): slide" in text
 
@@ -197,12 +234,31 @@ def test_rendered_rules_pass_promtool(tmp_path):
         for sess, probe in (("cand", "ferry-notices"), ("thin", "ferry-notices"), ("base", "other")):
             s.append(series("mtgauge_session_info", {"session": sess, "probe": probe, "instance": inst}, "1x32"))
 
+    # Guard counters. cand: the copy guard decided on 500, 2000, 4000 items (checked minus
+    # undecided) and flagged 60, 110, 150: Wilson lower bounds 9.44% (fires above 5), 4.58%
+    # (between 5 - 1 and 5: still firing), 3.20% (resolved); its length guard flags half of
+    # everything (not the copy rule's business). thin: half its items copied, but 40 decided
+    # for min_segments 100. base: copies as much, but fails the probe label selector.
+    s += guard_session("cand", [600, 2200, 4400], [100, 200, 400], [60, 110, 150], [300, 1100, 2200])
+    s += guard_session("thin", [40, 40, 40], [0, 0, 0], [20, 20, 20], [0, 0, 0])
+    s += guard_session("base", [600, 2200, 4400], [100, 200, 400], [300, 1000, 2000], [0, 0, 0])
+    copies = [wilson_low(60, 500), wilson_low(110, 2000), wilson_low(150, 4000)]
+    assert copies[0] > 5 and 4 < copies[1] <= 5 and copies[2] <= 4, copies
+    flag_description = ("The copy guard flags likely broken output by a fixed rule, without a reference: look at "
+                        "the session's flagged items (per-item verdicts) and at what changed (model, input) before "
+                        "concluding anything.")
+
     def alert(name, t, session=None, metric="bleu", value=None, summary=None, severity="warning", extra=None):
         exp = ""
         if session is not None:
             labels = {"session": session, "severity": severity, "metric": metric, **(extra or {})}
-            ann = {"summary": summary, "measured": measured(value),
-                   "description": DESCRIPTION["BLEU" if metric == "bleu" else "chrF"]}
+            if metric.startswith("guard:"):
+                ann = {"summary": summary, "description": flag_description,
+                       "measured": f"lower bound of the 95% Wilson interval of the flagged share {value:.2f}% "
+                                   "(Prometheus, over the replicas' summed guard counters)"}
+            else:
+                ann = {"summary": summary, "measured": measured(value),
+                       "description": DESCRIPTION["BLEU" if metric == "bleu" else "chrF"]}
             exp = ("          - exp_labels:\n"
                    + "".join(f'              {k}: "{v}"\n' for k, v in labels.items())
                    + "            exp_annotations:\n"
@@ -226,6 +282,10 @@ def test_rendered_rules_pass_promtool(tmp_path):
         # The 15-minute window: pending first (for: 120s), then firing.
         alert("floor-15m", 2),
         alert("floor-15m", 10, "cand15", value=45.85, summary="cand15 BLEU below 47 in 15m", severity="page", extra={"team": "ferry-mt"}),
+        # flag-rate: fires, holds within the clear margin, resolves (phases as above).
+        alert("copies", 5, "cand", metric="guard:copy", value=copies[0], summary="copy rate above 5%"),
+        alert("copies", 16, "cand", metric="guard:copy", value=copies[1], summary="copy rate above 5%"),
+        alert("copies", 28),
         alert("base-floor", 10),
     ]
     test = tmp_path / "rendered_test.yml"
@@ -259,10 +319,10 @@ def test_shipped_rule_file_is_the_rendering_of_the_example(tmp_path):
     proc = subprocess.run([str(require_binary()), "rules", "--config", str(EXAMPLE_RULES), "--output", str(out)],
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode == 0, proc.stderr
-    assert "2 of 3 rules rendered" in proc.stderr, proc.stderr
+    assert "3 of 4 rules rendered" in proc.stderr, proc.stderr
     assert "not rendered (daemon only): production-chrf-decline" in proc.stderr, proc.stderr
     assert SHIPPED.read_text(encoding="utf-8") == out.read_text(encoding="utf-8"), (
         f"{SHIPPED} is out of date: run `mtgauge rules --config {EXAMPLE_RULES.relative_to(REPO)} "
         f"--output {SHIPPED.relative_to(REPO)}`")
-    for alert in ("candidate-bleu-floor", "candidate-worse-than-production"):
+    for alert in ("candidate-bleu-floor", "candidate-worse-than-production", "candidate-copies-source"):
         assert f"- alert: {alert}\n" in out.read_text(encoding="utf-8"), alert
