@@ -1128,6 +1128,9 @@ def test_dashboard_panels_cover_the_brief():
     assert any("session_metric:mtgauge_chrf:" in e and 'metric="chrf"' in e for e in full.values()), "no fleet chrF panel"
     assert any(re.search(r"rate\(mtgauge_segments_total", e) and "outcome" in e for e in full.values()), "no segments/s by outcome"
     assert any("histogram_quantile" in e and "mtgauge_batch_seconds_bucket" in e for e in full.values()), "no batch latency quantiles"
+    # The guards' flag rate: flagged over decided (checked minus undecided), per session and guard.
+    assert any("mtgauge_guard_flagged_total" in e and "mtgauge_guard_checked_total" in e
+               and "mtgauge_guard_undecided_total" in e and "by (session, guard)" in e for e in full.values()), "no guard flag-rate panel"
     for p in panels(d):
         if any(r in expand(" ".join(t["expr"] for t in p.get("targets", [])), variables) for r in RECORDED):
             steps = p["fieldConfig"]["defaults"]["thresholds"]["steps"]
