@@ -101,7 +101,7 @@ pub struct GuardArgs {
 
 fn guard_setting_help() -> String {
     format!(
-        "A guard threshold as KEY=VALUE (repeatable); defaults: {}. Without length-ratio, the expected hypothesis/source length ratio is learned from the references against the sources",
+        "A guard threshold as KEY=VALUE (repeatable); defaults: {}. Without length-ratio, the expected hypothesis/source length ratio is learned from the references against the sources (when the sources hold at least length-min-chars non-space characters; else the default). The report says which (JSON `length_ratio`, `length_ratio_from`: learned, setting or default) and the language vocabulary learned from the references (`language_vocabulary`: its words, or why there is none)",
         guard::settings_help()
     )
 }
