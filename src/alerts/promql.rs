@@ -260,25 +260,23 @@ pub fn render(rules: &[Rule], source: &str) -> Rendered {
     // Series per (metric, window), and segments per window, in a stable order; the guard
     // records once for any `flag-rate` rule.
     let (flag, scores): (Vec<&Rule>, Vec<&Rule>) = keep.iter().copied().partition(|r| matches!(r.condition, Condition::FlagRate { .. }));
-    let keep_all = keep;
-    let keep = scores;
     if !flag.is_empty() {
         guard_series(&mut out);
     }
-    let needed: BTreeSet<(usize, String, u64)> = keep.iter().map(|r| (Metric::ALL.iter().position(|m| *m == r.metric).unwrap_or(0), r.window.name(), window_key(r.window))).collect();
-    let windows: BTreeSet<(u64, String)> = keep.iter().map(|r| (window_key(r.window), r.window.name())).collect();
+    let needed: BTreeSet<(usize, String, u64)> = scores.iter().map(|r| (Metric::ALL.iter().position(|m| *m == r.metric).unwrap_or(0), r.window.name(), window_key(r.window))).collect();
+    let windows: BTreeSet<(u64, String)> = scores.iter().map(|r| (window_key(r.window), r.window.name())).collect();
     for (key, _) in &windows {
-        let w = keep.iter().map(|r| r.window).find(|w| window_key(*w) == *key).unwrap_or(Window::All);
+        let w = scores.iter().map(|r| r.window).find(|w| window_key(*w) == *key).unwrap_or(Window::All);
         record(&mut out, &segments_record(w), &agg("mtgauge_segments_total{outcome=\"scored\"}", "session", w), &[]);
     }
     for (mi, _, key) in &needed {
-        let w = keep.iter().map(|r| r.window).find(|w| window_key(*w) == *key).unwrap_or(Window::All);
+        let w = scores.iter().map(|r| r.window).find(|w| window_key(*w) == *key).unwrap_or(Window::All);
         series(&mut out, Metric::ALL[*mi], w);
     }
-    for r in &keep_all {
+    for r in &keep {
         bound(&mut out, r, q);
     }
-    for r in &keep_all {
+    for r in &keep {
         alert(&mut out, r);
     }
     Rendered { yaml: out, rendered, skipped }
